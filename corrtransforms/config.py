@@ -1,0 +1,488 @@
+"""Asset configuration: one TOML file per monitored asset, validated before any pipeline starts.
+
+:func:`load_config` reads the file, resolves relative paths against the file's own folder, fills
+defaults and validates every key. An invalid value raises :class:`ConfigError` whose message names
+the key, the value and what is allowed, for example::
+
+    [windows] min_coverage = 1.5: must be a number in (0, 1]
+
+The README's configuration reference lists every key with its default; this module is the source
+of truth for both.
+"""
+from __future__ import annotations
+
+import dataclasses
+import datetime as _dt
+import hashlib
+import json
+import os
+import re
+import sys
+from typing import Any, Dict, Mapping, Optional, Sequence, Tuple, Union
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover
+    import tomli as tomllib
+
+LAYOUTS = ("wide", "long")
+ESTIMATORS = ("biased", "unbiased")
+DETRENDS = ("mean", "none", "linear")
+WEIGHTINGS = ("none", "phat", "scot")
+SCREENING_ACTIONS = ("flag", "exclude")
+DETECTORS = ("cusum", "ewma", "both")
+ASSET_NAME_PATTERN = re.compile(r"^[A-Za-z0-9_-]{1,64}$")
+CHANNEL_NAME_PATTERN = re.compile(r"^[^:\x00-\x1f]{1,128}$")
+
+
+class ConfigError(ValueError):
+    """An invalid configuration: names the key, the value and what is allowed."""
+
+    def __init__(self, key: str, value: Any, allowed: str):
+        self.key = key
+        self.value = value
+        self.allowed = allowed
+        super().__init__(f"{key} = {value!r}: {allowed}")
+
+
+@dataclasses.dataclass(frozen=True)
+class ArchiveConfig:
+    path: str
+    sample_rate_hz: float
+    layout: str = "wide"
+    time_column: str = "time"
+    channel_column: str = "channel"
+    value_column: str = "value"
+    timezone: str = "UTC"
+
+
+@dataclasses.dataclass(frozen=True)
+class ChannelsConfig:
+    #: channels to correlate; None means every numeric column that is not time or a covariate
+    names: Optional[Tuple[str, ...]] = None
+    covariates: Tuple[str, ...] = ()
+    units: Mapping[str, str] = dataclasses.field(default_factory=dict)
+
+    def unit(self, name: str) -> str:
+        return self.units.get(name, "")
+
+
+@dataclasses.dataclass(frozen=True)
+class WindowsConfig:
+    length_s: float = 600.0
+    hop_s: float = 600.0
+    min_coverage: float = 0.9
+
+
+@dataclasses.dataclass(frozen=True)
+class CorrelationConfig:
+    max_lag_s: float = 10.0
+    #: "all", "auto", or a tuple of (a, b) channel pairs
+    pairs: Union[str, Tuple[Tuple[str, str], ...]] = "all"
+    estimator: str = "biased"
+    detrend: str = "mean"
+    weighting: str = "none"
+    target_rel_error: float = 0.05
+
+
+@dataclasses.dataclass(frozen=True)
+class ModeConfig:
+    name: str
+    channel: str
+    band_hz: Tuple[float, float]
+
+
+@dataclasses.dataclass(frozen=True)
+class BaselineConfig:
+    start: Optional[_dt.date] = None
+    end: Optional[_dt.date] = None
+    #: count of windows from the first one; used when start/end are not given
+    windows: Optional[int] = None
+    #: fewer baseline windows than this is a quality code ("baseline_too_short"), not an alarm
+    min_windows: int = 30
+
+    @property
+    def by_dates(self) -> bool:
+        return self.start is not None
+
+
+@dataclasses.dataclass(frozen=True)
+class ScreeningConfig:
+    enabled: bool = True
+    segments: int = 20
+    alpha: float = 0.05
+    action: str = "flag"
+
+
+@dataclasses.dataclass(frozen=True)
+class ShiftsConfig:
+    detector: str = "both"
+    cusum_k: float = 0.5
+    cusum_h: float = 5.0
+    ewma_lambda: float = 0.2
+    ewma_L: float = 3.0
+    #: covariates regressed out of each indicator; None means all configured covariates
+    compensate: Optional[Tuple[str, ...]] = None
+
+
+@dataclasses.dataclass(frozen=True)
+class ReadingConfig:
+    #: target size of one read task in bytes of decoded samples
+    task_bytes: int = 32 * 2**20
+    #: a timestamp within this fraction of a sample period of a grid point is snapped onto it
+    grid_tolerance: float = 0.25
+    #: a channel with at least this fraction of its samples at its extreme values is "clipped"
+    clip_fraction: float = 0.01
+
+
+@dataclasses.dataclass(frozen=True)
+class AssetConfig:
+    name: str
+    archive: ArchiveConfig
+    channels: ChannelsConfig = ChannelsConfig()
+    windows: WindowsConfig = WindowsConfig()
+    correlation: CorrelationConfig = CorrelationConfig()
+    modes: Tuple[ModeConfig, ...] = ()
+    baseline: BaselineConfig = BaselineConfig()
+    screening: ScreeningConfig = ScreeningConfig()
+    shifts: ShiftsConfig = ShiftsConfig()
+    reading: ReadingConfig = ReadingConfig()
+    #: the file the configuration was read from ("" when built in code)
+    source: str = ""
+
+    def compensated_covariates(self) -> Tuple[str, ...]:
+        if self.shifts.compensate is None:
+            return tuple(self.channels.covariates)
+        return tuple(self.shifts.compensate)
+
+    def as_dict(self) -> Dict[str, Any]:
+        """Plain, JSON-serialisable form (dates as ISO strings), without ``source``."""
+
+        def plain(value):
+            if dataclasses.is_dataclass(value):
+                return {f.name: plain(getattr(value, f.name)) for f in dataclasses.fields(value)
+                        if f.name != "source"}
+            if isinstance(value, (list, tuple)):
+                return [plain(v) for v in value]
+            if isinstance(value, Mapping):
+                return {str(k): plain(v) for k, v in sorted(value.items())}
+            if isinstance(value, _dt.date):
+                return value.isoformat()
+            return value
+
+        return plain(self)
+
+    def digest(self) -> str:
+        """SHA-256 of the canonical JSON of the resolved configuration (provenance)."""
+        text = json.dumps(self.as_dict(), sort_keys=True, separators=(",", ":"))
+        return hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+
+# --------------------------------------------------------------------------------------------
+# Validation helpers
+
+_KNOWN = {
+    "asset": {"name"},
+    "archive": {"path", "layout", "time_column", "channel_column", "value_column",
+                "sample_rate_hz", "timezone"},
+    "channels": {"names", "covariates", "units"},
+    "windows": {"length_s", "hop_s", "min_coverage"},
+    "correlation": {"max_lag_s", "pairs", "estimator", "detrend", "weighting", "target_rel_error"},
+    "modes": {"name", "channel", "band_hz"},
+    "baseline": {"start", "end", "windows", "min_windows"},
+    "screening": {"enabled", "segments", "alpha", "action"},
+    "shifts": {"detector", "cusum_k", "cusum_h", "ewma_lambda", "ewma_L", "compensate"},
+    "reading": {"task_bytes", "grid_tolerance", "clip_fraction"},
+}
+
+
+def _number(key, value, *, low=None, high=None, low_open=False, high_open=False, integer=False):
+    kind = "an integer" if integer else "a number"
+    ok_type = isinstance(value, int) if integer else isinstance(value, (int, float))
+    if isinstance(value, bool) or not ok_type or value != value:
+        raise ConfigError(key, value, f"must be {kind}")
+    lo = "(" if low_open else "["
+    hi = ")" if high_open else "]"
+    rng = f"{lo}{'-inf' if low is None else low}, {'inf' if high is None else high}{hi}"
+    if low is not None and (value < low or (low_open and value == low)):
+        raise ConfigError(key, value, f"must be {kind} in {rng}")
+    if high is not None and (value > high or (high_open and value == high)):
+        raise ConfigError(key, value, f"must be {kind} in {rng}")
+    if value in (float("inf"), float("-inf")):
+        raise ConfigError(key, value, f"must be a finite {kind[2:] if kind.startswith('a ') else kind}")
+    return int(value) if integer else float(value)
+
+
+def _choice(key, value, allowed: Sequence[str]):
+    if value not in allowed:
+        raise ConfigError(key, value, "must be one of " + ", ".join(f'"{a}"' for a in allowed))
+    return value
+
+
+def _string(key, value, pattern=None, what="a non-empty string"):
+    if not isinstance(value, str) or not value or (pattern is not None and not pattern.match(value)):
+        raise ConfigError(key, value, f"must be {what}")
+    return value
+
+
+def _string_list(key, value, pattern=CHANNEL_NAME_PATTERN):
+    if not isinstance(value, list) or not all(isinstance(v, str) and pattern.match(v) for v in value):
+        raise ConfigError(key, value, "must be a list of channel names (no ':' or control characters)")
+    if len(set(value)) != len(value):
+        raise ConfigError(key, value, "must not repeat a name")
+    return tuple(value)
+
+
+def _date(key, value):
+    if isinstance(value, _dt.datetime):
+        return value.date()
+    if isinstance(value, _dt.date):
+        return value
+    if isinstance(value, str):
+        try:
+            return _dt.date.fromisoformat(value)
+        except ValueError:
+            pass
+    raise ConfigError(key, value, "must be a date YYYY-MM-DD")
+
+
+def _section(raw: Mapping[str, Any], name: str, required=False) -> Mapping[str, Any]:
+    value = raw.get(name)
+    if value is None:
+        if required:
+            raise ConfigError(f"[{name}]", None, "this section is required")
+        return {}
+    if not isinstance(value, Mapping):
+        raise ConfigError(f"[{name}]", value, "must be a table")
+    unknown = sorted(set(value) - _KNOWN[name])
+    if unknown:
+        raise ConfigError(f"[{name}] {unknown[0]}", value[unknown[0]],
+                          "is not a known key; known keys: " + ", ".join(sorted(_KNOWN[name])))
+    return value
+
+
+def _resolve_path(path: str, base_dir: str) -> str:
+    if "://" in path or os.path.isabs(path) or not base_dir:
+        return path
+    return os.path.normpath(os.path.join(base_dir, path))
+
+
+def _timezone(key, value):
+    import zoneinfo
+
+    if not isinstance(value, str):
+        raise ConfigError(key, value, "must be an IANA time zone name such as \"UTC\" or \"Europe/Vienna\"")
+    try:
+        zoneinfo.ZoneInfo(value)
+    except (zoneinfo.ZoneInfoNotFoundError, ValueError):
+        raise ConfigError(key, value, "must be an IANA time zone name such as \"UTC\" or \"Europe/Vienna\"") from None
+    return value
+
+
+def parse_config(raw: Mapping[str, Any], base_dir: str = "", source: str = "") -> AssetConfig:
+    """Validate a parsed TOML mapping and build an :class:`AssetConfig`.
+
+    Parameters
+    ----------
+    raw : mapping
+        The TOML document as returned by ``tomllib.loads``.
+    base_dir : str
+        Folder against which relative ``[archive] path`` values resolve ("" leaves them as given).
+    source : str
+        Where the configuration came from, kept for messages.
+
+    Raises
+    ------
+    ConfigError
+        On the first invalid key, naming the key, the value and what is allowed.
+    """
+    unknown = sorted(set(raw) - set(_KNOWN))
+    if unknown:
+        raise ConfigError(f"[{unknown[0]}]", "...", "is not a known section; known sections: "
+                          + ", ".join(sorted(_KNOWN)))
+
+    asset = _section(raw, "asset", required=True)
+    name = _string("[asset] name", asset.get("name"), ASSET_NAME_PATTERN,
+                   "1-64 letters, digits, '-' or '_' (it becomes a folder name)")
+
+    arch = _section(raw, "archive", required=True)
+    if "path" not in arch:
+        raise ConfigError("[archive] path", None, "is required: a folder, a glob or a Beam filesystem URL")
+    if "sample_rate_hz" not in arch:
+        raise ConfigError("[archive] sample_rate_hz", None, "is required: the nominal sample rate in Hz")
+    archive = ArchiveConfig(
+        path=_resolve_path(_string("[archive] path", arch["path"]), base_dir),
+        layout=_choice("[archive] layout", arch.get("layout", "wide"), LAYOUTS),
+        time_column=_string("[archive] time_column", arch.get("time_column", "time")),
+        channel_column=_string("[archive] channel_column", arch.get("channel_column", "channel")),
+        value_column=_string("[archive] value_column", arch.get("value_column", "value")),
+        sample_rate_hz=_number("[archive] sample_rate_hz", arch["sample_rate_hz"], low=0, low_open=True),
+        timezone=_timezone("[archive] timezone", arch.get("timezone", "UTC")),
+    )
+
+    ch = _section(raw, "channels")
+    names = _string_list("[channels] names", ch["names"]) if "names" in ch else None
+    covariates = _string_list("[channels] covariates", ch.get("covariates", []))
+    units = ch.get("units", {})
+    if not isinstance(units, Mapping) or not all(isinstance(v, str) for v in units.values()):
+        raise ConfigError("[channels] units", units, "must be a table of channel name = \"unit\"")
+    if names is not None:
+        both = sorted(set(names) & set(covariates))
+        if both:
+            raise ConfigError("[channels] covariates", list(covariates),
+                              f"must not repeat a correlated channel ({both[0]!r} is in names too)")
+    if not names and names is not None:
+        raise ConfigError("[channels] names", [], "must list at least one channel, or be omitted for all")
+    channels = ChannelsConfig(names=names, covariates=covariates, units=dict(units))
+
+    win = _section(raw, "windows")
+    length_s = _number("[windows] length_s", win.get("length_s", 600.0), low=0, low_open=True)
+    hop_s = _number("[windows] hop_s", win.get("hop_s", length_s), low=0, low_open=True)
+    if hop_s > length_s:
+        raise ConfigError("[windows] hop_s", hop_s, f"must be at most length_s ({length_s})")
+    windows = WindowsConfig(
+        length_s=length_s, hop_s=hop_s,
+        min_coverage=_number("[windows] min_coverage", win.get("min_coverage", 0.9), low=0, high=1,
+                             low_open=True),
+    )
+    n_per_window = length_s * archive.sample_rate_hz
+    if abs(n_per_window - round(n_per_window)) > 1e-6 or n_per_window < 16:
+        raise ConfigError("[windows] length_s", length_s,
+                          f"must hold a whole number (>= 16) of samples at {archive.sample_rate_hz} Hz")
+
+    cor = _section(raw, "correlation")
+    max_lag_s = _number("[correlation] max_lag_s", cor.get("max_lag_s", min(10.0, length_s / 10)),
+                        low=0, low_open=True)
+    if max_lag_s >= length_s / 2:
+        raise ConfigError("[correlation] max_lag_s", max_lag_s,
+                          f"must be below half the window length ({length_s / 2} s)")
+    pairs_raw = cor.get("pairs", "all")
+    if isinstance(pairs_raw, str):
+        pairs = _choice("[correlation] pairs", pairs_raw, ("all", "auto"))
+    elif isinstance(pairs_raw, list) and pairs_raw and all(
+            isinstance(p, list) and len(p) == 2 and all(isinstance(c, str) for c in p) for p in pairs_raw):
+        pairs = tuple((p[0], p[1]) for p in pairs_raw)
+        if names is not None:
+            for p in pairs:
+                for c in p:
+                    if c not in names:
+                        raise ConfigError("[correlation] pairs", pairs_raw,
+                                          f"names channel {c!r}, which is not in [channels] names")
+    else:
+        raise ConfigError("[correlation] pairs", pairs_raw,
+                          "must be \"all\", \"auto\" or a list of [a, b] channel pairs")
+    correlation = CorrelationConfig(
+        max_lag_s=max_lag_s, pairs=pairs,
+        estimator=_choice("[correlation] estimator", cor.get("estimator", "biased"), ESTIMATORS),
+        detrend=_choice("[correlation] detrend", cor.get("detrend", "mean"), DETRENDS),
+        weighting=_choice("[correlation] weighting", cor.get("weighting", "none"), WEIGHTINGS),
+        target_rel_error=_number("[correlation] target_rel_error", cor.get("target_rel_error", 0.05),
+                                 low=0, high=1, low_open=True, high_open=True),
+    )
+
+    modes_raw = raw.get("modes", [])
+    if not isinstance(modes_raw, list):
+        raise ConfigError("[[modes]]", modes_raw, "must be an array of tables ([[modes]])")
+    modes = []
+    nyquist = archive.sample_rate_hz / 2
+    for i, m in enumerate(modes_raw):
+        where = f"[[modes]] #{i + 1}"
+        if not isinstance(m, Mapping):
+            raise ConfigError(where, m, "must be a table")
+        unknown = sorted(set(m) - _KNOWN["modes"])
+        if unknown:
+            raise ConfigError(f"{where} {unknown[0]}", m[unknown[0]],
+                              "is not a known key; known keys: " + ", ".join(sorted(_KNOWN["modes"])))
+        mname = _string(f"{where} name", m.get("name"), CHANNEL_NAME_PATTERN, "a name (no ':')")
+        mchan = _string(f"{where} channel", m.get("channel"), CHANNEL_NAME_PATTERN, "a channel name")
+        if names is not None and mchan not in names:
+            raise ConfigError(f"{where} channel", mchan, "must be one of [channels] names")
+        band = m.get("band_hz")
+        if (not isinstance(band, list) or len(band) != 2
+                or not all(isinstance(b, (int, float)) and not isinstance(b, bool) for b in band)
+                or not 0 < band[0] < band[1]):
+            raise ConfigError(f"{where} band_hz", band, "must be [low, high] in Hz with 0 < low < high")
+        if band[1] >= nyquist:
+            raise ConfigError(f"{where} band_hz", band, f"must lie below the Nyquist frequency ({nyquist} Hz)")
+        modes.append(ModeConfig(mname, mchan, (float(band[0]), float(band[1]))))
+    if len({m.name for m in modes}) != len(modes):
+        raise ConfigError("[[modes]] name", [m.name for m in modes], "must be unique")
+
+    base = _section(raw, "baseline")
+    b_start = _date("[baseline] start", base["start"]) if "start" in base else None
+    b_end = _date("[baseline] end", base["end"]) if "end" in base else None
+    if (b_start is None) != (b_end is None):
+        raise ConfigError("[baseline] start" if b_start is None else "[baseline] end", None,
+                          "start and end must be given together")
+    if b_start is not None and b_end < b_start:
+        raise ConfigError("[baseline] end", b_end.isoformat(), f"must not be before start ({b_start})")
+    b_windows = (_number("[baseline] windows", base["windows"], low=2, integer=True)
+                 if "windows" in base else None)
+    if b_windows is not None and b_start is not None:
+        raise ConfigError("[baseline] windows", b_windows, "give either start/end or windows, not both")
+    if b_windows is None and b_start is None:
+        b_windows = 100
+    baseline = BaselineConfig(start=b_start, end=b_end, windows=b_windows,
+                              min_windows=_number("[baseline] min_windows", base.get("min_windows", 30),
+                                                  low=2, integer=True))
+
+    scr = _section(raw, "screening")
+    enabled = scr.get("enabled", True)
+    if not isinstance(enabled, bool):
+        raise ConfigError("[screening] enabled", enabled, "must be true or false")
+    screening = ScreeningConfig(
+        enabled=enabled,
+        segments=_number("[screening] segments", scr.get("segments", 20), low=10, high=200, integer=True),
+        alpha=_number("[screening] alpha", scr.get("alpha", 0.05), low=0, high=0.5, low_open=True),
+        action=_choice("[screening] action", scr.get("action", "flag"), SCREENING_ACTIONS),
+    )
+
+    sh = _section(raw, "shifts")
+    comp = sh.get("compensate", None)
+    all_covariates = set(covariates)
+    if comp is None or comp == "all":
+        compensate = None
+    elif comp == "none":
+        compensate = ()
+    elif isinstance(comp, list) and all(isinstance(c, str) for c in comp):
+        missing = [c for c in comp if c not in all_covariates]
+        if missing:
+            raise ConfigError("[shifts] compensate", comp,
+                              f"names {missing[0]!r}, which is not in [channels] covariates")
+        compensate = tuple(comp)
+    else:
+        raise ConfigError("[shifts] compensate", comp,
+                          "must be \"all\", \"none\" or a list of covariate names")
+    shifts = ShiftsConfig(
+        detector=_choice("[shifts] detector", sh.get("detector", "both"), DETECTORS),
+        cusum_k=_number("[shifts] cusum_k", sh.get("cusum_k", 0.5), low=0),
+        cusum_h=_number("[shifts] cusum_h", sh.get("cusum_h", 5.0), low=0, low_open=True),
+        ewma_lambda=_number("[shifts] ewma_lambda", sh.get("ewma_lambda", 0.2), low=0, high=1, low_open=True),
+        ewma_L=_number("[shifts] ewma_L", sh.get("ewma_L", 3.0), low=0, low_open=True),
+        compensate=compensate,
+    )
+
+    rd = _section(raw, "reading")
+    reading = ReadingConfig(
+        task_bytes=_number("[reading] task_bytes", rd.get("task_bytes", 32 * 2**20), low=2**16, integer=True),
+        grid_tolerance=_number("[reading] grid_tolerance", rd.get("grid_tolerance", 0.25), low=0, high=0.5,
+                               low_open=True, high_open=True),
+        clip_fraction=_number("[reading] clip_fraction", rd.get("clip_fraction", 0.01), low=0, high=1,
+                              low_open=True),
+    )
+
+    return AssetConfig(name=name, archive=archive, channels=channels, windows=windows,
+                       correlation=correlation, modes=tuple(modes), baseline=baseline,
+                       screening=screening, shifts=shifts, reading=reading, source=source)
+
+
+def load_config(path: str) -> AssetConfig:
+    """Read and validate one asset's TOML file (relative paths resolve against its folder)."""
+    try:
+        with open(path, "rb") as handle:
+            raw = tomllib.load(handle)
+    except FileNotFoundError:
+        raise ConfigError("--config", path, "file not found") from None
+    except tomllib.TOMLDecodeError as err:
+        raise ConfigError("--config", path, f"is not valid TOML ({err})") from None
+    return parse_config(raw, base_dir=os.path.dirname(os.path.abspath(path)), source=path)

@@ -1,0 +1,106 @@
+"""Rejected, repaired and flagged input: one record per finding, with a stable reason code.
+
+Nothing is lost silently. Every finding of every stage becomes a :class:`Reject` that lands in the
+rejects table (stage, source, subject, reason, detail, action, window_start). ``action`` says what
+the job did about it:
+
+- ``"rejected"``: the data was not used. With ``subject == WHOLE_WINDOW`` a planned window produced
+  no correlation rows; window accounting counts exactly these rows
+  (windows planned = windows computed + windows rejected).
+- ``"repaired"``: the data was used after a documented repair (duplicates dropped, rows sorted,
+  timestamps snapped to the grid, non-finite samples masked as gaps).
+- ``"flagged"``: the data was used and its rows carry a quality code (for example clipping).
+
+Reason codes are stable snake_case strings; :data:`REASONS` documents each one and the README's
+table is generated from it.
+"""
+from __future__ import annotations
+
+import dataclasses
+from typing import Optional
+
+WHOLE_WINDOW = "*"
+WHOLE_FILE = "*"
+
+ACTIONS = ("rejected", "repaired", "flagged")
+
+#: reason code -> (default action, one-line description)
+REASONS = {
+    # files (stage "plan" or "read")
+    "unreadable_file": ("rejected", "the file could not be opened or its Parquet footer could not be decoded"),
+    "empty_file": ("rejected", "the file has zero bytes"),
+    "no_rows": ("rejected", "valid Parquet with no rows"),
+    "missing_time_column": ("rejected", "the configured time column is absent (renamed or missing)"),
+    "time_column_not_timestamp": ("rejected", "the time column is not a timestamp type (for example strings)"),
+    "missing_channel_column": ("rejected", "a configured channel is absent from the file"),
+    "non_numeric_channel": ("rejected", "a channel column holds non-numeric values"),
+    "statistics_missing": ("repaired", "row-group time statistics are absent; the time column was read to plan"),
+    "sample_rate_mismatch": ("rejected", "the sample interval in the data differs from the nominal sample rate"),
+    "overlapping_files": ("repaired", "two files hold samples of the same span; identical samples were kept once"),
+    "decode_failed": ("rejected", "a row group could not be decoded while reading the window"),
+    # windows (stage "read")
+    "insufficient_coverage": ("rejected", "fewer valid samples than [windows] min_coverage requires"),
+    "duplicate_timestamps": ("repaired", "equal timestamps with equal values; kept once"),
+    "conflicting_duplicates": ("rejected", "equal timestamps with different values"),
+    "unordered_timestamps": ("repaired", "rows were out of time order; sorted"),
+    "off_grid_timestamps": ("repaired", "timestamps off the nominal grid within tolerance; snapped"),
+    "jitter_beyond_tolerance": ("rejected", "samples further from the grid than the tolerance were dropped"),
+    "nonfinite_values": ("repaired", "NaN or inf samples were treated as gaps"),
+    "flat_channel": ("rejected", "the channel does not vary in the window (dead sensor)"),
+    "clipped_channel": ("flagged", "many samples sit at the channel's extreme values (saturation)"),
+    # correlate / indicators / screening / shifts
+    "no_valid_pairs": ("rejected", "no requested channel pair has enough valid samples"),
+    "correlation_failed": ("rejected", "the estimator raised an error; detail holds it"),
+    "nonstationary_window": ("rejected", "stationarity screening failed and [screening] action = \"exclude\""),
+    "indicator_failed": ("rejected", "an indicator computation raised an error; detail holds it"),
+}
+
+
+@dataclasses.dataclass(frozen=True)
+class Reject:
+    """One finding for the rejects table.
+
+    Attributes
+    ----------
+    stage : str
+        Pipeline stage: "plan", "read", "correlate", "screen", "indicators", "shifts".
+    source : str
+        File path, or the window's ISO start time for window-level findings.
+    subject : str
+        Channel, "a:b" pair, mode name, or ``"*"`` for the whole file or window.
+    reason : str
+        A code from :data:`REASONS`.
+    detail : str
+        Human-readable specifics (counts, values, exception text).
+    asset : str
+        The asset's name (the Hive partition ``asset=``).
+    window_start_us : int or None
+        Window start (us since epoch, UTC) for window-level findings, else None.
+    date : str or None
+        ``YYYY-MM-DD`` partition for findings with no window (file-level); None derives it
+        from ``window_start_us``.
+    action : str or None
+        One of :data:`ACTIONS`; None takes the reason's default.
+    """
+
+    stage: str
+    source: str
+    subject: str
+    reason: str
+    detail: str
+    asset: str = ""
+    window_start_us: Optional[int] = None
+    date: Optional[str] = None
+    action: Optional[str] = None
+
+    def __post_init__(self):
+        if self.reason not in REASONS:
+            raise ValueError(f"unknown reason code {self.reason!r}; add it to corrtransforms.rejects.REASONS")
+        if self.action is None:
+            object.__setattr__(self, "action", REASONS[self.reason][0])
+        elif self.action not in ACTIONS:
+            raise ValueError(f"action {self.action!r} not one of {ACTIONS}")
+
+    @property
+    def rejects_whole_window(self) -> bool:
+        return self.action == "rejected" and self.subject == WHOLE_WINDOW and self.window_start_us is not None
