@@ -1,0 +1,127 @@
+"""In-memory records passed between stages (after reading): small, picklable, array-valued.
+
+- :class:`PairCorrelation`: one channel pair's correlation estimate in one window, with its
+  record-length error metadata; one row of the correlations table.
+- :class:`ModeCorrelation`: the band-limited auto-correlation of a configured mode's channel,
+  the input of the modal fit.
+- :class:`WindowCorrelation`: everything the correlate stage learned about one window; the input
+  of the indicators stage.
+- :class:`IndicatorRow`: one row of the (long) indicators table.
+
+Lag convention everywhere: ``R_ab(tau) = E[a(t) b(t + tau)]``; a peak at positive ``tau`` means
+channel b lags channel a. Lag ``i`` of an array is ``first_lag_s + i * lag_step_s``.
+"""
+from __future__ import annotations
+
+import dataclasses
+from typing import Mapping, NamedTuple, Optional, Tuple
+
+import numpy as np
+
+OK = "ok"
+
+
+def quality_text(codes) -> str:
+    """Quality codes as stored in tables: "ok" when empty, else sorted unique codes joined by ";"."""
+    unique = sorted({c for c in codes if c and c != OK})
+    return ";".join(unique) if unique else OK
+
+
+@dataclasses.dataclass
+class PairCorrelation:
+    """Correlation estimate of one pair (a == b for an auto-correlation) in one window.
+
+    ``coefficient`` spans lags 0..L for an auto pair and -L..L for a cross pair.
+    """
+
+    channel_a: str
+    channel_b: str
+    first_lag_s: float
+    lag_step_s: float
+    coefficient: np.ndarray
+    stderr: np.ndarray
+    pair_count: np.ndarray
+    scale: float
+    coverage: float
+    bandwidth_hz: float
+    record_s: float
+    rel_error: float
+    required_record_s: float
+    meets_target: bool
+    bandwidth_time: float = float("nan")
+    n_effective: float = float("nan")
+    tone_freq_hz: float = float("nan")
+    tone_required_record_s: float = float("nan")
+    quality: Tuple[str, ...] = ()
+    #: generalised cross-correlation with the configured weighting ("phat"/"scot"), same lags
+    #: as ``coefficient``; None when the weighting is "none" or the pair is an auto pair
+    weighted_coefficient: Optional[np.ndarray] = None
+
+    @property
+    def is_auto(self) -> bool:
+        return self.channel_a == self.channel_b
+
+    @property
+    def subject(self) -> str:
+        return self.channel_a if self.is_auto else f"{self.channel_a}:{self.channel_b}"
+
+    def lags_s(self) -> np.ndarray:
+        return self.first_lag_s + self.lag_step_s * np.arange(len(self.coefficient))
+
+
+@dataclasses.dataclass
+class ModeCorrelation:
+    """Band-limited auto-correlation coefficient (lags 0..L) of a mode's channel in one window."""
+
+    mode: str
+    channel: str
+    band_hz: Tuple[float, float]
+    lag_step_s: float
+    coefficient: np.ndarray
+    stderr: np.ndarray
+    record_s: float
+    quality: Tuple[str, ...] = ()
+
+    def lags_s(self) -> np.ndarray:
+        return self.lag_step_s * np.arange(len(self.coefficient))
+
+
+@dataclasses.dataclass
+class WindowCorrelation:
+    """All correlation results of one window, plus what indicators and screening need."""
+
+    asset: str
+    window_start_us: int
+    sample_rate_hz: float
+    n_samples: int
+    channels: Tuple[str, ...]
+    #: root mean square of each channel's detrended record, in the channel's unit
+    rms: Mapping[str, float]
+    #: standard error of each rms value (record-length error)
+    rms_stderr: Mapping[str, float]
+    pairs: Tuple[PairCorrelation, ...]
+    modes: Tuple[ModeCorrelation, ...] = ()
+    covariates: Mapping[str, float] = dataclasses.field(default_factory=dict)
+    #: quality codes per subject (channel, "a:b" pair or mode name) added by later stages,
+    #: e.g. screening's "nonstationary"
+    subject_quality: Mapping[str, Tuple[str, ...]] = dataclasses.field(default_factory=dict)
+    #: extra indicator rows produced by earlier stages (e.g. stationarity_p from screening)
+    extra_indicators: Tuple["IndicatorRow", ...] = ()
+
+    def auto(self, channel: str) -> Optional[PairCorrelation]:
+        for p in self.pairs:
+            if p.is_auto and p.channel_a == channel:
+                return p
+        return None
+
+
+class IndicatorRow(NamedTuple):
+    """One row of the indicators table (window_start in us since the epoch, UTC)."""
+
+    window_start_us: int
+    subject: str
+    indicator: str
+    value: float
+    stderr: float
+    unit: str
+    quality: str
