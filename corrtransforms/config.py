@@ -31,6 +31,12 @@ DETRENDS = ("mean", "none", "linear")
 WEIGHTINGS = ("none", "phat", "scot")
 SCREENING_ACTIONS = ("flag", "exclude")
 DETECTORS = ("cusum", "ewma", "both")
+#: indicator names of the indicators table (more may follow); "covariate_mean" rows carry the
+#: window means of covariate channels and are inputs of compensation, never monitored themselves
+INDICATOR_NAMES = ("rms", "corr_time_s", "decay_time_s", "mode_freq_hz", "mode_damping", "lag_s",
+                   "peak_coef", "stationarity_p")
+DEFAULT_MONITORED = ("rms", "corr_time_s", "decay_time_s", "mode_freq_hz", "mode_damping", "lag_s",
+                     "peak_coef")
 ASSET_NAME_PATTERN = re.compile(r"^[A-Za-z0-9_-]{1,64}$")
 CHANNEL_NAME_PATTERN = re.compile(r"^[^:\x00-\x1f]{1,128}$")
 
@@ -123,6 +129,8 @@ class ShiftsConfig:
     ewma_L: float = 3.0
     #: covariates regressed out of each indicator; None means all configured covariates
     compensate: Optional[Tuple[str, ...]] = None
+    #: indicators the detectors run on (the others are still written to the indicators table)
+    indicators: Tuple[str, ...] = DEFAULT_MONITORED
 
 
 @dataclasses.dataclass(frozen=True)
@@ -191,7 +199,7 @@ _KNOWN = {
     "modes": {"name", "channel", "band_hz"},
     "baseline": {"start", "end", "windows", "min_windows"},
     "screening": {"enabled", "segments", "alpha", "action"},
-    "shifts": {"detector", "cusum_k", "cusum_h", "ewma_lambda", "ewma_L", "compensate"},
+    "shifts": {"detector", "cusum_k", "cusum_h", "ewma_lambda", "ewma_L", "compensate", "indicators"},
     "reading": {"task_bytes", "grid_tolerance", "clip_fraction"},
 }
 
@@ -453,7 +461,13 @@ def parse_config(raw: Mapping[str, Any], base_dir: str = "", source: str = "") -
     else:
         raise ConfigError("[shifts] compensate", comp,
                           "must be \"all\", \"none\" or a list of covariate names")
+    monitored = sh.get("indicators", list(DEFAULT_MONITORED))
+    if (not isinstance(monitored, list) or not monitored
+            or not all(isinstance(i, str) and i in INDICATOR_NAMES for i in monitored)):
+        raise ConfigError("[shifts] indicators", monitored,
+                          "must be a non-empty list of indicator names from: " + ", ".join(INDICATOR_NAMES))
     shifts = ShiftsConfig(
+        indicators=tuple(monitored),
         detector=_choice("[shifts] detector", sh.get("detector", "both"), DETECTORS),
         cusum_k=_number("[shifts] cusum_k", sh.get("cusum_k", 0.5), low=0),
         cusum_h=_number("[shifts] cusum_h", sh.get("cusum_h", 5.0), low=0, low_open=True),
