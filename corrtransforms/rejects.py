@@ -53,6 +53,11 @@ REASONS = {
     "correlation_failed": ("rejected", "the estimator raised an error; detail holds it"),
     "nonstationary_window": ("rejected", "stationarity screening failed and [screening] action = \"exclude\""),
     "indicator_failed": ("rejected", "an indicator computation raised an error; detail holds it"),
+    "duplicate_indicator_rows": ("rejected", "several indicator rows of one subject and indicator share a window start; only the first (sorted) was used"),
+    "duplicate_covariate_rows": ("rejected", "several covariate_mean rows of one covariate share a window start; the covariate was treated as missing"),
+    "window_before_state": ("rejected", "the window is not after the resumed state's last window; run a backfill to include it"),
+    "state_mismatch": ("rejected", "the resumed shift state was computed with other [baseline]/[shifts] settings; run a backfill"),
+    "shift_detection_failed": ("rejected", "shift detection raised an error for the series; detail holds it"),
 }
 
 
