@@ -452,7 +452,7 @@ def expected_changes(days: int = DEFAULT_DAYS, every_hours: int = DEFAULT_EVERY_
     -------
     dict
         ``shifts``: one entry per injected change with ``subject``, ``indicator``, ``direction``
-        ("up" | "down"), ``date`` and ``at`` (UTC onset), ``before``/``after`` (true values at the
+        ("up" | "down") and ``sign`` (+1 | -1, as in the shifts table), ``date`` and ``at`` (UTC onset), ``before``/``after`` (true values at the
         reference temperature) and ``cause``; ``rejects``: the broken input with ``reason``,
         ``subject``, ``date``, ``source`` (file path inside the archive, or null) and
         ``windows`` (windows affected); ``monitored``: the indicators the demo's [shifts]
@@ -465,20 +465,20 @@ def expected_changes(days: int = DEFAULT_DAYS, every_hours: int = DEFAULT_EVERY_
     if STIFFNESS_LOSS_AT < end:
         m = modes[STIFFNESS_LOSS_MODE]
         shifts.append(dict(
-            subject=m.name, indicator="mode_freq_hz", direction="down",
+            subject=m.name, indicator="mode_freq_hz", direction="down", sign=-1,
             date=STIFFNESS_LOSS_AT.date().isoformat(), at=_iso(STIFFNESS_LOSS_AT),
             before=m.frequency_hz, after=round(m.frequency_hz * STIFFNESS_LOSS_FREQUENCY_FACTOR, 6),
             cause="loss of bending stiffness near midspan (modal stiffness -5.9 %, frequency -3 %)"))
     if DAMPING_INCREASE_AT < end:
         m = modes[DAMPING_INCREASE_MODE]
         shifts.append(dict(
-            subject=m.name, indicator="mode_damping", direction="up",
+            subject=m.name, indicator="mode_damping", direction="up", sign=1,
             date=DAMPING_INCREASE_AT.date().isoformat(), at=_iso(DAMPING_INCREASE_AT),
             before=m.damping, after=DAMPING_AFTER,
             cause="added friction damping in the torsion mode (damping ratio 1.0 % -> 1.8 %)"))
     if LAG_CHANGE_AT < end:
         shifts.append(dict(
-            subject="footing_n:footing_s", indicator="lag_s", direction="up",
+            subject="footing_n:footing_s", indicator="lag_s", direction="up", sign=1,
             date=LAG_CHANGE_AT.date().isoformat(), at=_iso(LAG_CHANGE_AT),
             before=FOOTING_DELAY_S, after=FOOTING_DELAY_AFTER_S,
             cause="longer ground transmission path to the south footing (delay 60 ms -> 90 ms)"))
@@ -551,17 +551,21 @@ def _clear_previous(out_dir: str) -> int:
 
 
 def write_archive(out_dir: str, days: int = DEFAULT_DAYS, every_hours: int = DEFAULT_EVERY_HOURS,
-                  progress=None) -> Dict:
+                  progress=None, dates: Optional[Sequence[_dt.date]] = None) -> Dict:
     """Write the demo archive under ``out_dir`` and return :func:`expected_changes`.
 
     Files this generator wrote earlier under ``out_dir`` are removed first, so a shorter rerun
-    leaves no stale records behind.
+    leaves no stale records behind. ``dates`` restricts writing to those days (the records are
+    the same as in a full run); the returned expectations describe the full run.
     """
     starts = record_starts(days, every_hours)
     _clear_previous(out_dir)
+    wanted = None if dates is None else set(dates)
     corrupt = _first_record_at_or_after(starts, CORRUPT_FILE_AT)
     renamed = _first_record_at_or_after(starts, RENAMED_TIME_COLUMN_AT)
     for i, start in enumerate(starts):
+        if wanted is not None and start.date() not in wanted:
+            continue
         path = os.path.join(out_dir, record_relative_path(start))
         os.makedirs(os.path.dirname(path), exist_ok=True)
         table = record_table(
