@@ -1,0 +1,301 @@
+"""The correlate stage for one window: :class:`~corrtransforms.window_block.WindowBlock` in,
+:class:`~corrtransforms.records.WindowCorrelation` out, and the correlations table.
+
+:func:`correlate_window` transforms each channel once, then forms every configured pair, every
+configured mode's band-limited auto-correlation and (for cross pairs, when configured) the
+weighted generalised cross-correlation, and attaches the record-length error metadata of
+:mod:`corrtransforms.record_error`. :func:`correlation_table` turns a batch of results into an
+Arrow table with exactly the :data:`corrtransforms.tables.CORRELATIONS` schema.
+
+Lag convention: ``R_ab(tau) = E[a(t) b(t + tau)]``; a peak at positive tau means b lags a. Auto
+pairs keep lags ``0..L``, cross pairs ``-L..L``.
+"""
+from __future__ import annotations
+
+from typing import Dict, Iterable, List, Sequence, Tuple
+
+import numpy as np
+import pyarrow as pa
+
+from . import record_error as err
+from .config import AssetConfig
+from .correlation import DEFAULT_MIN_PAIRS, channel_spectra, correlate_spectra
+from .records import ModeCorrelation, PairCorrelation, WindowCorrelation, quality_text
+from .tables import CORRELATIONS, TIMESTAMP
+from .window_block import WindowBlock
+
+#: |rho| above this in the last 10 % of lags flags "max_lag_short" (common practice)
+UNDECAYED_COEFFICIENT = 0.2
+
+
+def _usable_channels(block: WindowBlock, spectra, min_pairs: int) -> np.ndarray:
+    """Channels with enough valid samples and non-zero variance (others are skipped)."""
+    valid = block.valid & np.isfinite(block.values)
+    counts = spectra.valid_counts
+    data = np.where(valid, block.values, 0.0)
+    safe = np.maximum(counts, 1)
+    mean = data.sum(axis=0) / safe
+    var = np.where(valid, block.values - mean, 0.0)
+    var = (var * var).sum(axis=0) / safe
+    magnitude = np.abs(data).max(axis=0) if block.n_samples else np.zeros(len(block.channels))
+    return (counts >= max(min_pairs, 2)) & (var > (1e-12 * magnitude) ** 2) & (var > 0)
+
+
+def _requested_pairs(pairs, names: Sequence[str], usable: np.ndarray) -> List[Tuple[int, int]]:
+    used = [i for i in range(len(names)) if usable[i]]
+    if pairs == "auto":
+        return [(i, i) for i in used]
+    if pairs == "all":
+        return [(i, j) for k, i in enumerate(used) for j in used[k:]]
+    index = {name: i for i, name in enumerate(names)}
+    out = []
+    for a, b in pairs:
+        ia, ib = index.get(a), index.get(b)
+        if ia is None or ib is None or not usable[ia] or not usable[ib]:
+            continue  # the reader has emitted a reject for the missing or unusable channel
+        if (ia, ib) not in out:
+            out.append((ia, ib))
+    return out
+
+
+def correlate_window(block: WindowBlock, config: AssetConfig,
+                     min_pairs: int = DEFAULT_MIN_PAIRS) -> WindowCorrelation:
+    """Correlation functions, error metadata and quality codes of one window.
+
+    Parameters
+    ----------
+    block : WindowBlock
+        One window of samples with its validity mask.
+    config : AssetConfig
+        Uses ``[correlation]`` (max_lag_s, pairs, estimator, detrend, weighting,
+        target_rel_error) and ``[[modes]]``.
+    min_pairs : int
+        Lags with fewer valid sample pairs are NaN (and the pair gets "few_pairs").
+
+    Returns
+    -------
+    WindowCorrelation
+        ``pairs`` holds one :class:`PairCorrelation` per requested pair whose channels are
+        usable; it is empty when none is (the caller then emits a ``no_valid_pairs`` reject).
+        A channel with fewer than ``min_pairs`` valid samples or zero variance is skipped (the
+        reader has already emitted a reject for it).
+
+    Notes
+    -----
+    Per pair (a, b), with ``T`` the record length of valid sample pairs at zero lag, ``B`` the
+    statistical bandwidth (:func:`~corrtransforms.record_error.statistical_bandwidth` of the
+    Parzen-window PSDs of the biased auto-correlations; for a cross pair of ``G_aa G_bb``) and
+    ``eps`` the target:
+
+    - ``stderr``: Bartlett's per-lag standard error (general form) with pair counts for n;
+    - ``rel_error``: closed form, ``1/sqrt(BT)`` for an auto pair (its mean square),
+      ``[1 + rho_pk^-2]^(1/2) / sqrt(2BT)`` at the coefficient's peak for a cross pair;
+    - ``required_record_s``: the ``T`` at which ``rel_error = eps``; ``meets_target``:
+      ``rel_error <= eps``;
+    - ``n_effective``: ``T / (2 T_I)`` with the larger integral time scale of a and b;
+    - ``tone_required_record_s``: ``2T = 1/(eps w0)`` for the strongest sharp PSD peak of a or
+      b (whichever needs the longer record), NaN without one.
+
+    ``rms`` is the root mean square of each detrended record, ``rms_stderr`` its standard
+    error ``rms eps_ms / 2`` with the general (Bartlett) relative error ``eps_ms`` of the mean
+    square, which equals ``1/sqrt(BT)`` for bandwidth-limited white noise.
+
+    References
+    ----------
+    .. [1] J. S. Bendat and A. G. Piersol, *Random Data*, 4th ed., Wiley, 2010, Ch. 8.
+    .. [2] G. E. P. Box, G. M. Jenkins and G. C. Reinsel, *Time Series Analysis*, 4th ed.,
+       Wiley, 2008, Secs. 2.1.6 and 12.1.
+    """
+    cc = config.correlation
+    fs = float(block.sample_rate_hz)
+    names = tuple(block.channels)
+    spectra = channel_spectra(block.values, fs, cc.max_lag_s, valid=block.valid, detrend=cc.detrend)
+    L, n = spectra.max_lag, spectra.n_samples
+    usable = _usable_channels(block, spectra, min_pairs)
+    requested = _requested_pairs(cc.pairs, names, usable)
+    used = [i for i in range(len(names)) if usable[i]]
+    channel_codes = {names[i]: tuple(block.channel_quality.get(names[i], ())) for i in used}
+
+    autos = [(i, i) for i in used]
+    needed = autos + [p for p in requested if p[0] != p[1]]
+    est = correlate_spectra(spectra, needed, estimator=cc.estimator, min_pairs=min_pairs) if needed else None
+
+    rms: Dict[str, float] = {}
+    rms_stderr: Dict[str, float] = {}
+    pairs_out: List[PairCorrelation] = []
+    modes_out: List[ModeCorrelation] = []
+    if est is not None:
+        dt = 1.0 / fs
+        target = cc.target_rel_error
+        auto_row = {i: k for k, i in enumerate(used)}
+        rho_auto = est.coefficient[:len(used)]
+        count_auto = est.pair_count[:len(used)]
+        valid_counts = spectra.valid_counts[used].astype(float)
+        # biased auto-correlations for the PSD and the validity checks
+        R_auto = est.R[:len(used)]
+        if cc.estimator == "unbiased":
+            R_biased = R_auto * count_auto / valid_counts[:, None]
+        else:
+            R_biased = R_auto
+        freqs, psd = err.lag_window_psd(R_biased, fs)
+        bandwidth_ch = err.statistical_bandwidth(freqs, psd)
+        # per-channel figures
+        ms_rel = err.correlation_random_error(rho_auto, rho_auto, rho_auto, count_auto)[:, L]
+        integral_scale = np.array([err.integral_time_scale(r[L:], dt) for r in rho_auto])
+        tone_freq, _ = err.strongest_tone(spectra.frequencies_hz(), spectra.periodogram()[used])
+        tone_record = 2.0 * err.tone_required_half_length(2 * np.pi * tone_freq, target)
+        tail = max(1, int(np.ceil(0.1 * L)))
+        checks = {}
+        for k, i in enumerate(used):
+            codes = list(err.auto_correlation_checks(R_auto[k], spectra.mean_square[i], psd[k]))
+            if L > 0 and np.nanmax(np.abs(rho_auto[k, L + 1:][-tail:]), initial=0.0) > UNDECAYED_COEFFICIENT:
+                codes.append("max_lag_short")
+            checks[i] = codes
+            r = float(np.sqrt(spectra.mean_square[i]))
+            rms[names[i]] = r
+            rms_stderr[names[i]] = float(r * ms_rel[k] / 2.0)
+
+        if requested:
+            row_of = {p: k for k, p in enumerate(needed)}
+            rows = np.array([row_of[p] for p in requested])
+            a_rows = np.array([auto_row[a] for a, _ in requested])
+            b_rows = np.array([auto_row[b] for _, b in requested])
+            rho = est.coefficient[rows]
+            counts = est.pair_count[rows]
+            stderr = err.bartlett_stderr(rho, rho_auto[a_rows], rho_auto[b_rows], counts)
+            is_auto = np.array([a == b for a, b in requested])
+            bandwidth = np.where(is_auto, bandwidth_ch[a_rows],
+                                 err.statistical_bandwidth(freqs, psd[a_rows], psd[b_rows]))
+            record_s = counts[:, L] / fs
+            bt = bandwidth * record_s
+            abs_rho = np.where(np.isfinite(rho), np.abs(rho), -1.0)
+            peak = rho[np.arange(len(rows)), np.argmax(abs_rho, axis=1)]
+            rel_error = np.where(is_auto, err.mean_square_rel_error(bandwidth, record_s),
+                                 err.correlation_rel_error(peak, bandwidth, record_s))
+            required = np.where(is_auto, err.required_record_length(bandwidth, target),
+                                err.required_record_length(bandwidth, target, rho=peak))
+            n_eff = err.effective_samples(record_s, np.maximum(integral_scale[a_rows], integral_scale[b_rows]),
+                                          counts[:, L])
+            weighted = {}
+            cross = [p for p in requested if p[0] != p[1]]
+            if cc.weighting != "none" and cross:
+                west = correlate_spectra(spectra, cross, estimator=cc.estimator, weighting=cc.weighting,
+                                         min_pairs=min_pairs)
+                weighted = {p: west.coefficient[k] for k, p in enumerate(cross)}
+            for k, (a, b) in enumerate(requested):
+                ka, kb = a_rows[k], b_rows[k]
+                tones = [(tone_record[ka], tone_freq[ka]), (tone_record[kb], tone_freq[kb])]
+                tones = [t for t in tones if np.isfinite(t[0])]
+                t_record, t_freq = max(tones) if tones else (np.nan, np.nan)
+                codes = list(channel_codes[names[a]]) + list(channel_codes[names[b]])
+                codes += checks[a] + (checks[b] if b != a else [])
+                if not np.all(np.isfinite(rho[k])):
+                    codes.append("few_pairs")
+                if a != b and np.nanmax(np.abs(rho[k]), initial=0.0) > 1.0 + 1e-9:
+                    codes.append("coefficient_exceeds_one")
+                if np.isfinite(t_record) and record_s[k] < t_record:
+                    codes.append("tone_record_short")
+                sl = slice(L, None) if a == b else slice(None)
+                pairs_out.append(PairCorrelation(
+                    channel_a=names[a], channel_b=names[b],
+                    first_lag_s=0.0 if a == b else -L / fs, lag_step_s=dt,
+                    coefficient=rho[k, sl].copy(), stderr=stderr[k, sl].copy(),
+                    pair_count=counts[k, sl].copy(), scale=float(est.scale[rows[k]]),
+                    coverage=float(counts[k, L] / n) if n else 0.0,
+                    bandwidth_hz=float(bandwidth[k]), record_s=float(record_s[k]),
+                    rel_error=float(rel_error[k]), required_record_s=float(required[k]),
+                    meets_target=bool(rel_error[k] <= target),
+                    bandwidth_time=float(bt[k]), n_effective=float(n_eff[k]),
+                    tone_freq_hz=float(t_freq), tone_required_record_s=float(t_record),
+                    quality=tuple(sorted(set(codes))),
+                    weighted_coefficient=weighted.get((a, b)),
+                ))
+
+        for mode in config.modes:
+            if mode.channel not in names or not usable[names.index(mode.channel)]:
+                continue  # the reader has emitted a reject for this channel
+            c = names.index(mode.channel)
+            mest = correlate_spectra(spectra, [(c, c)], estimator=cc.estimator, band_hz=mode.band_hz,
+                                     min_pairs=min_pairs)
+            rho_m = mest.coefficient[0]
+            se_m = err.bartlett_stderr(rho_m, rho_m, rho_m, mest.pair_count[0])
+            codes = list(channel_codes[mode.channel])
+            if not np.all(np.isfinite(rho_m)):
+                codes.append("few_pairs")
+            if L > 0 and np.nanmax(np.abs(rho_m[L + 1:][-tail:]), initial=0.0) > UNDECAYED_COEFFICIENT:
+                codes.append("max_lag_short")
+            modes_out.append(ModeCorrelation(
+                mode=mode.name, channel=mode.channel, band_hz=tuple(mode.band_hz), lag_step_s=dt,
+                coefficient=rho_m[L:].copy(), stderr=se_m[L:].copy(),
+                record_s=float(spectra.valid_counts[c] / fs), quality=tuple(sorted(set(codes)))))
+
+    return WindowCorrelation(
+        asset=block.asset, window_start_us=int(block.window_start_us), sample_rate_hz=fs,
+        n_samples=n, channels=tuple(names[i] for i in used), rms=rms, rms_stderr=rms_stderr,
+        pairs=tuple(pairs_out), modes=tuple(modes_out), covariates=dict(block.covariates),
+        subject_quality={name: codes for name, codes in channel_codes.items() if codes},
+    )
+
+
+def _list_column(arrays: List[np.ndarray]) -> pa.Array:
+    lengths = np.fromiter((len(a) for a in arrays), dtype=np.int64, count=len(arrays))
+    offsets = np.zeros(len(arrays) + 1, dtype=np.int32)
+    np.cumsum(lengths, out=offsets[1:])
+    flat = np.concatenate(arrays).astype(np.float32) if arrays else np.zeros(0, np.float32)
+    return pa.ListArray.from_arrays(pa.array(offsets, type=pa.int32()), pa.array(flat, type=pa.float32()))
+
+
+def correlation_table(window_correlations: Iterable[WindowCorrelation]) -> pa.Table:
+    """Rows of the correlations table, one per window and pair, with exactly the
+    :data:`corrtransforms.tables.CORRELATIONS` schema.
+
+    Parameters
+    ----------
+    window_correlations : iterable of WindowCorrelation
+
+    Returns
+    -------
+    pyarrow.Table
+        ``coefficient`` and ``stderr`` as ``list<float32>``, ``window_start`` as
+        ``timestamp[us, UTC]``, ``quality`` as :func:`~corrtransforms.records.quality_text`.
+        Built column-wise from numpy arrays.
+    """
+    starts, fs, n_samples = [], [], []
+    pairs: List[PairCorrelation] = []
+    for wc in window_correlations:
+        pairs.extend(wc.pairs)
+        k = len(wc.pairs)
+        starts.append(np.full(k, wc.window_start_us, dtype=np.int64))
+        fs.append(np.full(k, wc.sample_rate_hz))
+        n_samples.append(np.full(k, wc.n_samples, dtype=np.int64))
+    if not pairs:
+        return CORRELATIONS.empty_table()
+
+    def floats(name):
+        return np.fromiter((getattr(p, name) for p in pairs), dtype=np.float64, count=len(pairs))
+
+    columns = {
+        "window_start": pa.array(np.concatenate(starts), type=pa.int64()).cast(TIMESTAMP),
+        "channel_a": pa.array([p.channel_a for p in pairs], type=pa.string()),
+        "channel_b": pa.array([p.channel_b for p in pairs], type=pa.string()),
+        "sample_rate_hz": pa.array(np.concatenate(fs)),
+        "n_samples": pa.array(np.concatenate(n_samples)),
+        "coverage": pa.array(floats("coverage")),
+        "first_lag_s": pa.array(floats("first_lag_s")),
+        "lag_step_s": pa.array(floats("lag_step_s")),
+        "coefficient": _list_column([np.asarray(p.coefficient) for p in pairs]),
+        "scale": pa.array(floats("scale")),
+        "stderr": _list_column([np.asarray(p.stderr) for p in pairs]),
+        "bandwidth_hz": pa.array(floats("bandwidth_hz")),
+        "record_s": pa.array(floats("record_s")),
+        "rel_error": pa.array(floats("rel_error")),
+        "required_record_s": pa.array(floats("required_record_s")),
+        "meets_target": pa.array(np.fromiter((bool(p.meets_target) for p in pairs), dtype=bool,
+                                             count=len(pairs))),
+        "quality": pa.array([quality_text(p.quality) for p in pairs], type=pa.string()),
+        "bandwidth_time": pa.array(floats("bandwidth_time")),
+        "n_effective": pa.array(floats("n_effective")),
+        "tone_freq_hz": pa.array(floats("tone_freq_hz")),
+        "tone_required_record_s": pa.array(floats("tone_required_record_s")),
+    }
+    return pa.Table.from_arrays([columns[f.name] for f in CORRELATIONS], schema=CORRELATIONS)
