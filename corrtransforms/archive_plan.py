@@ -1,0 +1,613 @@
+"""Plan the reading of a Parquet archive from its footers: windows and bounded read tasks.
+
+Planning reads only Parquet footers (file metadata): per file and row group the time range (from
+the time column's statistics), the row count, and the columns present. It then cuts the time axis
+into epoch-aligned windows and groups consecutive windows into read tasks whose decoded size stays
+near ``[reading] task_bytes``. A :class:`ReadTask` names files, row groups, columns and windows; it
+is small and picklable, so only task descriptions ever travel through a shuffle, never samples.
+
+This module is pure pyarrow/numpy. File access goes through an ``open_file(path)`` callable that
+returns a binary, seekable file object (the Beam layer hands in
+``apache_beam.io.filesystems.FileSystems.open``); :func:`open_local_file` serves local paths.
+
+Time conventions: every time is an integer count of microseconds since the Unix epoch, UTC.
+Naive (time-zone-less) timestamps in a file are local times of ``[archive] timezone``.
+"""
+from __future__ import annotations
+
+import dataclasses
+import datetime as _dt
+import json
+import math
+import os
+import re
+from typing import Callable, Dict, Iterable, List, Optional, Sequence, Tuple
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from corrtransforms.config import AssetConfig
+from corrtransforms.rejects import WHOLE_FILE, Reject
+
+US_PER_S = 1_000_000
+_UNIT_TO_US = {"s": 1_000_000, "ms": 1_000, "us": 1, "ns": None}
+_PARQUET_UNITS = {"milliseconds": "ms", "microseconds": "us", "nanoseconds": "ns"}
+_HIVE_DATE = re.compile(r"(?:^|/)date=(\d{4}-\d{2}-\d{2})(?:/|$)")
+_NAME_DATE = re.compile(r"(\d{4})-?(\d{2})-?(\d{2})")
+#: bytes per decoded row and column: float64 samples and int64 microsecond times
+_BYTES_PER_VALUE = 8
+#: bytes per row of the long layout: time (8) + value (8) + channel code (4)
+_BYTES_PER_LONG_ROW = 20
+
+OpenFile = Callable[[str], "object"]
+
+
+def open_local_file(path: str):
+    """Open a local file for binary reading (the default ``open_file``)."""
+    return open(path, "rb")
+
+
+# --------------------------------------------------------------------------------------------
+# Time helpers
+
+
+def local_to_utc_us(local_us: np.ndarray, timezone: str) -> np.ndarray:
+    """Convert naive local times (microseconds, wall clock of ``timezone``) to UTC microseconds.
+
+    Parameters
+    ----------
+    local_us : ndarray of int64
+        Wall-clock times of ``timezone`` as microseconds since 1970-01-01 00:00 (local).
+    timezone : str
+        IANA time-zone name.
+
+    Returns
+    -------
+    ndarray of int64
+        ``local_us - offset(local)``, with the UTC offset looked up once per quarter hour of
+        wall-clock time present (time-zone transitions fall on quarter hours).
+
+    Notes
+    -----
+    Ambiguous wall-clock times (the repeated hour when clocks go back) take the first
+    occurrence (``fold=0``), as do non-existent ones; naive archives cannot tell them apart,
+    so the repeated hour shows up as duplicated timestamps.
+    """
+    local_us = np.asarray(local_us, dtype=np.int64)
+    if timezone == "UTC" or local_us.size == 0:
+        return local_us.copy()
+    import zoneinfo
+
+    zone = zoneinfo.ZoneInfo(timezone)
+    quarter = 900 * US_PER_S
+    buckets, inverse = np.unique(local_us // quarter, return_inverse=True)
+    epoch = _dt.datetime(1970, 1, 1)
+    offsets = np.empty(len(buckets), dtype=np.int64)
+    for i, b in enumerate(buckets):
+        wall = epoch + _dt.timedelta(microseconds=int(b) * quarter)
+        offsets[i] = int(wall.replace(tzinfo=zone).utcoffset() / _dt.timedelta(microseconds=1))
+    return local_us - offsets[inverse.reshape(-1)]
+
+
+def local_date(utc_us: int, timezone: str) -> str:
+    """Calendar date (``YYYY-MM-DD``) of a UTC instant in ``timezone``."""
+    import zoneinfo
+
+    instant = _dt.datetime(1970, 1, 1, tzinfo=_dt.timezone.utc) + _dt.timedelta(microseconds=int(utc_us))
+    return instant.astimezone(zoneinfo.ZoneInfo(timezone)).date().isoformat()
+
+
+def day_start_us(day: _dt.date, timezone: str) -> int:
+    """UTC microseconds of local midnight starting ``day`` in ``timezone``."""
+    local = int((_dt.datetime(day.year, day.month, day.day) - _dt.datetime(1970, 1, 1))
+                / _dt.timedelta(microseconds=1))
+    return int(local_to_utc_us(np.array([local]), timezone)[0])
+
+
+def iso_utc(utc_us: int) -> str:
+    """ISO-8601 text of a UTC instant, for ``source`` and ``detail`` fields."""
+    instant = _dt.datetime(1970, 1, 1, tzinfo=_dt.timezone.utc) + _dt.timedelta(microseconds=int(utc_us))
+    text = instant.isoformat(timespec="microseconds" if utc_us % US_PER_S else "seconds")
+    return text.replace("+00:00", "Z")
+
+
+def _compact_utc(utc_us: int) -> str:
+    instant = _dt.datetime(1970, 1, 1) + _dt.timedelta(microseconds=int(utc_us))
+    text = instant.strftime("%Y%m%dT%H%M%S")
+    if utc_us % US_PER_S:
+        text += f".{utc_us % US_PER_S:06d}"
+    return text + "Z"
+
+
+def timestamp_to_us(values: np.ndarray, unit: str) -> np.ndarray:
+    """Integer timestamps of ``unit`` ("s", "ms", "us", "ns") to microseconds (floor)."""
+    values = np.asarray(values, dtype=np.int64)
+    if unit == "ns":
+        return np.floor_divide(values, 1000)
+    return values * _UNIT_TO_US[unit]
+
+
+# --------------------------------------------------------------------------------------------
+# Footers
+
+
+@dataclasses.dataclass(frozen=True)
+class RowGroupSpan:
+    """One row group: its index, row count, UTC time range and decoded size estimate."""
+
+    index: int
+    n_rows: int
+    start_us: int
+    end_us: int
+    decoded_bytes: int
+
+
+@dataclasses.dataclass(frozen=True)
+class FileFooter:
+    """What planning learned from one file's footer.
+
+    Attributes
+    ----------
+    path : str
+        The file's path or URL.
+    time_naive : bool
+        True when the time column has no time zone (local times of ``[archive] timezone``).
+    row_groups : tuple of RowGroupSpan
+        Row groups with at least one row, in file order.
+    numeric_columns : tuple of str
+        Numeric columns other than the time column (wide layout).
+    other_columns : tuple of str
+        Non-numeric columns other than the time column.
+    long_channels : tuple of str
+        Channel names present (long layout, only when ``[channels] names`` is not given).
+    """
+
+    path: str
+    time_naive: bool
+    row_groups: Tuple[RowGroupSpan, ...]
+    numeric_columns: Tuple[str, ...] = ()
+    other_columns: Tuple[str, ...] = ()
+    long_channels: Tuple[str, ...] = ()
+
+    @property
+    def start_us(self) -> int:
+        return min(rg.start_us for rg in self.row_groups)
+
+    @property
+    def end_us(self) -> int:
+        return max(rg.end_us for rg in self.row_groups)
+
+
+def _is_numeric(type_: pa.DataType) -> bool:
+    return (pa.types.is_integer(type_) or pa.types.is_floating(type_) or pa.types.is_decimal(type_))
+
+
+def path_date(path: str) -> Optional[str]:
+    """The ``YYYY-MM-DD`` of a Hive ``date=`` folder in ``path``, else of a date in its file name."""
+    norm = path.replace("\\", "/")
+    hive = _HIVE_DATE.search(norm)
+    if hive:
+        return hive.group(1)
+    found = _NAME_DATE.search(norm.rsplit("/", 1)[-1])
+    if found:
+        try:
+            return _dt.date(int(found.group(1)), int(found.group(2)), int(found.group(3))).isoformat()
+        except ValueError:
+            return None
+    return None
+
+
+def _file_reject(config: AssetConfig, path: str, reason: str, detail: str, subject: str = WHOLE_FILE,
+                 date: Optional[str] = None, stage: str = "plan", action: Optional[str] = None) -> Reject:
+    return Reject(stage=stage, source=path, subject=subject, reason=reason, detail=detail,
+                  asset=config.name, window_start_us=None, date=date or path_date(path), action=action)
+
+
+def _time_column_info(pf: pq.ParquetFile, time_column: str):
+    """(parquet column index, unit of the stored integers, naive?) of the time column."""
+    index = pf.schema_arrow.get_field_index(time_column)
+    leaf = None
+    for i in range(len(pf.schema)):
+        if pf.schema.column(i).path == time_column:
+            leaf = i
+            break
+    logical = json.loads(pf.schema.column(leaf).logical_type.to_json()) if leaf is not None else {}
+    unit = _PARQUET_UNITS.get(logical.get("timeUnit", ""))
+    naive = pf.schema_arrow.field(index).type.tz is None
+    return leaf, unit, naive
+
+
+def read_footer(path: str, config: AssetConfig, open_file: OpenFile = open_local_file
+                ) -> Tuple[Optional[FileFooter], List[Reject]]:
+    """Read one file's footer and summarise it for planning.
+
+    Parameters
+    ----------
+    path : str
+        File path or URL.
+    config : AssetConfig
+        The asset's configuration (layout, column names, time zone).
+    open_file : callable
+        ``open_file(path)`` returns a binary, seekable file object.
+
+    Returns
+    -------
+    footer : FileFooter or None
+        None when the file cannot be used at all.
+    findings : list of Reject
+        File-level findings (stage "plan"): ``empty_file``, ``unreadable_file``, ``no_rows``,
+        ``missing_time_column``, ``time_column_not_timestamp``, ``missing_channel_column``,
+        ``non_numeric_channel`` (long layout: value column), ``statistics_missing`` (repaired by
+        reading the time column of the row groups concerned).
+
+    Notes
+    -----
+    Row-group time ranges come from the time column's min/max statistics (raw integers in the
+    stored unit). Where statistics are absent the time column of that row group is read, which is
+    recorded as a repaired ``statistics_missing`` finding. The decoded size of a row group is
+    estimated as rows x 8 bytes per column read (float64 samples, int64 times).
+    """
+    archive = config.archive
+    findings: List[Reject] = []
+    try:
+        with open_file(path) as handle:
+            handle.seek(0, os.SEEK_END)
+            if handle.tell() == 0:
+                return None, [_file_reject(config, path, "empty_file", "0 bytes")]
+            handle.seek(0)
+            try:
+                pf = pq.ParquetFile(handle)
+                schema = pf.schema_arrow
+            except Exception as err:  # noqa: BLE001 - any decoding error means unreadable
+                return None, [_file_reject(config, path, "unreadable_file", f"{type(err).__name__}: {err}")]
+            meta = pf.metadata
+            if meta.num_rows == 0:
+                return None, [_file_reject(config, path, "no_rows", f"{meta.num_row_groups} row groups, 0 rows")]
+            names = schema.names
+            if archive.time_column not in names:
+                return None, [_file_reject(
+                    config, path, "missing_time_column",
+                    f"no column {archive.time_column!r}; columns: {', '.join(names)}",
+                    subject=archive.time_column)]
+            time_type = schema.field(archive.time_column).type
+            if not pa.types.is_timestamp(time_type):
+                return None, [_file_reject(
+                    config, path, "time_column_not_timestamp",
+                    f"column {archive.time_column!r} has type {time_type}", subject=archive.time_column)]
+            leaf, unit, naive = _time_column_info(pf, archive.time_column)
+            numeric = tuple(n for n in names if n != archive.time_column and _is_numeric(schema.field(n).type))
+            other = tuple(n for n in names if n != archive.time_column and n not in numeric)
+
+            long_channels: Tuple[str, ...] = ()
+            if archive.layout == "long":
+                for column in (archive.channel_column, archive.value_column):
+                    if column not in names:
+                        return None, [_file_reject(config, path, "missing_channel_column",
+                                                   f"long layout needs column {column!r}; columns: {', '.join(names)}",
+                                                   subject=column)]
+                if archive.value_column not in numeric:
+                    return None, [_file_reject(
+                        config, path, "non_numeric_channel",
+                        f"value column {archive.value_column!r} has type {schema.field(archive.value_column).type}",
+                        subject=archive.value_column)]
+                if config.channels.names is None:
+                    column = pf.read(columns=[archive.channel_column]).column(0)
+                    long_channels = tuple(sorted(str(v) for v in column.unique().to_pylist() if v is not None))
+                n_columns_read = None
+            else:
+                wanted = set(config.channels.names or numeric) | set(config.channels.covariates)
+                n_columns_read = 1 + len([n for n in numeric if n in wanted])
+
+            spans = []
+            missing_stats = []
+            for i in range(meta.num_row_groups):
+                rg = meta.row_group(i)
+                if rg.num_rows == 0:
+                    continue
+                column = rg.column(leaf)
+                stats = column.statistics if column.is_stats_set else None
+                if (stats is not None and stats.has_min_max and unit is not None
+                        and column.physical_type == "INT64"):
+                    lo = int(timestamp_to_us(np.array([stats.min_raw]), unit)[0])
+                    hi = int(timestamp_to_us(np.array([stats.max_raw]), unit)[0])
+                else:
+                    times = pf.read_row_group(i, columns=[archive.time_column]).column(0)
+                    times = times.cast(pa.timestamp("us", time_type.tz), safe=False)
+                    values = times.cast(pa.int64()).to_numpy(zero_copy_only=False)
+                    values = values[~np.isnan(values)] if values.dtype.kind == "f" else values
+                    if values.size == 0:
+                        continue
+                    lo, hi = int(values.min()), int(values.max())
+                    missing_stats.append(i)
+                if naive:
+                    lo, hi = (int(v) for v in local_to_utc_us(np.array([lo, hi]), archive.timezone))
+                if n_columns_read is None:
+                    size = rg.num_rows * _BYTES_PER_LONG_ROW
+                else:
+                    size = rg.num_rows * _BYTES_PER_VALUE * n_columns_read
+                spans.append(RowGroupSpan(i, rg.num_rows, lo, hi, size))
+    except Exception as err:  # noqa: BLE001 - opening or reading failed: the file is unusable
+        return None, findings + [_file_reject(config, path, "unreadable_file", f"{type(err).__name__}: {err}")]
+
+    if not spans:
+        return None, [_file_reject(config, path, "no_rows", "no row group holds a timestamp")]
+    footer = FileFooter(path=path, time_naive=naive, row_groups=tuple(spans), numeric_columns=numeric,
+                        other_columns=other, long_channels=long_channels)
+    if missing_stats:
+        findings.append(_file_reject(
+            config, path, "statistics_missing",
+            f"row groups {missing_stats}: no min/max statistics of {archive.time_column!r}; time column read",
+            date=local_date(footer.start_us, archive.timezone)))
+    return footer, findings
+
+
+# --------------------------------------------------------------------------------------------
+# Windows and read tasks
+
+
+@dataclasses.dataclass(frozen=True)
+class FilePiece:
+    """The part of one file a read task decodes."""
+
+    path: str
+    row_groups: Tuple[int, ...]
+    columns: Tuple[str, ...]
+    time_naive: bool
+    #: configured channels/covariates absent or non-numeric in this file (not read)
+    absent: Tuple[str, ...] = ()
+    start_us: int = 0
+    decoded_bytes: int = 0
+
+
+@dataclasses.dataclass(frozen=True)
+class ReadTask:
+    """A small, picklable description of one unit of reading work.
+
+    ``window_starts_us`` are the planned windows (UTC microseconds, epoch-aligned); every one
+    yields a :class:`~corrtransforms.window_block.WindowBlock` or a whole-window reject.
+    """
+
+    asset: str
+    task_id: str
+    window_starts_us: Tuple[int, ...]
+    channels: Tuple[str, ...]
+    covariates: Tuple[str, ...]
+    pieces: Tuple[FilePiece, ...]
+    #: calendar dates (asset time zone) of the windows, for output partition bookkeeping
+    dates: Tuple[str, ...] = ()
+
+    @property
+    def decoded_bytes(self) -> int:
+        return sum(p.decoded_bytes for p in self.pieces)
+
+
+@dataclasses.dataclass
+class ArchivePlan:
+    """Result of :func:`plan_reads`."""
+
+    tasks: List[ReadTask]
+    rejects: List[Reject]
+    channels: Tuple[str, ...]
+    covariates: Tuple[str, ...]
+    #: calendar dates this run owns (output partitions it replaces)
+    days: Tuple[str, ...]
+
+    @property
+    def windows_planned(self) -> int:
+        return sum(len(t.window_starts_us) for t in self.tasks)
+
+
+def window_grid(config: AssetConfig) -> Tuple[int, int, int, float]:
+    """(length_us, hop_us, n_samples, sample_period_us) of the configured windows."""
+    length_us = int(round(config.windows.length_s * US_PER_S))
+    hop_us = int(round(config.windows.hop_s * US_PER_S))
+    n_samples = int(round(config.windows.length_s * config.archive.sample_rate_hz))
+    return length_us, hop_us, n_samples, US_PER_S / config.archive.sample_rate_hz
+
+
+def resolve_channels(footers: Sequence[FileFooter], config: AssetConfig) -> Tuple[str, ...]:
+    """The correlated channels: ``[channels] names``, else every numeric column (wide) or channel
+    value (long) seen in the archive, in order of first appearance over files sorted by path,
+    excluding the time column and the covariates."""
+    if config.channels.names is not None:
+        return tuple(config.channels.names)
+    skip = {config.archive.time_column, *config.channels.covariates}
+    seen: Dict[str, None] = {}
+    for footer in sorted(footers, key=lambda f: f.path):
+        found = footer.long_channels if config.archive.layout == "long" else footer.numeric_columns
+        for name in found:
+            if name not in skip:
+                seen.setdefault(name, None)
+    return tuple(seen)
+
+
+def plan_reads(footers: Sequence[FileFooter], footer_rejects: Sequence[Reject], config: AssetConfig,
+               start: Optional[_dt.date] = None, end: Optional[_dt.date] = None) -> ArchivePlan:
+    """Cut the archive's time axis into windows and group them into bounded read tasks.
+
+    Parameters
+    ----------
+    footers : sequence of FileFooter
+        Summaries from :func:`read_footer` (any order).
+    footer_rejects : sequence of Reject
+        Findings from :func:`read_footer`; their missing dates are filled in here.
+    config : AssetConfig
+        The asset's configuration.
+    start, end : datetime.date, optional
+        Restrict to windows whose start falls on these calendar days (inclusive) in the asset's
+        time zone. None means unbounded.
+
+    Returns
+    -------
+    ArchivePlan
+        Tasks ordered by time, file-level rejects, resolved channels and the days owned.
+
+    Notes
+    -----
+    Window ``k`` covers ``[k * hop, k * hop + length)`` (epoch-aligned, so a window is the same
+    whichever files a run reads); it holds the samples at ``t`` with
+    ``k * hop - T/2 <= t < k * hop + length - T/2`` (T the sample period), and is planned when a
+    row group's time range holds such a ``t``. Tasks take consecutive windows while the decoded size of the
+    union of their row groups stays within ``[reading] task_bytes``; a window that needs no new
+    row group always joins the current task, so a row group larger than a window is decoded once.
+    A window is in exactly one task, with every row group of every file it overlaps.
+    """
+    archive = config.archive
+    tz = archive.timezone
+    length_us, hop_us, _, period_us = window_grid(config)
+    half_period = period_us / 2
+    channels = resolve_channels(footers, config)
+    covariates = tuple(config.channels.covariates)
+    lo_us = day_start_us(start, tz) if start else None
+    hi_us = day_start_us(end + _dt.timedelta(days=1), tz) if end else None
+
+    rejects: List[Reject] = []
+    usable: List[Tuple[FileFooter, Tuple[str, ...], Tuple[str, ...]]] = []
+    for footer in sorted(footers, key=lambda f: f.path):
+        file_date = local_date(footer.start_us, tz)
+        in_range = ((hi_us is None or footer.start_us - length_us < hi_us)
+                    and (lo_us is None or footer.end_us + length_us >= lo_us))
+        absent = []
+        if archive.layout == "wide":
+            for name in channels + covariates:
+                if name in footer.numeric_columns:
+                    continue
+                absent.append(name)
+                if not in_range:
+                    continue
+                if name in footer.other_columns:
+                    rejects.append(_file_reject(config, footer.path, "non_numeric_channel",
+                                                f"column {name!r} is not numeric", subject=name, date=file_date))
+                else:
+                    rejects.append(_file_reject(config, footer.path, "missing_channel_column",
+                                                f"no column {name!r}", subject=name, date=file_date))
+            columns = (archive.time_column,) + tuple(n for n in channels + covariates if n not in absent)
+        else:
+            columns = (archive.time_column, archive.channel_column, archive.value_column)
+        if in_range:
+            usable.append((footer, columns, tuple(absent)))
+
+    # window index -> row groups it needs
+    needs: Dict[int, List[Tuple[int, int]]] = {}
+    for f_index, (footer, _, _) in enumerate(usable):
+        for rg in footer.row_groups:
+            # window k holds samples t with k*hop - T/2 <= t < k*hop + length - T/2
+            first = math.floor((rg.start_us - length_us + half_period) / hop_us) + 1
+            last = math.floor((rg.end_us + half_period) / hop_us)
+            for k in range(first, last + 1):
+                s = k * hop_us
+                if (lo_us is not None and s < lo_us) or (hi_us is not None and s >= hi_us):
+                    continue
+                needs.setdefault(k, []).append((f_index, rg.index))
+
+    sizes = {(f_index, rg.index): rg.decoded_bytes
+             for f_index, (footer, _, _) in enumerate(usable) for rg in footer.row_groups}
+    groups: List[Tuple[List[int], Dict[Tuple[int, int], None]]] = []
+    budget = config.reading.task_bytes
+    for k in sorted(needs):
+        wanted = needs[k]
+        if groups:
+            current_windows, current_groups = groups[-1]
+            new = [g for g in wanted if g not in current_groups]
+            total = sum(sizes[g] for g in current_groups) + sum(sizes[g] for g in new)
+            if not new or total <= budget:
+                current_windows.append(k)
+                for g in new:
+                    current_groups[g] = None
+                continue
+        groups.append(([k], dict.fromkeys(wanted)))
+
+    tasks = []
+    for window_ks, rg_keys in groups:
+        by_file: Dict[int, List[int]] = {}
+        for f_index, rg_index in rg_keys:
+            by_file.setdefault(f_index, []).append(rg_index)
+        pieces = []
+        for f_index in sorted(by_file, key=lambda i: (usable[i][0].start_us, usable[i][0].path)):
+            footer, columns, absent = usable[f_index]
+            rgs = tuple(sorted(by_file[f_index]))
+            spans = [rg for rg in footer.row_groups if rg.index in rgs]
+            pieces.append(FilePiece(path=footer.path, row_groups=rgs, columns=columns,
+                                    time_naive=footer.time_naive, absent=absent,
+                                    start_us=min(s.start_us for s in spans),
+                                    decoded_bytes=sum(s.decoded_bytes for s in spans)))
+        starts = tuple(k * hop_us for k in window_ks)
+        tasks.append(ReadTask(asset=config.name, task_id=_compact_utc(starts[0]), window_starts_us=starts,
+                              channels=channels, covariates=covariates, pieces=tuple(pieces),
+                              dates=tuple(sorted({local_date(s, tz) for s in starts}))))
+
+    if start is not None and end is not None:
+        days = tuple((start + _dt.timedelta(days=i)).isoformat() for i in range((end - start).days + 1))
+    else:
+        days = tuple(sorted({d for t in tasks for d in t.dates}))
+    first_day = days[0] if days else None
+
+    out_of_range = {footer.path for footer in footers} - {footer.path for footer, _, _ in usable}
+    final: List[Reject] = []
+    for finding in list(footer_rejects) + rejects:
+        if finding.source in out_of_range:
+            continue  # a file this run does not read: its findings belong to another run
+        date = finding.date
+        if date is not None and not _near_range(date, start, end):
+            continue
+        if date is None:
+            date = start.isoformat() if start else (first_day or "1970-01-01")
+        if start is not None and date < start.isoformat():
+            date = start.isoformat()
+        if end is not None and date > end.isoformat():
+            date = end.isoformat()
+        final.append(dataclasses.replace(finding, date=date))
+    return ArchivePlan(tasks=tasks, rejects=final, channels=channels, covariates=covariates, days=days)
+
+
+def _near_range(date: str, start: Optional[_dt.date], end: Optional[_dt.date]) -> bool:
+    day = _dt.date.fromisoformat(date)
+    if start is not None and day < start - _dt.timedelta(days=1):
+        return False
+    if end is not None and day > end + _dt.timedelta(days=1):
+        return False
+    return True
+
+
+def expand_archive_path(path: str) -> str:
+    """The file pattern planning lists: a folder becomes every file below it (``folder/**``)."""
+    if any(c in path for c in "*?["):
+        return path
+    return path.rstrip("/") + "/**"
+
+
+def is_hidden(path: str, root: str = "") -> bool:
+    """True for files in hidden or underscore folders/names below ``root`` (skipped when listing)."""
+    relative = path[len(root):] if root and path.startswith(root) else path.rsplit("/", 1)[-1]
+    return any(part.startswith((".", "_")) for part in relative.replace("\\", "/").split("/") if part)
+
+
+def in_day_range(path: str, start: Optional[_dt.date], end: Optional[_dt.date]) -> bool:
+    """False when a Hive ``date=`` folder in ``path`` lies more than a day outside [start, end]."""
+    hive = _HIVE_DATE.search(path.replace("\\", "/"))
+    return True if not hive else _near_range(hive.group(1), start, end)
+
+
+def plan_archive(paths: Iterable[str], config: AssetConfig, open_file: OpenFile = open_local_file,
+                 start: Optional[_dt.date] = None, end: Optional[_dt.date] = None) -> ArchivePlan:
+    """Read every footer and plan (the whole planning stage in one call, without Beam)."""
+    footers, findings = [], []
+    for path in paths:
+        if not in_day_range(path, start, end):
+            continue
+        footer, found = read_footer(path, config, open_file)
+        findings.extend(found)
+        if footer is not None:
+            footers.append(footer)
+    return plan_reads(footers, findings, config, start, end)
+
+
+def list_local_archive(path: str) -> List[str]:
+    """Files of a local archive folder or glob, sorted, hidden ones skipped (for notebooks/tests)."""
+    import glob
+
+    pattern = expand_archive_path(path)
+    root = path.rstrip("/") + "/" if pattern != path else ""
+    found = [p for p in glob.glob(pattern, recursive=True) if os.path.isfile(p)]
+    return sorted(p for p in found if not is_hidden(p, root))

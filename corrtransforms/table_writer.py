@@ -1,0 +1,359 @@
+"""Write output tables as Hive-partitioned Parquet with write-then-commit semantics.
+
+Layout: ``DIR/<table>/asset=NAME/date=YYYY-MM-DD/part-<first window start>-<digest>.parquet``.
+The date of a row is the calendar date of its ``window_start`` in the asset's time zone (file-level
+rejects carry their own date). Files are Parquet with zstd compression, spec-compliant nested list
+names (``element``), ``timestamp[us, UTC]`` times, units in field metadata (from
+:mod:`corrtransforms.tables`) and provenance in the file's key-value metadata.
+
+Two steps, so a failed run leaves no half file and a rerun replaces exactly its days:
+
+1. :func:`write_part` writes rows into ``DIR/_temporary/<run id>/...`` (invisible to readers:
+   pyarrow.dataset skips names starting with ``_``; the folder is outside every table's folder).
+   The final file name is a digest of the rows' key columns: deterministic for given rows.
+2. :func:`commit_partition` moves one partition's part files into place, checks each one arrived,
+   and deletes every other file of that partition (stale shards of earlier runs).
+
+File access goes through a small store interface (:class:`LocalFiles` here; the Beam layer
+supplies one over ``apache_beam.io.filesystems.FileSystems``), so this module stays pure pyarrow.
+"""
+from __future__ import annotations
+
+import hashlib
+import io
+import json
+import os
+import posixpath
+import shutil
+from typing import Any, Dict, Iterable, List, Mapping, NamedTuple, Optional, Sequence, Tuple
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+import corrtransforms
+from corrtransforms import tables
+from corrtransforms.archive_plan import local_date
+from corrtransforms.config import AssetConfig
+from corrtransforms.rejects import Reject
+
+TEMPORARY = "_temporary"
+SCHEMAS = {"correlations": tables.CORRELATIONS, "indicators": tables.INDICATORS, "rejects": tables.REJECTS}
+#: rows of one Parquet row group in output files (common practice: tens of thousands of rows)
+ROW_GROUP_ROWS = 50_000
+META_PREFIX = "corrtransforms."
+
+
+class LocalFiles:
+    """The store interface on the local file system (also the reference for other stores).
+
+    Methods: ``join``, ``create`` (binary writable file, parents created), ``rename`` (replacing
+    the destination), ``exists``, ``mkdirs`` (no error if present), ``list_files`` (files
+    directly in a folder; empty if it does not exist), ``delete`` (files), ``delete_tree``.
+    """
+
+    def join(self, *parts: str) -> str:
+        return os.path.join(*parts)
+
+    def create(self, path: str):
+        os.makedirs(os.path.dirname(path), exist_ok=True)
+        return open(path, "wb")
+
+    def rename(self, source: str, destination: str) -> None:
+        os.replace(source, destination)
+
+    def exists(self, path: str) -> bool:
+        return os.path.exists(path)
+
+    def mkdirs(self, folder: str) -> None:
+        os.makedirs(folder, exist_ok=True)
+
+    def list_files(self, folder: str) -> List[str]:
+        if not os.path.isdir(folder):
+            return []
+        return sorted(os.path.join(folder, n) for n in os.listdir(folder)
+                      if os.path.isfile(os.path.join(folder, n)))
+
+    def delete(self, paths: Sequence[str]) -> None:
+        for path in paths:
+            os.remove(path)
+
+    def delete_tree(self, folder: str) -> None:
+        shutil.rmtree(folder, ignore_errors=True)
+
+    def remove_empty_folder(self, folder: str) -> None:
+        try:
+            os.rmdir(folder)
+        except OSError:
+            pass
+
+
+class PartFile(NamedTuple):
+    """A part file written to the temporary area, waiting for its partition's commit."""
+
+    table: str
+    asset: str
+    date: str
+    temp_path: str
+    name: str
+    rows: int
+
+
+class CommitResult(NamedTuple):
+    """What committing one partition did."""
+
+    table: str
+    asset: str
+    date: str
+    files: Tuple[str, ...]
+    rows: int
+    removed: Tuple[str, ...]
+
+
+# --------------------------------------------------------------------------------------------
+# Rows
+
+
+def reject_date(reject: Reject, timezone: str) -> str:
+    """Partition date of a finding: its own ``date``, else its window's local date."""
+    if reject.date:
+        return reject.date
+    if reject.window_start_us is not None:
+        return local_date(reject.window_start_us, timezone)
+    raise ValueError(f"reject without date or window: {reject}")
+
+
+def rejects_table(rejects: Sequence[Reject]) -> pa.Table:
+    """Rejects as a table of schema :data:`corrtransforms.tables.REJECTS`."""
+    columns = {name: [getattr(r, name) for r in rejects] for name in ("stage", "source", "subject", "reason",
+                                                                      "detail", "action")}
+    columns["window_start"] = [r.window_start_us for r in rejects]
+    arrays = []
+    for field in tables.REJECTS:
+        values = columns[field.name]
+        if field.name == "window_start":
+            arrays.append(pa.array(values, pa.int64()).cast(field.type))
+        else:
+            arrays.append(pa.array(values, field.type))
+    return pa.Table.from_arrays(arrays, schema=tables.REJECTS)
+
+
+def split_by_date(table: pa.Table, timezone: str) -> Dict[str, pa.Table]:
+    """Rows grouped by the local calendar date of their ``window_start``."""
+    if table.num_rows == 0:
+        return {}
+    starts = table.column("window_start").cast(pa.int64()).to_numpy(zero_copy_only=False)
+    unique, inverse = np.unique(starts, return_inverse=True)
+    dates = np.array([local_date(int(u), timezone) for u in unique])[inverse.reshape(-1)]
+    out = {}
+    for date in sorted(set(dates.tolist())):
+        out[date] = table.filter(pa.array(dates == date))
+    return out
+
+
+def to_partitions(table_name: str, element: Any, config: AssetConfig) -> List[Tuple[str, pa.Table]]:
+    """Convert one pipeline element into (date, rows) pieces of the named table.
+
+    Accepted elements: a ``pyarrow.Table`` with the table's columns; for "rejects" a
+    :class:`~corrtransforms.rejects.Reject` or a list of them; for "correlations" a
+    :class:`~corrtransforms.records.WindowCorrelation` (converted with
+    :func:`corrtransforms.window_correlation.correlation_table`).
+    """
+    tz = config.archive.timezone
+    if isinstance(element, Reject):
+        element = [element]
+    if isinstance(element, list) and element and all(isinstance(e, Reject) for e in element):
+        by_date: Dict[str, List[Reject]] = {}
+        for r in element:
+            by_date.setdefault(reject_date(r, tz), []).append(r)
+        return [(d, rejects_table(rs)) for d, rs in sorted(by_date.items())]
+    if not isinstance(element, pa.Table):
+        from corrtransforms.records import WindowCorrelation
+
+        if isinstance(element, WindowCorrelation):
+            from corrtransforms.window_correlation import correlation_table
+
+            element = correlation_table([element])
+        else:
+            raise TypeError(f"cannot write {type(element).__name__} to table {table_name!r}")
+    schema = SCHEMAS.get(table_name)
+    if schema is not None:
+        element = conform(element, schema)
+    return sorted(split_by_date(element, tz).items())
+
+
+def conform(table: pa.Table, schema: pa.Schema) -> pa.Table:
+    """Select and cast ``table``'s columns to ``schema`` (field metadata from the schema)."""
+    missing = [f.name for f in schema if f.name not in table.column_names]
+    if missing:
+        raise ValueError(f"table lacks columns {missing}")
+    return pa.Table.from_arrays([table.column(f.name).cast(f.type) for f in schema], schema=schema)
+
+
+# --------------------------------------------------------------------------------------------
+# Files
+
+
+def provenance_metadata(config: AssetConfig, run_id: str) -> Dict[str, str]:
+    """File key-value metadata: package version, configuration digest and JSON, run id."""
+    return {
+        META_PREFIX + "version": corrtransforms.__version__,
+        META_PREFIX + "config_digest": config.digest(),
+        META_PREFIX + "run_id": run_id,
+        META_PREFIX + "asset": config.name,
+        META_PREFIX + "config": json.dumps(config.as_dict(), sort_keys=True),
+    }
+
+
+def partition_folder(store, output_dir: str, table_name: str, asset: str, date: str) -> str:
+    return store.join(output_dir, table_name, f"asset={asset}", f"date={date}")
+
+
+def _sort_columns(table: pa.Table) -> List[str]:
+    return [f.name for f in table.schema
+            if not (pa.types.is_list(f.type) or pa.types.is_large_list(f.type) or pa.types.is_struct(f.type))]
+
+
+def part_file_name(table: pa.Table) -> str:
+    """``part-<first window start>-<digest>.parquet``: a function of the rows alone.
+
+    The digest is SHA-256 of the Arrow IPC stream of the sorted rows' scalar columns.
+    """
+    keys = table.select(_sort_columns(table)).combine_chunks()
+    sink = io.BytesIO()
+    with pa.ipc.new_stream(sink, keys.schema.remove_metadata()) as writer:
+        writer.write_table(keys.replace_schema_metadata(None))
+    digest = hashlib.sha256(sink.getvalue()).hexdigest()[:16]
+    first = "none"
+    if "window_start" in table.column_names:
+        starts = table.column("window_start").cast(pa.int64()).drop_null()
+        if len(starts):
+            from corrtransforms.archive_plan import _compact_utc
+
+            first = _compact_utc(int(np.min(starts.to_numpy())))
+    return f"part-{first}-{digest}.parquet"
+
+
+def write_part(store, output_dir: str, table_name: str, asset: str, date: str, table: pa.Table,
+               run_id: str, metadata: Mapping[str, str], unique: str) -> PartFile:
+    """Write ``table`` (rows of one partition) to the run's temporary area.
+
+    Parameters
+    ----------
+    store : LocalFiles or compatible
+        File access.
+    output_dir : str
+        The output root ``DIR``.
+    table_name, asset, date : str
+        The partition.
+    table : pyarrow.Table
+        Rows; sorted here by their scalar columns so the file is a function of the rows.
+    run_id : str
+        The run's id (temporary folder name and provenance).
+    metadata : mapping
+        File key-value metadata (see :func:`provenance_metadata`).
+    unique : str
+        A token unique to this write attempt (retried attempts must not share temporary files).
+
+    Returns
+    -------
+    PartFile
+    """
+    table = table.sort_by([(c, "ascending") for c in _sort_columns(table)])
+    name = part_file_name(table)
+    temp = store.join(output_dir, TEMPORARY, run_id, table_name, f"asset={asset}", f"date={date}",
+                      f"{name}.{unique}")
+    merged = dict((table.schema.metadata or {}))
+    merged.update({k.encode(): v.encode() for k, v in metadata.items()})
+    table = table.replace_schema_metadata(merged)
+    with store.create(temp) as handle:
+        pq.write_table(table, handle, compression="zstd", use_compliant_nested_type=True,
+                       coerce_timestamps="us", allow_truncated_timestamps=False,
+                       row_group_size=ROW_GROUP_ROWS, store_schema=True)
+    return PartFile(table_name, asset, date, temp, name, table.num_rows)
+
+
+def commit_partition(store, output_dir: str, table_name: str, asset: str, date: str,
+                     parts: Iterable[PartFile]) -> CommitResult:
+    """Move a partition's part files into place and delete the partition's other files.
+
+    Notes
+    -----
+    Each file appears atomically (a rename on local disks); new files are moved in before stale
+    ones are deleted, so a reader during the commit may briefly see both, never neither. Every
+    moved file is checked to exist afterwards: a rename that silently did nothing raises.
+    """
+    parts = sorted(parts, key=lambda p: (p.name, p.temp_path))
+    folder = partition_folder(store, output_dir, table_name, asset, date)
+    existing = store.list_files(folder)
+    written: Dict[str, int] = {}
+    if parts:
+        store.mkdirs(folder)
+    for part in parts:
+        if part.table != table_name or part.asset != asset or part.date != date:
+            raise ValueError(f"part {part} does not belong to {table_name}/{asset}/{date}")
+        destination = store.join(folder, part.name)
+        if part.name in written:
+            store.delete([part.temp_path])  # the same rows written twice: keep one copy
+            continue
+        store.rename(part.temp_path, destination)
+        if not store.exists(destination):
+            raise IOError(f"commit of {destination} failed: the file is not there after the rename")
+        written[part.name] = part.rows
+    stale = [p for p in existing if posixpath.basename(p.replace("\\", "/")) not in written]
+    if stale:
+        store.delete(stale)
+    if not written and hasattr(store, "remove_empty_folder"):
+        store.remove_empty_folder(folder)
+    return CommitResult(table_name, asset, date, tuple(sorted(written)), sum(written.values()),
+                        tuple(sorted(stale)))
+
+
+def remove_temporary(store, output_dir: str, run_id: str) -> None:
+    """Delete the run's temporary area (orphans of retried attempts included)."""
+    store.delete_tree(store.join(output_dir, TEMPORARY, run_id))
+    if hasattr(store, "remove_empty_folder"):
+        store.remove_empty_folder(store.join(output_dir, TEMPORARY))
+
+
+def write_tables(output_dir: str, config: AssetConfig, run_id: str, rows: Mapping[str, Iterable[Any]],
+                 days: Optional[Iterable[str]] = None, store=None) -> List[CommitResult]:
+    """Write and commit whole tables in one process (notebooks, tests, small jobs).
+
+    Parameters
+    ----------
+    output_dir : str
+        Output root.
+    config : AssetConfig
+        Asset (name, time zone, provenance).
+    run_id : str
+        Id of this run.
+    rows : mapping of table name to iterable of elements
+        Elements as accepted by :func:`to_partitions`.
+    days : iterable of str, optional
+        Dates this run owns; their partitions are replaced even when they receive no rows.
+        Partitions that receive rows are always owned.
+    store : optional
+        File access (default :class:`LocalFiles`).
+    """
+    store = store or LocalFiles()
+    metadata = provenance_metadata(config, run_id)
+    parts: Dict[Tuple[str, str], List[PartFile]] = {}
+    owned = set(days or ())
+    for table_name, elements in rows.items():
+        pieces: Dict[str, List[pa.Table]] = {}
+        for element in elements:
+            for date, table in to_partitions(table_name, element, config):
+                pieces.setdefault(date, []).append(table)
+        for date, tabs in pieces.items():
+            owned.add(date)
+            part = write_part(store, output_dir, table_name, config.name, date, pa.concat_tables(tabs),
+                              run_id, metadata, unique="0")
+            parts.setdefault((table_name, date), []).append(part)
+    results = []
+    for table_name in rows:
+        for date in sorted(owned):
+            results.append(commit_partition(store, output_dir, table_name, config.name, date,
+                                            parts.get((table_name, date), [])))
+    remove_temporary(store, output_dir, run_id)
+    return results

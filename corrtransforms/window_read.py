@@ -1,0 +1,413 @@
+"""Execute one read task: decode its row groups once and assemble one block per planned window.
+
+:func:`read_windows` is the whole read stage for one :class:`~corrtransforms.archive_plan.ReadTask`.
+It reads only the task's row groups and columns, converts Arrow to numpy once per task, sorts rows
+when needed, then for each planned window snaps the samples onto the nominal grid and checks them.
+Every planned window yields exactly one :class:`~corrtransforms.window_block.WindowBlock` or one
+whole-window :class:`~corrtransforms.rejects.Reject` (subject ``"*"``, action ``"rejected"``),
+so windows planned = blocks + whole-window rejects, exactly. Repairs and flags become further
+Reject records (actions ``"repaired"`` / ``"flagged"``) or per-channel rejects (subject = channel).
+
+Pure pyarrow/numpy: files are opened through an ``open_file(path)`` callable.
+"""
+from __future__ import annotations
+
+import collections
+from typing import Dict, Iterator, List, Optional, Sequence, Tuple, Union
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
+
+from corrtransforms.archive_plan import (OpenFile, ReadTask, iso_utc, local_date, local_to_utc_us,
+                                         open_local_file, window_grid)
+from corrtransforms.config import AssetConfig
+from corrtransforms.rejects import WHOLE_FILE, WHOLE_WINDOW, Reject
+from corrtransforms.window_block import WindowBlock
+
+#: relative difference between the median sample interval and the nominal one above which a
+#: window is rejected as "sample_rate_mismatch" (common practice: 1 %)
+RATE_TOLERANCE = 0.01
+#: a timestamp further than this fraction of a period from its grid point counts as off-grid
+#: (reported as repaired); closer ones are rounding noise of the stored time unit (common practice)
+OFF_GRID_NOISE = 0.01
+#: an extreme value must occur at least this often before it counts towards clipping
+MIN_CLIP_REPEATS = 2
+
+
+class _TaskData:
+    """The task's decoded rows, time-sorted: times (UTC us), file index, values, absent mask."""
+
+    def __init__(self, times, file_index, values, absent, channel_codes, unordered_times, files):
+        self.times = times
+        self.file_index = file_index
+        self.values = values
+        self.absent = absent
+        self.channel_codes = channel_codes
+        self.unordered_times = unordered_times
+        self.files = files
+
+
+def _time_to_us(column: pa.ChunkedArray) -> Tuple[pa.Array, bool]:
+    type_ = column.type
+    naive = type_.tz is None
+    cast = column.cast(pa.timestamp("us", None if naive else "UTC"), safe=False)
+    return cast.cast(pa.int64()), naive
+
+
+def _load(task: ReadTask, config: AssetConfig, open_file: OpenFile, findings: List[Reject]) -> _TaskData:
+    """Decode the task's row groups into one set of numpy arrays (one conversion per column)."""
+    archive = config.archive
+    wide = archive.layout == "wide"
+    names = task.channels + task.covariates
+    tables, naive_flags, absent_rows, files = [], [], [], []
+    first_date = local_date(task.window_starts_us[0], archive.timezone)
+    for piece in task.pieces:
+        try:
+            with open_file(piece.path) as handle:
+                table = pq.ParquetFile(handle).read_row_groups(list(piece.row_groups), columns=list(piece.columns))
+        except Exception as err:  # noqa: BLE001 - reported, the task's other files still count
+            findings.append(Reject(stage="read", source=piece.path, subject=WHOLE_FILE, reason="decode_failed",
+                                   detail=f"row groups {list(piece.row_groups)}: {type(err).__name__}: {err}",
+                                   asset=config.name, date=first_date))
+            continue
+        times, naive = _time_to_us(table.column(archive.time_column))
+        columns = {"time": times}
+        if wide:
+            for name in names:
+                if name in piece.absent:
+                    columns[name] = pa.nulls(table.num_rows, pa.float64())
+                else:
+                    columns[name] = table.column(name).cast(pa.float64())
+        else:
+            channel = table.column(archive.channel_column).cast(pa.string())
+            columns["code"] = pc.fill_null(pc.index_in(channel, value_set=pa.array(list(names), pa.string())), -1)
+            columns["value"] = table.column(archive.value_column).cast(pa.float64())
+        tables.append(pa.table(columns))
+        naive_flags.append(naive)
+        absent_rows.append([name in piece.absent for name in names] if wide else [])
+        files.append(piece.path)
+
+    counts = [t.num_rows for t in tables]
+    if tables:
+        merged = pa.concat_tables(tables)
+    else:
+        merged = pa.table({"time": pa.array([], pa.int64())})
+    times = merged.column("time").to_numpy().astype(np.int64, copy=True) if tables else np.zeros(0, np.int64)
+    file_index = np.repeat(np.arange(len(tables), dtype=np.int32), counts)
+    bounds = np.concatenate([[0], np.cumsum(counts)]).astype(np.int64)
+    unordered = []
+    for i in range(len(tables)):
+        part = slice(bounds[i], bounds[i + 1])
+        if naive_flags[i]:
+            times[part] = local_to_utc_us(times[part], archive.timezone)
+        t = times[part]
+        back = np.flatnonzero(np.diff(t) < 0)
+        if back.size:
+            unordered.append(t[back + 1])
+    if wide:
+        values = (np.column_stack([merged.column(n).to_numpy(zero_copy_only=False) for n in names])
+                  if tables else np.zeros((0, len(names))))
+        absent = np.array(absent_rows, dtype=bool).reshape(len(tables), len(names))
+        codes = None
+    else:
+        values = merged.column("value").to_numpy(zero_copy_only=False).reshape(-1, 1) if tables else np.zeros((0, 1))
+        codes = merged.column("code").to_numpy(zero_copy_only=False).astype(np.int32) if tables else np.zeros(0, np.int32)
+        absent = np.zeros((len(tables), 1), dtype=bool)
+    values = np.asarray(values, dtype=np.float64)
+    if times.size and np.any(np.diff(times) < 0):
+        order = np.argsort(times, kind="stable")
+        times, file_index, values = times[order], file_index[order], values[order]
+        if codes is not None:
+            codes = codes[order]
+    unordered_times = np.sort(np.concatenate(unordered)) if unordered else np.zeros(0, np.int64)
+    return _TaskData(times, file_index, values, absent, codes, unordered_times, files)
+
+
+def _circular_phase(x: np.ndarray) -> float:
+    """Mean fractional grid offset of positions ``x`` (in periods), in [-0.5, 0.5)."""
+    angle = 2 * np.pi * (x - np.floor(x))
+    mean = np.mean(np.cos(angle)) + 1j * np.mean(np.sin(angle))
+    if abs(mean) < 1e-9:
+        return 0.0
+    phase = np.angle(mean) / (2 * np.pi)
+    return float((phase + 0.5) % 1.0 - 0.5)
+
+
+class _Assembly:
+    """Grid values and the counts found while snapping one group of rows (all columns at once)."""
+
+    def __init__(self, n_samples: int, n_columns: int):
+        self.grid = np.zeros((n_samples, n_columns))
+        self.valid = np.zeros((n_samples, n_columns), dtype=bool)
+        self.off_grid = 0
+        self.beyond_tolerance = 0
+        self.duplicates = 0
+        self.overlap_duplicates = 0
+        self.conflicts = 0
+        self.conflict_files: set = set()
+        self.nonfinite = np.zeros(n_columns, dtype=np.int64)
+        self.kept_rows = np.zeros(0, dtype=np.int64)
+
+
+def _median_interval(times: np.ndarray) -> float:
+    unique = np.unique(times)
+    if unique.size < 3:
+        return float("nan")
+    return float(np.median(np.diff(unique)))
+
+
+def _assemble(times: np.ndarray, values: np.ndarray, file_index: np.ndarray, absent: np.ndarray,
+              start_us: int, n_samples: int, period_us: float, tolerance: float) -> _Assembly:
+    """Snap rows (already time-sorted) onto the window's grid.
+
+    Notes
+    -----
+    Position in periods ``x = (t - start) / period``; the common phase ``phi`` of the group is the
+    circular mean of ``x mod 1`` (a logger whose clock is offset from the epoch by a fraction of a
+    period keeps its samples); grid index ``i = round(x - phi)``; residual ``x - phi - i``. Rows
+    with ``|residual| > tolerance`` are dropped (treated as gaps). Rows on the same grid index
+    are duplicates: equal values (NaN counts as missing) are merged, different values conflict.
+    """
+    out = _Assembly(n_samples, values.shape[1])
+    if times.size == 0:
+        return out
+    x = (times - start_us) / period_us
+    phase = _circular_phase(x)
+    shifted = x - phase
+    index = np.rint(shifted).astype(np.int64)
+    residual = np.abs(shifted - index)
+    inside = (index >= 0) & (index < n_samples)
+    beyond = inside & (residual > tolerance)
+    out.beyond_tolerance = int(beyond.sum())
+    keep = inside & ~beyond
+    out.off_grid = int((keep & (residual > OFF_GRID_NOISE)).sum())
+    rows = np.flatnonzero(keep)
+    index = index[rows]
+    if rows.size > 1 and np.any(np.diff(index) < 0):
+        order = np.argsort(index, kind="stable")
+        rows, index = rows[order], index[order]
+    vals = values[rows].copy()
+    present = ~absent[file_index[rows]] if absent.size else np.ones_like(vals, dtype=bool)
+    vals[~present] = np.nan
+    same = np.flatnonzero(np.diff(index) == 0)
+    if same.size:
+        # merge runs of equal grid index into their first row
+        first = np.ones(rows.size, dtype=bool)
+        first[same + 1] = False
+        group = np.cumsum(first) - 1
+        head = np.flatnonzero(first)
+        for i in same + 1:
+            h = head[group[i]]
+            a, b = vals[h], vals[i]
+            both = ~np.isnan(a) & ~np.isnan(b)
+            if np.any(a[both] != b[both]):
+                out.conflicts += 1
+                out.conflict_files.update((int(file_index[rows[h]]), int(file_index[rows[i]])))
+            elif file_index[rows[h]] != file_index[rows[i]]:
+                out.overlap_duplicates += 1
+            else:
+                out.duplicates += 1
+            fill = np.isnan(a) & ~np.isnan(b)
+            a[fill] = b[fill]
+            present[h] |= present[i]
+        rows, index, vals, present = rows[first], index[first], vals[first], present[first]
+    finite = np.isfinite(vals)
+    out.nonfinite = (present & ~finite).sum(axis=0)
+    out.grid[index] = np.where(finite, vals, 0.0)
+    out.valid[index] = finite
+    out.kept_rows = rows
+    return out
+
+
+def _whole_window(config: AssetConfig, start_us: int, reason: str, detail: str) -> Reject:
+    return Reject(stage="read", source=iso_utc(start_us), subject=WHOLE_WINDOW, reason=reason, detail=detail,
+                  asset=config.name, window_start_us=start_us)
+
+
+def _finding(config: AssetConfig, start_us: int, reason: str, detail: str, subject: str = WHOLE_WINDOW,
+             action: Optional[str] = None) -> Reject:
+    return Reject(stage="read", source=iso_utc(start_us), subject=subject, reason=reason, detail=detail,
+                  asset=config.name, window_start_us=start_us, action=action)
+
+
+def _clip_fraction(column: np.ndarray) -> float:
+    if column.size == 0:
+        return 0.0
+    at_extremes = 0
+    for extreme in (column.max(), column.min()):
+        n = int(np.count_nonzero(column == extreme))
+        if n >= MIN_CLIP_REPEATS:
+            at_extremes += n
+    return at_extremes / column.size
+
+
+def _window(task: ReadTask, data: _TaskData, config: AssetConfig, start_us: int) -> List[Union[WindowBlock, Reject]]:
+    """Assemble one window: a block plus findings, or findings ending in a whole-window reject."""
+    length_us, _, n_samples, period_us = window_grid(config)
+    tolerance = config.reading.grid_tolerance
+    names = task.channels + task.covariates
+    n_channels = len(task.channels)
+    lo = np.searchsorted(data.times, start_us - 0.5 * period_us, side="left")
+    hi = np.searchsorted(data.times, start_us + (n_samples - 0.5) * period_us, side="left")
+    times = data.times[lo:hi]
+    out: List[Union[WindowBlock, Reject]] = []
+    if times.size == 0:
+        return [_whole_window(config, start_us, "insufficient_coverage", "no samples in the window")]
+    file_index = data.file_index[lo:hi]
+    sources = tuple(data.files[i] for i in np.unique(file_index))
+
+    groups: List[Tuple[List[int], np.ndarray]] = []  # (columns, rows) to assemble together
+    if data.channel_codes is None:
+        groups.append((list(range(len(names))), np.arange(times.size)))
+    else:
+        codes = data.channel_codes[lo:hi]
+        for c in range(len(names)):
+            groups.append(([c], np.flatnonzero(codes == c)))
+
+    intervals = [_median_interval(times[rows]) for _, rows in groups if rows.size >= 3]
+    intervals = [v for v in intervals if np.isfinite(v)]
+    if intervals:
+        median = float(np.median(intervals))
+        if abs(median / period_us - 1.0) > RATE_TOLERANCE:
+            return [_whole_window(
+                config, start_us, "sample_rate_mismatch",
+                f"median sample interval {median / 1e6:.6g} s ({1e6 / median:.6g} Hz) vs nominal "
+                f"{config.archive.sample_rate_hz:g} Hz; files: {', '.join(sources)}")]
+
+    grid = np.zeros((n_samples, len(names)))
+    valid = np.zeros((n_samples, len(names)), dtype=bool)
+    covariate_sums = np.zeros(len(names))
+    covariate_counts = np.zeros(len(names), dtype=np.int64)
+    totals = collections.Counter()
+    nonfinite = np.zeros(len(names), dtype=np.int64)
+    conflict_files: set = set()
+    for columns, rows in groups:
+        values = data.values[lo:hi][rows] if data.channel_codes is None else data.values[lo:hi][rows][:, :1]
+        absent = data.absent[:, columns] if data.channel_codes is None else np.zeros((len(data.files), 1), bool)
+        part = _assemble(times[rows], values, file_index[rows], absent, start_us, n_samples, period_us, tolerance)
+        grid[:, columns] = part.grid
+        valid[:, columns] = part.valid
+        nonfinite[columns] += part.nonfinite
+        totals.update(off_grid=part.off_grid, beyond=part.beyond_tolerance, duplicates=part.duplicates,
+                      overlaps=part.overlap_duplicates, conflicts=part.conflicts)
+        conflict_files |= part.conflict_files
+        covariate_sums[columns] += np.where(part.valid, part.grid, 0.0).sum(axis=0)
+        covariate_counts[columns] += part.valid.sum(axis=0)
+
+    if totals["conflicts"]:
+        files = ", ".join(sorted(data.files[i] for i in conflict_files))
+        return [_whole_window(config, start_us, "conflicting_duplicates",
+                              f"{totals['conflicts']} grid points hold different values at equal timestamps; files: {files}")]
+    window_lo, window_hi = start_us - 0.5 * period_us, start_us + (n_samples - 0.5) * period_us
+    unordered = int(np.count_nonzero((data.unordered_times >= window_lo) & (data.unordered_times < window_hi)))
+    if unordered:
+        out.append(_finding(config, start_us, "unordered_timestamps",
+                            f"{unordered} rows out of time order in {', '.join(sources)}; sorted"))
+    if totals["duplicates"]:
+        out.append(_finding(config, start_us, "duplicate_timestamps",
+                            f"{totals['duplicates']} duplicated samples with equal values dropped"))
+    if totals["overlaps"]:
+        out.append(_finding(config, start_us, "overlapping_files",
+                            f"{totals['overlaps']} samples held by more than one of {', '.join(sources)}; kept once"))
+    if totals["off_grid"]:
+        out.append(_finding(config, start_us, "off_grid_timestamps",
+                            f"{totals['off_grid']} timestamps more than {OFF_GRID_NOISE:g} of a period off the grid; snapped"))
+    if totals["beyond"]:
+        out.append(_finding(config, start_us, "jitter_beyond_tolerance",
+                            f"{totals['beyond']} samples further than {tolerance:g} of a period from the grid "
+                            "dropped (treated as gaps)", action="repaired"))
+    for c, name in enumerate(task.channels):
+        if nonfinite[c]:
+            out.append(_finding(config, start_us, "nonfinite_values",
+                                f"{int(nonfinite[c])} NaN, inf or null samples treated as gaps", subject=name))
+
+    kept: List[int] = []
+    failures: Dict[str, Tuple[str, str]] = {}
+    quality: Dict[str, Tuple[str, ...]] = {}
+    min_coverage = config.windows.min_coverage
+    for c, name in enumerate(task.channels):
+        coverage = valid[:, c].mean()
+        column = grid[valid[:, c], c]
+        if coverage < min_coverage:
+            failures[name] = ("insufficient_coverage", f"coverage {coverage:.4f} < min_coverage {min_coverage:g}")
+            continue
+        if column.size and column.max() == column.min():
+            failures[name] = ("flat_channel", f"all {column.size} valid samples equal {column[0]:g}")
+            continue
+        fraction = _clip_fraction(column)
+        if fraction >= config.reading.clip_fraction:
+            quality[name] = ("clipped",)
+            out.append(_finding(config, start_us, "clipped_channel",
+                                f"{fraction:.4f} of samples at the extreme values "
+                                f"[{column.min():g}, {column.max():g}] (clip_fraction {config.reading.clip_fraction:g})",
+                                subject=name))
+        kept.append(c)
+
+    if not kept:
+        reasons = collections.Counter(reason for reason, _ in failures.values())
+        reason = max(sorted(reasons), key=lambda r: reasons[r])
+        detail = "no channel left: " + "; ".join(f"{n}: {r} ({d})" for n, (r, d) in failures.items())
+        out.append(_whole_window(config, start_us, reason, detail))
+        return out
+    for name, (reason, detail) in failures.items():
+        out.append(_finding(config, start_us, reason, detail, subject=name))
+
+    covariates = {}
+    for j, name in enumerate(task.covariates):
+        c = n_channels + j
+        covariates[name] = float(covariate_sums[c] / covariate_counts[c]) if covariate_counts[c] else float("nan")
+    block = WindowBlock(
+        asset=config.name, window_start_us=int(start_us), window_length_s=config.windows.length_s,
+        sample_rate_hz=config.archive.sample_rate_hz,
+        channels=tuple(task.channels[c] for c in kept),
+        values=np.ascontiguousarray(grid[:, kept]), valid=np.ascontiguousarray(valid[:, kept]),
+        covariates=covariates, channel_quality=quality, sources=sources)
+    out.append(block)
+    return out
+
+
+def read_windows(task: ReadTask, config: AssetConfig, open_file: OpenFile = open_local_file
+                 ) -> Iterator[Union[WindowBlock, Reject]]:
+    """Read one task and yield, per planned window, its findings and then its block.
+
+    Parameters
+    ----------
+    task : ReadTask
+        From :func:`corrtransforms.archive_plan.plan_reads`.
+    config : AssetConfig
+        The asset's configuration (grid, tolerances, coverage, clipping).
+    open_file : callable
+        ``open_file(path)`` returns a binary, seekable file object.
+
+    Yields
+    ------
+    WindowBlock or Reject
+        For every planned window exactly one block or one whole-window reject, plus repaired,
+        flagged and per-channel findings. File decoding failures come first (``decode_failed``).
+
+    Notes
+    -----
+    Snapping: sample ``i`` of a window is the row with ``round((t - start) / T - phi) == i``,
+    ``T = 1 / sample_rate_hz``, ``phi`` the group's mean grid phase; rows further than
+    ``[reading] grid_tolerance * T`` from their grid point are gaps. Coverage of a channel is its
+    fraction of valid grid points; below ``[windows] min_coverage`` the channel is rejected in that
+    window, and the window when no channel is left. A channel whose valid samples are all equal is
+    rejected as flat; one with at least ``[reading] clip_fraction`` of its samples at repeated
+    extreme values is flagged "clipped". Covariates are the mean of their valid grid samples.
+    """
+    findings: List[Reject] = []
+    data = _load(task, config, open_file, findings)
+    yield from findings
+    for start_us in task.window_starts_us:
+        yield from _window(task, data, config, int(start_us))
+
+
+def read_task(task: ReadTask, config: AssetConfig, open_file: OpenFile = open_local_file
+              ) -> Tuple[List[WindowBlock], List[Reject]]:
+    """:func:`read_windows` collected into (blocks, rejects)."""
+    blocks, rejects = [], []
+    for item in read_windows(task, config, open_file):
+        (blocks if isinstance(item, WindowBlock) else rejects).append(item)
+    return blocks, rejects
