@@ -1,0 +1,163 @@
+"""Planning from Parquet footers: windows, read tasks, time zones and file-level rejects."""
+import datetime as dt
+import os
+import pickle
+import zoneinfo
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+from corrtransforms.archive_plan import (list_local_archive, local_to_utc_us, plan_archive, read_footer,
+                                         window_grid)
+from tests.archive_data import T0, US, bad_wide_archive, long_table, make_config, samples, wide_table, write_files
+
+
+def _windows(plan):
+    return sorted(s for t in plan.tasks for s in t.window_starts_us)
+
+
+@pytest.fixture
+def small_groups(tmp_path):
+    # 10 minutes at 10 Hz, files of 200 s, row groups of 50 s (< a 60-s window)
+    folder = str(tmp_path / "arc")
+    write_files(folder, wide_table(samples(600, 10.0, seed=1)), 200, 500)
+    return folder
+
+
+def test_windows_are_epoch_aligned_and_each_in_one_task(small_groups):
+    config = make_config(small_groups)
+    plan = plan_archive(list_local_archive(small_groups), config)
+    starts = _windows(plan)
+    # closed form: 600 s of data from an epoch-aligned start, 60-s windows -> exactly 10 windows
+    assert starts == [T0 + k * 60 * US for k in range(10)]
+    assert len(starts) == len(set(starts))  # every window in exactly one task
+    assert plan.windows_planned == 10 and plan.rejects == []
+    assert plan.channels == ("a", "b") and plan.days == ("2024-03-04",)
+    assert all(s % (60 * US) == 0 for s in starts)
+
+
+def test_tasks_are_bounded_in_decoded_bytes(small_groups):
+    config = make_config(small_groups, task_bytes=2**16)
+    plan = plan_archive(list_local_archive(small_groups), config)
+    # decoded bytes of a row group: rows * 8 bytes * (time + a + b + temperature) = 500 * 32
+    assert all(p.decoded_bytes == 16000 * len(p.row_groups) for t in plan.tasks for p in t.pieces)
+    for task in plan.tasks:
+        assert task.decoded_bytes <= config.reading.task_bytes
+    big = plan_archive(list_local_archive(small_groups), make_config(small_groups, task_bytes=2**24))
+    assert len(big.tasks) == 1 and _windows(big) == _windows(plan)
+
+
+def test_window_spanning_two_files_is_read_by_one_task(small_groups):
+    plan = plan_archive(list_local_archive(small_groups), make_config(small_groups))
+    spanning = T0 + 180 * US  # window [180 s, 240 s) crosses the file boundary at 200 s
+    task = next(t for t in plan.tasks if spanning in t.window_starts_us)
+    assert len({p.path for p in task.pieces}) == 2
+
+
+def test_row_groups_larger_than_a_window_are_decoded_once(tmp_path):
+    folder = str(tmp_path / "big")
+    write_files(folder, wide_table(samples(600, 10.0, seed=1)), 600, 3000)  # 300-s row groups
+    config = make_config(folder, task_bytes=2**16)  # one row group (96 kB) exceeds the budget
+    plan = plan_archive(list_local_archive(folder), config)
+    assert len(_windows(plan)) == 10
+    uses = {}
+    for task in plan.tasks:
+        for piece in task.pieces:
+            for rg in piece.row_groups:
+                uses[rg] = uses.get(rg, 0) + 1
+    assert uses == {0: 1, 1: 1}
+
+
+def test_overlapping_windows_with_hop(small_groups):
+    config = make_config(small_groups, hop_s=30.0)
+    starts = _windows(plan_archive(list_local_archive(small_groups), config))
+    # windows [k*30, k*30 + 60) holding samples of [0, 600): k = 0..19 (k = -1 holds samples from t=0 too)
+    assert starts == [T0 + k * 30 * US for k in range(-1, 20)]
+
+
+def test_same_windows_whichever_files_are_read(small_groups):
+    config = make_config(small_groups)
+    paths = list_local_archive(small_groups)
+    full = set(_windows(plan_archive(paths, config)))
+    part = set(_windows(plan_archive(paths[1:], config)))
+    assert part <= full and len(part) == 7  # file 2 spans [200, 400) s: windows 3..9 overlap files 2-3
+
+
+def test_statistics_missing_falls_back_to_reading_time(tmp_path):
+    folder = str(tmp_path / "nostats")
+    table = wide_table(samples(300, 10.0, seed=2))
+    os.makedirs(folder)
+    pq.write_table(table, os.path.join(folder, "x.parquet"), row_group_size=700, write_statistics=False)
+    config = make_config(folder)
+    footer, findings = read_footer(os.path.join(folder, "x.parquet"), config)
+    assert [f.reason for f in findings] == ["statistics_missing"] and findings[0].action == "repaired"
+    times = table.column("time").cast(pa.int64()).to_numpy()
+    assert [(rg.start_us, rg.end_us) for rg in footer.row_groups] == [
+        (int(times[i]), int(times[min(i + 699, len(times) - 1)])) for i in range(0, len(times), 700)]
+
+
+def test_local_to_utc_matches_zoneinfo_across_daylight_saving():
+    zone = zoneinfo.ZoneInfo("Europe/Berlin")
+    # 2024-03-31: clocks go from 02:00 to 03:00 local (CET -> CEST); sample every 7 minutes
+    walls = [dt.datetime(2024, 3, 30, 22) + dt.timedelta(minutes=7 * i) for i in range(60)]
+    walls = [w for w in walls if not (dt.datetime(2024, 3, 31, 2) <= w < dt.datetime(2024, 3, 31, 3))]
+    local = np.array([int((w - dt.datetime(1970, 1, 1)).total_seconds()) * US for w in walls])
+    expected = [int(w.replace(tzinfo=zone).timestamp()) * US for w in walls]  # reference: zoneinfo
+    assert local_to_utc_us(local, "Europe/Berlin").tolist() == expected
+
+
+def test_day_range_in_the_asset_time_zone_and_naive_times(tmp_path):
+    # 22:30-23:30 UTC on 2024-03-03 is 23:30-00:30 in Berlin (UTC+1 in March)
+    start = T0 - 90 * 60 * US
+    cols = samples(3600, 1.0, seed=3, start_us=start)
+    naive = dict(cols)
+    naive["time"] = cols["time"] + 3600 * US  # wall clock of Berlin, written without time zone
+    folder = str(tmp_path / "tz")
+    write_files(folder, wide_table(naive, tz=None), 3600, 1000, hive=True)
+    assert "date=2024-03-03" in list_local_archive(folder)[0]
+    config = make_config(folder, rate=1.0, length_s=600.0, max_lag_s=10.0, timezone="Europe/Berlin")
+    everything = _windows(plan_archive(list_local_archive(folder), config))
+    assert everything == [start + k * 600 * US for k in range(6)]  # naive local -> the UTC instants
+    day = dt.date(2024, 3, 4)
+    only = plan_archive(list_local_archive(folder), config, start=day, end=day)
+    berlin = zoneinfo.ZoneInfo("Europe/Berlin")
+    expected = [s for s in everything
+                if dt.datetime.fromtimestamp(s / US, berlin).date() == day]  # reference: zoneinfo
+    assert _windows(only) == expected == [T0 - 60 * 60 * US + k * 600 * US for k in range(3)]
+    assert only.days == ("2024-03-04",)
+
+
+def test_long_layout_plans_like_wide(tmp_path):
+    cols = samples(600, 10.0, seed=4)
+    write_files(str(tmp_path / "w"), wide_table(cols), 200, 500)
+    write_files(str(tmp_path / "l"), long_table(cols), 200, 1500)
+    wide = plan_archive(list_local_archive(str(tmp_path / "w")), make_config(str(tmp_path / "w")))
+    long = plan_archive(list_local_archive(str(tmp_path / "l")), make_config(str(tmp_path / "l"), layout="long",
+                                                                               names=None))
+    assert _windows(wide) == _windows(long)
+    assert long.channels == ("a", "b")  # all channel values, minus the covariate, sorted per file
+
+
+def test_file_level_rejects_and_the_other_files_still_plan(tmp_path):
+    folder = str(tmp_path / "bad")
+    expected = bad_wide_archive(folder)
+    plan = plan_archive(list_local_archive(folder), make_config(folder))
+    found = {os.path.basename(r.source): r.reason for r in plan.rejects}
+    assert found == expected["file_findings"]
+    assert all(r.stage == "plan" and r.date == "2024-03-04" for r in plan.rejects)
+    starts = {(s - T0) // (60 * US) for s in _windows(plan)}
+    assert starts == set(range(22)) | {40}
+
+
+def test_task_description_is_small_and_picklable(small_groups):
+    plan = plan_archive(list_local_archive(small_groups), make_config(small_groups))
+    for task in plan.tasks:
+        text = pickle.dumps(task)
+        assert pickle.loads(text) == task and len(text) < 2000
+
+
+def test_window_grid_values():
+    config = make_config("/nowhere", rate=12.5, length_s=64.0, max_lag_s=4.0)
+    assert window_grid(config) == (64 * US, 64 * US, 800, 80000.0)
