@@ -1,0 +1,221 @@
+"""Condition indicators of one window: the rows of the (long) indicators table.
+
+:func:`window_indicators` turns a :class:`~corrtransforms.records.WindowCorrelation` into
+:class:`~corrtransforms.records.IndicatorRow` s:
+
+========================  ==========  ==============================================
+indicator                 subject     from
+========================  ==========  ==============================================
+``rms``                   channel     ``wc.rms`` / ``wc.rms_stderr`` (channel unit)
+``corr_time_s``           channel     :func:`~corrtransforms.timescales.corr_time_s`
+``decay_time_s``          channel     :func:`~corrtransforms.timescales.decay_time_s`
+``mode_freq_hz``          mode name   :func:`~corrtransforms.modal_fit.fit_mode`
+``mode_damping``          mode name   :func:`~corrtransforms.modal_fit.fit_mode`
+``lag_s``                 ``a:b``     :func:`~corrtransforms.time_delay.estimate_lag`
+``peak_coef``             ``a:b``     :func:`~corrtransforms.time_delay.estimate_lag`
+``covariate_mean``        covariate   ``wc.covariates`` (stderr NaN)
+========================  ==========  ==============================================
+
+plus ``wc.extra_indicators`` (e.g. ``stationarity_p``) passed through. The quality column joins
+the codes of the computation, the pair's own codes, ``wc.subject_quality`` of the subject (and of
+``"*"``, codes for the whole window) and ``record_too_short`` when the pair behind the indicator
+does not meet ``target_rel_error``. Bad numbers give NaN and a code, never an exception.
+"""
+from __future__ import annotations
+
+from typing import Callable, Iterable, List, Optional, Tuple
+
+import numpy as np
+import pyarrow as pa
+
+from . import tables
+from .config import AssetConfig
+from .modal_fit import fit_mode
+from .records import IndicatorRow, ModeCorrelation, PairCorrelation, WindowCorrelation, quality_text
+from .time_delay import estimate_lag
+from .timescales import corr_time_s, decay_time_s
+
+#: quality codes added here (code -> meaning); the computations add their own
+QUALITY_CODES = {
+    "record_too_short": "the correlation behind the indicator misses [correlation] target_rel_error",
+    "no_mode_correlation": "a configured mode has no band-limited correlation in this window",
+    "no_covariate_samples": "the covariate had no valid samples in the window",
+    "nonfinite_rms": "the rms or its standard error is not finite",
+}
+
+NAN = float("nan")
+WHOLE_WINDOW = "*"
+
+
+class IndicatorError(RuntimeError):
+    """An indicator computation raised: names the window, the subject and the cause."""
+
+
+def _pair_codes(pair: Optional[PairCorrelation]) -> Tuple[str, ...]:
+    if pair is None:
+        return ()
+    codes = tuple(pair.quality)
+    if not pair.meets_target:
+        codes += ("record_too_short",)
+    return codes
+
+
+def _finite_or_nan(x) -> float:
+    x = float(x)
+    return x if np.isfinite(x) else NAN
+
+
+def _channel_rows(wc: WindowCorrelation, config: AssetConfig, channel: str, common) -> List[IndicatorRow]:
+    auto = wc.auto(channel)
+    base = _pair_codes(auto) + common(channel)
+    rms = float(wc.rms.get(channel, NAN))
+    rms_sd = float(wc.rms_stderr.get(channel, NAN))
+    rms_codes = base + (("nonfinite_rms",) if not (np.isfinite(rms) and np.isfinite(rms_sd)) else ())
+    start = wc.window_start_us
+    rows = [IndicatorRow(start, channel, "rms", _finite_or_nan(rms), _finite_or_nan(rms_sd),
+                         config.channels.unit(channel), quality_text(rms_codes))]
+    if auto is None:
+        return rows
+    ct = corr_time_s(auto.coefficient, auto.stderr, auto.lag_step_s)
+    dt = decay_time_s(auto.coefficient, auto.stderr, auto.lag_step_s, auto=True)
+    rows.append(IndicatorRow(start, channel, "corr_time_s", _finite_or_nan(ct.value), _finite_or_nan(ct.stderr),
+                             "s", quality_text(base + ct.quality)))
+    rows.append(IndicatorRow(start, channel, "decay_time_s", _finite_or_nan(dt.value), _finite_or_nan(dt.stderr),
+                             "s", quality_text(base + dt.quality)))
+    return rows
+
+
+def _mode_rows(wc: WindowCorrelation, mode_name: str, channel: str, band_hz, common) -> List[IndicatorRow]:
+    found: Optional[ModeCorrelation] = next((m for m in wc.modes if m.mode == mode_name), None)
+    base = _pair_codes(wc.auto(channel)) + common(mode_name)
+    start = wc.window_start_us
+    if found is None:
+        codes = quality_text(base + ("no_mode_correlation",))
+        return [IndicatorRow(start, mode_name, "mode_freq_hz", NAN, NAN, "Hz", codes),
+                IndicatorRow(start, mode_name, "mode_damping", NAN, NAN, "", codes)]
+    fit = fit_mode(found.coefficient, found.stderr, found.lag_step_s, tuple(found.band_hz or band_hz))
+    codes = quality_text(base + tuple(found.quality) + fit.quality)
+    return [IndicatorRow(start, mode_name, "mode_freq_hz", _finite_or_nan(fit.freq_hz),
+                         _finite_or_nan(fit.freq_stderr_hz), "Hz", codes),
+            IndicatorRow(start, mode_name, "mode_damping", _finite_or_nan(fit.damping),
+                         _finite_or_nan(fit.damping_stderr), "", codes)]
+
+
+def _pair_rows(wc: WindowCorrelation, config: AssetConfig, pair: PairCorrelation, common) -> List[IndicatorRow]:
+    subject = pair.subject
+    auto_a, auto_b = wc.auto(pair.channel_a), wc.auto(pair.channel_b)
+    weighted = pair.weighted_coefficient
+    estimate = estimate_lag(
+        pair.coefficient, pair.stderr, pair.first_lag_s, pair.lag_step_s, pair.record_s,
+        weighted_coefficient=weighted,
+        weighting=config.correlation.weighting if weighted is not None else "none",
+        auto_a=None if auto_a is None else auto_a.coefficient,
+        auto_b=None if auto_b is None else auto_b.coefficient,
+        max_lag_s=config.correlation.max_lag_s)
+    codes = quality_text(_pair_codes(pair) + common(subject) + estimate.quality)
+    start = wc.window_start_us
+    return [IndicatorRow(start, subject, "lag_s", _finite_or_nan(estimate.lag_s),
+                         _finite_or_nan(estimate.lag_stderr_s), "s", codes),
+            IndicatorRow(start, subject, "peak_coef", _finite_or_nan(estimate.peak_coef),
+                         _finite_or_nan(estimate.peak_coef_stderr), "", codes)]
+
+
+def window_indicators_and_failures(wc: WindowCorrelation, config: AssetConfig
+                                   ) -> Tuple[List[IndicatorRow], List[Tuple[str, str]]]:
+    """Indicator rows of one window, isolating failures per subject.
+
+    Parameters
+    ----------
+    wc : WindowCorrelation
+        The correlate stage's result for one window.
+    config : AssetConfig
+        Units, modes, weighting and max_lag.
+
+    Returns
+    -------
+    rows : list of IndicatorRow
+    failures : list of (subject, detail)
+        Subjects whose computation raised (malformed input or a defect); their rows are missing
+        and the Beam transform turns each into a reject ``indicator_failed``.
+    """
+    rows: List[IndicatorRow] = []
+    failures: List[Tuple[str, str]] = []
+    whole = tuple(wc.subject_quality.get(WHOLE_WINDOW, ()))
+
+    def common(subject: str) -> Tuple[str, ...]:
+        return tuple(wc.subject_quality.get(subject, ())) + whole
+
+    def attempt(subject: str, make: Callable[[], List[IndicatorRow]]):
+        try:
+            rows.extend(make())
+        except Exception as err:  # noqa: BLE001 - every failure becomes a reject
+            failures.append((subject, f"{type(err).__name__}: {err}"))
+
+    for channel in wc.channels:
+        attempt(channel, lambda c=channel: _channel_rows(wc, config, c, common))
+    for mode in config.modes:
+        attempt(mode.name, lambda m=mode: _mode_rows(wc, m.name, m.channel, m.band_hz, common))
+    for pair in wc.pairs:
+        if not pair.is_auto:
+            attempt(pair.subject, lambda p=pair: _pair_rows(wc, config, p, common))
+    for name, value in sorted(wc.covariates.items()):
+        v = _finite_or_nan(value)
+        codes = common(name) + (() if np.isfinite(v) else ("no_covariate_samples",))
+        rows.append(IndicatorRow(wc.window_start_us, name, "covariate_mean", v, NAN,
+                                 config.channels.unit(name), quality_text(codes)))
+    rows.extend(wc.extra_indicators)
+    return rows, failures
+
+
+def window_indicators(wc: WindowCorrelation, config: AssetConfig) -> List[IndicatorRow]:
+    """Indicator rows of one window (see the module docstring for the list).
+
+    Parameters
+    ----------
+    wc : WindowCorrelation
+        The correlate stage's result for one window.
+    config : AssetConfig
+        The asset's configuration (units, modes, weighting, max_lag).
+
+    Returns
+    -------
+    list of IndicatorRow
+
+    Raises
+    ------
+    IndicatorError
+        When a subject's computation raised (malformed input, not bad numbers: those give NaN
+        and a quality code). :func:`window_indicators_and_failures` returns the other subjects'
+        rows and the failures instead.
+    """
+    rows, failures = window_indicators_and_failures(wc, config)
+    if failures:
+        subject, detail = failures[0]
+        raise IndicatorError(f"window {wc.window_start_us} subject {subject!r}: {detail}")
+    return rows
+
+
+def indicator_table(rows: Iterable[IndicatorRow]) -> pa.Table:
+    """Arrow table of indicator rows with exactly the :data:`corrtransforms.tables.INDICATORS` schema.
+
+    Parameters
+    ----------
+    rows : iterable of IndicatorRow
+
+    Returns
+    -------
+    pyarrow.Table
+        Columns built column-wise; ``window_start`` as ``timestamp[us, UTC]``.
+    """
+    rows = list(rows)
+    schema = tables.INDICATORS
+    columns = [
+        pa.array([r.window_start_us for r in rows], type=pa.int64()).cast(schema.field("window_start").type),
+        pa.array([r.subject for r in rows], type=pa.string()),
+        pa.array([r.indicator for r in rows], type=pa.string()),
+        pa.array([float(r.value) for r in rows], type=pa.float64()),
+        pa.array([float(r.stderr) for r in rows], type=pa.float64()),
+        pa.array([r.unit for r in rows], type=pa.string()),
+        pa.array([r.quality for r in rows], type=pa.string()),
+    ]
+    return pa.Table.from_arrays(columns, schema=schema)
