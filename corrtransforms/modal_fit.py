@@ -124,8 +124,11 @@ def fit_mode(coefficient, stderr, lag_step_s: float, band_hz: Tuple[float, float
     the single-degree-of-freedom oscillator ``A = 1/sqrt(1 - zeta^2)``, ``phi = -arcsin(zeta)``
     exactly.
 
-    **Fitting range.** From the first lag (lag 0 is the normalisation ``rho = 1`` with zero
-    error, and carries the in-band broadband power of other sources) to the first lag where the
+    **Fitting range.** From ``start_bandwidths / (high - low)`` seconds (at least the first lag;
+    lag 0 is the normalisation ``rho = 1`` with zero error): band-limiting with a rectangular
+    spectral window removes the resonance's spectral tails, whose correlation lives at lags
+    below about the inverse band width; fitting from lag 1 biases ``zeta`` low by 10-20 % on
+    simulated records with a band of +/- 25 % around the mode. The range ends at the first lag where the
     Hilbert envelope falls below ``end_fraction`` of its value at the first lag or below
     ``NOISE_FLOOR_Z`` standard errors, at most ``max_cycles`` periods. Most of the information on
     ``zeta`` sits at ``tau ~ 1/(zeta w_n)`` (the derivative of the model with respect to ``zeta``
@@ -191,6 +194,9 @@ def fit_mode(coefficient, stderr, lag_step_s: float, band_hz: Tuple[float, float
         s_fit = np.ones_like(rho)
 
     start = max(1, int(np.ceil(start_bandwidths / ((high - low) * lag_step_s))))
+    if start + 6 >= first_bad:
+        return _nan_fit(quality + ["too_few_cycles"], start * lag_step_s, (first_bad - 1) * lag_step_s,
+                        (first_bad - 1 - start) * lag_step_s * np.sqrt(low * high))
     e0 = envelope[start]
     below = envelope[start:first_bad] < end_fraction * e0
     if weighted:
