@@ -454,7 +454,8 @@ def expected_changes(days: int = DEFAULT_DAYS, every_hours: int = DEFAULT_EVERY_
         ``shifts``: one entry per injected change with ``subject``, ``indicator``, ``direction``
         ("up" | "down") and ``sign`` (+1 | -1, as in the shifts table), ``date`` and ``at`` (UTC onset), ``before``/``after`` (true values at the
         reference temperature) and ``cause``; ``rejects``: the broken input with ``reason``,
-        ``subject``, ``date``, ``source`` (file path inside the archive, or null) and
+        ``subject``, ``date``, ``source`` (file path inside the archive folder, or null; the
+        rejects table holds the full path, so compare with ``endswith``) and
         ``windows`` (windows affected); ``monitored``: the indicators the demo's [shifts]
         configuration monitors, for which the shifts list is complete.
     """
@@ -495,7 +496,7 @@ def expected_changes(days: int = DEFAULT_DAYS, every_hours: int = DEFAULT_EVERY_
                             cause="file truncated: the Parquet footer is missing"))
     renamed = _first_record_at_or_after(starts, RENAMED_TIME_COLUMN_AT)
     if renamed is not None:
-        rejects.append(dict(reason="missing_time_column", subject="*", date=renamed.date().isoformat(),
+        rejects.append(dict(reason="missing_time_column", subject=TIME_COLUMN, date=renamed.date().isoformat(),
                             source=record_relative_path(renamed), windows=1,
                             cause=f"time column renamed to {RENAMED_TIME_COLUMN!r}"))
     return dict(asset=ASSET, days=days, every_hours=every_hours, records=len(starts),
