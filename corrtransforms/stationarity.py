@@ -699,10 +699,12 @@ def correlation_time_scales(values, valid=None, sample_rate_hz: float = 1.0) -> 
     max_lag = n // 2
     counts = np.maximum(counts[:max_lag + 1], 1e-12 * counts[0])
 
-    # sharp spectral lines: far above the local median; widen by the Hann main lobe
+    # sharp spectral lines: far above the local median (the spectrum is mirrored at zero and
+    # Nyquist frequency, so the median near the ends sees real neighbours); widen by the Hann
+    # main lobe
     bins_per_resolution = size / n
     median_width = int(2 * round(12 * bins_per_resolution) + 1)
-    local = _ndimage.median_filter(power, size=median_width, mode="nearest")
+    local = _ndimage.median_filter(power, size=median_width, mode="mirror")
     lines = power > LINE_THRESHOLD * np.maximum(local, 1e-300)
     if lines.any():
         reach = int(math.ceil(3 * bins_per_resolution))
