@@ -1,0 +1,97 @@
+"""Invented indicator series for the shift-detection tests (no real site or structure).
+
+A structure's modal frequency of 2 Hz falls linearly with temperature so that the temperature
+range of the record moves it by 3 % (peak to peak: a seasonal warming plus a daily cycle); at a
+known local midnight the frequency drops by 1.5 % (a stiffness loss). Windows every 2 hours.
+"""
+import datetime as dt
+import math
+import zoneinfo
+
+import numpy as np
+
+from corrtransforms.config import parse_config
+from corrtransforms.records import IndicatorRow
+
+TIMEZONE = "Europe/Vienna"
+FIRST_DAY = dt.date(2024, 3, 1)
+HOUR_US = 3600 * 10**6
+FREQUENCY_HZ = 2.0
+
+
+def local_midnight_us(day: dt.date) -> int:
+    moment = dt.datetime(day.year, day.month, day.day, tzinfo=zoneinfo.ZoneInfo(TIMEZONE))
+    return int(moment.timestamp()) * 10**6
+
+
+def make_config(compensate="all", baseline=None, **shifts):
+    raw = {
+        "asset": {"name": "invented-bridge"},
+        "archive": {"path": "unused", "sample_rate_hz": 50.0, "timezone": TIMEZONE},
+        "channels": {"covariates": ["temperature"]},
+        "baseline": baseline or {"start": "2024-03-01", "end": "2024-03-14", "min_windows": 30},
+        "shifts": dict({"compensate": compensate}, **shifts),
+    }
+    return parse_config(raw)
+
+
+def seasonal_series(seed: int, days: int = 50, step_day: int = 40, hours_per_window: int = 2,
+                    swing: float = 0.03, step: float = -0.015, process_rel: float = 0.0025,
+                    stderr_rel: float = 0.002, warming_from_day: int = 14):
+    """Times (us), values, stderr, temperature and the step time of the invented series.
+
+    Temperature: a cool fortnight (daily cycle +/- 5 degC and slow weather of ~1.5 degC), then a
+    seasonal warming of 12 degC to the end of the record. The frequency falls linearly with
+    temperature so that the whole record's temperature range moves it by ``swing`` (3 %); at
+    local midnight of ``FIRST_DAY + step_day`` it drops by ``step`` (-1.5 %). Process scatter
+    ``process_rel`` and a lognormal stderr around ``stderr_rel`` (relative to 2 Hz).
+    """
+    rng = np.random.default_rng(seed)
+    start = local_midnight_us(FIRST_DAY)
+    n = days * 24 // hours_per_window
+    times = start + np.arange(n, dtype=np.int64) * hours_per_window * HOUR_US
+    day = (times - start) / (24 * HOUR_US)
+    weather = np.zeros(n)
+    for i in range(1, n):  # AR(1) with a correlation time of about two days
+        weather[i] = 0.96 * weather[i - 1] + rng.normal(0, 1.5 * np.sqrt(1 - 0.96 ** 2))
+    warming = 12.0 * np.clip((day - warming_from_day) / (days - warming_from_day), 0, 1)
+    temperature = (4.0 + warming + 5.0 * np.sin(2 * np.pi * (day - 0.375)) + weather
+                   + rng.normal(0, 0.3, n))
+    slope = -swing * FREQUENCY_HZ / (temperature.max() - temperature.min())
+    healthy = FREQUENCY_HZ + slope * (temperature - temperature.mean())
+    step_us = local_midnight_us(FIRST_DAY + dt.timedelta(days=step_day))
+    truth = np.where(times >= step_us, healthy * (1 + step), healthy)
+    stderr = FREQUENCY_HZ * stderr_rel * np.exp(rng.normal(0, 0.25, n))
+    values = truth + rng.normal(0, FREQUENCY_HZ * process_rel, n) + stderr * rng.standard_normal(n)
+    return times, values, stderr, temperature, step_us
+
+
+def indicator_rows(times, values, stderr, temperature, subject="deck", indicator="mode_freq_hz", unit="Hz",
+                   quality=None):
+    rows = []
+    for i, t in enumerate(times):
+        rows.append(IndicatorRow(int(t), subject, indicator, float(values[i]), float(stderr[i]), unit,
+                                 "ok" if quality is None else quality[i]))
+    covariates = [IndicatorRow(int(t), "temperature", "covariate_mean", float(temperature[i]), 0.01, "degC", "ok")
+                  for i, t in enumerate(times)]
+    return rows, covariates
+
+
+def same(a, b) -> bool:
+    """Equality with NaN == NaN, through nested lists and dicts (bit-exact for floats)."""
+    if isinstance(a, float) and isinstance(b, float):
+        return (math.isnan(a) and math.isnan(b)) or a == b
+    if isinstance(a, (list, tuple)) and isinstance(b, (list, tuple)):
+        return len(a) == len(b) and all(same(x, y) for x, y in zip(a, b))
+    if isinstance(a, dict) and isinstance(b, dict):
+        return a.keys() == b.keys() and all(same(a[k], b[k]) for k in a)
+    return a == b
+
+
+def assert_tables_identical(a, b):
+    assert a.schema.equals(b.schema), (a.schema, b.schema)
+    assert a.num_rows == b.num_rows
+    for name in a.column_names:
+        x, y = a.column(name).to_pylist(), b.column(name).to_pylist()
+        bad = [i for i in range(len(x)) if not same(x[i], y[i])]
+        assert not bad, (name, bad[:5], [(x[i], y[i]) for i in bad[:3]])
