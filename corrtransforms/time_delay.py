@@ -230,6 +230,8 @@ def envelope_width_s(values, index: int, lag_step_s: float) -> float:
     """Full width at half maximum of the Hilbert envelope of ``values`` around sample ``index``."""
     env = np.abs(scipy.signal.hilbert(np.nan_to_num(np.asarray(values, dtype=float))))
     half = 0.5 * env[index]
+    if not half > 0:
+        return float("nan")
     left = index
     while left > 0 and env[left] > half:
         left -= 1
