@@ -396,6 +396,14 @@ def read_windows(task: ReadTask, config: AssetConfig, open_file: OpenFile = open
     window, and the window when no channel is left. A channel whose valid samples are all equal is
     rejected as flat; one with at least ``[reading] clip_fraction`` of its samples at repeated
     extreme values is flagged "clipped". Covariates are the mean of their valid grid samples.
+
+    The grid phase is the circular mean direction of the fractional positions,
+    ``phi = arg(mean(exp(2 pi i x))) / (2 pi)``, robust to the wrap-around at whole periods.
+
+    References
+    ----------
+    .. [1] K. V. Mardia and P. E. Jupp, *Directional Statistics*, Wiley, 2000, Sec. 2.2.1
+       (sample mean direction; from memory).
     """
     findings: List[Reject] = []
     data = _load(task, config, open_file, findings)
