@@ -183,3 +183,15 @@ def test_sample_rate_mismatch_rejects_every_window(tmp_path):
     # window 2 only holds the last sample (119.95 s is within half a 10-Hz period of 120 s)
     assert blocks == [] and reasons == {0: "sample_rate_mismatch", 1: "sample_rate_mismatch",
                                         2: "insufficient_coverage"}
+
+
+def test_grid_phase_is_the_circular_mean_of_scipy():
+    from scipy.stats import circmean
+
+    from corrtransforms.window_read import _circular_phase
+
+    rng = np.random.default_rng(9)
+    for centre in (0.0, 0.3, -0.45, 0.49):
+        x = np.arange(500) + centre + rng.uniform(-0.1, 0.1, 500)  # wraps around +-0.5 for 0.49
+        # reference: scipy.stats.circmean on the interval [-0.5, 0.5)
+        assert _circular_phase(x) == pytest.approx(circmean(x - np.floor(x), high=0.5, low=-0.5), abs=1e-9)
