@@ -106,11 +106,12 @@ def test_simulated_ou_corr_time_decay_time_and_stderr_against_scatter():
     lags = np.arange(int(10 * tau_c * FS) + 1) / FS
     reference = _hilbert_crossing(np.exp(-lags / tau_c), 1 / FS)
     assert np.median(decay) == pytest.approx(reference, rel=0.1)
-    # error propagation with Bartlett's lag covariance agrees with the scatter (factor 1.5);
+    # error propagation with Bartlett's lag covariance agrees with the scatter (factor 1.5;
+    # measured 1.37: the random end point of a noisy crossing adds a little);
     # treating lag errors as independent understates it several-fold
     ratio = np.std(corr, ddof=1) / np.median(corr_sd)
     assert 1 / 1.5 < ratio < 1.5, ratio
-    assert np.std(corr, ddof=1) / np.median(naive) > 2.5
+    assert np.std(corr, ddof=1) / np.median(naive) > 5  # measured: 26
     ratio_decay = np.std(decay, ddof=1) / np.median(decay_sd)
     assert 1 / 2 < ratio_decay < 2, ratio_decay
 
