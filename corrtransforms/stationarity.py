@@ -39,7 +39,7 @@ import dataclasses
 import datetime as _dt
 import functools
 import math
-from typing import Dict, Mapping, Optional, Sequence, Tuple
+from typing import Dict, Mapping, Optional, Tuple
 
 import numpy as np
 from scipy import fft as _fft
@@ -663,11 +663,13 @@ def correlation_time_scales(values, valid=None, sample_rate_hz: float = 1.0) -> 
     ``R(k) = IFFT(|X|^2)(k) / IFFT(|W|^2)(k)`` where ``W = FFT(w m)``. Sharp lines (ordinates
     above ``LINE_THRESHOLD`` times the local median over 25 frequency resolutions, with their
     leakage) are replaced by that median, because a deterministic tone never decorrelates
-    but its contribution to segment mean squares barely fluctuates. From the line-free
-    spectrum, the one-sided (analytic) correlation ``R(k) + i H[R](k)`` gives the envelope
-    ``|R + i H[R]| / R(0)``; the envelope decay time is where it falls below ``1/e`` for good
-    (searched up to ``n/4``). The integral time scale is ``T_I = int_0^{tau_0} rho(tau) dtau``
-    up to the first zero ``tau_0`` (common practice for a finite record).
+    but its contribution to segment mean squares barely fluctuates. From the line-free spectrum
+    come ``rho(k) = R(k) / R(0)`` and two scales: the envelope decay time, the largest lag
+    (searched up to ``n/4``) at which ``|rho|`` still reaches ``1/e`` -- the peaks of an
+    oscillating ``rho`` trace its envelope, so for a mode ``exp(-zeta omega_n tau) cos(...)``
+    this is ``1 / (zeta omega_n)`` to within half a period, and for ``exp(-tau / theta)`` it is
+    ``theta``; and the integral time scale ``T_I = int_0^{tau_0} rho(tau) dtau`` up to the first
+    zero ``tau_0`` (common practice for a finite record).
 
     For a Gaussian record the mean square over ``T`` seconds has variance
     ``(2/T) int R^2(tau) dtau`` (Bendat & Piersol Sect. 8.2), i.e. ``nu = n / sum_k rho_k^2``
@@ -676,8 +678,7 @@ def correlation_time_scales(values, valid=None, sample_rate_hz: float = 1.0) -> 
     References
     ----------
     J. S. Bendat and A. G. Piersol, Random Data, 4th ed., Sect. 5.2 (correlation functions),
-    Sect. 8.2 (mean square estimates and their random error), Sect. 13.2 (Hilbert transform and
-    envelope of correlation functions).
+    Sect. 8.2 (mean square estimates and their random error); section numbers from memory.
     """
     x, m = _as_record(values, valid)
     fs = float(sample_rate_hz)

@@ -402,7 +402,7 @@ def test_screen_window_rows_propagation_and_exclusion():
     assert (reject.stage, reject.subject, reject.reason, reject.action) == ("screen", WHOLE_WINDOW,
                                                                             "nonstationary_window", "rejected")
     assert reject.window_start_us == block.window_start_us and reject.asset == "test-asset"
-    assert "a:" in reject.detail or "a: p=" in reject.detail
+    assert "a: p=" in reject.detail and "alpha=0.05" in reject.detail
 
     off = st.screen_window(block, ScreeningConfig(enabled=False), pairs)
     assert off.indicators == () and not off.excluded
