@@ -13,7 +13,7 @@ the report is still written.
 
 Each picture shows the indicator's value per window with its standard-error band; when the shifts
 table holds the series, also the covariate-compensated expectation, the healthy band (expected
-+/- 3 residual scales), the baseline windows, the shifted windows and the estimated onsets, and
++/- 3 sqrt(resid_scale^2 + stderr^2), i.e. |z| <= 3), the baseline windows, the shifted windows and the estimated onsets, and
 a lower panel with the standardised residual z.
 
 The report reads only small tables (indicators and shifts are a few rows per window); from the
@@ -134,11 +134,12 @@ def _us(column: pa.ChunkedArray) -> np.ndarray:
 
 
 def _text_time(value) -> str:
+    """A time as "YYYY-MM-DD HH:MM" in UTC (the page says all times are UTC)."""
     if value is None:
         return ""
     if isinstance(value, (int, np.integer)):
         value = _dt.datetime.fromtimestamp(int(value) / 1e6, tz=_dt.timezone.utc)
-    return value.astimezone(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
+    return value.astimezone(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M")
 
 
 def asset_summaries(output: OutputTables) -> List[Dict]:
@@ -397,8 +398,10 @@ def plot_series(path: str, asset: str, subject: str, indicator: str, values: pa.
 
     Notes
     -----
-    The healthy band is ``expected +/- 3 resid_scale`` (three residual scales of the baseline
-    fit, common practice for control limits, Shewhart 1931); the error band of each value is
+    The healthy band is ``expected +/- 3 sqrt(resid_scale^2 + stderr^2)``, the values with
+    ``|z| <= 3`` (three-sigma limits, common practice for control charts, Shewhart 1931), where
+    ``resid_scale`` is the baseline residual scale net of the windows' own error and ``stderr``
+    the window's record-length error; the error band of each value is
     ``value +/- stderr``. The lower panel shows ``z = (value - expected) / sqrt(resid_scale^2 +
     stderr^2)`` as written by the shift detector.
     """
@@ -430,14 +433,15 @@ def plot_series(path: str, asset: str, subject: str, indicator: str, values: pa.
             first, last = stime[baseline][0], stime[baseline][-1]
             handles.append(ax.axvspan(first, last, color=BASELINE_COLOUR, zorder=0, label="baseline windows"))
             az.axvspan(first, last, color=BASELINE_COLOUR, zorder=0)
-        band = np.isfinite(s["expected"]) & np.isfinite(s["resid_scale"])
+        spread = np.sqrt(s["resid_scale"] ** 2 + np.where(np.isfinite(s["stderr"]), s["stderr"], 0.0) ** 2)
+        band = np.isfinite(s["expected"]) & np.isfinite(spread)
         if band.any():
             gap_time, expected, low, high = _break_gaps(
-                s["time"], s["expected"], np.where(band, s["expected"] - BAND_SCALES * s["resid_scale"], np.nan),
-                np.where(band, s["expected"] + BAND_SCALES * s["resid_scale"], np.nan))
+                s["time"], s["expected"], np.where(band, s["expected"] - BAND_SCALES * spread, np.nan),
+                np.where(band, s["expected"] + BAND_SCALES * spread, np.nan))
             handles.append(ax.fill_between(
                 gap_time, low, high, color=BAND_COLOUR, linewidth=0, zorder=1,
-                label=f"healthy band: expected \u00b1 {BAND_SCALES:g} residual scales"))
+                label=f"healthy band: |z| \u2264 {BAND_SCALES:g}"))
             handles.append(ax.plot(gap_time, expected, color=EXPECTED_COLOUR, linewidth=1.2, zorder=3,
                                    label="expected (covariate-compensated)")[0])
         shifted = s["state"] == "shifted"
@@ -473,8 +477,14 @@ def plot_series(path: str, asset: str, subject: str, indicator: str, values: pa.
     ax.plot(gap_time, line, color=INK, linewidth=0.5, alpha=0.5, zorder=2)
     handles.append(ax.scatter(time[finite & ok], value[finite & ok], s=7, color=INK, zorder=4, label="value"))
     if (finite & ~ok).any():
-        handles.append(ax.scatter(time[finite & ~ok], value[finite & ~ok], s=18, facecolors="none",
-                                  edgecolors=QUALITY_COLOUR, zorder=4, label="value with a quality code"))
+        codes: Dict[str, int] = {}
+        for text in v["quality"][finite & ~ok]:
+            for code in str(text).split(";"):
+                codes[code] = codes.get(code, 0) + 1
+        common = sorted(codes, key=lambda c: (-codes[c], c))
+        label = "value with quality code (" + ", ".join(common[:2]) + (", ..." if len(common) > 2 else "") + ")"
+        handles.append(ax.scatter(time[finite & ~ok], value[finite & ~ok], s=14, facecolors="none",
+                                  edgecolors=QUALITY_COLOUR, linewidths=0.7, zorder=4, label=label))
     if finite.any():
         low, high = np.nanpercentile(value[finite], [0.5, 99.5])
         pad = 0.15 * (high - low) if high > low else max(abs(high) * 0.05, 1e-12)
@@ -555,6 +565,9 @@ th, td { border: 1px solid #c8c8c8; padding: 0.25rem 0.55rem; text-align: left; 
 th { background: #eef2f7; }
 td.num { text-align: right; font-variant-numeric: tabular-nums; }
 td.time { white-space: nowrap; }
+table.episodes { font-size: 0.85rem; }
+table.episodes td, table.episodes th { padding: 0.2rem 0.4rem; }
+div.wide { overflow-x: auto; }
 tr.open td { background: #fdecea; }
 .up::before { content: "\\2191\\00a0"; } .down::before { content: "\\2193\\00a0"; }
 .grid { display: grid; grid-template-columns: repeat(auto-fill, minmax(30rem, 1fr)); gap: 1rem; }
@@ -581,9 +594,9 @@ def _episode_rows(episodes: List[Dict], plots: Dict[Tuple[str, str, str], str]) 
         direction = {1: '<span class="up">up</span>', -1: '<span class="down">down</span>'}.get(e["direction"], "")
         plot = plots.get((e["asset"], e["subject"], e["indicator"]))
         link = f'<a href="{_e(plot)}">picture</a>' if plot else ""
-        size = _number(e.get("shift_size"))
+        size = _number(e.get("shift_size"), 3)
         rows.append(
-            f'<tr class="{_e(e["status"])}"><td>{_e(e["status"])}</td><td>{_e(e["asset"])}</td>'
+            f'<tr class="{_e(e["status"])}"><td>{_e(e["asset"])}</td>'
             f'<td>{_e(e["subject"])}</td><td>{_e(e["indicator"])}</td><td>{direction}</td>'
             f'<td class="time">{_e(_text_time(e.get("onset")))}</td>'
             f'<td class="time">{_e(_text_time(e.get("first_alarm")))}</td>'
@@ -594,8 +607,8 @@ def _episode_rows(episodes: List[Dict], plots: Dict[Tuple[str, str, str], str]) 
     return rows
 
 
-_EPISODE_HEAD = ("<tr><th>status</th><th>asset</th><th>subject</th><th>indicator</th><th>direction</th>"
-                 "<th>estimated onset</th><th>first alarm</th><th>last shifted window</th><th>windows</th>"
+_EPISODE_HEAD = ("<tr><th>asset</th><th>subject</th><th>indicator</th><th>direction</th>"
+                 "<th>estimated onset</th><th>first alarm</th><th>last shifted</th><th>windows</th>"
                  "<th>shift size</th><th>peak |z|</th><th>detector</th><th></th></tr>")
 
 
@@ -622,7 +635,8 @@ def render_index(output: OutputTables, assets: List[Dict], rejects: List[Dict], 
         parts.append("<p>No series is in state shifted at its latest window.</p>")
     else:
         parts.append("<p>Series whose latest window is still in state shifted, earliest onset first.</p>")
-        parts.append("<table>" + _EPISODE_HEAD + "".join(_episode_rows(open_episodes, plot_index)) + "</table>")
+        parts.append("<div class=\"wide\"><table class=\"episodes\">" + _EPISODE_HEAD
+                     + "".join(_episode_rows(open_episodes, plot_index)) + "</table></div>")
 
     parts.append('<h2 id="assets">Assets and windows processed</h2>')
     if not assets:
@@ -658,7 +672,8 @@ def render_index(output: OutputTables, assets: List[Dict], rejects: List[Dict], 
 
     parts.append(f'<h2 id="closed">Closed shift episodes ({len(closed)})</h2>')
     if closed:
-        parts.append("<table>" + _EPISODE_HEAD + "".join(_episode_rows(closed, plot_index)) + "</table>")
+        parts.append("<div class=\"wide\"><table class=\"episodes\">" + _EPISODE_HEAD
+                     + "".join(_episode_rows(closed, plot_index)) + "</table></div>")
     else:
         parts.append("<p>None.</p>")
     if episode_source == "shifts":
@@ -674,7 +689,7 @@ def render_index(output: OutputTables, assets: List[Dict], rejects: List[Dict], 
             parts.append('<p class="note">No shifts table was found: the pictures show the indicator values '
                          "and their standard errors only, without expectation, healthy band or shift marks.</p>")
         parts.append("<p>Grey band: value \u00b1 standard error. Where a series is monitored: blue line, the "
-                     "covariate-compensated expectation; light blue band, expected \u00b1 3 residual scales; "
+                     "covariate-compensated expectation; light blue band, the healthy band where |z| \u2264 3 (expected \u00b1 3 \u221a(residual scale\u00b2 + standard error\u00b2)); "
                      "grey background, the baseline windows; red diamonds, shifted windows; dashed red line, "
                      "the estimated onset; lower panel, the standardised residual z.</p>")
         for asset in sorted({p["asset"] for p in plots}):

@@ -190,11 +190,12 @@ def test_index_lists_open_episodes_first_then_assets_and_reject_counts(full_repo
     headings = page.headings
     assert headings[0].startswith("Open shift episodes (1)")
     assert headings.index(next(h for h in headings if h.startswith("Assets"))) > 0
-    episodes = [row for table in page.tables if table and "status" in table[0]
-                for row in (dict(zip(table[0], r)) for r in table[1:])]
-    # open episode first (the frequency drop), then the closed lag episode
-    assert [(e["status"], e["subject"], e["indicator"]) for e in episodes] == [
-        ("open", "bending_1", "mode_freq_hz"), ("closed", "footing_n:footing_s", "lag_s")]
+    episode_tables = [[dict(zip(table[0], r)) for r in table[1:]]
+                      for table in page.tables if table and "estimated onset" in table[0]]
+    # the open episode's table first (the frequency drop), then the closed lag episode's
+    assert [[(e["subject"], e["indicator"]) for e in t] for t in episode_tables] == [
+        [("bending_1", "mode_freq_hz")], [("footing_n:footing_s", "lag_s")]]
+    episodes = [e for t in episode_tables for e in t]
     assert episodes[0]["direction"] == "down" and episodes[1]["direction"] == "up"
     assert episodes[1]["windows"] == "7"
     with open(os.path.join(root, "report", "index.html"), encoding="utf-8") as handle:
@@ -308,5 +309,5 @@ def test_an_episodes_table_is_used_when_present(tmp_path):
     _write(root, "episodes", pa.Table.from_pylist([episode]))
     assert report.main(["--output", root]) == 0
     page = _parse(os.path.join(root, "report", "index.html"))
-    first = _table_with(page, "status")[0]
+    first = _table_with(page, "estimated onset")[0]
     assert (first["subject"], first["indicator"], first["windows"]) == ("torsion_1", "mode_damping", "15")
