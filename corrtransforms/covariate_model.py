@@ -21,9 +21,6 @@ Huber, P. J. (1981). Robust Statistics. Wiley, Section 7.8 (Huber's psi, t = 1.3
 efficiency at the normal).
 Holland, P. W. & Welsch, R. E. (1977). Robust regression using iteratively reweighted
 least-squares. Comm. Statist. A6, 813-827.
-Peeters, B. & De Roeck, G. (2001). One-year monitoring of the Z24-Bridge: environmental effects
-versus damage events. Earthquake Eng. Struct. Dyn. 30, 149-171 (regression of natural
-frequencies on temperature before damage detection).
 """
 from __future__ import annotations
 
@@ -75,7 +72,7 @@ def huber_regression(design, response, t: float = HUBER_T, max_iter: int = 200,
 
     References
     ----------
-    Huber (1981) eq. (7.8.x) (from memory); Holland & Welsch (1977).
+    Huber (1981) Section 7.8 (from memory); Holland & Welsch (1977).
     """
     x = np.asarray(design, dtype=float)
     y = np.asarray(response, dtype=float)

@@ -11,7 +11,7 @@ ready for :class:`corrtransforms.beam.archive.WriteTables` (tables ``shifts``, `
 """
 from __future__ import annotations
 
-from typing import Any, Iterable, Optional, Union
+from typing import Any, Iterable, Union
 
 import apache_beam as beam
 import pyarrow as pa
