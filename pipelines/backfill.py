@@ -30,10 +30,14 @@ def _date(text: str) -> _dt.date:
 
 
 class BackfillOptions(PipelineOptions):
+    """Options of the backfill command. Nothing here is ``required`` for argparse: Beam parses the
+    arguments of every PipelineOptions subclass imported anywhere, so a required flag would break
+    other pipelines in the same process; :func:`main` checks them instead."""
+
     @classmethod
     def _add_argparse_args(cls, parser):
-        parser.add_argument("--config", required=True, help="the asset's TOML configuration file")
-        parser.add_argument("--output", required=True, help="output root folder (or filesystem URL)")
+        parser.add_argument("--config", default=None, help="the asset's TOML configuration file (required)")
+        parser.add_argument("--output", default=None, help="output root folder or filesystem URL (required)")
         parser.add_argument("--start", type=_date, default=None, help="first day (YYYY-MM-DD, asset time zone)")
         parser.add_argument("--end", type=_date, default=None, help="last day (YYYY-MM-DD, inclusive)")
         parser.add_argument("--run_id", default=None, help="id of this run (default: UTC time + random)")
@@ -101,6 +105,9 @@ def main(argv: Optional[List[str]] = None) -> Dict[str, int]:
     standard = options.view_as(StandardOptions)
     if not standard.runner:
         standard.runner = LOCAL_RUNNER
+    for flag in ("config", "output"):
+        if not getattr(args, flag):
+            raise SystemExit(f"--{flag} is required (python -m pipelines.backfill --config FILE --output DIR)")
     try:
         config = load_config(args.config)
     except ConfigError as err:

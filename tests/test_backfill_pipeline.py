@@ -201,6 +201,8 @@ def test_rerunning_a_day_replaces_exactly_that_day(tmp_path):
 
 
 def test_bad_arguments_fail_before_the_pipeline(tmp_path):
+    with pytest.raises(SystemExit, match="--output is required"):
+        backfill.main(["--config", str(tmp_path / "none.toml")])
     with pytest.raises(SystemExit, match="configuration error"):
         backfill.main(["--config", str(tmp_path / "none.toml"), "--output", str(tmp_path)])
     config = _write_config(tmp_path / "a.toml", tmp_path)
