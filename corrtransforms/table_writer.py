@@ -38,7 +38,8 @@ from corrtransforms.config import AssetConfig
 from corrtransforms.rejects import Reject
 
 TEMPORARY = "_temporary"
-SCHEMAS = {"correlations": tables.CORRELATIONS, "indicators": tables.INDICATORS, "rejects": tables.REJECTS}
+SCHEMAS = {"correlations": tables.CORRELATIONS, "indicators": tables.INDICATORS, "rejects": tables.REJECTS,
+           "shifts": tables.SHIFTS, "state": tables.STATE}
 #: rows of one Parquet row group in output files (common practice: tens of thousands of rows)
 ROW_GROUP_ROWS = 50_000
 META_PREFIX = "corrtransforms."

@@ -1,4 +1,4 @@
-"""Backfill: an asset's Parquet archive (or some of its days) -> correlations and rejects tables.
+"""Backfill: an asset's Parquet archive (or some of its days) -> all five output tables.
 
     python -m pipelines.backfill --config FILE --output DIR [--start YYYY-MM-DD] [--end YYYY-MM-DD]
                                  [any Beam flag, e.g. --runner, --direct_num_workers]
@@ -12,13 +12,16 @@ import argparse
 import datetime as _dt
 import sys
 import uuid
-from typing import Callable, Dict, List, Optional
+from typing import Any, Dict, List, Optional
 
 import apache_beam as beam
 from apache_beam.options.pipeline_options import PipelineOptions, StandardOptions
 
-from corrtransforms.beam import LOCAL_RUNNER, CorrelateWindows, PlanReads, ReadWindows, WriteTables
+from corrtransforms import tables
+from corrtransforms.beam import LOCAL_RUNNER
 from corrtransforms.beam.archive import window_accounting
+from corrtransforms.beam.monitoring import MonitorAsset
+from corrtransforms.beam.output_tables import read_partitions, write_episodes
 from corrtransforms.config import AssetConfig, ConfigError, load_config
 
 
@@ -29,10 +32,11 @@ def _date(text: str) -> _dt.date:
         raise argparse.ArgumentTypeError(f"{text!r} is not a date YYYY-MM-DD") from None
 
 
-class BackfillOptions(PipelineOptions):
-    """Options of the backfill command. Nothing here is ``required`` for argparse: Beam parses the
-    arguments of every PipelineOptions subclass imported anywhere, so a required flag would break
-    other pipelines in the same process; :func:`main` checks them instead."""
+class JobOptions(PipelineOptions):
+    """Options of the backfill and nightly commands (one class for both: Beam parses the arguments
+    of every PipelineOptions subclass imported anywhere, so two classes defining ``--config``
+    would conflict). Nothing here is ``required`` for argparse, for the same reason: a required
+    flag would break other pipelines in the same process; :func:`parse_options` checks them."""
 
     @classmethod
     def _add_argparse_args(cls, parser):
@@ -41,6 +45,13 @@ class BackfillOptions(PipelineOptions):
         parser.add_argument("--start", type=_date, default=None, help="first day (YYYY-MM-DD, asset time zone)")
         parser.add_argument("--end", type=_date, default=None, help="last day (YYYY-MM-DD, inclusive)")
         parser.add_argument("--run_id", default=None, help="id of this run (default: UTC time + random)")
+        parser.add_argument("--date", type=_date, default=None,
+                            help="nightly: the day to process (default: yesterday in the asset's time zone)")
+        parser.add_argument("--rebuild_state", action="store_true", default=False,
+                            help="nightly: rebuild a missing previous state from the indicators table")
+
+
+BackfillOptions = JobOptions
 
 
 def new_run_id() -> str:
@@ -49,32 +60,48 @@ def new_run_id() -> str:
 
 def build_pipeline(p: beam.Pipeline, config: AssetConfig, output: str, start: Optional[_dt.date] = None,
                    end: Optional[_dt.date] = None, run_id: Optional[str] = None,
-                   extra_tables: Optional[Callable[[Dict[str, beam.PCollection]], Dict[str, beam.PCollection]]] = None
-                   ) -> Dict[str, beam.PCollection]:
-    """Add the backfill's steps to ``p``; returns its main PCollections by name.
-
-    ``extra_tables(branches)`` may return further tables (name -> PCollection, e.g. "indicators")
-    built from ``branches`` ("tasks", "blocks", "correlations", "rejects"); they are written and
-    committed together with the correlations and rejects. Rejects added there must be returned
-    under "rejects_extra" to join the rejects table.
-    """
+                   initial_states: Any = None) -> Dict[str, beam.PCollection]:
+    """Add the whole job's steps to ``p`` (see :class:`corrtransforms.beam.MonitorAsset`)."""
     run_id = run_id or new_run_id()
-    plan = p | "Plan reads" >> PlanReads(config, start, end)
-    read = plan["tasks"] | "Read windows" >> ReadWindows(config)
-    correlated = read["blocks"] | "Correlate windows" >> CorrelateWindows(config)
-    branches = {"tasks": plan["tasks"], "blocks": read["blocks"], "correlations": correlated["correlations"],
-                "days": plan["days"]}
-    reject_sources: List[beam.PCollection] = [plan["rejects"], read["rejects"], correlated["rejects"]]
-    tables = {"correlations": correlated["correlations"]}
-    if extra_tables is not None:
-        extra = dict(extra_tables(branches))
-        if "rejects_extra" in extra:
-            reject_sources.append(extra.pop("rejects_extra"))
-        tables.update(extra)
-    tables["rejects"] = reject_sources | "All rejects" >> beam.Flatten()
-    branches["rejects"] = tables["rejects"]
-    branches["commits"] = tables | "Write tables" >> WriteTables(output, config, run_id, days=plan["days"])
-    return branches
+    return p | "Monitor asset" >> MonitorAsset(config, output, run_id, start, end, initial_states)
+
+
+def earlier_states(output: str, config: AssetConfig, start: Optional[_dt.date]):
+    """State rows written before ``start`` (None when starting from the first window)."""
+    if start is None:
+        return None
+    states = read_partitions(output, "state", config.name, tables.STATE, before=start)
+    return states if states.num_rows else None
+
+
+def run(options: PipelineOptions, config: AssetConfig, output: str, start: Optional[_dt.date],
+        end: Optional[_dt.date], run_id: str, initial_states: Any) -> Dict[str, int]:
+    """Build, run and summarise one job; rewrites the episodes summary afterwards."""
+    p = beam.Pipeline(options=options)
+    build_pipeline(p, config, output, start, end, run_id, initial_states)
+    result = p.run()
+    result.wait_until_finish()
+    counters = window_accounting(result.metrics())
+    counters["episodes"] = write_episodes(output, config, run_id)
+    print(summary(counters))
+    return counters
+
+
+def parse_options(argv: Optional[List[str]], options_class):
+    argv = list(sys.argv[1:] if argv is None else argv)
+    options = PipelineOptions(argv)
+    args = options.view_as(options_class)
+    standard = options.view_as(StandardOptions)
+    if not standard.runner:
+        standard.runner = LOCAL_RUNNER
+    for flag in ("config", "output"):
+        if not getattr(args, flag):
+            raise SystemExit(f"--{flag} is required")
+    try:
+        config = load_config(args.config)
+    except ConfigError as err:
+        raise SystemExit(f"configuration error: {err}") from None
+    return options, args, config
 
 
 def summary(counters: Dict[str, int]) -> str:
@@ -91,37 +118,24 @@ def summary(counters: Dict[str, int]) -> str:
     if findings:
         lines.append("findings: " + ", ".join(f"{k} {v}" for k, v in findings))
     lines.append(f"files listed {counters.get('files_listed', 0)}, unusable {counters.get('files_rejected', 0)}; "
-                 f"rows written: correlations {counters.get('rows_written_correlations', 0)}, "
-                 f"rejects {counters.get('rows_written_rejects', 0)}; "
+                 f"rows written: " + ", ".join(f"{t} {counters.get('rows_written_' + t, 0)}" for t in
+                                               ("correlations", "indicators", "shifts", "state", "rejects"))
+                 + "; "
                  f"files committed {counters.get('files_committed', 0)}, stale removed {counters.get('stale_files_removed', 0)}")
+    lines.append(f"shifts: {counters.get('shift_series', 0)} series, {counters.get('shift_windows', 0)} windows, "
+                 f"{counters.get('shift_windows_shifted', 0)} in state shifted; "
+                 f"episodes in the summary: {counters.get('episodes', 0)}")
     return "\n".join(lines)
 
 
 def main(argv: Optional[List[str]] = None) -> Dict[str, int]:
     """Run the backfill; returns the counters (also printed as a summary)."""
-    argv = list(sys.argv[1:] if argv is None else argv)
-    options = PipelineOptions(argv)
-    args = options.view_as(BackfillOptions)
-    standard = options.view_as(StandardOptions)
-    if not standard.runner:
-        standard.runner = LOCAL_RUNNER
-    for flag in ("config", "output"):
-        if not getattr(args, flag):
-            raise SystemExit(f"--{flag} is required (python -m pipelines.backfill --config FILE --output DIR)")
-    try:
-        config = load_config(args.config)
-    except ConfigError as err:
-        raise SystemExit(f"configuration error: {err}") from None
+    options, args, config = parse_options(argv, JobOptions)
     if args.start and args.end and args.end < args.start:
         raise SystemExit(f"--end {args.end} is before --start {args.start}")
     run_id = args.run_id or new_run_id()
-    p = beam.Pipeline(options=options)
-    build_pipeline(p, config, args.output, args.start, args.end, run_id)
-    result = p.run()
-    result.wait_until_finish()
-    counters = window_accounting(result.metrics())
-    print(summary(counters))
-    return counters
+    return run(options, config, args.output, args.start, args.end, run_id,
+               earlier_states(args.output, config, args.start))
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -271,19 +271,24 @@ class _CorrelateFn(beam.DoFn):
         self._config = config
 
     def setup(self):
-        from corrtransforms.window_correlation import correlate_window
+        from corrtransforms.window_analysis import analyse_window
 
-        self._correlate = correlate_window
+        self._analyse = analyse_window
         self._computed = counter("windows_computed")
 
     def process(self, block: WindowBlock):
         try:
-            result = self._correlate(block, self._config)
+            result, findings = self._analyse(block, self._config)
         except Exception as err:  # noqa: BLE001 - routed to rejects with the error text
             finding = _whole_window_reject(self._config, block.window_start_us, "correlate", "correlation_failed",
                                            f"{type(err).__name__}: {err}")
             _count_reject(finding)
             yield beam.pvalue.TaggedOutput("rejects", finding)
+            return
+        for finding in findings:  # screening's exclusion: a whole-window reject
+            _count_reject(finding)
+            yield beam.pvalue.TaggedOutput("rejects", finding)
+        if result is None:
             return
         if not result.pairs:
             finding = _whole_window_reject(self._config, block.window_start_us, "correlate", "no_valid_pairs",
@@ -296,7 +301,8 @@ class _CorrelateFn(beam.DoFn):
 
 
 class CorrelateWindows(beam.PTransform):
-    """Window blocks -> :class:`~corrtransforms.records.WindowCorrelation` (``correlate_window``).
+    """Window blocks -> :class:`~corrtransforms.records.WindowCorrelation` (``analyse_window``:
+    stationarity screening, then ``correlate_window``).
 
     Returns ``{"correlations": ..., "rejects": ...}``; a window whose estimator fails or has no
     usable pair becomes a whole-window reject (``correlation_failed`` / ``no_valid_pairs``).

@@ -1,0 +1,84 @@
+"""The whole monitoring job for one asset as one composite PTransform (wiring only).
+
+``pipeline | MonitorAsset(config, output_dir, run_id, start, end, initial_states)`` plans reads
+from the archive's footers, reads every window once, screens and correlates it, computes the
+indicators, runs the shift detectors and writes the five tables (correlations, indicators,
+shifts, state, rejects) into their partitions. The launchers in ``pipelines/`` are thin on top.
+"""
+from __future__ import annotations
+
+import datetime as _dt
+from typing import Any, Dict, Optional
+
+import apache_beam as beam
+
+from corrtransforms.beam.archive import CorrelateWindows, PlanReads, ReadWindows, WriteTables
+from corrtransforms.beam.indicators import ComputeIndicators
+from corrtransforms.beam.shifts import DetectShifts
+from corrtransforms.config import AssetConfig
+
+#: indicator rows per written batch (they are small: a few tens of bytes each)
+INDICATOR_BATCH = 20_000
+
+
+def _indicator_table(rows):
+    from corrtransforms.indicators import indicator_table
+
+    return indicator_table(rows)
+
+
+class MonitorAsset(beam.PTransform):
+    """Archive -> correlations, indicators, shifts, state and rejects tables of one asset.
+
+    Parameters
+    ----------
+    config : AssetConfig
+    output_dir : str
+        Output root (local folder or any Beam filesystem URL).
+    run_id : str
+        Id of the run (temporary files and provenance metadata).
+    start, end : datetime.date, optional
+        Calendar days (asset time zone, inclusive) to process; None means the whole archive.
+        The partitions of those days are replaced in every table.
+    initial_states : pyarrow.Table, optional
+        Detector states to resume from (the state table before ``start``); None starts fresh.
+
+    Returns
+    -------
+    dict of PCollection
+        ``"commits"`` (the commit results), and the intermediate collections ``"tasks"``,
+        ``"blocks"``, ``"correlations"``, ``"indicators"``, ``"shifts"``, ``"state"``,
+        ``"rejects"`` for callers that add their own steps.
+    """
+
+    def __init__(self, config: AssetConfig, output_dir: str, run_id: str, start: Optional[_dt.date] = None,
+                 end: Optional[_dt.date] = None, initial_states: Any = None):
+        super().__init__()
+        self._config, self._output, self._run_id = config, output_dir, run_id
+        self._start, self._end, self._initial_states = start, end, initial_states
+
+    def expand(self, pbegin):
+        config = self._config
+        plan = pbegin | "Plan reads" >> PlanReads(config, self._start, self._end)
+        read = plan["tasks"] | "Read windows" >> ReadWindows(config)
+        correlated = read["blocks"] | "Screen and correlate windows" >> CorrelateWindows(config)
+        indicators = correlated["correlations"] | "Compute indicators" >> ComputeIndicators(config)
+        shifts = indicators["indicators"] | "Detect shifts" >> DetectShifts(config, self._initial_states)
+        indicator_tables = (indicators["indicators"]
+                            | "Batch indicator rows" >> beam.BatchElements(min_batch_size=1000,
+                                                                           max_batch_size=INDICATOR_BATCH)
+                            | "Indicator tables" >> beam.Map(_indicator_table))
+        rejects = ((plan["rejects"], read["rejects"], correlated["rejects"], indicators["rejects"],
+                    shifts["rejects"])
+                   | "All rejects" >> beam.Flatten())
+        tables: Dict[str, beam.PCollection] = {
+            "correlations": correlated["correlations"],
+            "indicators": indicator_tables,
+            "shifts": shifts["shifts"],
+            "state": shifts["state"],
+            "rejects": rejects,
+        }
+        commits = tables | "Write tables" >> WriteTables(self._output, config, self._run_id, days=plan["days"])
+        return {"commits": commits, "tasks": plan["tasks"], "blocks": read["blocks"],
+                "correlations": correlated["correlations"], "indicators": indicators["indicators"],
+                "shifts": shifts["shifts"], "state": shifts["state"], "rejects": rejects}

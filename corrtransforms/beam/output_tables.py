@@ -1,0 +1,74 @@
+"""Reading back and summarising the output tables through Beam's FileSystems (no numerics).
+
+Used by the launchers before and after a pipeline: the nightly run reads earlier state (or
+indicators, to rebuild it), and every run rewrites the asset's episodes summary from its shifts
+table. All access goes through :class:`apache_beam.io.filesystems.FileSystems`, so the output
+folder may be any registered filesystem URL.
+"""
+from __future__ import annotations
+
+import datetime as _dt
+import re
+from typing import List, Optional
+
+import pyarrow as pa
+import pyarrow.parquet as pq
+from apache_beam.io.filesystems import CompressionTypes, FileSystems
+
+from corrtransforms import shift_series, table_writer, tables
+from corrtransforms.beam.archive import BeamFiles
+from corrtransforms.config import AssetConfig
+
+_DATE = re.compile(r"/date=(\d{4}-\d{2}-\d{2})/")
+
+
+def partition_files(output_dir: str, table: str, asset: str) -> List[tuple]:
+    """(date, path) of every committed Parquet file of one table and asset, sorted."""
+    pattern = FileSystems.join(output_dir, table, f"asset={asset}", "date=*", "*.parquet")
+    try:
+        matched = FileSystems.match([pattern])[0].metadata_list
+    except Exception:  # noqa: BLE001 - nothing written yet matches nothing
+        return []
+    found = []
+    for item in matched:
+        m = _DATE.search(item.path.replace("\\", "/"))
+        if m:
+            found.append((m.group(1), item.path))
+    return sorted(found)
+
+
+def read_partitions(output_dir: str, table: str, asset: str, schema: pa.Schema,
+                    before: Optional[_dt.date] = None) -> pa.Table:
+    """Concatenate the table's partitions of ``asset`` (only dates before ``before`` if given)."""
+    pieces = []
+    for date, path in partition_files(output_dir, table, asset):
+        if before is not None and _dt.date.fromisoformat(date) >= before:
+            continue
+        with FileSystems.open(path, compression_type=CompressionTypes.UNCOMPRESSED) as handle:
+            piece = pq.read_table(handle)
+        pieces.append(table_writer.conform(piece, schema))
+    if not pieces:
+        return schema.empty_table()
+    return pa.concat_tables(pieces)
+
+
+def write_episodes(output_dir: str, config: AssetConfig, run_id: str) -> int:
+    """Rewrite ``episodes/asset=NAME/episodes.parquet`` from the asset's whole shifts table.
+
+    The summary is derived data: it is rebuilt after every run (written to a temporary name and
+    renamed into place). Returns the number of episodes.
+    """
+    shifts = read_partitions(output_dir, "shifts", config.name, tables.SHIFTS)
+    episodes = shift_series.shift_episodes(shifts)
+    store = BeamFiles()
+    folder = store.join(output_dir, "episodes", f"asset={config.name}")
+    store.mkdirs(folder)
+    final = store.join(folder, "episodes.parquet")
+    temporary = store.join(folder, f"_episodes-{run_id}.tmp")
+    metadata = table_writer.provenance_metadata(config, run_id)
+    episodes = episodes.replace_schema_metadata({**(episodes.schema.metadata or {}),
+                                                 **{k.encode(): v.encode() for k, v in metadata.items()}})
+    with store.create(temporary) as handle:
+        pq.write_table(episodes, handle, compression="zstd", use_compliant_nested_type=True)
+    store.rename(temporary, final)
+    return episodes.num_rows

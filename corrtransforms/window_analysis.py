@@ -1,0 +1,71 @@
+"""One window from samples to correlation results: stationarity screening, then correlation.
+
+:func:`analyse_window` is what the correlate stage runs per window. It screens the window for
+stationarity first (so that an excluded window costs no correlation), correlates it, and
+merges the screening's findings into the result:
+
+- every pair's quality gains the screening codes of its subject (``"nonstationary"`` and the
+  "not screened" codes); an auto pair takes its channel's codes, a cross pair ``"a:b"`` the pair's
+  (which already include either channel's flag);
+- ``subject_quality`` carries the same codes for the indicators stage, and every mode takes the
+  codes of its channel, so a mode fitted on a flagged record is flagged too;
+- the ``stationarity_p`` rows become ``extra_indicators``.
+
+With ``[screening] action = "exclude"`` a flagged window yields no result, only its
+``nonstationary_window`` reject: it is neither written nor fed to baselines and detectors.
+"""
+from __future__ import annotations
+
+import dataclasses
+from typing import Dict, List, Optional, Tuple
+
+from corrtransforms.config import AssetConfig
+from corrtransforms.records import WindowCorrelation
+from corrtransforms.rejects import Reject
+from corrtransforms.stationarity import screen_window
+from corrtransforms.window_block import WindowBlock
+from corrtransforms.window_correlation import correlate_window
+
+
+def _screened_pairs(config: AssetConfig, block: WindowBlock):
+    pairs = config.correlation.pairs
+    if isinstance(pairs, str):
+        return pairs
+    present = set(block.channels)
+    return [p for p in pairs if p[0] in present and p[1] in present]
+
+
+def analyse_window(block: WindowBlock, config: AssetConfig
+                   ) -> Tuple[Optional[WindowCorrelation], List[Reject]]:
+    """Screen and correlate one window.
+
+    Parameters
+    ----------
+    block : WindowBlock
+        The window's samples and validity mask.
+    config : AssetConfig
+        ``[screening]``, ``[correlation]`` and ``[[modes]]``.
+
+    Returns
+    -------
+    result : WindowCorrelation or None
+        None when the window is excluded by screening.
+    rejects : list of Reject
+        The screening's ``nonstationary_window`` reject when excluded, else empty.
+    """
+    screening = screen_window(block, config.screening, _screened_pairs(config, block))
+    if screening.excluded:
+        return None, list(screening.rejects)
+    result = correlate_window(block, config)
+    codes: Dict[str, Tuple[str, ...]] = {s: tuple(q) for s, q in screening.subject_quality.items()}
+    pairs = tuple(dataclasses.replace(p, quality=tuple(p.quality) + codes.get(p.subject, ()))
+                  if codes.get(p.subject) else p
+                  for p in result.pairs)
+    subject_quality = {s: tuple(result.subject_quality.get(s, ())) + q for s, q in codes.items()}
+    for mode in config.modes:
+        if codes.get(mode.channel):
+            subject_quality[mode.name] = tuple(subject_quality.get(mode.name, ())) + codes[mode.channel]
+    for subject, existing in result.subject_quality.items():
+        subject_quality.setdefault(subject, tuple(existing))
+    return dataclasses.replace(result, pairs=pairs, subject_quality=subject_quality,
+                               extra_indicators=tuple(result.extra_indicators) + tuple(screening.indicators)), []
