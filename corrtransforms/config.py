@@ -124,9 +124,9 @@ class ScreeningConfig:
 class ShiftsConfig:
     detector: str = "both"
     cusum_k: float = 0.5
-    cusum_h: float = 5.0
-    ewma_lambda: float = 0.2
-    ewma_L: float = 3.0
+    cusum_h: float = 10.0
+    ewma_lambda: float = 0.1
+    ewma_L: float = 4.3
     #: covariates regressed out of each indicator; None means all configured covariates
     compensate: Optional[Tuple[str, ...]] = None
     #: indicators the detectors run on (the others are still written to the indicators table)
@@ -470,9 +470,9 @@ def parse_config(raw: Mapping[str, Any], base_dir: str = "", source: str = "") -
         indicators=tuple(monitored),
         detector=_choice("[shifts] detector", sh.get("detector", "both"), DETECTORS),
         cusum_k=_number("[shifts] cusum_k", sh.get("cusum_k", 0.5), low=0),
-        cusum_h=_number("[shifts] cusum_h", sh.get("cusum_h", 5.0), low=0, low_open=True),
-        ewma_lambda=_number("[shifts] ewma_lambda", sh.get("ewma_lambda", 0.2), low=0, high=1, low_open=True),
-        ewma_L=_number("[shifts] ewma_L", sh.get("ewma_L", 3.0), low=0, low_open=True),
+        cusum_h=_number("[shifts] cusum_h", sh.get("cusum_h", 10.0), low=0, low_open=True),
+        ewma_lambda=_number("[shifts] ewma_lambda", sh.get("ewma_lambda", 0.1), low=0, high=1, low_open=True),
+        ewma_L=_number("[shifts] ewma_L", sh.get("ewma_L", 4.3), low=0, low_open=True),
         compensate=compensate,
     )
 
