@@ -40,10 +40,40 @@ QUALITY_CODES = {
     "tone_record_short": "the record is shorter than the random-phase tone bound for the strongest sharp PSD peak",
 }
 
-#: a periodogram bin this many times above the larger of the medians on its two sides is a
-#: sharp peak (common practice: 20 dB; a broadband periodogram bin is exponentially distributed,
-#: so P(bin > 100 x median) = exp(-69) and noise never passes)
-TONE_RATIO = 100.0
+#: probability that a broadband periodogram bin passes the sharp-peak test (common practice:
+#: so small that noise never passes; for one block it is the 20 dB rule, ratio 100 to the median)
+TONE_FALSE_ALARM = 1e-30
+
+
+def tone_ratio(n_averaged: int, false_alarm: float = TONE_FALSE_ALARM) -> float:
+    """Peak-to-median ratio a sharp peak must exceed in a periodogram averaged over K blocks.
+
+    Parameters
+    ----------
+    n_averaged : int
+        Number ``K`` of averaged blocks (1 for a raw periodogram).
+    false_alarm : float
+        Probability that a bin of a smooth (broadband) spectrum exceeds the ratio.
+
+    Returns
+    -------
+    float
+        ``q / m`` with ``q`` the upper ``false_alarm`` quantile and ``m`` the median of
+        ``Gamma(K, 1/K)``: 99.7 for K = 1, 10.1 for K = 10.
+
+    Notes
+    -----
+    A periodogram bin of a Gaussian record is ``S(f) chi^2_2 / 2``; the average of K blocks is
+    ``S(f) Gamma(K, 1/K)`` [1]_ (Sec. 11.5, from memory).
+
+    References
+    ----------
+    .. [1] J. S. Bendat and A. G. Piersol, *Random Data*, 4th ed., Wiley, 2010.
+    """
+    from scipy.stats import gamma
+
+    K = max(int(n_averaged), 1)
+    return float(gamma.isf(false_alarm, K, scale=1.0 / K) / gamma.median(K, scale=1.0 / K))
 
 
 def _nan_to_zero(x):
@@ -541,7 +571,7 @@ def tone_required_half_length(angular_frequency, target_rel_error=0.05):
         return 1.0 / (2.0 * float(target_rel_error) * np.asarray(angular_frequency, dtype=float))
 
 
-def strongest_tone(frequencies_hz, periodogram, ratio: float = TONE_RATIO,
+def strongest_tone(frequencies_hz, periodogram, n_averaged: int = 1, ratio: Optional[float] = None,
                    half_width_bins: Optional[int] = None, exclude_bins: int = 3):
     """Frequency of the strongest sharp peak of each periodogram (NaN when there is none).
 
@@ -549,9 +579,12 @@ def strongest_tone(frequencies_hz, periodogram, ratio: float = TONE_RATIO,
     ----------
     frequencies_hz : array_like, shape (K,)
     periodogram : array_like, shape (n_channels, K) or (K,)
-    ratio : float
+    n_averaged : int
+        Blocks averaged in the periodogram (sets the default ``ratio``).
+    ratio : float, optional
         A peak is sharp when it exceeds ``ratio`` times the larger of the medians of the
         ``half_width_bins`` bins on each side of it (beyond ``exclude_bins`` of its main lobe).
+        None means :func:`tone_ratio` ``(n_averaged)``.
     half_width_bins : int, optional
         None means ``max(32, K // 100)``.
     exclude_bins : int
@@ -565,27 +598,27 @@ def strongest_tone(frequencies_hz, periodogram, ratio: float = TONE_RATIO,
     Notes
     -----
     Only the highest bin (at least ``half_width_bins`` from either end) is tested. Common
-    practice; see :data:`TONE_RATIO`.
+    practice; see :data:`TONE_FALSE_ALARM`.
     """
+    if ratio is None:
+        ratio = tone_ratio(n_averaged)
     P = np.atleast_2d(np.asarray(periodogram, dtype=float))
     f = np.asarray(frequencies_hz, dtype=float)
     K = P.shape[-1]
     W = int(half_width_bins) if half_width_bins is not None else max(32, K // 100)
-    freq = np.full(P.shape[0], np.nan)
-    peak_ratio = np.full(P.shape[0], np.nan)
     lo, hi = W + exclude_bins, K - W - exclude_bins
     if hi <= lo:
-        return freq, peak_ratio
-    for c in range(P.shape[0]):
-        k = lo + int(np.argmax(P[c, lo:hi]))
-        left = np.median(P[c, k - exclude_bins - W:k - exclude_bins])
-        right = np.median(P[c, k + exclude_bins + 1:k + exclude_bins + 1 + W])
-        background = max(left, right)
-        if background <= 0:
-            continue
-        peak_ratio[c] = P[c, k] / background
-        if peak_ratio[c] >= ratio:
-            freq[c] = f[k]
+        return np.full(P.shape[0], np.nan), np.full(P.shape[0], np.nan)
+    rows = np.arange(P.shape[0])
+    k = lo + np.argmax(P[:, lo:hi], axis=1)
+    offsets = np.arange(W)
+    left = np.median(P[rows[:, None], (k - exclude_bins - W)[:, None] + offsets], axis=1)
+    right = np.median(P[rows[:, None], (k + exclude_bins + 1)[:, None] + offsets], axis=1)
+    background = np.maximum(left, right)
+    peak = P[rows, k]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        peak_ratio = np.where(background > 0, peak / np.where(background > 0, background, 1.0), np.nan)
+    freq = np.where(peak_ratio >= ratio, f[k], np.nan)
     return freq, peak_ratio
 
 

@@ -28,17 +28,15 @@ from .window_block import WindowBlock
 UNDECAYED_COEFFICIENT = 0.2
 
 
-def _usable_channels(block: WindowBlock, spectra, min_pairs: int) -> np.ndarray:
-    """Channels with enough valid samples and non-zero variance (others are skipped)."""
-    valid = block.valid & np.isfinite(block.values)
-    counts = spectra.valid_counts
-    data = np.where(valid, block.values, 0.0)
-    safe = np.maximum(counts, 1)
-    mean = data.sum(axis=0) / safe
-    var = np.where(valid, block.values - mean, 0.0)
-    var = (var * var).sum(axis=0) / safe
-    magnitude = np.abs(data).max(axis=0) if block.n_samples else np.zeros(len(block.channels))
-    return (counts >= max(min_pairs, 2)) & (var > (1e-12 * magnitude) ** 2) & (var > 0)
+def _usable_channels(spectra, min_pairs: int) -> np.ndarray:
+    """Channels with enough valid samples and non-zero variance (others are skipped).
+
+    Zero variance: standard deviation at most 1e-10 of the channel's mean magnitude (a flat
+    record up to the round-off of its mean).
+    """
+    var = np.nan_to_num(spectra.variance)
+    flat = var <= 1e-20 * spectra.channel_mean ** 2
+    return (spectra.valid_counts >= max(min_pairs, 2)) & ~flat & (var > 0)
 
 
 def _requested_pairs(pairs, names: Sequence[str], usable: np.ndarray) -> List[Tuple[int, int]]:
@@ -111,7 +109,7 @@ def correlate_window(block: WindowBlock, config: AssetConfig,
     names = tuple(block.channels)
     spectra = channel_spectra(block.values, fs, cc.max_lag_s, valid=block.valid, detrend=cc.detrend)
     L, n = spectra.max_lag, spectra.n_samples
-    usable = _usable_channels(block, spectra, min_pairs)
+    usable = _usable_channels(spectra, min_pairs)
     requested = _requested_pairs(cc.pairs, names, usable)
     used = [i for i in range(len(names)) if usable[i]]
     channel_codes = {names[i]: tuple(block.channel_quality.get(names[i], ())) for i in used}
@@ -140,9 +138,13 @@ def correlate_window(block: WindowBlock, config: AssetConfig,
         freqs, psd = err.lag_window_psd(R_biased, fs)
         bandwidth_ch = err.statistical_bandwidth(freqs, psd)
         # per-channel figures
-        ms_rel = err.correlation_random_error(rho_auto, rho_auto, rho_auto, count_auto)[:, L]
+        # general (Bartlett) relative error of each mean square: var R(0) / R(0)^2 =
+        # sum_v [rho(v)^2 + rho(v) rho(-v)] / N = 2 sum_v rho(v)^2 / N (correlation_random_error at 0)
+        finite_auto = np.where(np.isfinite(rho_auto), rho_auto, 0.0)
+        ms_rel = np.sqrt(2.0 * np.einsum("ij,ij->i", finite_auto, finite_auto) / count_auto[:, L])
         integral_scale = np.array([err.integral_time_scale(r[L:], dt) for r in rho_auto])
-        tone_freq, _ = err.strongest_tone(spectra.frequencies_hz(), spectra.periodogram()[used])
+        tone_freq, _ = err.strongest_tone(spectra.frequencies_hz(), spectra.periodogram()[used],
+                                          n_averaged=spectra.n_segments)
         tone_record = 2.0 * err.tone_required_half_length(2 * np.pi * tone_freq, target)
         tail = max(1, int(np.ceil(0.1 * L)))
         checks = {}

@@ -195,7 +195,46 @@ def test_invalid_options_name_the_allowed_values():
         resolve_pairs([(0, 2)], 2)
 
 
-def test_transform_length_avoids_wraparound():
+def test_transform_lengths_avoid_wraparound():
     spectra = channel_spectra(np.zeros((1000, 1)), 100.0, 2.0)
+    assert spectra.segment_fft_length >= spectra.segment_length + 2 * 200
     assert spectra.fft_length >= 1000 + 200
-    assert spectra.mask_spectra is None  # complete record: counts need no transform
+    assert spectra.mask_segment_spectra is None  # complete record: counts need no transform
+
+
+@pytest.mark.parametrize("segment_length", [1, 7, 50, 64, 333, 1000])
+def test_any_block_length_gives_the_direct_sums(segment_length):
+    # overlap-save blocks, including a partial last block and blocks shorter than the lag range
+    rng = np.random.default_rng(13)
+    n, L = 333, 40
+    x = rng.standard_normal((n, 2))
+    valid = rng.random((n, 2)) > 0.1
+    spectra = channel_spectra(x, 1.0, L, valid=valid, segment_length=segment_length)
+    est = correlate_spectra(spectra, "all", estimator="unbiased", min_pairs=1)
+    xm = np.where(valid, x - np.array([x[valid[:, j], j].mean() for j in range(2)]), 0.0)
+    for row, (a, b) in enumerate(est.pairs):
+        sums = _direct(xm[:, a], xm[:, b], L)
+        counts = _direct(valid[:, a].astype(float), valid[:, b].astype(float), L)
+        np.testing.assert_array_equal(est.pair_count[row], np.rint(counts))
+        np.testing.assert_allclose(est.R[row], sums / counts, rtol=1e-9, atol=1e-12)
+
+
+def test_full_resolution_path_agrees_with_block_path():
+    # band (0, fs/2) keeps every bin: the full-length transform must give the same numbers
+    rng = np.random.default_rng(14)
+    x = rng.standard_normal((5000, 3))
+    valid = rng.random((5000, 3)) > 0.05
+    spectra = channel_spectra(x, 10.0, 3.0, valid=valid)
+    assert spectra.n_segments > 1
+    blocks = correlate_spectra(spectra, "all", estimator="unbiased")
+    full = correlate_spectra(spectra, "all", estimator="unbiased", band_hz=(0.0, 5.0))
+    np.testing.assert_allclose(full.R, blocks.R, rtol=1e-9, atol=1e-12)
+    np.testing.assert_allclose(full.scale, blocks.scale, rtol=1e-9)
+    np.testing.assert_array_equal(full.pair_count, blocks.pair_count)
+
+
+def test_input_arrays_are_not_modified():
+    x = np.asfortranarray(np.random.default_rng(1).standard_normal((200, 2)) + 5.0)
+    before = x.copy()
+    correlate_block(x, 1.0, 10, detrend="linear")
+    np.testing.assert_array_equal(x, before)

@@ -337,9 +337,14 @@ def test_strongest_tone_found_in_noise_and_absent_without_tone():
     noise = rng.standard_normal((n, 4))
     noise[:, 1] += 0.5 * np.cos(2 * np.pi * 7.3 * t + 1.0)
     spectra = channel_spectra(noise, fs, 1.0)
-    freq, _ = err.strongest_tone(spectra.frequencies_hz(), spectra.periodogram())
-    assert freq[1] == pytest.approx(7.3, abs=fs / spectra.fft_length)
+    assert spectra.n_segments > 4  # a block-averaged periodogram
+    freq, _ = err.strongest_tone(spectra.frequencies_hz(), spectra.periodogram(), n_averaged=spectra.n_segments)
+    assert freq[1] == pytest.approx(7.3, abs=fs / spectra.segment_fft_length)
     assert np.isnan(freq[[0, 2, 3]]).all()
+    # the threshold keeps the false-alarm probability of a broadband bin fixed:
+    # Gamma(K, 1/K) quantiles (scipy.stats.gamma); K = 1 gives the 20 dB rule
+    assert err.tone_ratio(1) == pytest.approx(100, rel=0.01)
+    assert err.tone_ratio(10) < err.tone_ratio(2) < err.tone_ratio(1)
 
 
 # ------------------------------------------------------------------------------------------
