@@ -379,14 +379,15 @@ def gappy_blocks(draw):
     x = np.where(nan_mask & (np.arange(n)[:, None] % 3 == 0), np.nan, values)
     L = draw(st.integers(0, n // 3))
     detrend = draw(st.sampled_from(["mean", "none", "linear"]))
-    return x, L, detrend
+    segment_length = draw(st.one_of(st.none(), st.integers(1, n)))
+    return x, L, detrend, segment_length
 
 
 @settings(max_examples=150, deadline=None)
 @given(gappy_blocks())
 def test_biased_estimate_satisfies_validity_invariants(case):
-    x, L, detrend = case
-    spectra = channel_spectra(x, 2.0, L / 2.0, detrend=detrend)
+    x, L, detrend, segment_length = case
+    spectra = channel_spectra(x, 2.0, L / 2.0, detrend=detrend, segment_length=segment_length)
     est = correlate_spectra(spectra, "all", min_pairs=1)
     n = x.shape[0]
     k = np.abs(np.arange(-L, L + 1))
