@@ -480,8 +480,13 @@ def correlate_spectra(spectra: ChannelSpectra, pairs: PairSpec = "all", estimato
     -----
     With the detrended, zero-filled records ``x`` and masks ``m`` [1]_::
 
-        S_ab(k) = sum_t x_a(t) x_b(t + k) = IDFT(conj(X_a) X_b)[k]
-        C_ab(k) = sum_t m_a(t) m_b(t + k) = IDFT(conj(M_a) M_b)[k]     (pair count)
+        S_ab(k) = sum_t x_a(t) x_b(t + k)        C_ab(k) = sum_t m_a(t) m_b(t + k)
+
+    computed for the full band as ``sum_i IDFT(conj(U_a,i) V_b,i)[k + L]`` over the
+    overlap-save blocks of :func:`channel_spectra` (one inverse FFT per pair), and with
+    ``band_hz`` or a weighting as ``IDFT(W conj(X_a) X_b)[k]`` from full-length transforms
+    (one inverse FFT per pair); then::
+
         biased:   R_ab(k) = S_ab(k) / sqrt(N_a N_b)
         unbiased: R_ab(k) = S_ab(k) / C_ab(k)
         rho_ab(k) = R_ab(k) / sqrt(R_aa(0) R_bb(0)),   R_aa(0) = sum x_a^2 / N_a
