@@ -1,0 +1,120 @@
+"""Nightly runs: a sequence of nights gives exactly the tables of one backfill over the same days.
+
+Uses a short, sparse version of the invented demo archive (14 days, a record every 6 hours; the
+baseline is the configured first ten days). Every comparison reads the tables back from Parquet
+with pyarrow.dataset, as a user would.
+"""
+import datetime as dt
+import os
+import shutil
+
+import pyarrow.dataset as ds
+import pytest
+
+from demo_data import generate
+from pipelines import backfill, nightly
+
+DEMO_DIR = os.path.join(os.path.dirname(os.path.dirname(os.path.abspath(__file__))), "demo_data")
+TABLES = ("correlations", "indicators", "shifts", "state", "rejects")
+SORT_KEYS = {
+    "correlations": ["window_start", "channel_a", "channel_b"],
+    "indicators": ["window_start", "subject", "indicator"],
+    "shifts": ["window_start", "subject", "indicator"],
+    "state": ["window_start", "subject", "indicator"],
+    "rejects": ["stage", "source", "subject", "reason", "detail"],
+}
+
+
+def read_table(output, name):
+    folder = os.path.join(output, name)
+    if not os.path.isdir(folder):
+        return None
+    table = ds.dataset(folder, format="parquet", partitioning="hive").to_table()
+    return table.sort_by([(k, "ascending") for k in SORT_KEYS[name]]).to_pydict()
+
+
+def assert_same_tables(left, right):
+    for name in TABLES:
+        a, b = read_table(left, name), read_table(right, name)
+        assert (a is None) == (b is None), name
+        if a is None:
+            continue
+        assert a.keys() == b.keys(), name
+        for column in a:
+            assert a[column] == b[column] or _nan_equal(a[column], b[column]), (name, column)
+
+
+def _nan_equal(xs, ys):
+    if len(xs) != len(ys):
+        return False
+    for x, y in zip(xs, ys):
+        if x == y:
+            continue
+        if isinstance(x, float) and isinstance(y, float) and x != x and y != y:
+            continue
+        if isinstance(x, list) and isinstance(y, list) and _nan_equal(x, y):
+            continue
+        return False
+    return True
+
+
+@pytest.fixture(scope="module")
+def site(tmp_path_factory):
+    root = tmp_path_factory.mktemp("nightly")
+    generate.write_archive(str(root / "archive"), days=14, every_hours=6)
+    shutil.copy(os.path.join(DEMO_DIR, "footbridge.toml"), root / "footbridge.toml")
+    config = str(root / "footbridge.toml")
+    full = str(root / "full")
+    backfill.main(["--config", config, "--output", full])
+    return root, config, full
+
+
+def test_nights_after_a_partial_backfill_equal_one_backfill(site):
+    root, config, full = site
+    stepwise = str(root / "stepwise")
+    backfill.main(["--config", config, "--output", stepwise, "--start", "2025-05-01", "--end", "2025-05-12"])
+    for day in ("2025-05-13", "2025-05-14"):
+        nightly.main(["--config", config, "--output", stepwise, "--date", day])
+    assert_same_tables(full, stepwise)
+    # the nights really did resume: the shifts of the last night are not in state baseline
+    shifts = read_table(stepwise, "shifts")
+    assert set(shifts["state"]) >= {"baseline", "normal"}
+
+
+def test_a_missing_previous_state_stops_the_night_with_status_2(site, capsys):
+    root, config, _ = site
+    empty = str(root / "empty")
+    with pytest.raises(SystemExit) as stop:
+        nightly.main(["--config", config, "--output", empty, "--date", "2025-05-13"])
+    assert stop.value.code == nightly.MISSING_STATE
+    message = capsys.readouterr().err
+    assert "no detector state before 2025-05-13" in message and "--rebuild_state" in message
+    assert not os.path.exists(os.path.join(empty, "shifts"))  # nothing was written
+
+
+def test_rebuild_state_from_the_indicators_gives_the_backfill_night(site):
+    root, config, full = site
+    rebuilt = str(root / "rebuilt")
+    backfill.main(["--config", config, "--output", rebuilt, "--start", "2025-05-01", "--end", "2025-05-13"])
+    shutil.rmtree(os.path.join(rebuilt, "state"))
+    with pytest.raises(SystemExit):
+        nightly.main(["--config", config, "--output", rebuilt, "--date", "2025-05-14"])
+    nightly.main(["--config", config, "--output", rebuilt, "--date", "2025-05-14", "--rebuild_state"])
+    full_shifts, rebuilt_shifts = read_table(full, "shifts"), read_table(rebuilt, "shifts")
+    last_day = [i for i, t in enumerate(full_shifts["window_start"]) if t.date() == dt.date(2025, 5, 14)]
+    rebuilt_day = [i for i, t in enumerate(rebuilt_shifts["window_start"]) if t.date() == dt.date(2025, 5, 14)]
+    assert last_day and len(last_day) == len(rebuilt_day)
+    for column in ("subject", "indicator", "z", "cusum_pos", "cusum_neg", "ewma", "state", "expected"):
+        assert _nan_equal([full_shifts[column][i] for i in last_day], [rebuilt_shifts[column][i] for i in rebuilt_day])
+
+
+def test_yesterday_is_taken_in_the_assets_time_zone(site):
+    _, config, _ = site
+    from corrtransforms.config import load_config
+
+    asset = load_config(config)
+    late_evening_utc = dt.datetime(2026, 3, 1, 23, 30, tzinfo=dt.timezone.utc)
+    assert nightly.yesterday(asset, late_evening_utc) == dt.date(2026, 2, 28)
+    tokyo = asset.__class__(**{**asset.__dict__, "archive": asset.archive.__class__(
+        **{**asset.archive.__dict__, "timezone": "Asia/Tokyo"})})
+    assert nightly.yesterday(tokyo, late_evening_utc) == dt.date(2026, 3, 1)  # already 2 March in Tokyo
