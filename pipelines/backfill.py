@@ -9,27 +9,39 @@ tries to download a runner binary from the network. ``--runner`` overrides it.
 from __future__ import annotations
 
 import argparse
+import logging
 import datetime as _dt
+import posixpath
 import sys
 import uuid
 from typing import Any, Dict, List, Optional
 
 import apache_beam as beam
+from apache_beam.io.filesystem import CompressionTypes
+from apache_beam.io.filesystems import FileSystems
 from apache_beam.options.pipeline_options import PipelineOptions, StandardOptions
 
 from corrtransforms import tables
 from corrtransforms.beam import LOCAL_RUNNER
 from corrtransforms.beam.archive import window_accounting
-from corrtransforms.beam.monitoring import MonitorAsset
+from corrtransforms.beam.monitoring import PROGRESS_LOGGER, MonitorAsset
 from corrtransforms.beam.output_tables import read_partitions, write_episodes
-from corrtransforms.config import AssetConfig, ConfigError, load_config
+from corrtransforms import config as config_module
+from corrtransforms.config import AssetConfig, ConfigError, load_config, parse_config
 
 
-def _date(text: str) -> _dt.date:
+def _date(text: str) -> str:
+    """Check a ``YYYY-MM-DD`` flag and keep it as text: a portable runner sends every option to
+    the job service as JSON, where a ``datetime.date`` value fails; :func:`as_date` converts."""
     try:
-        return _dt.date.fromisoformat(text)
+        return _dt.date.fromisoformat(text).isoformat()
     except ValueError:
         raise argparse.ArgumentTypeError(f"{text!r} is not a date YYYY-MM-DD") from None
+
+
+def as_date(text: Optional[str]) -> Optional[_dt.date]:
+    """A date flag's value (``YYYY-MM-DD`` text or None) as a date."""
+    return None if text is None else _dt.date.fromisoformat(str(text))
 
 
 class JobOptions(PipelineOptions):
@@ -74,9 +86,22 @@ def earlier_states(output: str, config: AssetConfig, start: Optional[_dt.date]):
     return states if states.num_rows else None
 
 
+def _show_progress() -> None:
+    """Progress lines of the local run on stderr (the runner's own logging stays as it is)."""
+    log = logging.getLogger(PROGRESS_LOGGER)
+    if not any(getattr(h, "_corrtransforms", False) for h in log.handlers):
+        handler = logging.StreamHandler(sys.stderr)
+        handler.setFormatter(logging.Formatter("%(asctime)s %(message)s", "%H:%M:%S"))
+        handler._corrtransforms = True
+        log.addHandler(handler)
+    log.setLevel(logging.INFO)
+    log.propagate = False
+
+
 def run(options: PipelineOptions, config: AssetConfig, output: str, start: Optional[_dt.date],
         end: Optional[_dt.date], run_id: str, initial_states: Any) -> Dict[str, int]:
     """Build, run and summarise one job; rewrites the episodes summary afterwards."""
+    _show_progress()
     p = beam.Pipeline(options=options)
     build_pipeline(p, config, output, start, end, run_id, initial_states)
     result = p.run()
@@ -87,6 +112,34 @@ def run(options: PipelineOptions, config: AssetConfig, output: str, start: Optio
     return counters
 
 
+def load_job_config(path: str) -> AssetConfig:
+    """The asset's configuration from a local file or from any Beam filesystem URL.
+
+    A URL (``gs://bucket/sites/pump-7.toml``) is read through FileSystems; a relative
+    ``[archive] path`` in it resolves against the URL's folder, as it does for a local file.
+    """
+    if "://" not in path:
+        return load_config(path)
+    try:
+        with FileSystems.open(path, compression_type=CompressionTypes.UNCOMPRESSED) as handle:
+            text = handle.read().decode("utf-8")
+    except Exception as err:  # noqa: BLE001 - BeamIOError, IOError, a missing filesystem
+        raise ConfigError("--config", path, f"cannot be read ({type(err).__name__}: {err})") from None
+    try:
+        raw = config_module.tomllib.loads(text)
+    except config_module.tomllib.TOMLDecodeError as err:
+        raise ConfigError("--config", path, f"is not valid TOML ({err})") from None
+    archive = raw.get("archive")
+    if isinstance(archive, dict) and isinstance(archive.get("path"), str):
+        relative = archive["path"]
+        if "://" not in relative and not relative.startswith("/"):
+            scheme, rest = path.split("://", 1)
+            folder = posixpath.dirname(rest)
+            raw = {**raw, "archive": {**archive,
+                                      "path": f"{scheme}://{posixpath.normpath(posixpath.join(folder, relative))}"}}
+    return parse_config(raw, base_dir="", source=path)
+
+
 def parse_options(argv: Optional[List[str]], options_class):
     argv = list(sys.argv[1:] if argv is None else argv)
     options = PipelineOptions(argv)
@@ -94,11 +147,14 @@ def parse_options(argv: Optional[List[str]], options_class):
     standard = options.view_as(StandardOptions)
     if not standard.runner:
         standard.runner = LOCAL_RUNNER
+    # the launcher reads the configuration and earlier state before the pipeline exists: give
+    # the filesystems the options now (S3 credentials and endpoint, GCS project...)
+    FileSystems.set_options(options)
     for flag in ("config", "output"):
         if not getattr(args, flag):
             raise SystemExit(f"--{flag} is required")
     try:
-        config = load_config(args.config)
+        config = load_job_config(args.config)
     except ConfigError as err:
         raise SystemExit(f"configuration error: {err}") from None
     return options, args, config
@@ -131,11 +187,11 @@ def summary(counters: Dict[str, int]) -> str:
 def main(argv: Optional[List[str]] = None) -> Dict[str, int]:
     """Run the backfill; returns the counters (also printed as a summary)."""
     options, args, config = parse_options(argv, JobOptions)
-    if args.start and args.end and args.end < args.start:
-        raise SystemExit(f"--end {args.end} is before --start {args.start}")
+    start, end = as_date(args.start), as_date(args.end)
+    if start and end and end < start:
+        raise SystemExit(f"--end {end} is before --start {start}")
     run_id = args.run_id or new_run_id()
-    return run(options, config, args.output, args.start, args.end, run_id,
-               earlier_states(args.output, config, args.start))
+    return run(options, config, args.output, start, end, run_id, earlier_states(args.output, config, start))
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -22,7 +22,7 @@ from corrtransforms import tables
 from corrtransforms.beam.output_tables import partition_files, read_partitions
 from corrtransforms.config import AssetConfig
 from corrtransforms.state_replay import replay_states
-from pipelines.backfill import JobOptions, new_run_id, parse_options, run
+from pipelines.backfill import JobOptions, as_date, new_run_id, parse_options, run
 
 #: exit status when the previous day's state is missing
 MISSING_STATE = 2
@@ -58,7 +58,7 @@ def previous_states(output: str, config: AssetConfig, day: _dt.date, rebuild: bo
 def main(argv: Optional[List[str]] = None) -> Dict[str, int]:
     """Run one night; returns the counters (also printed as a summary)."""
     options, args, config = parse_options(argv, JobOptions)
-    day = args.date or yesterday(config)
+    day = as_date(args.date) or yesterday(config)
     initial = previous_states(args.output, config, day, args.rebuild_state)
     run_id = args.run_id or new_run_id()
     print(f"nightly {config.name}: processing {day}")

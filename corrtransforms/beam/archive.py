@@ -91,8 +91,18 @@ class BeamFiles:
             FileSystems.delete(list(paths))
 
     def delete_tree(self, folder: str) -> None:
-        if FileSystems.exists(folder):
+        """Delete everything below ``folder``. Object stores (gs://, s3://) have no folders:
+        ``exists`` is false for a prefix and deleting the prefix name deletes nothing, so the
+        files below it are listed and deleted one by one."""
+        if FileSystems.exists(folder):  # a real folder: local disk, HDFS
             FileSystems.delete([folder])
+            return
+        try:
+            below = FileSystems.match([FileSystems.join(folder, "**")])[0].metadata_list
+        except Exception:  # noqa: BLE001 - nothing below the prefix matches nothing
+            return
+        if below:
+            FileSystems.delete([m.path for m in below])
 
     def remove_empty_folder(self, folder: str) -> None:
         if "://" in folder:
