@@ -257,7 +257,7 @@ def read_footer(path: str, config: AssetConfig, open_file: OpenFile = open_local
                 return None, [_file_reject(config, path, "empty_file", "0 bytes")]
             handle.seek(0)
             try:
-                pf = pq.ParquetFile(handle)
+                pf = pq.ParquetFile(handle, page_checksum_verification=True)
                 schema = pf.schema_arrow
             except Exception as err:  # noqa: BLE001 - any decoding error means unreadable
                 return None, [_file_reject(config, path, "unreadable_file", f"{type(err).__name__}: {err}")]
@@ -358,6 +358,9 @@ class FilePiece:
     absent: Tuple[str, ...] = ()
     start_us: int = 0
     decoded_bytes: int = 0
+    #: (first, last) timestamp (UTC us) of each row group in ``row_groups``, from planning; the
+    #: read stage checks the decoded rows against them and reports the windows of a lost row group
+    row_group_spans_us: Tuple[Tuple[int, int], ...] = ()
 
 
 @dataclasses.dataclass(frozen=True)
@@ -531,7 +534,8 @@ def plan_reads(footers: Sequence[FileFooter], footer_rejects: Sequence[Reject], 
             pieces.append(FilePiece(path=footer.path, row_groups=rgs, columns=columns,
                                     time_naive=footer.time_naive, absent=absent,
                                     start_us=min(s.start_us for s in spans),
-                                    decoded_bytes=sum(s.decoded_bytes for s in spans)))
+                                    decoded_bytes=sum(s.decoded_bytes for s in spans),
+                                    row_group_spans_us=tuple((s.start_us, s.end_us) for s in spans)))
         starts = tuple(k * hop_us for k in window_ks)
         tasks.append(ReadTask(asset=config.name, task_id=_compact_utc(starts[0]), window_starts_us=starts,
                               channels=channels, covariates=covariates, pieces=tuple(pieces),

@@ -38,6 +38,8 @@ REASONS = {
     "sample_rate_mismatch": ("rejected", "the sample interval in the data differs from the nominal sample rate"),
     "overlapping_files": ("repaired", "two files hold samples of the same span; identical samples were kept once"),
     "decode_failed": ("rejected", "a row group could not be decoded while reading the window"),
+    "statistics_mismatch": ("rejected", "a row group's timestamps disagree with its footer statistics; its rows were not used"),
+    "null_timestamps": ("rejected", "rows without a timestamp (null); they were not used"),
     # windows (stage "read")
     "insufficient_coverage": ("rejected", "fewer valid samples than [windows] min_coverage requires"),
     "duplicate_timestamps": ("repaired", "equal timestamps with equal values; kept once"),

@@ -37,9 +37,13 @@ MIN_CLIP_REPEATS = 2
 
 
 class _TaskData:
-    """The task's decoded rows, time-sorted: times (UTC us), file index, values, absent mask."""
+    """The task's decoded rows, time-sorted: times (UTC us), file index, values, absent mask.
 
-    def __init__(self, times, file_index, values, absent, channel_codes, unordered_times, files):
+    ``lost`` lists the row groups whose rows were (partly) not used, as ``(first_us, last_us,
+    path, row_groups, names, reason, detail)``: the read stage reports every window they overlap.
+    """
+
+    def __init__(self, times, file_index, values, absent, channel_codes, unordered_times, files, lost=()):
         self.times = times
         self.file_index = file_index
         self.values = values
@@ -47,6 +51,7 @@ class _TaskData:
         self.channel_codes = channel_codes
         self.unordered_times = unordered_times
         self.files = files
+        self.lost = list(lost)
 
 
 def _time_to_us(column: pa.ChunkedArray) -> Tuple[pa.Array, bool]:
@@ -56,36 +61,118 @@ def _time_to_us(column: pa.ChunkedArray) -> Tuple[pa.Array, bool]:
     return cast.cast(pa.int64()), naive
 
 
+def _read_piece(handle, piece) -> Tuple[List[Tuple[int, Optional[pa.Table]]], List[Tuple[int, str]]]:
+    """Decode a piece's row groups, verifying page checksums where the file stores them.
+
+    Returns ``[(row group, table)]`` and ``[(row group, error text)]`` for the row groups that
+    failed: one corrupt row group costs only its own rows.
+    """
+    parquet = pq.ParquetFile(handle, page_checksum_verification=True)
+    try:
+        whole = parquet.read_row_groups(list(piece.row_groups), columns=list(piece.columns))
+    except Exception:  # noqa: BLE001 - retried row group by row group below
+        whole = None
+    if whole is not None:
+        counts = [parquet.metadata.row_group(i).num_rows for i in piece.row_groups]
+        if sum(counts) == whole.num_rows:
+            offsets = np.concatenate([[0], np.cumsum(counts)])
+            return [(rg, whole.slice(int(offsets[j]), counts[j])) for j, rg in enumerate(piece.row_groups)], []
+    done, failed = [], []
+    for rg in piece.row_groups:
+        try:
+            done.append((rg, parquet.read_row_group(rg, columns=list(piece.columns))))
+        except Exception as err:  # noqa: BLE001 - reported per row group
+            failed.append((rg, f"{type(err).__name__}: {err}"))
+    return done, failed
+
+
+def _row_group_columns(table: pa.Table, piece, names, archive, wide: bool) -> Dict[str, pa.Array]:
+    """The row group's columns as the task needs them (raises on types that cannot be cast)."""
+    times, naive = _time_to_us(table.column(archive.time_column))
+    columns = {"time": times}
+    if wide:
+        for name in names:
+            if name in piece.absent:
+                columns[name] = pa.nulls(table.num_rows, pa.float64())
+            else:
+                columns[name] = table.column(name).cast(pa.float64())
+    else:
+        channel = table.column(archive.channel_column).cast(pa.string())
+        columns["code"] = pc.fill_null(pc.index_in(channel, value_set=pa.array(list(names), pa.string())), -1)
+        columns["value"] = table.column(archive.value_column).cast(pa.float64())
+    return columns, naive
+
+
 def _load(task: ReadTask, config: AssetConfig, open_file: OpenFile, findings: List[Reject]) -> _TaskData:
-    """Decode the task's row groups into one set of numpy arrays (one conversion per column)."""
+    """Decode the task's row groups into one set of numpy arrays (one conversion per column).
+
+    Notes
+    -----
+    Every decoded row group is checked against planning: its non-null timestamps must span
+    exactly the (first, last) range its footer statistics gave. A row group that fails to
+    decode (including a page checksum mismatch) or disagrees with its statistics is not used
+    (``decode_failed`` / ``statistics_mismatch``) and every window it overlaps gets a
+    per-channel finding. Rows with a null timestamp are dropped (``null_timestamps``).
+    """
     archive = config.archive
     wide = archive.layout == "wide"
     names = task.channels + task.covariates
-    tables, naive_flags, absent_rows, files = [], [], [], []
+    tables, naive_flags, absent_rows, files, lost = [], [], [], [], []
     first_date = local_date(task.window_starts_us[0], archive.timezone)
+
+    def file_finding(path, reason, detail):
+        findings.append(Reject(stage="read", source=path, subject=WHOLE_FILE, reason=reason, detail=detail,
+                               asset=config.name, date=first_date))
+
     for piece in task.pieces:
+        spans = dict(zip(piece.row_groups, piece.row_group_spans_us)) if piece.row_group_spans_us else {}
+        whole_span = (min((s[0] for s in spans.values()), default=piece.start_us),
+                      max((s[1] for s in spans.values()), default=task.window_starts_us[-1] + 10**15))
+        read_names = tuple(n for n in names if (not wide) or n in piece.columns)
         try:
             with open_file(piece.path) as handle:
-                table = pq.ParquetFile(handle).read_row_groups(list(piece.row_groups), columns=list(piece.columns))
+                decoded, failed = _read_piece(handle, piece)
         except Exception as err:  # noqa: BLE001 - reported, the task's other files still count
-            findings.append(Reject(stage="read", source=piece.path, subject=WHOLE_FILE, reason="decode_failed",
-                                   detail=f"row groups {list(piece.row_groups)}: {type(err).__name__}: {err}",
-                                   asset=config.name, date=first_date))
+            decoded, failed = [], [(rg, f"{type(err).__name__}: {err}") for rg in piece.row_groups]
+        kept = []
+        for rg, table in decoded:
+            try:
+                columns, naive = _row_group_columns(table, piece, names, archive, wide)
+            except Exception as err:  # noqa: BLE001 - a column that cannot be converted
+                failed.append((rg, f"{type(err).__name__}: {err}"))
+                continue
+            times = columns["time"]
+            if times.null_count:
+                file_finding(piece.path, "null_timestamps",
+                             f"row group {rg}: {times.null_count} rows without a timestamp dropped")
+                lo, hi = spans.get(rg, whole_span)
+                lost.append((lo, hi, piece.path, (rg,), read_names, "null_timestamps",
+                             f"{times.null_count} rows of {piece.path} row group {rg} have no timestamp and "
+                             "were not used; this window may have lost samples"))
+                keep = pc.is_valid(times)
+                columns = {k: pc.filter(v, keep) for k, v in columns.items()}
+            t = columns["time"].to_numpy(zero_copy_only=False).astype(np.int64)
+            if naive:
+                t = local_to_utc_us(t, archive.timezone)
+            if rg in spans and t.size and (int(t.min()), int(t.max())) != tuple(spans[rg]):
+                lo, hi = min(int(t.min()), spans[rg][0]), max(int(t.max()), spans[rg][1])
+                file_finding(piece.path, "statistics_mismatch",
+                             f"row group {rg}: timestamps span {iso_utc(int(t.min()))} .. {iso_utc(int(t.max()))}, "
+                             f"statistics said {iso_utc(spans[rg][0])} .. {iso_utc(spans[rg][1])}; rows not used")
+                lost.append((lo, hi, piece.path, (rg,), read_names, "statistics_mismatch",
+                             f"samples of {piece.path} row group {rg} were not used (its statistics are wrong)"))
+                continue
+            kept.append((rg, pa.table(columns), naive))
+        for rg, error in failed:
+            file_finding(piece.path, "decode_failed", f"row group {rg}: {error}")
+            lo, hi = spans.get(rg, whole_span)
+            lost.append((lo, hi, piece.path, (rg,), read_names, "decode_failed",
+                         f"samples of {piece.path} row group {rg} could not be decoded (treated as gaps)"))
+        if not kept:
             continue
-        times, naive = _time_to_us(table.column(archive.time_column))
-        columns = {"time": times}
-        if wide:
-            for name in names:
-                if name in piece.absent:
-                    columns[name] = pa.nulls(table.num_rows, pa.float64())
-                else:
-                    columns[name] = table.column(name).cast(pa.float64())
-        else:
-            channel = table.column(archive.channel_column).cast(pa.string())
-            columns["code"] = pc.fill_null(pc.index_in(channel, value_set=pa.array(list(names), pa.string())), -1)
-            columns["value"] = table.column(archive.value_column).cast(pa.float64())
-        tables.append(pa.table(columns))
-        naive_flags.append(naive)
+        # one table per piece (its row groups in file order), one naive flag per piece
+        tables.append(pa.concat_tables([t for _, t, _ in kept]))
+        naive_flags.append(kept[0][2])
         absent_rows.append([name in piece.absent for name in names] if wide else [])
         files.append(piece.path)
 
@@ -122,7 +209,7 @@ def _load(task: ReadTask, config: AssetConfig, open_file: OpenFile, findings: Li
         if codes is not None:
             codes = codes[order]
     unordered_times = np.sort(np.concatenate(unordered)) if unordered else np.zeros(0, np.int64)
-    return _TaskData(times, file_index, values, absent, codes, unordered_times, files)
+    return _TaskData(times, file_index, values, absent, codes, unordered_times, files, lost)
 
 
 def _circular_phase(x: np.ndarray) -> float:
@@ -409,7 +496,24 @@ def read_windows(task: ReadTask, config: AssetConfig, open_file: OpenFile = open
     data = _load(task, config, open_file, findings)
     yield from findings
     for start_us in task.window_starts_us:
+        yield from _lost_rows(task, data, config, int(start_us))
         yield from _window(task, data, config, int(start_us))
+
+
+def _lost_rows(task: ReadTask, data: _TaskData, config: AssetConfig, start_us: int) -> List[Reject]:
+    """Per-channel findings of a window that overlaps row groups whose rows were not used."""
+    if not data.lost:
+        return []
+    _, _, n_samples, period_us = window_grid(config)
+    window_lo, window_hi = start_us - 0.5 * period_us, start_us + (n_samples - 0.5) * period_us
+    out: List[Reject] = []
+    for lo, hi, _, _, names, reason, detail in data.lost:
+        if hi < window_lo or lo >= window_hi:
+            continue
+        for name in names:
+            if name in task.channels or name in task.covariates:
+                out.append(_finding(config, start_us, reason, detail, subject=name, action="rejected"))
+    return out
 
 
 def read_task(task: ReadTask, config: AssetConfig, open_file: OpenFile = open_local_file
