@@ -8,6 +8,8 @@ shifts, state, rejects) into their partitions. The launchers in ``pipelines/`` a
 from __future__ import annotations
 
 import datetime as _dt
+import logging
+import time
 from typing import Any, Dict, Optional
 
 import apache_beam as beam
@@ -19,6 +21,52 @@ from corrtransforms.config import AssetConfig
 
 #: indicator rows per written batch (they are small: a few tens of bytes each)
 INDICATOR_BATCH = 20_000
+
+
+PROGRESS_LOGGER = "corrtransforms.progress"
+
+
+class _ProgressFn(beam.DoFn):
+    """Passes read tasks through unchanged and logs windows done / planned and the rate.
+
+    It sits just before the read in the same fused stage, so when a task arrives the windows of
+    the tasks before it in this worker are done (read, screened, correlated, indicators). Each
+    worker process counts its own share; on the local in-process runner that is the whole job.
+    The planned count comes from the plan as a side input (a side input on the read itself would
+    be the same; one here keeps the read transform free of it).
+    """
+
+    def __init__(self, asset: str, interval_s: float):
+        self._asset, self._interval_s = asset, interval_s
+
+    def setup(self):
+        self._log = logging.getLogger(PROGRESS_LOGGER)
+        self._done = 0
+        self._pending = 0
+        self._started = None
+        self._last = 0.0
+
+    def _report(self, planned: int, force: bool = False) -> None:
+        now = time.monotonic()
+        if self._started is None:
+            self._started, self._last = now, now
+            self._log.info("%s: %d windows planned", self._asset, planned)
+            return
+        if force or now - self._last >= self._interval_s:
+            self._last = now
+            rate = self._done / max(now - self._started, 1e-9)
+            self._log.info("%s: windows done %d / %d planned (%.1f windows/s)", self._asset, self._done,
+                           planned, rate)
+
+    def process(self, task, planned):
+        self._done += self._pending
+        self._report(planned)
+        self._pending = len(task.window_starts_us)
+        yield task
+
+    def finish_bundle(self):
+        self._done += self._pending
+        self._pending = 0
 
 
 def _indicator_table(rows):
@@ -42,6 +90,8 @@ class MonitorAsset(beam.PTransform):
         The partitions of those days are replaced in every table.
     initial_states : pyarrow.Table, optional
         Detector states to resume from (the state table before ``start``); None starts fresh.
+    progress_interval_s : float
+        Seconds between progress log lines (logger ``corrtransforms.progress``, level INFO).
 
     Returns
     -------
@@ -52,15 +102,21 @@ class MonitorAsset(beam.PTransform):
     """
 
     def __init__(self, config: AssetConfig, output_dir: str, run_id: str, start: Optional[_dt.date] = None,
-                 end: Optional[_dt.date] = None, initial_states: Any = None):
+                 end: Optional[_dt.date] = None, initial_states: Any = None, progress_interval_s: float = 15.0):
         super().__init__()
         self._config, self._output, self._run_id = config, output_dir, run_id
         self._start, self._end, self._initial_states = start, end, initial_states
+        self._progress_interval_s = progress_interval_s
 
     def expand(self, pbegin):
         config = self._config
         plan = pbegin | "Plan reads" >> PlanReads(config, self._start, self._end)
-        read = plan["tasks"] | "Read windows" >> ReadWindows(config)
+        planned = (plan["tasks"]
+                   | "Windows per task" >> beam.Map(lambda task: len(task.window_starts_us))
+                   | "Windows planned" >> beam.CombineGlobally(sum))
+        tasks = plan["tasks"] | "Log progress" >> beam.ParDo(
+            _ProgressFn(config.name, self._progress_interval_s), planned=beam.pvalue.AsSingleton(planned))
+        read = tasks | "Read windows" >> ReadWindows(config)
         correlated = read["blocks"] | "Screen and correlate windows" >> CorrelateWindows(config)
         indicators = correlated["correlations"] | "Compute indicators" >> ComputeIndicators(config)
         shifts = indicators["indicators"] | "Detect shifts" >> DetectShifts(config, self._initial_states)
