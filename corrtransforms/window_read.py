@@ -445,6 +445,10 @@ def _window(task: ReadTask, data: _TaskData, config: AssetConfig, start_us: int)
     for j, name in enumerate(task.covariates):
         c = n_channels + j
         covariates[name] = float(covariate_sums[c] / covariate_counts[c]) if covariate_counts[c] else float("nan")
+        if not covariate_counts[c]:
+            out.append(_finding(config, start_us, "insufficient_coverage",
+                                "covariate without a valid sample in the window; its mean is missing (NaN)",
+                                subject=name))
     block = WindowBlock(
         asset=config.name, window_start_us=int(start_us), window_length_s=config.windows.length_s,
         sample_rate_hz=config.archive.sample_rate_hz,
