@@ -13,7 +13,8 @@ import pytest
 
 from corrtransforms.archive_plan import list_local_archive, plan_archive
 from corrtransforms.config import load_config
-from corrtransforms.window_correlation import correlate_window, correlation_table
+from corrtransforms.window_analysis import analyse_window
+from corrtransforms.window_correlation import correlation_table
 from corrtransforms.window_read import read_task
 from pipelines import backfill
 from tests.archive_data import T0, US, bad_wide_archive, long_table, samples, wide_table, write_files
@@ -45,13 +46,16 @@ def _write_config(path, archive, layout="wide", names='["a", "b"]', timezone="UT
 
 
 def _in_memory(config):
-    """The same computation without Beam: plan, read, correlate_window, correlation_table."""
+    """The same computation without Beam: plan, read, analyse_window (screening + correlate_window),
+    correlation_table."""
     plan = plan_archive(list_local_archive(config.archive.path), config)
     results, whole = [], []
     for task in plan.tasks:
         blocks, rejects = read_task(task, config)
         whole += [r for r in rejects if r.rejects_whole_window]
-        results += [correlate_window(b, config) for b in blocks]
+        analysed = [analyse_window(b, config) for b in blocks]
+        whole += [r for _, found in analysed for r in found if r.rejects_whole_window]
+        results += [result for result, _ in analysed if result is not None]
     results = [r for r in results if r.pairs]
     return plan, correlation_table(results), whole
 

@@ -16,7 +16,7 @@ from corrtransforms.archive_plan import list_local_archive, plan_archive
 from corrtransforms.beam import LOCAL_RUNNER, CorrelateWindows, PlanReads, ReadWindows, WriteTables, window_accounting
 from corrtransforms.rejects import Reject
 from corrtransforms.window_block import WindowBlock
-from corrtransforms.window_correlation import correlate_window
+from corrtransforms.window_analysis import analyse_window
 from corrtransforms.window_read import read_task
 from tests.archive_data import T0, US, bad_wide_archive, make_config, samples, wide_table, write_files
 
@@ -81,13 +81,13 @@ def _correlation_key(wc):
                   round(p.rel_error, 12)) for p in wc.pairs)
 
 
-def test_correlate_windows_matches_correlate_window_in_memory(bad):
+def test_correlate_windows_matches_analyse_window_in_memory(bad):
     _, config, _, blocks, _ = bad
     some = blocks[:6]
     dead = WindowBlock(config.name, T0 - 60 * US, 60.0, 10.0, ("a",), np.zeros((600, 1)), np.zeros((600, 1), bool))
     broken = WindowBlock(config.name, T0 - 120 * US, 60.0, 10.0, ("a", "b"), np.zeros((600, 1)),
                          np.ones((600, 1), bool))  # two channel names, one column: the estimator raises
-    expected = [_correlation_key(correlate_window(b, config)) for b in some]
+    expected = [_correlation_key(analyse_window(b, config)[0]) for b in some]
     with _pipeline() as p:
         out = p | beam.Create(some + [dead, broken]) | CorrelateWindows(config)
         assert_that(out["correlations"] | beam.Map(_correlation_key), equal_to(expected), label="rows")
@@ -101,7 +101,7 @@ def test_write_tables_commits_partitions_and_a_rerun_replaces_them(tmp_path):
     write_files(folder, wide_table(samples(300, 10.0, seed=3)), 100, 250)
     config = make_config(folder)
     plan = plan_archive(list_local_archive(folder), config)
-    correlations = [correlate_window(b, config) for t in plan.tasks for b in read_task(t, config)[0]]
+    correlations = [analyse_window(b, config)[0] for t in plan.tasks for b in read_task(t, config)[0]]
     finding = Reject("plan", "/x", "*", "empty_file", "0 bytes", config.name, date="2024-03-04")
     out = str(tmp_path / "out")
     for run, flush in (("many", 1), ("few", 2**30)):  # one file per element, then one per bundle
