@@ -239,10 +239,16 @@ class _Assembly:
 
 
 def _median_interval(times: np.ndarray) -> float:
-    unique = np.unique(times)
-    if unique.size < 3:
+    """Median spacing of the distinct timestamps (the rows are time-sorted: the spacings of the
+    distinct values are the non-zero differences, no sort needed)."""
+    steps = np.diff(times)
+    if steps.size and steps.min() < 0:  # not sorted after all: the general way
+        steps = np.diff(np.unique(times))
+    else:
+        steps = steps[steps != 0]
+    if steps.size < 2:
         return float("nan")
-    return float(np.median(np.diff(unique)))
+    return float(np.median(steps))
 
 
 def _assemble(times: np.ndarray, values: np.ndarray, file_index: np.ndarray, absent: np.ndarray,
@@ -343,7 +349,7 @@ def _window(task: ReadTask, data: _TaskData, config: AssetConfig, start_us: int)
     if times.size == 0:
         return [_whole_window(config, start_us, "insufficient_coverage", "no samples in the window")]
     file_index = data.file_index[lo:hi]
-    sources = tuple(data.files[i] for i in np.unique(file_index))
+    sources = tuple(data.files[i] for i in np.flatnonzero(np.bincount(file_index)))
 
     groups: List[Tuple[List[int], np.ndarray]] = []  # (columns, rows) to assemble together
     if data.channel_codes is None:
