@@ -553,15 +553,21 @@ def segment_statistics(values, valid=None, segments: int = 20) -> SegmentStatist
     divide the record into equal intervals, compute a mean square value for each).
     """
     x, m = _as_record(values, valid)
+    return _segment_statistics_of_record(x, m, segments)
+
+
+def _segment_statistics_of_record(x: np.ndarray, m: np.ndarray, segments: int) -> SegmentStatistics:
+    """:func:`segment_statistics` of a record already cleaned by :func:`_as_record`."""
     length = _segment_layout(len(x), segments)
     used = length * segments
     count = m[:used].reshape(segments, length).sum(axis=1)
     center = float(x[m].mean()) if m.any() else 0.0
     deviation = np.where(m, x - center, 0.0)[:used].reshape(segments, length)
+    squared = deviation * deviation
     with np.errstate(invalid="ignore", divide="ignore"):
         mean = x[:used].reshape(segments, length).sum(axis=1) / count
-        mean_square = (deviation ** 2).sum(axis=1) / count
-        kurtosis = (deviation ** 4).sum(axis=1) / count / mean_square ** 2
+        mean_square = squared.sum(axis=1) / count
+        kurtosis = (squared * squared).sum(axis=1) / count / mean_square ** 2
     return SegmentStatistics(length, count, mean, mean_square, (center,), kurtosis)
 
 
@@ -593,6 +599,11 @@ def segment_cross_products(values_a, values_b, valid_a=None, valid_b=None,
     b, mb = _as_record(values_b, valid_b)
     if a.shape != b.shape:
         raise ValueError(f"records differ in length: {a.shape} and {b.shape}")
+    return _cross_products_of_records(a, ma, b, mb, segments)
+
+
+def _cross_products_of_records(a, ma, b, mb, segments: int) -> SegmentStatistics:
+    """:func:`segment_cross_products` of two records already cleaned by :func:`_as_record`."""
     both = ma & mb
     length = _segment_layout(len(a), segments)
     used = length * segments
@@ -681,42 +692,89 @@ def correlation_time_scales(values, valid=None, sample_rate_hz: float = 1.0) -> 
     Sect. 8.2 (mean square estimates and their random error); section numbers from memory.
     """
     x, m = _as_record(values, valid)
+    result = _time_scales_of_rows(x[None, :], m[None, :], sample_rate_hz)[0]
+    if isinstance(result, ValueError):
+        raise result
+    return result
+
+
+def _time_scales_of_rows(x: np.ndarray, m: np.ndarray, sample_rate_hz: float):
+    """:func:`correlation_time_scales` of several records at once (rows of ``x``, masks ``m``).
+
+    ``x`` holds the records with 0 at invalid samples (as :func:`_as_record` returns them). The
+    transforms of all rows are done in one call each, and the taper's own transform once when
+    every row has the same mask. Returns, per row, a CorrelationTimeScales or the ValueError
+    that :func:`correlation_time_scales` raises for it.
+    """
     fs = float(sample_rate_hz)
-    n = len(x)
-    if n < 8 or m.sum() < 8:
-        raise ValueError("a record needs at least 8 valid samples")
-    center = x[m].mean()
-    deviation = np.where(m, x - center, 0.0)
-    second = float(np.mean(deviation[m] ** 2))
-    if not second > 0:
-        raise ValueError("the record does not vary")
-    kurtosis = float(np.mean(deviation[m] ** 4) / second ** 2)
-    taper = np.hanning(n + 2)[1:-1] * m
+    c, n = x.shape
+    out: list = [None] * c
+    counts_valid = m.sum(axis=1)
+    ok = [i for i in range(c) if n >= 8 and counts_valid[i] >= 8]
+    for i in range(c):
+        if i not in ok:
+            out[i] = ValueError("a record needs at least 8 valid samples")
+    deviation = np.zeros((len(ok), n))
+    keep = []
+    second_moments, kurtoses = [], []
+    for k, i in enumerate(ok):
+        row_mask = m[i]
+        center = x[i][row_mask].mean()
+        np.subtract(x[i], center, out=deviation[k])
+        deviation[k][~row_mask] = 0.0
+        valid_deviation = deviation[k][row_mask]
+        squared = valid_deviation * valid_deviation
+        second = float(np.mean(squared))
+        if not second > 0:
+            out[i] = ValueError("the record does not vary")
+            continue
+        keep.append(k)
+        second_moments.append(second)
+        kurtoses.append(float(np.mean(squared * squared) / second ** 2))
+    if not keep:
+        return out
+    rows = [ok[k] for k in keep]
+    deviation = deviation[keep]
+    masks = m[rows]
+    same_mask = bool(np.all(masks == masks[:1]))
+    hann = np.hanning(n + 2)[1:-1]
+    taper = hann * (masks[:1] if same_mask else masks)
     size = _fft.next_fast_len(2 * n)
-    spectrum = _fft.rfft(deviation * taper, size)
+    spectrum = _fft.rfft(deviation * taper, size, axis=-1)
     power = spectrum.real ** 2 + spectrum.imag ** 2
-    weight_spectrum = _fft.rfft(taper, size)
-    counts = _fft.irfft(weight_spectrum.real ** 2 + weight_spectrum.imag ** 2, size)
+    weight_spectrum = _fft.rfft(taper, size, axis=-1)
+    counts = _fft.irfft(weight_spectrum.real ** 2 + weight_spectrum.imag ** 2, size, axis=-1)
     max_lag = n // 2
-    counts = np.maximum(counts[:max_lag + 1], 1e-12 * counts[0])
+    counts = np.maximum(counts[:, :max_lag + 1], 1e-12 * counts[:, :1])
 
     # sharp spectral lines: far above the local median (the spectrum is mirrored at zero and
     # Nyquist frequency, so the median near the ends sees real neighbours); widen by the Hann
     # main lobe
     bins_per_resolution = size / n
     median_width = int(2 * round(12 * bins_per_resolution) + 1)
-    local = _ndimage.median_filter(power, size=median_width, mode="mirror")
+    # row by row: the one-dimensional filter is about ten times faster than a (1, w) footprint
+    local = np.stack([_ndimage.median_filter(row, size=median_width, mode="mirror") for row in power])
     lines = power > LINE_THRESHOLD * np.maximum(local, 1e-300)
-    if lines.any():
-        reach = int(math.ceil(3 * bins_per_resolution))
-        lines = _ndimage.binary_dilation(lines, structure=np.ones(2 * reach + 1, dtype=bool))
-    clean = np.where(lines, local, power)
+    reach = int(math.ceil(3 * bins_per_resolution))
+    for k in range(len(rows)):
+        if lines[k].any():
+            lines[k] = _ndimage.binary_dilation(lines[k], structure=np.ones(2 * reach + 1, dtype=bool))
+    # rows without a line: the clean spectrum is the spectrum itself (no second transform)
+    with_lines = [k for k in range(len(rows)) if lines[k].any()]
+    clean = np.where(lines[with_lines], local[with_lines], power[with_lines])
+    both = _fft.irfft(np.concatenate([power, clean]), size, axis=-1)[:, :max_lag + 1]
+    full = both[:len(rows)] / counts
+    clean_correlation = full.copy()
+    if with_lines:
+        clean_correlation[with_lines] = both[len(rows):] / (counts if counts.shape[0] == 1 else counts[with_lines])
+    for k, i in enumerate(rows):
+        out[i] = _time_scales_from_correlation(full[k] / full[k, 0],
+                                               clean_correlation[k] / clean_correlation[k, 0],
+                                               n, max_lag, fs, int(lines[k].sum()), kurtoses[k])
+    return out
 
-    full = _fft.irfft(power, size)[:max_lag + 1] / counts
-    rho_full = full / full[0]
-    clean_correlation = _fft.irfft(clean, size)[:max_lag + 1] / counts
-    rho = clean_correlation / clean_correlation[0]
 
+def _time_scales_from_correlation(rho_full, rho, n, max_lag, fs, line_count, kurtosis):
     below = np.nonzero(rho <= 0)[0]
     first_zero = int(below[0]) if len(below) else max_lag
     if first_zero > 0:
@@ -738,7 +796,7 @@ def correlation_time_scales(values, valid=None, sample_rate_hz: float = 1.0) -> 
     reach = int(min(max_lag, max(1, math.ceil(3 * memory_samples))))
     sum_rho_squared = float(rho_full[0] ** 2 + 2.0 * np.sum(rho_full[1:reach + 1] ** 2))
     per_sample = 1.0 / sum_rho_squared
-    return CorrelationTimeScales(integral / fs, decay / fs, memory_samples / fs, int(lines.sum()),
+    return CorrelationTimeScales(integral / fs, decay / fs, memory_samples / fs, line_count,
                                  per_sample, kurtosis)
 
 
@@ -887,18 +945,27 @@ def screen_channel(values, valid, sample_rate_hz: float, segments: int = 20, alp
     J. S. Bendat and A. G. Piersol, Random Data, 4th ed., Sect. 4.5.2 and 10.3.
     """
     x, m = _as_record(values, valid)
-    n = len(x)
-    record_s = n / float(sample_rate_hz)
-    if m.sum() < max(8, 2 * MINIMUM_SEGMENTS):
+    if not _enough_to_screen(m):
         return _not_screened(subject, QUALITY_NOT_SCREENED)
     try:
         scales = correlation_time_scales(x, m, sample_rate_hz)
     except ValueError:
         return _not_screened(subject, QUALITY_NOT_SCREENED)
+    return _screen_record(x, m, sample_rate_hz, segments, alpha, subject, scales)
+
+
+def _enough_to_screen(m: np.ndarray) -> bool:
+    return int(m.sum()) >= max(8, 2 * MINIMUM_SEGMENTS)
+
+
+def _screen_record(x, m, sample_rate_hz: float, segments: int, alpha: float, subject: str,
+                   scales: CorrelationTimeScales) -> SubjectScreening:
+    """The tests of :func:`screen_channel` on a cleaned record whose time scales are known."""
+    record_s = len(x) / float(sample_rate_hz)
     count = segments_for_record(record_s, scales.memory_s, segments)
     if count == 0:
         return _not_screened(subject, QUALITY_TOO_SHORT, scales.memory_s)
-    stats = segment_statistics(x, m, count)
+    stats = _segment_statistics_of_record(x, m, count)
     usable = _usable(stats)
     if usable.sum() < MINIMUM_SEGMENTS:
         return _not_screened(subject, QUALITY_TOO_SHORT, scales.memory_s)
@@ -967,6 +1034,12 @@ def screen_pair(values_a, valid_a, values_b, valid_b, sample_rate_hz: float, seg
     J. S. Bendat and A. G. Piersol, Random Data, 4th ed., Sect. 10.3 (joint stationarity).
     """
     stats = segment_cross_products(values_a, values_b, valid_a, valid_b, segments)
+    return _screen_cross_products(stats, sample_rate_hz, alpha, subject, memory_s)
+
+
+def _screen_cross_products(stats: SegmentStatistics, sample_rate_hz: float, alpha: float, subject: str,
+                           memory_s: float) -> SubjectScreening:
+    """The tests of :func:`screen_pair` on the pair's segment cross-products."""
     usable = _usable(stats)
     if usable.sum() < MINIMUM_SEGMENTS:
         return _not_screened(subject, QUALITY_TOO_SHORT, memory_s)
@@ -981,6 +1054,37 @@ def screen_pair(values_a, valid_a, values_b, valid_b, sample_rate_hz: float, seg
                             p_values,
                             {"reverse_arrangements_cross_product": ra.statistic,
                              "runs_cross_product": runs.statistic})
+
+
+class _CompleteCrossProducts:
+    """Segment cross-products of complete records (no missing sample), all pairs at once.
+
+    For every segment count asked for, the mean-removed records are cut into segments once and
+    the segment sums of every product ``(a - a_bar)(b - b_bar)`` come from one batched matrix
+    product; the result for a pair equals :func:`segment_cross_products` (to rounding).
+    """
+
+    def __init__(self, records: np.ndarray, complete: np.ndarray):
+        self._records = records
+        self._complete = complete
+        self._deviation = None
+        self._by_count: Dict[int, Tuple[int, np.ndarray, np.ndarray, np.ndarray]] = {}
+
+    def statistics(self, a: int, b: int, segments: int) -> SegmentStatistics:
+        if self._deviation is None:
+            self._centers = self._records.mean(axis=1)
+            self._deviation = self._records - self._centers[:, None]
+        if segments not in self._by_count:
+            n = self._records.shape[1]
+            length = _segment_layout(n, segments)
+            used = length * segments
+            pieces = self._deviation[:, :used].reshape(-1, segments, length).transpose(1, 0, 2)
+            products = np.matmul(pieces, pieces.transpose(0, 2, 1)) / length  # (segments, c, c)
+            means = self._records[:, :used].reshape(-1, segments, length).sum(axis=2) / length
+            self._by_count[segments] = (length, np.full(segments, length), products, means)
+        length, count, products, means = self._by_count[segments]
+        return SegmentStatistics(length, count, means[a], products[:, a, b].copy(),
+                                 (float(self._centers[a]), float(self._centers[b])), np.full(segments, np.nan))
 
 
 def _pairs_of(block, pairs) -> Tuple[Tuple[str, ...], Tuple[Tuple[str, str], ...]]:
@@ -1046,10 +1150,23 @@ def screen_window(block, screening_config, pairs=None) -> WindowScreening:
     index = {name: i for i, name in enumerate(block.channels)}
     fs = float(block.sample_rate_hz)
     results: Dict[str, SubjectScreening] = {}
+    # every channel cleaned once, as contiguous rows; the time scales of all channels at once
+    values_rows = np.asarray(block.values, dtype=float).T
+    valid_rows = np.asarray(block.valid, dtype=bool).T & np.isfinite(values_rows)
+    records = np.where(valid_rows, values_rows, 0.0)
+    eligible = [name for name in channels if _enough_to_screen(valid_rows[index[name]])]
+    rows = [index[name] for name in eligible]
+    scales = dict(zip(eligible, _time_scales_of_rows(records[rows], valid_rows[rows], fs))) if rows else {}
     for name in channels:
         i = index[name]
-        results[name] = screen_channel(block.values[:, i], block.valid[:, i], fs,
-                                       screening_config.segments, alpha, subject=name)
+        found = scales.get(name)
+        if found is None or isinstance(found, ValueError):
+            results[name] = _not_screened(name, QUALITY_NOT_SCREENED)
+        else:
+            results[name] = _screen_record(records[i], valid_rows[i], fs, screening_config.segments, alpha,
+                                           name, found)
+    complete = valid_rows.all(axis=1)
+    cross_products = _CompleteCrossProducts(records, complete)
     for a, b in cross:
         subject = f"{a}:{b}"
         ra, rb = results[a], results[b]
@@ -1064,8 +1181,12 @@ def screen_window(block, screening_config, pairs=None) -> WindowScreening:
                 joint = _not_screened(subject, QUALITY_TOO_SHORT, memory)
             else:
                 ia, ib = index[a], index[b]
-                joint = screen_pair(block.values[:, ia], block.valid[:, ia], block.values[:, ib],
-                                    block.valid[:, ib], fs, count, alpha, subject, memory)
+                if complete[ia] and complete[ib]:
+                    stats = cross_products.statistics(ia, ib, count)
+                else:
+                    stats = _cross_products_of_records(records[ia], valid_rows[ia], records[ib], valid_rows[ib],
+                                                       count)
+                joint = _screen_cross_products(stats, fs, alpha, subject, memory)
         flagged = joint.flagged or ra.flagged or rb.flagged
         quality = tuple(c for c in joint.quality if c != QUALITY_NONSTATIONARY)
         if flagged:

@@ -1,0 +1,95 @@
+"""The speed-ups of the performance work change no result, and the benchmark's own variants
+compute what they claim.
+
+- batched stationarity screening of a window (all channels' transforms at once, cross-products of
+  complete records from one matrix product) equals screening each channel and pair on its own
+  with the single-record functions, which tests/test_stationarity.py checks against references;
+- the plain-script baseline and the floor of benchmarks/run_all.py give the correlation that
+  ``scipy.signal.correlate`` gives (the floor's lag sums, the script's coefficients) on a small
+  invented archive.
+"""
+from __future__ import annotations
+
+import dataclasses
+import os
+
+import numpy as np
+import pyarrow.parquet as pq
+import pytest
+import scipy.signal
+
+from corrtransforms import stationarity as st
+from corrtransforms.config import ScreeningConfig
+from corrtransforms.window_block import WindowBlock
+
+FS = 50.0
+
+
+def _block(rng, n=6000, channels=4, gaps=False) -> WindowBlock:
+    # coloured noise with a shared component (so the pairs are correlated) and, in channel 2, a
+    # burst half-way (so some subject is flagged)
+    x = scipy.signal.lfilter([1.0], [1.0, -0.8], rng.standard_normal((n, channels)), axis=0)
+    x += 0.7 * scipy.signal.lfilter([1.0], [1.0, -0.5], rng.standard_normal(n))[:, None]
+    x[n // 2:n // 2 + 400, 2] *= 5.0
+    valid = np.ones_like(x, dtype=bool)
+    if gaps:
+        valid[rng.random(x.shape) < 0.02] = False
+        valid[1000:1300, 1] = False
+    return WindowBlock(asset="a", window_start_us=0, window_length_s=n / FS, sample_rate_hz=FS,
+                       channels=tuple(f"c{i}" for i in range(channels)), values=np.where(valid, x, 0.0),
+                       valid=valid)
+
+
+@pytest.mark.parametrize("gaps", [False, True])
+def test_batched_screening_equals_screening_each_subject(gaps):
+    block = _block(np.random.default_rng(11 + gaps), gaps=gaps)
+    config = ScreeningConfig(segments=20, alpha=0.05)
+    window = st.screen_window(block, config, "all")
+    names = block.channels
+    alone = {}
+    for i, name in enumerate(names):
+        alone[name] = st.screen_channel(block.values[:, i], block.valid[:, i], FS, 20, 0.05, subject=name)
+    assert any(r.flagged for r in alone.values())  # the burst is found: the comparison means something
+    for name in names:
+        got, want = window.subjects[name], alone[name]
+        assert (got.segments, got.flagged, got.quality) == (want.segments, want.flagged, want.quality)
+        np.testing.assert_allclose(got.p_value, want.p_value, rtol=1e-12)
+        np.testing.assert_allclose(got.memory_s, want.memory_s, rtol=1e-12)
+        for test, p in want.test_p_values.items():
+            np.testing.assert_allclose(got.test_p_values[test], p, rtol=1e-12)
+    for i in range(len(names)):
+        for j in range(i + 1, len(names)):
+            a, b = names[i], names[j]
+            memory = max(alone[a].memory_s, alone[b].memory_s)
+            count = st.segments_for_record(block.n_samples / FS, memory, 20)
+            want = st.screen_pair(block.values[:, i], block.valid[:, i], block.values[:, j], block.valid[:, j],
+                                  FS, count, 0.05, f"{a}:{b}", memory)
+            got = window.subjects[f"{a}:{b}"]
+            assert got.segments == want.segments
+            np.testing.assert_allclose(got.p_value, want.p_value, rtol=1e-12)
+            for test, value in want.test_statistics.items():
+                np.testing.assert_allclose(got.test_statistics[test], value, rtol=1e-12)
+
+
+def test_time_scales_of_several_records_equal_one_at_a_time():
+    rng = np.random.default_rng(5)
+    block = _block(rng, gaps=True)
+    records = np.where(block.valid, block.values, 0.0).T
+    batch = st._time_scales_of_rows(np.ascontiguousarray(records), np.ascontiguousarray(block.valid.T), FS)
+    for i in range(records.shape[0]):
+        one = st.correlation_time_scales(block.values[:, i], block.valid[:, i], FS)
+        assert dataclasses.astuple(batch[i]) == pytest.approx(dataclasses.astuple(one), rel=1e-12)
+
+
+def test_cross_products_of_complete_records_equal_the_single_pair_function():
+    rng = np.random.default_rng(8)
+    block = _block(rng)
+    records = np.ascontiguousarray(block.values.T)
+    batched = st._CompleteCrossProducts(records, np.ones(records.shape[0], bool))
+    for segments in (10, 17, 20):
+        got = batched.statistics(1, 3, segments)
+        want = st.segment_cross_products(block.values[:, 1], block.values[:, 3], segments=segments)
+        assert got.segment_length == want.segment_length
+        np.testing.assert_array_equal(got.valid_count, want.valid_count)
+        np.testing.assert_allclose(got.mean_square, want.mean_square, rtol=1e-10)
+        np.testing.assert_allclose(got.mean, want.mean, rtol=1e-10, atol=1e-12)
