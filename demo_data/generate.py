@@ -585,6 +585,35 @@ def write_archive(out_dir: str, days: int = DEFAULT_DAYS, every_hours: int = DEF
     return expected_changes(days, every_hours)
 
 
+#: the demo configuration shipped beside this module (package data, also in an installed wheel)
+CONFIG_TEMPLATE = "footbridge.toml"
+
+
+def write_config(config_path: str, archive_dir: str) -> str:
+    """Write the demo configuration to ``config_path`` with ``[archive] path`` naming ``archive_dir``.
+
+    The packaged ``footbridge.toml`` names ``archive`` beside itself; a copy elsewhere (e.g. from
+    an installed wheel) must name the archive actually written. The path is written relative to
+    the configuration's folder when both are on the same drive. Returns ``config_path``.
+    """
+    import importlib.resources
+
+    template = importlib.resources.files("demo_data").joinpath(CONFIG_TEMPLATE).read_text(encoding="utf-8")
+    folder = os.path.dirname(os.path.abspath(config_path))
+    try:
+        archive = os.path.relpath(os.path.abspath(archive_dir), folder)
+    except ValueError:  # another drive (Windows)
+        archive = os.path.abspath(archive_dir)
+    line = f"path = {json.dumps(archive.replace(os.sep, '/'))}  # written by python -m demo_data.generate"
+    text, count = re.subn(r'(?m)^path = "archive".*$', lambda _: line, template)
+    if count != 1:
+        raise ValueError(f"demo_data/{CONFIG_TEMPLATE}: no single [archive] path line to replace")
+    os.makedirs(folder, exist_ok=True)
+    with open(config_path, "w", encoding="utf-8") as handle:
+        handle.write(text)
+    return config_path
+
+
 def main(argv: Optional[Sequence[str]] = None) -> int:
     parser = argparse.ArgumentParser(
         prog="python -m demo_data.generate",
@@ -597,6 +626,10 @@ def main(argv: Optional[Sequence[str]] = None) -> int:
                         help=f"one 10-minute record every H hours (default {DEFAULT_EVERY_HOURS})")
     parser.add_argument("--expected-out", default=None,
                         help="also write the expected changes of this run as JSON to this file")
+    parser.add_argument("--config-out", default=None,
+                        help="also write the demo configuration to this file, naming the archive "
+                             "written by this run (for an installed package, whose footbridge.toml "
+                             "names demo_data/archive beside itself)")
     args = parser.parse_args(argv)
     try:
         record_starts(args.days, args.every_hours)
@@ -608,6 +641,9 @@ def main(argv: Optional[Sequence[str]] = None) -> int:
         with open(args.expected_out, "w", encoding="utf-8") as handle:
             json.dump(expected, handle, indent=2)
             handle.write("\n")
+    if args.config_out:
+        write_config(args.config_out, args.out)
+        print(f"wrote the configuration {args.config_out}")
     print(f"wrote {expected['records']} records ({expected['first_record']} .. {expected['last_record']}) "
           f"to {args.out}; injected: {len(expected['shifts'])} shifts, {len(expected['rejects'])} broken inputs")
     return 0
