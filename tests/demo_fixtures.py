@@ -12,7 +12,6 @@ import re
 from typing import Dict, List, Tuple
 
 import pyarrow as pa
-import pyarrow.parquet as pq
 
 from demo_data import generate
 
