@@ -93,3 +93,69 @@ def test_cross_products_of_complete_records_equal_the_single_pair_function():
         np.testing.assert_array_equal(got.valid_count, want.valid_count)
         np.testing.assert_allclose(got.mean_square, want.mean_square, rtol=1e-10)
         np.testing.assert_allclose(got.mean, want.mean, rtol=1e-10, atol=1e-12)
+
+
+# --------------------------------------------------------------------------------------------
+# The benchmark's baseline and floor (benchmarks/scale_script.py, benchmarks/scale_floor.py)
+
+@pytest.fixture(scope="module")
+def one_hour_archive(tmp_path_factory):
+    from benchmarks import scale_archive
+
+    folder = str(tmp_path_factory.mktemp("scale") / "archive")
+    scale_archive.write_archive(folder, days=1, hours=1)
+    return folder
+
+
+def _window_records(archive, window):
+    from benchmarks import scale_archive
+
+    path = scale_archive.archive_files(archive)[0]
+    table = pq.read_table(path, columns=list(scale_archive.CHANNELS))
+    n = 60_000
+    return np.column_stack([table.column(c).to_numpy().astype(float) for c in scale_archive.CHANNELS])[
+        window * n:(window + 1) * n]
+
+
+def test_floor_lag_sums_equal_scipy_correlate(one_hour_archive):
+    from benchmarks import scale_floor
+
+    out = scale_floor.run(one_hour_archive)
+    assert out["windows"] == 6 and out["samples"] == 6 * 60_000 * 8
+    L = 1000
+    expected = 0.0
+    for w in range(6):
+        x = _window_records(one_hour_archive, w)
+        n = len(x)
+        keep = np.abs(scipy.signal.correlation_lags(n, n)) <= L
+        for a in range(8):
+            for b in range(a, 8):
+                # reference: scipy.signal.correlate (lag sums sum_t a(t) b(t + k), k = -L..L)
+                expected += scipy.signal.correlate(x[:, b], x[:, a], method="fft")[keep].sum()
+    assert out["checksum"] == pytest.approx(expected, rel=1e-9)
+
+
+def test_plain_script_coefficients_and_indicators(one_hour_archive, tmp_path):
+    from benchmarks import scale_script
+
+    out = scale_script.run(one_hour_archive, str(tmp_path))
+    assert out == {"windows": 6, "skipped": 0}
+    correlations = pq.read_table(str(tmp_path / "date=2024-03-04" / "correlations.parquet")).to_pandas()
+    indicators = pq.read_table(str(tmp_path / "date=2024-03-04" / "indicators.parquet")).to_pandas()
+    assert len(correlations) == 6 * 36
+    x = _window_records(one_hour_archive, 0)
+    x = x - x.mean(axis=0)
+    n = len(x)
+    first = correlations.iloc[:36]
+    row = first[(first.channel_a == "acc1") & (first.channel_b == "acc8")].iloc[0]
+    rho = np.asarray(row.coefficient)
+    scale = np.sqrt((x[:, 0] ** 2).mean() * (x[:, 7] ** 2).mean())
+    for k in (-3, 0, 5, 1000):
+        # closed form of the biased estimate: sum_t a(t) b(t + k) / n, over the overlap
+        direct = (np.dot(x[:n - k, 0], x[k:, 7]) if k >= 0 else np.dot(x[-k:, 0], x[:n + k, 7])) / n
+        assert rho[k + 1000] == pytest.approx(direct / scale, rel=2e-5, abs=2e-7)  # float32 storage
+    # the invented ground-borne delay: acc8 sees the component 5 samples (50 ms) after acc7
+    lags = indicators[(indicators.subject == "acc7:acc8") & (indicators.indicator == "lag_s")]["value"]
+    np.testing.assert_allclose(lags, 0.05, atol=1e-12)
+    rms = indicators[(indicators.subject == "acc1") & (indicators.indicator == "rms")]["value"].iloc[0]
+    assert rms == pytest.approx(np.sqrt((x[:, 0] ** 2).mean()), rel=1e-12)
