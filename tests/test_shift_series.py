@@ -112,10 +112,54 @@ def test_baseline_windows_get_provisional_values_from_earlier_windows_only():
     frame = table.to_pandas()
     base = frame[frame.state == "baseline"]
     assert base.expected.iloc[:3].isna().all()  # fewer than 3 earlier windows
-    for i in (3, 50, 120):
-        earlier = base.value.iloc[:i]
-        assert base.expected.iloc[i] == np.median(earlier)  # median of the windows before
+    for i in (3, 50, 120, len(base) - 1):
+        # the provisional model is the median of the windows before the last refit point
+        point = shift_series.provisional_refit_point(3, i)
+        assert 3 <= point <= i and (i - point) <= 0.1 * point + 1
+        assert base.expected.iloc[i] == np.median(base.value.iloc[:point])
+    for point in (3, 10, 11, 13, 15, 24, 127):  # refit points (3..11 by 1, then +ceil(n/10))
+        assert shift_series.provisional_refit_point(3, point) == point
+        assert base.expected.iloc[point] == np.median(base.value.iloc[:point])
     assert base.cusum_pos.isna().all() and (base.direction == 0).all()
+
+
+def test_provisional_refits_grow_logarithmically_with_the_baseline(monkeypatch):
+    fits = []
+    real_fit = shift_series.fit_baseline_model
+
+    def counting_fit(values, *args, **kwargs):  # the real fit, counted
+        fits.append(len(values))
+        return real_fit(values, *args, **kwargs)
+
+    monkeypatch.setattr(shift_series, "fit_baseline_model", counting_fit)
+    times, values, stderr, _ = _series(n=2100)
+    table, states = _detect(times, values, stderr, None, windows=2000)
+    # schedule n_{k+1} = n_k + max(1, ceil(n_k / 10)) from 3: 8 steps of 1 to 11, then a
+    # factor ~1.1 per refit up to 2000: about 8 + log(2000 / 11) / log(1.1) ~ 63 (closed form)
+    assert len(fits) < 70 and fits[-1] == 2000  # the last one is the end-of-baseline fit
+    assert fits[:-1] == sorted(set(fits[:-1])) and fits[0] == 3
+    frame = table.to_pandas()
+    base = frame.iloc[:2000]
+    for i in (3, 500, 1999):
+        point = shift_series.provisional_refit_point(3, i)
+        assert base.expected.iloc[i] == np.median(values[:point])
+    assert states[-1].model.n == 2000
+    assert frame.expected.iloc[2000:].eq(np.median(values[:2000])).all()
+
+
+def test_results_after_the_baseline_do_not_depend_on_the_refit_schedule(monkeypatch):
+    every, _, _ = _run(4, "all")
+    monkeypatch.setattr(shift_series, "PROVISIONAL_REFIT_GROWTH", 0.0)  # refit at every window
+    geometric, _, _ = _run(4, "all")
+    monkeypatch.setattr(shift_series, "PROVISIONAL_REFIT_GROWTH", 0.5)
+    sparse, _, _ = _run(4, "all")
+    state = np.array(every.column("state").to_pylist())
+    after = np.flatnonzero(state != "baseline")
+    assert after.size > 100 and "shifted" in state
+    for other in (geometric, sparse):
+        assert_tables_identical(other.take(after), every.take(after))
+        assert_tables_identical(other.select(["window_start", "value", "stderr", "state", "quality"]),
+                                every.select(["window_start", "value", "stderr", "state", "quality"]))
 
 
 def _series(n=200, seed=7, deviant=(), deviant_size=0.0, deviant_stderr=None, quality=None):
