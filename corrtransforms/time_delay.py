@@ -193,22 +193,28 @@ def lag_variance(cross, peak_index: int, lag_step_s: float, record_s: float, aut
         return float("nan")
     window = parzen(2 * half + 1)
     n_fft = scipy.fft.next_fast_len(8 * half, real=False)
-    S_ab = lag_step_s * scipy.fft.fft(_centered_segment(rho, peak_index, half, window, n_fft))
+    # real sequences: the spectra are Hermitian (the autos' even segments give real, even
+    # spectra), so every sum below runs over the rfft bins 0..n_fft//2, the bins strictly
+    # between 0 and n_fft/2 counted twice
+    S_ab = lag_step_s * scipy.fft.rfft(_centered_segment(rho, peak_index, half, window, n_fft))
     mag_ab = np.abs(S_ab)
     if auto_a is not None and auto_b is not None:
-        spectra = []
-        for auto in (auto_a, auto_b):
-            a = np.asarray(auto, dtype=float)[:half + 1]
-            full = np.concatenate([a[:0:-1], a])
-            spectra.append(np.real(lag_step_s * scipy.fft.fft(_centered_segment(full, half, half, window, n_fft))))
+        # both autos' even segments in one real transform each: rows of one (2, n_fft) array
+        segments = np.zeros((2, n_fft))
+        for row, auto in enumerate((auto_a, auto_b)):
+            a = np.nan_to_num(np.asarray(auto, dtype=float)[:half + 1]) * window[half:]
+            segments[row, :half + 1] = a
+            segments[row, n_fft - half:] = a[:0:-1]
+        spectra = lag_step_s * scipy.fft.rfft(segments, axis=1).real
         product = np.clip(spectra[0], 0, None) * np.clip(spectra[1], 0, None)
     else:
         if peak_coef is None or not np.isfinite(peak_coef) or peak_coef == 0:
             return float("nan")
         gamma2 = min(peak_coef ** 2, 0.999)
         product = mag_ab ** 2 / gamma2
-    f = scipy.fft.fftfreq(n_fft, lag_step_s)
+    f = scipy.fft.rfftfreq(n_fft, lag_step_s)
     w2 = (2 * np.pi * f) ** 2
+    w2[1:(n_fft + 1) // 2] *= 2.0  # the negative frequencies' share (Hermitian symmetry)
     tiny = 1e-9 * (mag_ab.max() + 1e-300)
     if weighting == "none":
         psi = np.ones_like(mag_ab)

@@ -118,3 +118,54 @@ def test_weak_peak_and_peak_beyond_max_lag():
     assert "peak_at_max_lag" in cut.quality and np.isnan(cut.lag_s)
     inside = estimate_lag(rho, np.full(101, 0.01), -0.5, 1 / FS, 40.0, max_lag_s=0.3)
     assert "peak_at_max_lag" in inside.quality
+
+
+def _lag_variance_full_spectrum(rho, peak_index, dt, record_s, auto_a, auto_b, weighting, peak_coef):
+    """Knapp & Carter (1976) Eq. (16) summed over every bin of numpy's complex FFT (reference)."""
+    from scipy.signal.windows import parzen
+    L = (len(rho) - 1) // 2
+    half = min(L - abs(peak_index - L), len(auto_a) - 1, len(auto_b) - 1)
+    window = parzen(2 * half + 1)
+    n_fft = __import__("scipy.fft").fft.next_fast_len(8 * half, real=False)
+
+    def centred(values, centre):
+        seg = np.zeros(n_fft)
+        part = values[centre - half:centre + half + 1] * window
+        seg[:half + 1], seg[n_fft - half:] = part[half:], part[:half]
+        return seg
+
+    mag_ab = np.abs(dt * np.fft.fft(centred(rho, peak_index)))
+    autos = [np.real(dt * np.fft.fft(centred(np.concatenate([a[half:0:-1], a[:half + 1]]), half)))
+             for a in (auto_a, auto_b)]
+    product = np.clip(autos[0], 0, None) * np.clip(autos[1], 0, None)
+    w2 = (2 * np.pi * np.fft.fftfreq(n_fft, dt)) ** 2
+    tiny = 1e-9 * mag_ab.max()
+    psi = {"none": np.ones(n_fft), "phat": 1 / np.maximum(mag_ab, tiny),
+           "scot": 1 / np.maximum(np.sqrt(product), tiny)}[weighting]
+    df = 1 / (n_fft * dt)
+    numerator = np.sum(w2 * psi ** 2 * np.clip(product - mag_ab ** 2, 0, None)) * df
+    return numerator / (record_s * (np.sum(w2 * psi * mag_ab) * df) ** 2)
+
+
+@pytest.mark.parametrize("weighting", ["none", "phat", "scot"])
+def test_lag_variance_on_real_transforms_equals_the_full_complex_spectrum_sum(weighting):
+    # the rfft form counts the bins strictly between 0 and Nyquist twice: the spectra of real
+    # sequences are Hermitian, so the sums over all bins of numpy's complex FFT are the same
+    from corrtransforms.time_delay import lag_variance
+    rng = np.random.default_rng(11)
+    n, L, dt = 6000, 300, 0.01
+    a = np.convolve(rng.normal(size=n + 50), np.hanning(9), "same")[:n]
+    b = np.roll(a, 7) + 0.8 * rng.normal(size=n)
+
+    def coefficient(u, v):
+        u, v = (u - u.mean()) / u.std(), (v - v.mean()) / v.std()
+        return np.correlate(v, u, "full")[n - 1 - L:n + L] / n
+
+    rho, auto_a, auto_b = coefficient(a, b), coefficient(a, a)[L:], coefficient(b, b)[L:]
+    for peak_index in (L + 7, L + 7 + 43, L - 120):  # different peak positions: different widths
+        got = lag_variance(rho, peak_index, dt, n * dt, auto_a, auto_b, weighting, 0.5)
+        expected = _lag_variance_full_spectrum(rho, peak_index, dt, n * dt, auto_a, auto_b, weighting, 0.5)
+        assert np.isfinite(got) and got > 0
+        # PHAT/SCOT divide by small spectral values, which amplifies the two FFT algorithms'
+        # rounding differences to ~1e-12 relative (common practice tolerance)
+        np.testing.assert_allclose(got, expected, rtol=1e-9)
