@@ -96,3 +96,35 @@ def test_quality_codes_instead_of_garbage():
     assert np.isnan(junk.freq_hz) and junk.quality
     with pytest.raises(ValueError):
         fit_mode(rho, se[:-1], 1 / FS, (1.5, 2.5))
+
+
+@pytest.mark.parametrize("start, count", [(40, 300), (5, 2600)])  # contiguous, and strided (> 1024 lags)
+def test_correlated_meat_equals_the_dense_bartlett_quadratic_form(start, count):
+    # Bartlett (1946); Box, Jenkins & Reinsel Eq. (2.1.12), from memory:
+    # n cov[r_i, r_j] = sum_v rho_v rho_{v+j-i} + rho_{v+j} rho_{v-i} - 2 rho_i rho_v rho_{v-j}
+    #                   - 2 rho_j rho_v rho_{v-i} + 2 rho_i rho_j rho_v^2, summed here with
+    # numpy.correlate over the even extension, as a dense matrix
+    from corrtransforms.modal_fit import _correlated_meat
+    from corrtransforms.timescales import MAX_COVARIANCE_LAGS
+    rng = np.random.default_rng(4)
+    L = 3000
+    model = decaying_cosine(np.arange(L + 1) / FS, 1.0, 2.0, 0.01, -0.01)
+    model[0] = 1.0
+    lags = np.arange(start, start + count)
+    Jw = rng.normal(size=(count, 4))
+    sig = rng.uniform(0.5, 2.0, count)
+    stride = int(np.ceil(count / MAX_COVARIANCE_LAGS))
+    if stride > 1:  # the function's grouping of neighbouring lags, repeated here
+        groups = np.arange(count) // stride
+        G = np.stack([np.bincount(groups, weights=Jw[:, m] / sig) for m in range(4)], axis=1)
+        nodes = lags[::stride] + (stride - 1) // 2
+    else:
+        G, nodes = Jw / sig[:, None], lags
+    even = np.concatenate([model[:0:-1], model])
+    c = np.correlate(even, even, "full")[2 * L:]  # c(m) = sum_v rho_v rho_{v+m}, m = 0..2L
+    i, j = nodes[:, None], nodes[None, :]
+    kernel = (c[np.abs(j - i)] + c[i + j] - 2 * model[i] * c[j] - 2 * model[j] * c[i]
+              + 2 * model[i] * model[j] * c[0])
+    expected = 0.3 ** 2 * G.T @ kernel @ G
+    got = _correlated_meat(Jw, model, lags, sig, 0.3)
+    np.testing.assert_allclose(got, expected, rtol=1e-9, atol=1e-9 * np.abs(expected).max())
