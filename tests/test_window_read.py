@@ -195,3 +195,28 @@ def test_grid_phase_is_the_circular_mean_of_scipy():
         x = np.arange(500) + centre + rng.uniform(-0.1, 0.1, 500)  # wraps around +-0.5 for 0.49
         # reference: scipy.stats.circmean on the interval [-0.5, 0.5)
         assert _circular_phase(x) == pytest.approx(circmean(x - np.floor(x), high=0.5, low=-0.5), abs=1e-9)
+
+
+def test_complete_windows_with_missing_values_read_in_place_equal_the_snapped_long_layout(tmp_path):
+    # complete, on-grid wide windows skip the snapping copies; the long layout always snaps:
+    # both must give the same blocks, including NaN/inf samples turned into gaps
+    cols = samples(300, 10.0, seed=5)
+    rng = np.random.default_rng(5)
+    for name, bad_value in (("a", np.nan), ("b", np.inf), ("temperature", np.nan)):
+        cols[name][rng.choice(len(cols[name]), 40, replace=False)] = bad_value
+    write_files(str(tmp_path / "w"), wide_table(cols), 100, 250)
+    write_files(str(tmp_path / "l"), long_table(cols), 100, 700)
+    _, wide, wide_rejects = _read_all(str(tmp_path / "w"), make_config(str(tmp_path / "w")))
+    _, long, long_rejects = _read_all(str(tmp_path / "l"), make_config(str(tmp_path / "l"), layout="long"))
+    assert len(wide) == len(long) == 5
+    assert sorted((r.window_start_us, r.subject, r.reason) for r in wide_rejects) == \
+        sorted((r.window_start_us, r.subject, r.reason) for r in long_rejects)
+    for w, l in zip(wide, long):
+        rows = window_rows(cols, _k(w.window_start_us))
+        np.testing.assert_array_equal(w.values, l.values)
+        np.testing.assert_array_equal(w.valid, l.valid)
+        np.testing.assert_array_equal(w.valid[:, 0], np.isfinite(cols["a"][rows]))
+        np.testing.assert_array_equal(w.values[:, 0], np.where(np.isfinite(cols["a"][rows]), cols["a"][rows], 0.0))
+        # reference: numpy's nanmean of the covariate samples in the window
+        assert w.covariates["temperature"] == pytest.approx(np.nanmean(cols["temperature"][rows]), rel=1e-12)
+        assert w.covariates["temperature"] == pytest.approx(l.covariates["temperature"], rel=1e-12)
