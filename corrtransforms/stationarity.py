@@ -742,10 +742,11 @@ def _time_scales_of_rows(x: np.ndarray, m: np.ndarray, sample_rate_hz: float):
     size = _fft.next_fast_len(2 * n)
     spectrum = _fft.rfft(deviation * taper, size, axis=-1)
     power = spectrum.real ** 2 + spectrum.imag ** 2
-    weight_spectrum = _fft.rfft(taper, size, axis=-1)
-    counts = _fft.irfft(weight_spectrum.real ** 2 + weight_spectrum.imag ** 2, size, axis=-1)
     max_lag = n // 2
-    counts = np.maximum(counts[:, :max_lag + 1], 1e-12 * counts[:, :1])
+    if same_mask and masks[0].all():
+        counts = _complete_taper_counts(n)  # the same for every complete record of n samples
+    else:
+        counts = _taper_counts(taper, size, max_lag)
 
     # sharp spectral lines: far above the local median (the spectrum is mirrored at zero and
     # Nyquist frequency, so the median near the ends sees real neighbours); widen by the Hann
@@ -772,6 +773,22 @@ def _time_scales_of_rows(x: np.ndarray, m: np.ndarray, sample_rate_hz: float):
                                                clean_correlation[k] / clean_correlation[k, 0],
                                                n, max_lag, fs, int(lines[k].sum()), kurtoses[k])
     return out
+
+
+def _taper_counts(taper: np.ndarray, size: int, max_lag: int) -> np.ndarray:
+    """Lag products of the taper(s) (rows), lags 0..max_lag, floored at 1e-12 of lag 0."""
+    weight_spectrum = _fft.rfft(taper, size, axis=-1)
+    counts = _fft.irfft(weight_spectrum.real ** 2 + weight_spectrum.imag ** 2, size, axis=-1)
+    return np.maximum(counts[:, :max_lag + 1], 1e-12 * counts[:, :1])
+
+
+@functools.lru_cache(maxsize=4)
+def _complete_taper_counts(n: int) -> np.ndarray:
+    """:func:`_taper_counts` of the Hann taper of a complete record of ``n`` samples (cached,
+    read-only: every complete window of a job has the same one)."""
+    counts = _taper_counts(np.hanning(n + 2)[1:-1][None, :], _fft.next_fast_len(2 * n), n // 2)
+    counts.setflags(write=False)
+    return counts
 
 
 def _time_scales_from_correlation(rho_full, rho, n, max_lag, fs, line_count, kurtosis):
