@@ -39,6 +39,7 @@ import dataclasses
 import datetime as _dt
 import functools
 import math
+import os
 from typing import Dict, Mapping, Optional, Tuple
 
 import numpy as np
@@ -740,7 +741,7 @@ def _time_scales_of_rows(x: np.ndarray, m: np.ndarray, sample_rate_hz: float):
     hann = np.hanning(n + 2)[1:-1]
     taper = hann * (masks[:1] if same_mask else masks)
     size = _fft.next_fast_len(2 * n)
-    spectrum = _fft.rfft(deviation * taper, size, axis=-1)
+    spectrum = _fft.rfft(deviation * taper, size, axis=-1, workers=transform_workers())
     power = spectrum.real ** 2 + spectrum.imag ** 2
     max_lag = n // 2
     if same_mask and masks[0].all():
@@ -763,7 +764,7 @@ def _time_scales_of_rows(x: np.ndarray, m: np.ndarray, sample_rate_hz: float):
     # rows without a line: the clean spectrum is the spectrum itself (no second transform)
     with_lines = [k for k in range(len(rows)) if lines[k].any()]
     clean = np.where(lines[with_lines], local[with_lines], power[with_lines])
-    both = _fft.irfft(np.concatenate([power, clean]), size, axis=-1)[:, :max_lag + 1]
+    both = _fft.irfft(np.concatenate([power, clean]), size, axis=-1, workers=transform_workers())[:, :max_lag + 1]
     full = both[:len(rows)] / counts
     clean_correlation = full.copy()
     if with_lines:
@@ -773,6 +774,32 @@ def _time_scales_of_rows(x: np.ndarray, m: np.ndarray, sample_rate_hz: float):
                                                clean_correlation[k] / clean_correlation[k, 0],
                                                n, max_lag, fs, int(lines[k].sum()), kurtoses[k])
     return out
+
+
+#: environment variable: threads for screening's batched transforms (default 1)
+TRANSFORM_WORKERS_ENV = "CORRTRANSFORMS_TRANSFORM_THREADS"
+
+
+def transform_workers() -> int:
+    """Threads for the batched 2n-point transforms of screening.
+
+    Returns
+    -------
+    int
+        ``CORRTRANSFORMS_TRANSFORM_THREADS`` when set to a positive integer, else 1.
+
+    Notes
+    -----
+    scipy's pocketfft runs the rows of a batched transform on several threads; each row's
+    transform is computed exactly as with one thread, so results are bit-identical. Worth it
+    only when a worker process has idle cores (the in-process local runner on a multi-core
+    machine); with one worker process per core it only adds contention.
+    """
+    try:
+        value = int(os.environ.get(TRANSFORM_WORKERS_ENV, "1"))
+    except ValueError:
+        return 1
+    return max(1, value)
 
 
 def _taper_counts(taper: np.ndarray, size: int, max_lag: int) -> np.ndarray:
