@@ -21,7 +21,7 @@ from apache_beam.io.filesystem import CompressionTypes
 from apache_beam.io.filesystems import FileSystems
 from apache_beam.options.pipeline_options import PipelineOptions, StandardOptions
 
-from corrtransforms import tables
+from corrtransforms import archive_plan, tables
 from corrtransforms.beam import LOCAL_RUNNER
 from corrtransforms.beam.archive import window_accounting
 from corrtransforms.beam.monitoring import PROGRESS_LOGGER, MonitorAsset
@@ -157,7 +157,22 @@ def parse_options(argv: Optional[List[str]], options_class):
         config = load_job_config(args.config)
     except ConfigError as err:
         raise SystemExit(f"configuration error: {err}") from None
+    check_archive(config)
     return options, args, config
+
+
+def check_archive(config: AssetConfig) -> None:
+    """Stop before the pipeline starts when ``[archive] path`` matches no file (a wrong path must
+    not surface as an error deep inside the running job)."""
+    pattern = archive_plan.expand_archive_path(config.archive.path)
+    try:
+        found = FileSystems.match([pattern], limits=[1])[0].metadata_list
+    except Exception as err:  # noqa: BLE001 - an unreachable or malformed location
+        raise SystemExit(f"configuration error: [archive] path = {config.archive.path!r}: "
+                         f"cannot be listed ({type(err).__name__}: {err})") from None
+    if not found:
+        raise SystemExit(f"configuration error: [archive] path = {config.archive.path!r}: no files match "
+                         f"{pattern!r}")
 
 
 def summary(counters: Dict[str, int]) -> str:

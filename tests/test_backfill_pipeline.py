@@ -212,3 +212,13 @@ def test_bad_arguments_fail_before_the_pipeline(tmp_path):
     config = _write_config(tmp_path / "a.toml", tmp_path)
     with pytest.raises(SystemExit, match="before --start"):
         backfill.main(["--config", config, "--output", str(tmp_path), "--start", "2024-03-05", "--end", "2024-03-04"])
+
+
+def test_an_archive_path_without_files_stops_before_the_pipeline(tmp_path):
+    # a wrong [archive] path is a configuration error named before any step runs
+    config = tmp_path / "asset.toml"
+    config.write_text('[asset]\nname = "empty-site"\n[archive]\npath = "nothing-here"\nsample_rate_hz = 10\n')
+    with pytest.raises(SystemExit) as stop:
+        backfill.main(["--config", str(config), "--output", str(tmp_path / "out")])
+    assert "[archive] path" in str(stop.value) and "no files match" in str(stop.value)
+    assert not (tmp_path / "out").exists()
