@@ -25,7 +25,7 @@ from corrtransforms import archive_plan, tables
 from corrtransforms.beam import LOCAL_RUNNER
 from corrtransforms.beam.archive import window_accounting
 from corrtransforms.beam.monitoring import PROGRESS_LOGGER, MonitorAsset
-from corrtransforms.beam.output_tables import read_partitions, write_episodes
+from corrtransforms.beam.output_tables import latest_states, read_partitions, write_episodes
 from corrtransforms import config as config_module
 from corrtransforms.config import AssetConfig, ConfigError, load_config, parse_config
 
@@ -82,7 +82,7 @@ def earlier_states(output: str, config: AssetConfig, start: Optional[_dt.date]):
     """State rows written before ``start`` (None when starting from the first window)."""
     if start is None:
         return None
-    states = read_partitions(output, "state", config.name, tables.STATE, before=start)
+    states = read_partitions(output, "state", config.name, tables.STATE, before=start, keep=latest_states)
     return states if states.num_rows else None
 
 

@@ -19,7 +19,7 @@ import zoneinfo
 from typing import Dict, List, Optional
 
 from corrtransforms import tables
-from corrtransforms.beam.output_tables import partition_files, read_partitions
+from corrtransforms.beam.output_tables import latest_states, partition_files, read_partitions
 from corrtransforms.config import AssetConfig
 from corrtransforms.state_replay import replay_states
 from pipelines.backfill import JobOptions, as_date, new_run_id, parse_options, run
@@ -36,7 +36,7 @@ def yesterday(config: AssetConfig, now: Optional[_dt.datetime] = None) -> _dt.da
 
 def previous_states(output: str, config: AssetConfig, day: _dt.date, rebuild: bool):
     """The state table to resume ``day`` from, or SystemExit(2) when there is none."""
-    states = read_partitions(output, "state", config.name, tables.STATE, before=day)
+    states = read_partitions(output, "state", config.name, tables.STATE, before=day, keep=latest_states)
     if states.num_rows:
         return states
     earlier_indicators = [d for d, _ in partition_files(output, "indicators", config.name) if d < day.isoformat()]

@@ -118,3 +118,19 @@ def test_yesterday_is_taken_in_the_assets_time_zone(site):
     tokyo = asset.__class__(**{**asset.__dict__, "archive": asset.archive.__class__(
         **{**asset.archive.__dict__, "timezone": "Asia/Tokyo"})})
     assert nightly.yesterday(tokyo, late_evening_utc) == dt.date(2026, 3, 1)  # already 2 March in Tokyo
+
+
+def test_episodes_from_the_reduced_shifts_equal_those_from_the_whole_table(site):
+    # the launcher reads only shifted rows and each series' latest row per file; the summary
+    # must be exactly the one built from every row
+    from corrtransforms import shift_series, tables
+    from corrtransforms.beam.output_tables import episode_evidence, read_partitions
+
+    _, config, full = site
+    whole = read_partitions(full, "shifts", "footbridge", tables.SHIFTS)
+    reduced = read_partitions(full, "shifts", "footbridge", tables.SHIFTS, keep=episode_evidence)
+    assert reduced.num_rows < whole.num_rows
+    assert shift_series.shift_episodes(reduced).equals(shift_series.shift_episodes(whole))
+    written = ds.dataset(os.path.join(full, "episodes"), format="parquet").to_table()
+    assert written.drop_columns([c for c in written.column_names if c not in tables.EPISODES.names]) \
+        .select(tables.EPISODES.names).to_pylist() == shift_series.shift_episodes(whole).to_pylist()

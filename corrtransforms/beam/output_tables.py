@@ -9,9 +9,11 @@ from __future__ import annotations
 
 import datetime as _dt
 import re
-from typing import List, Optional
+from typing import Callable, List, Optional, Sequence
 
+import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.parquet as pq
 from apache_beam.io.filesystems import CompressionTypes, FileSystems
 
@@ -38,18 +40,58 @@ def partition_files(output_dir: str, table: str, asset: str) -> List[tuple]:
 
 
 def read_partitions(output_dir: str, table: str, asset: str, schema: pa.Schema,
-                    before: Optional[_dt.date] = None) -> pa.Table:
-    """Concatenate the table's partitions of ``asset`` (only dates before ``before`` if given)."""
+                    before: Optional[_dt.date] = None, columns: Optional[Sequence[str]] = None,
+                    keep: Optional[Callable[[pa.Table], pa.Table]] = None) -> pa.Table:
+    """Concatenate the table's partitions of ``asset`` (only dates before ``before`` if given).
+
+    ``columns`` reads only those columns; ``keep`` reduces each file's rows as it is read, so the
+    result holds what the caller needs, not the whole history.
+    """
+    if columns is not None:
+        schema = pa.schema([schema.field(name) for name in columns])
     pieces = []
     for date, path in partition_files(output_dir, table, asset):
         if before is not None and _dt.date.fromisoformat(date) >= before:
             continue
         with FileSystems.open(path, compression_type=CompressionTypes.UNCOMPRESSED) as handle:
-            piece = pq.read_table(handle)
-        pieces.append(table_writer.conform(piece, schema))
+            read = pq.read_table(handle, columns=None if columns is None else list(columns))
+        piece = table_writer.conform(read, schema)
+        pieces.append(keep(piece) if keep is not None else piece)
     if not pieces:
         return schema.empty_table()
     return pa.concat_tables(pieces)
+
+
+def last_row_of_each_series(table: pa.Table) -> np.ndarray:
+    """Boolean mask of the latest row (by window_start) of each (subject, indicator) in ``table``."""
+    mask = np.zeros(table.num_rows, dtype=bool)
+    if table.num_rows == 0:
+        return mask
+    starts = table.column("window_start").cast(pa.int64()).to_numpy(zero_copy_only=False)
+    latest = {}
+    for i, key in enumerate(zip(table.column("subject").to_pylist(), table.column("indicator").to_pylist())):
+        if key not in latest or starts[i] >= starts[latest[key]]:
+            latest[key] = i
+    mask[list(latest.values())] = True
+    return mask
+
+
+def latest_states(states: pa.Table) -> pa.Table:
+    """Only the latest state row of each series (what a resumed run can use)."""
+    return states.filter(pa.array(last_row_of_each_series(states)))
+
+
+#: the shifts columns the episodes summary is built from
+EPISODE_COLUMNS = ("window_start", "subject", "indicator", "first_alarm", "onset", "state", "direction",
+                   "shift_size", "z", "detector", "unit")
+
+
+def episode_evidence(shifts: pa.Table) -> pa.Table:
+    """The rows of a shifts table that decide its episodes: every shifted row, and the latest row
+    of each series (which says whether an episode is still open). The summary of the reduced
+    table equals that of the whole table."""
+    shifted = pc.equal(shifts.column("state"), "shifted").to_numpy(zero_copy_only=False)
+    return shifts.filter(pa.array(shifted | last_row_of_each_series(shifts)))
 
 
 def write_episodes(output_dir: str, config: AssetConfig, run_id: str) -> int:
@@ -58,8 +100,9 @@ def write_episodes(output_dir: str, config: AssetConfig, run_id: str) -> int:
     The summary is derived data: it is rebuilt after every run (written to a temporary name and
     renamed into place). Returns the number of episodes.
     """
-    shifts = read_partitions(output_dir, "shifts", config.name, tables.SHIFTS)
-    episodes = shift_series.shift_episodes(shifts)
+    evidence = read_partitions(output_dir, "shifts", config.name, tables.SHIFTS, columns=EPISODE_COLUMNS,
+                               keep=episode_evidence)
+    episodes = shift_series.shift_episodes(evidence)
     store = BeamFiles()
     folder = store.join(output_dir, "episodes", f"asset={config.name}")
     store.mkdirs(folder)
