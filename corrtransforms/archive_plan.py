@@ -105,13 +105,6 @@ def day_start_us(day: _dt.date, timezone: str) -> int:
     return int(local_to_utc_us(np.array([local]), timezone)[0])
 
 
-def iso_utc(utc_us: int) -> str:
-    """ISO-8601 text of a UTC instant, for ``source`` and ``detail`` fields."""
-    instant = _dt.datetime(1970, 1, 1, tzinfo=_dt.timezone.utc) + _dt.timedelta(microseconds=int(utc_us))
-    text = instant.isoformat(timespec="microseconds" if utc_us % US_PER_S else "seconds")
-    return text.replace("+00:00", "Z")
-
-
 def _compact_utc(utc_us: int) -> str:
     instant = _dt.datetime(1970, 1, 1) + _dt.timedelta(microseconds=int(utc_us))
     text = instant.strftime("%Y%m%dT%H%M%S")

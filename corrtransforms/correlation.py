@@ -510,7 +510,6 @@ def correlate_spectra(spectra: ChannelSpectra, pairs: PairSpec = "all", estimato
     n_pairs = len(pair_list)
     a_idx = np.array([p[0] for p in pair_list], dtype=int)
     b_idx = np.array([p[1] for p in pair_list], dtype=int)
-    band = None
     if band_hz is not None:
         low, high = float(band_hz[0]), float(band_hz[1])
         if not 0 <= low < high:

@@ -10,7 +10,7 @@ and :func:`fit_mode` estimates ``f_n = w_n / 2 pi`` and ``zeta`` by weighted lea
 """
 from __future__ import annotations
 
-from typing import NamedTuple, Optional, Tuple
+from typing import NamedTuple, Tuple
 
 import numpy as np
 import scipy.optimize

@@ -27,6 +27,13 @@ def quality_text(codes) -> str:
     return ";".join(unique) if unique else OK
 
 
+def quality_codes(text) -> Tuple[str, ...]:
+    """The codes of a stored quality text (the inverse of :func:`quality_text`; () for "ok")."""
+    if not text or text == OK:
+        return ()
+    return tuple(c for c in str(text).split(";") if c)
+
+
 @dataclasses.dataclass
 class PairCorrelation:
     """Correlation estimate of one pair (a == b for an auto-correlation) in one window.

@@ -17,6 +17,7 @@ table is generated from it.
 from __future__ import annotations
 
 import dataclasses
+import datetime as _dt
 from typing import Optional
 
 WHOLE_WINDOW = "*"
@@ -46,7 +47,7 @@ REASONS = {
     "conflicting_duplicates": ("rejected", "equal timestamps with different values"),
     "unordered_timestamps": ("repaired", "rows were out of time order; sorted"),
     "off_grid_timestamps": ("repaired", "timestamps off the nominal grid within tolerance; snapped"),
-    "jitter_beyond_tolerance": ("rejected", "samples further from the grid than the tolerance were dropped"),
+    "jitter_beyond_tolerance": ("repaired", "samples further from the grid than the tolerance were dropped as gaps"),
     "nonfinite_values": ("repaired", "NaN or inf samples were treated as gaps"),
     "flat_channel": ("rejected", "the channel does not vary in the window (dead sensor)"),
     "clipped_channel": ("flagged", "many samples sit at the channel's extreme values (saturation)"),
@@ -61,6 +62,16 @@ REASONS = {
     "state_mismatch": ("rejected", "the resumed shift state was computed with other [baseline]/[shifts] settings; run a backfill"),
     "shift_detection_failed": ("rejected", "shift detection raised an error for the series; detail holds it"),
 }
+
+
+_EPOCH = _dt.datetime(1970, 1, 1, tzinfo=_dt.timezone.utc)
+
+
+def iso_utc(utc_us: int) -> str:
+    """ISO-8601 text of a UTC instant (``source`` of window findings, and ``detail`` texts)."""
+    instant = _EPOCH + _dt.timedelta(microseconds=int(utc_us))
+    text = instant.isoformat(timespec="microseconds" if int(utc_us) % 1_000_000 else "seconds")
+    return text.replace("+00:00", "Z")
 
 
 @dataclasses.dataclass(frozen=True)

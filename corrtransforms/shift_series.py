@@ -47,8 +47,8 @@ from . import tables
 from .baseline import day_date, day_number, local_days, period_position
 from .covariate_model import BaselineModel, fit_baseline_model
 from .detectors import cusum_path, cusum_run_lengths, cusum_run_sums, ewma_limits, ewma_path
-from .records import IndicatorRow, quality_text
-from .rejects import Reject
+from .records import IndicatorRow, quality_codes, quality_text
+from .rejects import Reject, iso_utc
 
 BASELINE, NORMAL, SHIFTED = "baseline", "normal", "shifted"
 ACCUMULATING, FITTED = "accumulating", "fitted"
@@ -164,10 +164,6 @@ def _to_datetime(us: Optional[int]) -> Optional[_dt.datetime]:
     if us is None:
         return None
     return _EPOCH_UTC + _dt.timedelta(microseconds=int(us))
-
-
-def _iso(us: int) -> str:
-    return _to_datetime(us).isoformat().replace("+00:00", "Z")
 
 
 # --------------------------------------------------------------------------------------------
@@ -378,12 +374,6 @@ class _Columns:
 
 def _timestamps(values: Sequence[Optional[int]]) -> pa.Array:
     return pa.array([None if v is None else int(v) for v in values], type=pa.int64()).cast(tables.TIMESTAMP)
-
-
-def _quality_codes(text: Optional[str]) -> Tuple[str, ...]:
-    if not text or text == "ok":
-        return ()
-    return tuple(c for c in str(text).split(";") if c)
 
 
 def _is_nonstationary(codes: Tuple[str, ...]) -> bool:
@@ -717,7 +707,7 @@ def detect_shifts(times_us, values, stderr, quality, covariates, config, state: 
     n = t.size
     if v.size != n or se.size != n:
         raise ValueError("times_us, values and stderr must have the same length")
-    codes = [_quality_codes(q) for q in (quality if quality is not None else ["ok"] * n)]
+    codes = [quality_codes(q) for q in (quality if quality is not None else ["ok"] * n)]
     if len(codes) != n:
         raise ValueError("quality must have one entry per window")
     if n > 1 and np.any(np.diff(t) <= 0):
@@ -734,7 +724,7 @@ def detect_shifts(times_us, values, stderr, quality, covariates, config, state: 
             raise StateMismatchError(f"state is for {state.subject}/{state.indicator}, not {subject}/{indicator}")
         if n and state.window_start_us is not None and t[0] <= state.window_start_us:
             raise StateMismatchError(
-                f"first window {_iso(int(t[0]))} is not after the state's last window {_iso(state.window_start_us)}")
+                f"first window {iso_utc(int(t[0]))} is not after the state's last window {iso_utc(state.window_start_us)}")
         state = copy.deepcopy(state)
     subject = subject or state.subject
     indicator = indicator or state.indicator
@@ -772,6 +762,16 @@ def _empty_outcome(rejects) -> SeriesOutcome:
     return SeriesOutcome(tables.SHIFTS.empty_table(), tables.STATE.empty_table(), rejects)
 
 
+def row_role(row: IndicatorRow, config) -> Optional[str]:
+    """What the shifts stage does with an indicator row: ``"covariate"`` (a window mean used for
+    compensation), ``"monitored"`` (a series the detectors run on) or None (left alone)."""
+    if row.indicator == COVARIATE_INDICATOR:
+        return "covariate"
+    if row.indicator in config.shifts.indicators and row.subject not in config.channels.covariates:
+        return "monitored"
+    return None
+
+
 def covariates_for_window(window_start_us: int, rows: Iterable[IndicatorRow],
                           asset: str = "") -> Tuple[Dict[str, float], List[Reject]]:
     """Covariate means of one window from its ``covariate_mean`` indicator rows.
@@ -793,7 +793,7 @@ def covariates_for_window(window_start_us: int, rows: Iterable[IndicatorRow],
             means[name] = found[0]
             continue
         means[name] = float("nan")
-        rejects.append(Reject(STAGE, _iso(window_start_us), name, "duplicate_covariate_rows",
+        rejects.append(Reject(STAGE, iso_utc(window_start_us), name, "duplicate_covariate_rows",
                               f"{len(found)} covariate_mean rows: {sorted(map(repr, found))}",
                               asset=asset, window_start_us=int(window_start_us)))
     return means, rejects
@@ -833,7 +833,7 @@ def detect_shifts_for_rows(rows: Iterable[IndicatorRow], covariates_by_window: M
     for row in rows:
         if unique and int(row.window_start_us) == int(unique[-1].window_start_us):
             kept = unique[-1]
-            rejects.append(Reject(STAGE, _iso(int(row.window_start_us)), subject, "duplicate_indicator_rows",
+            rejects.append(Reject(STAGE, iso_utc(int(row.window_start_us)), subject, "duplicate_indicator_rows",
                                   f"{indicator}: value {row.value!r} stderr {row.stderr!r} not used; "
                                   f"kept value {kept.value!r} stderr {kept.stderr!r}",
                                   asset=asset, window_start_us=int(row.window_start_us)))
@@ -843,8 +843,8 @@ def detect_shifts_for_rows(rows: Iterable[IndicatorRow], covariates_by_window: M
     if blocking is not None:
         stale = [r for r in unique if int(r.window_start_us) <= blocking.window_start_us]
         for r in stale:
-            rejects.append(Reject(STAGE, _iso(int(r.window_start_us)), subject, "window_before_state",
-                                  f"{indicator}: the earliest resumable state is at {_iso(blocking.window_start_us)}",
+            rejects.append(Reject(STAGE, iso_utc(int(r.window_start_us)), subject, "window_before_state",
+                                  f"{indicator}: the earliest resumable state is at {iso_utc(blocking.window_start_us)}",
                                   asset=asset, window_start_us=int(r.window_start_us)))
         unique = [r for r in unique if int(r.window_start_us) > blocking.window_start_us]
         state = blocking
@@ -864,7 +864,7 @@ def detect_shifts_for_rows(rows: Iterable[IndicatorRow], covariates_by_window: M
                               date=day_date(int(local_days(times[:1], config.archive.timezone)[0])).isoformat()))
         return _empty_outcome(rejects)
     except Exception as err:  # noqa: BLE001 - routed to the rejects table with its text
-        rejects.append(Reject(STAGE, _iso(int(times[0])), subject, "shift_detection_failed",
+        rejects.append(Reject(STAGE, iso_utc(int(times[0])), subject, "shift_detection_failed",
                               f"{indicator}: {type(err).__name__}: {err}", asset=asset,
                               window_start_us=int(times[0])))
         return _empty_outcome(rejects)

@@ -46,15 +46,13 @@ def replay_states(indicators: pa.Table, config: AssetConfig) -> Tuple[pa.Table, 
     rejects : list of Reject
         Findings of the replay (duplicates, failures), as the shifts stage would report them.
     """
-    rows = indicator_rows_from_table(indicators)
-    monitored = set(config.shifts.indicators)
-    covariate_names = set(config.channels.covariates)
     by_window: Dict[int, List[IndicatorRow]] = {}
     series: Dict[Tuple[str, str], List[IndicatorRow]] = {}
-    for row in rows:
-        if row.indicator == shift_series.COVARIATE_INDICATOR:
+    for row in indicator_rows_from_table(indicators):
+        role = shift_series.row_role(row, config)
+        if role == "covariate":
             by_window.setdefault(row.window_start_us, []).append(row)
-        elif row.indicator in monitored and row.subject not in covariate_names:
+        elif role == "monitored":
             series.setdefault((row.subject, row.indicator), []).append(row)
     rejects: List[Reject] = []
     covariates = {}

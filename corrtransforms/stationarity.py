@@ -36,7 +36,6 @@ correlate stage.
 from __future__ import annotations
 
 import dataclasses
-import datetime as _dt
 import functools
 import math
 import os
@@ -48,7 +47,7 @@ from scipy import ndimage as _ndimage
 from scipy import stats as _stats
 
 from corrtransforms.records import IndicatorRow, quality_text
-from corrtransforms.rejects import WHOLE_WINDOW, Reject
+from corrtransforms.rejects import WHOLE_WINDOW, Reject, iso_utc
 
 #: quality code of a subject whose screening test is significant at ``alpha``
 QUALITY_NONSTATIONARY = "nonstationary"
@@ -939,11 +938,6 @@ class WindowScreening:
         return tuple(s for s, r in self.subjects.items() if r.flagged)
 
 
-def _window_iso(window_start_us: int) -> str:
-    moment = _dt.datetime(1970, 1, 1, tzinfo=_dt.timezone.utc) + _dt.timedelta(microseconds=int(window_start_us))
-    return moment.isoformat().replace("+00:00", "Z")
-
-
 def _usable(statistics: SegmentStatistics) -> np.ndarray:
     return (statistics.valid_count >= MIN_SEGMENT_COVERAGE * statistics.segment_length) \
         & np.isfinite(statistics.mean_square)
@@ -1247,7 +1241,7 @@ def screen_window(block, screening_config, pairs=None) -> WindowScreening:
         detail = "; ".join(
             f"{s}: p={results[s].p_value:.3g} over {results[s].segments} segments of "
             f"{results[s].segment_s:.4g} s" for s in flagged_subjects)
-        rejects = (Reject(stage="screen", source=_window_iso(start), subject=WHOLE_WINDOW,
+        rejects = (Reject(stage="screen", source=iso_utc(start), subject=WHOLE_WINDOW,
                           reason="nonstationary_window",
                           detail=f"alpha={alpha:g}; flagged {detail}",
                           asset=block.asset, window_start_us=start),)

@@ -61,11 +61,11 @@ def analyse_window(block: WindowBlock, config: AssetConfig
     pairs = tuple(dataclasses.replace(p, quality=tuple(p.quality) + codes.get(p.subject, ()))
                   if codes.get(p.subject) else p
                   for p in result.pairs)
-    subject_quality = {s: tuple(result.subject_quality.get(s, ())) + q for s, q in codes.items()}
+    subject_quality = {s: tuple(q) for s, q in result.subject_quality.items()}
+    for subject, found in codes.items():
+        subject_quality[subject] = subject_quality.get(subject, ()) + found
     for mode in config.modes:
         if codes.get(mode.channel):
-            subject_quality[mode.name] = tuple(subject_quality.get(mode.name, ())) + codes[mode.channel]
-    for subject, existing in result.subject_quality.items():
-        subject_quality.setdefault(subject, tuple(existing))
+            subject_quality[mode.name] = subject_quality.get(mode.name, ()) + codes[mode.channel]
     return dataclasses.replace(result, pairs=pairs, subject_quality=subject_quality,
                                extra_indicators=tuple(result.extra_indicators) + tuple(screening.indicators)), []

@@ -13,17 +13,17 @@ Pure pyarrow/numpy: files are opened through an ``open_file(path)`` callable.
 from __future__ import annotations
 
 import collections
-from typing import Dict, Iterator, List, Optional, Sequence, Tuple, Union
+from typing import Dict, Iterator, List, Optional, Tuple, Union
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
-from corrtransforms.archive_plan import (OpenFile, ReadTask, iso_utc, local_date, local_to_utc_us,
+from corrtransforms.archive_plan import (OpenFile, ReadTask, local_date, local_to_utc_us,
                                          open_local_file, window_grid)
 from corrtransforms.config import AssetConfig
-from corrtransforms.rejects import WHOLE_FILE, WHOLE_WINDOW, Reject
+from corrtransforms.rejects import WHOLE_FILE, WHOLE_WINDOW, Reject, iso_utc
 from corrtransforms.window_block import WindowBlock
 
 #: relative difference between the median sample interval and the nominal one above which a
@@ -341,11 +341,9 @@ def _window(task: ReadTask, data: _TaskData, config: AssetConfig, start_us: int)
     length_us, _, n_samples, period_us = window_grid(config)
     tolerance = config.reading.grid_tolerance
     names = task.channels + task.covariates
-    n_channels = len(task.channels)
     lo = np.searchsorted(data.times, start_us - 0.5 * period_us, side="left")
     hi = np.searchsorted(data.times, start_us + (n_samples - 0.5) * period_us, side="left")
     times = data.times[lo:hi]
-    out: List[Union[WindowBlock, Reject]] = []
     if times.size == 0:
         return [_whole_window(config, start_us, "insufficient_coverage", "no samples in the window")]
     file_index = data.file_index[lo:hi]
@@ -446,7 +444,7 @@ def _checked_block(task: ReadTask, data: _TaskData, config: AssetConfig, start_u
     if totals["beyond"]:
         out.append(_finding(config, start_us, "jitter_beyond_tolerance",
                             f"{totals['beyond']} samples further than {tolerance:g} of a period from the grid "
-                            "dropped (treated as gaps)", action="repaired"))
+                            "dropped (treated as gaps)"))
     for c, name in enumerate(task.channels):
         if nonfinite[c]:
             out.append(_finding(config, start_us, "nonfinite_values",

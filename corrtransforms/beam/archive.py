@@ -20,7 +20,7 @@ from __future__ import annotations
 import datetime as _dt
 import logging
 import uuid
-from typing import Any, Dict, Iterable, List, Optional, Sequence, Union
+from typing import Dict, List, Optional, Sequence, Union
 
 import apache_beam as beam
 from apache_beam.io.filesystem import CompressionTypes
@@ -31,8 +31,7 @@ from apache_beam.transforms.window import GlobalWindows
 from corrtransforms import archive_plan, table_writer, window_read
 from corrtransforms.archive_plan import FileFooter, ReadTask
 from corrtransforms.config import AssetConfig
-from corrtransforms.records import WindowCorrelation
-from corrtransforms.rejects import WHOLE_WINDOW, Reject
+from corrtransforms.rejects import WHOLE_WINDOW, Reject, iso_utc
 from corrtransforms.window_block import WindowBlock
 
 NAMESPACE = "corrtransforms"
@@ -212,7 +211,7 @@ class PlanReads(beam.PTransform):
 
 
 def _whole_window_reject(config: AssetConfig, start_us: int, stage: str, reason: str, detail: str) -> Reject:
-    return Reject(stage=stage, source=archive_plan.iso_utc(start_us), subject=WHOLE_WINDOW, reason=reason,
+    return Reject(stage=stage, source=iso_utc(start_us), subject=WHOLE_WINDOW, reason=reason,
                   detail=detail, asset=config.name, window_start_us=int(start_us))
 
 

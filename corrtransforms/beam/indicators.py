@@ -13,11 +13,10 @@ from __future__ import annotations
 import apache_beam as beam
 from apache_beam.metrics import Metrics
 
-from corrtransforms import archive_plan
 from corrtransforms.config import AssetConfig
 from corrtransforms.indicators import window_indicators_and_failures
 from corrtransforms.records import OK, WindowCorrelation
-from corrtransforms.rejects import WHOLE_WINDOW, Reject
+from corrtransforms.rejects import WHOLE_WINDOW, Reject, iso_utc
 
 NAMESPACE = "corrtransforms"
 STAGE = "indicators"
@@ -25,7 +24,7 @@ STAGE = "indicators"
 
 def _reject(wc: WindowCorrelation, asset: str, subject: str, detail: str) -> Reject:
     start = getattr(wc, "window_start_us", None)
-    source = archive_plan.iso_utc(start) if isinstance(start, int) else repr(start)
+    source = iso_utc(start) if isinstance(start, int) else repr(start)
     return Reject(stage=STAGE, source=source, subject=subject, reason="indicator_failed",
                   detail=detail[:2000], asset=asset,
                   window_start_us=start if isinstance(start, int) else None)

@@ -31,16 +31,17 @@ def _counter(name: str):
 class _SplitRowsFn(beam.DoFn):
     """Monitored rows to the main output, covariate means to "covariates"; counts the rest."""
 
-    def __init__(self, monitored, covariates):
-        self._monitored, self._covariates = frozenset(monitored), frozenset(covariates)
+    def __init__(self, config: AssetConfig):
+        self._config = config
 
     def setup(self):
         self._ignored = _counter("shift_rows_not_monitored")
 
     def process(self, row: IndicatorRow):
-        if row.indicator == shift_series.COVARIATE_INDICATOR:
+        role = shift_series.row_role(row, self._config)
+        if role == "covariate":
             yield beam.pvalue.TaggedOutput("covariates", row)
-        elif row.indicator in self._monitored and row.subject not in self._covariates:
+        elif role == "monitored":
             yield row
         else:
             self._ignored.inc()
@@ -145,7 +146,7 @@ class DetectShifts(beam.PTransform):
         pipeline = indicator_rows.pipeline
         split = (indicator_rows
                  | "Split monitored and covariate rows" >> beam.ParDo(
-                     _SplitRowsFn(config.shifts.indicators, config.channels.covariates)).with_outputs(
+                     _SplitRowsFn(config)).with_outputs(
                          "covariates", main="monitored"))
         covariates = (split.covariates
                       | "Key covariates by window" >> beam.Map(lambda r: (int(r.window_start_us), r))
