@@ -44,8 +44,9 @@ def read_partitions(output_dir: str, table: str, asset: str, schema: pa.Schema,
                     keep: Optional[Callable[[pa.Table], pa.Table]] = None) -> pa.Table:
     """Concatenate the table's partitions of ``asset`` (only dates before ``before`` if given).
 
-    ``columns`` reads only those columns; ``keep`` reduces each file's rows as it is read, so the
-    result holds what the caller needs, not the whole history.
+    ``columns`` reads only those columns; ``keep`` reduces the rows as each file is added (it is
+    applied to what has been kept so far plus the new file), so memory holds what the caller
+    needs, not the whole history. Every file is still opened: the I/O grows with the history.
     """
     if columns is not None:
         schema = pa.schema([schema.field(name) for name in columns])
@@ -56,7 +57,10 @@ def read_partitions(output_dir: str, table: str, asset: str, schema: pa.Schema,
         with FileSystems.open(path, compression_type=CompressionTypes.UNCOMPRESSED) as handle:
             read = pq.read_table(handle, columns=None if columns is None else list(columns))
         piece = table_writer.conform(read, schema)
-        pieces.append(keep(piece) if keep is not None else piece)
+        if keep is None:
+            pieces.append(piece)
+        else:
+            pieces = [keep(pa.concat_tables(pieces + [piece]))]
     if not pieces:
         return schema.empty_table()
     return pa.concat_tables(pieces)
