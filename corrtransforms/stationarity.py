@@ -651,7 +651,8 @@ class CorrelationTimeScales:
     kurtosis: float
 
 
-def correlation_time_scales(values, valid=None, sample_rate_hz: float = 1.0) -> CorrelationTimeScales:
+def correlation_time_scales(values, valid=None, sample_rate_hz: float = 1.0,
+                            max_memory_s: Optional[float] = None) -> CorrelationTimeScales:
     """Integral time scale and envelope decay time of a record, from one FFT auto-correlation.
 
     Parameters
@@ -662,6 +663,17 @@ def correlation_time_scales(values, valid=None, sample_rate_hz: float = 1.0) -> 
         Mask of valid samples; gaps are handled by normalising each lag by its weighted pair count.
     sample_rate_hz : float
         Sample rate ``fs`` in Hz.
+    max_memory_s : float, optional
+        Longest memory time of interest. When given, lags are only computed, and the envelope
+        searched, up to three times it (the reach of the degrees-of-freedom sum), so the
+        transform is ``n + 3 max_memory_s fs`` points long instead of ``2n``; a ``memory_s``
+        above ``max_memory_s`` is then a lower bound. Screening passes
+        :func:`screening_memory_limit_s`: a longer memory leaves fewer than
+        :data:`MINIMUM_SEGMENTS` segments, so the record is not screened either way. (An
+        oscillating coefficient whose ``|rho|`` stays below ``1/e`` over the whole searched
+        stretch beyond ``max_memory_s`` yet peaks above it later would need a half period above
+        eight times ``max_memory_s``; its integral time up to the first zero then already exceeds
+        ``max_memory_s``.)
 
     Returns
     -------
@@ -692,13 +704,34 @@ def correlation_time_scales(values, valid=None, sample_rate_hz: float = 1.0) -> 
     Sect. 8.2 (mean square estimates and their random error); section numbers from memory.
     """
     x, m = _as_record(values, valid)
-    result = _time_scales_of_rows(x[None, :], m[None, :], sample_rate_hz)[0]
+    result = _time_scales_of_rows(x[None, :], m[None, :], sample_rate_hz, max_memory_s)[0]
     if isinstance(result, ValueError):
         raise result
     return result
 
 
-def _time_scales_of_rows(x: np.ndarray, m: np.ndarray, sample_rate_hz: float):
+def screening_memory_limit_s(record_s: float, factor: float = INDEPENDENCE_FACTOR,
+                             minimum: int = MINIMUM_SEGMENTS) -> float:
+    """Longest memory time at which a record of ``record_s`` seconds can still be screened.
+
+    A memory time above ``record_s / (factor * minimum)`` leaves fewer than ``minimum`` segments
+    (:func:`segments_for_record`). :func:`correlation_time_scales` searches one sample beyond
+    it, so a record whose envelope has not decayed by then is certainly not screened.
+    """
+    return float(record_s) / (float(factor) * int(minimum))
+
+
+def _lag_limits(n: int, fs: float, max_memory_s: Optional[float]) -> Tuple[int, int, int]:
+    """Transform length, last lag computed and last lag of the envelope search for ``n`` samples."""
+    if max_memory_s is None:
+        return _fft.next_fast_len(2 * n), n // 2, max(1, n // 4)
+    limit = int(math.ceil(max_memory_s * fs)) + 1
+    max_lag = max(1, min(n // 2, 3 * limit + 1))
+    return _fft.next_fast_len(n + max_lag + 1), max_lag, max(1, min(n // 4, max_lag))
+
+
+def _time_scales_of_rows(x: np.ndarray, m: np.ndarray, sample_rate_hz: float,
+                         max_memory_s: Optional[float] = None):
     """:func:`correlation_time_scales` of several records at once (rows of ``x``, masks ``m``).
 
     ``x`` holds the records with 0 at invalid samples (as :func:`_as_record` returns them). The
@@ -710,41 +743,44 @@ def _time_scales_of_rows(x: np.ndarray, m: np.ndarray, sample_rate_hz: float):
     c, n = x.shape
     out: list = [None] * c
     counts_valid = m.sum(axis=1)
-    ok = [i for i in range(c) if n >= 8 and counts_valid[i] >= 8]
+    ok = np.flatnonzero((counts_valid >= 8) if n >= 8 else np.zeros(c, bool))
     for i in range(c):
         if i not in ok:
             out[i] = ValueError("a record needs at least 8 valid samples")
-    deviation = np.zeros((len(ok), n))
+    if not len(ok):
+        return out
+    # moments of all rows at once (x is 0 at invalid samples)
+    count = counts_valid[ok].astype(float)
+    centers = x[ok].sum(axis=1) / count
+    deviation = x[ok] - centers[:, None]
+    masks = m[ok]
+    complete = masks.all(axis=1)
+    if not complete.all():
+        deviation[~masks] = 0.0
+    squared = deviation * deviation
+    second_all = squared.sum(axis=1) / count
+    fourth_all = np.einsum("ij,ij->i", squared, squared) / count
     keep = []
-    second_moments, kurtoses = [], []
     for k, i in enumerate(ok):
-        row_mask = m[i]
-        center = x[i][row_mask].mean()
-        np.subtract(x[i], center, out=deviation[k])
-        deviation[k][~row_mask] = 0.0
-        valid_deviation = deviation[k][row_mask]
-        squared = valid_deviation * valid_deviation
-        second = float(np.mean(squared))
-        if not second > 0:
+        if not second_all[k] > 0:
             out[i] = ValueError("the record does not vary")
-            continue
-        keep.append(k)
-        second_moments.append(second)
-        kurtoses.append(float(np.mean(squared * squared) / second ** 2))
+        else:
+            keep.append(k)
     if not keep:
         return out
-    rows = [ok[k] for k in keep]
-    deviation = deviation[keep]
-    masks = m[rows]
+    rows = [int(ok[k]) for k in keep]
+    kurtoses = [float(fourth_all[k] / second_all[k] ** 2) for k in keep]
+    if len(keep) < len(ok):
+        deviation, masks = deviation[keep], masks[keep]
     same_mask = bool(np.all(masks == masks[:1]))
     hann = np.hanning(n + 2)[1:-1]
     taper = hann * (masks[:1] if same_mask else masks)
-    size = _fft.next_fast_len(2 * n)
-    spectrum = _fft.rfft(deviation * taper, size, axis=-1, workers=transform_workers())
+    size, max_lag, search = _lag_limits(n, fs, max_memory_s)
+    deviation *= taper
+    spectrum = _fft.rfft(deviation, size, axis=-1, workers=transform_workers())
     power = spectrum.real ** 2 + spectrum.imag ** 2
-    max_lag = n // 2
     if same_mask and masks[0].all():
-        counts = _complete_taper_counts(n)  # the same for every complete record of n samples
+        counts = _complete_taper_counts(n, size, max_lag)  # the same for every complete record
     else:
         counts = _taper_counts(taper, size, max_lag)
 
@@ -753,17 +789,20 @@ def _time_scales_of_rows(x: np.ndarray, m: np.ndarray, sample_rate_hz: float):
     # main lobe
     bins_per_resolution = size / n
     median_width = int(2 * round(12 * bins_per_resolution) + 1)
-    # row by row: the one-dimensional filter is about ten times faster than a (1, w) footprint
-    local = np.stack([_ndimage.median_filter(row, size=median_width, mode="mirror") for row in power])
-    lines = power > LINE_THRESHOLD * np.maximum(local, 1e-300)
     reach = int(math.ceil(3 * bins_per_resolution))
+    lines = np.zeros(power.shape, dtype=bool)
+    clean_rows = []
     for k in range(len(rows)):
-        if lines[k].any():
-            lines[k] = _ndimage.binary_dilation(lines[k], structure=np.ones(2 * reach + 1, dtype=bool))
+        found, local_at_lines = spectral_lines(power[k], median_width, LINE_THRESHOLD, reach)
+        lines[k] = found
+        if found.any():
+            clean = power[k].copy()
+            clean[found] = local_at_lines
+            clean_rows.append((k, clean))
     # rows without a line: the clean spectrum is the spectrum itself (no second transform)
-    with_lines = [k for k in range(len(rows)) if lines[k].any()]
-    clean = np.where(lines[with_lines], local[with_lines], power[with_lines])
-    both = _fft.irfft(np.concatenate([power, clean]), size, axis=-1, workers=transform_workers())[:, :max_lag + 1]
+    with_lines = [k for k, _ in clean_rows]
+    stacked = np.concatenate([power, np.stack([row for _, row in clean_rows])]) if clean_rows else power
+    both = _fft.irfft(stacked, size, axis=-1, workers=transform_workers())[:, :max_lag + 1]
     full = both[:len(rows)] / counts
     clean_correlation = full.copy()
     if with_lines:
@@ -771,7 +810,7 @@ def _time_scales_of_rows(x: np.ndarray, m: np.ndarray, sample_rate_hz: float):
     for k, i in enumerate(rows):
         out[i] = _time_scales_from_correlation(full[k] / full[k, 0],
                                                clean_correlation[k] / clean_correlation[k, 0],
-                                               n, max_lag, fs, int(lines[k].sum()), kurtoses[k])
+                                               search, max_lag, fs, int(lines[k].sum()), kurtoses[k])
     return out
 
 
@@ -801,6 +840,77 @@ def transform_workers() -> int:
     return max(1, value)
 
 
+def spectral_lines(power, width: int, threshold: float = LINE_THRESHOLD, reach: int = 0):
+    """Sharp lines of a spectrum: ordinates above ``threshold`` times their running median.
+
+    Parameters
+    ----------
+    power : ndarray, shape (m,)
+        Spectral ordinates (a periodogram).
+    width : int
+        Odd length of the running median (the spectrum is mirrored at both ends, as
+        ``scipy.ndimage.median_filter(power, width, mode="mirror")`` does).
+    threshold : float
+        An ordinate is a line when ``power > threshold * max(median, 1e-300)``.
+    reach : int
+        Each line is widened by this many ordinates on either side (its leakage).
+
+    Returns
+    -------
+    lines : ndarray of bool, shape (m,)
+        The widened lines.
+    local : ndarray, shape (lines.sum(),)
+        The running median at the line ordinates, in order: the values that replace them.
+
+    Notes
+    -----
+    Exactly the result of the full running median, at a fraction of its cost: the median of a
+    window is never below the same order statistic of any superset of the window (removing
+    elements can only raise the ``k``-th smallest), so the ``(width // 2)``-th smallest of each
+    block of ``width`` ordinates together with its neighbours is a lower bound for the median of
+    every window centred in that block. Only ordinates above ``threshold`` times that bound can be
+    lines; the median is computed exactly there and at the widened lines. With a bound far below
+    the median (a steep spectrum), too many candidates fall back to the full running median.
+    """
+    power = np.asarray(power, dtype=float)
+    m = len(power)
+    half = int(width) // 2
+    width = 2 * half + 1
+    if m <= width:
+        local = _ndimage.median_filter(power, size=width, mode="mirror")
+        found = power > threshold * np.maximum(local, 1e-300)
+        if reach and found.any():
+            found = _ndimage.binary_dilation(found, structure=np.ones(2 * reach + 1, dtype=bool))
+        return found, local[found]
+    padded = np.pad(power, half, mode="reflect")  # numpy "reflect" is ndimage "mirror"
+    blocks = -(-m // width)
+    # block j holds centres j*width .. j*width + width - 1; their windows span padded[j*width :
+    # j*width + 2*width - 1] (padded at the end with +inf, which only lowers the bound)
+    span = np.full(blocks * width + 2 * half, np.inf)
+    span[:len(padded)] = padded
+    superset = np.lib.stride_tricks.as_strided(
+        span, shape=(blocks, 2 * width - 1), strides=(span.strides[0] * width, span.strides[0]))
+    bound = np.partition(superset, half, axis=1)[:, half]
+    bound_per_bin = np.repeat(bound, width)[:m]
+    candidates = np.flatnonzero(power > threshold * np.maximum(bound_per_bin, 1e-300))
+    windows = np.lib.stride_tricks.sliding_window_view(padded, width)
+    if len(candidates) > m // 8:
+        local = _ndimage.median_filter(power, size=width, mode="mirror")
+        found = power > threshold * np.maximum(local, 1e-300)
+        if reach and found.any():
+            found = _ndimage.binary_dilation(found, structure=np.ones(2 * reach + 1, dtype=bool))
+        return found, local[found]
+    found = np.zeros(m, dtype=bool)
+    if len(candidates):
+        median = np.median(windows[candidates], axis=1)
+        found[candidates[power[candidates] > threshold * np.maximum(median, 1e-300)]] = True
+    if not found.any():
+        return found, np.empty(0)
+    if reach:
+        found = _ndimage.binary_dilation(found, structure=np.ones(2 * reach + 1, dtype=bool))
+    return found, np.median(windows[np.flatnonzero(found)], axis=1)
+
+
 def _taper_counts(taper: np.ndarray, size: int, max_lag: int) -> np.ndarray:
     """Lag products of the taper(s) (rows), lags 0..max_lag, floored at 1e-12 of lag 0."""
     weight_spectrum = _fft.rfft(taper, size, axis=-1)
@@ -809,15 +919,15 @@ def _taper_counts(taper: np.ndarray, size: int, max_lag: int) -> np.ndarray:
 
 
 @functools.lru_cache(maxsize=4)
-def _complete_taper_counts(n: int) -> np.ndarray:
+def _complete_taper_counts(n: int, size: int, max_lag: int) -> np.ndarray:
     """:func:`_taper_counts` of the Hann taper of a complete record of ``n`` samples (cached,
     read-only: every complete window of a job has the same one)."""
-    counts = _taper_counts(np.hanning(n + 2)[1:-1][None, :], _fft.next_fast_len(2 * n), n // 2)
+    counts = _taper_counts(np.hanning(n + 2)[1:-1][None, :], size, max_lag)
     counts.setflags(write=False)
     return counts
 
 
-def _time_scales_from_correlation(rho_full, rho, n, max_lag, fs, line_count, kurtosis):
+def _time_scales_from_correlation(rho_full, rho, search, max_lag, fs, line_count, kurtosis):
     below = np.nonzero(rho <= 0)[0]
     first_zero = int(below[0]) if len(below) else max_lag
     if first_zero > 0:
@@ -825,7 +935,6 @@ def _time_scales_from_correlation(rho_full, rho, n, max_lag, fs, line_count, kur
                          else np.trapz(rho[:first_zero + 1]))
     else:
         integral = 0.0
-    search = max(1, n // 4)
     magnitude = np.abs(rho[:search + 1])
     above = np.nonzero(magnitude >= 1.0 / math.e)[0]
     last = int(above[-1])
@@ -986,7 +1095,8 @@ def screen_channel(values, valid, sample_rate_hz: float, segments: int = 20, alp
     if not _enough_to_screen(m):
         return _not_screened(subject, QUALITY_NOT_SCREENED)
     try:
-        scales = correlation_time_scales(x, m, sample_rate_hz)
+        scales = correlation_time_scales(x, m, sample_rate_hz,
+                                         screening_memory_limit_s(len(x) / float(sample_rate_hz)))
     except ValueError:
         return _not_screened(subject, QUALITY_NOT_SCREENED)
     return _screen_record(x, m, sample_rate_hz, segments, alpha, subject, scales)
@@ -1194,7 +1304,8 @@ def screen_window(block, screening_config, pairs=None) -> WindowScreening:
     records = np.where(valid_rows, values_rows, 0.0)
     eligible = [name for name in channels if _enough_to_screen(valid_rows[index[name]])]
     rows = [index[name] for name in eligible]
-    scales = dict(zip(eligible, _time_scales_of_rows(records[rows], valid_rows[rows], fs))) if rows else {}
+    limit = screening_memory_limit_s(block.n_samples / fs)
+    scales = dict(zip(eligible, _time_scales_of_rows(records[rows], valid_rows[rows], fs, limit))) if rows else {}
     for name in channels:
         i = index[name]
         found = scales.get(name)

@@ -4,6 +4,10 @@ compute what they claim.
 - batched stationarity screening of a window (all channels' transforms at once, cross-products of
   complete records from one matrix product) equals screening each channel and pair on its own
   with the single-record functions, which tests/test_stationarity.py checks against references;
+- the line finder of screening (a bounded search for the running median) equals the full running
+  median of ``scipy.ndimage.median_filter``;
+- the time scales with a memory limit equal those without it wherever the memory is below the
+  limit, and say "too long" wherever it is not;
 - the plain-script baseline and the floor of benchmarks/run_all.py give the correlation that
   ``scipy.signal.correlate`` gives (the floor's lag sums, the script's coefficients) on a small
   invented archive.
@@ -79,6 +83,69 @@ def test_time_scales_of_several_records_equal_one_at_a_time():
     for i in range(records.shape[0]):
         one = st.correlation_time_scales(block.values[:, i], block.valid[:, i], FS)
         assert dataclasses.astuple(batch[i]) == pytest.approx(dataclasses.astuple(one), rel=1e-12)
+
+
+def _full_median_lines(power, width, threshold, reach):
+    # the reference: scipy's running median over every ordinate, mirrored ends
+    import scipy.ndimage
+    local = scipy.ndimage.median_filter(power, size=width, mode="mirror")
+    found = power > threshold * np.maximum(local, 1e-300)
+    if reach and found.any():
+        found = scipy.ndimage.binary_dilation(found, structure=np.ones(2 * reach + 1, dtype=bool))
+    return found, local[found]
+
+
+LINE_CASES = ["white", "steep", "tones", "edge_tone", "short", "zeros", "many_lines"]
+
+
+@pytest.mark.parametrize("kind", LINE_CASES)
+def test_line_finder_equals_the_full_running_median(kind):
+    rng = np.random.default_rng(100 + LINE_CASES.index(kind))
+    m = 20 if kind == "short" else 30001
+    power = rng.exponential(size=m)  # a periodogram of white noise: chi-square with 2 dof / 2
+    if kind == "steep":
+        power *= np.exp(-np.linspace(0, 40, m))  # twelve decades across the band
+    if kind in ("tones", "many_lines"):
+        where = rng.choice(m, 3 if kind == "tones" else 5000, replace=False)
+        power[where] *= rng.uniform(30, 500, len(where))
+    if kind == "edge_tone":
+        power[[0, 1, m - 1]] = 1e4
+    if kind == "zeros":
+        power[: m // 2] = 0.0
+    for width, reach in ((25, 3), (49, 6), (7, 0)):
+        got_lines, got_local = st.spectral_lines(power, width, st.LINE_THRESHOLD, reach)
+        want_lines, want_local = _full_median_lines(power, width, st.LINE_THRESHOLD, reach)
+        np.testing.assert_array_equal(got_lines, want_lines)
+        np.testing.assert_array_equal(got_local, want_local)
+    if kind in ("tones", "edge_tone"):
+        assert want_lines.any()  # the comparison covers found lines
+
+
+def test_memory_limit_keeps_time_scales_below_it_and_marks_longer_memory():
+    # below the limit: the same scales as the full 2n-point computation (the line finder's
+    # resolution differs, so to a tolerance); above: memory_s beyond the limit, so not screened
+    rng = np.random.default_rng(21)
+    n, fs = 30000, 50.0
+    limit = st.screening_memory_limit_s(n / fs)  # 6 s for a 10-minute record
+    for phi, long_memory in ((0.9, False), (0.98, False), (0.9995, True)):
+        x = scipy.signal.lfilter([1.0], [1.0, -phi], rng.standard_normal(n))
+        full = st.correlation_time_scales(x, None, fs)
+        capped = st.correlation_time_scales(x, None, fs, limit)
+        if long_memory:
+            assert full.memory_s > limit and capped.memory_s > limit
+            assert st.segments_for_record(n / fs, capped.memory_s, 20) == 0
+        else:
+            assert full.memory_s < limit
+            assert capped.memory_s == pytest.approx(full.memory_s, rel=1e-6)
+            assert capped.degrees_of_freedom_per_sample == pytest.approx(full.degrees_of_freedom_per_sample,
+                                                                         rel=1e-6)
+    # a lightly damped mode (envelope decay 16 s at 2 Hz, damping 0.005) is too long with or
+    # without the limit, although its |rho| at the limit itself may be in a trough
+    t = np.arange(n) / fs
+    wn, zeta = 2 * np.pi * 2.0, 0.005
+    system = scipy.signal.lti([wn ** 2], [1, 2 * zeta * wn, wn ** 2])
+    _, y, _ = scipy.signal.lsim(system, rng.standard_normal(n), t)
+    assert st.correlation_time_scales(y, None, fs, limit).memory_s > limit
 
 
 def test_cross_products_of_complete_records_equal_the_single_pair_function():
