@@ -571,6 +571,25 @@ def _segment_statistics_of_record(x: np.ndarray, m: np.ndarray, segments: int) -
     return SegmentStatistics(length, count, mean, mean_square, (center,), kurtosis)
 
 
+def _segment_statistics_of_complete_rows(records: np.ndarray, segments: int) -> list:
+    """:func:`_segment_statistics_of_record` of several complete records (rows) at once: the same
+    sums along the same contiguous axis, so the same values."""
+    rows, n = records.shape
+    length = _segment_layout(n, segments)
+    used = length * segments
+    centers = records.mean(axis=1)
+    pieces = records[:, :used].reshape(rows, segments, length)
+    deviation = pieces - centers[:, None, None]
+    squared = deviation * deviation
+    count = np.full(segments, length)
+    mean = pieces.sum(axis=2) / count
+    mean_square = squared.sum(axis=2) / count
+    squared *= squared
+    kurtosis = squared.sum(axis=2) / count / mean_square ** 2
+    return [SegmentStatistics(length, count.copy(), mean[r], mean_square[r], (float(centers[r]),), kurtosis[r])
+            for r in range(rows)]
+
+
 def segment_cross_products(values_a, values_b, valid_a=None, valid_b=None,
                            segments: int = 20) -> SegmentStatistics:
     """Segment mean cross-products of two records (joint stationarity).
@@ -1107,13 +1126,16 @@ def _enough_to_screen(m: np.ndarray) -> bool:
 
 
 def _screen_record(x, m, sample_rate_hz: float, segments: int, alpha: float, subject: str,
-                   scales: CorrelationTimeScales) -> SubjectScreening:
-    """The tests of :func:`screen_channel` on a cleaned record whose time scales are known."""
+                   scales: CorrelationTimeScales, stats: Optional[SegmentStatistics] = None) -> SubjectScreening:
+    """The tests of :func:`screen_channel` on a cleaned record whose time scales are known
+    (``stats``: its segment statistics for the segment count the independence rule gives, when
+    already computed)."""
     record_s = len(x) / float(sample_rate_hz)
     count = segments_for_record(record_s, scales.memory_s, segments)
     if count == 0:
         return _not_screened(subject, QUALITY_TOO_SHORT, scales.memory_s)
-    stats = _segment_statistics_of_record(x, m, count)
+    if stats is None:
+        stats = _segment_statistics_of_record(x, m, count)
     usable = _usable(stats)
     if usable.sum() < MINIMUM_SEGMENTS:
         return _not_screened(subject, QUALITY_TOO_SHORT, scales.memory_s)
@@ -1299,13 +1321,30 @@ def screen_window(block, screening_config, pairs=None) -> WindowScreening:
     fs = float(block.sample_rate_hz)
     results: Dict[str, SubjectScreening] = {}
     # every channel cleaned once, as contiguous rows; the time scales of all channels at once
-    values_rows = np.asarray(block.values, dtype=float).T
-    valid_rows = np.asarray(block.valid, dtype=bool).T & np.isfinite(values_rows)
-    records = np.where(valid_rows, values_rows, 0.0)
+    values_rows = np.ascontiguousarray(np.asarray(block.values, dtype=float).T)
+    valid_rows = np.ascontiguousarray(np.asarray(block.valid, dtype=bool).T)
+    finite = np.isfinite(values_rows)
+    if valid_rows.all() and finite.all():
+        records = values_rows
+    else:
+        valid_rows &= finite
+        records = np.where(valid_rows, values_rows, 0.0)
     eligible = [name for name in channels if _enough_to_screen(valid_rows[index[name]])]
     rows = [index[name] for name in eligible]
     limit = screening_memory_limit_s(block.n_samples / fs)
     scales = dict(zip(eligible, _time_scales_of_rows(records[rows], valid_rows[rows], fs, limit))) if rows else {}
+    complete = valid_rows.all(axis=1)
+    # segment statistics of the complete channels, batched by segment count
+    by_count: Dict[int, list] = {}
+    for name, found in scales.items():
+        if not isinstance(found, ValueError) and complete[index[name]]:
+            count = segments_for_record(block.n_samples / fs, found.memory_s, screening_config.segments)
+            if count:
+                by_count.setdefault(count, []).append(name)
+    segment_stats: Dict[str, SegmentStatistics] = {}
+    for count, names in by_count.items():
+        stats_rows = _segment_statistics_of_complete_rows(records[[index[nm] for nm in names]], count)
+        segment_stats.update(zip(names, stats_rows))
     for name in channels:
         i = index[name]
         found = scales.get(name)
@@ -1313,8 +1352,7 @@ def screen_window(block, screening_config, pairs=None) -> WindowScreening:
             results[name] = _not_screened(name, QUALITY_NOT_SCREENED)
         else:
             results[name] = _screen_record(records[i], valid_rows[i], fs, screening_config.segments, alpha,
-                                           name, found)
-    complete = valid_rows.all(axis=1)
+                                           name, found, segment_stats.get(name))
     cross_products = _CompleteCrossProducts(records, complete)
     for a, b in cross:
         subject = f"{a}:{b}"

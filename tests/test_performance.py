@@ -15,7 +15,6 @@ compute what they claim.
 from __future__ import annotations
 
 import dataclasses
-import os
 
 import numpy as np
 import pyarrow.parquet as pq
@@ -146,6 +145,19 @@ def test_memory_limit_keeps_time_scales_below_it_and_marks_longer_memory():
     system = scipy.signal.lti([wn ** 2], [1, 2 * zeta * wn, wn ** 2])
     _, y, _ = scipy.signal.lsim(system, rng.standard_normal(n), t)
     assert st.correlation_time_scales(y, None, fs, limit).memory_s > limit
+
+
+def test_segment_statistics_of_complete_rows_equal_the_single_record_function():
+    block = _block(np.random.default_rng(9))
+    records = np.ascontiguousarray(block.values.T)
+    for segments in (10, 20, 17):
+        batch = st._segment_statistics_of_complete_rows(records, segments)
+        for row, got in zip(records, batch):
+            want = st.segment_statistics(row, None, segments)
+            assert got.segment_length == want.segment_length and got.center == pytest.approx(want.center, rel=1e-15)
+            np.testing.assert_array_equal(got.valid_count, want.valid_count)
+            for field in ("mean", "mean_square", "kurtosis"):
+                np.testing.assert_allclose(getattr(got, field), getattr(want, field), rtol=1e-12)
 
 
 def test_cross_products_of_complete_records_equal_the_single_pair_function():
