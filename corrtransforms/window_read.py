@@ -95,7 +95,10 @@ def _row_group_columns(table: pa.Table, piece, names, archive, wide: bool) -> Di
             if name in piece.absent:
                 columns[name] = pa.nulls(table.num_rows, pa.float64())
             else:
-                columns[name] = table.column(name).cast(pa.float64())
+                column = table.column(name)
+                # floats are converted once, straight into the task's array (see _load); other
+                # types are cast here, which also rejects a column that is not numeric
+                columns[name] = column if pa.types.is_floating(column.type) else column.cast(pa.float64())
     else:
         channel = table.column(archive.channel_column).cast(pa.string())
         columns["code"] = pc.fill_null(pc.index_in(channel, value_set=pa.array(list(names), pa.string())), -1)
@@ -177,11 +180,12 @@ def _load(task: ReadTask, config: AssetConfig, open_file: OpenFile, findings: Li
         files.append(piece.path)
 
     counts = [t.num_rows for t in tables]
-    if tables:
+    if tables and not wide:
         merged = pa.concat_tables(tables)
     else:
-        merged = pa.table({"time": pa.array([], pa.int64())})
-    times = merged.column("time").to_numpy().astype(np.int64, copy=True) if tables else np.zeros(0, np.int64)
+        merged = None  # wide: the pieces' float columns may differ in width, so they are not concatenated
+    times = (np.concatenate([t.column("time").to_numpy().astype(np.int64) for t in tables])
+             if tables else np.zeros(0, np.int64))
     file_index = np.repeat(np.arange(len(tables), dtype=np.int32), counts)
     bounds = np.concatenate([[0], np.cumsum(counts)]).astype(np.int64)
     unordered = []
@@ -194,8 +198,11 @@ def _load(task: ReadTask, config: AssetConfig, open_file: OpenFile, findings: Li
         if back.size:
             unordered.append(t[back + 1])
     if wide:
-        values = (np.column_stack([merged.column(n).to_numpy(zero_copy_only=False) for n in names])
-                  if tables else np.zeros((0, len(names))))
+        # one conversion per piece and column, written straight into the task's (rows, columns) array
+        values = np.empty((int(bounds[-1]), len(names)))
+        for i, table in enumerate(tables):
+            for j, name in enumerate(names):
+                values[bounds[i]:bounds[i + 1], j] = table.column(name).to_numpy()
         absent = np.array(absent_rows, dtype=bool).reshape(len(tables), len(names))
         codes = None
     else:
@@ -325,6 +332,38 @@ def _finding(config: AssetConfig, start_us: int, reason: str, detail: str, subje
                   asset=config.name, window_start_us=start_us, action=action)
 
 
+def _channel_checks(grid: np.ndarray, valid: np.ndarray, n_channels: int):
+    """Per channel: (coverage, valid samples, max, min, clip fraction) of the valid samples.
+
+    A complete window (every sample valid) is checked on all channels at once; the values are
+    those of :func:`_clip_fraction` on each column.
+    """
+    if valid[:, :n_channels].all():
+        size = grid.shape[0]
+        if size == 0:
+            return [(float("nan"), 0, float("nan"), float("nan"), 0.0)] * n_channels
+        block = grid[:, :n_channels]
+        high, low = block.max(axis=0), block.min(axis=0)
+        at_high = np.count_nonzero(block == high, axis=0)
+        at_low = np.count_nonzero(block == low, axis=0)
+        checks = []
+        for c in range(n_channels):
+            # a flat column has high == low: the fraction is not used then
+            extremes = (at_high[c] if at_high[c] >= MIN_CLIP_REPEATS else 0) + \
+                (at_low[c] if at_low[c] >= MIN_CLIP_REPEATS else 0)
+            checks.append((1.0, size, float(high[c]), float(low[c]), extremes / size))
+        return checks
+    checks = []
+    for c in range(n_channels):
+        column = grid[valid[:, c], c]
+        coverage = float(valid[:, c].mean()) if valid.shape[0] else float("nan")
+        if column.size:
+            checks.append((coverage, column.size, float(column.max()), float(column.min()), _clip_fraction(column)))
+        else:
+            checks.append((coverage, 0, float("nan"), float("nan"), 0.0))
+    return checks
+
+
 def _clip_fraction(column: np.ndarray) -> float:
     if column.size == 0:
         return 0.0
@@ -356,10 +395,17 @@ def _window(task: ReadTask, data: _TaskData, config: AssetConfig, start_us: int)
         # so the decoded rows are used in place, without the copies of the general path
         view = data.values[lo:hi]
         valid = np.isfinite(view)
-        grid = view if valid.all() else np.where(valid, view, 0.0)
-        nonfinite = (~valid).sum(axis=0)
+        if valid.all():
+            grid = view
+            nonfinite = np.zeros(view.shape[1], dtype=np.int64)
+            covariate_counts = np.full(view.shape[1], view.shape[0], dtype=np.int64)
+        else:
+            grid = np.where(valid, view, 0.0)
+            nonfinite = (~valid).sum(axis=0)
+            covariate_counts = valid.sum(axis=0)
+        # all columns summed together, as in the general path below (a single column alone would be
+        # summed pairwise, not row by row, and its mean would differ in the last bit)
         covariate_sums = grid.sum(axis=0)
-        covariate_counts = valid.sum(axis=0)
         return _checked_block(task, data, config, start_us, grid, valid, nonfinite, collections.Counter(),
                               set(), covariate_sums, covariate_counts, sources, tolerance)
 
@@ -454,21 +500,19 @@ def _checked_block(task: ReadTask, data: _TaskData, config: AssetConfig, start_u
     failures: Dict[str, Tuple[str, str]] = {}
     quality: Dict[str, Tuple[str, ...]] = {}
     min_coverage = config.windows.min_coverage
-    for c, name in enumerate(task.channels):
-        coverage = valid[:, c].mean()
-        column = grid[valid[:, c], c]
+    for c, (coverage, size, high, low, fraction) in enumerate(_channel_checks(grid, valid, n_channels)):
+        name = task.channels[c]
         if coverage < min_coverage:
             failures[name] = ("insufficient_coverage", f"coverage {coverage:.4f} < min_coverage {min_coverage:g}")
             continue
-        if column.size and column.max() == column.min():
-            failures[name] = ("flat_channel", f"all {column.size} valid samples equal {column[0]:g}")
+        if size and high == low:
+            failures[name] = ("flat_channel", f"all {size} valid samples equal {low:g}")
             continue
-        fraction = _clip_fraction(column)
         if fraction >= config.reading.clip_fraction:
             quality[name] = ("clipped",)
             out.append(_finding(config, start_us, "clipped_channel",
                                 f"{fraction:.4f} of samples at the extreme values "
-                                f"[{column.min():g}, {column.max():g}] (clip_fraction {config.reading.clip_fraction:g})",
+                                f"[{low:g}, {high:g}] (clip_fraction {config.reading.clip_fraction:g})",
                                 subject=name))
         kept.append(c)
 
