@@ -1,6 +1,6 @@
 """Scale benchmark: the backfill against the plain script and the floor, for 1, 2 and 4 days.
 
-    python -m benchmarks.run_all [--days 1 2 4] [--variants pipeline workers2 script floor]
+    python -m benchmarks.run_all [--days 1 2 4] [--variants pipeline workers2 script floor lean]
                                  [--repeats 1] [--offline] [--trace-network]
 
 On the same invented archives (benchmarks/scale_archive.py: wide, float32, hourly files, 15-minute
@@ -11,12 +11,16 @@ screening and shift detection on: the whole job) it runs, each in its own subpro
 2. ``workers2``: the same with ``--direct_running_mode=multi_processing --direct_num_workers=2``;
 3. ``script``: the plain script a practitioner would write (benchmarks/scale_script.py);
 4. ``floor``: decoding the same columns and row groups, one rFFT per channel per window and one
-   inverse FFT per pair, nothing else (benchmarks/scale_floor.py).
+   inverse FFT per pair, nothing else (benchmarks/scale_floor.py);
+5. ``lean``: the pipeline in-process on the same archive with the job cut down to what the
+   script computes (no modes, screening off; it still adds every error column and shift detection
+   on rms, correlation time, lag and peak coefficient): where the full job's time goes, not a
+   target.
 
 It prints wall time, samples per second and peak resident memory of each (the process tree's
 summed RSS, sampled every 0.1 s, and the largest single process's ``ru_maxrss`` from
 ``wait4``), then the ratios pipeline/floor (1/4; its inverse is the efficiency), script/pipeline
-(3/1, speed-up) and pipeline/workers2 (1/2, worker scaling), the time per day relative to the
+(3/1, speed-up), pipeline/workers2 (1/2, worker scaling), lean/floor and script/lean, the time per day relative to the
 shortest archive (linear growth) and the peak RSS relative to it (flat memory). It prints a
 table, never a verdict; timings on a shared machine are noisy: ``--repeats`` reruns every
 variant (interleaved) and reports the median.
@@ -44,9 +48,10 @@ from benchmarks import scale_archive
 HERE = os.path.dirname(os.path.abspath(__file__))
 ROOT = os.path.dirname(HERE)
 WORK = os.path.join(HERE, "_work")
-VARIANTS = ("pipeline", "workers2", "script", "floor")
+VARIANTS = ("pipeline", "workers2", "script", "floor", "lean")
 LABELS = {"pipeline": "1 pipeline, in-process runner", "workers2": "2 pipeline, 2 worker processes",
-          "script": "3 plain script (scipy per pair)", "floor": "4 floor (decode + FFTs)"}
+          "script": "3 plain script (scipy per pair)", "floor": "4 floor (decode + FFTs)",
+          "lean": "5 pipeline, lean job, in-process"}
 
 
 def _children(pid: int) -> List[int]:
@@ -118,11 +123,16 @@ def _quote(text: str) -> str:
     return "'" + text.replace("'", "'\\''") + "'"
 
 
+PIPELINE_VARIANTS = ("pipeline", "workers2", "lean")
+
+
 def command_for(variant: str, archive: str, config: str, folder: str) -> List[str]:
     python = sys.executable
-    if variant in ("pipeline", "workers2"):
+    if variant in PIPELINE_VARIANTS:
         output = os.path.join(folder, f"out_{variant}")
         shutil.rmtree(output, ignore_errors=True)
+        if variant == "lean":
+            config = os.path.join(os.path.dirname(config), scale_archive.LEAN_CONFIG)
         command = [python, "-m", "pipelines.backfill", "--config", config, "--output", output]
         if variant == "workers2":
             command += ["--direct_running_mode=multi_processing", "--direct_num_workers=2"]
@@ -195,7 +205,7 @@ def main(argv=None) -> Dict:
                     command = _offline(command)
                 log_path = os.path.join(folder, f"{variant}.log")
                 run = measure(command, log_path)
-                if variant in ("pipeline", "workers2"):
+                if variant in PIPELINE_VARIANTS:
                     run["accounting"] = check_pipeline_log(variant, log_path, days)
                 runs[variant].append(run)
                 print(f"  {days} d {variant:9s} {run['seconds']:7.1f} s  tree RSS {run['tree_rss_mb']:6.0f} MB",
@@ -232,7 +242,7 @@ def report(results: Dict[int, Dict[str, dict]], args) -> str:
             lines.append(f"{days:>4}  {LABELS[variant]:32s} {r['seconds']:8.1f} {r['cpu_s']:8.1f} "
                          f"{r['samples_per_s'] / 1e6:11.2f} {r['tree_rss_mb']:12.0f} {r['maxrss_mb']:11.0f}")
     lines += ["", f"{'days':>4}  {'1/4 pipeline/floor':>19} {'efficiency 4/1':>15} {'3/1 speed-up':>13} "
-                  f"{'1/2 worker scaling':>19}"]
+                  f"{'1/2 worker scaling':>19} {'5/4 lean/floor':>15} {'3/5 script/lean':>16}"]
 
     def ratio(days, top, bottom):
         r = results[days]
@@ -242,7 +252,8 @@ def report(results: Dict[int, Dict[str, dict]], args) -> str:
 
     for days in sorted(results):
         lines.append(f"{days:>4}  {ratio(days, 'pipeline', 'floor'):>19} {ratio(days, 'floor', 'pipeline'):>15} "
-                     f"{ratio(days, 'script', 'pipeline'):>13} {ratio(days, 'pipeline', 'workers2'):>19}")
+                     f"{ratio(days, 'script', 'pipeline'):>13} {ratio(days, 'pipeline', 'workers2'):>19} "
+                     f"{ratio(days, 'lean', 'floor'):>15} {ratio(days, 'script', 'lean'):>16}")
     first = min(results)
     lines += ["", f"growth against the {first}-day archive: time per day (1.00 = linear) and peak tree RSS ratio"]
     lines.append(f"{'days':>4}  " + " ".join(f"{v + ' t/day':>15} {v + ' RSS':>13}" for v in VARIANTS

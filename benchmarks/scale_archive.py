@@ -119,8 +119,28 @@ def archive_files(archive: str) -> List[str]:
     return sorted(out)
 
 
-def config_text(archive_folder: str = "archive") -> str:
-    """The benchmark asset's TOML: all 36 pairs, max lag 10 s, two modes, screening and shifts."""
+#: file name of the lean job's configuration beside each archive's asset.toml
+LEAN_CONFIG = "asset_lean.toml"
+
+
+def config_text(archive_folder: str = "archive", lean: bool = False) -> str:
+    """The benchmark asset's TOML: all 36 pairs, max lag 10 s, two modes, screening and shifts.
+
+    ``lean``: the same job cut down to what the plain script computes (correlations, rms,
+    correlation time, lag and peak coefficient; the pipeline still adds its errors and shift
+    detection on those four): no modes, screening off. Used only to show where the time goes.
+    """
+    text = _full_config_text(archive_folder)
+    if not lean:
+        return text
+    text = text.split("[[modes]]")[0] + "[baseline]" + text.split("[baseline]")[1]
+    text = text.replace("[screening]\nenabled = true", "[screening]\nenabled = false")
+    text = text.replace('[shifts]\ndetector = "both"',
+                        '[shifts]\ndetector = "both"\nindicators = ["rms", "corr_time_s", "lag_s", "peak_coef"]')
+    return text.replace("# invented benchmark asset", "# invented benchmark asset, lean job")
+
+
+def _full_config_text(archive_folder: str) -> str:
     return textwrap.dedent(f"""\
         # invented benchmark asset (benchmarks/scale_archive.py)
         [asset]
@@ -183,5 +203,7 @@ def prepare(work: str, days_list) -> dict:
         config = os.path.join(folder, "asset.toml")
         with open(config, "w") as handle:
             handle.write(config_text("archive"))
+        with open(os.path.join(folder, LEAN_CONFIG), "w") as handle:
+            handle.write(config_text("archive", lean=True))
         out[days] = (archive, config)
     return out
