@@ -32,7 +32,7 @@ from . import tables
 from .config import AssetConfig
 from .modal_fit import fit_mode
 from .records import IndicatorRow, ModeCorrelation, PairCorrelation, WindowCorrelation, quality_text
-from .time_delay import estimate_lag
+from .time_delay import LagEstimate, estimate_lag, estimate_lags
 from .timescales import corr_time_s, decay_time_s
 
 #: quality codes added here (code -> meaning); the computations add their own
@@ -101,17 +101,60 @@ def _mode_rows(wc: WindowCorrelation, mode_name: str, channel: str, band_hz, com
                          _finite_or_nan(fit.damping_stderr), "", codes)]
 
 
-def _pair_rows(wc: WindowCorrelation, config: AssetConfig, pair: PairCorrelation, common) -> List[IndicatorRow]:
-    subject = pair.subject
+def _lag_inputs(wc: WindowCorrelation, config: AssetConfig, pair: PairCorrelation):
+    """The pair's located function, weighting and the two channels' auto coefficients."""
     auto_a, auto_b = wc.auto(pair.channel_a), wc.auto(pair.channel_b)
     weighted = pair.weighted_coefficient
-    estimate = estimate_lag(
-        pair.coefficient, pair.stderr, pair.first_lag_s, pair.lag_step_s, pair.record_s,
-        weighted_coefficient=weighted,
-        weighting=config.correlation.weighting if weighted is not None else "none",
-        auto_a=None if auto_a is None else auto_a.coefficient,
-        auto_b=None if auto_b is None else auto_b.coefficient,
-        max_lag_s=config.correlation.max_lag_s)
+    return (weighted, config.correlation.weighting if weighted is not None else "none",
+            None if auto_a is None else auto_a.coefficient, None if auto_b is None else auto_b.coefficient)
+
+
+def _batched_lag_estimates(wc: WindowCorrelation, config: AssetConfig,
+                           pairs: List[PairCorrelation]) -> List[Optional[LagEstimate]]:
+    """:func:`estimate_lags` of the cross pairs, batched over pairs on the same lag grid.
+
+    A group whose batched call raises (malformed arrays, non-finite numbers) gives None for its
+    pairs, which then go through :func:`estimate_lag` one by one, so a failure stays with its
+    subject. Each batched estimate equals the per-pair one.
+    """
+    out: List[Optional[LagEstimate]] = [None] * len(pairs)
+    groups = {}
+    for i, pair in enumerate(pairs):
+        try:
+            key = (len(pair.coefficient), float(pair.first_lag_s), float(pair.lag_step_s))
+        except Exception:  # noqa: BLE001 - left to the per-pair path, which reports it
+            continue
+        groups.setdefault(key, []).append(i)
+    for (_, first_lag_s, lag_step_s), members in groups.items():
+        try:
+            inputs = [_lag_inputs(wc, config, pairs[i]) for i in members]
+            weightings = {w for _, w, _, _ in inputs if w != "none"}
+            if len(weightings) > 1:
+                continue
+            estimates = estimate_lags(
+                np.array([pairs[i].coefficient for i in members], dtype=float),
+                np.array([pairs[i].stderr for i in members], dtype=float),
+                first_lag_s, lag_step_s, [pairs[i].record_s for i in members],
+                weighted_coefficient=[w for w, _, _, _ in inputs],
+                weighting=weightings.pop() if weightings else "none",
+                auto_a=[a for _, _, a, _ in inputs], auto_b=[b for _, _, _, b in inputs],
+                max_lag_s=config.correlation.max_lag_s)
+        except Exception:  # noqa: BLE001 - the per-pair path isolates and reports the failure
+            continue
+        for i, estimate in zip(members, estimates):
+            out[i] = estimate
+    return out
+
+
+def _pair_rows(wc: WindowCorrelation, config: AssetConfig, pair: PairCorrelation, common,
+               estimate: Optional[LagEstimate] = None) -> List[IndicatorRow]:
+    subject = pair.subject
+    if estimate is None:  # the per-pair path
+        weighted, weighting, auto_a, auto_b = _lag_inputs(wc, config, pair)
+        estimate = estimate_lag(
+            pair.coefficient, pair.stderr, pair.first_lag_s, pair.lag_step_s, pair.record_s,
+            weighted_coefficient=weighted, weighting=weighting, auto_a=auto_a, auto_b=auto_b,
+            max_lag_s=config.correlation.max_lag_s)
     codes = quality_text(_pair_codes(pair) + common(subject) + estimate.quality)
     start = wc.window_start_us
     return [IndicatorRow(start, subject, "lag_s", _finite_or_nan(estimate.lag_s),
@@ -155,9 +198,10 @@ def window_indicators_and_failures(wc: WindowCorrelation, config: AssetConfig
         attempt(channel, lambda c=channel: _channel_rows(wc, config, c, common))
     for mode in config.modes:
         attempt(mode.name, lambda m=mode: _mode_rows(wc, m.name, m.channel, m.band_hz, common))
-    for pair in wc.pairs:
-        if not pair.is_auto:
-            attempt(pair.subject, lambda p=pair: _pair_rows(wc, config, p, common))
+    cross = [pair for pair in wc.pairs if not pair.is_auto]
+    batched = _batched_lag_estimates(wc, config, cross)
+    for pair, estimate in zip(cross, batched):
+        attempt(pair.subject, lambda p=pair, e=estimate: _pair_rows(wc, config, p, common, e))
     for name, value in sorted(wc.covariates.items()):
         v = _finite_or_nan(value)
         codes = common(name) + (() if np.isfinite(v) else ("no_covariate_samples",))

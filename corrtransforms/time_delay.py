@@ -8,7 +8,8 @@ positive lag means b lags a.
 """
 from __future__ import annotations
 
-from typing import NamedTuple, Optional, Tuple
+import functools
+from typing import List, NamedTuple, Optional, Tuple
 
 import numpy as np
 import scipy.fft
@@ -337,3 +338,326 @@ def estimate_lag(coefficient, stderr, first_lag_s: float, lag_step_s: float, rec
     lag_sd = nan if at_edge else float(np.sqrt(variance))
     width = envelope_width_s(located, k, lag_step_s)
     return LagEstimate(lag_s, lag_sd, peak_coef, peak_sd, width, tuple(quality))
+
+
+# --------------------------------------------------------------------------------------------
+# Batched form: every cross pair of a window at once (one row per pair), same arithmetic as the
+# per-pair functions above, so each row equals :func:`estimate_lag` of that pair.
+# --------------------------------------------------------------------------------------------
+
+#: offsets (in samples) of the fine grid searched by :func:`refine_peak` around the peak sample
+_FINE_OFFSETS = np.linspace(-1.0, 1.0, 2 * UPSAMPLE + 1)
+#: ``sinc(grid - j)`` for the default fine grid and the default half-width, as a function of the
+#: sample offset ``j - k`` only: ``k + t`` is exact for the grid's multiples of 1/32, so these are
+#: the very numbers :func:`sinc_interpolate` computes for an interior peak sample ``k``
+_SINC_FINE = np.sinc(_FINE_OFFSETS[:, None] - np.arange(-INTERPOLATION_HALF_WIDTH,
+                                                        INTERPOLATION_HALF_WIDTH + 1)[None, :])
+_WINDOW_OFFSETS = np.arange(-INTERPOLATION_HALF_WIDTH, INTERPOLATION_HALF_WIDTH + 1)
+
+
+@functools.lru_cache(maxsize=64)
+def _parzen(length: int) -> np.ndarray:
+    """``scipy.signal.windows.parzen(length)``, computed once per length (read-only)."""
+    window = parzen(length)
+    window.flags.writeable = False
+    return window
+
+
+def _row_arrays(rows, count: int, length: Optional[int], what: str, clean: bool = False):
+    """``rows`` (None, one 2-d array, or a sequence of 1-d arrays / None) as a list of ``count``
+    float arrays or None (``nan_to_num`` of them when ``clean``); the same input object gives
+    the same array object (for reuse by identity)."""
+    if rows is None:
+        return [None] * count
+    if isinstance(rows, np.ndarray):
+        if rows.ndim != 2 or rows.shape[0] != count:
+            raise ValueError(f"{what} {rows.shape} must have one row per pair ({count})")
+        rows = list(rows.astype(float, copy=False))
+    else:
+        rows = list(rows)
+    if len(rows) != count:
+        raise ValueError(f"{what}: {len(rows)} entries for {count} pairs")
+    converted = {}
+    out = []
+    for row in rows:
+        if row is None:
+            out.append(None)
+            continue
+        key = id(row)
+        if key not in converted:
+            array = np.asarray(row, dtype=float)
+            if array.ndim != 1 or (length is not None and array.shape != (length,)):
+                raise ValueError(f"{what} row {array.shape} must be 1-d"
+                                 + (f" of length {length}" if length is not None else ""))
+            converted[key] = (row, np.nan_to_num(array) if clean else array)  # `row` kept alive: ids stay unique
+        out.append(converted[key][1])
+    return out
+
+
+def _refine_peaks(located_clean: np.ndarray, located: np.ndarray, peak_index: np.ndarray):
+    """:func:`refine_peak` positions of every row (interior rows batched, rows near the ends
+    one by one); ``located_clean`` is ``nan_to_num(located)``."""
+    count, n = located_clean.shape
+    half_width = INTERPOLATION_HALF_WIDTH
+    position = np.empty(count)
+    interior = (peak_index - half_width >= 0) & (peak_index + half_width + 1 <= n)
+    rows = np.nonzero(interior)[0]
+    if len(rows):
+        k = peak_index[rows]
+        samples = located_clean[rows[:, None], k[:, None] + _WINDOW_OFFSETS[None, :]]
+        # stacked matrix-vector products: per row the same product as `matrix @ vector`
+        fine = np.matmul(_SINC_FINE, samples[:, :, None])[:, :, 0]
+        sign = np.where(located_clean[rows, k] >= 0, 1.0, -1.0)
+        signed = sign[:, None] * fine
+        m = np.clip(np.argmax(signed, axis=1), 1, fine.shape[1] - 2)
+        line = np.arange(len(rows))
+        y0, y1, y2 = signed[line, m - 1], signed[line, m], signed[line, m + 1]
+        denom = y0 - 2 * y1 + y2
+        with np.errstate(divide="ignore", invalid="ignore"):
+            offset = np.where(denom < 0, 0.5 * (y0 - y2) / denom, 0.0)
+        grid = k + _FINE_OFFSETS[m]
+        position[rows] = grid + offset / UPSAMPLE
+    for row in np.nonzero(~interior)[0]:
+        position[row] = refine_peak(located[row], int(peak_index[row]))[0]
+    return position
+
+
+def _interpolate_at(values_clean: np.ndarray, values: np.ndarray, position: np.ndarray,
+                    center: np.ndarray) -> np.ndarray:
+    """:func:`sinc_interpolate` of every row at its one ``position`` around ``center``."""
+    count, n = values_clean.shape
+    half_width = INTERPOLATION_HALF_WIDTH
+    out = np.empty(count)
+    interior = (center - half_width >= 0) & (center + half_width + 1 <= n)
+    rows = np.nonzero(interior)[0]
+    if len(rows):
+        j = center[rows, None] + _WINDOW_OFFSETS[None, :]
+        kernel = np.sinc(position[rows, None] - j)
+        samples = values_clean[rows[:, None], j]
+        out[rows] = np.matmul(kernel[:, None, :], samples[:, :, None])[:, 0, 0]
+    for row in np.nonzero(~interior)[0]:
+        out[row] = sinc_interpolate(values[row], [position[row]], int(center[row]))[0]
+    return out
+
+
+def _envelope_widths(located_clean: np.ndarray, peak_index: np.ndarray, lag_step_s: float) -> np.ndarray:
+    """:func:`envelope_width_s` of every row: one Hilbert transform along the rows, the
+    half-maximum crossings found by masks instead of walking."""
+    count, n = located_clean.shape
+    env = np.abs(scipy.signal.hilbert(located_clean, axis=-1))
+    if not np.all(np.isfinite(env)):
+        raise ValueError("the Hilbert envelope is not finite: only the per-pair path takes such rows")
+    line = np.arange(count)
+    half = 0.5 * env[line, peak_index]
+    lag_index = np.arange(n)[None, :]
+    stop = ~(env > half[:, None])  # where the walk of envelope_width_s stops
+    left = np.where(stop & (lag_index <= peak_index[:, None]), lag_index, -1).max(axis=1)
+    left = np.maximum(left, 0)
+    right = np.where(stop & (lag_index >= peak_index[:, None]), lag_index, n).min(axis=1)
+    right = np.minimum(right, n - 1)
+    e_left, e_right = env[line, left], env[line, right]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        e_left_in, e_right_in = env[line, np.minimum(left + 1, n - 1)], env[line, np.maximum(right - 1, 0)]
+        cross_right = right + (half - e_right) / (e_right_in - e_right) * ((right - 1) - right)
+        cross_left = left + (half - e_left) / (e_left_in - e_left) * ((left + 1) - left)
+        width = (cross_right - cross_left) * lag_step_s
+    bad = ~(half > 0) | (e_left > half) | (e_right > half)
+    return np.where(bad, np.nan, width)
+
+
+def _lag_variances(rho_clean: np.ndarray, peak_index: np.ndarray, rows, lag_step_s: float,
+                   record_s: np.ndarray, autos_a, autos_b, weightings, peak_coef: np.ndarray) -> np.ndarray:
+    """:func:`lag_variance` of the given rows: the real transforms of rows with the same length
+    in one call, each channel's auto spectrum for a half-width once (autos reused by identity).
+    ``rho_clean`` and the autos are already ``nan_to_num``-ed."""
+    count, n = rho_clean.shape
+    L = (n - 1) // 2
+    variance = np.full(count, np.nan)
+    groups = {}
+    for row in rows:
+        half = L - abs(int(peak_index[row]) - L)
+        a, b = autos_a[row], autos_b[row]
+        if a is not None and b is not None:
+            half = min(half, len(a) - 1, len(b) - 1)
+        if half < 4 or not record_s[row] > 0:
+            continue
+        if a is None or b is None:
+            coef = float(peak_coef[row])
+            if not np.isfinite(coef) or coef == 0:
+                continue
+        groups.setdefault(scipy.fft.next_fast_len(8 * half, real=False), []).append((row, half))
+    for n_fft, members in groups.items():
+        segments = np.zeros((len(members), n_fft))
+        auto_slot = {}
+        for line, (row, half) in enumerate(members):
+            # the lags k-half..k+half tapered, lag k at index 0 (as _centered_segment)
+            center = int(peak_index[row])
+            part = rho_clean[row, center - half:center + half + 1] * _parzen(2 * half + 1)
+            segments[line, :half + 1] = part[half:]
+            segments[line, n_fft - half:] = part[:half]
+            if autos_a[row] is not None and autos_b[row] is not None:
+                for auto in (autos_a[row], autos_b[row]):
+                    auto_slot.setdefault((id(auto), half), (auto, half))
+        S_ab = scipy.fft.rfft(segments, axis=1)
+        S_ab *= lag_step_s  # in place: the same products as lag_step_s * S_ab
+        mag_ab = np.abs(S_ab)
+        del S_ab
+        auto_keys = list(auto_slot)
+        if auto_keys:
+            auto_segments = np.zeros((len(auto_keys), n_fft))
+            for line, key in enumerate(auto_keys):
+                auto, half = auto_slot[key]
+                a = auto[:half + 1] * _parzen(2 * half + 1)[half:]
+                auto_segments[line, :half + 1] = a
+                auto_segments[line, n_fft - half:] = a[:0:-1]
+            auto_spectra = np.clip(lag_step_s * scipy.fft.rfft(auto_segments, axis=1).real, 0, None)
+            auto_line = {key: line for line, key in enumerate(auto_keys)}
+        product = np.empty_like(mag_ab)
+        for line, (row, half) in enumerate(members):
+            a, b = autos_a[row], autos_b[row]
+            if a is not None and b is not None:
+                product[line] = auto_spectra[auto_line[(id(a), half)]] * auto_spectra[auto_line[(id(b), half)]]
+            else:
+                gamma2 = min(float(peak_coef[row]) ** 2, 0.999)
+                product[line] = mag_ab[line] ** 2 / gamma2
+        f = scipy.fft.rfftfreq(n_fft, lag_step_s)
+        w2 = (2 * np.pi * f) ** 2
+        w2[1:(n_fft + 1) // 2] *= 2.0
+        df = 1.0 / (n_fft * lag_step_s)
+        excess = mag_ab ** 2  # then, in place: clip(product - |S_ab|^2, 0, None)
+        np.subtract(product, excess, out=excess)
+        np.clip(excess, 0, None, out=excess)
+        if all(weightings[row] == "none" for row, _ in members):
+            # psi = 1: w2 * psi**2 and w2 * psi are w2 exactly
+            excess *= w2
+            numerator = np.sum(excess, axis=1) * df
+            curvature = np.sum(w2 * mag_ab, axis=1) * df
+        else:
+            tiny = 1e-9 * (mag_ab.max(axis=1) + 1e-300)
+            psi = np.ones_like(mag_ab)
+            for line, (row, _) in enumerate(members):
+                if weightings[row] == "phat":
+                    psi[line] = 1.0 / np.maximum(mag_ab[line], tiny[line])
+                elif weightings[row] == "scot":
+                    psi[line] = 1.0 / np.maximum(np.sqrt(product[line]), tiny[line])
+            numerator = np.sum(w2 * psi ** 2 * excess, axis=1) * df
+            curvature = np.sum(w2 * psi * mag_ab, axis=1) * df
+        for line, (row, _) in enumerate(members):
+            if curvature[line] > 0:
+                variance[row] = float(numerator[line] / (record_s[row] * curvature[line] ** 2))
+    return variance
+
+
+def estimate_lags(coefficient, stderr, first_lag_s: float, lag_step_s: float, record_s,
+                  weighted_coefficient=None, weighting: str = "none", auto_a=None, auto_b=None,
+                  max_lag_s: Optional[float] = None, peak_z: float = PEAK_Z) -> List[LagEstimate]:
+    """:func:`estimate_lag` of many channel pairs on one lag grid at once (one row per pair).
+
+    Parameters
+    ----------
+    coefficient, stderr : array_like, shape (n_pairs, 2L + 1)
+        Cross-correlation coefficients ``rho_ab`` and their standard errors, one pair per row,
+        at lags ``first_lag_s + i * lag_step_s``.
+    first_lag_s, lag_step_s : float
+        The lag grid shared by every row.
+    record_s : float or array_like, shape (n_pairs,)
+        Record length ``T`` of each pair.
+    weighted_coefficient : array_like, optional
+        None (every row locates on ``coefficient``), an array of the shape of ``coefficient``,
+        or a sequence of one 1-d array or None per pair (None: that row locates on its
+        ``coefficient`` with weighting "none").
+    weighting : {"none", "phat", "scot"}
+        The weighting of the weighted rows.
+    auto_a, auto_b : sequence of array_like or None, optional
+        Per pair the auto-correlation coefficients (lags 0..L) of its two channels, or None.
+        Listing the same array object for several pairs computes that channel's auto spectrum
+        once per half-width instead of once per pair.
+    max_lag_s, peak_z : float, optional
+        As in :func:`estimate_lag`.
+
+    Returns
+    -------
+    list of LagEstimate
+        One per row, in row order; each equals ``estimate_lag`` of that row's pair (the same
+        arithmetic: stacked matrix-vector products, row-wise transforms and sums).
+
+    Raises
+    ------
+    ValueError
+        Malformed input (shapes, weighting) or a row whose numbers cannot be located (e.g.
+        infinite correlations); callers that isolate failures per pair fall back to
+        :func:`estimate_lag` pair by pair.
+
+    Notes
+    -----
+    The formulas are those of :func:`estimate_lag`, :func:`refine_peak`, :func:`lag_variance`
+    and :func:`envelope_width_s`. For a peak sample ``k`` at least ``INTERPOLATION_HALF_WIDTH``
+    lags from both ends, the fine-grid kernel ``sinc(k + t_m - j)`` depends on ``j - k`` and the
+    grid offset ``t_m`` only (``k + t_m`` is exact for ``t_m`` a multiple of 1/32), so one
+    65 x 129 kernel serves every row.
+
+    References
+    ----------
+    .. [1] C. H. Knapp and G. C. Carter, "The generalized correlation method for estimation of
+       time delay", IEEE Trans. Acoust., Speech, Signal Process. 24(4), 320-327, 1976.
+    .. [2] J. S. Bendat and A. G. Piersol, *Random Data*, 4th ed., Wiley, 2010, Sec. 5.1.
+    """
+    rho = np.asarray(coefficient, dtype=float)
+    s = np.asarray(stderr, dtype=float)
+    if rho.ndim != 2 or rho.shape != s.shape:
+        raise ValueError(f"coefficient {rho.shape} and stderr {s.shape} must be 2-d of equal shape")
+    if weighting not in WEIGHTINGS:
+        raise ValueError(f"weighting={weighting!r}: must be one of " + ", ".join(WEIGHTINGS))
+    count, n = rho.shape
+    weighted = _row_arrays(weighted_coefficient, count, n, "weighted_coefficient")
+    weightings = [("none" if w is None else weighting) for w in weighted]
+    if any(w is not None for w in weighted):
+        located = np.array([rho[i] if w is None else w for i, w in enumerate(weighted)]).reshape(rho.shape)
+    else:
+        located = rho
+    autos_a = _row_arrays(auto_a, count, None, "auto_a", clean=True)
+    autos_b = _row_arrays(auto_b, count, None, "auto_b", clean=True)
+    record = np.broadcast_to(np.asarray(record_s, dtype=float), (count,))
+    nan = float("nan")
+    if count == 0:
+        return []
+    lags = first_lag_s + lag_step_s * np.arange(n)
+    search = np.ones(n, dtype=bool) if max_lag_s is None else np.abs(lags) <= max_lag_s + 1e-9 * lag_step_s
+    idx = np.nonzero(search)[0]
+    if len(idx) < 3:
+        return [LagEstimate(nan, nan, nan, nan, nan, ("too_few_lags",))] * count
+    if np.isinf(located).any() or np.isinf(rho).any():
+        raise ValueError("infinite correlation values: only the per-pair path (estimate_lag) takes them")
+    nonfinite = ~(np.all(np.isfinite(located[:, idx]), axis=1) & np.all(np.isfinite(rho[:, idx]), axis=1))
+    located_clean = np.nan_to_num(located)
+    k = idx[np.argmax(np.abs(located_clean[:, idx]), axis=1)]
+    at_edge = (k == idx[0]) | (k == idx[-1])
+    position = _refine_peaks(located_clean, located, k)
+    position = np.where(at_edge, k.astype(float), position)
+    if not np.all(np.isfinite(position)):
+        bad = int(np.nonzero(~np.isfinite(position))[0][0])
+        raise ValueError(f"row {bad}: the peak position is not finite (infinite correlation values?)")
+    rho_clean = np.nan_to_num(rho)
+    peak_coef = _interpolate_at(rho_clean, rho, position, k)
+    j = np.clip(np.floor(position).astype(int), 0, n - 2)
+    frac = position - j
+    line = np.arange(count)
+    peak_sd = (1 - frac) * s[line, j] + frac * s[line, j + 1]
+    weak = np.isfinite(peak_sd) & (np.abs(peak_coef) < peak_z * peak_sd)
+    variance = _lag_variances(rho_clean, k, np.nonzero(~at_edge)[0], lag_step_s, record, autos_a, autos_b,
+                              weightings, peak_coef)
+    width = _envelope_widths(located_clean, k, lag_step_s)
+    out = []
+    for i in range(count):
+        quality = []
+        if nonfinite[i]:
+            quality.append("nonfinite_correlation")
+        if at_edge[i]:
+            quality.append("peak_at_max_lag")
+        if weak[i]:
+            quality.append("weak_peak")
+        edge = bool(at_edge[i])
+        out.append(LagEstimate(nan if edge else float(first_lag_s + position[i] * lag_step_s),
+                               nan if edge else float(np.sqrt(variance[i])),
+                               float(peak_coef[i]), float(peak_sd[i]), float(width[i]), tuple(quality)))
+    return out

@@ -169,3 +169,193 @@ def test_lag_variance_on_real_transforms_equals_the_full_complex_spectrum_sum(we
         # PHAT/SCOT divide by small spectral values, which amplifies the two FFT algorithms'
         # rounding differences to ~1e-12 relative (common practice tolerance)
         np.testing.assert_allclose(got, expected, rtol=1e-9)
+
+
+# ---- batched estimate_lags against the per-pair estimate_lag --------------------------------
+# The batched path must give each pair what estimate_lag gives it (same formulas; the numbers
+# come from the same arithmetic, so rtol 1e-12 is far above what is allowed to differ). The
+# per-pair path itself is checked against the Cramer-Rao bound, the scatter across windows and
+# the full complex-spectrum sum above.
+
+def _invented_pairs(weighting):
+    """Rows on one lag grid (+/- 2 s at 100 Hz) covering the cases of the batched path."""
+    from corrtransforms.time_delay import INTERPOLATION_HALF_WIDTH
+    rng = np.random.default_rng(21)
+    n, max_lag_s = 6000, 2.0
+    source = _flat_band_pair(rng, n, 20.0, 0.0, 1e6)[:, 0]
+    # four sensors: the source delayed by 0, 12, -37 and 170 samples, one of them inverted, plus
+    # noise; a fifth sensor is independent noise (weak peaks)
+    delays = (0, 12, -37, 170)
+    channels = [np.roll(source, d) + 0.5 * rng.standard_normal(n) for d in delays]
+    channels[2] = -channels[2]
+    channels.append(rng.standard_normal(n))
+    values = np.column_stack(channels)
+    est = correlate_block(values, FS, max_lag_s, pairs="all")
+    L = est.max_lag
+    cross = [(a, b) for a in range(values.shape[1]) for b in range(a + 1, values.shape[1])]
+    phat = correlate_block(values, FS, max_lag_s, pairs=cross, weighting=weighting)
+    autos = [est.coefficient[est.pair_index(c, c)][L:] for c in range(values.shape[1])]
+    rows = []
+    for i, (a, b) in enumerate(cross):
+        rho = est.coefficient[est.pair_index(a, b)]
+        se = bartlett_stderr(rho, est.coefficient[est.pair_index(a, a)], est.coefficient[est.pair_index(b, b)],
+                             est.pair_count[est.pair_index(a, b)])
+        rows.append(dict(rho=rho, se=se, weighted=phat.coefficient[i] if i % 2 else None,
+                         auto_a=autos[a], auto_b=autos[b]))  # shared auto objects
+    lags = (np.arange(2 * L + 1) - L) / FS
+    broad = dict(se=np.full(2 * L + 1, 0.01), weighted=None, auto_a=autos[0], auto_b=autos[1])
+    rows.append(dict(broad, rho=0.9 * np.exp(-np.abs(lags - 2.6) / 0.5)))   # peak beyond max lag
+    rows.append(dict(broad, rho=0.9 * np.exp(-np.abs(lags - 1.97) / 0.3)))  # fewer than 4 lags beyond it
+    rows.append(dict(broad, rho=-0.7 * np.exp(-np.abs(lags + 0.31) / 0.2)))  # negative peak, missing autos
+    rows[-1].update(auto_a=None, auto_b=None)
+    with_nan = dict(rows[0], rho=rows[0]["rho"].copy(), auto_b=None)
+    with_nan["rho"][L + 40:L + 55] = np.nan  # NaN lags (too few sample pairs) in the search range
+    rows.append(with_nan)
+    with_nan_weighted = dict(rows[1], weighted=rows[1]["weighted"].copy())
+    with_nan_weighted["weighted"][L - 3] = np.nan
+    rows.append(with_nan_weighted)
+    zero = dict(broad, rho=np.zeros(2 * L + 1))  # no peak at all
+    rows.append(zero)
+    assert L > 2 * INTERPOLATION_HALF_WIDTH  # some peaks are interior, the 170-sample one is not
+    return rows, -L / FS, 1 / FS, n / FS
+
+
+def _compare(batched, per_pair):
+    assert len(batched) == len(per_pair)
+    for got, expected in zip(batched, per_pair):
+        assert got.quality == expected.quality
+        for field in ("lag_s", "lag_stderr_s", "peak_coef", "peak_coef_stderr", "peak_width_s"):
+            np.testing.assert_allclose(getattr(got, field), getattr(expected, field), rtol=1e-12, atol=0,
+                                       equal_nan=True, err_msg=field)
+            assert np.isnan(getattr(got, field)) == np.isnan(getattr(expected, field))
+
+
+@pytest.mark.parametrize("weighting", ["phat", "scot"])
+@pytest.mark.parametrize("max_lag_s", [None, 1.5])
+def test_batched_lags_equal_the_per_pair_estimates(weighting, max_lag_s):
+    from corrtransforms.time_delay import estimate_lags
+    rows, first_lag_s, dt, record_s = _invented_pairs(weighting)
+    record = [record_s * (1 - 0.01 * i) for i in range(len(rows))]
+    per_pair = [estimate_lag(r["rho"], r["se"], first_lag_s, dt, record[i], weighted_coefficient=r["weighted"],
+                             weighting=weighting if r["weighted"] is not None else "none",
+                             auto_a=r["auto_a"], auto_b=r["auto_b"], max_lag_s=max_lag_s)
+                for i, r in enumerate(rows)]
+    batched = estimate_lags(np.array([r["rho"] for r in rows]), np.array([r["se"] for r in rows]), first_lag_s, dt,
+                            record, weighted_coefficient=[r["weighted"] for r in rows], weighting=weighting,
+                            auto_a=[r["auto_a"] for r in rows], auto_b=[r["auto_b"] for r in rows],
+                            max_lag_s=max_lag_s)
+    _compare(batched, per_pair)
+    # the cases are all there
+    qualities = [e.quality for e in per_pair]
+    assert any("peak_at_max_lag" in q for q in qualities)
+    assert any("nonfinite_correlation" in q for q in qualities)
+    assert any("weak_peak" in q for q in qualities)
+    assert any(e.peak_coef < -0.5 for e in per_pair)
+    assert any(q == () and np.isfinite(e.lag_stderr_s) for q, e in zip(qualities, per_pair))
+    # a row alone gives what it gives in the batch (no dependence on the other rows)
+    alone = estimate_lags(np.array([rows[3]["rho"]]), np.array([rows[3]["se"]]), first_lag_s, dt, record[3],
+                          weighted_coefficient=[rows[3]["weighted"]], weighting=weighting,
+                          auto_a=[rows[3]["auto_a"]], auto_b=[rows[3]["auto_b"]], max_lag_s=max_lag_s)
+    _compare(alone, batched[3:4])
+
+
+def test_batched_lags_plain_weighting_and_too_few_lags():
+    from corrtransforms.time_delay import estimate_lags
+    rows, first_lag_s, dt, record_s = _invented_pairs("phat")
+    rho, se = np.array([r["rho"] for r in rows]), np.array([r["se"] for r in rows])
+    per_pair = [estimate_lag(r["rho"], r["se"], first_lag_s, dt, record_s, auto_a=r["auto_a"], auto_b=r["auto_b"])
+                for r in rows]
+    _compare(estimate_lags(rho, se, first_lag_s, dt, record_s, auto_a=[r["auto_a"] for r in rows],
+                           auto_b=[r["auto_b"] for r in rows]), per_pair)
+    few = estimate_lags(rho, se, first_lag_s, dt, record_s, max_lag_s=0.5 * dt)
+    assert all(e.quality == ("too_few_lags",) for e in few) and len(few) == len(rows)
+
+
+def test_batched_lags_reject_malformed_input():
+    from corrtransforms.time_delay import estimate_lags
+    rows, first_lag_s, dt, record_s = _invented_pairs("phat")
+    rho = np.array([r["rho"] for r in rows[:3]])
+    with pytest.raises(ValueError, match="equal shape"):
+        estimate_lags(rho, rho[:, :-5], first_lag_s, dt, record_s)
+    with pytest.raises(ValueError, match="weighting"):
+        estimate_lags(rho, rho, first_lag_s, dt, record_s, weighting="roth")
+    with pytest.raises(ValueError, match="weighted_coefficient"):
+        estimate_lags(rho, rho, first_lag_s, dt, record_s, weighted_coefficient=[None, rho[0][:-1], None])
+    with pytest.raises(ValueError, match="auto_a"):
+        estimate_lags(rho, rho, first_lag_s, dt, record_s, auto_a=[None, None])
+    infinite = rho.copy()
+    infinite[1, 7] = np.inf
+    with pytest.raises(ValueError, match="infinite"):
+        estimate_lags(infinite, rho, first_lag_s, dt, record_s)
+
+
+def _three_channel_window(weighting):
+    from corrtransforms.config import parse_config
+    from corrtransforms.window_block import WindowBlock
+    from corrtransforms.window_correlation import correlate_window
+    rng = np.random.default_rng(31)
+    n = 12000
+    source = simulate_sdof(2.0, 0.03, 50.0, n + 20, rng)
+    source /= source.std()
+    values = np.column_stack([source[20:], source[14:n + 14], -source[:n]]) + 0.2 * rng.standard_normal((n, 3))
+    names = ("deck_a", "deck_b", "pier")
+    config = parse_config({
+        "asset": {"name": "invented-bridge"}, "archive": {"path": "/nonexistent", "sample_rate_hz": 50.0},
+        "channels": {"names": list(names)}, "windows": {"length_s": 240.0},
+        "correlation": {"max_lag_s": 4.0, "weighting": weighting}})
+    block = WindowBlock(asset="invented-bridge", window_start_us=0, window_length_s=240.0, sample_rate_hz=50.0,
+                        channels=names, values=values, valid=np.ones_like(values, dtype=bool))
+    return correlate_window(block, config), config
+
+
+@pytest.mark.parametrize("weighting", ["none", "phat"])
+def test_window_indicators_use_batched_lags_equal_to_per_pair_and_isolate_a_malformed_pair(weighting):
+    import dataclasses
+    from corrtransforms.indicators import _pair_rows, window_indicators_and_failures
+    wc, config = _three_channel_window(weighting)
+    cross = [p for p in wc.pairs if not p.is_auto]
+    assert len(cross) == 3
+    rows, failures = window_indicators_and_failures(wc, config)
+    assert failures == []
+    lag_rows = [r for r in rows if r.indicator in ("lag_s", "peak_coef")]
+    # the per-pair path (estimate_lag for each pair), in the order of wc.pairs
+    per_pair = [r for p in cross for r in _pair_rows(wc, config, p, lambda subject: ())]
+    assert [(r.subject, r.indicator) for r in lag_rows] == [(r.subject, r.indicator) for r in per_pair]
+    for got, expected in zip(lag_rows, per_pair):
+        assert got.quality == expected.quality and got.unit == expected.unit
+        np.testing.assert_allclose([got.value, got.stderr], [expected.value, expected.stderr], rtol=1e-12,
+                                   equal_nan=True)
+    # b lags a by 6 samples, the inverted pier by 20 (b(t) = a(t - d) convention)
+    # within 4 reported standard errors (plus a fifth of a sample: the interpolation)
+    lag = {r.subject: r for r in lag_rows if r.indicator == "lag_s"}
+    for subject, delay in (("deck_a:deck_b", 6), ("deck_a:pier", 20)):
+        assert abs(lag[subject].value - delay / 50.0) < 4 * lag[subject].stderr + 0.2 / 50.0
+
+    # one malformed pair (stderr shorter than its coefficient): the batched call fails, the
+    # per-pair path isolates the failure to that subject, the other pairs' rows are unchanged
+    broken_pair = dataclasses.replace(cross[1], stderr=cross[1].stderr[:-5])
+    broken = dataclasses.replace(wc, pairs=tuple(broken_pair if p is cross[1] else p for p in wc.pairs))
+    rows_b, failures_b = window_indicators_and_failures(broken, config)
+    assert [f[0] for f in failures_b] == [cross[1].subject]
+    assert "ValueError" in failures_b[0][1]
+    assert rows_b == [r for r in rows if r.subject != cross[1].subject]
+
+    # infinite values: not taken by the batched call; the per-pair path decides, pair by pair
+    infinite_pair = dataclasses.replace(cross[0], coefficient=np.where(np.arange(len(cross[0].coefficient)) == 3,
+                                                                      np.inf, cross[0].coefficient))
+    infinite = dataclasses.replace(wc, pairs=tuple(infinite_pair if p is cross[0] else p for p in wc.pairs))
+    with np.errstate(all="ignore"):  # the per-pair arithmetic overflows on the infinite lag
+        rows_i, failures_i = window_indicators_and_failures(infinite, config)
+        expected_i, expected_failures = [], []
+        for p in [infinite_pair] + cross[1:]:
+            try:
+                expected_i.extend(_pair_rows(infinite, config, p, lambda subject: ()))
+            except Exception as err:  # noqa: BLE001 - what window_indicators_and_failures records
+                expected_failures.append((p.subject, f"{type(err).__name__}: {err}"))
+    assert failures_i == expected_failures
+    got_i = [r for r in rows_i if r.indicator in ("lag_s", "peak_coef")]
+    assert len(got_i) == len(expected_i)
+    for got, expected in zip(got_i, expected_i):
+        assert (got.subject, got.indicator, got.quality) == (expected.subject, expected.indicator, expected.quality)
+        np.testing.assert_allclose([got.value, got.stderr], [expected.value, expected.stderr], rtol=1e-12,
+                                   equal_nan=True)
