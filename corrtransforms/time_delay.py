@@ -535,11 +535,12 @@ def _lag_variances(rho_clean: np.ndarray, peak_index: np.ndarray, rows, lag_step
         else:
             tiny = 1e-9 * (mag_ab.max(axis=1) + 1e-300)
             psi = np.ones_like(mag_ab)
-            for line, (row, _) in enumerate(members):
-                if weightings[row] == "phat":
-                    psi[line] = 1.0 / np.maximum(mag_ab[line], tiny[line])
-                elif weightings[row] == "scot":
-                    psi[line] = 1.0 / np.maximum(np.sqrt(product[line]), tiny[line])
+            kind = np.array([weightings[row] for row, _ in members])
+            phat, scot = kind == "phat", kind == "scot"
+            if phat.any():
+                psi[phat] = 1.0 / np.maximum(mag_ab[phat], tiny[phat, None])
+            if scot.any():
+                psi[scot] = 1.0 / np.maximum(np.sqrt(product[scot]), tiny[scot, None])
             numerator = np.sum(w2 * psi ** 2 * excess, axis=1) * df
             curvature = np.sum(w2 * psi * mag_ab, axis=1) * df
         for line, (row, _) in enumerate(members):
