@@ -5,6 +5,10 @@ PHAT or SCOT weighting, Knapp & Carter 1976) within ``+/- max_lag``, refines it 
 spacing by band-limited (sinc) interpolation, and gives the lag, the coefficient at the peak,
 both standard errors and quality codes. Lag convention: ``R_ab(tau) = E[a(t) b(t + tau)]``; a
 positive lag means b lags a.
+
+:func:`estimate_lags` does the same for all pairs of a window at once (one row per pair, the
+same arithmetic, so every row equals :func:`estimate_lag` of its pair, which stays the per-pair
+path a failing batch falls back to).
 """
 from __future__ import annotations
 
