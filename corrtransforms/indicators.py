@@ -11,8 +11,8 @@ indicator                 subject     from
 ``decay_time_s``          channel     :func:`~corrtransforms.timescales.decay_time_s`
 ``mode_freq_hz``          mode name   :func:`~corrtransforms.modal_fit.fit_mode`
 ``mode_damping``          mode name   :func:`~corrtransforms.modal_fit.fit_mode`
-``lag_s``                 ``a:b``     :func:`~corrtransforms.time_delay.estimate_lag`
-``peak_coef``             ``a:b``     :func:`~corrtransforms.time_delay.estimate_lag`
+``lag_s``                 ``a:b``     :func:`~corrtransforms.time_delay.estimate_lags`
+``peak_coef``             ``a:b``     :func:`~corrtransforms.time_delay.estimate_lags`
 ``covariate_mean``        covariate   ``wc.covariates`` (stderr NaN)
 ========================  ==========  ==============================================
 
