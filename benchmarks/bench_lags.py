@@ -18,11 +18,11 @@ Prints timings and ratios; never asserts a time.
 from __future__ import annotations
 
 import argparse
-import time
 
 import numpy as np
 from scipy import signal
 
+from benchmarks.bench_correlation import _interleaved_best
 from corrtransforms import indicators
 from corrtransforms.config import parse_config
 from corrtransforms.time_delay import estimate_lag, estimate_lags
@@ -93,16 +93,6 @@ def rows_per_pair(wc, config, pairs):
 def rows_batched(wc, config, pairs):
     estimates = indicators._batched_lag_estimates(wc, config, pairs)
     return [r for p, e in zip(pairs, estimates) for r in indicators._pair_rows(wc, config, p, lambda s: (), e)]
-
-
-def _interleaved_best(funcs, repeats):
-    best = [float("inf")] * len(funcs)
-    for _ in range(repeats):
-        for i, func in enumerate(funcs):
-            start = time.perf_counter()
-            func()
-            best[i] = min(best[i], time.perf_counter() - start)
-    return best
 
 
 def _agreement(before, after):
