@@ -118,7 +118,6 @@ def bad_wide_archive(folder: str, rate: float = 10.0, seed: int = 7) -> Dict[str
     """
     rng = np.random.default_rng(seed)
     cols = samples(22 * 60, rate, seed=seed)
-    n_per = int(60 * rate)
     period = US / rate
 
     def rows(k):

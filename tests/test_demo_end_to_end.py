@@ -5,7 +5,6 @@ archive in a temporary folder, then reads the output the way a user would (panda
 folders, no corrtransforms import needed) and compares it with ``expected_changes()``, the
 generator's own list of what it injected (docs/demo.md).
 """
-import datetime as dt
 import os
 import shutil
 

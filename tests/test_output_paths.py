@@ -7,7 +7,6 @@ files, as column values: a channel called "../x" is a row value, never a path.
 import os
 
 import numpy as np
-import pyarrow as pa
 import pytest
 
 from corrtransforms.config import ConfigError, parse_config

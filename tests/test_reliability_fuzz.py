@@ -15,7 +15,6 @@ import os
 import shutil
 import tempfile
 
-import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest

@@ -17,7 +17,6 @@ indicators), windows planned = computed + rejected (counters and tables), and ev
 rows differ from the clean run has a window-level finding in the rejects table.
 """
 import os
-import shutil
 
 import numpy as np
 import pyarrow as pa

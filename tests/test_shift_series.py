@@ -96,7 +96,6 @@ def test_columns_follow_their_formulas():
     np.testing.assert_allclose(fitted.ewma, ewma, atol=1e-12)
     np.testing.assert_allclose(fitted.ewma_limit, detectors.ewma_limits(np.arange(1, len(fitted) + 1), 0.1, 3.75))
     # expected after the baseline: the Huber regression on the baseline windows (statsmodels)
-    base = frame[frame.state == "baseline"]
     times, values, stderr, temperature, _ = seasonal_series(3)
     in_base = (frame.state == "baseline").to_numpy()  # rows are in the order of ``times``
     x = temperature[in_base] - np.median(temperature[in_base])

@@ -5,7 +5,7 @@ import scipy.signal
 
 from corrtransforms.timescales import (bartlett_kernel, corr_time_s, correlation_envelope,
                                        decay_time_s, lag_error_covariance)
-from tests.indicator_fixtures import auto_record, sdof_correlation, simulate_ou, simulate_sdof
+from tests.indicator_fixtures import auto_record, sdof_correlation, simulate_ou
 
 FS = 50.0
 

@@ -1,5 +1,4 @@
 """Reading tasks into window blocks: grid snapping, gaps, repairs and rejects, exact accounting."""
-import os
 
 import numpy as np
 import pyarrow as pa
