@@ -145,7 +145,10 @@ def split_by_date(table: pa.Table, timezone: str) -> Dict[str, pa.Table]:
         return {}
     starts = table.column("window_start").cast(pa.int64()).to_numpy(zero_copy_only=False)
     unique, inverse = np.unique(starts, return_inverse=True)
-    dates = np.array([local_date(int(u), timezone) for u in unique])[inverse.reshape(-1)]
+    unique_dates = [local_date(int(u), timezone) for u in unique]
+    if len(set(unique_dates)) == 1:  # the usual element: one window, or windows of one day
+        return {unique_dates[0]: table}
+    dates = np.array(unique_dates)[inverse.reshape(-1)]
     out = {}
     for date in sorted(set(dates.tolist())):
         out[date] = table.filter(pa.array(dates == date))
