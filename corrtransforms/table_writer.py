@@ -213,7 +213,8 @@ def partition_folder(store, output_dir: str, table_name: str, asset: str, date: 
     return store.join(output_dir, table_name, f"asset={asset}", f"date={date}")
 
 
-def _sort_columns(table: pa.Table) -> List[str]:
+def sort_columns(table: pa.Table) -> List[str]:
+    """The columns rows are sorted by when written: every column that is not a list or struct."""
     return [f.name for f in table.schema
             if not (pa.types.is_list(f.type) or pa.types.is_large_list(f.type) or pa.types.is_struct(f.type))]
 
@@ -223,7 +224,7 @@ def part_file_name(table: pa.Table) -> str:
 
     The digest is SHA-256 of the Arrow IPC stream of the sorted rows' scalar columns.
     """
-    keys = table.select(_sort_columns(table)).combine_chunks()
+    keys = table.select(sort_columns(table)).combine_chunks()
     sink = io.BytesIO()
     with pa.ipc.new_stream(sink, keys.schema.remove_metadata()) as writer:
         writer.write_table(keys.replace_schema_metadata(None))
@@ -263,7 +264,7 @@ def write_part(store, output_dir: str, table_name: str, asset: str, date: str, t
     -------
     PartFile
     """
-    table = table.sort_by([(c, "ascending") for c in _sort_columns(table)])
+    table = table.sort_by([(c, "ascending") for c in sort_columns(table)])
     name = part_file_name(table)
     temp = store.join(output_dir, TEMPORARY, run_id, table_name, f"asset={asset}", f"date={date}",
                       f"{name}.{unique}")

@@ -25,9 +25,10 @@ from corrtransforms import archive_plan, tables
 from corrtransforms.beam import LOCAL_RUNNER
 from corrtransforms.beam.archive import window_accounting
 from corrtransforms.beam.monitoring import PROGRESS_LOGGER, MonitorAsset
-from corrtransforms.beam.output_tables import latest_states, read_partitions, write_episodes
+from corrtransforms.beam.output_tables import LATEST_STATE, latest_states, summarize_partitions, write_episodes
 from corrtransforms import config as config_module
 from corrtransforms.config import AssetConfig, ConfigError, load_config, parse_config
+from corrtransforms.table_writer import provenance_metadata
 
 
 def _date(text: str) -> str:
@@ -78,11 +79,12 @@ def build_pipeline(p: beam.Pipeline, config: AssetConfig, output: str, start: Op
     return p | "Monitor asset" >> MonitorAsset(config, output, run_id, start, end, initial_states)
 
 
-def earlier_states(output: str, config: AssetConfig, start: Optional[_dt.date]):
+def earlier_states(output: str, config: AssetConfig, start: Optional[_dt.date], run_id: str = ""):
     """State rows written before ``start`` (None when starting from the first window)."""
     if start is None:
         return None
-    states = read_partitions(output, "state", config.name, tables.STATE, before=start, keep=latest_states)
+    states = summarize_partitions(output, "state", config.name, tables.STATE, latest_states, LATEST_STATE,
+                                  before=start, provenance=provenance_metadata(config, run_id))
     return states if states.num_rows else None
 
 
@@ -206,7 +208,7 @@ def main(argv: Optional[List[str]] = None) -> Dict[str, int]:
     if start and end and end < start:
         raise SystemExit(f"--end {end} is before --start {start}")
     run_id = args.run_id or new_run_id()
-    return run(options, config, args.output, start, end, run_id, earlier_states(args.output, config, start))
+    return run(options, config, args.output, start, end, run_id, earlier_states(args.output, config, start, run_id))
 
 
 if __name__ == "__main__":  # pragma: no cover

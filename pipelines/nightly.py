@@ -19,8 +19,10 @@ import zoneinfo
 from typing import Dict, List, Optional
 
 from corrtransforms import tables
-from corrtransforms.beam.output_tables import latest_states, partition_files, read_partitions
+from corrtransforms.beam.output_tables import (LATEST_STATE, latest_states, partition_files, read_partitions,
+                                               summarize_partitions)
 from corrtransforms.config import AssetConfig
+from corrtransforms.table_writer import provenance_metadata
 from corrtransforms.state_replay import replay_states
 from pipelines.backfill import JobOptions, as_date, new_run_id, parse_options, run
 
@@ -34,9 +36,10 @@ def yesterday(config: AssetConfig, now: Optional[_dt.datetime] = None) -> _dt.da
     return (now.astimezone(zoneinfo.ZoneInfo(config.archive.timezone)) - _dt.timedelta(days=1)).date()
 
 
-def previous_states(output: str, config: AssetConfig, day: _dt.date, rebuild: bool):
+def previous_states(output: str, config: AssetConfig, day: _dt.date, rebuild: bool, run_id: str = ""):
     """The state table to resume ``day`` from, or SystemExit(2) when there is none."""
-    states = read_partitions(output, "state", config.name, tables.STATE, before=day, keep=latest_states)
+    states = summarize_partitions(output, "state", config.name, tables.STATE, latest_states, LATEST_STATE,
+                                  before=day, provenance=provenance_metadata(config, run_id))
     if states.num_rows:
         return states
     earlier_indicators = [d for d, _ in partition_files(output, "indicators", config.name) if d < day.isoformat()]
@@ -59,8 +62,8 @@ def main(argv: Optional[List[str]] = None) -> Dict[str, int]:
     """Run one night; returns the counters (also printed as a summary)."""
     options, args, config = parse_options(argv, JobOptions)
     day = as_date(args.date) or yesterday(config)
-    initial = previous_states(args.output, config, day, args.rebuild_state)
     run_id = args.run_id or new_run_id()
+    initial = previous_states(args.output, config, day, args.rebuild_state, run_id)
     print(f"nightly {config.name}: processing {day}")
     return run(options, config, args.output, day, day, run_id, initial)
 

@@ -65,8 +65,11 @@ def test_two_runs_write_the_same_files_byte_for_byte_but_the_run_id(runs):
     first, second = runs["first"], runs["second"]
     names = _files(first)
     assert names == _files(second)  # names are a function of the rows
-    assert {n.split(os.sep)[0] for n in names} == set(TABLES) | {"episodes"}
-    assert not any("_temporary" in n for n in names)
+    assert {n.split(os.sep)[0] for n in names} == set(TABLES) | {"episodes", "_summaries"}
+    assert not any("_temporary" in n or n.endswith(".tmp") for n in names)
+    # the read-back summaries (derived data): only the episode evidence, no state was read back
+    summaries = [n for n in names if n.startswith("_summaries")]
+    assert [os.path.basename(n) for n in summaries] == ["episode_evidence.parquet"]
     run_ids = set()
     for name in names:
         a, b = os.path.join(first, name), os.path.join(second, name)

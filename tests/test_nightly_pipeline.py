@@ -134,3 +134,82 @@ def test_episodes_from_the_reduced_shifts_equal_those_from_the_whole_table(site)
     written = ds.dataset(os.path.join(full, "episodes"), format="parquet").to_table()
     assert written.drop_columns([c for c in written.column_names if c not in tables.EPISODES.names]) \
         .select(tables.EPISODES.names).to_pylist() == shift_series.shift_episodes(whole).to_pylist()
+
+
+def test_nights_update_the_episodes_as_one_backfill_writes_them(site):
+    # the nights fold only their own day's shifts into the read-back summary of the episode
+    # evidence; the episodes file must equal the one a single backfill writes
+    root, config, full = site
+    stepwise = str(root / "stepwise-episodes")
+    backfill.main(["--config", config, "--output", stepwise, "--start", "2025-05-01", "--end", "2025-05-11"])
+    for day in ("2025-05-12", "2025-05-13", "2025-05-14"):
+        nightly.main(["--config", config, "--output", stepwise, "--date", day])
+    episodes = [ds.dataset(os.path.join(out, "episodes"), format="parquet").to_table().to_pylist()
+                for out in (full, stepwise)]
+    assert episodes[0] == episodes[1]
+    # the evidence behind them (shifted rows and each series' latest row), folded night by night,
+    # equals the evidence of the whole table read at once
+    import pyarrow.parquet as pq
+    from corrtransforms.beam.output_tables import EPISODE_EVIDENCE, summary_path
+
+    evidence = [_sorted_rows(pq.read_table(summary_path(out, "footbridge", EPISODE_EVIDENCE)))
+                for out in (full, stepwise)]
+    assert evidence[0] and evidence[0] == evidence[1]
+
+
+def _sorted_rows(table):
+    from corrtransforms import table_writer
+
+    rows = table.sort_by([(c, "ascending") for c in table_writer.sort_columns(table)]).to_pylist()
+    return [{k: ("NaN" if isinstance(v, float) and v != v else v) for k, v in row.items()} for row in rows]
+
+
+def test_read_back_summaries_equal_reading_every_file(site, tmp_path):
+    # the summaries are derived data: whatever happened to the partitions since they were
+    # written, summarize_partitions gives what reading and reducing every file gives
+    from corrtransforms import tables
+    from corrtransforms.beam import output_tables as ot
+
+    _, _, full = site
+    out = str(tmp_path / "out")
+    shutil.copytree(full, out)
+    cases = [("shifts", tables.SHIFTS, ot.episode_evidence, ot.EPISODE_EVIDENCE, ot.EPISODE_COLUMNS),
+             ("state", tables.STATE, ot.latest_states, ot.LATEST_STATE, None)]
+
+    def reference(table, schema, keep, columns, before=None):
+        return _sorted_rows(ot.read_partitions(out, table, "footbridge", schema, before=before, columns=columns,
+                                               keep=keep))
+
+    def summarized(table, schema, keep, name, columns, before=None):
+        return _sorted_rows(ot.summarize_partitions(out, table, "footbridge", schema, keep, name, before=before,
+                                                    columns=columns))
+
+    for table, schema, keep, name, columns in cases:
+        want = reference(table, schema, keep, columns)
+        assert want and summarized(table, schema, keep, name, columns) == want  # first: builds the summary
+        files = ot.partition_files(out, table, "footbridge")
+        # a covered file is not opened again: garbage under its name changes nothing ...
+        date, victim = files[3]
+        original = open(victim, "rb").read()
+        with open(victim, "wb") as handle:
+            handle.write(b"not parquet")
+        assert summarized(table, schema, keep, name, columns) == want
+        with pytest.raises(Exception):  # ... while reading every file would fail on it
+            reference(table, schema, keep, columns)
+        with open(victim, "wb") as handle:
+            handle.write(original)
+        # a partition that disappeared (rewritten or deleted): the summary is not used
+        shutil.rmtree(os.path.dirname(files[-1][1]))
+        want = reference(table, schema, keep, columns)
+        assert summarized(table, schema, keep, name, columns) == want
+        # only dates before a day: not the summary of later days
+        before = dt.date.fromisoformat(files[5][0])
+        assert summarized(table, schema, keep, name, columns, before) == reference(table, schema, keep, columns,
+                                                                                   before)
+        assert summarized(table, schema, keep, name, columns) == want
+        # a damaged summary is rebuilt
+        with open(ot.summary_path(out, "footbridge", name), "wb") as handle:
+            handle.write(b"\x00" * 64)
+        assert summarized(table, schema, keep, name, columns) == want
+        assert not [n for n in os.listdir(os.path.dirname(ot.summary_path(out, "footbridge", name)))
+                    if n.endswith(".tmp")]

@@ -102,7 +102,7 @@ def _assert_same_outputs(got: str, expected: str, listing_got=None, listing_expe
     files = demo_fixtures.partition_files(expected)
     assert demo_fixtures.partition_files(got) == files
     tables = {rel.split("/")[0] for rel in files}
-    assert tables == set(TABLES) | {"episodes"}
+    assert tables == set(TABLES) | {"episodes", "_summaries"}
     for rel in files:
         a = pq.read_table(os.path.join(got, rel))
         b = pq.read_table(os.path.join(expected, rel))

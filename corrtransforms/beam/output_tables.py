@@ -8,8 +8,10 @@ folder may be any registered filesystem URL.
 from __future__ import annotations
 
 import datetime as _dt
+import json
 import re
-from typing import Callable, List, Optional, Sequence
+import uuid
+from typing import Callable, List, Mapping, Optional, Sequence
 
 import numpy as np
 import pyarrow as pa
@@ -66,6 +68,110 @@ def read_partitions(output_dir: str, table: str, asset: str, schema: pa.Schema,
     return pa.concat_tables(pieces)
 
 
+#: folder of the read-back summaries under the output root (derived data, safe to delete)
+SUMMARIES = "_summaries"
+_SUMMARY_FORMAT = "1"
+_COVERED_KEY = b"corrtransforms.summary.covered"
+_FORMAT_KEY = b"corrtransforms.summary.format"
+
+
+def summary_path(output_dir: str, asset: str, name: str) -> str:
+    """``DIR/_summaries/asset=NAME/<name>.parquet``."""
+    return FileSystems.join(output_dir, SUMMARIES, f"asset={asset}", f"{name}.parquet")
+
+
+def _load_summary(path: str, schema: pa.Schema):
+    """(rows, covered file keys) of a summary file, or None when absent, unreadable or of
+    another format or schema (the caller then reads every partition)."""
+    try:
+        if not FileSystems.exists(path):
+            return None
+        with FileSystems.open(path, compression_type=CompressionTypes.UNCOMPRESSED) as handle:
+            table = pq.read_table(handle)
+        metadata = table.schema.metadata or {}
+        if metadata.get(_FORMAT_KEY) != _SUMMARY_FORMAT.encode():
+            return None
+        covered = frozenset(json.loads(metadata[_COVERED_KEY].decode()))
+        table = table.replace_schema_metadata(None)
+        if not table.schema.equals(schema):
+            return None
+        return table, covered
+    except Exception:  # noqa: BLE001 - a damaged summary is rebuilt from the partitions
+        return None
+
+
+def _write_summary(path: str, table: pa.Table, covered: Sequence[str], provenance: Mapping[str, str]) -> None:
+    store = BeamFiles()
+    store.mkdirs(FileSystems.split(path)[0])
+    temporary = f"{path}.{uuid.uuid4().hex}.tmp"
+    metadata = {k.encode(): v.encode() for k, v in provenance.items()}
+    metadata.update({_FORMAT_KEY: _SUMMARY_FORMAT.encode(), _COVERED_KEY: json.dumps(sorted(covered)).encode()})
+    with store.create(temporary) as handle:
+        pq.write_table(table.replace_schema_metadata(metadata), handle, compression="zstd",
+                       use_compliant_nested_type=True)
+    store.rename(temporary, path)
+
+
+def summarize_partitions(output_dir: str, table: str, asset: str, schema: pa.Schema,
+                         keep: Callable[[pa.Table], pa.Table], name: str,
+                         before: Optional[_dt.date] = None,
+                         columns: Optional[Sequence[str]] = None,
+                         provenance: Optional[Mapping[str, str]] = None) -> pa.Table:
+    """:func:`read_partitions` with ``keep``, opening only the files its last summary did not cover.
+
+    Parameters
+    ----------
+    output_dir, table, asset, schema, before, columns
+        As for :func:`read_partitions`.
+    keep : callable
+        The reduction; it must be decomposable: ``keep(concat(keep(A), B)) == keep(concat(A, B))``
+        for any split of the rows, whatever their dates (true of "the latest row of each series"
+        and of "shifted rows plus each series' latest row").
+    name : str
+        The summary's name (one per reduction): ``DIR/_summaries/asset=NAME/<name>.parquet``.
+    provenance : mapping, optional
+        File metadata of the summary (:func:`corrtransforms.table_writer.provenance_metadata`).
+
+    Returns
+    -------
+    pyarrow.Table
+        The rows of ``read_partitions(..., keep=keep)``, sorted by their scalar columns (so the
+        result does not depend on which files a summary already covered).
+
+    Notes
+    -----
+    The summary holds the reduced rows and the keys (``date/file name``) of the partition files
+    they were reduced from. Part-file names are a digest of their rows, so a covered key that is
+    still listed is a file with the same rows. When every covered key is still listed (and, with
+    ``before``, dated before it), the summary is folded with the files it does not cover; when a
+    covered file has gone (a partition rewritten with other rows, or deleted), the summary is
+    ignored and every file is read. The refreshed summary is written back (temporary name, then
+    rename). A nightly run thus opens one summary and one day's files, not the whole history;
+    the listing itself is one ``match`` of the table's partitions.
+    """
+    if columns is not None:
+        schema = pa.schema([schema.field(c) for c in columns])
+    files = [(date, path) for date, path in partition_files(output_dir, table, asset)
+             if before is None or _dt.date.fromisoformat(date) < before]
+    keys = {f"{date}/{path.replace(chr(92), '/').rsplit('/', 1)[-1]}": path for date, path in files}
+    path = summary_path(output_dir, asset, name)
+    loaded = _load_summary(path, schema)
+    pieces: List[pa.Table] = []
+    todo = list(keys)
+    if loaded is not None and loaded[1] <= keys.keys():
+        pieces = [loaded[0]]
+        todo = [k for k in keys if k not in loaded[1]]
+    for key in sorted(todo):
+        with FileSystems.open(keys[key], compression_type=CompressionTypes.UNCOMPRESSED) as handle:
+            read = pq.read_table(handle, columns=None if columns is None else list(columns))
+        pieces = [keep(pa.concat_tables(pieces + [table_writer.conform(read, schema)]))]
+    result = pa.concat_tables(pieces) if pieces else schema.empty_table()
+    result = result.sort_by([(c, "ascending") for c in table_writer.sort_columns(result)])
+    if todo or loaded is None or loaded[1] != keys.keys():
+        _write_summary(path, result, list(keys), provenance or {})
+    return result
+
+
 def last_row_of_each_series(table: pa.Table) -> np.ndarray:
     """Boolean mask of the latest row (by window_start) of each (subject, indicator) in ``table``."""
     mask = np.zeros(table.num_rows, dtype=bool)
@@ -85,6 +191,11 @@ def latest_states(states: pa.Table) -> pa.Table:
     return states.filter(pa.array(last_row_of_each_series(states)))
 
 
+#: name of the read-back summary of the latest state per series
+LATEST_STATE = "latest_state"
+#: name of the read-back summary of the episode evidence
+EPISODE_EVIDENCE = "episode_evidence"
+
 #: the shifts columns the episodes summary is built from
 EPISODE_COLUMNS = ("window_start", "subject", "indicator", "first_alarm", "onset", "state", "direction",
                    "shift_size", "z", "detector", "unit")
@@ -102,17 +213,19 @@ def write_episodes(output_dir: str, config: AssetConfig, run_id: str) -> int:
     """Rewrite ``episodes/asset=NAME/episodes.parquet`` from the asset's whole shifts table.
 
     The summary is derived data: it is rebuilt after every run (written to a temporary name and
-    renamed into place). Returns the number of episodes.
+    renamed into place) from the episode evidence of the whole shifts table, which
+    :func:`summarize_partitions` keeps up to date by reading only the files it has not seen.
+    Returns the number of episodes.
     """
-    evidence = read_partitions(output_dir, "shifts", config.name, tables.SHIFTS, columns=EPISODE_COLUMNS,
-                               keep=episode_evidence)
+    metadata = table_writer.provenance_metadata(config, run_id)
+    evidence = summarize_partitions(output_dir, "shifts", config.name, tables.SHIFTS, episode_evidence,
+                                    EPISODE_EVIDENCE, columns=EPISODE_COLUMNS, provenance=metadata)
     episodes = shift_series.shift_episodes(evidence)
     store = BeamFiles()
     folder = store.join(output_dir, "episodes", f"asset={config.name}")
     store.mkdirs(folder)
     final = store.join(folder, "episodes.parquet")
     temporary = store.join(folder, f"_episodes-{run_id}.tmp")
-    metadata = table_writer.provenance_metadata(config, run_id)
     episodes = episodes.replace_schema_metadata({**(episodes.schema.metadata or {}),
                                                  **{k.encode(): v.encode() for k, v in metadata.items()}})
     with store.create(temporary) as handle:
