@@ -25,7 +25,8 @@ from corrtransforms import archive_plan, tables
 from corrtransforms.beam import LOCAL_RUNNER
 from corrtransforms.beam.archive import window_accounting
 from corrtransforms.beam.monitoring import PROGRESS_LOGGER, MonitorAsset
-from corrtransforms.beam.output_tables import LATEST_STATE, latest_states, summarize_partitions, write_episodes
+from corrtransforms.beam.output_tables import (LATEST_STATE, latest_states, remove_stale_temporary,
+                                               summarize_partitions, write_episodes)
 from corrtransforms import config as config_module
 from corrtransforms.config import AssetConfig, ConfigError, load_config, parse_config
 from corrtransforms.table_writer import provenance_metadata
@@ -62,6 +63,9 @@ class JobOptions(PipelineOptions):
                             help="nightly: the day to process (default: yesterday in the asset's time zone)")
         parser.add_argument("--rebuild_state", action="store_true", default=False,
                             help="nightly: rebuild a missing previous state from the indicators table")
+        parser.add_argument("--stale_temporary_hours", type=float, default=24.0,
+                            help="delete other runs' _temporary folders not written for this many hours "
+                                 "(runs that died); 0 keeps them")
 
 
 BackfillOptions = JobOptions
@@ -104,6 +108,10 @@ def run(options: PipelineOptions, config: AssetConfig, output: str, start: Optio
         end: Optional[_dt.date], run_id: str, initial_states: Any) -> Dict[str, int]:
     """Build, run and summarise one job; rewrites the episodes summary afterwards."""
     _show_progress()
+    stale_hours = options.view_as(JobOptions).stale_temporary_hours
+    for stale_run, age_s in remove_stale_temporary(output, run_id, 3600.0 * stale_hours):
+        print(f"removed the temporary files of run {stale_run} under {output}: last written "
+              f"{age_s / 3600.0:.1f} h ago (a run that did not finish)")
     p = beam.Pipeline(options=options)
     build_pipeline(p, config, output, start, end, run_id, initial_states)
     result = p.run()

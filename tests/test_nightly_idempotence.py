@@ -5,6 +5,7 @@ Invented archive: five minutes of samples at the end of 2024-03-03 and at the st
 and 2024-03-05 (UTC), one file each; 60-s windows.
 """
 import os
+import shutil
 import signal
 import subprocess
 import sys
@@ -108,6 +109,21 @@ def test_a_killed_night_leaves_the_previous_output_and_the_rerun_completes(start
         assert read_table(output, table).num_rows >= 0
     rows = rows_by_key(read_table(output, "correlations"), CORRELATION_KEY)  # raises on a duplicate row
     assert len(per_window(rows)) == 18
+    # the killed run's temporary folder stays while it could belong to a running job ...
+    left = [name for name in os.listdir(temporary)]
+    assert len(left) == 1
+    fresh = os.path.join(temporary, "a-run-still-writing", "shifts")
+    os.makedirs(fresh)
+    open(os.path.join(fresh, "part.parquet.tmp"), "wb").close()
+    # ... and goes once nothing has been written there for longer than --stale_temporary_hours
+    two_days_ago = time.time() - 48 * 3600
+    for folder, _, files in os.walk(os.path.join(temporary, left[0])):
+        for name in files:
+            os.utime(os.path.join(folder, name), (two_days_ago, two_days_ago))
+    nightly.main(["--config", config, "--output", output, "--date", "2024-03-05"])
+    assert sorted(os.listdir(temporary)) == ["a-run-still-writing"]
+    assert _windows_per_day(output) == {"2024-03-03": 5, "2024-03-04": 5, "2024-03-05": 8}
+    shutil.rmtree(temporary)
 
 
 def test_two_nights_at_once_do_not_clobber_each_other(started):

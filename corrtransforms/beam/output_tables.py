@@ -10,8 +10,9 @@ from __future__ import annotations
 import datetime as _dt
 import json
 import re
+import time
 import uuid
-from typing import Callable, List, Mapping, Optional, Sequence
+from typing import Callable, List, Mapping, Optional, Sequence, Tuple
 
 import numpy as np
 import pyarrow as pa
@@ -170,6 +171,64 @@ def summarize_partitions(output_dir: str, table: str, asset: str, schema: pa.Sch
     if todo or loaded is None or loaded[1] != keys.keys():
         _write_summary(path, result, list(keys), provenance or {})
     return result
+
+
+def remove_stale_temporary(output_dir: str, current_run_id: str, older_than_s: float,
+                           now_s: Optional[float] = None) -> List[Tuple[str, float]]:
+    """Delete the ``DIR/_temporary/<run id>/`` folders of runs that stopped writing long ago.
+
+    Parameters
+    ----------
+    output_dir : str
+        The output root (any registered filesystem).
+    current_run_id : str
+        This run's id; its folder is never touched.
+    older_than_s : float
+        A folder whose newest file was last written more than this many seconds ago belongs to a
+        run that died (a running job keeps writing part files); <= 0 removes nothing.
+    now_s : float, optional
+        The current time, seconds since the epoch (default: the clock).
+
+    Returns
+    -------
+    list of (run id, age in seconds)
+        The folders removed.
+
+    Notes
+    -----
+    A killed run leaves its temporary files behind (readers never see them, but they take
+    space). The age comes from the filesystem's modification times of the files below each run
+    folder, so it works on object stores too. A run that is still active writes part files as
+    it goes; one that has written nothing for ``older_than_s`` is taken as dead. The default of
+    the launchers (24 hours) is common practice, not derived: longer than any pause between two
+    part files of a running job.
+    """
+    if not older_than_s > 0:
+        return []
+    root = FileSystems.join(output_dir, table_writer.TEMPORARY)
+    try:
+        matched = FileSystems.match([FileSystems.join(root, "**")])[0].metadata_list
+    except Exception:  # noqa: BLE001 - no temporary folder: nothing to remove
+        return []
+    prefix = root.replace("\\", "/").rstrip("/") + "/"
+    newest: dict = {}
+    for item in matched:
+        path = item.path.replace("\\", "/")
+        if not path.startswith(prefix):
+            continue
+        run = path[len(prefix):].split("/", 1)[0]
+        updated = float(getattr(item, "last_updated_in_seconds", 0.0) or 0.0)
+        newest[run] = max(newest.get(run, 0.0), updated)
+    now_s = time.time() if now_s is None else float(now_s)
+    removed = []
+    store = BeamFiles()
+    for run, updated in sorted(newest.items()):
+        age = now_s - updated
+        if run == current_run_id or not updated or age <= older_than_s:
+            continue
+        store.delete_tree(FileSystems.join(root, run))
+        removed.append((run, age))
+    return removed
 
 
 def last_row_of_each_series(table: pa.Table) -> np.ndarray:
