@@ -8,6 +8,7 @@ compute what they claim.
   median of ``scipy.ndimage.median_filter``;
 - the time scales with a memory limit equal those without it wherever the memory is below the
   limit, and say "too long" wherever it is not;
+- the Huber iterations' median equals numpy's exactly;
 - the plain-script baseline and the floor of benchmarks/run_all.py give the correlation that
   ``scipy.signal.correlate`` gives (the floor's lag sums, the script's coefficients) on a small
   invented archive.
@@ -238,3 +239,13 @@ def test_plain_script_coefficients_and_indicators(one_hour_archive, tmp_path):
     np.testing.assert_allclose(lags, 0.05, atol=1e-12)
     rms = indicators[(indicators.subject == "acc1") & (indicators.indicator == "rms")]["value"].iloc[0]
     assert rms == pytest.approx(np.sqrt((x[:, 0] ** 2).mean()), rel=1e-12)
+
+
+def test_the_huber_iterations_median_equals_numpy_median_exactly():
+    from corrtransforms import covariate_model
+
+    rng = np.random.default_rng(12)
+    for n in (1, 2, 3, 4, 5, 36, 37, 1440):
+        values = np.abs(rng.standard_t(3, size=n))
+        assert covariate_model._median(values) == float(np.median(values))
+        assert covariate_model._median(np.round(values, 1)) == float(np.median(np.round(values, 1)))  # ties
