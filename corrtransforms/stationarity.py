@@ -734,8 +734,8 @@ def screening_memory_limit_s(record_s: float, factor: float = INDEPENDENCE_FACTO
     """Longest memory time at which a record of ``record_s`` seconds can still be screened.
 
     A memory time above ``record_s / (factor * minimum)`` leaves fewer than ``minimum`` segments
-    (:func:`segments_for_record`). :func:`correlation_time_scales` searches one sample beyond
-    it, so a record whose envelope has not decayed by then is certainly not screened.
+    (:func:`segments_for_record`), so :func:`correlation_time_scales` needs no lags beyond
+    three times it (it searches that far, so a memory above the limit is still seen as such).
     """
     return float(record_s) / (float(factor) * int(minimum))
 
@@ -895,12 +895,19 @@ def spectral_lines(power, width: int, threshold: float = LINE_THRESHOLD, reach: 
     m = len(power)
     half = int(width) // 2
     width = 2 * half + 1
-    if m <= width:
-        local = _ndimage.median_filter(power, size=width, mode="mirror")
-        found = power > threshold * np.maximum(local, 1e-300)
+
+    def widened(found):
         if reach and found.any():
-            found = _ndimage.binary_dilation(found, structure=np.ones(2 * reach + 1, dtype=bool))
+            return _ndimage.binary_dilation(found, structure=np.ones(2 * reach + 1, dtype=bool))
+        return found
+
+    def from_full_median():
+        local = _ndimage.median_filter(power, size=width, mode="mirror")
+        found = widened(power > threshold * np.maximum(local, 1e-300))
         return found, local[found]
+
+    if m <= width:
+        return from_full_median()
     padded = np.pad(power, half, mode="reflect")  # numpy "reflect" is ndimage "mirror"
     blocks = -(-m // width)
     # block j holds centres j*width .. j*width + width - 1; their windows span padded[j*width :
@@ -914,19 +921,14 @@ def spectral_lines(power, width: int, threshold: float = LINE_THRESHOLD, reach: 
     candidates = np.flatnonzero(power > threshold * np.maximum(bound_per_bin, 1e-300))
     windows = np.lib.stride_tricks.sliding_window_view(padded, width)
     if len(candidates) > m // 8:
-        local = _ndimage.median_filter(power, size=width, mode="mirror")
-        found = power > threshold * np.maximum(local, 1e-300)
-        if reach and found.any():
-            found = _ndimage.binary_dilation(found, structure=np.ones(2 * reach + 1, dtype=bool))
-        return found, local[found]
+        return from_full_median()
     found = np.zeros(m, dtype=bool)
     if len(candidates):
         median = np.median(windows[candidates], axis=1)
         found[candidates[power[candidates] > threshold * np.maximum(median, 1e-300)]] = True
     if not found.any():
         return found, np.empty(0)
-    if reach:
-        found = _ndimage.binary_dilation(found, structure=np.ones(2 * reach + 1, dtype=bool))
+    found = widened(found)
     return found, np.median(windows[np.flatnonzero(found)], axis=1)
 
 
@@ -1327,7 +1329,7 @@ def screen_window(block, screening_config, pairs=None) -> WindowScreening:
     if valid_rows.all() and finite.all():
         records = values_rows
     else:
-        valid_rows &= finite
+        valid_rows = valid_rows & finite  # a new array: one channel's transpose is a view of the block
         records = np.where(valid_rows, values_rows, 0.0)
     eligible = [name for name in channels if _enough_to_screen(valid_rows[index[name]])]
     rows = [index[name] for name in eligible]

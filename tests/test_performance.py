@@ -249,3 +249,15 @@ def test_the_huber_iterations_median_equals_numpy_median_exactly():
         values = np.abs(rng.standard_t(3, size=n))
         assert covariate_model._median(values) == float(np.median(values))
         assert covariate_model._median(np.round(values, 1)) == float(np.median(np.round(values, 1)))  # ties
+
+
+def test_screening_a_one_channel_window_leaves_the_block_as_it_was():
+    # the transposed rows of a one-channel block are a view of it: screening must not write there
+    x = scipy.signal.lfilter([1.0], [1.0, -0.8], np.random.default_rng(14).standard_normal((6000, 1)), axis=0)
+    x[100] = np.nan
+    block = WindowBlock(asset="a", window_start_us=0, window_length_s=6000 / FS, sample_rate_hz=FS,
+                        channels=("c0",), values=x, valid=np.ones_like(x, dtype=bool))
+    valid_before = block.valid.copy()
+    st.screen_window(block, ScreeningConfig(), None)
+    np.testing.assert_array_equal(block.valid, valid_before)
+    assert np.isnan(block.values[100, 0])
