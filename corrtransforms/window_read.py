@@ -346,13 +346,8 @@ def _channel_checks(grid: np.ndarray, valid: np.ndarray, n_channels: int):
         high, low = columns.max(axis=1), columns.min(axis=1)
         at_high = np.count_nonzero(columns == high[:, None], axis=1)
         at_low = np.count_nonzero(columns == low[:, None], axis=1)
-        checks = []
-        for c in range(n_channels):
-            # a flat column has high == low: the fraction is not used then
-            extremes = (at_high[c] if at_high[c] >= MIN_CLIP_REPEATS else 0) + \
-                (at_low[c] if at_low[c] >= MIN_CLIP_REPEATS else 0)
-            checks.append((1.0, size, float(high[c]), float(low[c]), extremes / size))
-        return checks
+        return [(1.0, size, float(high[c]), float(low[c]), _extreme_fraction(at_high[c], at_low[c], size))
+                for c in range(n_channels)]
     checks = []
     for c in range(n_channels):
         column = grid[valid[:, c], c]
@@ -367,12 +362,14 @@ def _channel_checks(grid: np.ndarray, valid: np.ndarray, n_channels: int):
 def _clip_fraction(column: np.ndarray) -> float:
     if column.size == 0:
         return 0.0
-    at_extremes = 0
-    for extreme in (column.max(), column.min()):
-        n = int(np.count_nonzero(column == extreme))
-        if n >= MIN_CLIP_REPEATS:
-            at_extremes += n
-    return at_extremes / column.size
+    return _extreme_fraction(int(np.count_nonzero(column == column.max())),
+                             int(np.count_nonzero(column == column.min())), column.size)
+
+
+def _extreme_fraction(at_high: int, at_low: int, size: int) -> float:
+    """Fraction of samples at the maximum or minimum, counting an extreme only when it repeats
+    (a flat column has both at once; it is rejected before the fraction is used)."""
+    return ((at_high if at_high >= MIN_CLIP_REPEATS else 0) + (at_low if at_low >= MIN_CLIP_REPEATS else 0)) / size
 
 
 def _window(task: ReadTask, data: _TaskData, config: AssetConfig, start_us: int) -> List[Union[WindowBlock, Reject]]:
