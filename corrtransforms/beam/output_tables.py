@@ -51,12 +51,25 @@ def read_partitions(output_dir: str, table: str, asset: str, schema: pa.Schema,
     applied to what has been kept so far plus the new file), so memory holds what the caller
     needs, not the whole history. Every file is still opened: the I/O grows with the history.
     """
-    if columns is not None:
-        schema = pa.schema([schema.field(name) for name in columns])
-    pieces = []
-    for date, path in partition_files(output_dir, table, asset):
-        if before is not None and _dt.date.fromisoformat(date) >= before:
-            continue
+    schema = _selected(schema, columns)
+    paths = [path for date, path in _partitions_before(output_dir, table, asset, before)]
+    return _fold_files(paths, schema, columns, keep, [])
+
+
+def _selected(schema: pa.Schema, columns: Optional[Sequence[str]]) -> pa.Schema:
+    return schema if columns is None else pa.schema([schema.field(name) for name in columns])
+
+
+def _partitions_before(output_dir: str, table: str, asset: str, before: Optional[_dt.date]) -> List[tuple]:
+    return [(date, path) for date, path in partition_files(output_dir, table, asset)
+            if before is None or _dt.date.fromisoformat(date) < before]
+
+
+def _fold_files(paths: Sequence[str], schema: pa.Schema, columns: Optional[Sequence[str]],
+                keep: Optional[Callable[[pa.Table], pa.Table]], pieces: List[pa.Table]) -> pa.Table:
+    """Read ``paths`` in order onto ``pieces``, reducing with ``keep`` after each file if given."""
+    pieces = list(pieces)
+    for path in paths:
         with FileSystems.open(path, compression_type=CompressionTypes.UNCOMPRESSED) as handle:
             read = pq.read_table(handle, columns=None if columns is None else list(columns))
         piece = table_writer.conform(read, schema)
@@ -64,9 +77,7 @@ def read_partitions(output_dir: str, table: str, asset: str, schema: pa.Schema,
             pieces.append(piece)
         else:
             pieces = [keep(pa.concat_tables(pieces + [piece]))]
-    if not pieces:
-        return schema.empty_table()
-    return pa.concat_tables(pieces)
+    return pa.concat_tables(pieces) if pieces else schema.empty_table()
 
 
 #: folder of the read-back summaries under the output root (derived data, safe to delete)
@@ -150,10 +161,8 @@ def summarize_partitions(output_dir: str, table: str, asset: str, schema: pa.Sch
     rename). A nightly run thus opens one summary and one day's files, not the whole history;
     the listing itself is one ``match`` of the table's partitions.
     """
-    if columns is not None:
-        schema = pa.schema([schema.field(c) for c in columns])
-    files = [(date, path) for date, path in partition_files(output_dir, table, asset)
-             if before is None or _dt.date.fromisoformat(date) < before]
+    schema = _selected(schema, columns)
+    files = _partitions_before(output_dir, table, asset, before)
     keys = {f"{date}/{path.replace(chr(92), '/').rsplit('/', 1)[-1]}": path for date, path in files}
     path = summary_path(output_dir, asset, name)
     loaded = _load_summary(path, schema)
@@ -162,11 +171,7 @@ def summarize_partitions(output_dir: str, table: str, asset: str, schema: pa.Sch
     if loaded is not None and loaded[1] <= keys.keys():
         pieces = [loaded[0]]
         todo = [k for k in keys if k not in loaded[1]]
-    for key in sorted(todo):
-        with FileSystems.open(keys[key], compression_type=CompressionTypes.UNCOMPRESSED) as handle:
-            read = pq.read_table(handle, columns=None if columns is None else list(columns))
-        pieces = [keep(pa.concat_tables(pieces + [table_writer.conform(read, schema)]))]
-    result = pa.concat_tables(pieces) if pieces else schema.empty_table()
+    result = _fold_files([keys[k] for k in sorted(todo)], schema, columns, keep, pieces)
     result = result.sort_by([(c, "ascending") for c in table_writer.sort_columns(result)])
     if todo or loaded is None or loaded[1] != keys.keys():
         _write_summary(path, result, list(keys), provenance or {})
