@@ -398,14 +398,19 @@ def _row_arrays(rows, count: int, length: Optional[int], what: str, clean: bool 
     return out
 
 
+def _interior_rows(center: np.ndarray, n: int) -> Tuple[np.ndarray, np.ndarray]:
+    """Rows whose ``center +/- INTERPOLATION_HALF_WIDTH`` lies inside ``0..n-1`` (batched with one
+    kernel shape) and the others (interpolated one by one, with the truncated series)."""
+    interior = (center - INTERPOLATION_HALF_WIDTH >= 0) & (center + INTERPOLATION_HALF_WIDTH + 1 <= n)
+    return np.nonzero(interior)[0], np.nonzero(~interior)[0]
+
+
 def _refine_peaks(located_clean: np.ndarray, located: np.ndarray, peak_index: np.ndarray):
     """:func:`refine_peak` positions of every row (interior rows batched, rows near the ends
     one by one); ``located_clean`` is ``nan_to_num(located)``."""
     count, n = located_clean.shape
-    half_width = INTERPOLATION_HALF_WIDTH
     position = np.empty(count)
-    interior = (peak_index - half_width >= 0) & (peak_index + half_width + 1 <= n)
-    rows = np.nonzero(interior)[0]
+    rows, edge_rows = _interior_rows(peak_index, n)
     if len(rows):
         k = peak_index[rows]
         samples = located_clean[rows[:, None], k[:, None] + _WINDOW_OFFSETS[None, :]]
@@ -421,7 +426,7 @@ def _refine_peaks(located_clean: np.ndarray, located: np.ndarray, peak_index: np
             offset = np.where(denom < 0, 0.5 * (y0 - y2) / denom, 0.0)
         grid = k + _FINE_OFFSETS[m]
         position[rows] = grid + offset / UPSAMPLE
-    for row in np.nonzero(~interior)[0]:
+    for row in edge_rows:
         position[row] = refine_peak(located[row], int(peak_index[row]))[0]
     return position
 
@@ -430,16 +435,14 @@ def _interpolate_at(values_clean: np.ndarray, values: np.ndarray, position: np.n
                     center: np.ndarray) -> np.ndarray:
     """:func:`sinc_interpolate` of every row at its one ``position`` around ``center``."""
     count, n = values_clean.shape
-    half_width = INTERPOLATION_HALF_WIDTH
     out = np.empty(count)
-    interior = (center - half_width >= 0) & (center + half_width + 1 <= n)
-    rows = np.nonzero(interior)[0]
+    rows, edge_rows = _interior_rows(center, n)
     if len(rows):
         j = center[rows, None] + _WINDOW_OFFSETS[None, :]
         kernel = np.sinc(position[rows, None] - j)
         samples = values_clean[rows[:, None], j]
         out[rows] = np.matmul(kernel[:, None, :], samples[:, :, None])[:, 0, 0]
-    for row in np.nonzero(~interior)[0]:
+    for row in edge_rows:
         out[row] = sinc_interpolate(values[row], [position[row]], int(center[row]))[0]
     return out
 
