@@ -92,6 +92,15 @@ class _ObjectUploader(Uploader):
         put(self._path, b"".join(self._parts))
 
 
+def _compressed(raw, path, compression_type):
+    """``raw`` as it is, or wrapped for the compression the path or caller asks for (as Beam's
+    own filesystems do)."""
+    compression_type = FileSystem._get_compression_type(path, compression_type)
+    if compression_type == CompressionTypes.UNCOMPRESSED:
+        return raw
+    return CompressedFile(raw, compression_type=compression_type)
+
+
 class MemoryFileSystem(FileSystem):
     """Beam FileSystem of scheme ``memfs``: an object store held in this process."""
 
@@ -129,18 +138,12 @@ class MemoryFileSystem(FileSystem):
     def create(self, path, mime_type="application/octet-stream", compression_type=CompressionTypes.AUTO):
         _log("create", path)
         raw = io.BufferedWriter(UploaderStream(_ObjectUploader(path)), buffer_size=128 * 1024)
-        compression_type = FileSystem._get_compression_type(path, compression_type)
-        if compression_type == CompressionTypes.UNCOMPRESSED:
-            return raw
-        return CompressedFile(raw, compression_type=compression_type)
+        return _compressed(raw, path, compression_type)
 
     def open(self, path, mime_type="application/octet-stream", compression_type=CompressionTypes.AUTO):
         _log("open", path)
         raw = io.BufferedReader(DownloaderStream(_ObjectDownloader(path)), buffer_size=64 * 1024)
-        compression_type = FileSystem._get_compression_type(path, compression_type)
-        if compression_type == CompressionTypes.UNCOMPRESSED:
-            return raw
-        return CompressedFile(raw, compression_type=compression_type)
+        return _compressed(raw, path, compression_type)
 
     def copy(self, source_file_names, destination_file_names):
         errors = {}
