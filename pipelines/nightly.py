@@ -19,12 +19,10 @@ import zoneinfo
 from typing import Dict, List, Optional
 
 from corrtransforms import tables
-from corrtransforms.beam.output_tables import (LATEST_STATE, latest_states, partition_files, read_partitions,
-                                               summarize_partitions)
+from corrtransforms.beam.output_tables import partition_files, read_partitions
 from corrtransforms.config import AssetConfig
-from corrtransforms.table_writer import provenance_metadata
 from corrtransforms.state_replay import replay_states
-from pipelines.backfill import JobOptions, as_date, new_run_id, parse_options, run
+from pipelines.backfill import JobOptions, as_date, earlier_states, new_run_id, parse_options, run
 
 #: exit status when the previous day's state is missing
 MISSING_STATE = 2
@@ -38,9 +36,8 @@ def yesterday(config: AssetConfig, now: Optional[_dt.datetime] = None) -> _dt.da
 
 def previous_states(output: str, config: AssetConfig, day: _dt.date, rebuild: bool, run_id: str = ""):
     """The state table to resume ``day`` from, or SystemExit(2) when there is none."""
-    states = summarize_partitions(output, "state", config.name, tables.STATE, latest_states, LATEST_STATE,
-                                  before=day, provenance=provenance_metadata(config, run_id))
-    if states.num_rows:
+    states = earlier_states(output, config, day, run_id)
+    if states is not None:
         return states
     earlier_indicators = [d for d, _ in partition_files(output, "indicators", config.name) if d < day.isoformat()]
     if not rebuild:
