@@ -21,9 +21,9 @@ import numpy as np
 import scipy.signal
 
 from corrtransforms.config import parse_config
-from corrtransforms.correlation import correlate_block
-from corrtransforms.window_block import WindowBlock
-from corrtransforms.window_correlation import correlate_window
+from corrtransforms.numerics.correlation import correlate_block
+from corrtransforms.records import WindowBlock
+from corrtransforms.stages.correlate import correlate_window
 
 FS, MINUTES, CHANNELS, MAX_LAG_S = 100.0, 10, 8, 10.0
 

@@ -23,11 +23,11 @@ import numpy as np
 from scipy import signal
 
 from benchmarks.bench_correlation import _interleaved_best
-from corrtransforms import indicators
+from corrtransforms.stages import indicators
 from corrtransforms.config import parse_config
-from corrtransforms.time_delay import estimate_lag, estimate_lags
-from corrtransforms.window_block import WindowBlock
-from corrtransforms.window_correlation import correlate_window
+from corrtransforms.numerics.time_delay import estimate_lag, estimate_lags
+from corrtransforms.records import WindowBlock
+from corrtransforms.stages.correlate import correlate_window
 
 FS, WINDOW_S, MAX_LAG_S = 100.0, 600.0, 10.0
 CHANNELS = tuple(f"acc{i}" for i in range(1, 9))

@@ -6,7 +6,7 @@ Read tasks are the unit of parallelism of the job: planning groups consecutive w
 of at most ``[reading] task_bytes`` of decoded samples, and only task descriptions travel through
 the Reshuffle. This script
 
-1. counts the tasks the real planner (:func:`corrtransforms.archive_plan.plan_reads`) makes for
+1. counts the tasks the real planner (:func:`corrtransforms.stages.plan.plan_reads`) makes for
    - the benchmark archive of ``bench_archive_memory`` (8 channels and a temperature covariate at
      100 Hz, hourly files of 4 row groups, 10-minute windows), 1 day and 30 days, and
    - the demo archive (35 days, a 10-minute 25 Hz record every 2 hours, 2 row groups per file),
@@ -34,7 +34,9 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from corrtransforms import archive_plan, window_read
+from corrtransforms.stages import plan as archive_plan
+
+from corrtransforms.stages import read as window_read
 from corrtransforms.config import ReadingConfig, parse_config
 
 MIB = 2**20

@@ -1,5 +1,5 @@
 """Speed of shift detection: the vectorised detectors against a plain Python recursion, and one
-series' throughput through :func:`corrtransforms.shift_series.detect_shifts`.
+series' throughput through :func:`corrtransforms.stages.shifts.detect_shifts`.
 
 Cases (invented data):
 
@@ -17,7 +17,9 @@ import time
 
 import numpy as np
 
-from corrtransforms import detectors, shift_series
+from corrtransforms.numerics import detectors
+
+from corrtransforms.stages import shifts as shift_series
 from corrtransforms.config import parse_config
 
 

@@ -13,7 +13,7 @@ import time
 import numpy as np
 from scipy import signal
 
-from corrtransforms import stationarity as st
+from corrtransforms.stages import screen as st
 
 FS = 20.0
 N = int(600 * FS)

@@ -1,5 +1,7 @@
-"""In-memory records passed between stages (after reading): small, picklable, array-valued.
+"""In-memory records passed between stages: small, picklable, array-valued.
 
+- :class:`WindowBlock`: one window of samples on the nominal grid, what the read stage yields
+  per planned window and the screen and correlate stages take.
 - :class:`PairCorrelation`: one channel pair's correlation estimate in one window, with its
   record-length error metadata; one row of the correlations table.
 - :class:`ModeCorrelation`: the band-limited auto-correlation of a configured mode's channel,
@@ -32,6 +34,56 @@ def quality_codes(text) -> Tuple[str, ...]:
     if not text or text == OK:
         return ()
     return tuple(c for c in str(text).split(";") if c)
+
+
+@dataclasses.dataclass(frozen=True)
+class WindowBlock:
+    """One window of samples on the nominal sample grid.
+
+    Attributes
+    ----------
+    asset : str
+        Name of the monitored asset (``[asset] name``).
+    window_start_us : int
+        Window start, microseconds since the epoch (UTC); windows align to the epoch.
+    window_length_s : float
+        Nominal window length in seconds (``[windows] length_s``).
+    sample_rate_hz : float
+        Nominal sample rate; sample ``i`` is at ``window_start + i / sample_rate_hz``.
+    channels : tuple of str
+        Channel names, in column order of ``values``.
+    values : ndarray, shape (n_samples, n_channels), float64
+        Samples. Entries where ``valid`` is False hold 0.0 and carry no information.
+    valid : ndarray, shape (n_samples, n_channels), bool
+        True where a finite sample was read at that grid point.
+    covariates : mapping of str to float
+        Window mean of each covariate channel (NaN when the window holds none of it).
+    channel_quality : mapping of str to tuple of str
+        Quality codes per channel found while reading (for example ``"clipped"``).
+    sources : tuple of str
+        The archive files the window was read from (for provenance and rejects).
+    """
+
+    asset: str
+    window_start_us: int
+    window_length_s: float
+    sample_rate_hz: float
+    channels: Tuple[str, ...]
+    values: np.ndarray
+    valid: np.ndarray
+    covariates: Mapping[str, float] = dataclasses.field(default_factory=dict)
+    channel_quality: Mapping[str, Tuple[str, ...]] = dataclasses.field(default_factory=dict)
+    sources: Tuple[str, ...] = ()
+
+    @property
+    def n_samples(self) -> int:
+        return int(self.values.shape[0])
+
+    def coverage(self) -> np.ndarray:
+        """Fraction of valid samples per channel, shape (n_channels,)."""
+        if self.n_samples == 0:
+            return np.zeros(len(self.channels))
+        return self.valid.mean(axis=0)
 
 
 @dataclasses.dataclass

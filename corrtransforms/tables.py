@@ -62,7 +62,7 @@ REJECTS = pa.schema([
 
 ALL_TABLES = ("correlations", "indicators", "shifts", "rejects", "state")
 
-# Shift detection (corrtransforms.shift_series): one SHIFTS row per monitored indicator row,
+# Shift detection (corrtransforms.stages.shifts): one SHIFTS row per monitored indicator row,
 # one STATE row per (subject, indicator) and local day, EPISODES summarises alarm episodes.
 SHIFTS = pa.schema([
     _f("window_start", TIMESTAMP, "", "window start", nullable=False),

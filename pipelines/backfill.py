@@ -21,15 +21,17 @@ from apache_beam.io.filesystem import CompressionTypes
 from apache_beam.io.filesystems import FileSystems
 from apache_beam.options.pipeline_options import PipelineOptions, StandardOptions
 
-from corrtransforms import archive_plan, tables
+from corrtransforms import tables
+
+from corrtransforms.stages import plan as archive_plan
 from corrtransforms.beam import LOCAL_RUNNER
-from corrtransforms.beam.archive import window_accounting
-from corrtransforms.beam.monitoring import PROGRESS_LOGGER, MonitorAsset
+from corrtransforms.beam.metrics import window_accounting
+from corrtransforms.beam.monitor import PROGRESS_LOGGER, MonitorAsset
 from corrtransforms.beam.output_tables import (LATEST_STATE, latest_states, remove_stale_temporary,
                                                summarize_partitions, write_episodes)
 from corrtransforms import config as config_module
 from corrtransforms.config import AssetConfig, ConfigError, load_config, parse_config
-from corrtransforms.table_writer import provenance_metadata
+from corrtransforms.stages.write import provenance_metadata
 
 
 def _date(text: str) -> str:

@@ -21,7 +21,7 @@ from typing import Dict, List, Optional
 from corrtransforms import tables
 from corrtransforms.beam.output_tables import partition_files, read_partitions
 from corrtransforms.config import AssetConfig
-from corrtransforms.state_replay import replay_states
+from corrtransforms.stages.state import replay_states
 from pipelines.backfill import JobOptions, as_date, earlier_states, new_run_id, parse_options, run
 
 #: exit status when the previous day's state is missing

@@ -12,8 +12,8 @@ from __future__ import annotations
 import numpy as np
 import scipy.linalg
 
-from corrtransforms.correlation import correlate_block
-from corrtransforms.record_error import bartlett_stderr
+from corrtransforms.numerics.correlation import correlate_block
+from corrtransforms.numerics.random_error import bartlett_stderr
 
 
 def sdof_correlation(lags_s, freq_hz, damping):

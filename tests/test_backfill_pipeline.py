@@ -11,11 +11,11 @@ import pyarrow as pa
 import pyarrow.dataset as ds
 import pytest
 
-from corrtransforms.archive_plan import list_local_archive, plan_archive
+from corrtransforms.stages.plan import list_local_archive, plan_archive
 from corrtransforms.config import load_config
-from corrtransforms.window_analysis import analyse_window
-from corrtransforms.window_correlation import correlation_table
-from corrtransforms.window_read import read_task
+from corrtransforms.stages.analyse import analyse_window
+from corrtransforms.stages.correlate import correlation_table
+from corrtransforms.stages.read import read_task
 from pipelines import backfill
 from tests.archive_data import T0, US, bad_wide_archive, long_table, samples, wide_table, write_files
 

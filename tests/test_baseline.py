@@ -7,7 +7,9 @@ import pytest
 import statsmodels.api as sm
 from scipy import stats
 
-from corrtransforms import baseline, covariate_model
+from corrtransforms.numerics import robust as baseline
+
+from corrtransforms.numerics import covariate_model
 from corrtransforms.config import BaselineConfig
 
 

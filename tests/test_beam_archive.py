@@ -11,12 +11,12 @@ import pytest
 from apache_beam.testing.test_pipeline import TestPipeline
 from apache_beam.testing.util import assert_that, equal_to
 
-from corrtransforms.archive_plan import list_local_archive, plan_archive
+from corrtransforms.stages.plan import list_local_archive, plan_archive
 from corrtransforms.beam import LOCAL_RUNNER, CorrelateWindows, PlanReads, ReadWindows, WriteTables, window_accounting
 from corrtransforms.rejects import Reject
-from corrtransforms.window_block import WindowBlock
-from corrtransforms.window_analysis import analyse_window
-from corrtransforms.window_read import read_task
+from corrtransforms.records import WindowBlock
+from corrtransforms.stages.analyse import analyse_window
+from corrtransforms.stages.read import read_task
 from tests.archive_data import T0, US, bad_wide_archive, make_config, samples, wide_table, write_files
 
 

@@ -6,10 +6,10 @@ from apache_beam.testing.test_pipeline import TestPipeline as BeamTestPipeline
 from apache_beam.testing.util import BeamAssertException, assert_that
 import apache_beam as beam
 
-from corrtransforms import shift_series
-from corrtransforms.beam.archive import LOCAL_RUNNER
+from corrtransforms.stages import shifts as shift_series
+from corrtransforms.beam import LOCAL_RUNNER
 from corrtransforms.beam.shifts import DetectShifts
-from corrtransforms.baseline import local_days
+from corrtransforms.numerics.robust import local_days
 from tests.shift_fixtures import TIMEZONE, indicator_rows, make_config, same, seasonal_series
 
 DAYS = 4

@@ -5,7 +5,7 @@ import pytest
 import scipy.signal
 from scipy.signal import correlation_lags
 
-from corrtransforms.correlation import (DEFAULT_MIN_PAIRS, channel_spectra, correlate_block,
+from corrtransforms.numerics.correlation import (DEFAULT_MIN_PAIRS, channel_spectra, correlate_block,
                                         correlate_spectra, resolve_pairs)
 
 

@@ -12,7 +12,7 @@ import shutil
 import pyarrow.parquet as pq
 import pytest
 
-from corrtransforms.beam.archive import BeamFiles
+from corrtransforms.beam.filesystems import BeamFiles
 from corrtransforms.config import ConfigError
 from pipelines import backfill, nightly
 from tests import demo_fixtures, memory_filesystem

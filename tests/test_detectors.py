@@ -19,7 +19,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from corrtransforms import detectors
+from corrtransforms.numerics import detectors
 
 # --------------------------------------------------------------------------------------------
 # Detector statistics against their definitions

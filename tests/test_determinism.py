@@ -13,7 +13,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from corrtransforms.table_writer import META_PREFIX
+from corrtransforms.stages.write import META_PREFIX
 from pipelines import backfill
 from tests.archive_data import bad_wide_archive
 from tests.reliability_data import canonical, write_config

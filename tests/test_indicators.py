@@ -13,10 +13,10 @@ from apache_beam.testing.util import assert_that, equal_to
 from corrtransforms import tables
 from corrtransforms.beam.indicators import ComputeIndicators
 from corrtransforms.config import parse_config
-from corrtransforms.indicators import (IndicatorError, indicator_table, window_indicators,
+from corrtransforms.stages.indicators import (IndicatorError, indicator_table, window_indicators,
                                        window_indicators_and_failures)
-from corrtransforms.window_block import WindowBlock
-from corrtransforms.window_correlation import correlate_window
+from corrtransforms.records import WindowBlock
+from corrtransforms.stages.correlate import correlate_window
 from tests.indicator_fixtures import simulate_sdof
 
 FS = 50.0

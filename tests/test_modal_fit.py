@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 import scipy.optimize
 
-from corrtransforms.modal_fit import decaying_cosine, fit_decaying_cosine, fit_mode
+from corrtransforms.numerics.modal_fit import decaying_cosine, fit_decaying_cosine, fit_mode
 from tests.indicator_fixtures import (auto_record, modal_state_space, sdof_correlation,
                                       simulate_sdof, simulate_state_space)
 
@@ -104,8 +104,8 @@ def test_correlated_meat_equals_the_dense_bartlett_quadratic_form(start, count):
     # n cov[r_i, r_j] = sum_v rho_v rho_{v+j-i} + rho_{v+j} rho_{v-i} - 2 rho_i rho_v rho_{v-j}
     #                   - 2 rho_j rho_v rho_{v-i} + 2 rho_i rho_j rho_v^2, summed here with
     # numpy.correlate over the even extension, as a dense matrix
-    from corrtransforms.modal_fit import _correlated_meat
-    from corrtransforms.timescales import MAX_COVARIANCE_LAGS
+    from corrtransforms.numerics.modal_fit import _correlated_meat
+    from corrtransforms.numerics.timescales import MAX_COVARIANCE_LAGS
     rng = np.random.default_rng(4)
     L = 3000
     model = decaying_cosine(np.arange(L + 1) / FS, 1.0, 2.0, 0.01, -0.01)

@@ -123,7 +123,8 @@ def test_yesterday_is_taken_in_the_assets_time_zone(site):
 def test_episodes_from_the_reduced_shifts_equal_those_from_the_whole_table(site):
     # the launcher reads only shifted rows and each series' latest row per file; the summary
     # must be exactly the one built from every row
-    from corrtransforms import shift_series, tables
+    from corrtransforms import tables
+    from corrtransforms.stages import shifts as shift_series
     from corrtransforms.beam.output_tables import episode_evidence, read_partitions
 
     _, config, full = site
@@ -158,7 +159,7 @@ def test_nights_update_the_episodes_as_one_backfill_writes_them(site):
 
 
 def _sorted_rows(table):
-    from corrtransforms import table_writer
+    from corrtransforms.stages import write as table_writer
 
     rows = table.sort_by([(c, "ascending") for c in table_writer.sort_columns(table)]).to_pylist()
     return [{k: ("NaN" if isinstance(v, float) and v != v else v) for k, v in row.items()} for row in rows]

@@ -25,9 +25,11 @@ VERSION = corrtransforms.__version__
 COPIED = ("setup.cfg", "setup.py", "pyproject.toml", "README.md", "MANIFEST.in", "requirements-worker.txt",
           "corrtransforms", "pipelines", "demo_data", "docs")
 #: modules a worker imports (the Beam layer and everything it reaches), and the demo's files
-REQUIRED = ("corrtransforms/__init__.py", "corrtransforms/config.py", "corrtransforms/archive_plan.py",
-            "corrtransforms/window_read.py", "corrtransforms/table_writer.py",
-            "corrtransforms/beam/__init__.py", "corrtransforms/beam/archive.py", "corrtransforms/beam/monitoring.py",
+REQUIRED = ("corrtransforms/__init__.py", "corrtransforms/config.py", "corrtransforms/stages/plan.py",
+            "corrtransforms/stages/read.py", "corrtransforms/stages/write.py",
+            "corrtransforms/beam/__init__.py", "corrtransforms/beam/plan.py", "corrtransforms/beam/read.py",
+            "corrtransforms/beam/correlate.py", "corrtransforms/beam/write.py", "corrtransforms/beam/filesystems.py",
+            "corrtransforms/beam/metrics.py", "corrtransforms/beam/monitor.py",
             "corrtransforms/beam/shifts.py", "corrtransforms/beam/indicators.py",
             "corrtransforms/beam/output_tables.py",
             "pipelines/__init__.py", "pipelines/backfill.py", "pipelines/nightly.py", "pipelines/report.py",
@@ -123,7 +125,7 @@ def test_the_wheel_runs_on_its_own(built, tmp_path):
     script = f"""
 import sys
 sys.path.insert(0, {str(wheel)!r})
-import corrtransforms, corrtransforms.beam.monitoring, pipelines.backfill, pipelines.nightly, demo_data.generate
+import corrtransforms, corrtransforms.beam.monitor, pipelines.backfill, pipelines.nightly, demo_data.generate
 for module in (corrtransforms, pipelines.backfill, demo_data.generate):
     assert module.__file__.startswith({str(wheel)!r}), module.__file__
 from corrtransforms.config import parse_config

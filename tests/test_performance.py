@@ -22,9 +22,9 @@ import pyarrow.parquet as pq
 import pytest
 import scipy.signal
 
-from corrtransforms import stationarity as st
+from corrtransforms.stages import screen as st
 from corrtransforms.config import ScreeningConfig
-from corrtransforms.window_block import WindowBlock
+from corrtransforms.records import WindowBlock
 
 FS = 50.0
 
@@ -242,7 +242,7 @@ def test_plain_script_coefficients_and_indicators(one_hour_archive, tmp_path):
 
 
 def test_the_huber_iterations_median_equals_numpy_median_exactly():
-    from corrtransforms import covariate_model
+    from corrtransforms.numerics import covariate_model
 
     rng = np.random.default_rng(12)
     for n in (1, 2, 3, 4, 5, 36, 37, 1440):

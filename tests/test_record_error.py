@@ -11,8 +11,8 @@ from hypothesis.extra.numpy import arrays
 from scipy.signal import lfilter
 from statsmodels.tsa.stattools import acf, ccf
 
-from corrtransforms import record_error as err
-from corrtransforms.correlation import channel_spectra, correlate_block, correlate_spectra
+from corrtransforms.numerics import random_error as err
+from corrtransforms.numerics.correlation import channel_spectra, correlate_block, correlate_spectra
 
 
 # ------------------------------------------------------------------------------------------

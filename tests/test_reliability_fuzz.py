@@ -21,10 +21,10 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from corrtransforms.archive_plan import list_local_archive, plan_archive
+from corrtransforms.stages.plan import list_local_archive, plan_archive
 from corrtransforms.config import load_config
-from corrtransforms.window_analysis import analyse_window
-from corrtransforms.window_read import read_task
+from corrtransforms.stages.analyse import analyse_window
+from corrtransforms.stages.read import read_task
 from tests.reliability_data import (CORRELATION_KEY, INDICATOR_KEY, canonical, clean_columns, per_window,
                                     read_table, reject_rows, rows_by_key, run_backfill, windows_with_findings,
                                     write_clean_archive, write_config)

@@ -9,8 +9,12 @@ import pyarrow.parquet as pq
 import pytest
 import statsmodels.api as sm
 
-from corrtransforms import detectors, shift_series, tables
-from corrtransforms.baseline import local_days
+from corrtransforms import tables
+
+from corrtransforms.numerics import detectors
+
+from corrtransforms.stages import shifts as shift_series
+from corrtransforms.numerics.robust import local_days
 from tests.shift_fixtures import (HOUR_US, TIMEZONE, assert_tables_identical, indicator_rows, make_config,
                                   same, seasonal_series)
 

@@ -7,11 +7,11 @@ import numpy as np
 import pytest
 from scipy import signal, stats
 
-from corrtransforms import stationarity as st
-from corrtransforms.baseline import summarize_baseline
+from corrtransforms.stages import screen as st
+from corrtransforms.numerics.robust import summarize_baseline
 from corrtransforms.config import ScreeningConfig
 from corrtransforms.rejects import WHOLE_WINDOW
-from corrtransforms.window_block import WindowBlock
+from corrtransforms.records import WindowBlock
 
 FS = 20.0                 # small sample rate so Monte-Carlo runs in seconds
 N = int(600 * FS)         # default 10-minute window

@@ -12,7 +12,7 @@ import pytest
 import corrtransforms
 from corrtransforms import tables
 from corrtransforms.rejects import Reject
-from corrtransforms.table_writer import (LocalFiles, commit_partition, part_file_name, provenance_metadata,
+from corrtransforms.stages.write import (LocalFiles, commit_partition, part_file_name, provenance_metadata,
                                          rejects_table, write_part, write_tables)
 from tests.archive_data import T0, US, make_config
 

@@ -3,9 +3,9 @@ and the scatter across windows, PHAT against plain correlation on a narrow-band 
 import numpy as np
 import pytest
 
-from corrtransforms.correlation import correlate_block
-from corrtransforms.record_error import bartlett_stderr
-from corrtransforms.time_delay import estimate_lag, refine_peak
+from corrtransforms.numerics.correlation import correlate_block
+from corrtransforms.numerics.random_error import bartlett_stderr
+from corrtransforms.numerics.time_delay import estimate_lag, refine_peak
 from tests.indicator_fixtures import simulate_sdof
 
 FS = 100.0
@@ -151,7 +151,7 @@ def _lag_variance_full_spectrum(rho, peak_index, dt, record_s, auto_a, auto_b, w
 def test_lag_variance_on_real_transforms_equals_the_full_complex_spectrum_sum(weighting):
     # the rfft form counts the bins strictly between 0 and Nyquist twice: the spectra of real
     # sequences are Hermitian, so the sums over all bins of numpy's complex FFT are the same
-    from corrtransforms.time_delay import lag_variance
+    from corrtransforms.numerics.time_delay import lag_variance
     rng = np.random.default_rng(11)
     n, L, dt = 6000, 300, 0.01
     a = np.convolve(rng.normal(size=n + 50), np.hanning(9), "same")[:n]
@@ -179,7 +179,7 @@ def test_lag_variance_on_real_transforms_equals_the_full_complex_spectrum_sum(we
 
 def _invented_pairs(weighting):
     """Rows on one lag grid (+/- 2 s at 100 Hz) covering the cases of the batched path."""
-    from corrtransforms.time_delay import INTERPOLATION_HALF_WIDTH
+    from corrtransforms.numerics.time_delay import INTERPOLATION_HALF_WIDTH
     rng = np.random.default_rng(21)
     n, max_lag_s = 6000, 2.0
     source = _flat_band_pair(rng, n, 20.0, 0.0, 1e6)[:, 0]
@@ -233,7 +233,7 @@ def _compare(batched, per_pair):
 @pytest.mark.parametrize("weighting", ["phat", "scot"])
 @pytest.mark.parametrize("max_lag_s", [None, 1.5])
 def test_batched_lags_equal_the_per_pair_estimates(weighting, max_lag_s):
-    from corrtransforms.time_delay import estimate_lags
+    from corrtransforms.numerics.time_delay import estimate_lags
     rows, first_lag_s, dt, record_s = _invented_pairs(weighting)
     record = [record_s * (1 - 0.01 * i) for i in range(len(rows))]
     per_pair = [estimate_lag(r["rho"], r["se"], first_lag_s, dt, record[i], weighted_coefficient=r["weighted"],
@@ -260,7 +260,7 @@ def test_batched_lags_equal_the_per_pair_estimates(weighting, max_lag_s):
 
 
 def test_batched_lags_plain_weighting_and_too_few_lags():
-    from corrtransforms.time_delay import estimate_lags
+    from corrtransforms.numerics.time_delay import estimate_lags
     rows, first_lag_s, dt, record_s = _invented_pairs("phat")
     rho, se = np.array([r["rho"] for r in rows]), np.array([r["se"] for r in rows])
     per_pair = [estimate_lag(r["rho"], r["se"], first_lag_s, dt, record_s, auto_a=r["auto_a"], auto_b=r["auto_b"])
@@ -272,7 +272,7 @@ def test_batched_lags_plain_weighting_and_too_few_lags():
 
 
 def test_batched_lags_reject_malformed_input():
-    from corrtransforms.time_delay import estimate_lags
+    from corrtransforms.numerics.time_delay import estimate_lags
     rows, first_lag_s, dt, record_s = _invented_pairs("phat")
     rho = np.array([r["rho"] for r in rows[:3]])
     with pytest.raises(ValueError, match="equal shape"):
@@ -291,8 +291,8 @@ def test_batched_lags_reject_malformed_input():
 
 def _three_channel_window(weighting):
     from corrtransforms.config import parse_config
-    from corrtransforms.window_block import WindowBlock
-    from corrtransforms.window_correlation import correlate_window
+    from corrtransforms.records import WindowBlock
+    from corrtransforms.stages.correlate import correlate_window
     rng = np.random.default_rng(31)
     n = 12000
     source = simulate_sdof(2.0, 0.03, 50.0, n + 20, rng)
@@ -311,7 +311,7 @@ def _three_channel_window(weighting):
 @pytest.mark.parametrize("weighting", ["none", "phat"])
 def test_window_indicators_use_batched_lags_equal_to_per_pair_and_isolate_a_malformed_pair(weighting):
     import dataclasses
-    from corrtransforms.indicators import _pair_rows, window_indicators_and_failures
+    from corrtransforms.stages.indicators import _pair_rows, window_indicators_and_failures
     wc, config = _three_channel_window(weighting)
     cross = [p for p in wc.pairs if not p.is_auto]
     assert len(cross) == 3

@@ -3,7 +3,7 @@ import numpy as np
 import pytest
 import scipy.signal
 
-from corrtransforms.timescales import (bartlett_kernel, corr_time_s, correlation_envelope,
+from corrtransforms.numerics.timescales import (bartlett_kernel, corr_time_s, correlation_envelope,
                                        decay_time_s, lag_error_covariance)
 from tests.indicator_fixtures import auto_record, sdof_correlation, simulate_ou
 

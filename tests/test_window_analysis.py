@@ -11,9 +11,9 @@ import dataclasses
 import numpy as np
 
 from corrtransforms.config import parse_config
-from corrtransforms.indicators import window_indicators
-from corrtransforms.window_analysis import analyse_window
-from corrtransforms.window_block import WindowBlock
+from corrtransforms.stages.indicators import window_indicators
+from corrtransforms.stages.analyse import analyse_window
+from corrtransforms.records import WindowBlock
 
 FS = 20.0
 N = 12_000  # 600 s

@@ -6,12 +6,12 @@ import pyarrow.parquet as pq
 import pytest
 import scipy.signal
 
-from corrtransforms import record_error as err
+from corrtransforms.numerics import random_error as err
 from corrtransforms.config import parse_config
 from corrtransforms.records import PairCorrelation, quality_text
 from corrtransforms.tables import CORRELATIONS
-from corrtransforms.window_block import WindowBlock
-from corrtransforms.window_correlation import correlate_window, correlation_table
+from corrtransforms.records import WindowBlock
+from corrtransforms.stages.correlate import correlate_window, correlation_table
 from tests.test_record_error import oscillator_rho, simulate_oscillator
 
 START_US = 1_700_000_000_000_000  # an epoch-aligned invented window start

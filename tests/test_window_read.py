@@ -5,8 +5,8 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from corrtransforms.archive_plan import list_local_archive, plan_archive
-from corrtransforms.window_read import read_task
+from corrtransforms.stages.plan import list_local_archive, plan_archive
+from corrtransforms.stages.read import read_task
 from tests.archive_data import (T0, US, bad_wide_archive, long_table, make_config, samples, wide_table,
                                 window_rows, write_files)
 
@@ -187,7 +187,7 @@ def test_sample_rate_mismatch_rejects_every_window(tmp_path):
 def test_grid_phase_is_the_circular_mean_of_scipy():
     from scipy.stats import circmean
 
-    from corrtransforms.window_read import _circular_phase
+    from corrtransforms.stages.read import _circular_phase
 
     rng = np.random.default_rng(9)
     for centre in (0.0, 0.3, -0.45, 0.49):

@@ -6,7 +6,7 @@
 - ``"rejects"``: :class:`~corrtransforms.rejects.Reject` records, reason ``indicator_failed``,
   one per subject (or ``"*"`` for the whole window) whose computation raised.
 
-The work is :func:`corrtransforms.indicators.window_indicators_and_failures`.
+The work is :func:`corrtransforms.stages.indicators.window_indicators_and_failures`.
 """
 from __future__ import annotations
 
@@ -14,7 +14,7 @@ import apache_beam as beam
 from apache_beam.metrics import Metrics
 
 from corrtransforms.config import AssetConfig
-from corrtransforms.indicators import window_indicators_and_failures
+from corrtransforms.stages.indicators import window_indicators_and_failures
 from corrtransforms.records import OK, WindowCorrelation
 from corrtransforms.rejects import WHOLE_WINDOW, Reject, iso_utc
 

@@ -20,8 +20,12 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 from apache_beam.io.filesystems import CompressionTypes, FileSystems
 
-from corrtransforms import shift_series, table_writer, tables
-from corrtransforms.beam.archive import BeamFiles
+from corrtransforms import tables
+
+from corrtransforms.stages import shifts as shift_series
+
+from corrtransforms.stages import write as table_writer
+from corrtransforms.beam.filesystems import BeamFiles
 from corrtransforms.config import AssetConfig
 
 _DATE = re.compile(r"/date=(\d{4}-\d{2}-\d{2})/")
@@ -142,7 +146,7 @@ def summarize_partitions(output_dir: str, table: str, asset: str, schema: pa.Sch
     name : str
         The summary's name (one per reduction): ``DIR/_summaries/asset=NAME/<name>.parquet``.
     provenance : mapping, optional
-        File metadata of the summary (:func:`corrtransforms.table_writer.provenance_metadata`).
+        File metadata of the summary (:func:`corrtransforms.stages.write.provenance_metadata`).
 
     Returns
     -------

@@ -6,8 +6,8 @@
 - ``"state"``: one ``pyarrow.Table`` (STATE schema) per series, a row per local day processed,
 - ``"rejects"``: :class:`~corrtransforms.rejects.Reject` records,
 
-ready for :class:`corrtransforms.beam.archive.WriteTables` (tables ``shifts``, ``state``,
-``rejects``). The work is :func:`corrtransforms.shift_series.detect_shifts_for_rows`.
+ready for :class:`corrtransforms.beam.write.WriteTables` (tables ``shifts``, ``state``,
+``rejects``). The work is :func:`corrtransforms.stages.shifts.detect_shifts_for_rows`.
 """
 from __future__ import annotations
 
@@ -17,7 +17,7 @@ import apache_beam as beam
 import pyarrow as pa
 from apache_beam.metrics import Metrics
 
-from corrtransforms import shift_series
+from corrtransforms.stages import shifts as shift_series
 from corrtransforms.config import AssetConfig
 from corrtransforms.records import IndicatorRow
 

@@ -1,10 +1,10 @@
-"""The correlate stage for one window: :class:`~corrtransforms.window_block.WindowBlock` in,
+"""The correlate stage for one window: :class:`~corrtransforms.records.WindowBlock` in,
 :class:`~corrtransforms.records.WindowCorrelation` out, and the correlations table.
 
 :func:`correlate_window` transforms each channel once, then forms every configured pair, every
 configured mode's band-limited auto-correlation and (for cross pairs, when configured) the
 weighted generalised cross-correlation, and attaches the record-length error metadata of
-:mod:`corrtransforms.record_error`. :func:`correlation_table` turns a batch of results into an
+:mod:`corrtransforms.numerics.random_error`. :func:`correlation_table` turns a batch of results into an
 Arrow table with exactly the :data:`corrtransforms.tables.CORRELATIONS` schema.
 
 Lag convention: ``R_ab(tau) = E[a(t) b(t + tau)]``; a peak at positive tau means b lags a. Auto
@@ -17,12 +17,12 @@ from typing import Dict, Iterable, List, Sequence, Tuple
 import numpy as np
 import pyarrow as pa
 
-from . import record_error as err
-from .config import AssetConfig
-from .correlation import DEFAULT_MIN_PAIRS, channel_spectra, correlate_spectra
-from .records import ModeCorrelation, PairCorrelation, WindowCorrelation, quality_text
-from .tables import CORRELATIONS, TIMESTAMP
-from .window_block import WindowBlock
+from corrtransforms.numerics import random_error as err
+from corrtransforms.config import AssetConfig
+from corrtransforms.numerics.correlation import DEFAULT_MIN_PAIRS, channel_spectra, correlate_spectra
+from corrtransforms.records import ModeCorrelation, PairCorrelation, WindowCorrelation, quality_text
+from corrtransforms.tables import CORRELATIONS, TIMESTAMP
+from corrtransforms.records import WindowBlock
 
 #: |rho| above this in the last 10 % of lags flags "max_lag_short" (common practice)
 UNDECAYED_COEFFICIENT = 0.2
@@ -81,7 +81,7 @@ def correlate_window(block: WindowBlock, config: AssetConfig,
     Notes
     -----
     Per pair (a, b), with ``T`` the record length of valid sample pairs at zero lag, ``B`` the
-    statistical bandwidth (:func:`~corrtransforms.record_error.statistical_bandwidth` of the
+    statistical bandwidth (:func:`~corrtransforms.numerics.random_error.statistical_bandwidth` of the
     Parzen-window PSDs of the biased auto-correlations; for a cross pair of ``G_aa G_bb``) and
     ``eps`` the target:
 

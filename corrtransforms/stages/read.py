@@ -1,9 +1,9 @@
 """Execute one read task: decode its row groups once and assemble one block per planned window.
 
-:func:`read_windows` is the whole read stage for one :class:`~corrtransforms.archive_plan.ReadTask`.
+:func:`read_windows` is the whole read stage for one :class:`~corrtransforms.stages.plan.ReadTask`.
 It reads only the task's row groups and columns, converts Arrow to numpy once per task, sorts rows
 when needed, then for each planned window snaps the samples onto the nominal grid and checks them.
-Every planned window yields exactly one :class:`~corrtransforms.window_block.WindowBlock` or one
+Every planned window yields exactly one :class:`~corrtransforms.records.WindowBlock` or one
 whole-window :class:`~corrtransforms.rejects.Reject` (subject ``"*"``, action ``"rejected"``),
 so windows planned = blocks + whole-window rejects, exactly. Repairs and flags become further
 Reject records (actions ``"repaired"`` / ``"flagged"``) or per-channel rejects (subject = channel).
@@ -20,11 +20,11 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
-from corrtransforms.archive_plan import (OpenFile, ReadTask, local_date, local_to_utc_us,
+from corrtransforms.stages.plan import (OpenFile, ReadTask, local_date, local_to_utc_us,
                                          open_local_file, window_grid)
 from corrtransforms.config import AssetConfig
 from corrtransforms.rejects import WHOLE_FILE, WHOLE_WINDOW, Reject, iso_utc
-from corrtransforms.window_block import WindowBlock
+from corrtransforms.records import WindowBlock
 
 #: relative difference between the median sample interval and the nominal one above which a
 #: window is rejected as "sample_rate_mismatch" (common practice: 1 %)
@@ -547,7 +547,7 @@ def read_windows(task: ReadTask, config: AssetConfig, open_file: OpenFile = open
     Parameters
     ----------
     task : ReadTask
-        From :func:`corrtransforms.archive_plan.plan_reads`.
+        From :func:`corrtransforms.stages.plan.plan_reads`.
     config : AssetConfig
         The asset's configuration (grid, tolerances, coverage, clipping).
     open_file : callable

@@ -1,7 +1,7 @@
 """Shift detectors on standardised residuals and their average run lengths.
 
 The detectors run on the error-aware standardised residuals ``z`` of one indicator (see
-:mod:`corrtransforms.shift_series`); in control ``z`` is close to N(0, 1).
+:mod:`corrtransforms.stages.shifts`); in control ``z`` is close to N(0, 1).
 
 - :func:`cusum_path`: two-sided tabular CUSUM (Page 1954), computed along the last axis without a
   Python loop from the closed-form solution of the Lindley recursion.

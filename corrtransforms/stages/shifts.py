@@ -7,11 +7,11 @@ For one (subject, indicator) series in time order, :func:`detect_shifts`
    provisional ``expected``/``z`` from a model of the baseline windows seen before them,
    refitted each time the sample has grown by 10 % (:func:`provisional_refit_point`);
 2. at the end of the baseline fits the baseline model
-   (:func:`corrtransforms.covariate_model.fit_baseline_model`: median/MAD, or a robust
+   (:func:`corrtransforms.numerics.covariate_model.fit_baseline_model`: median/MAD, or a robust
    regression on the compensated covariates);
 3. afterwards computes, per window, ``expected``, the error-aware standardised residual
    ``z = (value - expected) / sqrt(s_resid^2 + stderr^2)`` and runs the two-sided tabular CUSUM
-   and the EWMA chart (:mod:`corrtransforms.detectors`) on ``z``; state ``"shifted"`` while a
+   and the EWMA chart (:mod:`corrtransforms.numerics.detectors`) on ``z``; state ``"shifted"`` while a
    configured detector is beyond its limit, ``"normal"`` otherwise.
 
 Rules:
@@ -43,12 +43,12 @@ from typing import Any, Dict, Iterable, List, Mapping, Optional, Sequence, Tuple
 import numpy as np
 import pyarrow as pa
 
-from . import tables
-from .baseline import day_date, day_number, local_days, period_position
-from .covariate_model import BaselineModel, fit_baseline_model
-from .detectors import cusum_path, cusum_run_lengths, cusum_run_sums, ewma_limits, ewma_path
-from .records import IndicatorRow, quality_codes, quality_text
-from .rejects import Reject, iso_utc
+from corrtransforms import tables
+from corrtransforms.numerics.robust import day_date, day_number, local_days, period_position
+from corrtransforms.numerics.covariate_model import BaselineModel, fit_baseline_model
+from corrtransforms.numerics.detectors import cusum_path, cusum_run_lengths, cusum_run_sums, ewma_limits, ewma_path
+from corrtransforms.records import IndicatorRow, quality_codes, quality_text
+from corrtransforms.rejects import Reject, iso_utc
 
 BASELINE, NORMAL, SHIFTED = "baseline", "normal", "shifted"
 ACCUMULATING, FITTED = "accumulating", "fitted"

@@ -33,7 +33,7 @@ import pyarrow.parquet as pq
 
 import corrtransforms
 from corrtransforms import tables
-from corrtransforms.archive_plan import local_date
+from corrtransforms.stages.plan import local_date
 from corrtransforms.config import AssetConfig
 from corrtransforms.rejects import Reject
 
@@ -161,7 +161,7 @@ def to_partitions(table_name: str, element: Any, config: AssetConfig) -> List[Tu
     Accepted elements: a ``pyarrow.Table`` with the table's columns; for "rejects" a
     :class:`~corrtransforms.rejects.Reject` or a list of them; for "correlations" a
     :class:`~corrtransforms.records.WindowCorrelation` (converted with
-    :func:`corrtransforms.window_correlation.correlation_table`).
+    :func:`corrtransforms.stages.correlate.correlation_table`).
     """
     tz = config.archive.timezone
     if isinstance(element, Reject):
@@ -175,7 +175,7 @@ def to_partitions(table_name: str, element: Any, config: AssetConfig) -> List[Tu
         from corrtransforms.records import WindowCorrelation
 
         if isinstance(element, WindowCorrelation):
-            from corrtransforms.window_correlation import correlation_table
+            from corrtransforms.stages.correlate import correlation_table
 
             element = correlation_table([element])
         else:
@@ -233,7 +233,7 @@ def part_file_name(table: pa.Table) -> str:
     if "window_start" in table.column_names:
         starts = table.column("window_start").cast(pa.int64()).drop_null()
         if len(starts):
-            from corrtransforms.archive_plan import _compact_utc
+            from corrtransforms.stages.plan import _compact_utc
 
             first = _compact_utc(int(np.min(starts.to_numpy())))
     return f"part-{first}-{digest}.parquet"

@@ -1285,7 +1285,7 @@ def screen_window(block, screening_config, pairs=None) -> WindowScreening:
 
     Parameters
     ----------
-    block : corrtransforms.window_block.WindowBlock
+    block : corrtransforms.records.WindowBlock
         The window's samples and mask.
     screening_config : corrtransforms.config.ScreeningConfig
         ``enabled``, ``segments`` (M, default 20), ``alpha`` (default 0.05) and ``action``

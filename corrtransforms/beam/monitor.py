@@ -14,7 +14,10 @@ from typing import Any, Dict, Optional
 
 import apache_beam as beam
 
-from corrtransforms.beam.archive import CorrelateWindows, PlanReads, ReadWindows, WriteTables
+from corrtransforms.beam.correlate import CorrelateWindows
+from corrtransforms.beam.plan import PlanReads
+from corrtransforms.beam.read import ReadWindows
+from corrtransforms.beam.write import WriteTables
 from corrtransforms.beam.indicators import ComputeIndicators
 from corrtransforms.beam.shifts import DetectShifts
 from corrtransforms.config import AssetConfig
@@ -70,7 +73,7 @@ class _ProgressFn(beam.DoFn):
 
 
 def _indicator_table(rows):
-    from corrtransforms.indicators import indicator_table
+    from corrtransforms.stages.indicators import indicator_table
 
     return indicator_table(rows)
 

@@ -5,7 +5,7 @@ baseline model predicts the indicator of a window from its window-averaged covar
 low-order polynomial fitted on the baseline windows; detection then runs on the residuals.
 
 - No covariates: the prediction is the baseline median and the residual scale the normalised MAD
-  (:func:`corrtransforms.baseline.summarize_baseline`).
+  (:func:`corrtransforms.numerics.robust.summarize_baseline`).
 - With covariates: Huber M-regression (iteratively reweighted least squares with the MAD scale),
   on the covariates centred at their baseline medians; ``order = 2`` adds the squares.
   A baseline window with a missing covariate is left out of the fit; a monitored window with a
@@ -30,7 +30,7 @@ from typing import Optional, Sequence, Tuple
 import numpy as np
 from scipy import special as _special
 
-from .baseline import BASELINE_TOO_SHORT, MAD_TO_SIGMA, net_scale, summarize_baseline
+from corrtransforms.numerics.robust import BASELINE_TOO_SHORT, MAD_TO_SIGMA, net_scale, summarize_baseline
 
 HUBER_T = 1.345
 COVARIATE_MISSING = "covariate_missing"

@@ -11,7 +11,9 @@ from typing import Dict, List, Tuple
 
 import pyarrow as pa
 
-from corrtransforms import shift_series, tables
+from corrtransforms import tables
+
+from corrtransforms.stages import shifts as shift_series
 from corrtransforms.config import AssetConfig
 from corrtransforms.records import IndicatorRow
 from corrtransforms.rejects import Reject

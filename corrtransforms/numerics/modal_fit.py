@@ -16,7 +16,7 @@ import numpy as np
 import scipy.optimize
 import scipy.signal
 
-from .timescales import (MAX_COVARIANCE_LAGS, _lag_sums, bartlett_kernel, bartlett_variance,
+from corrtransforms.numerics.timescales import (MAX_COVARIANCE_LAGS, _lag_sums, bartlett_kernel, bartlett_variance,
                          correlation_envelope)
 
 #: quality codes of this module (code -> meaning)
@@ -149,7 +149,7 @@ def fit_mode(coefficient, stderr, lag_step_s: float, band_hz: Tuple[float, float
 
         Cov(theta) = (J^T W J)^-1 J^T W Sigma W J (J^T W J)^-1,   W = diag(1/s^2)
 
-    with ``Sigma`` Bartlett's lag-error covariance (:func:`~corrtransforms.timescales.lag_error_covariance`)
+    with ``Sigma`` Bartlett's lag-error covariance (:func:`~corrtransforms.numerics.timescales.lag_error_covariance`)
     [3]_ (Sec. 5.2 of White's robust covariance, from memory).
 
     **Against the logarithmic decrement.** The decrement ``delta = ln(x_k / x_{k+m}) / m`` uses two
@@ -351,7 +351,7 @@ def _bartlett_quadratic_form(model: np.ndarray, first: int, spacing: int, G: np.
 
     Notes
     -----
-    With ``c(m) = sum_v rho_v rho_{v+m}`` (:func:`~corrtransforms.timescales.bartlett_kernel`),
+    With ``c(m) = sum_v rho_v rho_{v+m}`` (:func:`~corrtransforms.numerics.timescales.bartlett_kernel`),
     ``K = T + H - 2 r c^T - 2 c r^T + 2 c(0) r r^T`` where ``T_ij = c(|l_j - l_i|)`` is Toeplitz,
     ``H_ij = c(l_i + l_j)`` Hankel, ``r_i = rho(l_i)`` and ``c_i = c(l_i)``. On equally spaced
     lags ``T G`` is a convolution of ``G`` with ``c(spacing |d|)`` and ``H G`` a correlation

@@ -7,12 +7,12 @@
 indicator                 subject     from
 ========================  ==========  ==============================================
 ``rms``                   channel     ``wc.rms`` / ``wc.rms_stderr`` (channel unit)
-``corr_time_s``           channel     :func:`~corrtransforms.timescales.corr_time_s`
-``decay_time_s``          channel     :func:`~corrtransforms.timescales.decay_time_s`
-``mode_freq_hz``          mode name   :func:`~corrtransforms.modal_fit.fit_mode`
-``mode_damping``          mode name   :func:`~corrtransforms.modal_fit.fit_mode`
-``lag_s``                 ``a:b``     :func:`~corrtransforms.time_delay.estimate_lags`
-``peak_coef``             ``a:b``     :func:`~corrtransforms.time_delay.estimate_lags`
+``corr_time_s``           channel     :func:`~corrtransforms.numerics.timescales.corr_time_s`
+``decay_time_s``          channel     :func:`~corrtransforms.numerics.timescales.decay_time_s`
+``mode_freq_hz``          mode name   :func:`~corrtransforms.numerics.modal_fit.fit_mode`
+``mode_damping``          mode name   :func:`~corrtransforms.numerics.modal_fit.fit_mode`
+``lag_s``                 ``a:b``     :func:`~corrtransforms.numerics.time_delay.estimate_lags`
+``peak_coef``             ``a:b``     :func:`~corrtransforms.numerics.time_delay.estimate_lags`
 ``covariate_mean``        covariate   ``wc.covariates`` (stderr NaN)
 ========================  ==========  ==============================================
 
@@ -28,12 +28,12 @@ from typing import Callable, Iterable, List, Optional, Tuple
 import numpy as np
 import pyarrow as pa
 
-from . import tables
-from .config import AssetConfig
-from .modal_fit import fit_mode
-from .records import IndicatorRow, ModeCorrelation, PairCorrelation, WindowCorrelation, quality_text
-from .time_delay import LagEstimate, estimate_lag, estimate_lags
-from .timescales import corr_time_s, decay_time_s
+from corrtransforms import tables
+from corrtransforms.config import AssetConfig
+from corrtransforms.numerics.modal_fit import fit_mode
+from corrtransforms.records import IndicatorRow, ModeCorrelation, PairCorrelation, WindowCorrelation, quality_text
+from corrtransforms.numerics.time_delay import LagEstimate, estimate_lag, estimate_lags
+from corrtransforms.numerics.timescales import corr_time_s, decay_time_s
 
 #: quality codes added here (code -> meaning); the computations add their own
 QUALITY_CODES = {

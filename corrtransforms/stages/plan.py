@@ -361,7 +361,7 @@ class ReadTask:
     """A small, picklable description of one unit of reading work.
 
     ``window_starts_us`` are the planned windows (UTC microseconds, epoch-aligned); every one
-    yields a :class:`~corrtransforms.window_block.WindowBlock` or a whole-window reject.
+    yields a :class:`~corrtransforms.records.WindowBlock` or a whole-window reject.
     """
 
     asset: str

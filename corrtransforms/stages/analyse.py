@@ -22,9 +22,9 @@ from typing import Dict, List, Optional, Tuple
 from corrtransforms.config import AssetConfig
 from corrtransforms.records import WindowCorrelation
 from corrtransforms.rejects import Reject
-from corrtransforms.stationarity import screen_window
-from corrtransforms.window_block import WindowBlock
-from corrtransforms.window_correlation import correlate_window
+from corrtransforms.stages.screen import screen_window
+from corrtransforms.records import WindowBlock
+from corrtransforms.stages.correlate import correlate_window
 
 
 def _screened_pairs(config: AssetConfig, block: WindowBlock):
