@@ -9,8 +9,8 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from corrtransforms.stages.plan import (list_local_archive, local_to_utc_us, plan_archive, read_footer,
-                                         window_grid)
+from corrtransforms.stages.plan import list_local_archive, plan_archive, read_footer, window_grid
+from corrtransforms.timeutil import local_to_utc_us
 from tests.archive_data import T0, US, bad_wide_archive, long_table, make_config, samples, wide_table, write_files
 
 

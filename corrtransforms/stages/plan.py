@@ -10,7 +10,7 @@ This module is pure pyarrow/numpy. File access goes through an ``open_file(path)
 returns a binary, seekable file object (the Beam layer hands in
 ``apache_beam.io.filesystems.FileSystems.open``); :func:`open_local_file` serves local paths.
 
-Time conventions: every time is an integer count of microseconds since the Unix epoch, UTC.
+Time conventions (see :mod:`corrtransforms.timeutil`): every time is an integer count of microseconds since the Unix epoch, UTC.
 Naive (time-zone-less) timestamps in a file are local times of ``[archive] timezone``.
 """
 from __future__ import annotations
@@ -29,9 +29,8 @@ import pyarrow.parquet as pq
 
 from corrtransforms.config import AssetConfig
 from corrtransforms.rejects import WHOLE_FILE, Reject
+from corrtransforms.timeutil import US_PER_S, compact_utc, day_start_us, local_date, local_to_utc_us, timestamp_to_us
 
-US_PER_S = 1_000_000
-_UNIT_TO_US = {"s": 1_000_000, "ms": 1_000, "us": 1, "ns": None}
 _PARQUET_UNITS = {"milliseconds": "ms", "microseconds": "us", "nanoseconds": "ns"}
 _HIVE_DATE = re.compile(r"(?:^|/)date=(\d{4}-\d{2}-\d{2})(?:/|$)")
 _NAME_DATE = re.compile(r"(\d{4})-?(\d{2})-?(\d{2})")
@@ -46,79 +45,6 @@ OpenFile = Callable[[str], "object"]
 def open_local_file(path: str):
     """Open a local file for binary reading (the default ``open_file``)."""
     return open(path, "rb")
-
-
-# --------------------------------------------------------------------------------------------
-# Time helpers
-
-
-def local_to_utc_us(local_us: np.ndarray, timezone: str) -> np.ndarray:
-    """Convert naive local times (microseconds, wall clock of ``timezone``) to UTC microseconds.
-
-    Parameters
-    ----------
-    local_us : ndarray of int64
-        Wall-clock times of ``timezone`` as microseconds since 1970-01-01 00:00 (local).
-    timezone : str
-        IANA time-zone name.
-
-    Returns
-    -------
-    ndarray of int64
-        ``local_us - offset(local)``, with the UTC offset looked up once per quarter hour of
-        wall-clock time present (time-zone transitions fall on quarter hours).
-
-    Notes
-    -----
-    Ambiguous wall-clock times (the repeated hour when clocks go back) take the first
-    occurrence (``fold=0``), as do non-existent ones; naive archives cannot tell them apart,
-    so the repeated hour shows up as duplicated timestamps.
-    """
-    local_us = np.asarray(local_us, dtype=np.int64)
-    if timezone == "UTC" or local_us.size == 0:
-        return local_us.copy()
-    import zoneinfo
-
-    zone = zoneinfo.ZoneInfo(timezone)
-    quarter = 900 * US_PER_S
-    buckets, inverse = np.unique(local_us // quarter, return_inverse=True)
-    epoch = _dt.datetime(1970, 1, 1)
-    offsets = np.empty(len(buckets), dtype=np.int64)
-    for i, b in enumerate(buckets):
-        wall = epoch + _dt.timedelta(microseconds=int(b) * quarter)
-        offsets[i] = int(wall.replace(tzinfo=zone).utcoffset() / _dt.timedelta(microseconds=1))
-    return local_us - offsets[inverse.reshape(-1)]
-
-
-def local_date(utc_us: int, timezone: str) -> str:
-    """Calendar date (``YYYY-MM-DD``) of a UTC instant in ``timezone``."""
-    import zoneinfo
-
-    instant = _dt.datetime(1970, 1, 1, tzinfo=_dt.timezone.utc) + _dt.timedelta(microseconds=int(utc_us))
-    return instant.astimezone(zoneinfo.ZoneInfo(timezone)).date().isoformat()
-
-
-def day_start_us(day: _dt.date, timezone: str) -> int:
-    """UTC microseconds of local midnight starting ``day`` in ``timezone``."""
-    local = int((_dt.datetime(day.year, day.month, day.day) - _dt.datetime(1970, 1, 1))
-                / _dt.timedelta(microseconds=1))
-    return int(local_to_utc_us(np.array([local]), timezone)[0])
-
-
-def _compact_utc(utc_us: int) -> str:
-    instant = _dt.datetime(1970, 1, 1) + _dt.timedelta(microseconds=int(utc_us))
-    text = instant.strftime("%Y%m%dT%H%M%S")
-    if utc_us % US_PER_S:
-        text += f".{utc_us % US_PER_S:06d}"
-    return text + "Z"
-
-
-def timestamp_to_us(values: np.ndarray, unit: str) -> np.ndarray:
-    """Integer timestamps of ``unit`` ("s", "ms", "us", "ns") to microseconds (floor)."""
-    values = np.asarray(values, dtype=np.int64)
-    if unit == "ns":
-        return np.floor_divide(values, 1000)
-    return values * _UNIT_TO_US[unit]
 
 
 # --------------------------------------------------------------------------------------------
@@ -530,7 +456,7 @@ def plan_reads(footers: Sequence[FileFooter], footer_rejects: Sequence[Reject], 
                                     decoded_bytes=sum(s.decoded_bytes for s in spans),
                                     row_group_spans_us=tuple((s.start_us, s.end_us) for s in spans)))
         starts = tuple(k * hop_us for k in window_ks)
-        tasks.append(ReadTask(asset=config.name, task_id=_compact_utc(starts[0]), window_starts_us=starts,
+        tasks.append(ReadTask(asset=config.name, task_id=compact_utc(starts[0]), window_starts_us=starts,
                               channels=channels, covariates=covariates, pieces=tuple(pieces),
                               dates=tuple(sorted({local_date(s, tz) for s in starts}))))
 

@@ -20,8 +20,8 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
-from corrtransforms.stages.plan import (OpenFile, ReadTask, local_date, local_to_utc_us,
-                                         open_local_file, window_grid)
+from corrtransforms.stages.plan import OpenFile, ReadTask, open_local_file, window_grid
+from corrtransforms.timeutil import local_date, local_to_utc_us
 from corrtransforms.config import AssetConfig
 from corrtransforms.rejects import WHOLE_FILE, WHOLE_WINDOW, Reject, iso_utc
 from corrtransforms.records import WindowBlock

@@ -33,7 +33,7 @@ import pyarrow.parquet as pq
 
 import corrtransforms
 from corrtransforms import tables
-from corrtransforms.stages.plan import local_date
+from corrtransforms.timeutil import compact_utc, local_date
 from corrtransforms.config import AssetConfig
 from corrtransforms.rejects import Reject
 
@@ -233,9 +233,7 @@ def part_file_name(table: pa.Table) -> str:
     if "window_start" in table.column_names:
         starts = table.column("window_start").cast(pa.int64()).drop_null()
         if len(starts):
-            from corrtransforms.stages.plan import _compact_utc
-
-            first = _compact_utc(int(np.min(starts.to_numpy())))
+            first = compact_utc(int(np.min(starts.to_numpy())))
     return f"part-{first}-{digest}.parquet"
 
 
