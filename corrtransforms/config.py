@@ -28,6 +28,9 @@ else:  # pragma: no cover
 from corrtransforms.numerics.correlation import DETRENDS, ESTIMATORS, WEIGHTINGS
 
 LAYOUTS = ("wide", "long")
+ALIGNMENTS = ("epoch", "records")
+#: default [windows] record_gap_s, in sample intervals: a longer pause between samples ends a record
+RECORD_GAP_PERIODS = 2.0
 SCREENING_ACTIONS = ("flag", "exclude")
 DETECTORS = ("cusum", "ewma", "both")
 #: indicator names of the indicators table (more may follow); "covariate_mean" rows carry the
@@ -77,6 +80,14 @@ class WindowsConfig:
     length_s: float = 600.0
     hop_s: float = 600.0
     min_coverage: float = 0.9
+    #: "epoch": window starts offset_s + k * hop_s after the Unix epoch; "records": every
+    #: contiguous record starts its own windows at its first sample
+    align: str = "epoch"
+    #: shift of the epoch grid in seconds, in [0, hop_s)
+    offset_s: float = 0.0
+    #: align = "records": a pause between samples longer than this ends a record (None: 2 sample
+    #: intervals, resolved by the planner from the sample rate)
+    record_gap_s: Optional[float] = None
 
 
 @dataclasses.dataclass(frozen=True)
@@ -193,7 +204,7 @@ _KNOWN = {
     "archive": {"path", "layout", "time_column", "channel_column", "value_column",
                 "sample_rate_hz", "timezone"},
     "channels": {"names", "covariates", "units"},
-    "windows": {"length_s", "hop_s", "min_coverage"},
+    "windows": {"length_s", "hop_s", "min_coverage", "align", "offset_s", "record_gap_s"},
     "correlation": {"max_lag_s", "pairs", "estimator", "detrend", "weighting", "target_rel_error"},
     "modes": {"name", "channel", "band_hz"},
     "baseline": {"start", "end", "windows", "min_windows"},
@@ -365,16 +376,25 @@ def _parse_channels(raw: Mapping[str, Any]) -> ChannelsConfig:
 
 
 def _parse_windows(raw: Mapping[str, Any], archive: ArchiveConfig) -> WindowsConfig:
-    """``[windows]``: length, hop and minimum coverage (a whole number of samples per window)."""
+    """``[windows]``: length, hop, minimum coverage (a whole number of samples per window) and
+    alignment (epoch grid with an offset, or record starts)."""
     win = _section(raw, "windows")
     length_s = _number("[windows] length_s", win.get("length_s", 600.0), low=0, low_open=True)
     hop_s = _number("[windows] hop_s", win.get("hop_s", length_s), low=0, low_open=True)
     if hop_s > length_s:
         raise ConfigError("[windows] hop_s", hop_s, f"must be at most length_s ({length_s})")
+    align = _choice("[windows] align", win.get("align", "epoch"), ALIGNMENTS)
+    offset_s = _number("[windows] offset_s", win.get("offset_s", 0.0), low=0, high=hop_s, high_open=True)
+    if offset_s and align == "records":
+        raise ConfigError("[windows] offset_s", offset_s,
+                          "must be 0 with align = \"records\" (record starts fix the windows)")
+    record_gap_s = (_number("[windows] record_gap_s", win["record_gap_s"], low=0, low_open=True)
+                    if "record_gap_s" in win else None)
     windows = WindowsConfig(
         length_s=length_s, hop_s=hop_s,
         min_coverage=_number("[windows] min_coverage", win.get("min_coverage", 0.9), low=0, high=1,
                              low_open=True),
+        align=align, offset_s=offset_s, record_gap_s=record_gap_s,
     )
     n_per_window = length_s * archive.sample_rate_hz
     if abs(n_per_window - round(n_per_window)) > 1e-6 or n_per_window < 16:

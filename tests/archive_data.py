@@ -233,3 +233,26 @@ def _write_bad_wide_files(folder: str, table: Dict[str, np.ndarray], rng, rate: 
     pq.write_table(wide_table(samples(60, rate, seed=3)).slice(0, 0), os.path.join(folder, "wide-no-rows.parquet"))
     string_time = pa.table({"time": pa.array(["2024-03-04T00:00:00"] * 5), "a": np.zeros(5), "b": np.zeros(5)})
     pq.write_table(string_time, os.path.join(folder, "wide-string-time.parquet"))
+
+
+def duty_cycled_records(n_records: int = 4, rate: float = 25.0, record_s: float = 600.0,
+                        first_offset_s: float = 180.0, every_s: float = 7200.0) -> list:
+    """Columns of duty-cycled records: ``record_s`` of samples starting ``first_offset_s`` after
+    T0 and then every ``every_s`` (by default 10-minute records at hh:03:00 every 2 hours)."""
+    return [samples(record_s, rate, seed=100 + r, start_us=T0 + int((first_offset_s + r * every_s) * US))
+            for r in range(n_records)]
+
+
+def write_duty_cycled_archive(folder: str, records: list, one_file: bool = False,
+                              row_group_size: int = 5000, layout: str = "wide") -> list:
+    """One file per record (or all records in one file); returns the paths."""
+    os.makedirs(folder, exist_ok=True)
+    tables = [(wide_table if layout == "wide" else long_table)(r) for r in records]
+    if one_file:
+        tables = [pa.concat_tables(tables)]
+    paths = []
+    for i, table in enumerate(tables):
+        path = os.path.join(folder, f"record-{i:02d}.parquet")
+        pq.write_table(table, path, row_group_size=row_group_size)
+        paths.append(path)
+    return paths

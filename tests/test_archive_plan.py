@@ -9,9 +9,10 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from corrtransforms.stages.plan import list_local_archive, plan_archive, read_footer, window_grid
+from corrtransforms.stages.plan import find_records, list_local_archive, plan_archive, read_footer, window_grid
 from corrtransforms.timeutil import local_to_utc_us
-from tests.archive_data import T0, US, bad_wide_archive, long_table, make_config, samples, wide_table, write_files
+from tests.archive_data import (T0, US, bad_wide_archive, duty_cycled_records, long_table, make_config, samples,
+                                wide_table, write_duty_cycled_archive, write_files)
 
 
 def _windows(plan):
@@ -161,3 +162,55 @@ def test_task_description_is_small_and_picklable(small_groups):
 def test_window_grid_values():
     config = make_config("/nowhere", rate=12.5, length_s=64.0, max_lag_s=4.0)
     assert window_grid(config) == (64 * US, 64 * US, 800, 80000.0)
+
+
+def _footers(folder, config):
+    return [read_footer(p, config)[0] for p in list_local_archive(folder)]
+
+
+def test_record_starts_come_from_footer_statistics_alone_when_row_groups_hold_no_pause(tmp_path):
+    records = duty_cycled_records()
+    write_duty_cycled_archive(str(tmp_path), records)  # row groups of 5000 rows inside each record
+    config = make_config(str(tmp_path), rate=25.0, length_s=600.0, align="records")
+    footers = _footers(str(tmp_path), config)
+    # every row group spans exactly (rows - 1) sample intervals: no time column was read
+    assert all(rg.segments_us == () for f in footers for rg in f.row_groups)
+    assert find_records(footers, config) == [(int(r["time"][0]), int(r["time"][-1])) for r in records]
+
+
+def test_a_row_group_that_may_hold_a_pause_has_its_time_column_read(tmp_path):
+    records = duty_cycled_records()
+    # one file, row groups of 7000 rows: some row groups hold the end of one record and the start
+    # of the next, which only their time column can tell
+    write_duty_cycled_archive(str(tmp_path), records, one_file=True, row_group_size=7000)
+    config = make_config(str(tmp_path), rate=25.0, length_s=600.0, align="records")
+    (footer,) = _footers(str(tmp_path), config)
+    straddling = [rg for rg in footer.row_groups if rg.segments_us]
+    assert [rg.index for rg in straddling] == [2, 4, 6]  # rows 14000-20999, 28000-34999, 42000-48999
+    assert find_records([footer], config) == [(int(r["time"][0]), int(r["time"][-1])) for r in records]
+    plan = plan_archive(list_local_archive(str(tmp_path)), config)
+    assert _windows(plan) == [int(r["time"][0]) for r in records]
+    # epoch alignment never reads a time column for planning
+    epoch = make_config(str(tmp_path), rate=25.0, length_s=600.0)
+    assert all(rg.segments_us == () for rg in _footers(str(tmp_path), epoch)[0].row_groups)
+
+
+def test_a_pause_longer_than_record_gap_s_starts_a_new_record(tmp_path):
+    cols = samples(300, 25.0, seed=4)
+    keep = np.ones(cols["time"].size, dtype=bool)
+    keep[2500:2525] = False  # a 1-s dropout (25 samples) at 100 s
+    pq.write_table(wide_table({k: v[keep] for k, v in cols.items()}), str(tmp_path / "one.parquet"))
+    # default tolerance: 2 sample intervals (80 ms) < the 1.04-s pause: two records
+    config = make_config(str(tmp_path), rate=25.0, length_s=60.0, align="records")
+    assert [lo for lo, _ in find_records(_footers(str(tmp_path), config), config)] == [T0, T0 + 101 * US]
+    # a stated tolerance of 2 s joins them: one record, windows every 60 s from its first sample
+    config = make_config(str(tmp_path), rate=25.0, length_s=60.0, align="records", record_gap_s=2.0)
+    assert find_records(_footers(str(tmp_path), config), config) == [(T0, int(cols["time"][-1]))]
+    assert _windows(plan_archive(list_local_archive(str(tmp_path)), config)) == [T0 + k * 60 * US for k in range(5)]
+
+
+def test_offset_s_shifts_the_epoch_grid(small_groups):
+    config = make_config(small_groups, offset_s=15.0)
+    starts = _windows(plan_archive(list_local_archive(small_groups), config))
+    # 600 s of data from T0: windows at T0 - 45 s + k * 60 s that hold a sample (closed form: 11)
+    assert starts == [T0 - 45 * US + k * 60 * US for k in range(11)]

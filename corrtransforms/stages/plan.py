@@ -1,10 +1,11 @@
 """Plan the reading of a Parquet archive from its footers: windows and bounded read tasks.
 
-Planning reads only Parquet footers (file metadata): per file and row group the time range (from
-the time column's statistics), the row count, and the columns present. It then cuts the time axis
-into epoch-aligned windows and groups consecutive windows into read tasks whose decoded size stays
-near ``[reading] task_bytes``. A :class:`ReadTask` names files, row groups, columns and windows; it
-is small and picklable, so only task descriptions ever travel through a shuffle, never samples.
+Planning reads only Parquet footers (file metadata): per file and row group the time range (from the
+time column's statistics), the row count, and the columns present. It then cuts the time axis into
+windows (on the epoch grid, or from each record's first sample) and groups consecutive windows into
+read tasks whose decoded size stays near ``[reading] task_bytes``. A :class:`ReadTask` names files,
+row groups, columns and windows; it is small and picklable, so only task descriptions ever travel
+through a shuffle, never samples.
 
 This module is pure pyarrow/numpy. File access goes through an ``open_file(path)`` callable that
 returns a binary, seekable file object (the Beam layer hands in
@@ -16,6 +17,7 @@ Naive (time-zone-less) timestamps in a file are local times of ``[archive] timez
 from __future__ import annotations
 
 import dataclasses
+import bisect
 import datetime as _dt
 import json
 import math
@@ -27,7 +29,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from corrtransforms.config import AssetConfig
+from corrtransforms.config import RECORD_GAP_PERIODS, AssetConfig
 from corrtransforms.rejects import WHOLE_FILE, Reject
 from corrtransforms.timeutil import US_PER_S, compact_utc, day_start_us, local_date, local_to_utc_us, timestamp_to_us
 
@@ -53,13 +55,24 @@ def open_local_file(path: str):
 
 @dataclasses.dataclass(frozen=True)
 class RowGroupSpan:
-    """One row group: its index, row count, UTC time range and decoded size estimate."""
+    """One row group: its index, row count, UTC time range and decoded size estimate.
+
+    ``segments_us`` is filled only with ``[windows] align = "records"`` for a row group whose
+    time column was read because it may hold a pause: its contiguous runs of samples as
+    ``(first, last)`` UTC microseconds, when there is more than one (empty: one run).
+    """
 
     index: int
     n_rows: int
     start_us: int
     end_us: int
     decoded_bytes: int
+    segments_us: Tuple[Tuple[int, int], ...] = ()
+
+    @property
+    def runs_us(self) -> Tuple[Tuple[int, int], ...]:
+        """The row group's contiguous runs of samples (one run unless ``segments_us`` says more)."""
+        return self.segments_us or ((self.start_us, self.end_us),)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -271,8 +284,13 @@ def _long_layout_problem(schema: pa.Schema, numeric: Tuple[str, ...], path: str,
 def _row_group_spans(pf: pq.ParquetFile, leaf: Optional[int], unit: Optional[str], naive: bool,
                      row_bytes: int, config: AssetConfig) -> Tuple[List[RowGroupSpan], List[int]]:
     """Per non-empty row group its UTC time range, from statistics or (where they are absent)
-    from its time column; also the indices of the row groups whose time column was read."""
+    from its time column; also the indices of the row groups whose time column was read.
+
+    With ``[windows] align = "records"`` the time column of a row group that may hold a pause
+    (:func:`may_hold_pause`) is read too, and its contiguous runs are kept in ``segments_us``.
+    """
     archive = config.archive
+    records = config.windows.align == "records"
     meta = pf.metadata
     spans, missing_stats = [], []
     for i in range(meta.num_row_groups):
@@ -281,31 +299,101 @@ def _row_group_spans(pf: pq.ParquetFile, leaf: Optional[int], unit: Optional[str
             continue
         column = rg.column(leaf)
         stats = column.statistics if column.is_stats_set else None
+        times = None
         if stats is not None and stats.has_min_max and unit is not None and column.physical_type == "INT64":
             lo = int(timestamp_to_us(np.array([stats.min_raw]), unit)[0])
             hi = int(timestamp_to_us(np.array([stats.max_raw]), unit)[0])
         else:
-            found = _time_range_read(pf, i, archive.time_column)
-            if found is None:
+            times = _row_group_times(pf, i, archive.time_column)
+            if times.size == 0:
                 continue
-            lo, hi = found
+            lo, hi = int(times.min()), int(times.max())
             missing_stats.append(i)
         if naive:
             lo, hi = (int(v) for v in local_to_utc_us(np.array([lo, hi]), archive.timezone))
-        spans.append(RowGroupSpan(i, rg.num_rows, lo, hi, rg.num_rows * row_bytes))
+        segments: Tuple[Tuple[int, int], ...] = ()
+        if records and may_hold_pause(lo, hi, rg.num_rows, config):
+            if times is None:
+                times = _row_group_times(pf, i, archive.time_column)
+            utc = local_to_utc_us(times, archive.timezone) if naive else times
+            runs = contiguous_runs(utc, record_gap_us(config))
+            segments = runs if len(runs) > 1 else ()
+        spans.append(RowGroupSpan(i, rg.num_rows, lo, hi, rg.num_rows * row_bytes, segments))
     return spans, missing_stats
 
 
-def _time_range_read(pf: pq.ParquetFile, index: int, time_column: str) -> Optional[Tuple[int, int]]:
-    """(min, max) of a row group's time column in microseconds of its own clock, read from the
-    data (None when it holds no timestamp)."""
+def _row_group_times(pf: pq.ParquetFile, index: int, time_column: str) -> np.ndarray:
+    """A row group's non-null timestamps in microseconds of its own clock (int64), read from the data."""
     times = pf.read_row_group(index, columns=[time_column]).column(0)
     times = times.cast(pa.timestamp("us", pf.schema_arrow.field(time_column).type.tz), safe=False)
     values = times.cast(pa.int64()).to_numpy(zero_copy_only=False)
-    values = values[~np.isnan(values)] if values.dtype.kind == "f" else values
-    if values.size == 0:
-        return None
-    return int(values.min()), int(values.max())
+    return values[~np.isnan(values)].astype(np.int64) if values.dtype.kind == "f" else values
+
+
+# --------------------------------------------------------------------------------------------
+# Records (contiguous runs of samples)
+
+
+def record_gap_us(config: AssetConfig) -> float:
+    """The longest pause (microseconds) between two samples of one record: ``[windows]
+    record_gap_s``, by default :data:`~corrtransforms.config.RECORD_GAP_PERIODS` sample intervals."""
+    gap_s = config.windows.record_gap_s
+    if gap_s is None:
+        gap_s = RECORD_GAP_PERIODS / config.archive.sample_rate_hz
+    return gap_s * US_PER_S
+
+
+def may_hold_pause(start_us: int, end_us: int, n_rows: int, config: AssetConfig) -> bool:
+    """True when a row group's statistics cannot rule out a pause inside it.
+
+    Wide layout: ``n_rows`` samples without a pause span at most ``(n_rows - 1)`` sample intervals
+    plus one record gap (jitter); a longer span may hide a pause. Long layout: the row count
+    mixes channels and says nothing about the number of samples, so every row group may.
+    """
+    if config.archive.layout == "long":
+        return True
+    period_us = US_PER_S / config.archive.sample_rate_hz
+    return end_us - start_us > (n_rows - 1) * period_us + record_gap_us(config)
+
+
+def contiguous_runs(times_us: np.ndarray, gap_us: float) -> Tuple[Tuple[int, int], ...]:
+    """(first, last) of each run of timestamps whose consecutive (sorted) spacings are at most ``gap_us``."""
+    t = np.unique(np.asarray(times_us, dtype=np.int64))
+    if t.size == 0:
+        return ()
+    breaks = np.flatnonzero(np.diff(t) > gap_us)
+    firsts = np.concatenate([[0], breaks + 1])
+    lasts = np.concatenate([breaks, [t.size - 1]])
+    return tuple((int(t[a]), int(t[b])) for a, b in zip(firsts, lasts))
+
+
+def find_records(footers: Sequence[FileFooter], config: AssetConfig) -> List[Tuple[int, int]]:
+    """The archive's records as ``(first, last)`` UTC microseconds, in time order.
+
+    Runs of samples from the footers (a row group is one run unless its time column showed
+    pauses) are joined when the next one starts at most :func:`record_gap_us` after the end of
+    the one before (overlapping runs, as of two files holding the same span, join too).
+    """
+    gap_us = record_gap_us(config)
+    runs = sorted(run for footer in footers for rg in footer.row_groups for run in rg.runs_us)
+    records: List[List[int]] = []
+    for lo, hi in runs:
+        if records and lo - records[-1][1] <= gap_us:
+            records[-1][1] = max(records[-1][1], hi)
+        else:
+            records.append([lo, hi])
+    return [(lo, hi) for lo, hi in records]
+
+
+def record_window_starts(records: Sequence[Tuple[int, int]], config: AssetConfig) -> List[int]:
+    """Window starts of ``[windows] align = "records"``: per record ``first + j * hop`` for every
+    window that holds one of the record's samples (sorted, each once)."""
+    _, hop_us, _, period_us = window_grid(config)
+    starts = set()
+    for first, last in records:
+        count = math.floor((last + period_us / 2 - first) / hop_us) + 1
+        starts.update(first + j * hop_us for j in range(count))
+    return sorted(starts)
 
 
 # --------------------------------------------------------------------------------------------
@@ -333,7 +421,8 @@ class FilePiece:
 class ReadTask:
     """A small, picklable description of one unit of reading work.
 
-    ``window_starts_us`` are the planned windows (UTC microseconds, epoch-aligned); every one
+    ``window_starts_us`` are the planned windows (UTC microseconds, on the epoch grid shifted by
+    ``[windows] offset_s``, or at record starts with ``align = "records"``); every one
     yields a :class:`~corrtransforms.records.WindowBlock` or a whole-window reject.
     """
 
@@ -423,10 +512,12 @@ def plan_reads(footers: Sequence[FileFooter], footer_rejects: Sequence[Reject], 
 
     Notes
     -----
-    Window ``k`` covers ``[k * hop, k * hop + length)`` (epoch-aligned, so a window is the same
-    whichever files a run reads); it holds the samples at ``t`` with
-    ``k * hop - T/2 <= t < k * hop + length - T/2`` (T the sample period), and is planned when a
-    row group's time range holds such a ``t``. Tasks take consecutive windows while the decoded size of the
+    With ``[windows] align = "epoch"`` window ``k`` covers ``[s, s + length)`` with
+    ``s = offset_s + k * hop`` (fixed to the epoch, so a window is the same whichever files a run
+    reads); with ``align = "records"`` the starts are ``first + j * hop`` of every record found
+    from all footers (:func:`find_records`, :func:`record_window_starts`). A window holds the
+    samples at ``t`` with ``s - T/2 <= t < s + length - T/2`` (T the sample period), and is
+    planned when a row group's time range holds such a ``t``. Tasks take consecutive windows while the decoded size of the
     union of their row groups stays within ``[reading] task_bytes``; a window that needs no new
     row group always joins the current task, so a row group larger than a window is decoded once.
     A window is in exactly one task, with every row group of every file it overlaps.
@@ -438,7 +529,9 @@ def plan_reads(footers: Sequence[FileFooter], footer_rejects: Sequence[Reject], 
     lo_us = day_start_us(start, tz) if start else None
     hi_us = day_start_us(end + _dt.timedelta(days=1), tz) if end else None
     usable, rejects = _usable_files(footers, config, channels + covariates, lo_us, hi_us, length_us)
-    needs = _window_needs(usable, config, lo_us, hi_us)
+    record_starts = (record_window_starts(find_records(footers, config), config)
+                     if config.windows.align == "records" else None)
+    needs = _window_needs(usable, config, lo_us, hi_us, record_starts)
     sizes = {(f_index, rg.index): rg.decoded_bytes
              for f_index, file in enumerate(usable) for rg in file.footer.row_groups}
     groups = _group_windows(needs, sizes, config.reading.task_bytes)
@@ -492,18 +585,29 @@ def _absent_channel_findings(footer: FileFooter, absent: Sequence[str], config: 
 
 
 def _window_needs(usable: Sequence[_UsableFile], config: AssetConfig, lo_us: Optional[int],
-                  hi_us: Optional[int]) -> Dict[int, List[Tuple[int, int]]]:
-    """Window start (UTC us) -> the (file, row group) keys whose time range holds one of its samples."""
+                  hi_us: Optional[int], record_starts: Optional[Sequence[int]] = None
+                  ) -> Dict[int, List[Tuple[int, int]]]:
+    """Window start (UTC us) -> the (file, row group) keys whose time range holds one of its samples.
+
+    The window starting at ``s`` holds the samples ``t`` with ``s - T/2 <= t < s + length - T/2``.
+    Epoch alignment: ``s = offset + k * hop``; record alignment: ``s`` from ``record_starts``.
+    """
     length_us, hop_us, _, period_us = window_grid(config)
     half_period = period_us / 2
+    offset_us = int(round(config.windows.offset_s * US_PER_S))
     needs: Dict[int, List[Tuple[int, int]]] = {}
     for f_index, file in enumerate(usable):
         for rg in file.footer.row_groups:
-            # window k holds samples t with k*hop - T/2 <= t < k*hop + length - T/2
-            first = math.floor((rg.start_us - length_us + half_period) / hop_us) + 1
-            last = math.floor((rg.end_us + half_period) / hop_us)
-            for k in range(first, last + 1):
-                s = k * hop_us
+            if record_starts is None:
+                first = math.floor((rg.start_us - offset_us - length_us + half_period) / hop_us) + 1
+                last = math.floor((rg.end_us - offset_us + half_period) / hop_us)
+                starts = [offset_us + k * hop_us for k in range(first, last + 1)]
+            else:
+                # starts s with rg.start - length + T/2 < s <= rg.end + T/2
+                a = bisect.bisect_right(record_starts, rg.start_us - length_us + half_period)
+                b = bisect.bisect_right(record_starts, rg.end_us + half_period)
+                starts = record_starts[a:b]
+            for s in starts:
                 if (lo_us is not None and s < lo_us) or (hi_us is not None and s >= hi_us):
                     continue
                 needs.setdefault(s, []).append((f_index, rg.index))

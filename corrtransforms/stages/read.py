@@ -693,7 +693,9 @@ def read_windows(task: ReadTask, config: AssetConfig, open_file: OpenFile = open
 
     Notes
     -----
-    Snapping: sample ``i`` of a window is the row with ``round((t - start) / T - phi) == i``,
+    Snapping: sample ``i`` of a window is the row with ``round((t - start) / T - phi) == i``
+    (the grid is the window's own, from its start: windows off the epoch grid, with
+    ``[windows] offset_s`` or ``align = "records"``, snap the same way),
     ``T = 1 / sample_rate_hz``, ``phi`` the group's mean grid phase; rows further than
     ``[reading] grid_tolerance * T`` from their grid point are gaps. Coverage of a channel is its
     fraction of valid grid points; below ``[windows] min_coverage`` the channel is rejected in that
