@@ -15,6 +15,7 @@ import dataclasses
 import datetime as _dt
 import hashlib
 import json
+import logging
 import os
 import re
 import sys
@@ -26,6 +27,8 @@ else:  # pragma: no cover
     import tomli as tomllib
 
 from corrtransforms.numerics.correlation import DETRENDS, ESTIMATORS, WEIGHTINGS
+
+_LOG = logging.getLogger(__name__)
 
 LAYOUTS = ("wide", "long")
 ALIGNMENTS = ("epoch", "records")
@@ -165,8 +168,13 @@ class AssetConfig:
     screening: ScreeningConfig = ScreeningConfig()
     shifts: ShiftsConfig = ShiftsConfig()
     reading: ReadingConfig = ReadingConfig()
+    #: ``[asset] timezone``: the calendar day a window belongs to (partitions, --date, baselines);
+    #: naive timestamps are read in ``archive.timezone``
+    timezone: str = "UTC"
     #: the file the configuration was read from ("" when built in code)
     source: str = ""
+    #: messages about the configuration that are not errors (deprecated forms still accepted)
+    notes: Tuple[str, ...] = ()
 
     def compensated_covariates(self) -> Tuple[str, ...]:
         if self.shifts.compensate is None:
@@ -174,12 +182,12 @@ class AssetConfig:
         return tuple(self.shifts.compensate)
 
     def as_dict(self) -> Dict[str, Any]:
-        """Plain, JSON-serialisable form (dates as ISO strings), without ``source``."""
+        """Plain, JSON-serialisable form (dates as ISO strings), without ``source`` and ``notes``."""
 
         def plain(value):
             if dataclasses.is_dataclass(value):
                 return {f.name: plain(getattr(value, f.name)) for f in dataclasses.fields(value)
-                        if f.name != "source"}
+                        if f.name not in ("source", "notes")}
             if isinstance(value, (list, tuple)):
                 return [plain(v) for v in value]
             if isinstance(value, Mapping):
@@ -200,7 +208,7 @@ class AssetConfig:
 # Validation helpers
 
 _KNOWN = {
-    "asset": {"name"},
+    "asset": {"name", "timezone"},
     "archive": {"path", "layout", "time_column", "channel_column", "value_column",
                 "sample_rate_hz", "timezone"},
     "channels": {"names", "covariates", "units"},
@@ -322,6 +330,7 @@ def parse_config(raw: Mapping[str, Any], base_dir: str = "", source: str = "") -
                           + ", ".join(sorted(_KNOWN)))
     name = _parse_asset(raw)
     archive = _parse_archive(raw, base_dir)
+    timezone, notes = _calendar_timezone(raw, archive)
     channels = _parse_channels(raw)
     windows = _parse_windows(raw, archive)
     correlation = _parse_correlation(raw, windows, channels)
@@ -329,7 +338,7 @@ def parse_config(raw: Mapping[str, Any], base_dir: str = "", source: str = "") -
     return AssetConfig(name=name, archive=archive, channels=channels, windows=windows,
                        correlation=correlation, modes=modes, baseline=_parse_baseline(raw),
                        screening=_parse_screening(raw), shifts=_parse_shifts(raw, channels),
-                       reading=_parse_reading(raw), source=source)
+                       reading=_parse_reading(raw), timezone=timezone, source=source, notes=notes)
 
 
 def _parse_asset(raw: Mapping[str, Any]) -> str:
@@ -337,6 +346,27 @@ def _parse_asset(raw: Mapping[str, Any]) -> str:
     asset = _section(raw, "asset", required=True)
     return _string("[asset] name", asset.get("name"), ASSET_NAME_PATTERN,
                    "1-64 letters, digits, '-' or '_' (it becomes a folder name)")
+
+
+def _calendar_timezone(raw: Mapping[str, Any], archive: ArchiveConfig) -> Tuple[str, Tuple[str, ...]]:
+    """``[asset] timezone`` (calendar days) and the notes about it.
+
+    Before the key existed, ``[archive] timezone`` set both how naive timestamps are read and the
+    calendar day of a window. A file that gives ``[archive] timezone`` but no ``[asset] timezone``
+    keeps that meaning (same partitions, dates and baselines as before), with a note and a logged
+    warning that asks for the explicit key.
+    """
+    asset = raw.get("asset") or {}
+    if "timezone" in asset:
+        return _timezone("[asset] timezone", asset["timezone"]), ()
+    arch = raw.get("archive") or {}
+    if "timezone" not in arch or archive.timezone == "UTC":
+        return "UTC", ()
+    note = (f"[archive] timezone = {archive.timezone!r} also sets the calendar day of windows (partitions, "
+            f"--date, baselines) because [asset] timezone is not given; this fallback is deprecated: "
+            f"add [asset] timezone = {archive.timezone!r} to keep today's days")
+    _LOG.warning(note)
+    return archive.timezone, (note,)
 
 
 def _parse_archive(raw: Mapping[str, Any], base_dir: str) -> ArchiveConfig:

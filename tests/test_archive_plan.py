@@ -130,6 +130,29 @@ def test_day_range_in_the_asset_time_zone_and_naive_times(tmp_path):
     assert only.days == ("2024-03-04",)
 
 
+def test_archive_time_zone_reads_naive_times_and_asset_time_zone_sets_the_days(tmp_path):
+    # the data above: naive Berlin wall clock for 22:30-23:30 UTC on 2024-03-03
+    start = T0 - 90 * 60 * US
+    cols = samples(3600, 1.0, seed=3, start_us=start)
+    naive = dict(cols, time=cols["time"] + 3600 * US)
+    folder = str(tmp_path / "tz")
+    write_files(folder, wide_table(naive, tz=None), 3600, 1000, hive=True)
+    utc_days = make_config(folder, rate=1.0, length_s=600.0, max_lag_s=10.0, timezone="Europe/Berlin",
+                           extra={"asset": {"timezone": "UTC"}})
+    assert (utc_days.archive.timezone, utc_days.timezone, utc_days.notes) == ("Europe/Berlin", "UTC", ())
+    plan = plan_archive(list_local_archive(folder), utc_days)
+    # naive times still read as Berlin wall clock: the same UTC instants as with one zone
+    assert _windows(plan) == [start + k * 600 * US for k in range(6)]
+    # ... but the windows belong to 2024-03-03, their UTC day (in Berlin they straddle midnight)
+    assert plan.days == ("2024-03-03",) and {d for t in plan.tasks for d in t.dates} == {"2024-03-03"}
+    day = dt.date(2024, 3, 4)
+    assert plan_archive(list_local_archive(folder), utc_days, start=day, end=day).windows_planned == 0
+    # the old single key still sets both (same days as before), with a deprecation note
+    berlin_days = make_config(folder, rate=1.0, length_s=600.0, max_lag_s=10.0, timezone="Europe/Berlin")
+    assert berlin_days.timezone == "Europe/Berlin" and "deprecated" in berlin_days.notes[0]
+    assert plan_archive(list_local_archive(folder), berlin_days).days == ("2024-03-03", "2024-03-04")
+
+
 def test_long_layout_plans_like_wide(tmp_path):
     cols = samples(600, 10.0, seed=4)
     write_files(str(tmp_path / "w"), wide_table(cols), 200, 500)

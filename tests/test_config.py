@@ -34,6 +34,8 @@ BAD_VALUES = [
     ("archive", "sample_rate_hz", "fast", "[archive] sample_rate_hz"),
     ("archive", "sample_rate_hz", True, "[archive] sample_rate_hz"),
     ("archive", "timezone", "Mars/Olympus", "[archive] timezone"),
+    ("asset", "timezone", "Mars/Olympus", "[asset] timezone"),
+    ("asset", "timezone", 1, "[asset] timezone"),
     ("channels", "names", "a", "[channels] names"),
     ("channels", "names", ["a", "a"], "[channels] names"),
     ("channels", "names", ["x:y"], "[channels] names"),
@@ -183,3 +185,21 @@ def test_offset_s_is_for_the_epoch_grid_only():
     raw["windows"] = {"align": "records", "record_gap_s": 5}
     windows = parse_config(raw).windows
     assert (windows.align, windows.offset_s, windows.record_gap_s) == ("records", 0.0, 5.0)
+
+
+def test_asset_and_archive_time_zones_are_separate_keys_and_the_old_single_key_still_works(caplog):
+    raw = copy.deepcopy(MINIMAL)
+    assert (parse_config(raw).timezone, parse_config(raw).archive.timezone) == ("UTC", "UTC")
+    raw["asset"]["timezone"] = "Europe/Vienna"
+    config = parse_config(raw)
+    assert (config.timezone, config.archive.timezone, config.notes) == ("Europe/Vienna", "UTC", ())
+    raw = copy.deepcopy(MINIMAL)
+    raw["archive"]["timezone"] = "Europe/Vienna"
+    with caplog.at_level("WARNING", logger="corrtransforms.config"):
+        config = parse_config(raw)
+    # before [asset] timezone existed, [archive] timezone set the calendar days too: kept, with a note
+    assert (config.timezone, config.archive.timezone) == ("Europe/Vienna", "Europe/Vienna")
+    assert len(config.notes) == 1 and "[asset] timezone" in config.notes[0] and "deprecated" in config.notes[0]
+    assert config.notes[0] in caplog.text
+    # notes are not part of the configuration's digest
+    assert "notes" not in config.as_dict() and config.as_dict()["timezone"] == "Europe/Vienna"

@@ -12,7 +12,8 @@ returns a binary, seekable file object (the Beam layer hands in
 ``apache_beam.io.filesystems.FileSystems.open``); :func:`open_local_file` serves local paths.
 
 Time conventions (see :mod:`corrtransforms.timeutil`): every time is an integer count of microseconds since the Unix epoch, UTC.
-Naive (time-zone-less) timestamps in a file are local times of ``[archive] timezone``.
+Naive (time-zone-less) timestamps in a file are local times of ``[archive] timezone``; calendar days
+(of partitions, ``--start``/``--end`` and findings) are those of ``[asset] timezone`` (``config.timezone``).
 """
 from __future__ import annotations
 
@@ -244,7 +245,7 @@ def _summarise_file(handle, path: str, config: AssetConfig) -> Tuple[Optional[Fi
         findings.append(_file_reject(
             config, path, "statistics_missing",
             f"row groups {missing_stats}: no min/max statistics of {archive.time_column!r}; time column read",
-            date=local_date(footer.start_us, archive.timezone)))
+            date=local_date(footer.start_us, config.timezone)))
     return footer, findings
 
 
@@ -522,7 +523,7 @@ def plan_reads(footers: Sequence[FileFooter], footer_rejects: Sequence[Reject], 
     row group always joins the current task, so a row group larger than a window is decoded once.
     A window is in exactly one task, with every row group of every file it overlaps.
     """
-    tz = config.archive.timezone
+    tz = config.timezone
     length_us = window_grid(config)[0]
     channels = resolve_channels(footers, config)
     covariates = tuple(config.channels.covariates)
@@ -572,7 +573,7 @@ def _usable_files(footers: Sequence[FileFooter], config: AssetConfig, names: Tup
 
 def _absent_channel_findings(footer: FileFooter, absent: Sequence[str], config: AssetConfig) -> List[Reject]:
     """``non_numeric_channel`` or ``missing_channel_column`` per configured name a file lacks."""
-    file_date = local_date(footer.start_us, config.archive.timezone)
+    file_date = local_date(footer.start_us, config.timezone)
     found = []
     for name in absent:
         if name in footer.other_columns:
@@ -653,7 +654,7 @@ def _read_task(starts: Sequence[int], rg_keys: Iterable[Tuple[int, int]], usable
     starts = tuple(starts)
     return ReadTask(asset=config.name, task_id=compact_utc(starts[0]), window_starts_us=starts,
                     channels=channels, covariates=covariates, pieces=tuple(pieces),
-                    dates=tuple(sorted({local_date(s, config.archive.timezone) for s in starts})))
+                    dates=tuple(sorted({local_date(s, config.timezone) for s in starts})))
 
 
 def _dated_findings(findings: Sequence[Reject], out_of_range: set, start: Optional[_dt.date],

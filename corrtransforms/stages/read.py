@@ -164,7 +164,7 @@ def _load(task: ReadTask, config: AssetConfig, open_file: OpenFile, findings: Li
     per-channel finding. Rows with a null timestamp are dropped (``null_timestamps``).
     """
     names = task.channels + task.covariates
-    date = local_date(task.window_starts_us[0], config.archive.timezone)
+    date = local_date(task.window_starts_us[0], config.timezone)
     pieces: List[_PieceRows] = []
     lost: List[_LostRows] = []
     for piece in task.pieces:
