@@ -9,7 +9,8 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from corrtransforms.stages.plan import find_records, list_local_archive, plan_archive, read_footer, window_grid
+from corrtransforms.stages.plan import (find_records, list_local_archive, missing_channels, plan_archive, read_footer,
+                                       window_grid)
 from corrtransforms.timeutil import local_to_utc_us
 from tests.archive_data import (T0, US, bad_wide_archive, duty_cycled_records, long_table, make_config, samples,
                                 wide_table, write_duty_cycled_archive, write_files)
@@ -237,3 +238,21 @@ def test_offset_s_shifts_the_epoch_grid(small_groups):
     starts = _windows(plan_archive(list_local_archive(small_groups), config))
     # 600 s of data from T0: windows at T0 - 45 s + k * 60 s that hold a sample (closed form: 11)
     assert starts == [T0 - 45 * US + k * 60 * US for k in range(11)]
+
+
+def test_missing_channels_names_configured_channels_no_footer_holds(tmp_path):
+    cols = samples(120, 10.0, seed=5)
+    write_files(str(tmp_path / "w"), wide_table(cols), 60, 300)
+    # file 2 lacks b: b is still in one file, so only the misspelt channel and covariate are missing
+    pq.write_table(wide_table(samples(60, 10.0, seed=6, start_us=T0 + 200 * US)).drop_columns(["b"]),
+                   str(tmp_path / "w" / "no-b.parquet"))
+    config = make_config(str(tmp_path / "w"), names=("a", "b", "acc9"), covariates=("temprature",))
+    footers = _footers(str(tmp_path / "w"), config)
+    assert missing_channels(footers, config) == {"acc9": ("a", "b", "temperature"),
+                                                 "temprature": ("a", "b", "temperature")}
+    assert missing_channels(footers, make_config(str(tmp_path / "w"))) == {}
+    assert missing_channels([], config) == {}
+    # long layout with channel values in the footers ([channels] names omitted): covariates checked
+    write_files(str(tmp_path / "l"), long_table(cols), 60, 900)
+    long = make_config(str(tmp_path / "l"), layout="long", names=None, covariates=("humidity",))
+    assert missing_channels(_footers(str(tmp_path / "l"), long), long) == {"humidity": ("a", "b", "temperature")}

@@ -481,6 +481,47 @@ def resolve_channels(footers: Sequence[FileFooter], config: AssetConfig) -> Tupl
     return tuple(seen)
 
 
+def missing_channels(footers: Sequence[FileFooter], config: AssetConfig) -> Dict[str, Tuple[str, ...]]:
+    """Configured channels and covariates that no file's footer holds: a configuration error.
+
+    Parameters
+    ----------
+    footers : sequence of FileFooter
+        Summaries from :func:`read_footer` of every file a run lists.
+    config : AssetConfig
+        The asset's configuration.
+
+    Returns
+    -------
+    dict
+        ``{name: columns_found}`` for every name of ``[channels] names`` and ``covariates`` that is
+        a numeric column (wide layout) or a channel value (long layout) of no file; ``columns_found``
+        are the numeric columns (wide) or channel values (long) the files do hold, sorted, for the
+        message. Empty when every name is found, when there are no footers, and in the long
+        layout when the footers list no channel values (they are read only when ``[channels]
+        names`` is omitted; a configured long-layout channel is then checked by the read stage).
+
+    Examples
+    --------
+    A launcher stops before the pipeline starts::
+
+        missing = missing_channels(footers, config)
+        if missing:
+            name, found = next(iter(missing.items()))
+            raise ConfigError("[channels] names", name, "is in no file; columns found: " + ", ".join(found))
+    """
+    long = config.archive.layout == "long"
+    found = set()
+    for footer in footers:
+        found.update(footer.long_channels if long else footer.numeric_columns)
+    found.discard(config.archive.time_column)
+    if not found:
+        return {}
+    wanted = tuple(config.channels.names or ()) + tuple(config.channels.covariates)
+    columns = tuple(sorted(found))
+    return {name: columns for name in wanted if name not in found}
+
+
 @dataclasses.dataclass(frozen=True)
 class _UsableFile:
     """A file this run reads: its footer, the columns to decode and the configured names it lacks."""
