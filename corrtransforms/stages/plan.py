@@ -5,7 +5,9 @@ time column's statistics), the row count, and the columns present. It then cuts 
 windows (on the epoch grid, or from each record's first sample) and groups consecutive windows into
 read tasks whose decoded size stays near ``[reading] task_bytes``. A :class:`ReadTask` names files,
 row groups, columns and windows; it is small and picklable, so only task descriptions ever travel
-through a shuffle, never samples.
+through a shuffle, never samples. Two exceptions read a time column, one row group at a time: a row
+group without time statistics (``statistics_missing``), and with ``[windows] align = "records"`` a
+row group whose statistics cannot rule out a pause inside it (:func:`may_hold_pause`).
 
 This module is pure pyarrow/numpy. File access goes through an ``open_file(path)`` callable that
 returns a binary, seekable file object (the Beam layer hands in
