@@ -15,6 +15,7 @@ import dataclasses
 import datetime as _dt
 import hashlib
 import json
+import logging
 import os
 import re
 import sys
@@ -25,10 +26,14 @@ if sys.version_info >= (3, 11):
 else:  # pragma: no cover
     import tomli as tomllib
 
+from corrtransforms.numerics.correlation import DETRENDS, ESTIMATORS, WEIGHTINGS
+
+_LOG = logging.getLogger(__name__)
+
 LAYOUTS = ("wide", "long")
-ESTIMATORS = ("biased", "unbiased")
-DETRENDS = ("mean", "none", "linear")
-WEIGHTINGS = ("none", "phat", "scot")
+ALIGNMENTS = ("epoch", "records")
+#: default [windows] record_gap_s, in sample intervals: a longer pause between samples ends a record
+RECORD_GAP_PERIODS = 2.0
 SCREENING_ACTIONS = ("flag", "exclude")
 DETECTORS = ("cusum", "ewma", "both")
 #: indicator names of the indicators table (more may follow); "covariate_mean" rows carry the
@@ -78,6 +83,14 @@ class WindowsConfig:
     length_s: float = 600.0
     hop_s: float = 600.0
     min_coverage: float = 0.9
+    #: "epoch": window starts offset_s + k * hop_s after the Unix epoch; "records": every
+    #: contiguous record starts its own windows at its first sample
+    align: str = "epoch"
+    #: shift of the epoch grid in seconds, in [0, hop_s)
+    offset_s: float = 0.0
+    #: align = "records": a pause between samples longer than this ends a record (None: 2 sample
+    #: intervals, resolved by the planner from the sample rate)
+    record_gap_s: Optional[float] = None
 
 
 @dataclasses.dataclass(frozen=True)
@@ -155,8 +168,13 @@ class AssetConfig:
     screening: ScreeningConfig = ScreeningConfig()
     shifts: ShiftsConfig = ShiftsConfig()
     reading: ReadingConfig = ReadingConfig()
+    #: ``[asset] timezone``: the calendar day a window belongs to (partitions, --date, baselines);
+    #: naive timestamps are read in ``archive.timezone``
+    timezone: str = "UTC"
     #: the file the configuration was read from ("" when built in code)
     source: str = ""
+    #: messages about the configuration that are not errors (deprecated forms still accepted)
+    notes: Tuple[str, ...] = ()
 
     def compensated_covariates(self) -> Tuple[str, ...]:
         if self.shifts.compensate is None:
@@ -164,12 +182,12 @@ class AssetConfig:
         return tuple(self.shifts.compensate)
 
     def as_dict(self) -> Dict[str, Any]:
-        """Plain, JSON-serialisable form (dates as ISO strings), without ``source``."""
+        """Plain, JSON-serialisable form (dates as ISO strings), without ``source`` and ``notes``."""
 
         def plain(value):
             if dataclasses.is_dataclass(value):
                 return {f.name: plain(getattr(value, f.name)) for f in dataclasses.fields(value)
-                        if f.name != "source"}
+                        if f.name not in ("source", "notes")}
             if isinstance(value, (list, tuple)):
                 return [plain(v) for v in value]
             if isinstance(value, Mapping):
@@ -190,11 +208,11 @@ class AssetConfig:
 # Validation helpers
 
 _KNOWN = {
-    "asset": {"name"},
+    "asset": {"name", "timezone"},
     "archive": {"path", "layout", "time_column", "channel_column", "value_column",
                 "sample_rate_hz", "timezone"},
     "channels": {"names", "covariates", "units"},
-    "windows": {"length_s", "hop_s", "min_coverage"},
+    "windows": {"length_s", "hop_s", "min_coverage", "align", "offset_s", "record_gap_s"},
     "correlation": {"max_lag_s", "pairs", "estimator", "detrend", "weighting", "target_rel_error"},
     "modes": {"name", "channel", "band_hz"},
     "baseline": {"start", "end", "windows", "min_windows"},
@@ -302,23 +320,63 @@ def parse_config(raw: Mapping[str, Any], base_dir: str = "", source: str = "") -
     Raises
     ------
     ConfigError
-        On the first invalid key, naming the key, the value and what is allowed.
+        On the first invalid key, naming the key, the value and what is allowed. Sections are
+        checked in the order asset, archive, channels, windows, correlation, modes, baseline,
+        screening, shifts, reading (one parser per section).
     """
     unknown = sorted(set(raw) - set(_KNOWN))
     if unknown:
         raise ConfigError(f"[{unknown[0]}]", "...", "is not a known section; known sections: "
                           + ", ".join(sorted(_KNOWN)))
+    name = _parse_asset(raw)
+    archive = _parse_archive(raw, base_dir)
+    timezone, notes = _calendar_timezone(raw, archive)
+    channels = _parse_channels(raw)
+    windows = _parse_windows(raw, archive)
+    correlation = _parse_correlation(raw, windows, channels)
+    modes = _parse_modes(raw, archive, channels)
+    return AssetConfig(name=name, archive=archive, channels=channels, windows=windows,
+                       correlation=correlation, modes=modes, baseline=_parse_baseline(raw),
+                       screening=_parse_screening(raw), shifts=_parse_shifts(raw, channels),
+                       reading=_parse_reading(raw), timezone=timezone, source=source, notes=notes)
 
+
+def _parse_asset(raw: Mapping[str, Any]) -> str:
+    """``[asset]``: the asset's name."""
     asset = _section(raw, "asset", required=True)
-    name = _string("[asset] name", asset.get("name"), ASSET_NAME_PATTERN,
+    return _string("[asset] name", asset.get("name"), ASSET_NAME_PATTERN,
                    "1-64 letters, digits, '-' or '_' (it becomes a folder name)")
 
+
+def _calendar_timezone(raw: Mapping[str, Any], archive: ArchiveConfig) -> Tuple[str, Tuple[str, ...]]:
+    """``[asset] timezone`` (calendar days) and the notes about it.
+
+    Before the key existed, ``[archive] timezone`` set both how naive timestamps are read and the
+    calendar day of a window. A file that gives ``[archive] timezone`` but no ``[asset] timezone``
+    keeps that meaning (same partitions, dates and baselines as before), with a note and a logged
+    warning that asks for the explicit key.
+    """
+    asset = raw.get("asset") or {}
+    if "timezone" in asset:
+        return _timezone("[asset] timezone", asset["timezone"]), ()
+    arch = raw.get("archive") or {}
+    if "timezone" not in arch or archive.timezone == "UTC":
+        return "UTC", ()
+    note = (f"[archive] timezone = {archive.timezone!r} also sets the calendar day of windows (partitions, "
+            f"--date, baselines) because [asset] timezone is not given; this fallback is deprecated: "
+            f"add [asset] timezone = {archive.timezone!r} to keep today's days")
+    _LOG.warning(note)
+    return archive.timezone, (note,)
+
+
+def _parse_archive(raw: Mapping[str, Any], base_dir: str) -> ArchiveConfig:
+    """``[archive]``: where the samples are and how the files are laid out."""
     arch = _section(raw, "archive", required=True)
     if "path" not in arch:
         raise ConfigError("[archive] path", None, "is required: a folder, a glob or a Beam filesystem URL")
     if "sample_rate_hz" not in arch:
         raise ConfigError("[archive] sample_rate_hz", None, "is required: the nominal sample rate in Hz")
-    archive = ArchiveConfig(
+    return ArchiveConfig(
         path=_resolve_path(_string("[archive] path", arch["path"]), base_dir),
         layout=_choice("[archive] layout", arch.get("layout", "wide"), LAYOUTS),
         time_column=_string("[archive] time_column", arch.get("time_column", "time")),
@@ -328,6 +386,9 @@ def parse_config(raw: Mapping[str, Any], base_dir: str = "", source: str = "") -
         timezone=_timezone("[archive] timezone", arch.get("timezone", "UTC")),
     )
 
+
+def _parse_channels(raw: Mapping[str, Any]) -> ChannelsConfig:
+    """``[channels]``: correlated channels, covariates and units."""
     ch = _section(raw, "channels")
     names = _string_list("[channels] names", ch["names"]) if "names" in ch else None
     covariates = _string_list("[channels] covariates", ch.get("covariates", []))
@@ -341,33 +402,62 @@ def parse_config(raw: Mapping[str, Any], base_dir: str = "", source: str = "") -
                               f"must not repeat a correlated channel ({both[0]!r} is in names too)")
     if not names and names is not None:
         raise ConfigError("[channels] names", [], "must list at least one channel, or be omitted for all")
-    channels = ChannelsConfig(names=names, covariates=covariates, units=dict(units))
+    return ChannelsConfig(names=names, covariates=covariates, units=dict(units))
 
+
+def _parse_windows(raw: Mapping[str, Any], archive: ArchiveConfig) -> WindowsConfig:
+    """``[windows]``: length, hop, minimum coverage (a whole number of samples per window) and
+    alignment (epoch grid with an offset, or record starts)."""
     win = _section(raw, "windows")
     length_s = _number("[windows] length_s", win.get("length_s", 600.0), low=0, low_open=True)
     hop_s = _number("[windows] hop_s", win.get("hop_s", length_s), low=0, low_open=True)
     if hop_s > length_s:
         raise ConfigError("[windows] hop_s", hop_s, f"must be at most length_s ({length_s})")
+    align = _choice("[windows] align", win.get("align", "epoch"), ALIGNMENTS)
+    offset_s = _number("[windows] offset_s", win.get("offset_s", 0.0), low=0, high=hop_s, high_open=True)
+    if offset_s and align == "records":
+        raise ConfigError("[windows] offset_s", offset_s,
+                          "must be 0 with align = \"records\" (record starts fix the windows)")
+    record_gap_s = (_number("[windows] record_gap_s", win["record_gap_s"], low=0, low_open=True)
+                    if "record_gap_s" in win else None)
     windows = WindowsConfig(
         length_s=length_s, hop_s=hop_s,
         min_coverage=_number("[windows] min_coverage", win.get("min_coverage", 0.9), low=0, high=1,
                              low_open=True),
+        align=align, offset_s=offset_s, record_gap_s=record_gap_s,
     )
     n_per_window = length_s * archive.sample_rate_hz
     if abs(n_per_window - round(n_per_window)) > 1e-6 or n_per_window < 16:
         raise ConfigError("[windows] length_s", length_s,
                           f"must hold a whole number (>= 16) of samples at {archive.sample_rate_hz} Hz")
+    return windows
 
+
+def _parse_correlation(raw: Mapping[str, Any], windows: WindowsConfig,
+                       channels: ChannelsConfig) -> CorrelationConfig:
+    """``[correlation]``: maximum lag, pairs, estimator, detrending, weighting, target error."""
     cor = _section(raw, "correlation")
+    length_s = windows.length_s
     max_lag_s = _number("[correlation] max_lag_s", cor.get("max_lag_s", min(10.0, length_s / 10)),
                         low=0, low_open=True)
     if max_lag_s >= length_s / 2:
         raise ConfigError("[correlation] max_lag_s", max_lag_s,
                           f"must be below half the window length ({length_s / 2} s)")
-    pairs_raw = cor.get("pairs", "all")
+    return CorrelationConfig(
+        max_lag_s=max_lag_s, pairs=_parse_pairs(cor.get("pairs", "all"), channels.names),
+        estimator=_choice("[correlation] estimator", cor.get("estimator", "biased"), ESTIMATORS),
+        detrend=_choice("[correlation] detrend", cor.get("detrend", "mean"), DETRENDS),
+        weighting=_choice("[correlation] weighting", cor.get("weighting", "none"), WEIGHTINGS),
+        target_rel_error=_number("[correlation] target_rel_error", cor.get("target_rel_error", 0.05),
+                                 low=0, high=1, low_open=True, high_open=True),
+    )
+
+
+def _parse_pairs(pairs_raw: Any, names: Optional[Tuple[str, ...]]):
+    """``[correlation] pairs``: "all", "auto" or a tuple of (a, b) pairs of configured channels."""
     if isinstance(pairs_raw, str):
-        pairs = _choice("[correlation] pairs", pairs_raw, ("all", "auto"))
-    elif isinstance(pairs_raw, list) and pairs_raw and all(
+        return _choice("[correlation] pairs", pairs_raw, ("all", "auto"))
+    if isinstance(pairs_raw, list) and pairs_raw and all(
             isinstance(p, list) and len(p) == 2 and all(isinstance(c, str) for c in p) for p in pairs_raw):
         pairs = tuple((p[0], p[1]) for p in pairs_raw)
         if names is not None:
@@ -376,46 +466,49 @@ def parse_config(raw: Mapping[str, Any], base_dir: str = "", source: str = "") -
                     if c not in names:
                         raise ConfigError("[correlation] pairs", pairs_raw,
                                           f"names channel {c!r}, which is not in [channels] names")
-    else:
-        raise ConfigError("[correlation] pairs", pairs_raw,
-                          "must be \"all\", \"auto\" or a list of [a, b] channel pairs")
-    correlation = CorrelationConfig(
-        max_lag_s=max_lag_s, pairs=pairs,
-        estimator=_choice("[correlation] estimator", cor.get("estimator", "biased"), ESTIMATORS),
-        detrend=_choice("[correlation] detrend", cor.get("detrend", "mean"), DETRENDS),
-        weighting=_choice("[correlation] weighting", cor.get("weighting", "none"), WEIGHTINGS),
-        target_rel_error=_number("[correlation] target_rel_error", cor.get("target_rel_error", 0.05),
-                                 low=0, high=1, low_open=True, high_open=True),
-    )
+        return pairs
+    raise ConfigError("[correlation] pairs", pairs_raw,
+                      "must be \"all\", \"auto\" or a list of [a, b] channel pairs")
 
+
+def _parse_modes(raw: Mapping[str, Any], archive: ArchiveConfig, channels: ChannelsConfig
+                 ) -> Tuple[ModeConfig, ...]:
+    """``[[modes]]``: named modes, each a channel and a frequency band below Nyquist."""
     modes_raw = raw.get("modes", [])
     if not isinstance(modes_raw, list):
         raise ConfigError("[[modes]]", modes_raw, "must be an array of tables ([[modes]])")
-    modes = []
-    nyquist = archive.sample_rate_hz / 2
-    for i, m in enumerate(modes_raw):
-        where = f"[[modes]] #{i + 1}"
-        if not isinstance(m, Mapping):
-            raise ConfigError(where, m, "must be a table")
-        unknown = sorted(set(m) - _KNOWN["modes"])
-        if unknown:
-            raise ConfigError(f"{where} {unknown[0]}", m[unknown[0]],
-                              "is not a known key; known keys: " + ", ".join(sorted(_KNOWN["modes"])))
-        mname = _string(f"{where} name", m.get("name"), CHANNEL_NAME_PATTERN, "a name (no ':')")
-        mchan = _string(f"{where} channel", m.get("channel"), CHANNEL_NAME_PATTERN, "a channel name")
-        if names is not None and mchan not in names:
-            raise ConfigError(f"{where} channel", mchan, "must be one of [channels] names")
-        band = m.get("band_hz")
-        if (not isinstance(band, list) or len(band) != 2
-                or not all(isinstance(b, (int, float)) and not isinstance(b, bool) for b in band)
-                or not 0 < band[0] < band[1]):
-            raise ConfigError(f"{where} band_hz", band, "must be [low, high] in Hz with 0 < low < high")
-        if band[1] >= nyquist:
-            raise ConfigError(f"{where} band_hz", band, f"must lie below the Nyquist frequency ({nyquist} Hz)")
-        modes.append(ModeConfig(mname, mchan, (float(band[0]), float(band[1]))))
+    modes = tuple(_parse_mode(i, m, archive, channels) for i, m in enumerate(modes_raw))
     if len({m.name for m in modes}) != len(modes):
         raise ConfigError("[[modes]] name", [m.name for m in modes], "must be unique")
+    return modes
 
+
+def _parse_mode(i: int, m: Any, archive: ArchiveConfig, channels: ChannelsConfig) -> ModeConfig:
+    """One ``[[modes]]`` table (``i`` counts from 0; messages count from 1)."""
+    where = f"[[modes]] #{i + 1}"
+    if not isinstance(m, Mapping):
+        raise ConfigError(where, m, "must be a table")
+    unknown = sorted(set(m) - _KNOWN["modes"])
+    if unknown:
+        raise ConfigError(f"{where} {unknown[0]}", m[unknown[0]],
+                          "is not a known key; known keys: " + ", ".join(sorted(_KNOWN["modes"])))
+    mname = _string(f"{where} name", m.get("name"), CHANNEL_NAME_PATTERN, "a name (no ':')")
+    mchan = _string(f"{where} channel", m.get("channel"), CHANNEL_NAME_PATTERN, "a channel name")
+    if channels.names is not None and mchan not in channels.names:
+        raise ConfigError(f"{where} channel", mchan, "must be one of [channels] names")
+    band = m.get("band_hz")
+    if (not isinstance(band, list) or len(band) != 2
+            or not all(isinstance(b, (int, float)) and not isinstance(b, bool) for b in band)
+            or not 0 < band[0] < band[1]):
+        raise ConfigError(f"{where} band_hz", band, "must be [low, high] in Hz with 0 < low < high")
+    nyquist = archive.sample_rate_hz / 2
+    if band[1] >= nyquist:
+        raise ConfigError(f"{where} band_hz", band, f"must lie below the Nyquist frequency ({nyquist} Hz)")
+    return ModeConfig(mname, mchan, (float(band[0]), float(band[1])))
+
+
+def _parse_baseline(raw: Mapping[str, Any]) -> BaselineConfig:
+    """``[baseline]``: start and end dates, or a count of windows (default 100)."""
     base = _section(raw, "baseline")
     b_start = _date("[baseline] start", base["start"]) if "start" in base else None
     b_end = _date("[baseline] end", base["end"]) if "end" in base else None
@@ -430,43 +523,35 @@ def parse_config(raw: Mapping[str, Any], base_dir: str = "", source: str = "") -
         raise ConfigError("[baseline] windows", b_windows, "give either start/end or windows, not both")
     if b_windows is None and b_start is None:
         b_windows = 100
-    baseline = BaselineConfig(start=b_start, end=b_end, windows=b_windows,
-                              min_windows=_number("[baseline] min_windows", base.get("min_windows", 30),
-                                                  low=2, integer=True))
+    return BaselineConfig(start=b_start, end=b_end, windows=b_windows,
+                          min_windows=_number("[baseline] min_windows", base.get("min_windows", 30),
+                                              low=2, integer=True))
 
+
+def _parse_screening(raw: Mapping[str, Any]) -> ScreeningConfig:
+    """``[screening]``: stationarity tests (segments, level, action)."""
     scr = _section(raw, "screening")
     enabled = scr.get("enabled", True)
     if not isinstance(enabled, bool):
         raise ConfigError("[screening] enabled", enabled, "must be true or false")
-    screening = ScreeningConfig(
+    return ScreeningConfig(
         enabled=enabled,
         segments=_number("[screening] segments", scr.get("segments", 20), low=10, high=200, integer=True),
         alpha=_number("[screening] alpha", scr.get("alpha", 0.05), low=0, high=0.5, low_open=True),
         action=_choice("[screening] action", scr.get("action", "flag"), SCREENING_ACTIONS),
     )
 
+
+def _parse_shifts(raw: Mapping[str, Any], channels: ChannelsConfig) -> ShiftsConfig:
+    """``[shifts]``: detectors, their parameters, compensated covariates, monitored indicators."""
     sh = _section(raw, "shifts")
-    comp = sh.get("compensate", None)
-    all_covariates = set(covariates)
-    if comp is None or comp == "all":
-        compensate = None
-    elif comp == "none":
-        compensate = ()
-    elif isinstance(comp, list) and all(isinstance(c, str) for c in comp):
-        missing = [c for c in comp if c not in all_covariates]
-        if missing:
-            raise ConfigError("[shifts] compensate", comp,
-                              f"names {missing[0]!r}, which is not in [channels] covariates")
-        compensate = tuple(comp)
-    else:
-        raise ConfigError("[shifts] compensate", comp,
-                          "must be \"all\", \"none\" or a list of covariate names")
+    compensate = _parse_compensate(sh.get("compensate", None), channels.covariates)
     monitored = sh.get("indicators", list(DEFAULT_MONITORED))
     if (not isinstance(monitored, list) or not monitored
             or not all(isinstance(i, str) and i in INDICATOR_NAMES for i in monitored)):
         raise ConfigError("[shifts] indicators", monitored,
                           "must be a non-empty list of indicator names from: " + ", ".join(INDICATOR_NAMES))
-    shifts = ShiftsConfig(
+    return ShiftsConfig(
         indicators=tuple(monitored),
         detector=_choice("[shifts] detector", sh.get("detector", "both"), DETECTORS),
         cusum_k=_number("[shifts] cusum_k", sh.get("cusum_k", 0.5), low=0),
@@ -476,18 +561,32 @@ def parse_config(raw: Mapping[str, Any], base_dir: str = "", source: str = "") -
         compensate=compensate,
     )
 
+
+def _parse_compensate(comp: Any, covariates: Tuple[str, ...]) -> Optional[Tuple[str, ...]]:
+    """``[shifts] compensate``: None (all covariates), () (none) or a list of covariate names."""
+    if comp is None or comp == "all":
+        return None
+    if comp == "none":
+        return ()
+    if isinstance(comp, list) and all(isinstance(c, str) for c in comp):
+        missing = [c for c in comp if c not in set(covariates)]
+        if missing:
+            raise ConfigError("[shifts] compensate", comp,
+                              f"names {missing[0]!r}, which is not in [channels] covariates")
+        return tuple(comp)
+    raise ConfigError("[shifts] compensate", comp, "must be \"all\", \"none\" or a list of covariate names")
+
+
+def _parse_reading(raw: Mapping[str, Any]) -> ReadingConfig:
+    """``[reading]``: read-task size, grid tolerance and clipping fraction."""
     rd = _section(raw, "reading")
-    reading = ReadingConfig(
+    return ReadingConfig(
         task_bytes=_number("[reading] task_bytes", rd.get("task_bytes", 32 * 2**20), low=2**16, integer=True),
         grid_tolerance=_number("[reading] grid_tolerance", rd.get("grid_tolerance", 0.25), low=0, high=0.5,
                                low_open=True, high_open=True),
         clip_fraction=_number("[reading] clip_fraction", rd.get("clip_fraction", 0.01), low=0, high=1,
                               low_open=True),
     )
-
-    return AssetConfig(name=name, archive=archive, channels=channels, windows=windows,
-                       correlation=correlation, modes=tuple(modes), baseline=baseline,
-                       screening=screening, shifts=shifts, reading=reading, source=source)
 
 
 def load_config(path: str) -> AssetConfig:

@@ -119,6 +119,29 @@ class Reject:
         elif self.action not in ACTIONS:
             raise ValueError(f"action {self.action!r} not one of {ACTIONS}")
 
+    @classmethod
+    def for_window(cls, asset: str, window_start_us: int, stage: str, reason: str, detail: str,
+                   subject: str = WHOLE_WINDOW, action: Optional[str] = None) -> "Reject":
+        """A finding of one window: ``source`` is the window's ISO start time.
+
+        Parameters
+        ----------
+        asset : str
+            The asset's name.
+        window_start_us : int
+            Window start, microseconds since the epoch (UTC).
+        stage, reason, detail : str
+            As the attributes of the same names.
+        subject : str
+            ``WHOLE_WINDOW`` (the default) for a finding of the whole window, else the channel,
+            pair or mode concerned.
+        action : str, optional
+            None takes the reason's default action.
+        """
+        start = int(window_start_us)
+        return cls(stage=stage, source=iso_utc(start), subject=subject, reason=reason, detail=detail,
+                   asset=asset, window_start_us=start, action=action)
+
     @property
     def rejects_whole_window(self) -> bool:
         return self.action == "rejected" and self.subject == WHOLE_WINDOW and self.window_start_us is not None

@@ -118,7 +118,28 @@ def bad_wide_archive(folder: str, rate: float = 10.0, seed: int = 7) -> Dict[str
     """
     rng = np.random.default_rng(seed)
     cols = samples(22 * 60, rate, seed=seed)
-    period = US / rate
+    _damage_samples(cols, rng, US / rate)
+    table = _damage_rows(cols, rng)
+    _write_bad_wide_files(folder, table, rng, rate)
+    return {
+        "computed": sorted(set(range(22)) - {2, 4, 13}) + [40],
+        "rejected": {2: "insufficient_coverage", 4: "conflicting_duplicates", 13: "sample_rate_mismatch"},
+        "findings": {1: ["nonfinite_values"], 3: ["duplicate_timestamps"], 5: ["unordered_timestamps"],
+                     6: ["off_grid_timestamps"], 7: ["flat_channel"], 8: ["clipped_channel"],
+                     10: ["overlapping_files"], 11: ["overlapping_files"], 15: ["jitter_beyond_tolerance"],
+                     16: ["insufficient_coverage"], 17: ["insufficient_coverage"], 40: ["insufficient_coverage"]},
+        "file_findings": {"wide-empty.parquet": "empty_file", "wide-corrupt.parquet": "unreadable_file",
+                          "wide-renamed-time.parquet": "missing_time_column",
+                          "wide-no-rows.parquet": "no_rows", "wide-string-time.parquet": "time_column_not_timestamp",
+                          "wide-03b-no-b.parquet": "missing_channel_column",
+                          "wide-text-b.parquet": "non_numeric_channel",
+                          "wide-04.parquet": "statistics_missing"},
+        "columns": cols,
+    }
+
+
+def _damage_samples(cols: Dict[str, np.ndarray], rng, period: float) -> None:
+    """In place: the faults of :func:`bad_wide_archive` that change values or times, not rows."""
 
     def rows(k):
         return np.flatnonzero(window_rows(cols, k))
@@ -138,6 +159,14 @@ def bad_wide_archive(folder: str, rate: float = 10.0, seed: int = 7) -> Dict[str
     # 15: 30 samples 0.4 period late
     r = rows(15)
     cols["time"][r[50:80]] += int(0.4 * period)
+
+
+def _damage_rows(cols: Dict[str, np.ndarray], rng) -> Dict[str, np.ndarray]:
+    """The rows of :func:`bad_wide_archive`: a gap, duplicates, an unordered stretch, 12-Hz samples."""
+
+    def rows(k):
+        return np.flatnonzero(window_rows(cols, k))
+
     keep = np.ones(cols["time"].size, dtype=bool)
     # 2: 33 % gap
     keep[rows(2)[100:300]] = False
@@ -163,8 +192,11 @@ def bad_wide_archive(folder: str, rate: float = 10.0, seed: int = 7) -> Dict[str
     before = np.flatnonzero(~r13 & (table["time"] < lo))
     after = np.flatnonzero(~r13 & (table["time"] >= lo))
     # window 5's unordered stretch stays as it is: rows keep their order, window 13 is swapped
-    table = {k: np.concatenate([v[before], extra[k], v[after]]) for k, v in table.items()}
+    return {k: np.concatenate([v[before], extra[k], v[after]]) for k, v in table.items()}
 
+
+def _write_bad_wide_files(folder: str, table: Dict[str, np.ndarray], rng, rate: float) -> None:
+    """The files of :func:`bad_wide_archive`: 5-minute files, a split file, an overlap, bad files."""
     os.makedirs(folder, exist_ok=True)
     full = wide_table(table)
     times = table["time"]
@@ -201,18 +233,26 @@ def bad_wide_archive(folder: str, rate: float = 10.0, seed: int = 7) -> Dict[str
     pq.write_table(wide_table(samples(60, rate, seed=3)).slice(0, 0), os.path.join(folder, "wide-no-rows.parquet"))
     string_time = pa.table({"time": pa.array(["2024-03-04T00:00:00"] * 5), "a": np.zeros(5), "b": np.zeros(5)})
     pq.write_table(string_time, os.path.join(folder, "wide-string-time.parquet"))
-    return {
-        "computed": sorted(set(range(22)) - {2, 4, 13}) + [40],
-        "rejected": {2: "insufficient_coverage", 4: "conflicting_duplicates", 13: "sample_rate_mismatch"},
-        "findings": {1: ["nonfinite_values"], 3: ["duplicate_timestamps"], 5: ["unordered_timestamps"],
-                     6: ["off_grid_timestamps"], 7: ["flat_channel"], 8: ["clipped_channel"],
-                     10: ["overlapping_files"], 11: ["overlapping_files"], 15: ["jitter_beyond_tolerance"],
-                     16: ["insufficient_coverage"], 17: ["insufficient_coverage"], 40: ["insufficient_coverage"]},
-        "file_findings": {"wide-empty.parquet": "empty_file", "wide-corrupt.parquet": "unreadable_file",
-                          "wide-renamed-time.parquet": "missing_time_column",
-                          "wide-no-rows.parquet": "no_rows", "wide-string-time.parquet": "time_column_not_timestamp",
-                          "wide-03b-no-b.parquet": "missing_channel_column",
-                          "wide-text-b.parquet": "non_numeric_channel",
-                          "wide-04.parquet": "statistics_missing"},
-        "columns": cols,
-    }
+
+
+def duty_cycled_records(n_records: int = 4, rate: float = 25.0, record_s: float = 600.0,
+                        first_offset_s: float = 180.0, every_s: float = 7200.0) -> list:
+    """Columns of duty-cycled records: ``record_s`` of samples starting ``first_offset_s`` after
+    T0 and then every ``every_s`` (by default 10-minute records at hh:03:00 every 2 hours)."""
+    return [samples(record_s, rate, seed=100 + r, start_us=T0 + int((first_offset_s + r * every_s) * US))
+            for r in range(n_records)]
+
+
+def write_duty_cycled_archive(folder: str, records: list, one_file: bool = False,
+                              row_group_size: int = 5000, layout: str = "wide") -> list:
+    """One file per record (or all records in one file); returns the paths."""
+    os.makedirs(folder, exist_ok=True)
+    tables = [(wide_table if layout == "wide" else long_table)(r) for r in records]
+    if one_file:
+        tables = [pa.concat_tables(tables)]
+    paths = []
+    for i, table in enumerate(tables):
+        path = os.path.join(folder, f"record-{i:02d}.parquet")
+        pq.write_table(table, path, row_group_size=row_group_size)
+        paths.append(path)
+    return paths

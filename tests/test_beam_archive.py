@@ -17,7 +17,8 @@ from corrtransforms.rejects import Reject
 from corrtransforms.records import WindowBlock
 from corrtransforms.stages.analyse import analyse_window
 from corrtransforms.stages.read import read_task
-from tests.archive_data import T0, US, bad_wide_archive, make_config, samples, wide_table, write_files
+from tests.archive_data import (T0, US, bad_wide_archive, duty_cycled_records, make_config, samples, wide_table,
+                                write_duty_cycled_archive, write_files)
 
 
 def _pipeline():
@@ -137,3 +138,19 @@ def test_counters_account_for_every_planned_window(bad):
     assert counters["windows_rejected"] == len(whole) == 3
     assert counters["windows_rejected_sample_rate_mismatch"] == 1
     assert counters["files_listed"] == len(list_local_archive(folder)) and counters["files_rejected"] == 5
+
+
+def test_record_aligned_plan_and_read_under_beam_match_the_core_run(tmp_path):
+    # duty-cycled 10-minute records at hh:03 in one file whose row groups straddle records
+    records = duty_cycled_records(n_records=3)
+    write_duty_cycled_archive(str(tmp_path), records, one_file=True, row_group_size=7000)
+    config = make_config(str(tmp_path), rate=25.0, length_s=600.0, align="records")
+    plan = plan_archive(list_local_archive(str(tmp_path)), config)
+    blocks = [b for t in plan.tasks for b in read_task(t, config)[0]]
+    assert sorted(b.window_start_us for b in blocks) == [int(r["time"][0]) for r in records]
+    with _pipeline() as p:
+        planned = p | PlanReads(config)
+        read = planned["tasks"] | ReadWindows(config)
+        assert_that(read["blocks"] | "block keys" >> beam.Map(_block_key),
+                    equal_to([_block_key(b) for b in blocks]), label="blocks")
+        assert_that(read["rejects"], equal_to([]), label="rejects")

@@ -34,6 +34,8 @@ BAD_VALUES = [
     ("archive", "sample_rate_hz", "fast", "[archive] sample_rate_hz"),
     ("archive", "sample_rate_hz", True, "[archive] sample_rate_hz"),
     ("archive", "timezone", "Mars/Olympus", "[archive] timezone"),
+    ("asset", "timezone", "Mars/Olympus", "[asset] timezone"),
+    ("asset", "timezone", 1, "[asset] timezone"),
     ("channels", "names", "a", "[channels] names"),
     ("channels", "names", ["a", "a"], "[channels] names"),
     ("channels", "names", ["x:y"], "[channels] names"),
@@ -47,6 +49,11 @@ BAD_VALUES = [
     ("windows", "hop_s", 10_000, "[windows] hop_s"),  # longer than the window
     ("windows", "min_coverage", 1.5, "[windows] min_coverage"),
     ("windows", "min_coverage", 0, "[windows] min_coverage"),
+    ("windows", "align", "hours", "[windows] align"),
+    ("windows", "offset_s", -1, "[windows] offset_s"),
+    ("windows", "offset_s", 600, "[windows] offset_s"),  # not below hop_s (600 s)
+    ("windows", "offset_s", "3 min", "[windows] offset_s"),
+    ("windows", "record_gap_s", 0, "[windows] record_gap_s"),
     ("correlation", "max_lag_s", 0, "[correlation] max_lag_s"),
     ("correlation", "max_lag_s", 400, "[correlation] max_lag_s"),  # >= half of a 600 s window
     ("correlation", "pairs", "some", "[correlation] pairs"),
@@ -148,6 +155,8 @@ def test_defaults_and_relative_path(tmp_path):
     assert config.archive.path == str(tmp_path / "site" / "raw")
     assert config.windows.length_s == 600.0 and config.windows.hop_s == 600.0
     assert config.windows.min_coverage == 0.9
+    assert config.windows.align == "epoch" and config.windows.offset_s == 0.0
+    assert config.windows.record_gap_s is None
     assert config.correlation.pairs == "all" and config.correlation.estimator == "biased"
     assert config.correlation.target_rel_error == 0.05
     assert config.screening.segments == 20 and config.screening.action == "flag"
@@ -166,3 +175,31 @@ def test_unreadable_toml_is_a_clear_error(tmp_path):
         load_config(str(path))
     with pytest.raises(ConfigError, match="file not found"):
         load_config(str(tmp_path / "absent.toml"))
+
+
+def test_offset_s_is_for_the_epoch_grid_only():
+    raw = copy.deepcopy(MINIMAL)
+    raw["windows"] = {"align": "records", "offset_s": 180}
+    with pytest.raises(ConfigError, match=r"^\[windows\] offset_s = 180.0: must be 0 with align"):
+        parse_config(raw)
+    raw["windows"] = {"align": "records", "record_gap_s": 5}
+    windows = parse_config(raw).windows
+    assert (windows.align, windows.offset_s, windows.record_gap_s) == ("records", 0.0, 5.0)
+
+
+def test_asset_and_archive_time_zones_are_separate_keys_and_the_old_single_key_still_works(caplog):
+    raw = copy.deepcopy(MINIMAL)
+    assert (parse_config(raw).timezone, parse_config(raw).archive.timezone) == ("UTC", "UTC")
+    raw["asset"]["timezone"] = "Europe/Vienna"
+    config = parse_config(raw)
+    assert (config.timezone, config.archive.timezone, config.notes) == ("Europe/Vienna", "UTC", ())
+    raw = copy.deepcopy(MINIMAL)
+    raw["archive"]["timezone"] = "Europe/Vienna"
+    with caplog.at_level("WARNING", logger="corrtransforms.config"):
+        config = parse_config(raw)
+    # before [asset] timezone existed, [archive] timezone set the calendar days too: kept, with a note
+    assert (config.timezone, config.archive.timezone) == ("Europe/Vienna", "Europe/Vienna")
+    assert len(config.notes) == 1 and "[asset] timezone" in config.notes[0] and "deprecated" in config.notes[0]
+    assert config.notes[0] in caplog.text
+    # notes are not part of the configuration's digest
+    assert "notes" not in config.as_dict() and config.as_dict()["timezone"] == "Europe/Vienna"

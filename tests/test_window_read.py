@@ -7,8 +7,8 @@ import pytest
 
 from corrtransforms.stages.plan import list_local_archive, plan_archive
 from corrtransforms.stages.read import read_task
-from tests.archive_data import (T0, US, bad_wide_archive, long_table, make_config, samples, wide_table,
-                                window_rows, write_files)
+from tests.archive_data import (T0, US, bad_wide_archive, duty_cycled_records, long_table, make_config, samples,
+                                wide_table, window_rows, write_duty_cycled_archive, write_files)
 
 
 def _read_all(folder, config):
@@ -219,3 +219,34 @@ def test_complete_windows_with_missing_values_read_in_place_equal_the_snapped_lo
         # reference: numpy's nanmean of the covariate samples in the window
         assert w.covariates["temperature"] == pytest.approx(np.nanmean(cols["temperature"][rows]), rel=1e-12)
         assert w.covariates["temperature"] == pytest.approx(l.covariates["temperature"], rel=1e-12)
+
+
+@pytest.mark.parametrize("windows", [{"align": "records"}, {"offset_s": 180.0}], ids=["records", "offset"])
+@pytest.mark.parametrize("layout", ["wide", "long"])
+def test_duty_cycled_records_off_the_epoch_grid_each_become_one_complete_window(tmp_path, windows, layout):
+    # 10-minute records at hh:03:00 every 2 hours, 25 Hz: with record alignment, or with the epoch
+    # grid shifted by 180 s, each record is exactly one 600-s window of 15000 samples (closed form)
+    records = duty_cycled_records()
+    write_duty_cycled_archive(str(tmp_path), records, layout=layout)
+    config = make_config(str(tmp_path), rate=25.0, length_s=600.0, layout=layout, **windows)
+    plan, blocks, rejects = _read_all(str(tmp_path), config)
+    assert [r.reason for r in rejects] == []
+    assert sorted(b.window_start_us for b in blocks) == [int(r["time"][0]) for r in records]
+    for block in sorted(blocks, key=lambda b: b.window_start_us):
+        record = next(r for r in records if r["time"][0] == block.window_start_us)
+        assert block.values.shape == (15000, 2) and block.valid.all()
+        np.testing.assert_array_equal(block.values[:, 0], record["a"])
+        np.testing.assert_array_equal(block.values[:, 1], record["b"])
+
+
+def test_duty_cycled_records_on_the_default_epoch_grid_are_rejected_as_before(tmp_path):
+    # the contrast: epoch windows hh:00 and hh:10 hold 7 and 3 minutes of each record (coverage
+    # 0.7 and 0.3 < min_coverage 0.9), so every window is rejected and no block comes out
+    records = duty_cycled_records()
+    write_duty_cycled_archive(str(tmp_path), records)
+    config = make_config(str(tmp_path), rate=25.0, length_s=600.0)
+    plan, blocks, rejects = _read_all(str(tmp_path), config)
+    assert blocks == [] and plan.windows_planned == 2 * len(records)
+    whole = [r for r in rejects if r.rejects_whole_window]
+    assert len(whole) == 2 * len(records) and {r.reason for r in whole} == {"insufficient_coverage"}
+    assert all(r.window_start_us % (600 * US) == 0 for r in whole)

@@ -1,21 +1,26 @@
 """Plan the reading of a Parquet archive from its footers: windows and bounded read tasks.
 
-Planning reads only Parquet footers (file metadata): per file and row group the time range (from
-the time column's statistics), the row count, and the columns present. It then cuts the time axis
-into epoch-aligned windows and groups consecutive windows into read tasks whose decoded size stays
-near ``[reading] task_bytes``. A :class:`ReadTask` names files, row groups, columns and windows; it
-is small and picklable, so only task descriptions ever travel through a shuffle, never samples.
+Planning reads only Parquet footers (file metadata): per file and row group the time range (from the
+time column's statistics), the row count, and the columns present. It then cuts the time axis into
+windows (on the epoch grid, or from each record's first sample) and groups consecutive windows into
+read tasks whose decoded size stays near ``[reading] task_bytes``. A :class:`ReadTask` names files,
+row groups, columns and windows; it is small and picklable, so only task descriptions ever travel
+through a shuffle, never samples. Two exceptions read a time column, one row group at a time: a row
+group without time statistics (``statistics_missing``), and with ``[windows] align = "records"`` a
+row group whose statistics cannot rule out a pause inside it (:func:`may_hold_pause`).
 
 This module is pure pyarrow/numpy. File access goes through an ``open_file(path)`` callable that
 returns a binary, seekable file object (the Beam layer hands in
 ``apache_beam.io.filesystems.FileSystems.open``); :func:`open_local_file` serves local paths.
 
 Time conventions (see :mod:`corrtransforms.timeutil`): every time is an integer count of microseconds since the Unix epoch, UTC.
-Naive (time-zone-less) timestamps in a file are local times of ``[archive] timezone``.
+Naive (time-zone-less) timestamps in a file are local times of ``[archive] timezone``; calendar days
+(of partitions, ``--start``/``--end`` and findings) are those of ``[asset] timezone`` (``config.timezone``).
 """
 from __future__ import annotations
 
 import dataclasses
+import bisect
 import datetime as _dt
 import json
 import math
@@ -27,7 +32,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from corrtransforms.config import AssetConfig
+from corrtransforms.config import RECORD_GAP_PERIODS, AssetConfig
 from corrtransforms.rejects import WHOLE_FILE, Reject
 from corrtransforms.timeutil import US_PER_S, compact_utc, day_start_us, local_date, local_to_utc_us, timestamp_to_us
 
@@ -53,13 +58,24 @@ def open_local_file(path: str):
 
 @dataclasses.dataclass(frozen=True)
 class RowGroupSpan:
-    """One row group: its index, row count, UTC time range and decoded size estimate."""
+    """One row group: its index, row count, UTC time range and decoded size estimate.
+
+    ``segments_us`` is filled only with ``[windows] align = "records"`` for a row group whose
+    time column was read because it may hold a pause: its contiguous runs of samples as
+    ``(first, last)`` UTC microseconds, when there is more than one (empty: one run).
+    """
 
     index: int
     n_rows: int
     start_us: int
     end_us: int
     decoded_bytes: int
+    segments_us: Tuple[Tuple[int, int], ...] = ()
+
+    @property
+    def runs_us(self) -> Tuple[Tuple[int, int], ...]:
+        """The row group's contiguous runs of samples (one run unless ``segments_us`` says more)."""
+        return self.segments_us or ((self.start_us, self.end_us),)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -165,100 +181,222 @@ def read_footer(path: str, config: AssetConfig, open_file: OpenFile = open_local
     Row-group time ranges come from the time column's min/max statistics (raw integers in the
     stored unit). Where statistics are absent the time column of that row group is read, which is
     recorded as a repaired ``statistics_missing`` finding. The decoded size of a row group is
-    estimated as rows x 8 bytes per column read (float64 samples, int64 times).
+    estimated as rows x 8 bytes per column read (float64 samples, int64 times). Opening the file,
+    decoding the footer and reading a column are the steps that can fail; each failure is one
+    ``unreadable_file`` finding.
     """
-    archive = config.archive
-    findings: List[Reject] = []
     try:
-        with open_file(path) as handle:
-            handle.seek(0, os.SEEK_END)
-            if handle.tell() == 0:
-                return None, [_file_reject(config, path, "empty_file", "0 bytes")]
-            handle.seek(0)
+        handle = open_file(path)
+    except Exception as err:  # noqa: BLE001 - any opening error means unreadable
+        return None, [_unreadable(config, path, err)]
+    with handle:
+        return _summarise_file(handle, path, config)
+
+
+def _unreadable(config: AssetConfig, path: str, err: Exception) -> Reject:
+    return _file_reject(config, path, "unreadable_file", f"{type(err).__name__}: {err}")
+
+
+def _summarise_file(handle, path: str, config: AssetConfig) -> Tuple[Optional[FileFooter], List[Reject]]:
+    """The steps of :func:`read_footer` on an open file: size, footer, schema, row groups."""
+    archive = config.archive
+    try:
+        handle.seek(0, os.SEEK_END)
+        empty = handle.tell() == 0
+        handle.seek(0)
+    except Exception as err:  # noqa: BLE001 - a file system that cannot seek the file
+        return None, [_unreadable(config, path, err)]
+    if empty:
+        return None, [_file_reject(config, path, "empty_file", "0 bytes")]
+    try:
+        pf = pq.ParquetFile(handle, page_checksum_verification=True)
+    except Exception as err:  # noqa: BLE001 - any decoding error means unreadable
+        return None, [_unreadable(config, path, err)]
+    problem = _schema_problem(pf, path, config)
+    if problem is not None:
+        return None, [problem]
+    leaf, unit, naive = _time_column_info(pf, archive.time_column)
+    schema = pf.schema_arrow
+    numeric = tuple(n for n in schema.names if n != archive.time_column and _is_numeric(schema.field(n).type))
+    other = tuple(n for n in schema.names if n != archive.time_column and n not in numeric)
+    long_channels: Tuple[str, ...] = ()
+    if archive.layout == "long":
+        problem = _long_layout_problem(schema, numeric, path, config)
+        if problem is not None:
+            return None, [problem]
+        row_bytes = _BYTES_PER_LONG_ROW
+        if config.channels.names is None:
             try:
-                pf = pq.ParquetFile(handle, page_checksum_verification=True)
-                schema = pf.schema_arrow
-            except Exception as err:  # noqa: BLE001 - any decoding error means unreadable
-                return None, [_file_reject(config, path, "unreadable_file", f"{type(err).__name__}: {err}")]
-            meta = pf.metadata
-            if meta.num_rows == 0:
-                return None, [_file_reject(config, path, "no_rows", f"{meta.num_row_groups} row groups, 0 rows")]
-            names = schema.names
-            if archive.time_column not in names:
-                return None, [_file_reject(
-                    config, path, "missing_time_column",
-                    f"no column {archive.time_column!r}; columns: {', '.join(names)}",
-                    subject=archive.time_column)]
-            time_type = schema.field(archive.time_column).type
-            if not pa.types.is_timestamp(time_type):
-                return None, [_file_reject(
-                    config, path, "time_column_not_timestamp",
-                    f"column {archive.time_column!r} has type {time_type}", subject=archive.time_column)]
-            leaf, unit, naive = _time_column_info(pf, archive.time_column)
-            numeric = tuple(n for n in names if n != archive.time_column and _is_numeric(schema.field(n).type))
-            other = tuple(n for n in names if n != archive.time_column and n not in numeric)
-
-            long_channels: Tuple[str, ...] = ()
-            if archive.layout == "long":
-                for column in (archive.channel_column, archive.value_column):
-                    if column not in names:
-                        return None, [_file_reject(config, path, "missing_channel_column",
-                                                   f"long layout needs column {column!r}; columns: {', '.join(names)}",
-                                                   subject=column)]
-                if archive.value_column not in numeric:
-                    return None, [_file_reject(
-                        config, path, "non_numeric_channel",
-                        f"value column {archive.value_column!r} has type {schema.field(archive.value_column).type}",
-                        subject=archive.value_column)]
-                if config.channels.names is None:
-                    column = pf.read(columns=[archive.channel_column]).column(0)
-                    long_channels = tuple(sorted(str(v) for v in column.unique().to_pylist() if v is not None))
-                n_columns_read = None
-            else:
-                wanted = set(config.channels.names or numeric) | set(config.channels.covariates)
-                n_columns_read = 1 + len([n for n in numeric if n in wanted])
-
-            spans = []
-            missing_stats = []
-            for i in range(meta.num_row_groups):
-                rg = meta.row_group(i)
-                if rg.num_rows == 0:
-                    continue
-                column = rg.column(leaf)
-                stats = column.statistics if column.is_stats_set else None
-                if (stats is not None and stats.has_min_max and unit is not None
-                        and column.physical_type == "INT64"):
-                    lo = int(timestamp_to_us(np.array([stats.min_raw]), unit)[0])
-                    hi = int(timestamp_to_us(np.array([stats.max_raw]), unit)[0])
-                else:
-                    times = pf.read_row_group(i, columns=[archive.time_column]).column(0)
-                    times = times.cast(pa.timestamp("us", time_type.tz), safe=False)
-                    values = times.cast(pa.int64()).to_numpy(zero_copy_only=False)
-                    values = values[~np.isnan(values)] if values.dtype.kind == "f" else values
-                    if values.size == 0:
-                        continue
-                    lo, hi = int(values.min()), int(values.max())
-                    missing_stats.append(i)
-                if naive:
-                    lo, hi = (int(v) for v in local_to_utc_us(np.array([lo, hi]), archive.timezone))
-                if n_columns_read is None:
-                    size = rg.num_rows * _BYTES_PER_LONG_ROW
-                else:
-                    size = rg.num_rows * _BYTES_PER_VALUE * n_columns_read
-                spans.append(RowGroupSpan(i, rg.num_rows, lo, hi, size))
-    except Exception as err:  # noqa: BLE001 - opening or reading failed: the file is unusable
-        return None, findings + [_file_reject(config, path, "unreadable_file", f"{type(err).__name__}: {err}")]
-
+                column = pf.read(columns=[archive.channel_column]).column(0)
+            except Exception as err:  # noqa: BLE001 - a channel column that cannot be decoded
+                return None, [_unreadable(config, path, err)]
+            long_channels = tuple(sorted(str(v) for v in column.unique().to_pylist() if v is not None))
+    else:
+        wanted = set(config.channels.names or numeric) | set(config.channels.covariates)
+        row_bytes = _BYTES_PER_VALUE * (1 + len([n for n in numeric if n in wanted]))
+    try:
+        spans, missing_stats = _row_group_spans(pf, leaf, unit, naive, row_bytes, config)
+    except Exception as err:  # noqa: BLE001 - a time column that cannot be decoded
+        return None, [_unreadable(config, path, err)]
     if not spans:
         return None, [_file_reject(config, path, "no_rows", "no row group holds a timestamp")]
     footer = FileFooter(path=path, time_naive=naive, row_groups=tuple(spans), numeric_columns=numeric,
                         other_columns=other, long_channels=long_channels)
+    findings: List[Reject] = []
     if missing_stats:
         findings.append(_file_reject(
             config, path, "statistics_missing",
             f"row groups {missing_stats}: no min/max statistics of {archive.time_column!r}; time column read",
-            date=local_date(footer.start_us, archive.timezone)))
+            date=local_date(footer.start_us, config.timezone)))
     return footer, findings
+
+
+def _schema_problem(pf: pq.ParquetFile, path: str, config: AssetConfig) -> Optional[Reject]:
+    """``no_rows``, ``missing_time_column`` or ``time_column_not_timestamp``, else None."""
+    time_column = config.archive.time_column
+    meta = pf.metadata
+    if meta.num_rows == 0:
+        return _file_reject(config, path, "no_rows", f"{meta.num_row_groups} row groups, 0 rows")
+    names = pf.schema_arrow.names
+    if time_column not in names:
+        return _file_reject(config, path, "missing_time_column",
+                            f"no column {time_column!r}; columns: {', '.join(names)}", subject=time_column)
+    time_type = pf.schema_arrow.field(time_column).type
+    if not pa.types.is_timestamp(time_type):
+        return _file_reject(config, path, "time_column_not_timestamp",
+                            f"column {time_column!r} has type {time_type}", subject=time_column)
+    return None
+
+
+def _long_layout_problem(schema: pa.Schema, numeric: Tuple[str, ...], path: str,
+                         config: AssetConfig) -> Optional[Reject]:
+    """Long layout: ``missing_channel_column`` or ``non_numeric_channel`` (value column), else None."""
+    archive = config.archive
+    for column in (archive.channel_column, archive.value_column):
+        if column not in schema.names:
+            return _file_reject(config, path, "missing_channel_column",
+                                f"long layout needs column {column!r}; columns: {', '.join(schema.names)}",
+                                subject=column)
+    if archive.value_column not in numeric:
+        return _file_reject(config, path, "non_numeric_channel",
+                            f"value column {archive.value_column!r} has type "
+                            f"{schema.field(archive.value_column).type}", subject=archive.value_column)
+    return None
+
+
+def _row_group_spans(pf: pq.ParquetFile, leaf: Optional[int], unit: Optional[str], naive: bool,
+                     row_bytes: int, config: AssetConfig) -> Tuple[List[RowGroupSpan], List[int]]:
+    """Per non-empty row group its UTC time range, from statistics or (where they are absent)
+    from its time column; also the indices of the row groups whose time column was read.
+
+    With ``[windows] align = "records"`` the time column of a row group that may hold a pause
+    (:func:`may_hold_pause`) is read too, and its contiguous runs are kept in ``segments_us``.
+    """
+    archive = config.archive
+    records = config.windows.align == "records"
+    meta = pf.metadata
+    spans, missing_stats = [], []
+    for i in range(meta.num_row_groups):
+        rg = meta.row_group(i)
+        if rg.num_rows == 0:
+            continue
+        column = rg.column(leaf)
+        stats = column.statistics if column.is_stats_set else None
+        times = None
+        if stats is not None and stats.has_min_max and unit is not None and column.physical_type == "INT64":
+            lo = int(timestamp_to_us(np.array([stats.min_raw]), unit)[0])
+            hi = int(timestamp_to_us(np.array([stats.max_raw]), unit)[0])
+        else:
+            times = _row_group_times(pf, i, archive.time_column)
+            if times.size == 0:
+                continue
+            lo, hi = int(times.min()), int(times.max())
+            missing_stats.append(i)
+        if naive:
+            lo, hi = (int(v) for v in local_to_utc_us(np.array([lo, hi]), archive.timezone))
+        segments: Tuple[Tuple[int, int], ...] = ()
+        if records and may_hold_pause(lo, hi, rg.num_rows, config):
+            if times is None:
+                times = _row_group_times(pf, i, archive.time_column)
+            utc = local_to_utc_us(times, archive.timezone) if naive else times
+            runs = contiguous_runs(utc, record_gap_us(config))
+            segments = runs if len(runs) > 1 else ()
+        spans.append(RowGroupSpan(i, rg.num_rows, lo, hi, rg.num_rows * row_bytes, segments))
+    return spans, missing_stats
+
+
+def _row_group_times(pf: pq.ParquetFile, index: int, time_column: str) -> np.ndarray:
+    """A row group's non-null timestamps in microseconds of its own clock (int64), read from the data."""
+    times = pf.read_row_group(index, columns=[time_column]).column(0)
+    times = times.cast(pa.timestamp("us", pf.schema_arrow.field(time_column).type.tz), safe=False)
+    values = times.cast(pa.int64()).to_numpy(zero_copy_only=False)
+    return values[~np.isnan(values)].astype(np.int64) if values.dtype.kind == "f" else values
+
+
+# --------------------------------------------------------------------------------------------
+# Records (contiguous runs of samples)
+
+
+def record_gap_us(config: AssetConfig) -> float:
+    """The longest pause (microseconds) between two samples of one record: ``[windows]
+    record_gap_s``, by default :data:`~corrtransforms.config.RECORD_GAP_PERIODS` sample intervals."""
+    gap_s = config.windows.record_gap_s
+    if gap_s is None:
+        gap_s = RECORD_GAP_PERIODS / config.archive.sample_rate_hz
+    return gap_s * US_PER_S
+
+
+def may_hold_pause(start_us: int, end_us: int, n_rows: int, config: AssetConfig) -> bool:
+    """True when a row group's statistics cannot rule out a pause inside it.
+
+    Wide layout: ``n_rows`` samples without a pause span at most ``(n_rows - 1)`` sample intervals
+    plus one record gap (jitter); a longer span may hide a pause. Long layout: the row count
+    mixes channels and says nothing about the number of samples, so every row group may.
+    """
+    if config.archive.layout == "long":
+        return True
+    period_us = US_PER_S / config.archive.sample_rate_hz
+    return end_us - start_us > (n_rows - 1) * period_us + record_gap_us(config)
+
+
+def contiguous_runs(times_us: np.ndarray, gap_us: float) -> Tuple[Tuple[int, int], ...]:
+    """(first, last) of each run of timestamps whose consecutive (sorted) spacings are at most ``gap_us``."""
+    t = np.unique(np.asarray(times_us, dtype=np.int64))
+    if t.size == 0:
+        return ()
+    breaks = np.flatnonzero(np.diff(t) > gap_us)
+    firsts = np.concatenate([[0], breaks + 1])
+    lasts = np.concatenate([breaks, [t.size - 1]])
+    return tuple((int(t[a]), int(t[b])) for a, b in zip(firsts, lasts))
+
+
+def find_records(footers: Sequence[FileFooter], config: AssetConfig) -> List[Tuple[int, int]]:
+    """The archive's records as ``(first, last)`` UTC microseconds, in time order.
+
+    Runs of samples from the footers (a row group is one run unless its time column showed
+    pauses) are joined when the next one starts at most :func:`record_gap_us` after the end of
+    the one before (overlapping runs, as of two files holding the same span, join too).
+    """
+    gap_us = record_gap_us(config)
+    runs = sorted(run for footer in footers for rg in footer.row_groups for run in rg.runs_us)
+    records: List[List[int]] = []
+    for lo, hi in runs:
+        if records and lo - records[-1][1] <= gap_us:
+            records[-1][1] = max(records[-1][1], hi)
+        else:
+            records.append([lo, hi])
+    return [(lo, hi) for lo, hi in records]
+
+
+def record_window_starts(records: Sequence[Tuple[int, int]], config: AssetConfig) -> List[int]:
+    """Window starts of ``[windows] align = "records"``: per record ``first + j * hop`` for every
+    window that holds one of the record's samples (sorted, each once)."""
+    _, hop_us, _, period_us = window_grid(config)
+    starts = set()
+    for first, last in records:
+        count = math.floor((last + period_us / 2 - first) / hop_us) + 1
+        starts.update(first + j * hop_us for j in range(count))
+    return sorted(starts)
 
 
 # --------------------------------------------------------------------------------------------
@@ -286,7 +424,8 @@ class FilePiece:
 class ReadTask:
     """A small, picklable description of one unit of reading work.
 
-    ``window_starts_us`` are the planned windows (UTC microseconds, epoch-aligned); every one
+    ``window_starts_us`` are the planned windows (UTC microseconds, on the epoch grid shifted by
+    ``[windows] offset_s``, or at record starts with ``align = "records"``); every one
     yields a :class:`~corrtransforms.records.WindowBlock` or a whole-window reject.
     """
 
@@ -344,6 +483,56 @@ def resolve_channels(footers: Sequence[FileFooter], config: AssetConfig) -> Tupl
     return tuple(seen)
 
 
+def missing_channels(footers: Sequence[FileFooter], config: AssetConfig) -> Dict[str, Tuple[str, ...]]:
+    """Configured channels and covariates that no file's footer holds: a configuration error.
+
+    Parameters
+    ----------
+    footers : sequence of FileFooter
+        Summaries from :func:`read_footer` of every file a run lists.
+    config : AssetConfig
+        The asset's configuration.
+
+    Returns
+    -------
+    dict
+        ``{name: columns_found}`` for every name of ``[channels] names`` and ``covariates`` that is
+        a numeric column (wide layout) or a channel value (long layout) of no file; ``columns_found``
+        are the numeric columns (wide) or channel values (long) the files do hold, sorted, for the
+        message. Empty when every name is found, when there are no footers, and in the long
+        layout when the footers list no channel values (they are read only when ``[channels]
+        names`` is omitted; a configured long-layout channel is then checked by the read stage).
+
+    Examples
+    --------
+    A launcher stops before the pipeline starts::
+
+        missing = missing_channels(footers, config)
+        if missing:
+            name, found = next(iter(missing.items()))
+            raise ConfigError("[channels] names", name, "is in no file; columns found: " + ", ".join(found))
+    """
+    long = config.archive.layout == "long"
+    found = set()
+    for footer in footers:
+        found.update(footer.long_channels if long else footer.numeric_columns)
+    found.discard(config.archive.time_column)
+    if not found:
+        return {}
+    wanted = tuple(config.channels.names or ()) + tuple(config.channels.covariates)
+    columns = tuple(sorted(found))
+    return {name: columns for name in wanted if name not in found}
+
+
+@dataclasses.dataclass(frozen=True)
+class _UsableFile:
+    """A file this run reads: its footer, the columns to decode and the configured names it lacks."""
+
+    footer: FileFooter
+    columns: Tuple[str, ...]
+    absent: Tuple[str, ...]
+
+
 def plan_reads(footers: Sequence[FileFooter], footer_rejects: Sequence[Reject], config: AssetConfig,
                start: Optional[_dt.date] = None, end: Optional[_dt.date] = None) -> ArchivePlan:
     """Cut the archive's time axis into windows and group them into bounded read tasks.
@@ -367,108 +556,155 @@ def plan_reads(footers: Sequence[FileFooter], footer_rejects: Sequence[Reject], 
 
     Notes
     -----
-    Window ``k`` covers ``[k * hop, k * hop + length)`` (epoch-aligned, so a window is the same
-    whichever files a run reads); it holds the samples at ``t`` with
-    ``k * hop - T/2 <= t < k * hop + length - T/2`` (T the sample period), and is planned when a
-    row group's time range holds such a ``t``. Tasks take consecutive windows while the decoded size of the
+    With ``[windows] align = "epoch"`` window ``k`` covers ``[s, s + length)`` with
+    ``s = offset_s + k * hop`` (fixed to the epoch, so a window is the same whichever files a run
+    reads); with ``align = "records"`` the starts are ``first + j * hop`` of every record found
+    from all footers (:func:`find_records`, :func:`record_window_starts`). A window holds the
+    samples at ``t`` with ``s - T/2 <= t < s + length - T/2`` (T the sample period), and is
+    planned when a row group's time range holds such a ``t``. Tasks take consecutive windows while the decoded size of the
     union of their row groups stays within ``[reading] task_bytes``; a window that needs no new
     row group always joins the current task, so a row group larger than a window is decoded once.
     A window is in exactly one task, with every row group of every file it overlaps.
     """
-    archive = config.archive
-    tz = archive.timezone
-    length_us, hop_us, _, period_us = window_grid(config)
-    half_period = period_us / 2
+    tz = config.timezone
+    length_us = window_grid(config)[0]
     channels = resolve_channels(footers, config)
     covariates = tuple(config.channels.covariates)
     lo_us = day_start_us(start, tz) if start else None
     hi_us = day_start_us(end + _dt.timedelta(days=1), tz) if end else None
+    usable, rejects = _usable_files(footers, config, channels + covariates, lo_us, hi_us, length_us)
+    record_starts = (record_window_starts(find_records(footers, config), config)
+                     if config.windows.align == "records" else None)
+    needs = _window_needs(usable, config, lo_us, hi_us, record_starts)
+    sizes = {(f_index, rg.index): rg.decoded_bytes
+             for f_index, file in enumerate(usable) for rg in file.footer.row_groups}
+    groups = _group_windows(needs, sizes, config.reading.task_bytes)
+    tasks = [_read_task(starts, rg_keys, usable, config, channels, covariates) for starts, rg_keys in groups]
+    if start is not None and end is not None:
+        days = tuple((start + _dt.timedelta(days=i)).isoformat() for i in range((end - start).days + 1))
+    else:
+        days = tuple(sorted({d for t in tasks for d in t.dates}))
+    out_of_range = {footer.path for footer in footers} - {file.footer.path for file in usable}
+    final = _dated_findings(list(footer_rejects) + rejects, out_of_range, start, end,
+                            days[0] if days else None)
+    return ArchivePlan(tasks=tasks, rejects=final, channels=channels, covariates=covariates, days=days)
 
+
+def _usable_files(footers: Sequence[FileFooter], config: AssetConfig, names: Tuple[str, ...],
+                  lo_us: Optional[int], hi_us: Optional[int], length_us: int
+                  ) -> Tuple[List[_UsableFile], List[Reject]]:
+    """The files (sorted by path) whose span reaches into [lo_us, hi_us) by less than a window,
+    with their columns, and the findings of configured channels a file lacks (wide layout)."""
+    archive = config.archive
     rejects: List[Reject] = []
-    usable: List[Tuple[FileFooter, Tuple[str, ...], Tuple[str, ...]]] = []
+    usable: List[_UsableFile] = []
     for footer in sorted(footers, key=lambda f: f.path):
-        file_date = local_date(footer.start_us, tz)
         in_range = ((hi_us is None or footer.start_us - length_us < hi_us)
                     and (lo_us is None or footer.end_us + length_us >= lo_us))
-        absent = []
         if archive.layout == "wide":
-            for name in channels + covariates:
-                if name in footer.numeric_columns:
-                    continue
-                absent.append(name)
-                if not in_range:
-                    continue
-                if name in footer.other_columns:
-                    rejects.append(_file_reject(config, footer.path, "non_numeric_channel",
-                                                f"column {name!r} is not numeric", subject=name, date=file_date))
-                else:
-                    rejects.append(_file_reject(config, footer.path, "missing_channel_column",
-                                                f"no column {name!r}", subject=name, date=file_date))
-            columns = (archive.time_column,) + tuple(n for n in channels + covariates if n not in absent)
+            absent = tuple(name for name in names if name not in footer.numeric_columns)
+            if in_range:
+                rejects.extend(_absent_channel_findings(footer, absent, config))
+            columns = (archive.time_column,) + tuple(n for n in names if n not in absent)
         else:
+            absent = ()
             columns = (archive.time_column, archive.channel_column, archive.value_column)
         if in_range:
-            usable.append((footer, columns, tuple(absent)))
+            usable.append(_UsableFile(footer, columns, absent))
+    return usable, rejects
 
-    # window index -> row groups it needs
+
+def _absent_channel_findings(footer: FileFooter, absent: Sequence[str], config: AssetConfig) -> List[Reject]:
+    """``non_numeric_channel`` or ``missing_channel_column`` per configured name a file lacks."""
+    file_date = local_date(footer.start_us, config.timezone)
+    found = []
+    for name in absent:
+        if name in footer.other_columns:
+            found.append(_file_reject(config, footer.path, "non_numeric_channel",
+                                      f"column {name!r} is not numeric", subject=name, date=file_date))
+        else:
+            found.append(_file_reject(config, footer.path, "missing_channel_column",
+                                      f"no column {name!r}", subject=name, date=file_date))
+    return found
+
+
+def _window_needs(usable: Sequence[_UsableFile], config: AssetConfig, lo_us: Optional[int],
+                  hi_us: Optional[int], record_starts: Optional[Sequence[int]] = None
+                  ) -> Dict[int, List[Tuple[int, int]]]:
+    """Window start (UTC us) -> the (file, row group) keys whose time range holds one of its samples.
+
+    The window starting at ``s`` holds the samples ``t`` with ``s - T/2 <= t < s + length - T/2``.
+    Epoch alignment: ``s = offset + k * hop``; record alignment: ``s`` from ``record_starts``.
+    """
+    length_us, hop_us, _, period_us = window_grid(config)
+    half_period = period_us / 2
+    offset_us = int(round(config.windows.offset_s * US_PER_S))
     needs: Dict[int, List[Tuple[int, int]]] = {}
-    for f_index, (footer, _, _) in enumerate(usable):
-        for rg in footer.row_groups:
-            # window k holds samples t with k*hop - T/2 <= t < k*hop + length - T/2
-            first = math.floor((rg.start_us - length_us + half_period) / hop_us) + 1
-            last = math.floor((rg.end_us + half_period) / hop_us)
-            for k in range(first, last + 1):
-                s = k * hop_us
+    for f_index, file in enumerate(usable):
+        for rg in file.footer.row_groups:
+            if record_starts is None:
+                first = math.floor((rg.start_us - offset_us - length_us + half_period) / hop_us) + 1
+                last = math.floor((rg.end_us - offset_us + half_period) / hop_us)
+                starts = [offset_us + k * hop_us for k in range(first, last + 1)]
+            else:
+                # starts s with rg.start - length + T/2 < s <= rg.end + T/2
+                a = bisect.bisect_right(record_starts, rg.start_us - length_us + half_period)
+                b = bisect.bisect_right(record_starts, rg.end_us + half_period)
+                starts = record_starts[a:b]
+            for s in starts:
                 if (lo_us is not None and s < lo_us) or (hi_us is not None and s >= hi_us):
                     continue
-                needs.setdefault(k, []).append((f_index, rg.index))
+                needs.setdefault(s, []).append((f_index, rg.index))
+    return needs
 
-    sizes = {(f_index, rg.index): rg.decoded_bytes
-             for f_index, (footer, _, _) in enumerate(usable) for rg in footer.row_groups}
+
+def _group_windows(needs: Dict[int, List[Tuple[int, int]]], sizes: Dict[Tuple[int, int], int], budget: int
+                   ) -> List[Tuple[List[int], Dict[Tuple[int, int], None]]]:
+    """Consecutive windows grouped while the decoded size of their row groups' union stays within
+    ``budget`` (a window that needs no new row group always joins): [(starts, row-group keys)]."""
     groups: List[Tuple[List[int], Dict[Tuple[int, int], None]]] = []
-    budget = config.reading.task_bytes
-    for k in sorted(needs):
-        wanted = needs[k]
+    for s in sorted(needs):
+        wanted = needs[s]
         if groups:
             current_windows, current_groups = groups[-1]
             new = [g for g in wanted if g not in current_groups]
             total = sum(sizes[g] for g in current_groups) + sum(sizes[g] for g in new)
             if not new or total <= budget:
-                current_windows.append(k)
+                current_windows.append(s)
                 for g in new:
                     current_groups[g] = None
                 continue
-        groups.append(([k], dict.fromkeys(wanted)))
+        groups.append(([s], dict.fromkeys(wanted)))
+    return groups
 
-    tasks = []
-    for window_ks, rg_keys in groups:
-        by_file: Dict[int, List[int]] = {}
-        for f_index, rg_index in rg_keys:
-            by_file.setdefault(f_index, []).append(rg_index)
-        pieces = []
-        for f_index in sorted(by_file, key=lambda i: (usable[i][0].start_us, usable[i][0].path)):
-            footer, columns, absent = usable[f_index]
-            rgs = tuple(sorted(by_file[f_index]))
-            spans = [rg for rg in footer.row_groups if rg.index in rgs]
-            pieces.append(FilePiece(path=footer.path, row_groups=rgs, columns=columns,
-                                    time_naive=footer.time_naive, absent=absent,
-                                    start_us=min(s.start_us for s in spans),
-                                    decoded_bytes=sum(s.decoded_bytes for s in spans),
-                                    row_group_spans_us=tuple((s.start_us, s.end_us) for s in spans)))
-        starts = tuple(k * hop_us for k in window_ks)
-        tasks.append(ReadTask(asset=config.name, task_id=compact_utc(starts[0]), window_starts_us=starts,
-                              channels=channels, covariates=covariates, pieces=tuple(pieces),
-                              dates=tuple(sorted({local_date(s, tz) for s in starts}))))
 
-    if start is not None and end is not None:
-        days = tuple((start + _dt.timedelta(days=i)).isoformat() for i in range((end - start).days + 1))
-    else:
-        days = tuple(sorted({d for t in tasks for d in t.dates}))
-    first_day = days[0] if days else None
+def _read_task(starts: Sequence[int], rg_keys: Iterable[Tuple[int, int]], usable: Sequence[_UsableFile],
+               config: AssetConfig, channels: Tuple[str, ...], covariates: Tuple[str, ...]) -> ReadTask:
+    """The task of one group of windows: one piece per file, files in time order."""
+    by_file: Dict[int, List[int]] = {}
+    for f_index, rg_index in rg_keys:
+        by_file.setdefault(f_index, []).append(rg_index)
+    pieces = []
+    for f_index in sorted(by_file, key=lambda i: (usable[i].footer.start_us, usable[i].footer.path)):
+        file = usable[f_index]
+        rgs = tuple(sorted(by_file[f_index]))
+        spans = [rg for rg in file.footer.row_groups if rg.index in rgs]
+        pieces.append(FilePiece(path=file.footer.path, row_groups=rgs, columns=file.columns,
+                                time_naive=file.footer.time_naive, absent=file.absent,
+                                start_us=min(s.start_us for s in spans),
+                                decoded_bytes=sum(s.decoded_bytes for s in spans),
+                                row_group_spans_us=tuple((s.start_us, s.end_us) for s in spans)))
+    starts = tuple(starts)
+    return ReadTask(asset=config.name, task_id=compact_utc(starts[0]), window_starts_us=starts,
+                    channels=channels, covariates=covariates, pieces=tuple(pieces),
+                    dates=tuple(sorted({local_date(s, config.timezone) for s in starts})))
 
-    out_of_range = {footer.path for footer in footers} - {footer.path for footer, _, _ in usable}
+
+def _dated_findings(findings: Sequence[Reject], out_of_range: set, start: Optional[_dt.date],
+                    end: Optional[_dt.date], first_day: Optional[str]) -> List[Reject]:
+    """File-level findings of the files this run reads, each dated inside the run's days."""
     final: List[Reject] = []
-    for finding in list(footer_rejects) + rejects:
+    for finding in findings:
         if finding.source in out_of_range:
             continue  # a file this run does not read: its findings belong to another run
         date = finding.date
@@ -481,7 +717,7 @@ def plan_reads(footers: Sequence[FileFooter], footer_rejects: Sequence[Reject], 
         if end is not None and date > end.isoformat():
             date = end.isoformat()
         final.append(dataclasses.replace(finding, date=date))
-    return ArchivePlan(tasks=tasks, rejects=final, channels=channels, covariates=covariates, days=days)
+    return final
 
 
 def _near_range(date: str, start: Optional[_dt.date], end: Optional[_dt.date]) -> bool:

@@ -13,7 +13,8 @@ Pure pyarrow/numpy: files are opened through an ``open_file(path)`` callable.
 from __future__ import annotations
 
 import collections
-from typing import Dict, Iterator, List, Optional, Tuple, Union
+import dataclasses
+from typing import Dict, Iterator, List, NamedTuple, Optional, Tuple, Union
 
 import numpy as np
 import pyarrow as pa
@@ -36,22 +37,67 @@ OFF_GRID_NOISE = 0.01
 MIN_CLIP_REPEATS = 2
 
 
-class _TaskData:
-    """The task's decoded rows, time-sorted: times (UTC us), file index, values, absent mask.
+class _LostRows(NamedTuple):
+    """Rows of one row group that were (partly) not used; every window they overlap is reported."""
 
-    ``lost`` lists the row groups whose rows were (partly) not used, as ``(first_us, last_us,
-    path, row_groups, names, reason, detail)``: the read stage reports every window they overlap.
+    first_us: int
+    last_us: int
+    path: str
+    row_groups: Tuple[int, ...]
+    names: Tuple[str, ...]
+    reason: str
+    detail: str
+
+
+@dataclasses.dataclass
+class _TaskData:
+    """The task's decoded rows, time-sorted.
+
+    Attributes
+    ----------
+    times : ndarray of int64
+        UTC microseconds of every row.
+    file_index : ndarray of int32
+        Index into ``files`` of the file each row came from.
+    values : ndarray, shape (rows, columns)
+        Wide: one column per channel and covariate; long: the value column.
+    absent : ndarray of bool, shape (files, columns)
+        Wide: the columns a file does not hold.
+    channel_codes : ndarray of int32 or None
+        Long layout: index of each row's channel in ``channels + covariates`` (-1: not wanted).
+    unordered_times : ndarray of int64
+        Timestamps that followed a later one in their file (sorted).
+    files : list of str
+        The files that contributed rows.
+    lost : list of _LostRows
+        Row groups whose rows were (partly) not used.
     """
 
-    def __init__(self, times, file_index, values, absent, channel_codes, unordered_times, files, lost=()):
-        self.times = times
-        self.file_index = file_index
-        self.values = values
-        self.absent = absent
-        self.channel_codes = channel_codes
-        self.unordered_times = unordered_times
-        self.files = files
-        self.lost = list(lost)
+    times: np.ndarray
+    file_index: np.ndarray
+    values: np.ndarray
+    absent: np.ndarray
+    channel_codes: Optional[np.ndarray]
+    unordered_times: np.ndarray
+    files: List[str]
+    lost: List[_LostRows] = dataclasses.field(default_factory=list)
+
+
+@dataclasses.dataclass
+class _PieceRows:
+    """The usable rows of one file piece: its kept row groups (file order) as one table."""
+
+    path: str
+    table: pa.Table
+    naive: bool
+    #: wide layout: per task column, True when the file does not hold it
+    absent: List[bool]
+
+
+def _file_finding(config: AssetConfig, path: str, reason: str, detail: str, date: str) -> Reject:
+    """A finding of the read stage about a file (subject ``"*"``), dated by the task's first window."""
+    return Reject(stage="read", source=path, subject=WHOLE_FILE, reason=reason, detail=detail,
+                  asset=config.name, date=date)
 
 
 def _time_to_us(column: pa.ChunkedArray) -> Tuple[pa.Array, bool]:
@@ -117,95 +163,123 @@ def _load(task: ReadTask, config: AssetConfig, open_file: OpenFile, findings: Li
     (``decode_failed`` / ``statistics_mismatch``) and every window it overlaps gets a
     per-channel finding. Rows with a null timestamp are dropped (``null_timestamps``).
     """
+    names = task.channels + task.covariates
+    date = local_date(task.window_starts_us[0], config.timezone)
+    pieces: List[_PieceRows] = []
+    lost: List[_LostRows] = []
+    for piece in task.pieces:
+        rows = _piece_rows(task, piece, names, config, open_file, date, findings, lost)
+        if rows is not None:
+            pieces.append(rows)
+    return _task_data(pieces, names, config, lost)
+
+
+def _piece_rows(task: ReadTask, piece, names, config: AssetConfig, open_file: OpenFile, date: str,
+                findings: List[Reject], lost: List[_LostRows]) -> Optional[_PieceRows]:
+    """Decode one piece and keep the row groups that pass their checks (None when none does).
+
+    Findings go to ``findings`` (``null_timestamps``, ``statistics_mismatch``, ``decode_failed``,
+    in that order) and the row groups concerned to ``lost``.
+    """
     archive = config.archive
     wide = archive.layout == "wide"
-    names = task.channels + task.covariates
-    tables, naive_flags, absent_rows, files, lost = [], [], [], [], []
-    first_date = local_date(task.window_starts_us[0], archive.timezone)
-
-    def file_finding(path, reason, detail):
-        findings.append(Reject(stage="read", source=path, subject=WHOLE_FILE, reason=reason, detail=detail,
-                               asset=config.name, date=first_date))
-
-    for piece in task.pieces:
-        spans = dict(zip(piece.row_groups, piece.row_group_spans_us)) if piece.row_group_spans_us else {}
-        whole_span = (min((s[0] for s in spans.values()), default=piece.start_us),
-                      max((s[1] for s in spans.values()), default=task.window_starts_us[-1] + 10**15))
-        read_names = tuple(n for n in names if (not wide) or n in piece.columns)
+    spans = dict(zip(piece.row_groups, piece.row_group_spans_us)) if piece.row_group_spans_us else {}
+    whole_span = (min((s[0] for s in spans.values()), default=piece.start_us),
+                  max((s[1] for s in spans.values()), default=task.window_starts_us[-1] + 10**15))
+    read_names = tuple(n for n in names if (not wide) or n in piece.columns)
+    try:
+        with open_file(piece.path) as handle:
+            decoded, failed = _read_piece(handle, piece)
+    except Exception as err:  # noqa: BLE001 - reported, the task's other files still count
+        decoded, failed = [], [(rg, f"{type(err).__name__}: {err}") for rg in piece.row_groups]
+    kept = []
+    for rg, table in decoded:
         try:
-            with open_file(piece.path) as handle:
-                decoded, failed = _read_piece(handle, piece)
-        except Exception as err:  # noqa: BLE001 - reported, the task's other files still count
-            decoded, failed = [], [(rg, f"{type(err).__name__}: {err}") for rg in piece.row_groups]
-        kept = []
-        for rg, table in decoded:
-            try:
-                columns, naive = _row_group_columns(table, piece, names, archive, wide)
-            except Exception as err:  # noqa: BLE001 - a column that cannot be converted
-                failed.append((rg, f"{type(err).__name__}: {err}"))
-                continue
-            times = columns["time"]
-            if times.null_count:
-                file_finding(piece.path, "null_timestamps",
-                             f"row group {rg}: {times.null_count} rows without a timestamp dropped")
-                lo, hi = spans.get(rg, whole_span)
-                lost.append((lo, hi, piece.path, (rg,), read_names, "null_timestamps",
-                             f"{times.null_count} rows of {piece.path} row group {rg} have no timestamp and "
-                             "were not used; this window may have lost samples"))
-                keep = pc.is_valid(times)
-                columns = {k: pc.filter(v, keep) for k, v in columns.items()}
-            t = columns["time"].to_numpy(zero_copy_only=False).astype(np.int64)
-            if naive:
-                t = local_to_utc_us(t, archive.timezone)
-            if rg in spans and t.size and (int(t.min()), int(t.max())) != tuple(spans[rg]):
-                lo, hi = min(int(t.min()), spans[rg][0]), max(int(t.max()), spans[rg][1])
-                file_finding(piece.path, "statistics_mismatch",
-                             f"row group {rg}: timestamps span {iso_utc(int(t.min()))} .. {iso_utc(int(t.max()))}, "
-                             f"statistics said {iso_utc(spans[rg][0])} .. {iso_utc(spans[rg][1])}; rows not used")
-                lost.append((lo, hi, piece.path, (rg,), read_names, "statistics_mismatch",
-                             f"samples of {piece.path} row group {rg} were not used (its statistics are wrong)"))
-                continue
-            kept.append((rg, pa.table(columns), naive))
-        for rg, error in failed:
-            file_finding(piece.path, "decode_failed", f"row group {rg}: {error}")
-            lo, hi = spans.get(rg, whole_span)
-            lost.append((lo, hi, piece.path, (rg,), read_names, "decode_failed",
-                         f"samples of {piece.path} row group {rg} could not be decoded (treated as gaps)"))
-        if not kept:
+            columns, naive = _row_group_columns(table, piece, names, archive, wide)
+        except Exception as err:  # noqa: BLE001 - a column that cannot be converted
+            failed.append((rg, f"{type(err).__name__}: {err}"))
             continue
-        # one table per piece (its row groups in file order), one naive flag per piece
-        tables.append(pa.concat_tables([t for _, t, _ in kept]))
-        naive_flags.append(kept[0][2])
-        absent_rows.append([name in piece.absent for name in names] if wide else [])
-        files.append(piece.path)
+        lo, hi = spans.get(rg, whole_span)
+        columns = _drop_null_times(columns, config, piece.path, rg, (lo, hi), read_names, date, findings, lost)
+        if rg in spans and not _agrees_with_statistics(columns["time"], naive, spans[rg], config, piece.path,
+                                                       rg, read_names, date, findings, lost):
+            continue
+        kept.append((pa.table(columns), naive))
+    for rg, error in failed:
+        findings.append(_file_finding(config, piece.path, "decode_failed", f"row group {rg}: {error}", date))
+        lo, hi = spans.get(rg, whole_span)
+        lost.append(_LostRows(lo, hi, piece.path, (rg,), read_names, "decode_failed",
+                              f"samples of {piece.path} row group {rg} could not be decoded (treated as gaps)"))
+    if not kept:
+        return None
+    # one table per piece (its row groups in file order), one naive flag per piece
+    return _PieceRows(path=piece.path, table=pa.concat_tables([t for t, _ in kept]), naive=kept[0][1],
+                      absent=[name in piece.absent for name in names] if wide else [])
 
+
+def _drop_null_times(columns: Dict[str, pa.Array], config: AssetConfig, path: str, rg: int, span,
+                     read_names, date: str, findings: List[Reject], lost: List[_LostRows]) -> Dict[str, pa.Array]:
+    """The row group's columns without its rows that have no timestamp (``null_timestamps``)."""
+    times = columns["time"]
+    if not times.null_count:
+        return columns
+    findings.append(_file_finding(config, path, "null_timestamps",
+                                  f"row group {rg}: {times.null_count} rows without a timestamp dropped", date))
+    lost.append(_LostRows(span[0], span[1], path, (rg,), read_names, "null_timestamps",
+                          f"{times.null_count} rows of {path} row group {rg} have no timestamp and "
+                          "were not used; this window may have lost samples"))
+    keep = pc.is_valid(times)
+    return {k: pc.filter(v, keep) for k, v in columns.items()}
+
+
+def _agrees_with_statistics(times: pa.Array, naive: bool, span, config: AssetConfig, path: str, rg: int,
+                            read_names, date: str, findings: List[Reject], lost: List[_LostRows]) -> bool:
+    """True when the decoded timestamps span exactly the footer's (first, last); else the
+    ``statistics_mismatch`` finding and lost rows are recorded."""
+    t = times.to_numpy(zero_copy_only=False).astype(np.int64)
+    if naive:
+        t = local_to_utc_us(t, config.archive.timezone)
+    if not t.size or (int(t.min()), int(t.max())) == tuple(span):
+        return True
+    lo, hi = min(int(t.min()), span[0]), max(int(t.max()), span[1])
+    findings.append(_file_finding(
+        config, path, "statistics_mismatch",
+        f"row group {rg}: timestamps span {iso_utc(int(t.min()))} .. {iso_utc(int(t.max()))}, "
+        f"statistics said {iso_utc(span[0])} .. {iso_utc(span[1])}; rows not used", date))
+    lost.append(_LostRows(lo, hi, path, (rg,), read_names, "statistics_mismatch",
+                          f"samples of {path} row group {rg} were not used (its statistics are wrong)"))
+    return False
+
+
+def _task_data(pieces: List[_PieceRows], names, config: AssetConfig, lost: List[_LostRows]) -> _TaskData:
+    """Join the pieces' rows into the task's arrays: times in UTC, rows sorted by time."""
+    wide = config.archive.layout == "wide"
+    tables = [p.table for p in pieces]
     counts = [t.num_rows for t in tables]
-    if tables and not wide:
-        merged = pa.concat_tables(tables)
-    else:
-        merged = None  # wide: the pieces' float columns may differ in width, so they are not concatenated
     times = (np.concatenate([t.column("time").to_numpy().astype(np.int64) for t in tables])
              if tables else np.zeros(0, np.int64))
     file_index = np.repeat(np.arange(len(tables), dtype=np.int32), counts)
     bounds = np.concatenate([[0], np.cumsum(counts)]).astype(np.int64)
     unordered = []
-    for i in range(len(tables)):
+    for i, piece in enumerate(pieces):
         part = slice(bounds[i], bounds[i + 1])
-        if naive_flags[i]:
-            times[part] = local_to_utc_us(times[part], archive.timezone)
+        if piece.naive:
+            times[part] = local_to_utc_us(times[part], config.archive.timezone)
         t = times[part]
         back = np.flatnonzero(np.diff(t) < 0)
         if back.size:
             unordered.append(t[back + 1])
     if wide:
-        # one conversion per piece and column, written straight into the task's (rows, columns) array
+        # one conversion per piece and column, written straight into the task's (rows, columns) array;
+        # the pieces' float columns may differ in width, so the tables are not concatenated
         values = np.empty((int(bounds[-1]), len(names)))
         for i, table in enumerate(tables):
             for j, name in enumerate(names):
                 values[bounds[i]:bounds[i + 1], j] = table.column(name).to_numpy()
-        absent = np.array(absent_rows, dtype=bool).reshape(len(tables), len(names))
+        absent = np.array([p.absent for p in pieces], dtype=bool).reshape(len(tables), len(names))
         codes = None
     else:
+        merged = pa.concat_tables(tables) if tables else None
         values = merged.column("value").to_numpy(zero_copy_only=False).reshape(-1, 1) if tables else np.zeros((0, 1))
         codes = merged.column("code").to_numpy(zero_copy_only=False).astype(np.int32) if tables else np.zeros(0, np.int32)
         absent = np.zeros((len(tables), 1), dtype=bool)
@@ -216,7 +290,7 @@ def _load(task: ReadTask, config: AssetConfig, open_file: OpenFile, findings: Li
         if codes is not None:
             codes = codes[order]
     unordered_times = np.sort(np.concatenate(unordered)) if unordered else np.zeros(0, np.int64)
-    return _TaskData(times, file_index, values, absent, codes, unordered_times, files, lost)
+    return _TaskData(times, file_index, values, absent, codes, unordered_times, [p.path for p in pieces], lost)
 
 
 def _circular_phase(x: np.ndarray) -> float:
@@ -321,17 +395,6 @@ def _assemble(times: np.ndarray, values: np.ndarray, file_index: np.ndarray, abs
     return out
 
 
-def _whole_window(config: AssetConfig, start_us: int, reason: str, detail: str) -> Reject:
-    return Reject(stage="read", source=iso_utc(start_us), subject=WHOLE_WINDOW, reason=reason, detail=detail,
-                  asset=config.name, window_start_us=start_us)
-
-
-def _finding(config: AssetConfig, start_us: int, reason: str, detail: str, subject: str = WHOLE_WINDOW,
-             action: Optional[str] = None) -> Reject:
-    return Reject(stage="read", source=iso_utc(start_us), subject=subject, reason=reason, detail=detail,
-                  asset=config.name, window_start_us=start_us, action=action)
-
-
 def _channel_checks(grid: np.ndarray, valid: np.ndarray, n_channels: int):
     """Per channel: (coverage, valid samples, max, min, clip fraction) of the valid samples.
 
@@ -372,79 +435,115 @@ def _extreme_fraction(at_high: int, at_low: int, size: int) -> float:
     return ((at_high if at_high >= MIN_CLIP_REPEATS else 0) + (at_low if at_low >= MIN_CLIP_REPEATS else 0)) / size
 
 
+@dataclasses.dataclass
+class _SnappedWindow:
+    """One window's samples on its grid (all channels and covariates) and what snapping found.
+
+    ``totals`` counts ``off_grid``, ``beyond``, ``duplicates``, ``overlaps`` and ``conflicts``;
+    ``conflict_files`` indexes ``_TaskData.files``; ``sources`` names the files of the window.
+    """
+
+    grid: np.ndarray
+    valid: np.ndarray
+    nonfinite: np.ndarray
+    totals: collections.Counter
+    conflict_files: set
+    covariate_sums: np.ndarray
+    covariate_counts: np.ndarray
+    sources: Tuple[str, ...]
+
+
 def _window(task: ReadTask, data: _TaskData, config: AssetConfig, start_us: int) -> List[Union[WindowBlock, Reject]]:
     """Assemble one window: a block plus findings, or findings ending in a whole-window reject."""
-    length_us, _, n_samples, period_us = window_grid(config)
-    tolerance = config.reading.grid_tolerance
-    names = task.channels + task.covariates
+    _, _, n_samples, period_us = window_grid(config)
     lo = np.searchsorted(data.times, start_us - 0.5 * period_us, side="left")
     hi = np.searchsorted(data.times, start_us + (n_samples - 0.5) * period_us, side="left")
     times = data.times[lo:hi]
     if times.size == 0:
-        return [_whole_window(config, start_us, "insufficient_coverage", "no samples in the window")]
-    file_index = data.file_index[lo:hi]
-    file_ids = np.flatnonzero(np.bincount(file_index))
+        return [Reject.for_window(config.name, start_us, "read", "insufficient_coverage", "no samples in the window")]
+    file_ids = np.flatnonzero(np.bincount(data.file_index[lo:hi]))
     sources = tuple(data.files[i] for i in file_ids)
-
     if _complete_on_grid(data, times, file_ids, start_us, n_samples, period_us):
-        # the rows are the window's grid points in order, every file holds every column: the
-        # snapping below would keep every row as it is (phase 0, residual 0, no duplicates),
-        # so the decoded rows are used in place, without the copies of the general path
-        view = data.values[lo:hi]
-        valid = np.isfinite(view)
-        if valid.all():
-            grid = view
-            nonfinite = np.zeros(view.shape[1], dtype=np.int64)
-            covariate_counts = np.full(view.shape[1], view.shape[0], dtype=np.int64)
-        else:
-            grid = np.where(valid, view, 0.0)
-            nonfinite = (~valid).sum(axis=0)
-            covariate_counts = valid.sum(axis=0)
-        # all columns summed together, as in the general path below (a single column alone would be
-        # summed pairwise, not row by row, and its mean would differ in the last bit)
-        covariate_sums = grid.sum(axis=0)
-        return _checked_block(task, data, config, start_us, grid, valid, nonfinite, collections.Counter(),
-                              set(), covariate_sums, covariate_counts, sources, tolerance)
+        return _checked_block(task, data, config, start_us, _grid_in_place(data.values[lo:hi], sources))
+    n_columns = len(task.channels + task.covariates)
+    groups = _assembly_groups(data, lo, hi, n_columns)
+    mismatch = _rate_mismatch(times, groups, period_us, config, start_us, sources)
+    if mismatch is not None:
+        return [mismatch]
+    snapped = _snapped_grid(data, lo, hi, groups, n_columns, start_us, config, sources)
+    return _checked_block(task, data, config, start_us, snapped)
 
-    groups: List[Tuple[List[int], np.ndarray]] = []  # (columns, rows) to assemble together
-    if data.channel_codes is None:
-        groups.append((list(range(len(names))), np.arange(times.size)))
+
+def _grid_in_place(view: np.ndarray, sources: Tuple[str, ...]) -> _SnappedWindow:
+    """The window of rows that already are its grid points in order (see :func:`_complete_on_grid`).
+
+    The snapping of :func:`_snapped_grid` would keep every row as it is (phase 0, residual 0, no
+    duplicates), so the decoded rows are used in place, without the copies of the general path.
+    """
+    valid = np.isfinite(view)
+    if valid.all():
+        grid = view
+        nonfinite = np.zeros(view.shape[1], dtype=np.int64)
+        covariate_counts = np.full(view.shape[1], view.shape[0], dtype=np.int64)
     else:
-        codes = data.channel_codes[lo:hi]
-        for c in range(len(names)):
-            groups.append(([c], np.flatnonzero(codes == c)))
+        grid = np.where(valid, view, 0.0)
+        nonfinite = (~valid).sum(axis=0)
+        covariate_counts = valid.sum(axis=0)
+    # all columns summed together, as in the general path (a single column alone would be
+    # summed pairwise, not row by row, and its mean would differ in the last bit)
+    covariate_sums = grid.sum(axis=0)
+    return _SnappedWindow(grid, valid, nonfinite, collections.Counter(), set(), covariate_sums,
+                          covariate_counts, sources)
 
+
+def _assembly_groups(data: _TaskData, lo: int, hi: int, n_columns: int) -> List[Tuple[List[int], np.ndarray]]:
+    """(columns, rows relative to ``lo``) snapped together: all columns at once (wide layout)
+    or one channel at a time (long layout)."""
+    if data.channel_codes is None:
+        return [(list(range(n_columns)), np.arange(hi - lo))]
+    codes = data.channel_codes[lo:hi]
+    return [([c], np.flatnonzero(codes == c)) for c in range(n_columns)]
+
+
+def _rate_mismatch(times: np.ndarray, groups, period_us: float, config: AssetConfig, start_us: int,
+                   sources: Tuple[str, ...]) -> Optional[Reject]:
+    """The ``sample_rate_mismatch`` reject when the groups' median sample interval differs from the
+    nominal one by more than :data:`RATE_TOLERANCE`, else None."""
     intervals = [_median_interval(times[rows]) for _, rows in groups if rows.size >= 3]
     intervals = [v for v in intervals if np.isfinite(v)]
-    if intervals:
-        median = float(np.median(intervals))
-        if abs(median / period_us - 1.0) > RATE_TOLERANCE:
-            return [_whole_window(
-                config, start_us, "sample_rate_mismatch",
-                f"median sample interval {median / 1e6:.6g} s ({1e6 / median:.6g} Hz) vs nominal "
-                f"{config.archive.sample_rate_hz:g} Hz; files: {', '.join(sources)}")]
+    if not intervals:
+        return None
+    median = float(np.median(intervals))
+    if abs(median / period_us - 1.0) <= RATE_TOLERANCE:
+        return None
+    return Reject.for_window(
+        config.name, start_us, "read", "sample_rate_mismatch",
+        f"median sample interval {median / 1e6:.6g} s ({1e6 / median:.6g} Hz) vs nominal "
+        f"{config.archive.sample_rate_hz:g} Hz; files: {', '.join(sources)}")
 
-    grid = np.zeros((n_samples, len(names)))
-    valid = np.zeros((n_samples, len(names)), dtype=bool)
-    covariate_sums = np.zeros(len(names))
-    covariate_counts = np.zeros(len(names), dtype=np.int64)
-    totals = collections.Counter()
-    nonfinite = np.zeros(len(names), dtype=np.int64)
-    conflict_files: set = set()
+
+def _snapped_grid(data: _TaskData, lo: int, hi: int, groups, n_columns: int, start_us: int,
+                  config: AssetConfig, sources: Tuple[str, ...]) -> _SnappedWindow:
+    """Snap each group's rows onto the window's grid (:func:`_assemble`) and add up the counts."""
+    _, _, n_samples, period_us = window_grid(config)
+    times, file_index, rows_values = data.times[lo:hi], data.file_index[lo:hi], data.values[lo:hi]
+    out = _SnappedWindow(np.zeros((n_samples, n_columns)), np.zeros((n_samples, n_columns), dtype=bool),
+                         np.zeros(n_columns, dtype=np.int64), collections.Counter(), set(),
+                         np.zeros(n_columns), np.zeros(n_columns, dtype=np.int64), sources)
     for columns, rows in groups:
-        values = data.values[lo:hi][rows] if data.channel_codes is None else data.values[lo:hi][rows][:, :1]
+        values = rows_values[rows] if data.channel_codes is None else rows_values[rows][:, :1]
         absent = data.absent[:, columns] if data.channel_codes is None else np.zeros((len(data.files), 1), bool)
-        part = _assemble(times[rows], values, file_index[rows], absent, start_us, n_samples, period_us, tolerance)
-        grid[:, columns] = part.grid
-        valid[:, columns] = part.valid
-        nonfinite[columns] += part.nonfinite
-        totals.update(off_grid=part.off_grid, beyond=part.beyond_tolerance, duplicates=part.duplicates,
-                      overlaps=part.overlap_duplicates, conflicts=part.conflicts)
-        conflict_files |= part.conflict_files
-        covariate_sums[columns] += np.where(part.valid, part.grid, 0.0).sum(axis=0)
-        covariate_counts[columns] += part.valid.sum(axis=0)
-    return _checked_block(task, data, config, start_us, grid, valid, nonfinite, totals, conflict_files,
-                          covariate_sums, covariate_counts, sources, tolerance)
+        part = _assemble(times[rows], values, file_index[rows], absent, start_us, n_samples, period_us,
+                         config.reading.grid_tolerance)
+        out.grid[:, columns] = part.grid
+        out.valid[:, columns] = part.valid
+        out.nonfinite[columns] += part.nonfinite
+        out.totals.update(off_grid=part.off_grid, beyond=part.beyond_tolerance, duplicates=part.duplicates,
+                          overlaps=part.overlap_duplicates, conflicts=part.conflicts)
+        out.conflict_files |= part.conflict_files
+        out.covariate_sums[columns] += np.where(part.valid, part.grid, 0.0).sum(axis=0)
+        out.covariate_counts[columns] += part.valid.sum(axis=0)
+    return out
 
 
 def _complete_on_grid(data: _TaskData, times: np.ndarray, file_ids: np.ndarray, start_us: int,
@@ -458,46 +557,88 @@ def _complete_on_grid(data: _TaskData, times: np.ndarray, file_ids: np.ndarray, 
     return not (data.absent.size and data.absent[file_ids].any())
 
 
-def _checked_block(task: ReadTask, data: _TaskData, config: AssetConfig, start_us: int, grid: np.ndarray,
-                   valid: np.ndarray, nonfinite: np.ndarray, totals, conflict_files: set,
-                   covariate_sums: np.ndarray, covariate_counts: np.ndarray, sources, tolerance: float
-                   ) -> List[Union[WindowBlock, Reject]]:
+def _checked_block(task: ReadTask, data: _TaskData, config: AssetConfig, start_us: int,
+                   window: _SnappedWindow) -> List[Union[WindowBlock, Reject]]:
     """Findings, channel checks and the block of an assembled window grid."""
-    _, _, n_samples, period_us = window_grid(config)
-    n_channels = len(task.channels)
-    out: List[Union[WindowBlock, Reject]] = []
+    totals = window.totals
     if totals["conflicts"]:
-        files = ", ".join(sorted(data.files[i] for i in conflict_files))
-        return [_whole_window(config, start_us, "conflicting_duplicates",
-                              f"{totals['conflicts']} grid points hold different values at equal timestamps; files: {files}")]
+        files = ", ".join(sorted(data.files[i] for i in window.conflict_files))
+        return [Reject.for_window(config.name, start_us, "read", "conflicting_duplicates",
+                                  f"{totals['conflicts']} grid points hold different values at equal "
+                                  f"timestamps; files: {files}")]
+    out: List[Union[WindowBlock, Reject]] = _repair_findings(task, data, config, start_us, window)
+    kept, failures, quality, flags = _channel_verdicts(task, config, start_us, window)
+    out.extend(flags)
+    if not kept:
+        reasons = collections.Counter(reason for reason, _ in failures.values())
+        reason = max(sorted(reasons), key=lambda r: reasons[r])
+        detail = "no channel left: " + "; ".join(f"{n}: {r} ({d})" for n, (r, d) in failures.items())
+        out.append(Reject.for_window(config.name, start_us, "read", reason, detail))
+        return out
+    for name, (reason, detail) in failures.items():
+        out.append(Reject.for_window(config.name, start_us, "read", reason, detail, subject=name))
+    covariates = _covariate_means(task, config, start_us, window, out)
+    out.append(WindowBlock(
+        asset=config.name, window_start_us=int(start_us), window_length_s=config.windows.length_s,
+        sample_rate_hz=config.archive.sample_rate_hz,
+        channels=tuple(task.channels[c] for c in kept),
+        values=np.ascontiguousarray(window.grid[:, kept]), valid=np.ascontiguousarray(window.valid[:, kept]),
+        covariates=covariates, channel_quality=quality, sources=window.sources))
+    return out
+
+
+def _repair_findings(task: ReadTask, data: _TaskData, config: AssetConfig, start_us: int,
+                     window: _SnappedWindow) -> List[Reject]:
+    """The repaired findings of a window: sorted, deduplicated, snapped, dropped and NaN samples."""
+    _, _, n_samples, period_us = window_grid(config)
+    totals, sources = window.totals, window.sources
+    found = []
+
+    def note(reason, detail, subject=WHOLE_WINDOW):
+        found.append(Reject.for_window(config.name, start_us, "read", reason, detail, subject=subject))
+
     window_lo, window_hi = start_us - 0.5 * period_us, start_us + (n_samples - 0.5) * period_us
     unordered = int(np.count_nonzero((data.unordered_times >= window_lo) & (data.unordered_times < window_hi)))
     if unordered:
-        out.append(_finding(config, start_us, "unordered_timestamps",
-                            f"{unordered} rows out of time order in {', '.join(sources)}; sorted"))
+        note("unordered_timestamps", f"{unordered} rows out of time order in {', '.join(sources)}; sorted")
     if totals["duplicates"]:
-        out.append(_finding(config, start_us, "duplicate_timestamps",
-                            f"{totals['duplicates']} duplicated samples with equal values dropped"))
+        note("duplicate_timestamps", f"{totals['duplicates']} duplicated samples with equal values dropped")
     if totals["overlaps"]:
-        out.append(_finding(config, start_us, "overlapping_files",
-                            f"{totals['overlaps']} samples held by more than one of {', '.join(sources)}; kept once"))
+        note("overlapping_files", f"{totals['overlaps']} samples held by more than one of {', '.join(sources)}; kept once")
     if totals["off_grid"]:
-        out.append(_finding(config, start_us, "off_grid_timestamps",
-                            f"{totals['off_grid']} timestamps more than {OFF_GRID_NOISE:g} of a period off the grid; snapped"))
+        note("off_grid_timestamps",
+             f"{totals['off_grid']} timestamps more than {OFF_GRID_NOISE:g} of a period off the grid; snapped")
     if totals["beyond"]:
-        out.append(_finding(config, start_us, "jitter_beyond_tolerance",
-                            f"{totals['beyond']} samples further than {tolerance:g} of a period from the grid "
-                            "dropped (treated as gaps)"))
+        note("jitter_beyond_tolerance",
+             f"{totals['beyond']} samples further than {config.reading.grid_tolerance:g} of a period from the "
+             "grid dropped (treated as gaps)")
     for c, name in enumerate(task.channels):
-        if nonfinite[c]:
-            out.append(_finding(config, start_us, "nonfinite_values",
-                                f"{int(nonfinite[c])} NaN, inf or null samples treated as gaps", subject=name))
+        if window.nonfinite[c]:
+            note("nonfinite_values", f"{int(window.nonfinite[c])} NaN, inf or null samples treated as gaps", name)
+    return found
 
+
+def _channel_verdicts(task: ReadTask, config: AssetConfig, start_us: int, window: _SnappedWindow):
+    """Per channel: kept, rejected (coverage, flat) or kept and flagged (clipped).
+
+    Returns
+    -------
+    kept : list of int
+        Indices of the channels kept, in order.
+    failures : dict
+        Channel -> (reason, detail) of the channels rejected in this window.
+    quality : dict
+        Channel -> quality codes of kept channels.
+    flags : list of Reject
+        ``clipped_channel`` findings, in channel order.
+    """
     kept: List[int] = []
     failures: Dict[str, Tuple[str, str]] = {}
     quality: Dict[str, Tuple[str, ...]] = {}
+    flags: List[Reject] = []
     min_coverage = config.windows.min_coverage
-    for c, (coverage, size, high, low, fraction) in enumerate(_channel_checks(grid, valid, n_channels)):
+    checks = _channel_checks(window.grid, window.valid, len(task.channels))
+    for c, (coverage, size, high, low, fraction) in enumerate(checks):
         name = task.channels[c]
         if coverage < min_coverage:
             failures[name] = ("insufficient_coverage", f"coverage {coverage:.4f} < min_coverage {min_coverage:g}")
@@ -507,37 +648,28 @@ def _checked_block(task: ReadTask, data: _TaskData, config: AssetConfig, start_u
             continue
         if fraction >= config.reading.clip_fraction:
             quality[name] = ("clipped",)
-            out.append(_finding(config, start_us, "clipped_channel",
-                                f"{fraction:.4f} of samples at the extreme values "
-                                f"[{low:g}, {high:g}] (clip_fraction {config.reading.clip_fraction:g})",
-                                subject=name))
+            flags.append(Reject.for_window(config.name, start_us, "read", "clipped_channel",
+                                           f"{fraction:.4f} of samples at the extreme values "
+                                           f"[{low:g}, {high:g}] (clip_fraction {config.reading.clip_fraction:g})",
+                                           subject=name))
         kept.append(c)
+    return kept, failures, quality, flags
 
-    if not kept:
-        reasons = collections.Counter(reason for reason, _ in failures.values())
-        reason = max(sorted(reasons), key=lambda r: reasons[r])
-        detail = "no channel left: " + "; ".join(f"{n}: {r} ({d})" for n, (r, d) in failures.items())
-        out.append(_whole_window(config, start_us, reason, detail))
-        return out
-    for name, (reason, detail) in failures.items():
-        out.append(_finding(config, start_us, reason, detail, subject=name))
 
+def _covariate_means(task: ReadTask, config: AssetConfig, start_us: int, window: _SnappedWindow,
+                     out: List) -> Dict[str, float]:
+    """Mean of each covariate's valid grid samples (NaN, with a finding appended to ``out``, when none)."""
+    n_channels = len(task.channels)
     covariates = {}
     for j, name in enumerate(task.covariates):
         c = n_channels + j
-        covariates[name] = float(covariate_sums[c] / covariate_counts[c]) if covariate_counts[c] else float("nan")
-        if not covariate_counts[c]:
-            out.append(_finding(config, start_us, "insufficient_coverage",
-                                "covariate without a valid sample in the window; its mean is missing (NaN)",
-                                subject=name))
-    block = WindowBlock(
-        asset=config.name, window_start_us=int(start_us), window_length_s=config.windows.length_s,
-        sample_rate_hz=config.archive.sample_rate_hz,
-        channels=tuple(task.channels[c] for c in kept),
-        values=np.ascontiguousarray(grid[:, kept]), valid=np.ascontiguousarray(valid[:, kept]),
-        covariates=covariates, channel_quality=quality, sources=sources)
-    out.append(block)
-    return out
+        count = window.covariate_counts[c]
+        covariates[name] = float(window.covariate_sums[c] / count) if count else float("nan")
+        if not count:
+            out.append(Reject.for_window(config.name, start_us, "read", "insufficient_coverage",
+                                         "covariate without a valid sample in the window; its mean is missing (NaN)",
+                                         subject=name))
+    return covariates
 
 
 def read_windows(task: ReadTask, config: AssetConfig, open_file: OpenFile = open_local_file
@@ -561,7 +693,9 @@ def read_windows(task: ReadTask, config: AssetConfig, open_file: OpenFile = open
 
     Notes
     -----
-    Snapping: sample ``i`` of a window is the row with ``round((t - start) / T - phi) == i``,
+    Snapping: sample ``i`` of a window is the row with ``round((t - start) / T - phi) == i``
+    (the grid is the window's own, from its start: windows off the epoch grid, with
+    ``[windows] offset_s`` or ``align = "records"``, snap the same way),
     ``T = 1 / sample_rate_hz``, ``phi`` the group's mean grid phase; rows further than
     ``[reading] grid_tolerance * T`` from their grid point are gaps. Coverage of a channel is its
     fraction of valid grid points; below ``[windows] min_coverage`` the channel is rejected in that
@@ -597,7 +731,7 @@ def _lost_rows(task: ReadTask, data: _TaskData, config: AssetConfig, start_us: i
             continue
         for name in names:
             if name in task.channels or name in task.covariates:
-                out.append(_finding(config, start_us, reason, detail, subject=name, action="rejected"))
+                out.append(Reject.for_window(config.name, start_us, "read", reason, detail, subject=name, action="rejected"))
     return out
 
 
