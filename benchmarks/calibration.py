@@ -284,7 +284,7 @@ def _auto_truths(channel: str, rho: np.ndarray, variance: float, dt: float) -> D
 
 def ar1_scenario(name: str, n: int, phi: float = 0.9, fs: float = 10.0, max_lag_s: float = 10.0) -> Scenario:
     """AR(1) record of ``n`` samples; ``n (1 - phi) / (1 + phi)`` effective samples."""
-    L = int(round(max_lag_s * fs))
+    L = round(max_lag_s * fs)
     rho = ar1_autocorrelation(phi, np.arange(L + 1))
 
     def simulate(rng):
@@ -301,8 +301,8 @@ def sdof_scenario(name: str, damping: float, freq_hz: float = 2.0, fs: float = 2
                   record_s: float = 600.0, max_lag_s: float = 30.0) -> Scenario:
     """White-noise driven oscillator, exact sampling; one mode fitted on [0.75, 1.25] f_n."""
     osc = Oscillator(freq_hz, damping, fs)
-    n = int(round(record_s * fs))
-    L = int(round(max_lag_s * fs))
+    n = round(record_s * fs)
+    L = round(max_lag_s * fs)
     rho = sdof_autocorrelation(np.arange(L + 1) / fs, freq_hz, damping)
     truths = _auto_truths("a", rho, 1.0, 1 / fs)
     truths[("mode", "mode_freq_hz")] = freq_hz
@@ -325,7 +325,7 @@ def delay_scenario(name: str, description: str, source_psd, noise_psd_a, noise_p
     acov_s = circular_autocovariance(source_psd)
     acov_a = acov_s + circular_autocovariance(noise_psd_a)
     acov_b = acov_s + circular_autocovariance(noise_psd_b)
-    L = int(round(max_lag_s * fs))
+    L = round(max_lag_s * fs)
     truths = _auto_truths("a", acov_a[:L + 1] / acov_a[0], float(acov_a[0]), 1 / fs)
     truths.update(_auto_truths("b", acov_b[:L + 1] / acov_b[0], float(acov_b[0]), 1 / fs))
     truths[("a:b", "lag_s")] = delay_s
@@ -574,7 +574,7 @@ def detector_row(detect, config, phi: float, seeds: int, monitored: int, seed: i
     The residual series is a unit-variance AR(1) (the residual scale is its marginal standard
     deviation); a step of ``delta`` residual scales starts at the first monitored window.
     """
-    rng = np.random.default_rng([seed, int(round(phi * 1000))])
+    rng = np.random.default_rng([seed, round(phi * 1000)])
     sigma = math.sqrt(1 - phi * phi)
     episodes, first_alarm = 0, []
     for _ in range(seeds):
@@ -606,12 +606,12 @@ def print_detectors(rows: List[dict], seeds: int, monitored: int) -> None:
           f"{monitored} monitored windows each; steps start at the first monitored window, "
           f"detected within 300 windows")
     print("| phi | false episodes / 1000 windows | alarm-free series | median run to first false alarm | "
-          "restricted mean run (<= %d) | step 1: median delay (detected) | step 2: median delay (detected) |"
-          % monitored)
+          f"restricted mean run (<= {monitored}) | step 1: median delay (detected) | "
+          "step 2: median delay (detected) |")
     print("| --- | --- | --- | --- | --- | --- | --- |")
     for r in rows:
         d1, d2 = r["delay_1"], r["delay_2"]
-        median_run = "> %d" % monitored if not np.isfinite(r["median_run"]) else f"{r['median_run']:.0f}"
+        median_run = f"> {monitored}" if not np.isfinite(r["median_run"]) else f"{r['median_run']:.0f}"
         print(f"| {r['phi']:g} | {r['episodes_per_1000']:.2f} | {r['alarm_free']:.2f} | {median_run} | "
               f"{r['restricted_mean_run']:.0f} | {format_delay(d1)} | {format_delay(d2)} |")
 
