@@ -124,17 +124,17 @@ def test_episodes_from_the_reduced_shifts_equal_those_from_the_whole_table(site)
     # the launcher reads only shifted rows and each series' latest row per file; the summary
     # must be exactly the one built from every row
     from corrtransforms import tables
-    from corrtransforms.stages import shifts as shift_series
+    from corrtransforms.stages import summaries
     from corrtransforms.beam.output_tables import episode_evidence, read_partitions
 
     _, config, full = site
     whole = read_partitions(full, "shifts", "footbridge", tables.SHIFTS)
     reduced = read_partitions(full, "shifts", "footbridge", tables.SHIFTS, keep=episode_evidence)
     assert reduced.num_rows < whole.num_rows
-    assert shift_series.shift_episodes(reduced).equals(shift_series.shift_episodes(whole))
+    assert summaries.shift_episodes(reduced).equals(summaries.shift_episodes(whole))
     written = ds.dataset(os.path.join(full, "episodes"), format="parquet").to_table()
     assert written.drop_columns([c for c in written.column_names if c not in tables.EPISODES.names]) \
-        .select(tables.EPISODES.names).to_pylist() == shift_series.shift_episodes(whole).to_pylist()
+        .select(tables.EPISODES.names).to_pylist() == summaries.shift_episodes(whole).to_pylist()
 
 
 def test_nights_update_the_episodes_as_one_backfill_writes_them(site):

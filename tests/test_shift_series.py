@@ -14,6 +14,8 @@ from corrtransforms import tables
 from corrtransforms.numerics import detectors
 
 from corrtransforms.stages import shifts as shift_series
+from corrtransforms.stages import state as shift_state
+from corrtransforms.stages import summaries
 from corrtransforms.numerics.robust import local_days
 from tests.shift_fixtures import (HOUR_US, TIMEZONE, assert_tables_identical, indicator_rows, make_config,
                                   same, seasonal_series)
@@ -244,8 +246,8 @@ def _nightly(times, values, stderr, temperature, config, tmp_path):
             times[mask], values[mask], stderr[mask], None, {"temperature": temperature[mask]}, config, state,
             subject="deck", indicator="mode_freq_hz", unit="Hz")
         path = tmp_path / f"state-{number}.parquet"
-        pq.write_table(shift_series.states_table(day_states), path)
-        (state,) = shift_series.states_from_table(pq.read_table(path))
+        pq.write_table(shift_state.states_table(day_states), path)
+        (state,) = shift_state.states_from_table(pq.read_table(path))
         parts.append(table)
     return pa.concat_tables(parts), state
 
@@ -275,10 +277,10 @@ def test_state_round_trip_through_parquet_while_accumulating_and_fitted(tmp_path
     phases = {s.phase for s in states}
     assert phases == {"accumulating", "fitted"}
     path = tmp_path / "state.parquet"
-    pq.write_table(shift_series.states_table(states), path)
+    pq.write_table(shift_state.states_table(states), path)
     read = pq.read_table(path)
     assert read.schema.equals(tables.STATE)
-    back = shift_series.states_from_table(read)
+    back = shift_state.states_from_table(read)
     for original, restored in zip(states, back):
         assert same(original.to_row(), restored.to_row())
         assert same(dataclass_tuple(original), dataclass_tuple(restored))
@@ -300,9 +302,9 @@ def test_resuming_checks_settings_and_order():
                                            {"temperature": temperature[:12]}, config, subject="deck",
                                            indicator="mode_freq_hz")
     other = make_config("all", baseline={"windows": 20, "min_windows": 10}, cusum_h=6.0)
-    with pytest.raises(shift_series.StateMismatchError, match="settings"):
+    with pytest.raises(shift_state.StateMismatchError, match="settings"):
         shift_series.detect_shifts(times[12:], values[12:], stderr[12:], None, None, other, states[-1])
-    with pytest.raises(shift_series.StateMismatchError, match="not after"):
+    with pytest.raises(shift_state.StateMismatchError, match="not after"):
         shift_series.detect_shifts(times[5:], values[5:], stderr[5:], None, None, config, states[-1])
     with pytest.raises(ValueError, match="increasing"):
         shift_series.detect_shifts(times[::-1], values, stderr, None, None, config)
@@ -338,7 +340,7 @@ def test_covariate_means_with_conflicting_duplicates_become_missing():
 
 def test_episodes_summarise_runs_of_shifted_windows():
     table, _, step_us = _run(0, "none")
-    episodes = shift_series.shift_episodes(table)
+    episodes = summaries.shift_episodes(table)
     assert episodes.schema.equals(tables.EPISODES)
     frame = table.to_pandas()
     shifted = (frame.state == "shifted").to_numpy()
@@ -352,7 +354,7 @@ def test_episodes_summarise_runs_of_shifted_windows():
     assert first["first_alarm"] == run.window_start.iloc[0].to_pydatetime()
     assert first["peak_abs_z"] == pytest.approx(run.z.abs().max())
     # a table of only the last days still names the episode by its first alarm
-    tail = shift_series.shift_episodes(table.slice(table.num_rows - 24))
+    tail = summaries.shift_episodes(table.slice(table.num_rows - 24))
     if shifted[-1]:
         assert tail.column("first_alarm")[-1].as_py() == last["first_alarm"]
-    assert shift_series.shift_episodes(tables.SHIFTS.empty_table()).num_rows == 0
+    assert summaries.shift_episodes(tables.SHIFTS.empty_table()).num_rows == 0

@@ -22,7 +22,7 @@ from apache_beam.io.filesystems import CompressionTypes, FileSystems
 
 from corrtransforms import tables
 
-from corrtransforms.stages import shifts as shift_series
+from corrtransforms.stages import summaries
 
 from corrtransforms.stages import write as table_writer
 from corrtransforms.beam.filesystems import BeamFiles
@@ -288,7 +288,7 @@ def write_episodes(output_dir: str, config: AssetConfig, run_id: str) -> int:
     metadata = table_writer.provenance_metadata(config, run_id)
     evidence = summarize_partitions(output_dir, "shifts", config.name, tables.SHIFTS, episode_evidence,
                                     EPISODE_EVIDENCE, columns=EPISODE_COLUMNS, provenance=metadata)
-    episodes = shift_series.shift_episodes(evidence)
+    episodes = summaries.shift_episodes(evidence)
     store = BeamFiles()
     folder = store.join(output_dir, "episodes", f"asset={config.name}")
     store.mkdirs(folder)
