@@ -16,7 +16,7 @@ from corrtransforms.numerics import detectors
 from corrtransforms.stages import shifts as shift_series
 from corrtransforms.stages import state as shift_state
 from corrtransforms.stages import summaries
-from corrtransforms.numerics.robust import local_days
+from corrtransforms.timeutil import local_days
 from tests.shift_fixtures import (HOUR_US, TIMEZONE, assert_tables_identical, indicator_rows, make_config,
                                   same, seasonal_series)
 

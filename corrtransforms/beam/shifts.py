@@ -15,19 +15,12 @@ from typing import Any, Iterable, Union
 
 import apache_beam as beam
 import pyarrow as pa
-from apache_beam.metrics import Metrics
 
 from corrtransforms.stages import shifts as shift_series
 from corrtransforms.stages.state import ShiftState
+from corrtransforms.beam.metrics import counter as _counter
 from corrtransforms.config import AssetConfig
 from corrtransforms.records import IndicatorRow
-
-NAMESPACE = "corrtransforms"
-
-
-def _counter(name: str):
-    return Metrics.counter(NAMESPACE, name)
-
 
 class _SplitRowsFn(beam.DoFn):
     """Monitored rows to the main output, covariate means to "covariates"; counts the rest."""

@@ -43,11 +43,11 @@ import numpy as np
 import pyarrow as pa
 
 from corrtransforms import tables
-from corrtransforms.numerics.robust import day_date, day_number, local_days, period_position
 from corrtransforms.numerics.covariate_model import BaselineModel, fit_baseline_model
 from corrtransforms.numerics.detectors import cusum_path, cusum_run_lengths, cusum_run_sums, ewma_limits, ewma_path
 from corrtransforms.records import IndicatorRow, quality_codes, quality_text
 from corrtransforms.rejects import Reject, iso_utc
+from corrtransforms.timeutil import day_date, day_number, local_days
 from corrtransforms.stages.state import (ACCUMULATING, BASELINE, FITTED, NORMAL, SHIFTED, ShiftState,
                                          StateMismatchError, resume_or_start, select_resume_state,
                                          settings_digest, states_table)
@@ -109,6 +109,31 @@ def provisional_refit_point(first: int, count: int, growth: float = None) -> int
         if following > count:
             return point
         point = following
+
+
+def period_position(day: int, windows_seen: int, baseline_config) -> str:
+    """Where a window lies relative to the baseline: "before", "inside" or "after".
+
+    Parameters
+    ----------
+    day : int
+        Local day of the window (:func:`corrtransforms.timeutil.local_days`).
+    windows_seen : int
+        Windows of the series processed before this one.
+    baseline_config : corrtransforms.config.BaselineConfig
+        ``[baseline]``: a period of days (inclusive) or a count of windows from the first one
+        (100 when neither is given, as in :func:`corrtransforms.config.parse_config`).
+
+    Returns
+    -------
+    str
+    """
+    if baseline_config.by_dates:
+        if day < day_number(baseline_config.start):
+            return "before"
+        return "inside" if day <= day_number(baseline_config.end) else "after"
+    count = 100 if baseline_config.windows is None else baseline_config.windows  # config default
+    return "inside" if windows_seen < count else "after"
 
 
 # --------------------------------------------------------------------------------------------

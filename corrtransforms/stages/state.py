@@ -26,15 +26,14 @@ import pyarrow as pa
 from corrtransforms import tables
 from corrtransforms.config import AssetConfig
 from corrtransforms.numerics.covariate_model import BaselineModel
-from corrtransforms.numerics.robust import day_date, day_number
 from corrtransforms.records import IndicatorRow, quality_text
 from corrtransforms.rejects import Reject, iso_utc
+from corrtransforms.timeutil import datetime_to_us, day_date, day_number, us_to_datetime
 
 #: values of the ``state`` column of the shifts and state tables
 BASELINE, NORMAL, SHIFTED = "baseline", "normal", "shifted"
 #: values of the ``phase`` column of the state table
 ACCUMULATING, FITTED = "accumulating", "fitted"
-_EPOCH_UTC = _dt.datetime(1970, 1, 1, tzinfo=_dt.timezone.utc)
 
 
 class StateMismatchError(ValueError):
@@ -42,7 +41,7 @@ class StateMismatchError(ValueError):
 
 
 # --------------------------------------------------------------------------------------------
-# Settings and time helpers
+# Settings
 
 
 def settings_digest(config, order: int = 1) -> str:
@@ -72,23 +71,6 @@ def settings_digest(config, order: int = 1) -> str:
     }
     text = json.dumps(plain, sort_keys=True, separators=(",", ":"))
     return hashlib.sha256(text.encode("utf-8")).hexdigest()[:16]
-
-
-def _to_us(value) -> Optional[int]:
-    if value is None:
-        return None
-    if isinstance(value, _dt.datetime):
-        if value.tzinfo is None:
-            value = value.replace(tzinfo=_dt.timezone.utc)
-        delta = value - _EPOCH_UTC
-        return (delta.days * 86400 + delta.seconds) * 1_000_000 + delta.microseconds
-    return int(value)
-
-
-def _to_datetime(us: Optional[int]) -> Optional[_dt.datetime]:
-    if us is None:
-        return None
-    return _EPOCH_UTC + _dt.timedelta(microseconds=int(us))
 
 
 # --------------------------------------------------------------------------------------------
@@ -141,7 +123,7 @@ class ShiftState:
         """One row of the STATE table (timestamps as UTC datetimes, as pyarrow returns them)."""
         m = self.model
         return {
-            "window_start": _to_datetime(self.window_start_us),
+            "window_start": us_to_datetime(self.window_start_us),
             "local_date": day_date(self.local_day) if self.local_day is not None else None,
             "subject": self.subject,
             "indicator": self.indicator,
@@ -164,8 +146,8 @@ class ShiftState:
             "model_quality": None if m is None else quality_text(m.quality),
             "cusum_pos": self.cusum_pos,
             "cusum_neg": self.cusum_neg,
-            "run_start_pos": _to_datetime(self.run_start_pos),
-            "run_start_neg": _to_datetime(self.run_start_neg),
+            "run_start_pos": us_to_datetime(self.run_start_pos),
+            "run_start_neg": us_to_datetime(self.run_start_neg),
             "run_count_pos": int(self.run_count_pos),
             "run_count_neg": int(self.run_count_neg),
             "run_resid_pos": self.run_resid_pos,
@@ -173,11 +155,11 @@ class ShiftState:
             "ewma": self.ewma,
             "ewma_count": int(self.ewma_count),
             "state": self.state,
-            "onset": _to_datetime(self.onset),
+            "onset": us_to_datetime(self.onset),
             "direction": int(self.direction),
             "shift_size": self.shift_size,
             "detector": self.detector,
-            "first_alarm": _to_datetime(self.first_alarm),
+            "first_alarm": us_to_datetime(self.first_alarm),
             "ewma_limit": self.ewma_limit,
         }
 
@@ -206,7 +188,7 @@ class ShiftState:
         return cls(
             subject=row["subject"], indicator=row["indicator"], settings=row["settings"],
             covariates=covariates, order=int(row.get("model_order") or 1),
-            window_start_us=_to_us(row.get("window_start")),
+            window_start_us=datetime_to_us(row.get("window_start")),
             local_day=None if local_date is None else int(local_date),
             phase=row["phase"], windows_seen=int(row["windows_seen"]),
             sample_value=[float(v) for v in row.get("sample_value") or ()],
@@ -214,13 +196,13 @@ class ShiftState:
             sample_covariates=[float(v) for v in row.get("sample_covariates") or ()],
             model=model,
             cusum_pos=num("cusum_pos", 0.0), cusum_neg=num("cusum_neg", 0.0),
-            run_start_pos=_to_us(row.get("run_start_pos")), run_start_neg=_to_us(row.get("run_start_neg")),
+            run_start_pos=datetime_to_us(row.get("run_start_pos")), run_start_neg=datetime_to_us(row.get("run_start_neg")),
             run_count_pos=int(row.get("run_count_pos") or 0), run_count_neg=int(row.get("run_count_neg") or 0),
             run_resid_pos=num("run_resid_pos", 0.0), run_resid_neg=num("run_resid_neg", 0.0),
             ewma=num("ewma", 0.0), ewma_count=int(row.get("ewma_count") or 0),
-            ewma_limit=num("ewma_limit"), state=row["state"], onset=_to_us(row.get("onset")),
+            ewma_limit=num("ewma_limit"), state=row["state"], onset=datetime_to_us(row.get("onset")),
             direction=int(row.get("direction") or 0), shift_size=num("shift_size"),
-            detector=row.get("detector"), first_alarm=_to_us(row.get("first_alarm")),
+            detector=row.get("detector"), first_alarm=datetime_to_us(row.get("first_alarm")),
         )
 
 
