@@ -214,3 +214,27 @@ def test_read_back_summaries_equal_reading_every_file(site, tmp_path):
         assert summarized(table, schema, keep, name, columns) == want
         assert not [n for n in os.listdir(os.path.dirname(ot.summary_path(out, "footbridge", name)))
                     if n.endswith(".tmp")]
+
+
+def test_summaries_read_the_same_through_the_local_store_and_beam_filesystems(site, tmp_path):
+    # stages.summaries takes a store; the Beam adapter is the same functions over BeamFiles
+    from corrtransforms import tables
+    from corrtransforms.beam import output_tables as ot
+    from corrtransforms.stages import summaries
+    from corrtransforms.stages.write import LocalFiles
+
+    _, _, full = site
+    out = str(tmp_path / "out")
+    shutil.copytree(full, out)
+    local = LocalFiles()
+    assert summaries.partition_files(local, out, "state", "footbridge") == ot.partition_files(out, "state", "footbridge")
+    assert summaries.partition_files(local, out, "state", "nobody") == []
+    whole = summaries.read_partitions(local, out, "shifts", "footbridge", tables.SHIFTS)
+    assert whole.num_rows > 0
+    assert _sorted_rows(whole) == _sorted_rows(ot.read_partitions(out, "shifts", "footbridge", tables.SHIFTS))
+    shutil.rmtree(os.path.join(out, summaries.SUMMARIES))
+    latest = summaries.summarize_partitions(local, out, "state", "footbridge", tables.STATE, summaries.latest_states,
+                                            summaries.LATEST_STATE)
+    assert os.path.exists(summaries.summary_path(local, out, "footbridge", summaries.LATEST_STATE))
+    assert _sorted_rows(latest) == _sorted_rows(ot.summarize_partitions(
+        out, "state", "footbridge", tables.STATE, ot.latest_states, ot.LATEST_STATE))
