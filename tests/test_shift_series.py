@@ -358,3 +358,25 @@ def test_episodes_summarise_runs_of_shifted_windows():
     if shifted[-1]:
         assert tail.column("first_alarm")[-1].as_py() == last["first_alarm"]
     assert summaries.shift_episodes(tables.SHIFTS.empty_table()).num_rows == 0
+
+
+def test_episodes_from_shifted_rows_only_or_read_from_hive_folders_equal_those_of_the_whole_table():
+    # two alarm episodes separated by normal windows (two single deviant windows of about 14
+    # residual scales; the CUSUM falls by at least k = 0.5 per window afterwards)
+    table, _ = _detect(*_series(deviant=[130, 170], deviant_size=0.2))
+    whole = summaries.shift_episodes(table)
+    states = table.column("state").to_pylist()
+    assert whole.num_rows >= 2 and "normal" in states[131:170]
+    # the report reads the shifts table back with its Hive columns; the launchers keep only the
+    # shifted rows and each series' latest row (which says whether an episode is still open), in
+    # any order: the windows between two episodes are then absent, so grouping runs of
+    # consecutive rows (the report's former copy of this summary) would merge the episodes;
+    # grouping by first_alarm does not
+    shifted = summaries.episode_evidence(table)
+    assert shifted.num_rows < table.num_rows
+    shuffled = shifted.take(pa.array(np.random.default_rng(3).permutation(shifted.num_rows)))
+    hive = shuffled.append_column("asset", pa.array(["pump-hall"] * shuffled.num_rows)) \
+                   .append_column("date", pa.array(["2024-06-01"] * shuffled.num_rows))
+    from_hive = summaries.shift_episodes(hive)
+    assert from_hive.column_names[0] == "asset" and set(from_hive.column("asset").to_pylist()) == {"pump-hall"}
+    assert same(from_hive.drop_columns(["asset"]).to_pylist(), whole.to_pylist())

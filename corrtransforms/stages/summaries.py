@@ -256,44 +256,72 @@ def write_episodes(store, output_dir: str, config: AssetConfig, run_id: str) -> 
 
 
 def shift_episodes(shifts: pa.Table) -> pa.Table:
-    """Alarm summary: one row per subject, indicator and episode of consecutive shifted windows.
+    """Alarm summary: one row per subject, indicator and episode of shifted windows.
+
+    The one episodes algorithm of the package: the ``episodes`` table (:func:`write_episodes`)
+    and the report both call it, on a shifts table read back in any way.
 
     Parameters
     ----------
     shifts : pyarrow.Table
-        Rows of the SHIFTS schema (any number of series and days; an ``asset`` column, as read
-        from the Hive folders, is kept as the first key when present).
+        Rows with the SHIFTS columns (any number of series and days, any order). An ``asset``
+        column, as read from the Hive folders, is kept as the first key when present; other
+        extra columns (``date``) are ignored. A reduced table (:func:`episode_evidence`: every
+        shifted row plus each series' latest row) gives the same result as the whole table.
 
     Returns
     -------
     pyarrow.Table
         :data:`corrtransforms.tables.EPISODES` (plus ``asset`` when given), sorted by keys and
         first alarm. An episode is identified by its ``first_alarm`` (carried in every shifted
-        row), so a table holding only the latest days still groups correctly. ``onset``,
-        ``direction`` and ``shift_size`` are the latest estimates (at the episode's last shifted
-        window); ``status`` is ``"open"`` when the series' last row in the table is still in the
-        episode.
+        row), so a table holding only the latest days, or only the shifted rows, still groups
+        correctly; windows in between need not be present. ``onset``, ``direction`` and
+        ``shift_size`` are the latest estimates (at the episode's last shifted window);
+        ``status`` is ``"open"`` when the series' last row in the table is still in the episode.
     """
-    has_asset = "asset" in shifts.column_names
-    keys = (["asset"] if has_asset else []) + ["subject", "indicator"]
-    schema = tables.EPISODES
-    if has_asset:
-        schema = schema.insert(0, pa.field("asset", pa.string(), nullable=False))
+    keys = (["asset"] if "asset" in shifts.column_names else []) + ["subject", "indicator"]
+    schema = episodes_schema("asset" in keys)
     if shifts.num_rows == 0:
         return schema.empty_table()
-    columns = {name: shifts.column(name).to_pylist() for name in keys}
-    start = shifts.column("window_start").cast(pa.int64()).to_numpy(zero_copy_only=False)
-    first_alarm = shifts.column("first_alarm").cast(pa.int64()).to_pylist()
-    onset = shifts.column("onset").cast(pa.int64()).to_pylist()
-    state = shifts.column("state").to_pylist()
-    direction = shifts.column("direction").to_pylist()
-    size = shifts.column("shift_size").to_pylist()
-    z = shifts.column("z").to_pylist()
-    detector = shifts.column("detector").to_pylist()
-    unit = shifts.column("unit").to_pylist()
+    columns = _episode_columns(shifts, keys)
+    series_last, episodes = _collect_episodes(columns, keys)
+    return _episodes_table(schema, keys, columns, series_last, episodes)
+
+
+def episodes_schema(with_asset: bool) -> pa.Schema:
+    """:data:`corrtransforms.tables.EPISODES`, with a leading ``asset`` column if asked."""
+    schema = tables.EPISODES
+    if with_asset:
+        schema = schema.insert(0, pa.field("asset", pa.string(), nullable=False))
+    return schema
+
+
+def _episode_columns(shifts: pa.Table, keys: Sequence[str]) -> Dict[str, Any]:
+    """The columns the episodes are built from, converted once (times as integer us)."""
+    columns: Dict[str, Any] = {name: shifts.column(name).to_pylist() for name in keys}
+    columns["window_start"] = shifts.column("window_start").cast(pa.int64()).to_numpy(zero_copy_only=False)
+    for name in ("first_alarm", "onset"):
+        columns[name] = shifts.column(name).cast(pa.int64()).to_pylist()
+    for name in ("state", "direction", "shift_size", "z", "detector", "unit"):
+        columns[name] = shifts.column(name).to_pylist()
+    return columns
+
+
+def _collect_episodes(columns: Mapping[str, Any], keys: Sequence[str]):
+    """Per series its latest window; per (series, first alarm) the episode's evidence.
+
+    Returns
+    -------
+    series_last : dict series -> latest window start (us)
+    episodes : dict (series..., first_alarm) -> dict
+        ``first``/``last`` window, ``n`` shifted windows, ``peak`` |z|, ``detectors`` seen, the
+        ``unit`` and ``i``, the row of the last shifted window (its estimates are the episode's).
+    """
+    start, state, first_alarm = columns["window_start"], columns["state"], columns["first_alarm"]
+    z, detector, unit = columns["z"], columns["detector"], columns["unit"]
     series_last: Dict[tuple, int] = {}
     episodes: Dict[tuple, Dict[str, Any]] = {}
-    for i in range(shifts.num_rows):
+    for i in range(len(start)):
         series = tuple(columns[name][i] for name in keys)
         series_last[series] = max(series_last.get(series, start[i]), start[i])
         if state[i] != SHIFTED or first_alarm[i] is None:
@@ -310,19 +338,25 @@ def shift_episodes(shifts: pa.Table) -> pa.Table:
             e["peak"] = abs(z[i])
         if detector[i]:
             e["detectors"].update(detector[i].split("+"))
-    out = {name: [] for name in schema.names}
+    return series_last, episodes
+
+
+def _episodes_table(schema: pa.Schema, keys: Sequence[str], columns: Mapping[str, Any],
+                    series_last: Mapping[tuple, int], episodes: Mapping[tuple, Dict[str, Any]]) -> pa.Table:
+    """One row per episode, sorted by series and first alarm."""
+    out: Dict[str, List[Any]] = {name: [] for name in schema.names}
     for key in sorted(episodes, key=lambda k: tuple("" if v is None else v for v in k)):
         e = episodes[key]
         i = e["i"]
         series = key[:-1]
         for name, value in zip(keys, series):
             out[name].append(value)
-        out["onset"].append(onset[i])
+        out["onset"].append(columns["onset"][i])
         out["first_alarm"].append(key[-1])
         out["last_window"].append(int(e["last"]))
         out["status"].append("open" if series_last[series] == e["last"] else "closed")
-        out["direction"].append(direction[i])
-        out["shift_size"].append(size[i])
+        out["direction"].append(columns["direction"][i])
+        out["shift_size"].append(columns["shift_size"][i])
         out["peak_abs_z"].append(e["peak"])
         out["detector"].append("+".join(d for d in ("cusum", "ewma") if d in e["detectors"]) or None)
         out["n_windows"].append(e["n"])
