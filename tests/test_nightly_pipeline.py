@@ -238,3 +238,4 @@ def test_summaries_read_the_same_through_the_local_store_and_beam_filesystems(si
     assert os.path.exists(summaries.summary_path(local, out, "footbridge", summaries.LATEST_STATE))
     assert _sorted_rows(latest) == _sorted_rows(ot.summarize_partitions(
         out, "state", "footbridge", tables.STATE, ot.latest_states, ot.LATEST_STATE))
+

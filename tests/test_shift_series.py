@@ -380,3 +380,108 @@ def test_episodes_from_shifted_rows_only_or_read_from_hive_folders_equal_those_o
     from_hive = summaries.shift_episodes(hive)
     assert from_hive.column_names[0] == "asset" and set(from_hive.column("asset").to_pylist()) == {"pump-hall"}
     assert same(from_hive.drop_columns(["asset"]).to_pylist(), whole.to_pylist())
+
+
+#: first window of the downward shift of the reversal series: 2024-06-06 22:00 UTC, local
+#: midnight in Europe/Vienna (UTC+2 in June), so a night can resume right before it
+DOWN_FROM = 142
+
+
+def _reversal_series():
+    """A short upward alarm (three windows 0.2 up, about 14 residual scales each), then, while
+    the upward CUSUM is still beyond h, a lasting downward shift of 0.1 from ``DOWN_FROM``."""
+    times, values, stderr, quality = _series(n=200)
+    values[DOWN_FROM - 6:DOWN_FROM - 3] += 0.2
+    values[DOWN_FROM:] -= 0.1
+    return times, values, stderr, quality
+
+
+def test_a_reversal_while_shifted_starts_a_new_episode_and_the_onset_never_follows_the_first_alarm():
+    table, _ = _detect(*_reversal_series())
+    frame = table.to_pandas()
+    shifted = frame[frame.state == "shifted"]
+    # the state never leaves "shifted" between the two alarms: only the direction reverses
+    assert (frame.state.iloc[DOWN_FROM - 6:200] == "shifted").all()
+    flip = int(np.flatnonzero(np.diff(frame.direction.to_numpy()) < 0)[0]) + 1
+    assert frame.direction.iloc[flip - 1] == 1 and frame.direction.iloc[flip] == -1
+    assert frame.first_alarm.iloc[flip] == frame.window_start.iloc[flip]  # a new episode begins
+    assert (shifted.onset <= shifted.first_alarm).all()  # every shifted row, by construction
+    episodes = summaries.shift_episodes(table).to_pylist()
+    assert [e["direction"] for e in episodes] == [1, -1]
+    assert [e["status"] for e in episodes] == ["closed", "open"]
+    assert all(e["onset"] <= e["first_alarm"] for e in episodes)
+    # the downward episode's onset is where the lower CUSUM last left zero (the first window of
+    # the downward shift), found by a plain scan of the written statistic
+    lower = frame.cusum_neg.to_numpy()
+    left_zero = max(i for i in range(flip + 1) if lower[i - 1] == 0 and lower[i] > 0)
+    assert left_zero == DOWN_FROM and episodes[1]["onset"] == frame.window_start.iloc[left_zero].to_pydatetime()
+    assert episodes[0]["last_window"] < episodes[1]["first_alarm"]
+    assert sum(e["n_windows"] for e in episodes) == len(shifted)
+
+
+def frame_state(table, i):
+    return table.column("state")[i].as_py(), table.column("direction")[i].as_py()
+
+
+def test_a_night_resumed_across_a_reversal_gives_the_backfill_rows():
+    times, values, stderr, quality = _reversal_series()
+    config = make_config("none", baseline={"windows": 100, "min_windows": 30})
+    whole, _ = shift_series.detect_shifts(times, values, stderr, quality, None, config,
+                                          subject="pump", indicator="rms", unit="mm/s")
+    cut = DOWN_FROM  # the night starts at local midnight, inside the upward episode
+    assert local_days(times[cut - 1:cut + 1], TIMEZONE).tolist() == [19880, 19881]  # 6 and 7 June
+    assert frame_state(whole, cut - 1) == ("shifted", 1)
+    first, states = shift_series.detect_shifts(times[:cut], values[:cut], stderr[:cut], None, None, config,
+                                               subject="pump", indicator="rms", unit="mm/s")
+    state = shift_state.ShiftState.from_row(states[-1].to_row())
+    rest, _ = shift_series.detect_shifts(times[cut:], values[cut:], stderr[cut:], None, None, config, state,
+                                         subject="pump", indicator="rms", unit="mm/s")
+    assert_tables_identical(pa.concat_tables([first, rest]), whole)
+
+
+def test_shift_size_in_percent_of_the_expected_level():
+    table, _ = _detect(*_reversal_series())
+    episodes = summaries.shift_episodes(table)
+    assert episodes.schema.equals(tables.EPISODES)
+    frame = table.to_pandas()
+    for e in episodes.to_pylist():
+        last = frame[frame.window_start == e["last_window"]].iloc[0]
+        # 100 * size / |expected| at the episode's last window (closed form)
+        assert e["shift_size_pct"] == pytest.approx(100 * last.shift_size / abs(last.expected), rel=1e-12)
+    # the downward shift is 0.1 on a level of about 1.0: about -10 %
+    assert episodes.column("shift_size_pct")[1].as_py() == pytest.approx(-10.0, abs=1.5)
+    assert np.isnan(summaries._percent_of_level(0.1, 0.0)) and np.isnan(summaries._percent_of_level(None, 1.0))
+
+
+def test_the_readme_duckdb_query_gives_the_onsets_and_peaks_of_the_episodes_table(tmp_path):
+    # the README's query over a shifts table written as Parquet, run by DuckDB as a user would,
+    # must agree with the episodes table on every episode's onset and peak |z|. The reversal
+    # series has two episodes, and a missing value inside the second (a held window: shifted,
+    # with z NaN)
+    import math
+    import os
+    import re
+
+    import duckdb
+
+    from corrtransforms.stages.write import LocalFiles, write_tables
+
+    times, values, stderr, quality = _reversal_series()
+    values[DOWN_FROM + 10] = np.nan
+    table, _ = _detect(times, values, stderr, quality)
+    config = make_config("none", baseline={"windows": 100, "min_windows": 30})
+    out = str(tmp_path / "demo_output")
+    write_tables(out, config, "run-1", {"shifts": [table]})
+    assert summaries.write_episodes(LocalFiles(), out, config, "run-1") == 2
+    root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+    readme = open(os.path.join(root, "README.md"), encoding="utf-8").read()
+    query = re.search(r"```sql\n-- duckdb\n(.*?)```", readme, re.S).group(1)
+    query = query.replace("demo_output/", out.replace(os.sep, "/") + "/").split(";")[0]
+    found = {(r[0], r[1], r[2]): (r[3], r[4]) for r in duckdb.sql(query).fetchall()}
+    episodes = pq.read_table(os.path.join(out, "episodes", "asset=invented-bridge", "episodes.parquet"))
+    wanted = {(e["subject"], e["indicator"], e["first_alarm"]): (e["onset"], e["peak_abs_z"])
+              for e in episodes.to_pylist()}
+    assert len(wanted) == 2 and found.keys() == wanted.keys()
+    for key, (onset, peak) in wanted.items():
+        assert found[key][0] == onset <= key[2]
+        assert math.isfinite(peak) and found[key][1] == peak, key

@@ -428,12 +428,17 @@ class _SeriesRun:
         """State, onset, direction, size, detectors and first alarm of each used window.
 
         A window is shifted while a configured detector is beyond its limit; its direction is
-        the side that signals (the larger CUSUM side when both do); the onset is the first
-        window of that side's current CUSUM run and the size the mean residual since then.
+        the side that signals (the larger CUSUM side when both do). An episode is a run of
+        shifted windows of one direction: a reversal while shifted starts a new one (new
+        ``first_alarm``). The onset estimate is the first window of that side's current CUSUM
+        run (the window itself when only the EWMA signals); within an episode the earliest
+        estimate is kept, so ``onset <= first_alarm`` in every shifted row. The size is the mean
+        residual over the current CUSUM run.
         """
         st = self.state
         out = _Decisions()
         previous, first_alarm = st.state, st.first_alarm
+        previous_direction, previous_onset = st.direction, st.onset
         for j in range(paths.upper.size):
             out.start_upper.append(_run_start(paths.n_upper, st.run_start_pos, times, j))
             out.start_lower.append(_run_start(paths.n_lower, st.run_start_neg, times, j))
@@ -443,7 +448,7 @@ class _SeriesRun:
             ewma_down = self.use_ewma and paths.ewma[j] < -paths.limit[j]
             up, down = cusum_up or ewma_up, cusum_down or ewma_down
             if not (up or down):
-                previous, first_alarm = NORMAL, None
+                previous, first_alarm, previous_direction, previous_onset = NORMAL, None, 0, None
                 out.add(NORMAL, None, 0, float("nan"), None, None)
                 continue
             direction = 1 if (up and not down) or (up and down and paths.upper[j] >= paths.lower[j]) else -1
@@ -454,8 +459,11 @@ class _SeriesRun:
             else:
                 onset, size = int(times[j]), float(resid[j])
             names = [name for name, on in (("cusum", cusum_up or cusum_down), ("ewma", ewma_up or ewma_down)) if on]
-            first_alarm = first_alarm if previous == SHIFTED else int(times[j])
-            previous = SHIFTED
+            if previous == SHIFTED and direction == previous_direction:  # the episode goes on
+                onset = onset if previous_onset is None else min(onset, previous_onset)
+            else:  # a new episode: the first shifted window, or a reversal of direction
+                first_alarm = int(times[j])
+            previous, previous_direction, previous_onset = SHIFTED, direction, onset
             out.add(SHIFTED, onset, direction, size, "+".join(names), first_alarm)
         return out
 
@@ -558,8 +566,10 @@ def detect_shifts(times_us, values, stderr, quality, covariates, config, state: 
     ``C+_t = max(0, C+_{t-1} + z_t - k)``, ``C-_t = max(0, C-_{t-1} - z_t - k)``, signal when
     ``C > h``; EWMA ``w_t = lambda z_t + (1 - lambda) w_{t-1}``, signal when
     ``|w_t| > L sqrt(lambda / (2 - lambda) (1 - (1 - lambda)^(2 n)))`` after n updates. The
-    onset of a shift is the first window after the CUSUM of its direction last left zero; the
-    size is the mean of ``value - expected`` since then.
+    onset of a shift is the first window after the CUSUM of its direction last left zero (the
+    earliest such estimate of the episode); the size is the mean of ``value - expected`` over
+    the current CUSUM run. An episode (one ``first_alarm``) has one direction: a reversal while
+    shifted starts a new episode.
 
     References
     ----------

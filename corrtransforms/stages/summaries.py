@@ -222,7 +222,7 @@ EPISODE_EVIDENCE = "episode_evidence"
 
 #: the shifts columns the episodes summary is built from
 EPISODE_COLUMNS = ("window_start", "subject", "indicator", "first_alarm", "onset", "state", "direction",
-                   "shift_size", "z", "detector", "unit")
+                   "expected", "shift_size", "z", "detector", "unit")
 
 
 def episode_evidence(shifts: pa.Table) -> pa.Table:
@@ -275,8 +275,10 @@ def shift_episodes(shifts: pa.Table) -> pa.Table:
         :data:`corrtransforms.tables.EPISODES` (plus ``asset`` when given), sorted by keys and
         first alarm. An episode is identified by its ``first_alarm`` (carried in every shifted
         row), so a table holding only the latest days, or only the shifted rows, still groups
-        correctly; windows in between need not be present. ``onset``, ``direction`` and
-        ``shift_size`` are the latest estimates (at the episode's last shifted window);
+        correctly; windows in between need not be present. ``onset`` is the earliest onset of
+        the episode's rows (what ``min(onset)`` over its shifted rows gives), ``direction`` and
+        ``shift_size`` the estimates at its last shifted window, ``shift_size_pct`` that size in
+        % of the window's ``expected`` level (NaN when the level is zero or unknown);
         ``status`` is ``"open"`` when the series' last row in the table is still in the episode.
     """
     keys = (["asset"] if "asset" in shifts.column_names else []) + ["subject", "indicator"]
@@ -302,7 +304,7 @@ def _episode_columns(shifts: pa.Table, keys: Sequence[str]) -> Dict[str, Any]:
     columns["window_start"] = shifts.column("window_start").cast(pa.int64()).to_numpy(zero_copy_only=False)
     for name in ("first_alarm", "onset"):
         columns[name] = shifts.column(name).cast(pa.int64()).to_pylist()
-    for name in ("state", "direction", "shift_size", "z", "detector", "unit"):
+    for name in ("state", "direction", "expected", "shift_size", "z", "detector", "unit"):
         columns[name] = shifts.column(name).to_pylist()
     return columns
 
@@ -315,10 +317,11 @@ def _collect_episodes(columns: Mapping[str, Any], keys: Sequence[str]):
     series_last : dict series -> latest window start (us)
     episodes : dict (series..., first_alarm) -> dict
         ``first``/``last`` window, ``n`` shifted windows, ``peak`` |z|, ``detectors`` seen, the
-        ``unit`` and ``i``, the row of the last shifted window (its estimates are the episode's).
+        ``unit``, the earliest ``onset`` and ``i``, the row of the last shifted window (its
+        direction and size are the episode's).
     """
     start, state, first_alarm = columns["window_start"], columns["state"], columns["first_alarm"]
-    z, detector, unit = columns["z"], columns["detector"], columns["unit"]
+    z, detector, unit, onset = columns["z"], columns["detector"], columns["unit"], columns["onset"]
     series_last: Dict[tuple, int] = {}
     episodes: Dict[tuple, Dict[str, Any]] = {}
     for i in range(len(start)):
@@ -330,8 +333,10 @@ def _collect_episodes(columns: Mapping[str, Any], keys: Sequence[str]):
         e = episodes.get(key)
         if e is None:
             e = episodes[key] = {"last": start[i], "first": start[i], "n": 0, "peak": float("nan"),
-                                 "detectors": set(), "unit": unit[i], "i": i}
+                                 "detectors": set(), "unit": unit[i], "i": i, "onset": None}
         e["n"] += 1
+        if onset[i] is not None and (e["onset"] is None or onset[i] < e["onset"]):
+            e["onset"] = onset[i]
         if start[i] >= e["last"]:
             e["last"], e["i"] = start[i], i
         if z[i] is not None and math.isfinite(z[i]) and not (abs(z[i]) <= e["peak"]):
@@ -351,7 +356,7 @@ def _episodes_table(schema: pa.Schema, keys: Sequence[str], columns: Mapping[str
         series = key[:-1]
         for name, value in zip(keys, series):
             out[name].append(value)
-        out["onset"].append(columns["onset"][i])
+        out["onset"].append(e["onset"])
         out["first_alarm"].append(key[-1])
         out["last_window"].append(int(e["last"]))
         out["status"].append("open" if series_last[series] == e["last"] else "closed")
@@ -361,6 +366,7 @@ def _episodes_table(schema: pa.Schema, keys: Sequence[str], columns: Mapping[str
         out["detector"].append("+".join(d for d in ("cusum", "ewma") if d in e["detectors"]) or None)
         out["n_windows"].append(e["n"])
         out["unit"].append(e["unit"])
+        out["shift_size_pct"].append(_percent_of_level(columns["shift_size"][i], columns["expected"][i]))
     arrays = []
     for field in schema:
         values = out[field.name]
@@ -369,3 +375,11 @@ def _episodes_table(schema: pa.Schema, keys: Sequence[str], columns: Mapping[str
         else:
             arrays.append(pa.array(values, type=field.type))
     return pa.Table.from_arrays(arrays, schema=schema)
+
+
+def _percent_of_level(size, level) -> float:
+    """``100 * size / |level|``: a shift in % of the baseline level (NaN when either is missing
+    or the level is zero)."""
+    if size is None or level is None or not (math.isfinite(size) and math.isfinite(level)) or level == 0:
+        return float("nan")
+    return 100.0 * size / abs(level)
