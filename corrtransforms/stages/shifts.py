@@ -518,6 +518,23 @@ def _covariate_matrix(covariates, names: Tuple[str, ...], n: int) -> Optional[np
     return np.asarray(covariates, dtype=float).reshape(n, len(names))
 
 
+def _checked_series(times_us, values, stderr, quality):
+    """The series as arrays (times int64, values and stderr float) and quality code tuples;
+    ValueError unless the lengths agree and the times strictly increase."""
+    t = np.asarray(times_us, dtype=np.int64).reshape(-1)
+    v = np.asarray(values, dtype=float).reshape(-1)
+    se = np.asarray(stderr, dtype=float).reshape(-1)
+    n = t.size
+    if v.size != n or se.size != n:
+        raise ValueError("times_us, values and stderr must have the same length")
+    codes = [quality_codes(q) for q in (quality if quality is not None else ["ok"] * n)]
+    if len(codes) != n:
+        raise ValueError("quality must have one entry per window")
+    if n > 1 and np.any(np.diff(t) <= 0):
+        raise ValueError("times_us must be strictly increasing (sort and drop duplicates first)")
+    return t, v, se, codes
+
+
 def detect_shifts(times_us, values, stderr, quality, covariates, config, state: Optional[ShiftState] = None,
                   *, subject: str = "", indicator: str = "", unit: str = "",
                   order: int = 1) -> Tuple[pa.Table, List[ShiftState]]:
@@ -575,17 +592,8 @@ def detect_shifts(times_us, values, stderr, quality, covariates, config, state: 
     ----------
     Page (1954); Roberts (1959); Montgomery (2009) Sections 9.1-9.2.
     """
-    t = np.asarray(times_us, dtype=np.int64).reshape(-1)
-    v = np.asarray(values, dtype=float).reshape(-1)
-    se = np.asarray(stderr, dtype=float).reshape(-1)
+    t, v, se, codes = _checked_series(times_us, values, stderr, quality)
     n = t.size
-    if v.size != n or se.size != n:
-        raise ValueError("times_us, values and stderr must have the same length")
-    codes = [quality_codes(q) for q in (quality if quality is not None else ["ok"] * n)]
-    if len(codes) != n:
-        raise ValueError("quality must have one entry per window")
-    if n > 1 and np.any(np.diff(t) <= 0):
-        raise ValueError("times_us must be strictly increasing (sort and drop duplicates first)")
     names = tuple(config.compensated_covariates())
     digest = settings_digest(config, order)
     state = resume_or_start(state, digest, names, order, subject, indicator, int(t[0]) if n else None)
