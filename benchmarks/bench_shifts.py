@@ -17,7 +17,7 @@ import time
 
 import numpy as np
 
-from corrtransforms.numerics import detectors
+from corrtransforms.numerics import arl, detectors
 
 from corrtransforms.stages import shifts as shift_series
 from corrtransforms.config import parse_config
@@ -52,7 +52,7 @@ def main():
           f"ratio {loop / vectorised:.0f}x")
 
     start = time.perf_counter()
-    run_lengths = detectors.simulate_run_lengths("cusum", n_chains=10_000, rng=rng, h=5.0)
+    run_lengths = arl.simulate_run_lengths("cusum", n_chains=10_000, rng=rng, h=5.0)
     elapsed = time.perf_counter() - start
     print(f"ARL simulation, 10 000 chains (mean {run_lengths.mean():.0f}): {elapsed:.2f} s, "
           f"{run_lengths.sum() / elapsed / 1e6:.1f} M chart steps/s")

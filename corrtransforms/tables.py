@@ -131,7 +131,7 @@ STATE = pa.schema([
 EPISODES = pa.schema([
     _f("subject", pa.string(), "", "channel, 'a:b' pair or mode name", nullable=False),
     _f("indicator", pa.string(), "", "monitored indicator name", nullable=False),
-    _f("onset", TIMESTAMP, "", "estimated shift onset (latest estimate in the episode)"),
+    _f("onset", TIMESTAMP, "", "estimated shift onset (earliest estimate in the episode; <= first_alarm)"),
     _f("first_alarm", TIMESTAMP, "", "first window in state shifted", nullable=False),
     _f("last_window", TIMESTAMP, "", "last window in state shifted", nullable=False),
     _f("status", pa.string(), "", "open (still shifted at the series' last window) or closed", nullable=False),
@@ -141,4 +141,5 @@ EPISODES = pa.schema([
     _f("detector", pa.string(), "", "detectors that signalled during the episode"),
     _f("n_windows", pa.int64(), "", "windows in state shifted", nullable=False),
     _f("unit", pa.string(), "", "unit of shift_size"),
+    _f("shift_size_pct", pa.float64(), "%", "shift_size in % of the expected (baseline) level at the episode's last window"),
 ])

@@ -5,8 +5,11 @@ text. One home for them (stages and the report import from here).
 from __future__ import annotations
 
 import datetime as _dt
+from typing import Optional
 
 import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
 
 US_PER_S = 1_000_000
 _UNIT_TO_US = {"s": 1_000_000, "ms": 1_000, "us": 1, "ns": None}
@@ -80,3 +83,60 @@ def timestamp_to_us(values: np.ndarray, unit: str) -> np.ndarray:
     if unit == "ns":
         return np.floor_divide(values, 1000)
     return values * _UNIT_TO_US[unit]
+
+
+# --------------------------------------------------------------------------------------------
+# Instants as datetimes, calendar days as day numbers (the shifts stage and the state table)
+
+_EPOCH_UTC = _dt.datetime(1970, 1, 1, tzinfo=_dt.timezone.utc)
+_EPOCH_DATE = _dt.date(1970, 1, 1)
+
+
+def datetime_to_us(value) -> Optional[int]:
+    """UTC microseconds of a datetime (naive ones are taken as UTC); integers pass through, None
+    stays None (timestamps as pyarrow returns them, or already converted)."""
+    if value is None:
+        return None
+    if isinstance(value, _dt.datetime):
+        if value.tzinfo is None:
+            value = value.replace(tzinfo=_dt.timezone.utc)
+        delta = value - _EPOCH_UTC
+        return (delta.days * 86400 + delta.seconds) * 1_000_000 + delta.microseconds
+    return int(value)
+
+
+def us_to_datetime(us: Optional[int]) -> Optional[_dt.datetime]:
+    """Inverse of :func:`datetime_to_us`: a UTC-aware datetime (None stays None)."""
+    if us is None:
+        return None
+    return _EPOCH_UTC + _dt.timedelta(microseconds=int(us))
+
+
+def local_days(times_us, timezone: str) -> np.ndarray:
+    """Local calendar day of each instant, as days since 1970-01-01 (int32).
+
+    Parameters
+    ----------
+    times_us : array_like of int
+        Instants (e.g. window starts) in microseconds since the epoch, UTC.
+    timezone : str
+        IANA zone (``[archive] timezone``).
+
+    Returns
+    -------
+    ndarray of int32
+    """
+    times = pa.array(np.asarray(times_us, dtype=np.int64), type=pa.int64()).cast(
+        pa.timestamp("us", tz=timezone))
+    local = pc.local_timestamp(times)
+    return local.cast(pa.date32()).cast(pa.int32()).to_numpy(zero_copy_only=False).astype(np.int32)
+
+
+def day_number(day: _dt.date) -> int:
+    """Days since 1970-01-01 of a date."""
+    return (day - _EPOCH_DATE).days
+
+
+def day_date(number: int) -> _dt.date:
+    """Inverse of :func:`day_number`."""
+    return _EPOCH_DATE + _dt.timedelta(days=int(number))

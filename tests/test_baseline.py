@@ -7,7 +7,9 @@ import pytest
 import statsmodels.api as sm
 from scipy import stats
 
+from corrtransforms import timeutil
 from corrtransforms.numerics import robust as baseline
+from corrtransforms.stages.shifts import period_position
 
 from corrtransforms.numerics import covariate_model
 from corrtransforms.config import BaselineConfig
@@ -64,19 +66,19 @@ def test_local_days_follow_the_asset_time_zone():
     times = np.sort(rng.integers(1_600_000_000, 1_700_000_000, 200)) * 1_000_000
     zone = zoneinfo.ZoneInfo("America/New_York")
     expected = [(dt.datetime.fromtimestamp(t / 1e6, zone).date() - dt.date(1970, 1, 1)).days for t in times]
-    np.testing.assert_array_equal(baseline.local_days(times, "America/New_York"), expected)
+    np.testing.assert_array_equal(timeutil.local_days(times, "America/New_York"), expected)
 
 
 def test_period_position_by_dates_and_by_count():
     by_dates = BaselineConfig(start=dt.date(2024, 5, 1), end=dt.date(2024, 5, 3))
-    day = baseline.day_number
-    assert baseline.period_position(day(dt.date(2024, 4, 30)), 0, by_dates) == "before"
-    assert baseline.period_position(day(dt.date(2024, 5, 3)), 999, by_dates) == "inside"
-    assert baseline.period_position(day(dt.date(2024, 5, 4)), 0, by_dates) == "after"
+    day = timeutil.day_number
+    assert period_position(day(dt.date(2024, 4, 30)), 0, by_dates) == "before"
+    assert period_position(day(dt.date(2024, 5, 3)), 999, by_dates) == "inside"
+    assert period_position(day(dt.date(2024, 5, 4)), 0, by_dates) == "after"
     by_count = BaselineConfig(windows=10)
-    assert baseline.period_position(0, 9, by_count) == "inside"
-    assert baseline.period_position(0, 10, by_count) == "after"
-    assert baseline.day_date(day(dt.date(2031, 2, 3))) == dt.date(2031, 2, 3)
+    assert period_position(0, 9, by_count) == "inside"
+    assert period_position(0, 10, by_count) == "after"
+    assert timeutil.day_date(day(dt.date(2031, 2, 3))) == dt.date(2031, 2, 3)
 
 
 # --------------------------------------------------------------------------------------------

@@ -9,7 +9,7 @@ import apache_beam as beam
 from corrtransforms.stages import shifts as shift_series
 from corrtransforms.beam import LOCAL_RUNNER
 from corrtransforms.beam.shifts import DetectShifts
-from corrtransforms.numerics.robust import local_days
+from corrtransforms.timeutil import local_days, us_to_datetime
 from tests.shift_fixtures import TIMEZONE, indicator_rows, make_config, same, seasonal_series
 
 DAYS = 4
@@ -90,7 +90,7 @@ def test_nightly_pipeline_resumes_from_yesterdays_state_and_equals_the_backfill(
     last_day = days.max()
     earlier = [r for r, d in zip(rows, days) if d < last_day]
     tonight = [r for r, d in zip(rows, days) if d == last_day]
-    tonight_start = shift_series._to_datetime(min(r.window_start_us for r in tonight))
+    tonight_start = us_to_datetime(min(r.window_start_us for r in tonight))
     backfill = _rows_of(o.shifts for o in _core(rows, config).values())
     expected = [row for row in backfill if row["window_start"] >= tonight_start]
     assert 0 < len(expected) < len(backfill)

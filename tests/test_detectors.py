@@ -19,7 +19,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from corrtransforms.numerics import detectors
+from corrtransforms.numerics import arl, detectors
 
 # --------------------------------------------------------------------------------------------
 # Detector statistics against their definitions
@@ -98,7 +98,7 @@ def test_ewma_exact_limits():
 
 
 def _simulated(chart, n_chains, seed, **kw):
-    run_lengths = detectors.simulate_run_lengths(chart, n_chains=n_chains, rng=np.random.default_rng(seed), **kw)
+    run_lengths = arl.simulate_run_lengths(chart, n_chains=n_chains, rng=np.random.default_rng(seed), **kw)
     return run_lengths.mean(), run_lengths.std(ddof=1) / np.sqrt(n_chains)
 
 
@@ -108,9 +108,9 @@ def _simulated(chart, n_chains, seed, **kw):
 ])
 def test_cusum_arl_three_ways(h, table_arl0, table_arl1, chains):
     k = 0.5
-    integral0 = detectors.cusum_arl_integral_equation(k, h)
-    markov0 = detectors.cusum_arl_markov_chain(k, h, states=400)
-    siegmund0 = detectors.cusum_arl_siegmund(k, h)
+    integral0 = arl.cusum_arl_integral_equation(k, h)
+    markov0 = arl.cusum_arl_markov_chain(k, h, states=400)
+    siegmund0 = arl.cusum_arl_siegmund(k, h)
     mean0, se0 = _simulated("cusum", chains, seed=10 + int(h), k=k, h=h)
     # numerical methods agree with each other and with the table's rounding
     assert integral0 == pytest.approx(markov0, rel=2e-4)
@@ -120,18 +120,18 @@ def test_cusum_arl_three_ways(h, table_arl0, table_arl1, chains):
     assert abs(mean0 - integral0) < 4 * se0
     assert abs(mean0 - table_arl0) < 4 * se0 + 0.6
     # out of control, 1 sigma shift
-    integral1 = detectors.cusum_arl_integral_equation(k, h, shift=1.0)
+    integral1 = arl.cusum_arl_integral_equation(k, h, shift=1.0)
     mean1, se1 = _simulated("cusum", 4000, seed=20 + int(h), k=k, h=h, shift=1.0)
     assert integral1 == pytest.approx(table_arl1, abs=0.06)
-    assert detectors.cusum_arl_markov_chain(k, h, shift=1.0, states=400) == pytest.approx(integral1, rel=2e-4)
+    assert arl.cusum_arl_markov_chain(k, h, shift=1.0, states=400) == pytest.approx(integral1, rel=2e-4)
     assert abs(mean1 - integral1) < 4 * se1
 
 
 def test_cusum_integral_equation_is_converged_and_one_sided_is_twice():
-    a = detectors.cusum_arl_integral_equation(0.5, 5.0, nodes=32)
-    b = detectors.cusum_arl_integral_equation(0.5, 5.0, nodes=96)
+    a = arl.cusum_arl_integral_equation(0.5, 5.0, nodes=32)
+    b = arl.cusum_arl_integral_equation(0.5, 5.0, nodes=96)
     assert a == pytest.approx(b, rel=1e-9)
-    one = detectors.cusum_arl_integral_equation(0.5, 5.0, two_sided=False)
+    one = arl.cusum_arl_integral_equation(0.5, 5.0, two_sided=False)
     assert one == pytest.approx(2 * b, rel=1e-9)  # symmetric in control: 1/L = 2/L+
 
 
@@ -140,14 +140,14 @@ def test_cusum_integral_equation_is_converged_and_one_sided_is_twice():
     (0.1, 2.814, 500.0, 10.3),
 ])
 def test_ewma_arl_three_ways(smoothing, width, table_arl0, table_arl1):
-    integral0 = detectors.ewma_arl_integral_equation(smoothing, width)
-    markov0 = detectors.ewma_arl_markov_chain(smoothing, width, states=601)
+    integral0 = arl.ewma_arl_integral_equation(smoothing, width)
+    markov0 = arl.ewma_arl_markov_chain(smoothing, width, states=601)
     mean0, se0 = _simulated("ewma", 12000, seed=30, smoothing=smoothing, width=width, exact_limits=False)
     assert integral0 == pytest.approx(markov0, rel=1e-3)
     assert integral0 == pytest.approx(table_arl0, rel=0.005)  # the table's L has 3 decimals
     assert abs(mean0 - integral0) < 4 * se0
     assert abs(mean0 - table_arl0) < 4 * se0 + 2.5
-    integral1 = detectors.ewma_arl_integral_equation(smoothing, width, shift=1.0)
+    integral1 = arl.ewma_arl_integral_equation(smoothing, width, shift=1.0)
     mean1, se1 = _simulated("ewma", 4000, seed=31, smoothing=smoothing, width=width, shift=1.0,
                             exact_limits=False)
     assert integral1 == pytest.approx(table_arl1, abs=0.06)
@@ -156,18 +156,18 @@ def test_ewma_arl_three_ways(smoothing, width, table_arl0, table_arl1):
 
 def test_ewma_exact_limits_arl_markov_chain_vs_simulation():
     # exact (time-varying) limits signal a little earlier than the asymptotic ones
-    exact = detectors.ewma_arl_markov_chain(0.2, 3.0, exact_limits=True, states=401)
-    asymptotic = detectors.ewma_arl_markov_chain(0.2, 3.0, exact_limits=False, states=401)
+    exact = arl.ewma_arl_markov_chain(0.2, 3.0, exact_limits=True, states=401)
+    asymptotic = arl.ewma_arl_markov_chain(0.2, 3.0, exact_limits=False, states=401)
     mean, se = _simulated("ewma", 12000, seed=40, smoothing=0.2, width=3.0, exact_limits=True)
     assert exact < asymptotic
     assert abs(mean - exact) < 4 * se
     # with a 1 sigma shift the head start matters most (Lucas & Saccucci 1990 discuss it)
-    exact1 = detectors.ewma_arl_markov_chain(0.2, 3.0, shift=1.0, exact_limits=True, states=401)
+    exact1 = arl.ewma_arl_markov_chain(0.2, 3.0, shift=1.0, exact_limits=True, states=401)
     mean1, se1 = _simulated("ewma", 4000, seed=41, smoothing=0.2, width=3.0, shift=1.0, exact_limits=True)
     assert abs(mean1 - exact1) < 4 * se1
-    assert exact1 < detectors.ewma_arl_integral_equation(0.2, 3.0, shift=1.0)
+    assert exact1 < arl.ewma_arl_integral_equation(0.2, 3.0, shift=1.0)
 
 
 def test_simulation_rejects_unknown_chart():
     with pytest.raises(ValueError, match="cusum"):
-        detectors.simulate_run_lengths("shewhart", n_chains=2)
+        arl.simulate_run_lengths("shewhart", n_chains=2)

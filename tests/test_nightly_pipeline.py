@@ -124,17 +124,17 @@ def test_episodes_from_the_reduced_shifts_equal_those_from_the_whole_table(site)
     # the launcher reads only shifted rows and each series' latest row per file; the summary
     # must be exactly the one built from every row
     from corrtransforms import tables
-    from corrtransforms.stages import shifts as shift_series
+    from corrtransforms.stages import summaries
     from corrtransforms.beam.output_tables import episode_evidence, read_partitions
 
     _, config, full = site
     whole = read_partitions(full, "shifts", "footbridge", tables.SHIFTS)
     reduced = read_partitions(full, "shifts", "footbridge", tables.SHIFTS, keep=episode_evidence)
     assert reduced.num_rows < whole.num_rows
-    assert shift_series.shift_episodes(reduced).equals(shift_series.shift_episodes(whole))
+    assert summaries.shift_episodes(reduced).equals(summaries.shift_episodes(whole))
     written = ds.dataset(os.path.join(full, "episodes"), format="parquet").to_table()
     assert written.drop_columns([c for c in written.column_names if c not in tables.EPISODES.names]) \
-        .select(tables.EPISODES.names).to_pylist() == shift_series.shift_episodes(whole).to_pylist()
+        .select(tables.EPISODES.names).to_pylist() == summaries.shift_episodes(whole).to_pylist()
 
 
 def test_nights_update_the_episodes_as_one_backfill_writes_them(site):
@@ -214,3 +214,28 @@ def test_read_back_summaries_equal_reading_every_file(site, tmp_path):
         assert summarized(table, schema, keep, name, columns) == want
         assert not [n for n in os.listdir(os.path.dirname(ot.summary_path(out, "footbridge", name)))
                     if n.endswith(".tmp")]
+
+
+def test_summaries_read_the_same_through_the_local_store_and_beam_filesystems(site, tmp_path):
+    # stages.summaries takes a store; the Beam adapter is the same functions over BeamFiles
+    from corrtransforms import tables
+    from corrtransforms.beam import output_tables as ot
+    from corrtransforms.stages import summaries
+    from corrtransforms.stages.write import LocalFiles
+
+    _, _, full = site
+    out = str(tmp_path / "out")
+    shutil.copytree(full, out)
+    local = LocalFiles()
+    assert summaries.partition_files(local, out, "state", "footbridge") == ot.partition_files(out, "state", "footbridge")
+    assert summaries.partition_files(local, out, "state", "nobody") == []
+    whole = summaries.read_partitions(local, out, "shifts", "footbridge", tables.SHIFTS)
+    assert whole.num_rows > 0
+    assert _sorted_rows(whole) == _sorted_rows(ot.read_partitions(out, "shifts", "footbridge", tables.SHIFTS))
+    shutil.rmtree(os.path.join(out, summaries.SUMMARIES))
+    latest = summaries.summarize_partitions(local, out, "state", "footbridge", tables.STATE, summaries.latest_states,
+                                            summaries.LATEST_STATE)
+    assert os.path.exists(summaries.summary_path(local, out, "footbridge", summaries.LATEST_STATE))
+    assert _sorted_rows(latest) == _sorted_rows(ot.summarize_partitions(
+        out, "state", "footbridge", tables.STATE, ot.latest_states, ot.LATEST_STATE))
+

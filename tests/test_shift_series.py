@@ -14,7 +14,9 @@ from corrtransforms import tables
 from corrtransforms.numerics import detectors
 
 from corrtransforms.stages import shifts as shift_series
-from corrtransforms.numerics.robust import local_days
+from corrtransforms.stages import state as shift_state
+from corrtransforms.stages import summaries
+from corrtransforms.timeutil import local_days
 from tests.shift_fixtures import (HOUR_US, TIMEZONE, assert_tables_identical, indicator_rows, make_config,
                                   same, seasonal_series)
 
@@ -244,8 +246,8 @@ def _nightly(times, values, stderr, temperature, config, tmp_path):
             times[mask], values[mask], stderr[mask], None, {"temperature": temperature[mask]}, config, state,
             subject="deck", indicator="mode_freq_hz", unit="Hz")
         path = tmp_path / f"state-{number}.parquet"
-        pq.write_table(shift_series.states_table(day_states), path)
-        (state,) = shift_series.states_from_table(pq.read_table(path))
+        pq.write_table(shift_state.states_table(day_states), path)
+        (state,) = shift_state.states_from_table(pq.read_table(path))
         parts.append(table)
     return pa.concat_tables(parts), state
 
@@ -275,10 +277,10 @@ def test_state_round_trip_through_parquet_while_accumulating_and_fitted(tmp_path
     phases = {s.phase for s in states}
     assert phases == {"accumulating", "fitted"}
     path = tmp_path / "state.parquet"
-    pq.write_table(shift_series.states_table(states), path)
+    pq.write_table(shift_state.states_table(states), path)
     read = pq.read_table(path)
     assert read.schema.equals(tables.STATE)
-    back = shift_series.states_from_table(read)
+    back = shift_state.states_from_table(read)
     for original, restored in zip(states, back):
         assert same(original.to_row(), restored.to_row())
         assert same(dataclass_tuple(original), dataclass_tuple(restored))
@@ -300,9 +302,9 @@ def test_resuming_checks_settings_and_order():
                                            {"temperature": temperature[:12]}, config, subject="deck",
                                            indicator="mode_freq_hz")
     other = make_config("all", baseline={"windows": 20, "min_windows": 10}, cusum_h=6.0)
-    with pytest.raises(shift_series.StateMismatchError, match="settings"):
+    with pytest.raises(shift_state.StateMismatchError, match="settings"):
         shift_series.detect_shifts(times[12:], values[12:], stderr[12:], None, None, other, states[-1])
-    with pytest.raises(shift_series.StateMismatchError, match="not after"):
+    with pytest.raises(shift_state.StateMismatchError, match="not after"):
         shift_series.detect_shifts(times[5:], values[5:], stderr[5:], None, None, config, states[-1])
     with pytest.raises(ValueError, match="increasing"):
         shift_series.detect_shifts(times[::-1], values, stderr, None, None, config)
@@ -338,7 +340,7 @@ def test_covariate_means_with_conflicting_duplicates_become_missing():
 
 def test_episodes_summarise_runs_of_shifted_windows():
     table, _, step_us = _run(0, "none")
-    episodes = shift_series.shift_episodes(table)
+    episodes = summaries.shift_episodes(table)
     assert episodes.schema.equals(tables.EPISODES)
     frame = table.to_pandas()
     shifted = (frame.state == "shifted").to_numpy()
@@ -352,7 +354,134 @@ def test_episodes_summarise_runs_of_shifted_windows():
     assert first["first_alarm"] == run.window_start.iloc[0].to_pydatetime()
     assert first["peak_abs_z"] == pytest.approx(run.z.abs().max())
     # a table of only the last days still names the episode by its first alarm
-    tail = shift_series.shift_episodes(table.slice(table.num_rows - 24))
+    tail = summaries.shift_episodes(table.slice(table.num_rows - 24))
     if shifted[-1]:
         assert tail.column("first_alarm")[-1].as_py() == last["first_alarm"]
-    assert shift_series.shift_episodes(tables.SHIFTS.empty_table()).num_rows == 0
+    assert summaries.shift_episodes(tables.SHIFTS.empty_table()).num_rows == 0
+
+
+def test_episodes_from_shifted_rows_only_or_read_from_hive_folders_equal_those_of_the_whole_table():
+    # two alarm episodes separated by normal windows (two single deviant windows of about 14
+    # residual scales; the CUSUM falls by at least k = 0.5 per window afterwards)
+    table, _ = _detect(*_series(deviant=[130, 170], deviant_size=0.2))
+    whole = summaries.shift_episodes(table)
+    states = table.column("state").to_pylist()
+    assert whole.num_rows >= 2 and "normal" in states[131:170]
+    # the report reads the shifts table back with its Hive columns; the launchers keep only the
+    # shifted rows and each series' latest row (which says whether an episode is still open), in
+    # any order: the windows between two episodes are then absent, so grouping runs of
+    # consecutive rows (the report's former copy of this summary) would merge the episodes;
+    # grouping by first_alarm does not
+    shifted = summaries.episode_evidence(table)
+    assert shifted.num_rows < table.num_rows
+    shuffled = shifted.take(pa.array(np.random.default_rng(3).permutation(shifted.num_rows)))
+    hive = shuffled.append_column("asset", pa.array(["pump-hall"] * shuffled.num_rows)) \
+                   .append_column("date", pa.array(["2024-06-01"] * shuffled.num_rows))
+    from_hive = summaries.shift_episodes(hive)
+    assert from_hive.column_names[0] == "asset" and set(from_hive.column("asset").to_pylist()) == {"pump-hall"}
+    assert same(from_hive.drop_columns(["asset"]).to_pylist(), whole.to_pylist())
+
+
+#: first window of the downward shift of the reversal series: 2024-06-06 22:00 UTC, local
+#: midnight in Europe/Vienna (UTC+2 in June), so a night can resume right before it
+DOWN_FROM = 142
+
+
+def _reversal_series():
+    """A short upward alarm (three windows 0.2 up, about 14 residual scales each), then, while
+    the upward CUSUM is still beyond h, a lasting downward shift of 0.1 from ``DOWN_FROM``."""
+    times, values, stderr, quality = _series(n=200)
+    values[DOWN_FROM - 6:DOWN_FROM - 3] += 0.2
+    values[DOWN_FROM:] -= 0.1
+    return times, values, stderr, quality
+
+
+def test_a_reversal_while_shifted_starts_a_new_episode_and_the_onset_never_follows_the_first_alarm():
+    table, _ = _detect(*_reversal_series())
+    frame = table.to_pandas()
+    shifted = frame[frame.state == "shifted"]
+    # the state never leaves "shifted" between the two alarms: only the direction reverses
+    assert (frame.state.iloc[DOWN_FROM - 6:200] == "shifted").all()
+    flip = int(np.flatnonzero(np.diff(frame.direction.to_numpy()) < 0)[0]) + 1
+    assert frame.direction.iloc[flip - 1] == 1 and frame.direction.iloc[flip] == -1
+    assert frame.first_alarm.iloc[flip] == frame.window_start.iloc[flip]  # a new episode begins
+    assert (shifted.onset <= shifted.first_alarm).all()  # every shifted row, by construction
+    episodes = summaries.shift_episodes(table).to_pylist()
+    assert [e["direction"] for e in episodes] == [1, -1]
+    assert [e["status"] for e in episodes] == ["closed", "open"]
+    assert all(e["onset"] <= e["first_alarm"] for e in episodes)
+    # the downward episode's onset is where the lower CUSUM last left zero (the first window of
+    # the downward shift), found by a plain scan of the written statistic
+    lower = frame.cusum_neg.to_numpy()
+    left_zero = max(i for i in range(flip + 1) if lower[i - 1] == 0 and lower[i] > 0)
+    assert left_zero == DOWN_FROM and episodes[1]["onset"] == frame.window_start.iloc[left_zero].to_pydatetime()
+    assert episodes[0]["last_window"] < episodes[1]["first_alarm"]
+    assert sum(e["n_windows"] for e in episodes) == len(shifted)
+
+
+def frame_state(table, i):
+    return table.column("state")[i].as_py(), table.column("direction")[i].as_py()
+
+
+def test_a_night_resumed_across_a_reversal_gives_the_backfill_rows():
+    times, values, stderr, quality = _reversal_series()
+    config = make_config("none", baseline={"windows": 100, "min_windows": 30})
+    whole, _ = shift_series.detect_shifts(times, values, stderr, quality, None, config,
+                                          subject="pump", indicator="rms", unit="mm/s")
+    cut = DOWN_FROM  # the night starts at local midnight, inside the upward episode
+    assert local_days(times[cut - 1:cut + 1], TIMEZONE).tolist() == [19880, 19881]  # 6 and 7 June
+    assert frame_state(whole, cut - 1) == ("shifted", 1)
+    first, states = shift_series.detect_shifts(times[:cut], values[:cut], stderr[:cut], None, None, config,
+                                               subject="pump", indicator="rms", unit="mm/s")
+    state = shift_state.ShiftState.from_row(states[-1].to_row())
+    rest, _ = shift_series.detect_shifts(times[cut:], values[cut:], stderr[cut:], None, None, config, state,
+                                         subject="pump", indicator="rms", unit="mm/s")
+    assert_tables_identical(pa.concat_tables([first, rest]), whole)
+
+
+def test_shift_size_in_percent_of_the_expected_level():
+    table, _ = _detect(*_reversal_series())
+    episodes = summaries.shift_episodes(table)
+    assert episodes.schema.equals(tables.EPISODES)
+    frame = table.to_pandas()
+    for e in episodes.to_pylist():
+        last = frame[frame.window_start == e["last_window"]].iloc[0]
+        # 100 * size / |expected| at the episode's last window (closed form)
+        assert e["shift_size_pct"] == pytest.approx(100 * last.shift_size / abs(last.expected), rel=1e-12)
+    # the downward shift is 0.1 on a level of about 1.0: about -10 %
+    assert episodes.column("shift_size_pct")[1].as_py() == pytest.approx(-10.0, abs=1.5)
+    assert np.isnan(summaries._percent_of_level(0.1, 0.0)) and np.isnan(summaries._percent_of_level(None, 1.0))
+
+
+def test_the_readme_duckdb_query_gives_the_onsets_and_peaks_of_the_episodes_table(tmp_path):
+    # the README's query over a shifts table written as Parquet, run by DuckDB as a user would,
+    # must agree with the episodes table on every episode's onset and peak |z|. The reversal
+    # series has two episodes, and a missing value inside the second (a held window: shifted,
+    # with z NaN)
+    import math
+    import os
+    import re
+
+    import duckdb
+
+    from corrtransforms.stages.write import LocalFiles, write_tables
+
+    times, values, stderr, quality = _reversal_series()
+    values[DOWN_FROM + 10] = np.nan
+    table, _ = _detect(times, values, stderr, quality)
+    config = make_config("none", baseline={"windows": 100, "min_windows": 30})
+    out = str(tmp_path / "demo_output")
+    write_tables(out, config, "run-1", {"shifts": [table]})
+    assert summaries.write_episodes(LocalFiles(), out, config, "run-1") == 2
+    root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+    readme = open(os.path.join(root, "README.md"), encoding="utf-8").read()
+    query = re.search(r"```sql\n-- duckdb\n(.*?)```", readme, re.S).group(1)
+    query = query.replace("demo_output/", out.replace(os.sep, "/") + "/").split(";")[0]
+    found = {(r[0], r[1], r[2]): (r[3], r[4]) for r in duckdb.sql(query).fetchall()}
+    episodes = pq.read_table(os.path.join(out, "episodes", "asset=invented-bridge", "episodes.parquet"))
+    wanted = {(e["subject"], e["indicator"], e["first_alarm"]): (e["onset"], e["peak_abs_z"])
+              for e in episodes.to_pylist()}
+    assert len(wanted) == 2 and found.keys() == wanted.keys()
+    for key, (onset, peak) in wanted.items():
+        assert found[key][0] == onset <= key[2]
+        assert math.isfinite(peak) and found[key][1] == peak, key

@@ -29,6 +29,9 @@ class BeamFiles:
     def create(self, path: str):
         return FileSystems.create(path, compression_type=CompressionTypes.UNCOMPRESSED)
 
+    def open(self, path: str):
+        return open_file(path)
+
     def rename(self, source: str, destination: str) -> None:
         FileSystems.rename([source], [destination])
 
@@ -51,6 +54,10 @@ class BeamFiles:
         except Exception:  # noqa: BLE001 - a missing folder matches nothing
             return []
         return sorted(m.path for m in result.metadata_list)
+
+    def match(self, pattern: str) -> List[str]:
+        """Paths matching a glob pattern, sorted (errors of the filesystem propagate)."""
+        return sorted(m.path for m in FileSystems.match([pattern])[0].metadata_list)
 
     def delete(self, paths: Sequence[str]) -> None:
         if paths:

@@ -1,131 +1,47 @@
-"""Reading back and summarising the output tables through Beam's FileSystems (no numerics).
+"""The output-table summaries of :mod:`corrtransforms.stages.summaries` over Beam's FileSystems.
 
-Used by the launchers before and after a pipeline: the nightly run reads earlier state (or
-indicators, to rebuild it), and every run rewrites the asset's episodes summary from its shifts
-table. All access goes through :class:`apache_beam.io.filesystems.FileSystems`, so the output
-folder may be any registered filesystem URL.
+The launchers call these before and after a pipeline; each is the stage function with the
+store :class:`corrtransforms.beam.filesystems.BeamFiles`, so the output folder may be any
+registered filesystem URL. :func:`remove_stale_temporary` reads the filesystem's modification
+times, which only Beam's FileSystems report.
 """
 from __future__ import annotations
 
 import datetime as _dt
-import json
-import re
 import time
-import uuid
 from typing import Callable, List, Mapping, Optional, Sequence, Tuple
 
-import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
-import pyarrow.parquet as pq
-from apache_beam.io.filesystems import CompressionTypes, FileSystems
+from apache_beam.io.filesystems import FileSystems
 
-from corrtransforms import tables
-
-from corrtransforms.stages import shifts as shift_series
-
-from corrtransforms.stages import write as table_writer
 from corrtransforms.beam.filesystems import BeamFiles
 from corrtransforms.config import AssetConfig
+from corrtransforms.stages import summaries
+from corrtransforms.stages import write as table_writer
+from corrtransforms.stages.summaries import (EPISODE_COLUMNS, EPISODE_EVIDENCE, LATEST_STATE, SUMMARIES,
+                                             episode_evidence, last_row_of_each_series, latest_states)
 
-_DATE = re.compile(r"/date=(\d{4}-\d{2}-\d{2})/")
+#: the reductions and names are re-exported for the launchers (their home is stages.summaries)
+__all__ = ["EPISODE_COLUMNS", "EPISODE_EVIDENCE", "LATEST_STATE", "SUMMARIES", "episode_evidence",
+           "last_row_of_each_series", "latest_states", "partition_files", "read_partitions", "summary_path",
+           "summarize_partitions", "write_episodes", "remove_stale_temporary"]
 
 
 def partition_files(output_dir: str, table: str, asset: str) -> List[tuple]:
-    """(date, path) of every committed Parquet file of one table and asset, sorted."""
-    pattern = FileSystems.join(output_dir, table, f"asset={asset}", "date=*", "*.parquet")
-    try:
-        matched = FileSystems.match([pattern])[0].metadata_list
-    except Exception:  # noqa: BLE001 - nothing written yet matches nothing
-        return []
-    found = []
-    for item in matched:
-        m = _DATE.search(item.path.replace("\\", "/"))
-        if m:
-            found.append((m.group(1), item.path))
-    return sorted(found)
+    """:func:`corrtransforms.stages.summaries.partition_files` over Beam's FileSystems."""
+    return summaries.partition_files(BeamFiles(), output_dir, table, asset)
 
 
 def read_partitions(output_dir: str, table: str, asset: str, schema: pa.Schema,
                     before: Optional[_dt.date] = None, columns: Optional[Sequence[str]] = None,
                     keep: Optional[Callable[[pa.Table], pa.Table]] = None) -> pa.Table:
-    """Concatenate the table's partitions of ``asset`` (only dates before ``before`` if given).
-
-    ``columns`` reads only those columns; ``keep`` reduces the rows as each file is added (it is
-    applied to what has been kept so far plus the new file), so memory holds what the caller
-    needs, not the whole history. Every file is still opened: the I/O grows with the history.
-    """
-    schema = _selected(schema, columns)
-    paths = [path for date, path in _partitions_before(output_dir, table, asset, before)]
-    return _fold_files(paths, schema, columns, keep, [])
-
-
-def _selected(schema: pa.Schema, columns: Optional[Sequence[str]]) -> pa.Schema:
-    return schema if columns is None else pa.schema([schema.field(name) for name in columns])
-
-
-def _partitions_before(output_dir: str, table: str, asset: str, before: Optional[_dt.date]) -> List[tuple]:
-    return [(date, path) for date, path in partition_files(output_dir, table, asset)
-            if before is None or _dt.date.fromisoformat(date) < before]
-
-
-def _fold_files(paths: Sequence[str], schema: pa.Schema, columns: Optional[Sequence[str]],
-                keep: Optional[Callable[[pa.Table], pa.Table]], pieces: List[pa.Table]) -> pa.Table:
-    """Read ``paths`` in order onto ``pieces``, reducing with ``keep`` after each file if given."""
-    pieces = list(pieces)
-    for path in paths:
-        with FileSystems.open(path, compression_type=CompressionTypes.UNCOMPRESSED) as handle:
-            read = pq.read_table(handle, columns=None if columns is None else list(columns))
-        piece = table_writer.conform(read, schema)
-        if keep is None:
-            pieces.append(piece)
-        else:
-            pieces = [keep(pa.concat_tables(pieces + [piece]))]
-    return pa.concat_tables(pieces) if pieces else schema.empty_table()
-
-
-#: folder of the read-back summaries under the output root (derived data, safe to delete)
-SUMMARIES = "_summaries"
-_SUMMARY_FORMAT = "1"
-_COVERED_KEY = b"corrtransforms.summary.covered"
-_FORMAT_KEY = b"corrtransforms.summary.format"
+    """:func:`corrtransforms.stages.summaries.read_partitions` over Beam's FileSystems."""
+    return summaries.read_partitions(BeamFiles(), output_dir, table, asset, schema, before, columns, keep)
 
 
 def summary_path(output_dir: str, asset: str, name: str) -> str:
-    """``DIR/_summaries/asset=NAME/<name>.parquet``."""
-    return FileSystems.join(output_dir, SUMMARIES, f"asset={asset}", f"{name}.parquet")
-
-
-def _load_summary(path: str, schema: pa.Schema):
-    """(rows, covered file keys) of a summary file, or None when absent, unreadable or of
-    another format or schema (the caller then reads every partition)."""
-    try:
-        if not FileSystems.exists(path):
-            return None
-        with FileSystems.open(path, compression_type=CompressionTypes.UNCOMPRESSED) as handle:
-            table = pq.read_table(handle)
-        metadata = table.schema.metadata or {}
-        if metadata.get(_FORMAT_KEY) != _SUMMARY_FORMAT.encode():
-            return None
-        covered = frozenset(json.loads(metadata[_COVERED_KEY].decode()))
-        table = table.replace_schema_metadata(None)
-        if not table.schema.equals(schema):
-            return None
-        return table, covered
-    except Exception:  # noqa: BLE001 - a damaged summary is rebuilt from the partitions
-        return None
-
-
-def _write_summary(path: str, table: pa.Table, covered: Sequence[str], provenance: Mapping[str, str]) -> None:
-    store = BeamFiles()
-    store.mkdirs(FileSystems.split(path)[0])
-    temporary = f"{path}.{uuid.uuid4().hex}.tmp"
-    metadata = {k.encode(): v.encode() for k, v in provenance.items()}
-    metadata.update({_FORMAT_KEY: _SUMMARY_FORMAT.encode(), _COVERED_KEY: json.dumps(sorted(covered)).encode()})
-    with store.create(temporary) as handle:
-        pq.write_table(table.replace_schema_metadata(metadata), handle, compression="zstd",
-                       use_compliant_nested_type=True)
-    store.rename(temporary, path)
+    """:func:`corrtransforms.stages.summaries.summary_path` over Beam's FileSystems."""
+    return summaries.summary_path(BeamFiles(), output_dir, asset, name)
 
 
 def summarize_partitions(output_dir: str, table: str, asset: str, schema: pa.Schema,
@@ -133,53 +49,14 @@ def summarize_partitions(output_dir: str, table: str, asset: str, schema: pa.Sch
                          before: Optional[_dt.date] = None,
                          columns: Optional[Sequence[str]] = None,
                          provenance: Optional[Mapping[str, str]] = None) -> pa.Table:
-    """:func:`read_partitions` with ``keep``, opening only the files its last summary did not cover.
+    """:func:`corrtransforms.stages.summaries.summarize_partitions` over Beam's FileSystems."""
+    return summaries.summarize_partitions(BeamFiles(), output_dir, table, asset, schema, keep, name,
+                                          before, columns, provenance)
 
-    Parameters
-    ----------
-    output_dir, table, asset, schema, before, columns
-        As for :func:`read_partitions`.
-    keep : callable
-        The reduction; it must be decomposable: ``keep(concat(keep(A), B)) == keep(concat(A, B))``
-        for any split of the rows, whatever their dates (true of "the latest row of each series"
-        and of "shifted rows plus each series' latest row").
-    name : str
-        The summary's name (one per reduction): ``DIR/_summaries/asset=NAME/<name>.parquet``.
-    provenance : mapping, optional
-        File metadata of the summary (:func:`corrtransforms.stages.write.provenance_metadata`).
 
-    Returns
-    -------
-    pyarrow.Table
-        The rows of ``read_partitions(..., keep=keep)``, sorted by their scalar columns (so the
-        result does not depend on which files a summary already covered).
-
-    Notes
-    -----
-    The summary holds the reduced rows and the keys (``date/file name``) of the partition files
-    they were reduced from. Part-file names are a digest of their rows, so a covered key that is
-    still listed is a file with the same rows. When every covered key is still listed (and, with
-    ``before``, dated before it), the summary is folded with the files it does not cover; when a
-    covered file has gone (a partition rewritten with other rows, or deleted), the summary is
-    ignored and every file is read. The refreshed summary is written back (temporary name, then
-    rename). A nightly run thus opens one summary and one day's files, not the whole history;
-    the listing itself is one ``match`` of the table's partitions.
-    """
-    schema = _selected(schema, columns)
-    files = _partitions_before(output_dir, table, asset, before)
-    keys = {f"{date}/{path.replace(chr(92), '/').rsplit('/', 1)[-1]}": path for date, path in files}
-    path = summary_path(output_dir, asset, name)
-    loaded = _load_summary(path, schema)
-    pieces: List[pa.Table] = []
-    todo = list(keys)
-    if loaded is not None and loaded[1] <= keys.keys():
-        pieces = [loaded[0]]
-        todo = [k for k in keys if k not in loaded[1]]
-    result = _fold_files([keys[k] for k in sorted(todo)], schema, columns, keep, pieces)
-    result = result.sort_by([(c, "ascending") for c in table_writer.sort_columns(result)])
-    if todo or loaded is None or loaded[1] != keys.keys():
-        _write_summary(path, result, list(keys), provenance or {})
-    return result
+def write_episodes(output_dir: str, config: AssetConfig, run_id: str) -> int:
+    """:func:`corrtransforms.stages.summaries.write_episodes` over Beam's FileSystems."""
+    return summaries.write_episodes(BeamFiles(), output_dir, config, run_id)
 
 
 def remove_stale_temporary(output_dir: str, current_run_id: str, older_than_s: float,
@@ -238,65 +115,3 @@ def remove_stale_temporary(output_dir: str, current_run_id: str, older_than_s: f
         store.delete_tree(FileSystems.join(root, run))
         removed.append((run, age))
     return removed
-
-
-def last_row_of_each_series(table: pa.Table) -> np.ndarray:
-    """Boolean mask of the latest row (by window_start) of each (subject, indicator) in ``table``."""
-    mask = np.zeros(table.num_rows, dtype=bool)
-    if table.num_rows == 0:
-        return mask
-    starts = table.column("window_start").cast(pa.int64()).to_numpy(zero_copy_only=False)
-    latest = {}
-    for i, key in enumerate(zip(table.column("subject").to_pylist(), table.column("indicator").to_pylist())):
-        if key not in latest or starts[i] >= starts[latest[key]]:
-            latest[key] = i
-    mask[list(latest.values())] = True
-    return mask
-
-
-def latest_states(states: pa.Table) -> pa.Table:
-    """Only the latest state row of each series (what a resumed run can use)."""
-    return states.filter(pa.array(last_row_of_each_series(states)))
-
-
-#: name of the read-back summary of the latest state per series
-LATEST_STATE = "latest_state"
-#: name of the read-back summary of the episode evidence
-EPISODE_EVIDENCE = "episode_evidence"
-
-#: the shifts columns the episodes summary is built from
-EPISODE_COLUMNS = ("window_start", "subject", "indicator", "first_alarm", "onset", "state", "direction",
-                   "shift_size", "z", "detector", "unit")
-
-
-def episode_evidence(shifts: pa.Table) -> pa.Table:
-    """The rows of a shifts table that decide its episodes: every shifted row, and the latest row
-    of each series (which says whether an episode is still open). The summary of the reduced
-    table equals that of the whole table."""
-    shifted = pc.equal(shifts.column("state"), "shifted").to_numpy(zero_copy_only=False)
-    return shifts.filter(pa.array(shifted | last_row_of_each_series(shifts)))
-
-
-def write_episodes(output_dir: str, config: AssetConfig, run_id: str) -> int:
-    """Rewrite ``episodes/asset=NAME/episodes.parquet`` from the asset's whole shifts table.
-
-    The summary is derived data: it is rebuilt after every run (written to a temporary name and
-    renamed into place) from the episode evidence of the whole shifts table, which
-    :func:`summarize_partitions` keeps up to date by reading only the files it has not seen.
-    Returns the number of episodes.
-    """
-    metadata = table_writer.provenance_metadata(config, run_id)
-    evidence = summarize_partitions(output_dir, "shifts", config.name, tables.SHIFTS, episode_evidence,
-                                    EPISODE_EVIDENCE, columns=EPISODE_COLUMNS, provenance=metadata)
-    episodes = shift_series.shift_episodes(evidence)
-    store = BeamFiles()
-    folder = store.join(output_dir, "episodes", f"asset={config.name}")
-    store.mkdirs(folder)
-    final = store.join(folder, "episodes.parquet")
-    temporary = store.join(folder, f"_episodes-{run_id}.tmp")
-    episodes = episodes.replace_schema_metadata({**(episodes.schema.metadata or {}),
-                                                 **{k.encode(): v.encode() for k, v in metadata.items()}})
-    with store.create(temporary) as handle:
-        pq.write_table(episodes, handle, compression="zstd", use_compliant_nested_type=True)
-    store.rename(temporary, final)
-    return episodes.num_rows

@@ -15,18 +15,12 @@ from typing import Any, Iterable, Union
 
 import apache_beam as beam
 import pyarrow as pa
-from apache_beam.metrics import Metrics
 
 from corrtransforms.stages import shifts as shift_series
+from corrtransforms.stages.state import ShiftState
+from corrtransforms.beam.metrics import counter as _counter
 from corrtransforms.config import AssetConfig
 from corrtransforms.records import IndicatorRow
-
-NAMESPACE = "corrtransforms"
-
-
-def _counter(name: str):
-    return Metrics.counter(NAMESPACE, name)
-
 
 class _SplitRowsFn(beam.DoFn):
     """Monitored rows to the main output, covariate means to "covariates"; counts the rest."""
@@ -90,13 +84,13 @@ def _state_rows(initial_states) -> list:
         return []
     if isinstance(initial_states, pa.Table):
         return initial_states.to_pylist()
-    return [s.to_row() if isinstance(s, shift_series.ShiftState) else dict(s) for s in initial_states]
+    return [s.to_row() if isinstance(s, ShiftState) else dict(s) for s in initial_states]
 
 
 def _split_state_table(element) -> Iterable[Any]:
     if isinstance(element, pa.Table):
         return element.to_pylist()
-    if isinstance(element, shift_series.ShiftState):
+    if isinstance(element, ShiftState):
         return [element.to_row()]
     return [element]
 

@@ -1,13 +1,12 @@
-"""Healthy baseline of an indicator: which windows form it, and its robust location and scale.
+"""Healthy baseline of an indicator: its robust location and scale.
 
-The baseline is either a configured period of calendar days in the asset's time zone
-(``[baseline] start`` .. ``end``, both inclusive; a window's day is the local date of its start)
-or the first ``[baseline] windows`` windows of the series. Its location is the median and its
-scale the normalised median absolute deviation; fewer usable windows than
+Which windows form the baseline (a period of calendar days or a count of windows) is decided by
+the shifts stage (:func:`corrtransforms.stages.shifts.period_position`). The baseline's location
+is the median and its scale the normalised median absolute deviation; fewer usable windows than
 ``[baseline] min_windows`` is the quality code ``baseline_too_short`` (the detectors then never
 signal for that series).
 
-Only numpy, scipy and pyarrow are used.
+Only numpy and scipy are used.
 
 References
 ----------
@@ -18,18 +17,14 @@ Rousseeuw, P. J. & Croux, C. (1993). Alternatives to the median absolute deviati
 from __future__ import annotations
 
 import dataclasses
-import datetime as _dt
 from typing import Tuple
 
 import numpy as np
-import pyarrow as pa
-import pyarrow.compute as pc
 from scipy import special as _special
 
 #: consistency factor of the MAD for the normal distribution, 1 / Phi^-1(3/4) = 1.482602...
 MAD_TO_SIGMA = float(1.0 / _special.ndtri(0.75))
 BASELINE_TOO_SHORT = "baseline_too_short"
-_EPOCH = _dt.date(1970, 1, 1)
 
 
 def robust_location_scale(values) -> Tuple[float, float, int]:
@@ -140,58 +135,3 @@ def summarize_baseline(values, stderr, min_windows: int) -> BaselineSummary:
     resid_scale, stderr_sq = net_scale(scale, stderr[usable])
     quality = (BASELINE_TOO_SHORT,) if n < min_windows else ()
     return BaselineSummary(location, scale, resid_scale, stderr_sq, n, quality)
-
-
-def local_days(times_us, timezone: str) -> np.ndarray:
-    """Local calendar day of each window start, as days since 1970-01-01 (int32).
-
-    Parameters
-    ----------
-    times_us : array_like of int
-        Window starts in microseconds since the epoch, UTC.
-    timezone : str
-        IANA zone of the asset (``[archive] timezone``).
-
-    Returns
-    -------
-    ndarray of int32
-    """
-    times = pa.array(np.asarray(times_us, dtype=np.int64), type=pa.int64()).cast(
-        pa.timestamp("us", tz=timezone))
-    local = pc.local_timestamp(times)
-    return local.cast(pa.date32()).cast(pa.int32()).to_numpy(zero_copy_only=False).astype(np.int32)
-
-
-def day_number(day: _dt.date) -> int:
-    """Days since 1970-01-01 of a date."""
-    return (day - _EPOCH).days
-
-
-def day_date(number: int) -> _dt.date:
-    """Inverse of :func:`day_number`."""
-    return _EPOCH + _dt.timedelta(days=int(number))
-
-
-def period_position(day: int, windows_seen: int, baseline_config) -> str:
-    """Where a window lies relative to the baseline: "before", "inside" or "after".
-
-    Parameters
-    ----------
-    day : int
-        Local day of the window (see :func:`local_days`).
-    windows_seen : int
-        Windows of the series processed before this one.
-    baseline_config : corrtransforms.config.BaselineConfig
-        ``[baseline]``: a period of days (inclusive) or a count of windows from the first one
-        (100 when neither is given, as in :func:`corrtransforms.config.parse_config`).
-
-    Returns
-    -------
-    str
-    """
-    if baseline_config.by_dates:
-        if day < day_number(baseline_config.start):
-            return "before"
-        return "inside" if day <= day_number(baseline_config.end) else "after"
-    count = 100 if baseline_config.windows is None else baseline_config.windows  # config default
-    return "inside" if windows_seen < count else "after"

@@ -28,30 +28,30 @@ Rules:
   resuming from day D-1's state over day D gives bit-identical rows, also while the baseline is
   still accumulating (the state then carries the baseline sample).
 
-:func:`shift_episodes` summarises a shifts table into one row per alarm episode.
+The state record, its serialisation, the choice of the state to resume and the settings digest
+live in :mod:`corrtransforms.stages.state`; the episodes summary of a shifts table in
+:mod:`corrtransforms.stages.summaries`.
 """
 from __future__ import annotations
 
 import copy
 import dataclasses
-import datetime as _dt
-import hashlib
-import json
 import math
-from typing import Any, Dict, Iterable, List, Mapping, Optional, Sequence, Tuple
+from typing import Any, Dict, Iterable, List, Mapping, NamedTuple, Optional, Sequence, Tuple
 
 import numpy as np
 import pyarrow as pa
 
 from corrtransforms import tables
-from corrtransforms.numerics.robust import day_date, day_number, local_days, period_position
 from corrtransforms.numerics.covariate_model import BaselineModel, fit_baseline_model
 from corrtransforms.numerics.detectors import cusum_path, cusum_run_lengths, cusum_run_sums, ewma_limits, ewma_path
 from corrtransforms.records import IndicatorRow, quality_codes, quality_text
 from corrtransforms.rejects import Reject, iso_utc
+from corrtransforms.timeutil import day_date, day_number, local_days
+from corrtransforms.stages.state import (ACCUMULATING, BASELINE, FITTED, NORMAL, SHIFTED, ShiftState,
+                                         StateMismatchError, resume_or_start, select_resume_state,
+                                         settings_digest, states_table)
 
-BASELINE, NORMAL, SHIFTED = "baseline", "normal", "shifted"
-ACCUMULATING, FITTED = "accumulating", "fitted"
 COVARIATE_INDICATOR = "covariate_mean"
 STAGE = "shifts"
 
@@ -67,7 +67,6 @@ QUALITY_CODES = {
     "covariate_constant": "a covariate did not vary over the baseline; it was left out of the model",
     "covariate_model_unfitted": "too few baseline windows with all covariates; the median model was used",
 }
-_EPOCH_UTC = _dt.datetime(1970, 1, 1, tzinfo=_dt.timezone.utc)
 
 
 #: growth of the baseline sample, as a fraction, after which the provisional model is refitted
@@ -112,237 +111,29 @@ def provisional_refit_point(first: int, count: int, growth: float = None) -> int
         point = following
 
 
-class StateMismatchError(ValueError):
-    """A resumed state does not fit this run (other settings, other series, or later windows)."""
-
-
-# --------------------------------------------------------------------------------------------
-# Settings and time helpers
-
-
-def settings_digest(config, order: int = 1) -> str:
-    """Digest of every setting that changes shift rows; stored in the state and checked on resume.
+def period_position(day: int, windows_seen: int, baseline_config) -> str:
+    """Where a window lies relative to the baseline: "before", "inside" or "after".
 
     Parameters
     ----------
-    config : corrtransforms.config.AssetConfig
-    order : int
-        Covariate model order.
+    day : int
+        Local day of the window (:func:`corrtransforms.timeutil.local_days`).
+    windows_seen : int
+        Windows of the series processed before this one.
+    baseline_config : corrtransforms.config.BaselineConfig
+        ``[baseline]``: a period of days (inclusive) or a count of windows from the first one
+        (100 when neither is given, as in :func:`corrtransforms.config.parse_config`).
 
     Returns
     -------
     str
-        First 16 hex digits of the SHA-256 of the canonical JSON of ``[baseline]``, the detector
-        settings of ``[shifts]``, the compensated covariates, the time zone and the order.
     """
-    b, s = config.baseline, config.shifts
-    plain = {
-        "baseline": [b.start.isoformat() if b.start else None, b.end.isoformat() if b.end else None,
-                     b.windows, b.min_windows],
-        "shifts": [s.detector, s.cusum_k, s.cusum_h, s.ewma_lambda, s.ewma_L],
-        "covariates": list(config.compensated_covariates()),
-        "timezone": config.archive.timezone,
-        "order": order,
-        "format": 1,
-    }
-    text = json.dumps(plain, sort_keys=True, separators=(",", ":"))
-    return hashlib.sha256(text.encode("utf-8")).hexdigest()[:16]
-
-
-def _to_us(value) -> Optional[int]:
-    if value is None:
-        return None
-    if isinstance(value, _dt.datetime):
-        if value.tzinfo is None:
-            value = value.replace(tzinfo=_dt.timezone.utc)
-        delta = value - _EPOCH_UTC
-        return (delta.days * 86400 + delta.seconds) * 1_000_000 + delta.microseconds
-    return int(value)
-
-
-def _to_datetime(us: Optional[int]) -> Optional[_dt.datetime]:
-    if us is None:
-        return None
-    return _EPOCH_UTC + _dt.timedelta(microseconds=int(us))
-
-
-# --------------------------------------------------------------------------------------------
-# State
-
-
-@dataclasses.dataclass
-class ShiftState:
-    """Everything needed to continue one series after its last processed window.
-
-    While ``phase == "accumulating"`` the baseline sample is carried (values, stderr and
-    covariates of the usable baseline windows); once ``"fitted"``, the baseline model and the
-    detector statistics. :meth:`to_row` / :meth:`from_row` convert to and from a row of
-    :data:`corrtransforms.tables.STATE` exactly (float64 throughout).
-    """
-
-    subject: str
-    indicator: str
-    settings: str
-    covariates: Tuple[str, ...] = ()
-    order: int = 1
-    window_start_us: Optional[int] = None
-    local_day: Optional[int] = None
-    phase: str = ACCUMULATING
-    windows_seen: int = 0
-    sample_value: List[float] = dataclasses.field(default_factory=list)
-    sample_stderr: List[float] = dataclasses.field(default_factory=list)
-    sample_covariates: List[float] = dataclasses.field(default_factory=list)
-    model: Optional[BaselineModel] = None
-    cusum_pos: float = 0.0
-    cusum_neg: float = 0.0
-    run_start_pos: Optional[int] = None
-    run_start_neg: Optional[int] = None
-    run_count_pos: int = 0
-    run_count_neg: int = 0
-    run_resid_pos: float = 0.0
-    run_resid_neg: float = 0.0
-    ewma: float = 0.0
-    ewma_count: int = 0
-    ewma_limit: float = float("nan")
-    state: str = BASELINE
-    onset: Optional[int] = None
-    direction: int = 0
-    shift_size: float = float("nan")
-    detector: Optional[str] = None
-    first_alarm: Optional[int] = None
-
-    # -- serialisation ------------------------------------------------------------------------
-    def to_row(self) -> Dict[str, Any]:
-        """One row of the STATE table (timestamps as UTC datetimes, as pyarrow returns them)."""
-        m = self.model
-        return {
-            "window_start": _to_datetime(self.window_start_us),
-            "local_date": day_date(self.local_day) if self.local_day is not None else None,
-            "subject": self.subject,
-            "indicator": self.indicator,
-            "settings": self.settings,
-            "phase": self.phase,
-            "windows_seen": int(self.windows_seen),
-            "sample_value": [float(v) for v in self.sample_value],
-            "sample_stderr": [float(v) for v in self.sample_stderr],
-            "sample_covariates": [float(v) for v in self.sample_covariates],
-            "covariates": list(self.covariates),
-            "model_order": int(self.order),
-            "model_n": None if m is None else int(m.n),
-            "model_location": None if m is None else m.location,
-            "model_coefficients": None if m is None else list(m.coefficients),
-            "model_covariate_center": None if m is None else list(m.center),
-            "model_scale": None if m is None else m.scale,
-            "model_stderr_sq": None if m is None else m.stderr_sq,
-            "resid_scale": None if m is None else m.resid_scale,
-            "r_squared": None if m is None else m.r_squared,
-            "model_quality": None if m is None else quality_text(m.quality),
-            "cusum_pos": self.cusum_pos,
-            "cusum_neg": self.cusum_neg,
-            "run_start_pos": _to_datetime(self.run_start_pos),
-            "run_start_neg": _to_datetime(self.run_start_neg),
-            "run_count_pos": int(self.run_count_pos),
-            "run_count_neg": int(self.run_count_neg),
-            "run_resid_pos": self.run_resid_pos,
-            "run_resid_neg": self.run_resid_neg,
-            "ewma": self.ewma,
-            "ewma_count": int(self.ewma_count),
-            "state": self.state,
-            "onset": _to_datetime(self.onset),
-            "direction": int(self.direction),
-            "shift_size": self.shift_size,
-            "detector": self.detector,
-            "first_alarm": _to_datetime(self.first_alarm),
-            "ewma_limit": self.ewma_limit,
-        }
-
-    @classmethod
-    def from_row(cls, row: Mapping[str, Any]) -> "ShiftState":
-        """Inverse of :meth:`to_row` (also accepts integer microseconds for timestamps)."""
-
-        def num(name, default=float("nan")):
-            value = row.get(name)
-            return default if value is None else float(value)
-
-        covariates = tuple(row.get("covariates") or ())
-        model = None
-        if row.get("model_n") is not None:
-            quality = row.get("model_quality") or "ok"
-            model = BaselineModel(
-                covariates=covariates, order=int(row["model_order"]), location=num("model_location"),
-                coefficients=tuple(float(c) for c in row["model_coefficients"] or ()),
-                center=tuple(float(c) for c in row["model_covariate_center"] or ()),
-                scale=num("model_scale"), stderr_sq=num("model_stderr_sq"),
-                resid_scale=num("resid_scale"), r_squared=num("r_squared"), n=int(row["model_n"]),
-                quality=() if quality == "ok" else tuple(quality.split(";")))
-        local_date = row.get("local_date")
-        if isinstance(local_date, _dt.date):
-            local_date = day_number(local_date)
-        return cls(
-            subject=row["subject"], indicator=row["indicator"], settings=row["settings"],
-            covariates=covariates, order=int(row.get("model_order") or 1),
-            window_start_us=_to_us(row.get("window_start")),
-            local_day=None if local_date is None else int(local_date),
-            phase=row["phase"], windows_seen=int(row["windows_seen"]),
-            sample_value=[float(v) for v in row.get("sample_value") or ()],
-            sample_stderr=[float(v) for v in row.get("sample_stderr") or ()],
-            sample_covariates=[float(v) for v in row.get("sample_covariates") or ()],
-            model=model,
-            cusum_pos=num("cusum_pos", 0.0), cusum_neg=num("cusum_neg", 0.0),
-            run_start_pos=_to_us(row.get("run_start_pos")), run_start_neg=_to_us(row.get("run_start_neg")),
-            run_count_pos=int(row.get("run_count_pos") or 0), run_count_neg=int(row.get("run_count_neg") or 0),
-            run_resid_pos=num("run_resid_pos", 0.0), run_resid_neg=num("run_resid_neg", 0.0),
-            ewma=num("ewma", 0.0), ewma_count=int(row.get("ewma_count") or 0),
-            ewma_limit=num("ewma_limit"), state=row["state"], onset=_to_us(row.get("onset")),
-            direction=int(row.get("direction") or 0), shift_size=num("shift_size"),
-            detector=row.get("detector"), first_alarm=_to_us(row.get("first_alarm")),
-        )
-
-
-def states_table(states: Iterable[ShiftState]) -> pa.Table:
-    """STATE table of the given states."""
-    return pa.Table.from_pylist([s.to_row() for s in states], schema=tables.STATE)
-
-
-def states_from_table(table: pa.Table) -> List[ShiftState]:
-    """States from a STATE table (e.g. read back with pyarrow.dataset)."""
-    return [ShiftState.from_row(row) for row in table.to_pylist()]
-
-
-def select_resume_state(states: Iterable[Any], subject: str, indicator: str,
-                        first_window_us: int) -> Tuple[Optional[ShiftState], Optional[ShiftState]]:
-    """The state to resume a series from: the latest one before the run's first window.
-
-    Parameters
-    ----------
-    states : pyarrow.Table or iterable of ShiftState or STATE rows
-        Candidate states (any series, any day; e.g. the whole state table).
-    subject, indicator : str
-        The series.
-    first_window_us : int
-        First window of this run.
-
-    Returns
-    -------
-    chosen : ShiftState or None
-        Latest state of the series with ``window_start < first_window_us``.
-    blocking : ShiftState or None
-        When states of the series exist but none is before the run: the earliest of them (the
-        run would overlap already processed windows); None otherwise.
-    """
-    if isinstance(states, pa.Table):
-        states = states.to_pylist()
-    candidates = []
-    for s in states:
-        s = s if isinstance(s, ShiftState) else ShiftState.from_row(s)
-        if s.subject == subject and s.indicator == indicator:
-            candidates.append(s)
-    before = [s for s in candidates if s.window_start_us < first_window_us]
-    if before:
-        return max(before, key=lambda s: s.window_start_us), None
-    if candidates:
-        return None, min(candidates, key=lambda s: s.window_start_us)
-    return None, None
+    if baseline_config.by_dates:
+        if day < day_number(baseline_config.start):
+            return "before"
+        return "inside" if day <= day_number(baseline_config.end) else "after"
+    count = 100 if baseline_config.windows is None else baseline_config.windows  # config default
+    return "inside" if windows_seen < count else "after"
 
 
 # --------------------------------------------------------------------------------------------
@@ -378,6 +169,92 @@ def _timestamps(values: Sequence[Optional[int]]) -> pa.Array:
 
 def _is_nonstationary(codes: Tuple[str, ...]) -> bool:
     return any(c.startswith("nonstationary") for c in codes)
+
+
+def _standardised_residuals(model: BaselineModel, v, se, x):
+    """``expected``, covariate-missing flags, residuals and ``z = r / sqrt(s_resid^2 + stderr^2)``
+    of windows after the baseline (z is NaN where the denominator is not positive)."""
+    expected, covariate_missing = model.predict(x, n=len(v))
+    resid = v - expected
+    with np.errstate(invalid="ignore", divide="ignore"):
+        denominator = np.sqrt(model.resid_scale ** 2 + se * se)
+        z = np.where(denominator > 0, resid / denominator, np.nan)
+    return expected, covariate_missing, resid, z
+
+
+def _fitted_quality(model: BaselineModel, v, se, codes, covariate_missing, usable) -> List[str]:
+    """Quality text of each window after the baseline: its own codes, the model's, and this
+    stage's (``value_missing``, ``stderr_missing``, ``covariate_missing``, ``detector_held``)."""
+    model_codes = tuple(model.quality)
+    quality = []
+    for j in range(len(v)):
+        extra = list(model_codes)
+        if not np.isfinite(v[j]):
+            extra.append("value_missing")
+        if not np.isfinite(se[j]):
+            extra.append("stderr_missing")
+        if covariate_missing[j]:
+            extra.append("covariate_missing")
+        if not usable[j] and not model.too_short:
+            extra.append("detector_held")
+        quality.append(quality_text(codes[j] + tuple(extra)))
+    return quality
+
+
+class _DetectorPaths(NamedTuple):
+    """Detector statistics over the used windows of one day (see :mod:`corrtransforms.numerics.detectors`)."""
+
+    upper: np.ndarray      # C+
+    lower: np.ndarray      # C-
+    n_upper: np.ndarray    # windows of C+'s current run above zero
+    n_lower: np.ndarray
+    sum_upper: np.ndarray  # sum of value - expected over C+'s current run
+    sum_lower: np.ndarray
+    ewma: np.ndarray
+    limit: np.ndarray      # EWMA control limit (exact, time-varying)
+
+
+@dataclasses.dataclass
+class _Decisions:
+    """Per used window: the state and the alarm bookkeeping written into its row."""
+
+    state: List[str] = dataclasses.field(default_factory=list)
+    onset: List[Optional[int]] = dataclasses.field(default_factory=list)
+    direction: List[int] = dataclasses.field(default_factory=list)
+    size: List[float] = dataclasses.field(default_factory=list)
+    detector: List[Optional[str]] = dataclasses.field(default_factory=list)
+    first_alarm: List[Optional[int]] = dataclasses.field(default_factory=list)
+    start_upper: List[Optional[int]] = dataclasses.field(default_factory=list)
+    start_lower: List[Optional[int]] = dataclasses.field(default_factory=list)
+
+    def add(self, state, onset, direction, size, detector, first_alarm) -> None:
+        self.state.append(state)
+        self.onset.append(onset)
+        self.direction.append(direction)
+        self.size.append(size)
+        self.detector.append(detector)
+        self.first_alarm.append(first_alarm)
+
+
+def _run_start(lengths, carried: Optional[int], times, j: int) -> Optional[int]:
+    """Start (us) of the CUSUM run ending at used window ``j``: None when the statistic is zero,
+    ``carried`` (the state's run start) when the run began before this day."""
+    if lengths[j] == 0:
+        return None
+    first = j - int(lengths[j]) + 1
+    return int(times[first]) if first >= 0 else carried
+
+
+def _carried(start_value, values, carry) -> np.ndarray:
+    """Numeric column over all windows: used windows take their value, held ones the previous
+    one (``carry[i]`` = used windows up to i; 0 = the incoming state's ``start_value``)."""
+    return np.concatenate(([start_value], np.asarray(values, dtype=float)))[carry]
+
+
+def _carried_list(start_value, values, carry) -> list:
+    """:func:`_carried` for a column of Python values (text, optional timestamps)."""
+    table = [start_value] + list(values)
+    return [table[c] for c in carry]
 
 
 class _SeriesRun:
@@ -462,6 +339,8 @@ class _SeriesRun:
 
     # -- one day --------------------------------------------------------------------------------
     def process_day(self, t, v, se, codes, x, day):
+        """Windows of one local day: baseline windows first, the rest after the fit; appends the
+        rows to :attr:`columns` and the state after the day to :attr:`day_states`."""
         st = self.state
         baseline = self.config.baseline
         n = len(t)
@@ -494,30 +373,19 @@ class _SeriesRun:
         self.day_states.append(copy.deepcopy(st))
 
     def _fitted_windows(self, t, v, se, codes, x):
+        """Windows after the baseline: ``expected``, ``z``, the detectors and the state per window.
+
+        Held windows (z not finite, or flagged nonstationary) keep their row but do not update
+        the statistics: they carry the previous window's values (:func:`_carried`).
+        """
         st = self.state
         model = st.model
         n = len(t)
         st.windows_seen += n
-        expected, covariate_missing = model.predict(x, n=n)
-        resid = v - expected
-        with np.errstate(invalid="ignore", divide="ignore"):
-            denominator = np.sqrt(model.resid_scale ** 2 + se * se)
-            z = np.where(denominator > 0, resid / denominator, np.nan)
+        expected, covariate_missing, resid, z = _standardised_residuals(model, v, se, x)
         nonstationary = np.array([_is_nonstationary(c) for c in codes], dtype=bool)
         usable = np.isfinite(z) & ~nonstationary
-        model_codes = tuple(model.quality)
-        quality = []
-        for j in range(n):
-            extra = list(model_codes)
-            if not np.isfinite(v[j]):
-                extra.append("value_missing")
-            if not np.isfinite(se[j]):
-                extra.append("stderr_missing")
-            if covariate_missing[j]:
-                extra.append("covariate_missing")
-            if not usable[j] and not model.too_short:
-                extra.append("detector_held")
-            quality.append(quality_text(codes[j] + tuple(extra)))
+        quality = _fitted_quality(model, v, se, codes, covariate_missing, usable)
         resid_scale = np.full(n, model.resid_scale)
         if model.too_short:
             nan = np.full(n, np.nan)
@@ -527,87 +395,91 @@ class _SeriesRun:
                              state=[NORMAL] * n, onset=[None] * n, direction=np.zeros(n, np.int8),
                              shift_size=nan, detector=[None] * n, first_alarm=[None] * n, quality=quality)
             return
-        zu, ru, tu = z[usable], resid[usable], t[usable]
-        m = zu.size
-        upper, lower = cusum_path(zu, self.k, st.cusum_pos, st.cusum_neg)
-        n_upper = cusum_run_lengths(upper, st.run_count_pos)
-        n_lower = cusum_run_lengths(lower, st.run_count_neg)
-        sum_upper = cusum_run_sums(ru, n_upper, st.run_resid_pos)
-        sum_lower = cusum_run_sums(ru, n_lower, st.run_resid_neg)
-        ewma = ewma_path(zu, self.smoothing, st.ewma)
-        limit = ewma_limits(st.ewma_count + 1 + np.arange(m), self.smoothing, self.width, exact=True)
-
-        def run_start(lengths, carried, j):
-            if lengths[j] == 0:
-                return None
-            first = j - int(lengths[j]) + 1
-            return int(tu[first]) if first >= 0 else carried
-
-        # per used window: state bookkeeping (m is at most the windows of one day)
-        state_u, onset_u, direction_u, size_u, detector_u, alarm_u = [], [], [], [], [], []
-        start_upper_u, start_lower_u = [], []
-        previous, first_alarm = st.state, st.first_alarm
-        for j in range(m):
-            start_upper_u.append(run_start(n_upper, st.run_start_pos, j))
-            start_lower_u.append(run_start(n_lower, st.run_start_neg, j))
-            cusum_up = self.use_cusum and upper[j] > self.h
-            cusum_down = self.use_cusum and lower[j] > self.h
-            ewma_up = self.use_ewma and ewma[j] > limit[j]
-            ewma_down = self.use_ewma and ewma[j] < -limit[j]
-            up, down = cusum_up or ewma_up, cusum_down or ewma_down
-            if up or down:
-                direction = 1 if (up and not down) or (up and down and upper[j] >= lower[j]) else -1
-                lengths, sums, starts = ((n_upper, sum_upper, start_upper_u) if direction > 0
-                                         else (n_lower, sum_lower, start_lower_u))
-                if lengths[j] > 0:
-                    onset, size = starts[j], float(sums[j] / lengths[j])
-                else:
-                    onset, size = int(tu[j]), float(ru[j])
-                names = [name for name, on in (("cusum", cusum_up or cusum_down), ("ewma", ewma_up or ewma_down)) if on]
-                first_alarm = first_alarm if previous == SHIFTED else int(tu[j])
-                previous = SHIFTED
-                state_u.append(SHIFTED)
-                onset_u.append(onset)
-                direction_u.append(direction)
-                size_u.append(size)
-                detector_u.append("+".join(names))
-                alarm_u.append(first_alarm)
-            else:
-                previous, first_alarm = NORMAL, None
-                state_u.append(NORMAL)
-                onset_u.append(None)
-                direction_u.append(0)
-                size_u.append(float("nan"))
-                detector_u.append(None)
-                alarm_u.append(None)
-
+        paths = self._detector_paths(z[usable], resid[usable])
+        decisions = self._decide_windows(paths, resid[usable], t[usable])
         # rows: used windows take their values, held windows carry the previous ones
         carry = np.concatenate(([0], np.cumsum(usable)))[1:]  # 0 = from the incoming state
-
-        def numeric(start_value, values):
-            return np.concatenate(([start_value], np.asarray(values, dtype=float)))[carry]
-
-        def listed(start_value, values):
-            table = [start_value] + list(values)
-            return [table[c] for c in carry]
-
         self.columns.add(
             window_start=t, value=v, stderr=se, expected=expected, resid_scale=resid_scale, z=z,
-            cusum_pos=numeric(st.cusum_pos, upper), cusum_neg=numeric(st.cusum_neg, lower),
-            ewma=numeric(st.ewma, ewma), ewma_limit=numeric(st.ewma_limit, limit),
-            state=listed(st.state, state_u), onset=listed(st.onset, onset_u),
-            direction=numeric(st.direction, direction_u).astype(np.int8),
-            shift_size=numeric(st.shift_size, size_u), detector=listed(st.detector, detector_u),
-            first_alarm=listed(st.first_alarm, alarm_u), quality=quality)
-        if m:
-            last = m - 1
-            st.cusum_pos, st.cusum_neg = float(upper[last]), float(lower[last])
-            st.run_count_pos, st.run_count_neg = int(n_upper[last]), int(n_lower[last])
-            st.run_resid_pos, st.run_resid_neg = float(sum_upper[last]), float(sum_lower[last])
-            st.run_start_pos, st.run_start_neg = start_upper_u[last], start_lower_u[last]
-            st.ewma, st.ewma_count, st.ewma_limit = float(ewma[last]), st.ewma_count + m, float(limit[last])
-            st.state, st.onset, st.direction = state_u[last], onset_u[last], direction_u[last]
-            st.shift_size, st.detector, st.first_alarm = size_u[last], detector_u[last], alarm_u[last]
+            cusum_pos=_carried(st.cusum_pos, paths.upper, carry), cusum_neg=_carried(st.cusum_neg, paths.lower, carry),
+            ewma=_carried(st.ewma, paths.ewma, carry), ewma_limit=_carried(st.ewma_limit, paths.limit, carry),
+            state=_carried_list(st.state, decisions.state, carry), onset=_carried_list(st.onset, decisions.onset, carry),
+            direction=_carried(st.direction, decisions.direction, carry).astype(np.int8),
+            shift_size=_carried(st.shift_size, decisions.size, carry),
+            detector=_carried_list(st.detector, decisions.detector, carry),
+            first_alarm=_carried_list(st.first_alarm, decisions.first_alarm, carry), quality=quality)
+        if paths.upper.size:
+            self._keep_last(paths, decisions)
+
+    def _detector_paths(self, z, resid) -> "_DetectorPaths":
+        """CUSUM and EWMA statistics over the used windows, continued from the carried state."""
+        st = self.state
+        upper, lower = cusum_path(z, self.k, st.cusum_pos, st.cusum_neg)
+        n_upper = cusum_run_lengths(upper, st.run_count_pos)
+        n_lower = cusum_run_lengths(lower, st.run_count_neg)
+        return _DetectorPaths(
+            upper=upper, lower=lower, n_upper=n_upper, n_lower=n_lower,
+            sum_upper=cusum_run_sums(resid, n_upper, st.run_resid_pos),
+            sum_lower=cusum_run_sums(resid, n_lower, st.run_resid_neg),
+            ewma=ewma_path(z, self.smoothing, st.ewma),
+            limit=ewma_limits(st.ewma_count + 1 + np.arange(z.size), self.smoothing, self.width, exact=True))
+
+    def _decide_windows(self, paths: "_DetectorPaths", resid, times) -> "_Decisions":
+        """State, onset, direction, size, detectors and first alarm of each used window.
+
+        A window is shifted while a configured detector is beyond its limit; its direction is
+        the side that signals (the larger CUSUM side when both do). An episode is a run of
+        shifted windows of one direction: a reversal while shifted starts a new one (new
+        ``first_alarm``). The onset estimate is the first window of that side's current CUSUM
+        run (the window itself when only the EWMA signals); within an episode the earliest
+        estimate is kept, so ``onset <= first_alarm`` in every shifted row. The size is the mean
+        residual over the current CUSUM run.
+        """
+        st = self.state
+        out = _Decisions()
+        previous, first_alarm = st.state, st.first_alarm
+        previous_direction, previous_onset = st.direction, st.onset
+        for j in range(paths.upper.size):
+            out.start_upper.append(_run_start(paths.n_upper, st.run_start_pos, times, j))
+            out.start_lower.append(_run_start(paths.n_lower, st.run_start_neg, times, j))
+            cusum_up = self.use_cusum and paths.upper[j] > self.h
+            cusum_down = self.use_cusum and paths.lower[j] > self.h
+            ewma_up = self.use_ewma and paths.ewma[j] > paths.limit[j]
+            ewma_down = self.use_ewma and paths.ewma[j] < -paths.limit[j]
+            up, down = cusum_up or ewma_up, cusum_down or ewma_down
+            if not (up or down):
+                previous, first_alarm, previous_direction, previous_onset = NORMAL, None, 0, None
+                out.add(NORMAL, None, 0, float("nan"), None, None)
+                continue
+            direction = 1 if (up and not down) or (up and down and paths.upper[j] >= paths.lower[j]) else -1
+            lengths, sums, starts = ((paths.n_upper, paths.sum_upper, out.start_upper) if direction > 0
+                                     else (paths.n_lower, paths.sum_lower, out.start_lower))
+            if lengths[j] > 0:
+                onset, size = starts[j], float(sums[j] / lengths[j])
+            else:
+                onset, size = int(times[j]), float(resid[j])
+            names = [name for name, on in (("cusum", cusum_up or cusum_down), ("ewma", ewma_up or ewma_down)) if on]
+            if previous == SHIFTED and direction == previous_direction:  # the episode goes on
+                onset = onset if previous_onset is None else min(onset, previous_onset)
+            else:  # a new episode: the first shifted window, or a reversal of direction
+                first_alarm = int(times[j])
+            previous, previous_direction, previous_onset = SHIFTED, direction, onset
+            out.add(SHIFTED, onset, direction, size, "+".join(names), first_alarm)
+        return out
+
+    def _keep_last(self, paths: "_DetectorPaths", decisions: "_Decisions") -> None:
+        """Carry the statistics and decisions of the last used window in the state."""
+        st = self.state
+        last = paths.upper.size - 1
+        st.cusum_pos, st.cusum_neg = float(paths.upper[last]), float(paths.lower[last])
+        st.run_count_pos, st.run_count_neg = int(paths.n_upper[last]), int(paths.n_lower[last])
+        st.run_resid_pos, st.run_resid_neg = float(paths.sum_upper[last]), float(paths.sum_lower[last])
+        st.run_start_pos, st.run_start_neg = decisions.start_upper[last], decisions.start_lower[last]
+        st.ewma, st.ewma_count = float(paths.ewma[last]), st.ewma_count + paths.upper.size
+        st.ewma_limit = float(paths.limit[last])
+        st.state, st.onset, st.direction = decisions.state[last], decisions.onset[last], decisions.direction[last]
+        st.shift_size, st.detector = decisions.size[last], decisions.detector[last]
+        st.first_alarm = decisions.first_alarm[last]
 
     # -- output ---------------------------------------------------------------------------------
     def table(self, subject, indicator, unit) -> pa.Table:
@@ -644,6 +516,23 @@ def _covariate_matrix(covariates, names: Tuple[str, ...], n: int) -> Optional[np
             columns.append(np.full(n, np.nan) if column is None else np.asarray(column, dtype=float))
         return np.column_stack(columns).reshape(n, len(names))
     return np.asarray(covariates, dtype=float).reshape(n, len(names))
+
+
+def _checked_series(times_us, values, stderr, quality):
+    """The series as arrays (times int64, values and stderr float) and quality code tuples;
+    ValueError unless the lengths agree and the times strictly increase."""
+    t = np.asarray(times_us, dtype=np.int64).reshape(-1)
+    v = np.asarray(values, dtype=float).reshape(-1)
+    se = np.asarray(stderr, dtype=float).reshape(-1)
+    n = t.size
+    if v.size != n or se.size != n:
+        raise ValueError("times_us, values and stderr must have the same length")
+    codes = [quality_codes(q) for q in (quality if quality is not None else ["ok"] * n)]
+    if len(codes) != n:
+        raise ValueError("quality must have one entry per window")
+    if n > 1 and np.any(np.diff(t) <= 0):
+        raise ValueError("times_us must be strictly increasing (sort and drop duplicates first)")
+    return t, v, se, codes
 
 
 def detect_shifts(times_us, values, stderr, quality, covariates, config, state: Optional[ShiftState] = None,
@@ -694,38 +583,20 @@ def detect_shifts(times_us, values, stderr, quality, covariates, config, state: 
     ``C+_t = max(0, C+_{t-1} + z_t - k)``, ``C-_t = max(0, C-_{t-1} - z_t - k)``, signal when
     ``C > h``; EWMA ``w_t = lambda z_t + (1 - lambda) w_{t-1}``, signal when
     ``|w_t| > L sqrt(lambda / (2 - lambda) (1 - (1 - lambda)^(2 n)))`` after n updates. The
-    onset of a shift is the first window after the CUSUM of its direction last left zero; the
-    size is the mean of ``value - expected`` since then.
+    onset of a shift is the first window after the CUSUM of its direction last left zero (the
+    earliest such estimate of the episode); the size is the mean of ``value - expected`` over
+    the current CUSUM run. An episode (one ``first_alarm``) has one direction: a reversal while
+    shifted starts a new episode.
 
     References
     ----------
     Page (1954); Roberts (1959); Montgomery (2009) Sections 9.1-9.2.
     """
-    t = np.asarray(times_us, dtype=np.int64).reshape(-1)
-    v = np.asarray(values, dtype=float).reshape(-1)
-    se = np.asarray(stderr, dtype=float).reshape(-1)
+    t, v, se, codes = _checked_series(times_us, values, stderr, quality)
     n = t.size
-    if v.size != n or se.size != n:
-        raise ValueError("times_us, values and stderr must have the same length")
-    codes = [quality_codes(q) for q in (quality if quality is not None else ["ok"] * n)]
-    if len(codes) != n:
-        raise ValueError("quality must have one entry per window")
-    if n > 1 and np.any(np.diff(t) <= 0):
-        raise ValueError("times_us must be strictly increasing (sort and drop duplicates first)")
     names = tuple(config.compensated_covariates())
     digest = settings_digest(config, order)
-    if state is None:
-        state = ShiftState(subject=subject, indicator=indicator, settings=digest, covariates=names, order=order)
-    else:
-        if state.settings != digest:
-            raise StateMismatchError(
-                f"state settings {state.settings} differ from this configuration's {digest}")
-        if (subject and subject != state.subject) or (indicator and indicator != state.indicator):
-            raise StateMismatchError(f"state is for {state.subject}/{state.indicator}, not {subject}/{indicator}")
-        if n and state.window_start_us is not None and t[0] <= state.window_start_us:
-            raise StateMismatchError(
-                f"first window {iso_utc(int(t[0]))} is not after the state's last window {iso_utc(state.window_start_us)}")
-        state = copy.deepcopy(state)
+    state = resume_or_start(state, digest, names, order, subject, indicator, int(t[0]) if n else None)
     subject = subject or state.subject
     indicator = indicator or state.indicator
     x = _covariate_matrix(covariates, names, n)
@@ -869,89 +740,3 @@ def detect_shifts_for_rows(rows: Iterable[IndicatorRow], covariates_by_window: M
                               window_start_us=int(times[0])))
         return _empty_outcome(rejects)
     return SeriesOutcome(table, states_table(day_states), rejects)
-
-
-# --------------------------------------------------------------------------------------------
-# Episodes
-
-
-def shift_episodes(shifts: pa.Table) -> pa.Table:
-    """Alarm summary: one row per subject, indicator and episode of consecutive shifted windows.
-
-    Parameters
-    ----------
-    shifts : pyarrow.Table
-        Rows of the SHIFTS schema (any number of series and days; an ``asset`` column, as read
-        from the Hive folders, is kept as the first key when present).
-
-    Returns
-    -------
-    pyarrow.Table
-        :data:`corrtransforms.tables.EPISODES` (plus ``asset`` when given), sorted by keys and
-        first alarm. An episode is identified by its ``first_alarm`` (carried in every shifted
-        row), so a table holding only the latest days still groups correctly. ``onset``,
-        ``direction`` and ``shift_size`` are the latest estimates (at the episode's last shifted
-        window); ``status`` is ``"open"`` when the series' last row in the table is still in the
-        episode.
-    """
-    has_asset = "asset" in shifts.column_names
-    keys = (["asset"] if has_asset else []) + ["subject", "indicator"]
-    schema = tables.EPISODES
-    if has_asset:
-        schema = schema.insert(0, pa.field("asset", pa.string(), nullable=False))
-    if shifts.num_rows == 0:
-        return schema.empty_table()
-    columns = {name: shifts.column(name).to_pylist() for name in keys}
-    start = shifts.column("window_start").cast(pa.int64()).to_numpy(zero_copy_only=False)
-    first_alarm = shifts.column("first_alarm").cast(pa.int64()).to_pylist()
-    onset = shifts.column("onset").cast(pa.int64()).to_pylist()
-    state = shifts.column("state").to_pylist()
-    direction = shifts.column("direction").to_pylist()
-    size = shifts.column("shift_size").to_pylist()
-    z = shifts.column("z").to_pylist()
-    detector = shifts.column("detector").to_pylist()
-    unit = shifts.column("unit").to_pylist()
-    series_last: Dict[tuple, int] = {}
-    episodes: Dict[tuple, Dict[str, Any]] = {}
-    for i in range(shifts.num_rows):
-        series = tuple(columns[name][i] for name in keys)
-        series_last[series] = max(series_last.get(series, start[i]), start[i])
-        if state[i] != SHIFTED or first_alarm[i] is None:
-            continue
-        key = series + (first_alarm[i],)
-        e = episodes.get(key)
-        if e is None:
-            e = episodes[key] = {"last": start[i], "first": start[i], "n": 0, "peak": float("nan"),
-                                 "detectors": set(), "unit": unit[i], "i": i}
-        e["n"] += 1
-        if start[i] >= e["last"]:
-            e["last"], e["i"] = start[i], i
-        if z[i] is not None and math.isfinite(z[i]) and not (abs(z[i]) <= e["peak"]):
-            e["peak"] = abs(z[i])
-        if detector[i]:
-            e["detectors"].update(detector[i].split("+"))
-    out = {name: [] for name in schema.names}
-    for key in sorted(episodes, key=lambda k: tuple("" if v is None else v for v in k)):
-        e = episodes[key]
-        i = e["i"]
-        series = key[:-1]
-        for name, value in zip(keys, series):
-            out[name].append(value)
-        out["onset"].append(onset[i])
-        out["first_alarm"].append(key[-1])
-        out["last_window"].append(int(e["last"]))
-        out["status"].append("open" if series_last[series] == e["last"] else "closed")
-        out["direction"].append(direction[i])
-        out["shift_size"].append(size[i])
-        out["peak_abs_z"].append(e["peak"])
-        out["detector"].append("+".join(d for d in ("cusum", "ewma") if d in e["detectors"]) or None)
-        out["n_windows"].append(e["n"])
-        out["unit"].append(e["unit"])
-    arrays = []
-    for field in schema:
-        values = out[field.name]
-        if pa.types.is_timestamp(field.type):
-            arrays.append(pa.array(values, type=pa.int64()).cast(field.type))
-        else:
-            arrays.append(pa.array(values, type=field.type))
-    return pa.Table.from_arrays(arrays, schema=schema)

@@ -1,22 +1,303 @@
-"""Rebuild the detector state from an indicators table, without reading raw samples again.
+"""The detector state of one series: the record, its table form, which state a run resumes from,
+and its rebuild from an indicators table.
 
-A nightly run resumes each series from the state written at the end of the previous day. When
-that state is missing (a lost partition, a changed output folder), the detectors can be replayed
-over the indicators already written: shift detection depends only on the indicator rows and the
-configuration, so the replayed state equals the state a backfill would have written.
+- :class:`ShiftState`: everything needed to continue one (subject, indicator) series after its
+  last processed window; :meth:`ShiftState.to_row` / :meth:`ShiftState.from_row` convert it to
+  and from a row of :data:`corrtransforms.tables.STATE` exactly.
+- :func:`settings_digest`: the settings a state was computed with, checked on resume.
+- :func:`select_resume_state` and :func:`resume_or_start`: which state a run continues from, and
+  the checks that it fits the run (:class:`StateMismatchError` otherwise).
+- :func:`replay_states`: when the state of a nightly run is missing (a lost partition, a changed
+  output folder), the detectors are replayed over the indicators already written: shift
+  detection depends only on the indicator rows and the configuration, so the replayed state
+  equals the state a backfill would have written.
 """
 from __future__ import annotations
 
-from typing import Dict, List, Tuple
+import copy
+import dataclasses
+import datetime as _dt
+import hashlib
+import json
+from typing import Any, Dict, Iterable, List, Mapping, Optional, Tuple
 
 import pyarrow as pa
 
 from corrtransforms import tables
-
-from corrtransforms.stages import shifts as shift_series
 from corrtransforms.config import AssetConfig
-from corrtransforms.records import IndicatorRow
-from corrtransforms.rejects import Reject
+from corrtransforms.numerics.covariate_model import BaselineModel
+from corrtransforms.records import IndicatorRow, quality_text
+from corrtransforms.rejects import Reject, iso_utc
+from corrtransforms.timeutil import datetime_to_us, day_date, day_number, us_to_datetime
+
+#: values of the ``state`` column of the shifts and state tables
+BASELINE, NORMAL, SHIFTED = "baseline", "normal", "shifted"
+#: values of the ``phase`` column of the state table
+ACCUMULATING, FITTED = "accumulating", "fitted"
+
+
+class StateMismatchError(ValueError):
+    """A resumed state does not fit this run (other settings, other series, or later windows)."""
+
+
+# --------------------------------------------------------------------------------------------
+# Settings
+
+
+def settings_digest(config, order: int = 1) -> str:
+    """Digest of every setting that changes shift rows; stored in the state and checked on resume.
+
+    Parameters
+    ----------
+    config : corrtransforms.config.AssetConfig
+    order : int
+        Covariate model order.
+
+    Returns
+    -------
+    str
+        First 16 hex digits of the SHA-256 of the canonical JSON of ``[baseline]``, the detector
+        settings of ``[shifts]``, the compensated covariates, the time zone and the order.
+    """
+    b, s = config.baseline, config.shifts
+    plain = {
+        "baseline": [b.start.isoformat() if b.start else None, b.end.isoformat() if b.end else None,
+                     b.windows, b.min_windows],
+        "shifts": [s.detector, s.cusum_k, s.cusum_h, s.ewma_lambda, s.ewma_L],
+        "covariates": list(config.compensated_covariates()),
+        "timezone": config.archive.timezone,
+        "order": order,
+        "format": 1,
+    }
+    text = json.dumps(plain, sort_keys=True, separators=(",", ":"))
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()[:16]
+
+
+# --------------------------------------------------------------------------------------------
+# State
+
+
+@dataclasses.dataclass
+class ShiftState:
+    """Everything needed to continue one series after its last processed window.
+
+    While ``phase == "accumulating"`` the baseline sample is carried (values, stderr and
+    covariates of the usable baseline windows); once ``"fitted"``, the baseline model and the
+    detector statistics. :meth:`to_row` / :meth:`from_row` convert to and from a row of
+    :data:`corrtransforms.tables.STATE` exactly (float64 throughout).
+    """
+
+    subject: str
+    indicator: str
+    settings: str
+    covariates: Tuple[str, ...] = ()
+    order: int = 1
+    window_start_us: Optional[int] = None
+    local_day: Optional[int] = None
+    phase: str = ACCUMULATING
+    windows_seen: int = 0
+    sample_value: List[float] = dataclasses.field(default_factory=list)
+    sample_stderr: List[float] = dataclasses.field(default_factory=list)
+    sample_covariates: List[float] = dataclasses.field(default_factory=list)
+    model: Optional[BaselineModel] = None
+    cusum_pos: float = 0.0
+    cusum_neg: float = 0.0
+    run_start_pos: Optional[int] = None
+    run_start_neg: Optional[int] = None
+    run_count_pos: int = 0
+    run_count_neg: int = 0
+    run_resid_pos: float = 0.0
+    run_resid_neg: float = 0.0
+    ewma: float = 0.0
+    ewma_count: int = 0
+    ewma_limit: float = float("nan")
+    state: str = BASELINE
+    onset: Optional[int] = None
+    direction: int = 0
+    shift_size: float = float("nan")
+    detector: Optional[str] = None
+    first_alarm: Optional[int] = None
+
+    # -- serialisation ------------------------------------------------------------------------
+    def to_row(self) -> Dict[str, Any]:
+        """One row of the STATE table (timestamps as UTC datetimes, as pyarrow returns them)."""
+        m = self.model
+        return {
+            "window_start": us_to_datetime(self.window_start_us),
+            "local_date": day_date(self.local_day) if self.local_day is not None else None,
+            "subject": self.subject,
+            "indicator": self.indicator,
+            "settings": self.settings,
+            "phase": self.phase,
+            "windows_seen": int(self.windows_seen),
+            "sample_value": [float(v) for v in self.sample_value],
+            "sample_stderr": [float(v) for v in self.sample_stderr],
+            "sample_covariates": [float(v) for v in self.sample_covariates],
+            "covariates": list(self.covariates),
+            "model_order": int(self.order),
+            "model_n": None if m is None else int(m.n),
+            "model_location": None if m is None else m.location,
+            "model_coefficients": None if m is None else list(m.coefficients),
+            "model_covariate_center": None if m is None else list(m.center),
+            "model_scale": None if m is None else m.scale,
+            "model_stderr_sq": None if m is None else m.stderr_sq,
+            "resid_scale": None if m is None else m.resid_scale,
+            "r_squared": None if m is None else m.r_squared,
+            "model_quality": None if m is None else quality_text(m.quality),
+            "cusum_pos": self.cusum_pos,
+            "cusum_neg": self.cusum_neg,
+            "run_start_pos": us_to_datetime(self.run_start_pos),
+            "run_start_neg": us_to_datetime(self.run_start_neg),
+            "run_count_pos": int(self.run_count_pos),
+            "run_count_neg": int(self.run_count_neg),
+            "run_resid_pos": self.run_resid_pos,
+            "run_resid_neg": self.run_resid_neg,
+            "ewma": self.ewma,
+            "ewma_count": int(self.ewma_count),
+            "state": self.state,
+            "onset": us_to_datetime(self.onset),
+            "direction": int(self.direction),
+            "shift_size": self.shift_size,
+            "detector": self.detector,
+            "first_alarm": us_to_datetime(self.first_alarm),
+            "ewma_limit": self.ewma_limit,
+        }
+
+    @classmethod
+    def from_row(cls, row: Mapping[str, Any]) -> "ShiftState":
+        """Inverse of :meth:`to_row` (also accepts integer microseconds for timestamps)."""
+
+        def num(name, default=float("nan")):
+            value = row.get(name)
+            return default if value is None else float(value)
+
+        covariates = tuple(row.get("covariates") or ())
+        model = None
+        if row.get("model_n") is not None:
+            quality = row.get("model_quality") or "ok"
+            model = BaselineModel(
+                covariates=covariates, order=int(row["model_order"]), location=num("model_location"),
+                coefficients=tuple(float(c) for c in row["model_coefficients"] or ()),
+                center=tuple(float(c) for c in row["model_covariate_center"] or ()),
+                scale=num("model_scale"), stderr_sq=num("model_stderr_sq"),
+                resid_scale=num("resid_scale"), r_squared=num("r_squared"), n=int(row["model_n"]),
+                quality=() if quality == "ok" else tuple(quality.split(";")))
+        local_date = row.get("local_date")
+        if isinstance(local_date, _dt.date):
+            local_date = day_number(local_date)
+        return cls(
+            subject=row["subject"], indicator=row["indicator"], settings=row["settings"],
+            covariates=covariates, order=int(row.get("model_order") or 1),
+            window_start_us=datetime_to_us(row.get("window_start")),
+            local_day=None if local_date is None else int(local_date),
+            phase=row["phase"], windows_seen=int(row["windows_seen"]),
+            sample_value=[float(v) for v in row.get("sample_value") or ()],
+            sample_stderr=[float(v) for v in row.get("sample_stderr") or ()],
+            sample_covariates=[float(v) for v in row.get("sample_covariates") or ()],
+            model=model,
+            cusum_pos=num("cusum_pos", 0.0), cusum_neg=num("cusum_neg", 0.0),
+            run_start_pos=datetime_to_us(row.get("run_start_pos")), run_start_neg=datetime_to_us(row.get("run_start_neg")),
+            run_count_pos=int(row.get("run_count_pos") or 0), run_count_neg=int(row.get("run_count_neg") or 0),
+            run_resid_pos=num("run_resid_pos", 0.0), run_resid_neg=num("run_resid_neg", 0.0),
+            ewma=num("ewma", 0.0), ewma_count=int(row.get("ewma_count") or 0),
+            ewma_limit=num("ewma_limit"), state=row["state"], onset=datetime_to_us(row.get("onset")),
+            direction=int(row.get("direction") or 0), shift_size=num("shift_size"),
+            detector=row.get("detector"), first_alarm=datetime_to_us(row.get("first_alarm")),
+        )
+
+
+def states_table(states: Iterable[ShiftState]) -> pa.Table:
+    """STATE table of the given states."""
+    return pa.Table.from_pylist([s.to_row() for s in states], schema=tables.STATE)
+
+
+def states_from_table(table: pa.Table) -> List[ShiftState]:
+    """States from a STATE table (e.g. read back with pyarrow.dataset)."""
+    return [ShiftState.from_row(row) for row in table.to_pylist()]
+
+
+def select_resume_state(states: Iterable[Any], subject: str, indicator: str,
+                        first_window_us: int) -> Tuple[Optional[ShiftState], Optional[ShiftState]]:
+    """The state to resume a series from: the latest one before the run's first window.
+
+    Parameters
+    ----------
+    states : pyarrow.Table or iterable of ShiftState or STATE rows
+        Candidate states (any series, any day; e.g. the whole state table).
+    subject, indicator : str
+        The series.
+    first_window_us : int
+        First window of this run.
+
+    Returns
+    -------
+    chosen : ShiftState or None
+        Latest state of the series with ``window_start < first_window_us``.
+    blocking : ShiftState or None
+        When states of the series exist but none is before the run: the earliest of them (the
+        run would overlap already processed windows); None otherwise.
+    """
+    if isinstance(states, pa.Table):
+        states = states.to_pylist()
+    candidates = []
+    for s in states:
+        s = s if isinstance(s, ShiftState) else ShiftState.from_row(s)
+        if s.subject == subject and s.indicator == indicator:
+            candidates.append(s)
+    before = [s for s in candidates if s.window_start_us < first_window_us]
+    if before:
+        return max(before, key=lambda s: s.window_start_us), None
+    if candidates:
+        return None, min(candidates, key=lambda s: s.window_start_us)
+    return None, None
+
+
+def resume_or_start(state: Optional[ShiftState], digest: str, covariates: Tuple[str, ...], order: int,
+                    subject: str, indicator: str, first_window_us: Optional[int]) -> ShiftState:
+    """The state a run of one series starts from: a fresh one, or a checked copy of ``state``.
+
+    Parameters
+    ----------
+    state : ShiftState or None
+        State after the previous run (None: a fresh series, starting with its baseline).
+    digest : str
+        :func:`settings_digest` of this run's configuration.
+    covariates : tuple of str
+        Compensated covariates (for a fresh state).
+    order : int
+        Covariate model order (for a fresh state).
+    subject, indicator : str
+        The series ("" accepts the state's).
+    first_window_us : int or None
+        First window of the run (None when the run has no windows).
+
+    Returns
+    -------
+    ShiftState
+        A new state, or a deep copy of ``state`` (the caller's object is never changed).
+
+    Raises
+    ------
+    StateMismatchError
+        ``state`` was computed with other settings, for another series, or the run's first
+        window is not after it.
+    """
+    if state is None:
+        return ShiftState(subject=subject, indicator=indicator, settings=digest, covariates=covariates, order=order)
+    if state.settings != digest:
+        raise StateMismatchError(
+            f"state settings {state.settings} differ from this configuration's {digest}")
+    if (subject and subject != state.subject) or (indicator and indicator != state.indicator):
+        raise StateMismatchError(f"state is for {state.subject}/{state.indicator}, not {subject}/{indicator}")
+    if first_window_us is not None and state.window_start_us is not None and first_window_us <= state.window_start_us:
+        raise StateMismatchError(
+            f"first window {iso_utc(int(first_window_us))} is not after the state's last window "
+            f"{iso_utc(state.window_start_us)}")
+    return copy.deepcopy(state)
+
+
+# --------------------------------------------------------------------------------------------
+# Rebuild from the indicators table
 
 
 def indicator_rows_from_table(table: pa.Table) -> List[IndicatorRow]:
@@ -48,6 +329,8 @@ def replay_states(indicators: pa.Table, config: AssetConfig) -> Tuple[pa.Table, 
     rejects : list of Reject
         Findings of the replay (duplicates, failures), as the shifts stage would report them.
     """
+    from corrtransforms.stages import shifts as shift_series  # the engine imports this module
+
     by_window: Dict[int, List[IndicatorRow]] = {}
     series: Dict[Tuple[str, str], List[IndicatorRow]] = {}
     for row in indicator_rows_from_table(indicators):

@@ -19,6 +19,7 @@ supplies one over ``apache_beam.io.filesystems.FileSystems``), so this module st
 """
 from __future__ import annotations
 
+import glob
 import hashlib
 import io
 import json
@@ -48,9 +49,10 @@ META_PREFIX = "corrtransforms."
 class LocalFiles:
     """The store interface on the local file system (also the reference for other stores).
 
-    Methods: ``join``, ``create`` (binary writable file, parents created), ``rename`` (replacing
-    the destination), ``exists``, ``mkdirs`` (no error if present), ``list_files`` (files
-    directly in a folder; empty if it does not exist), ``delete`` (files), ``delete_tree``.
+    Methods: ``join``, ``create`` (binary writable file, parents created), ``open`` (binary
+    readable file), ``rename`` (replacing the destination), ``exists``, ``mkdirs`` (no error if
+    present), ``list_files`` (files directly in a folder; empty if it does not exist), ``match``
+    (files matching a glob pattern, sorted), ``delete`` (files), ``delete_tree``.
     """
 
     def join(self, *parts: str) -> str:
@@ -59,6 +61,9 @@ class LocalFiles:
     def create(self, path: str):
         os.makedirs(os.path.dirname(path), exist_ok=True)
         return open(path, "wb")
+
+    def open(self, path: str):
+        return open(path, "rb")
 
     def rename(self, source: str, destination: str) -> None:
         os.replace(source, destination)
@@ -74,6 +79,9 @@ class LocalFiles:
             return []
         return sorted(os.path.join(folder, n) for n in os.listdir(folder)
                       if os.path.isfile(os.path.join(folder, n)))
+
+    def match(self, pattern: str) -> List[str]:
+        return sorted(p for p in glob.glob(pattern) if os.path.isfile(p))
 
     def delete(self, paths: Sequence[str]) -> None:
         for path in paths:
@@ -299,9 +307,7 @@ def commit_partition(store, output_dir: str, table_name: str, asset: str, date: 
         if part.name in written:
             store.delete([part.temp_path])  # the same rows written twice: keep one copy
             continue
-        store.rename(part.temp_path, destination)
-        if not store.exists(destination):
-            raise IOError(f"commit of {destination} failed: the file is not there after the rename")
+        move_into_place(store, part.temp_path, destination)
         written[part.name] = part.rows
     stale = [p for p in existing if posixpath.basename(p.replace("\\", "/")) not in written]
     if stale:
@@ -310,6 +316,32 @@ def commit_partition(store, output_dir: str, table_name: str, asset: str, date: 
         store.remove_empty_folder(folder)
     return CommitResult(table_name, asset, date, tuple(sorted(written)), sum(written.values()),
                         tuple(sorted(stale)))
+
+
+def move_into_place(store, temporary: str, destination: str) -> None:
+    """Rename a finished temporary file onto its final name and check that it arrived.
+
+    The one write-then-rename step of the package: part files at commit, the read-back summaries
+    and the episodes table all appear this way, so a reader sees the old file or the new one,
+    never half a file (a rename replaces atomically on local disks).
+
+    Raises
+    ------
+    IOError
+        The destination is not there after the rename (a filesystem whose rename silently did
+        nothing).
+    """
+    store.rename(temporary, destination)
+    if not store.exists(destination):
+        raise IOError(f"commit of {destination} failed: the file is not there after the rename")
+
+
+def write_parquet_in_place(store, path: str, table: pa.Table, temporary: str) -> None:
+    """Write ``table`` as one Parquet file (zstd, compliant nested names) to ``temporary``, then
+    :func:`move_into_place` onto ``path`` (derived files that replace their previous version)."""
+    with store.create(temporary) as handle:
+        pq.write_table(table, handle, compression="zstd", use_compliant_nested_type=True)
+    move_into_place(store, temporary, path)
 
 
 def remove_temporary(store, output_dir: str, run_id: str) -> None:
