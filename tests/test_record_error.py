@@ -13,6 +13,7 @@ from statsmodels.tsa.stattools import acf, ccf
 
 from corrtransforms.numerics import random_error as err
 from corrtransforms.numerics.correlation import channel_spectra, correlate_block, correlate_spectra
+from corrtransforms.numerics.timescales import integral_time_scale
 
 
 # ------------------------------------------------------------------------------------------
@@ -289,13 +290,13 @@ def test_effective_samples_of_ar1():
     # Sec. 2.1.5, from memory), i.e. N_eff = N (1 - phi)/(1 + phi)
     phi, N, dt = 0.9, 10000, 0.01
     rho = phi ** np.arange(0, 600)
-    T_I = err.integral_time_scale(rho, dt)
+    T_I = integral_time_scale(rho, dt)
     assert T_I == pytest.approx(dt * (1 + phi) / (2 * (1 - phi)), rel=1e-9)
     assert err.effective_samples(N * dt, T_I, N) == pytest.approx(N * (1 - phi) / (1 + phi), rel=1e-9)
     # from an estimate (integrated to its first zero crossing)
     y = simulate_ar1(phi, N, 1, np.random.default_rng(3))
     est = correlate_block(y, 1 / dt, 3.0, pairs="auto")
-    T_hat = err.integral_time_scale(est.coefficient[0][est.max_lag:], dt)
+    T_hat = integral_time_scale(est.coefficient[0][est.max_lag:], dt)
     assert T_hat == pytest.approx(T_I, rel=0.25)
     # white noise: T_I = dt/2, N_eff = N
     assert err.effective_samples(N * dt, dt / 2, N) == pytest.approx(N)
@@ -411,7 +412,7 @@ def test_biased_estimate_satisfies_validity_invariants(case):
        st.floats(1e-3, 10), st.integers(1, 10000))
 def test_effective_samples_stay_within_one_and_n(rho_tail, dt, n):
     rho = np.concatenate([[1.0], rho_tail])
-    T_I = err.integral_time_scale(rho, dt)
+    T_I = integral_time_scale(rho, dt)
     assert T_I >= 0
     value = err.effective_samples(n * dt, T_I, n)
     assert 1.0 <= value <= n

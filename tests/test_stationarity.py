@@ -296,6 +296,16 @@ def test_time_scales_of_ar1_match_closed_form():
     assert np.median(dofs) == pytest.approx((1 - phi ** 2) / (1 + phi ** 2), rel=0.1)
 
 
+def test_screening_integral_time_stops_at_the_interpolated_zero_crossing():
+    # rho_k = 1 - k/m with m = 10.5 crosses zero between lags 10 and 11: the integral to the
+    # crossing is the triangle m/2 (closed form). The earlier screening copy integrated through
+    # lag 11 (trapezoid including the negative ordinate): 11 - 11^2/(2m) = 5.238 instead of 5.25.
+    m = 10.5
+    rho = 1.0 - np.arange(40) / m
+    scales = st._time_scales_from_correlation(rho, rho, 20, 39, FS, 0, 3.0)
+    assert scales.integral_time_s == pytest.approx(m / 2 / FS, rel=1e-12)
+
+
 def test_time_scales_of_oscillator_and_tone():
     # envelope exp(-zeta w_n tau): decay time 1/(zeta w_n), read at the peaks of |rho|, so at most
     # half a period early (Bendat & Piersol Sect. 5.2, single-degree-of-freedom system)

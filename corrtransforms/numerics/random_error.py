@@ -431,48 +431,6 @@ def required_record_length(bandwidth_hz, target_rel_error, rho=None):
         return (1.0 + 1.0 / (r * r)) / (2.0 * B * eps2)
 
 
-def integral_time_scale(rho, lag_step_s: float) -> float:
-    """Integral time scale ``T_I = int_0^{tau_0} rho(tau) dtau`` up to the first zero crossing.
-
-    Parameters
-    ----------
-    rho : array_like, shape (L + 1,)
-        Auto-correlation coefficients at lags ``0..L``.
-    lag_step_s : float
-        Lag step ``dt``.
-
-    Returns
-    -------
-    float
-        ``T_I`` in seconds (trapezoid rule, linear interpolation to the crossing; the whole
-        range when ``rho`` stays positive).
-
-    Notes
-    -----
-    Stopping at the first zero crossing is common practice: beyond it the estimate is mostly
-    noise, and for oscillatory correlations the full integral tends to zero. For an AR(1)
-    sequence ``rho_k = phi^k`` summed without a crossing, the trapezoid rule gives
-    ``T_I = dt (1 + phi) / (2 (1 - phi))``, the exact discrete result.
-
-    References
-    ----------
-    .. [1] H. Tennekes and J. L. Lumley, *A First Course in Turbulence*, MIT Press, 1972,
-       Sec. 6.4 (integral scale and averaging time).
-    """
-    r = np.asarray(rho, dtype=float)
-    r = np.where(np.isfinite(r), r, 0.0)
-    nonpositive = np.flatnonzero(r <= 0)
-    if len(nonpositive) == 0:
-        return float(trapezoid(r, dx=lag_step_s))
-    k0 = int(nonpositive[0])
-    if k0 == 0:
-        return 0.0
-    area = float(trapezoid(r[:k0], dx=lag_step_s)) if k0 > 1 else 0.0
-    last, nxt = r[k0 - 1], r[k0]
-    area += 0.5 * last * lag_step_s * last / (last - nxt)
-    return area
-
-
 def effective_samples(record_s, integral_scale_s, n_samples):
     """Effective number of independent samples ``N_eff = T / (2 T_I)``, within ``[1, n]``.
 
@@ -481,7 +439,7 @@ def effective_samples(record_s, integral_scale_s, n_samples):
     record_s : float
         Record length ``T``.
     integral_scale_s : float
-        Integral time scale ``T_I`` (:func:`integral_time_scale`).
+        Integral time scale ``T_I`` (:func:`corrtransforms.numerics.timescales.integral_time_scale`).
     n_samples : int
         Samples in the record (the upper bound; white noise has ``T_I = dt/2``).
 

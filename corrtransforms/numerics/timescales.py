@@ -1,7 +1,9 @@
 """Time scales of an auto-correlation function: correlation time and envelope decay time.
 
 - :func:`corr_time_s`: integral time scale, the integral of ``rho`` from lag 0 to its first zero
-  crossing.
+  crossing, with its standard error; :func:`integral_time_scale` the value alone and
+  :func:`integral_weights` the trapezoid weights both use (the one home of this integral: the
+  correlate stage's ``n_effective`` and screening's memory time use it too).
 - :func:`decay_time_s`: lag at which the Hilbert envelope of ``rho`` first falls to ``1/e``.
 - :func:`correlation_envelope`: the Hilbert envelope itself (even extension for an auto pair).
 - :func:`lag_error_covariance`: covariance of the estimation errors between lags (Bartlett),
@@ -224,6 +226,88 @@ def _first_crossing(values: np.ndarray, level: float, start: int = 0) -> Optiona
     return (k - 1) + (v0 - level) / (v0 - v1)
 
 
+#: upper limits of the integral time scale
+UNTIL_CHOICES = ("first_zero", "max_lag")
+
+
+def integral_weights(rho: np.ndarray, until: str = "first_zero") -> Tuple[np.ndarray, bool]:
+    """Trapezoid weights (unit lag step) of the integral of ``rho`` from lag 0 to its first zero.
+
+    Parameters
+    ----------
+    rho : ndarray, shape (L + 1,)
+        Auto-correlation coefficient at lags 0..L, finite up to the crossing.
+    until : {"first_zero", "max_lag"}
+        Upper limit: the first zero crossing (linearly interpolated) or lag L.
+
+    Returns
+    -------
+    weights : ndarray, shape (K,)
+        ``sum_k weights_k rho_k`` is the integral in lag steps; ``K <= L + 1``.
+    crossed : bool
+        False when ``until="first_zero"`` and ``rho`` stays positive to lag L (the weights
+        then integrate to L, a lower bound).
+
+    Notes
+    -----
+    Trapezoid rule on lags ``0..k``, then the partial interval ``k..tau_0`` under the linear
+    interpolation ``(1 - f) rho_k + f rho_{k+1}`` with ``tau_0 = k + f`` the interpolated zero.
+    """
+    end = _first_crossing(rho, 0.0) if until == "first_zero" else None
+    crossed = end is not None
+    if end is None:
+        end = float(len(rho) - 1)
+    k = int(np.floor(end))
+    frac = end - k
+    weights = np.ones(k + 1)
+    weights[0] = weights[-1] = 0.5
+    if k == 0:
+        weights[:] = 0.0
+    if frac > 0 and k + 1 < len(rho):
+        # value at the crossing by linear interpolation: (1-frac) rho_k + frac rho_{k+1}
+        weights = np.append(weights, 0.0)
+        weights[k] += 0.5 * frac * (2 - frac)
+        weights[k + 1] += 0.5 * frac * frac
+    return weights, crossed
+
+
+def integral_time_scale(coefficient, lag_step_s: float) -> float:
+    """Integral time scale ``T_I = int_0^{tau_0} rho(tau) dtau`` up to the first zero crossing.
+
+    Parameters
+    ----------
+    coefficient : array_like, shape (L + 1,)
+        Auto-correlation coefficient at lags ``0..L``; non-finite lags count as 0.
+    lag_step_s : float
+        Lag step ``dt``.
+
+    Returns
+    -------
+    float
+        ``T_I`` in seconds (:func:`integral_weights`: trapezoid rule, linear interpolation to
+        the crossing; the whole range when ``rho`` stays positive). The value of
+        :func:`corr_time_s` without its standard error, for a coefficient that may hold NaN.
+
+    Notes
+    -----
+    Stopping at the first zero crossing is common practice: beyond it the estimate is mostly
+    noise, and for oscillatory correlations the full integral tends to zero. For an AR(1)
+    sequence ``rho_k = phi^k`` summed without a crossing, the trapezoid rule gives
+    ``T_I = dt (1 + phi) / (2 (1 - phi))``, the exact discrete result.
+
+    References
+    ----------
+    .. [1] H. Tennekes and J. L. Lumley, *A First Course in Turbulence*, MIT Press, 1972,
+       Sec. 6.4 (integral scale and averaging time).
+    """
+    rho = np.asarray(coefficient, dtype=float)
+    rho = np.where(np.isfinite(rho), rho, 0.0)
+    if len(rho) < 2:
+        return 0.0
+    weights, _ = integral_weights(rho)
+    return float((weights * lag_step_s) @ rho[:len(weights)])
+
+
 def corr_time_s(coefficient, stderr, lag_step_s: float, until: str = "first_zero") -> TimeScale:
     """Integral time scale of an auto-correlation: integral of rho from 0 to its first zero.
 
@@ -267,14 +351,12 @@ def corr_time_s(coefficient, stderr, lag_step_s: float, until: str = "first_zero
     """
     rho = np.asarray(coefficient, dtype=float)
     s = np.asarray(stderr, dtype=float)
-    if until not in ("first_zero", "max_lag"):
+    if until not in UNTIL_CHOICES:
         raise ValueError(f"until={until!r}: must be one of 'first_zero', 'max_lag'")
     if rho.shape != s.shape or rho.ndim != 1:
         raise ValueError(f"coefficient {rho.shape} and stderr {s.shape} must be 1-d of equal length")
     if len(rho) < 3:
         return TimeScale(float("nan"), float("nan"), ("too_few_lags",))
-    quality = []
-    end = None
     if until == "first_zero":
         finite_prefix = np.isfinite(rho)
         end = _first_crossing(np.where(finite_prefix, rho, np.inf), 0.0)
@@ -282,29 +364,15 @@ def corr_time_s(coefficient, stderr, lag_step_s: float, until: str = "first_zero
         stop = len(rho) if end is None else int(np.ceil(end)) + 1
         if not np.all(finite_prefix[:stop]):
             return TimeScale(float("nan"), float("nan"), ("nonfinite_correlation",))
-        if end is None:
-            quality.append("no_zero_crossing")
     elif not np.all(np.isfinite(rho)):
         return TimeScale(float("nan"), float("nan"), ("nonfinite_correlation",))
-    if end is None:
-        end = float(len(rho) - 1)
-    k = int(np.floor(end))
-    frac = end - k
-    # trapezoid weights on lags 0..k, then the partial interval k..end to the crossing
-    weights = np.ones(k + 1)
-    weights[0] = weights[-1] = 0.5
-    if k == 0:
-        weights[:] = 0.0
-    if frac > 0 and k + 1 < len(rho):
-        # value at the crossing by linear interpolation: (1-frac) rho_k + frac rho_{k+1}
-        weights = np.append(weights, 0.0)
-        weights[k] += 0.5 * frac * (2 - frac)
-        weights[k + 1] += 0.5 * frac * frac
+    weights, crossed = integral_weights(rho, until)
+    quality = ("no_zero_crossing",) if until == "first_zero" and not crossed else ()
     weights *= lag_step_s
     lags = np.arange(len(weights))
     value = float(weights @ rho[lags])
     err = linear_functional_stderr(weights, rho, s, lags) if np.all(np.isfinite(s[lags])) else float("nan")
-    return TimeScale(value, err, tuple(quality))
+    return TimeScale(value, err, quality)
 
 
 def decay_time_s(coefficient, stderr, lag_step_s: float, auto: bool = True,

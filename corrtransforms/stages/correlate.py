@@ -20,6 +20,7 @@ import pyarrow as pa
 from corrtransforms.numerics import random_error as err
 from corrtransforms.config import AssetConfig
 from corrtransforms.numerics.correlation import DEFAULT_MIN_PAIRS, channel_spectra, correlate_spectra
+from corrtransforms.numerics.timescales import integral_time_scale
 from corrtransforms.records import ModeCorrelation, PairCorrelation, WindowCorrelation, quality_text
 from corrtransforms.tables import CORRELATIONS, TIMESTAMP
 from corrtransforms.records import WindowBlock
@@ -142,7 +143,7 @@ def correlate_window(block: WindowBlock, config: AssetConfig,
         # sum_v [rho(v)^2 + rho(v) rho(-v)] / N = 2 sum_v rho(v)^2 / N (correlation_random_error at 0)
         finite_auto = np.where(np.isfinite(rho_auto), rho_auto, 0.0)
         ms_rel = np.sqrt(2.0 * np.einsum("ij,ij->i", finite_auto, finite_auto) / count_auto[:, L])
-        integral_scale = np.array([err.integral_time_scale(r[L:], dt) for r in rho_auto])
+        integral_scale = np.array([integral_time_scale(r[L:], dt) for r in rho_auto])
         tone_freq, _ = err.strongest_tone(spectra.frequencies_hz(), spectra.periodogram()[used],
                                           n_averaged=spectra.n_segments)
         tone_record = 2.0 * err.tone_required_half_length(2 * np.pi * tone_freq, target)

@@ -46,6 +46,7 @@ from scipy import fft as _fft
 from scipy import ndimage as _ndimage
 from scipy import stats as _stats
 
+from corrtransforms.numerics.timescales import integral_time_scale
 from corrtransforms.records import IndicatorRow, quality_text
 from corrtransforms.rejects import WHOLE_WINDOW, Reject, iso_utc
 
@@ -949,13 +950,7 @@ def _complete_taper_counts(n: int, size: int, max_lag: int) -> np.ndarray:
 
 
 def _time_scales_from_correlation(rho_full, rho, search, max_lag, fs, line_count, kurtosis):
-    below = np.nonzero(rho <= 0)[0]
-    first_zero = int(below[0]) if len(below) else max_lag
-    if first_zero > 0:
-        integral = float(np.trapezoid(rho[:first_zero + 1]) if hasattr(np, "trapezoid")
-                         else np.trapz(rho[:first_zero + 1]))
-    else:
-        integral = 0.0
+    integral = integral_time_scale(rho, 1.0)  # in samples
     magnitude = np.abs(rho[:search + 1])
     above = np.nonzero(magnitude >= 1.0 / math.e)[0]
     last = int(above[-1])
