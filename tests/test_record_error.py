@@ -12,6 +12,7 @@ from scipy.signal import lfilter
 from statsmodels.tsa.stattools import acf, ccf
 
 from corrtransforms.numerics import random_error as err
+from corrtransforms.numerics.bartlett import bartlett_stderr, large_lag_stderr
 from corrtransforms.numerics.correlation import channel_spectra, correlate_block, correlate_spectra
 from corrtransforms.numerics.timescales import integral_time_scale
 
@@ -73,12 +74,12 @@ def test_biased_auto_and_large_lag_interval_match_statsmodels_acf():
     np.testing.assert_allclose(r, ref, rtol=1e-10, atol=1e-12)
     # statsmodels' interval: r_k -/+ z (1 + 2 sum_{j<k} r_j^2)/N, the large-lag Bartlett form
     z = scipy.stats.norm.ppf(0.975)
-    np.testing.assert_allclose(err.large_lag_stderr(r, len(x)), (confint[:, 1] - ref) / z, rtol=1e-10)
+    np.testing.assert_allclose(large_lag_stderr(r, len(x)), (confint[:, 1] - ref) / z, rtol=1e-10)
     # the general per-lag figure is a different quantity: at lag 1 of AR(1) it is
     # sqrt((1 - phi^2)/N) (Box, Jenkins & Reinsel Eq. 2.1.16), below the large-lag 1/sqrt(N)
     full = est.coefficient[0]
-    se = err.bartlett_stderr(full, full, full, est.pair_count[0])[L:]
-    assert se[1] < err.large_lag_stderr(r, len(x))[1]
+    se = bartlett_stderr(full, full, full, est.pair_count[0])[L:]
+    assert se[1] < large_lag_stderr(r, len(x))[1]
 
 
 @pytest.mark.parametrize("adjusted", [False, True])
@@ -110,7 +111,7 @@ def test_bartlett_of_ar1_equals_its_exact_closed_form(phi):
     L, N = 200, 1000
     k = np.arange(-L, L + 1)
     rho = phi ** np.abs(k)
-    se = err.bartlett_stderr(rho, rho, rho, np.full(2 * L + 1, N))
+    se = bartlett_stderr(rho, rho, rho, np.full(2 * L + 1, N))
     kk = np.arange(0, 40)
     exact = (1 + phi ** 2) * (1 - phi ** (2 * kk)) / (1 - phi ** 2) - 2 * kk * phi ** (2 * kk)
     np.testing.assert_allclose(N * se[L + kk] ** 2, exact, rtol=1e-9, atol=1e-12)
@@ -121,7 +122,7 @@ def test_bartlett_cross_of_independent_ar1_pair():
     # for AR(1) with parameters p and q (Box, Jenkins & Reinsel Eq. 12.1.5, from memory)
     p, q, L, N = 0.7, 0.4, 150, 500
     k = np.arange(-L, L + 1)
-    se = err.bartlett_stderr(np.zeros(2 * L + 1), p ** np.abs(k), q ** np.abs(k), np.full(2 * L + 1, N))
+    se = bartlett_stderr(np.zeros(2 * L + 1), p ** np.abs(k), q ** np.abs(k), np.full(2 * L + 1, N))
     np.testing.assert_allclose(N * se ** 2, (1 + p * q) / (1 - p * q), rtol=1e-10)
 
 
@@ -131,8 +132,8 @@ def test_bartlett_cross_of_a_pure_delay_equals_the_shifted_auto():
     k = np.arange(-L, L + 1)
     rho_aa = phi ** np.abs(k)
     rho_ab = phi ** np.abs(k - D)
-    se_ab = err.bartlett_stderr(rho_ab, rho_aa, rho_aa, np.full(2 * L + 1, N))
-    se_aa = err.bartlett_stderr(rho_aa, rho_aa, rho_aa, np.full(2 * L + 1, N))
+    se_ab = bartlett_stderr(rho_ab, rho_aa, rho_aa, np.full(2 * L + 1, N))
+    se_aa = bartlett_stderr(rho_aa, rho_aa, rho_aa, np.full(2 * L + 1, N))
     inner = slice(L - 40, L + 40)
     np.testing.assert_allclose(se_ab[L - 40 + D:L + 40 + D], se_aa[inner], rtol=1e-8, atol=1e-7)
 
@@ -150,7 +151,7 @@ def test_stderr_coverage_ar1():
     x = simulate_ar1(phi, 2000, 1000, rng)
     est = correlate_block(x, 1.0, 50, pairs="auto")
     L = est.max_lag
-    se = err.bartlett_stderr(est.coefficient, est.coefficient, est.coefficient, est.pair_count)
+    se = bartlett_stderr(est.coefficient, est.coefficient, est.coefficient, est.pair_count)
     cover = _coverage(est, phi ** np.abs(np.arange(-L, L + 1)), se)
     for k in (1, 2, 3, 5, 10):
         assert 0.93 <= cover[L + k] <= 0.97, (k, cover[L + k])
@@ -162,7 +163,7 @@ def test_stderr_coverage_oscillator():
     x, _, _ = simulate_oscillator(6000, 1000, fs, fn, zeta, rng)
     est = correlate_block(x, fs, 15.0, pairs="auto")
     L = est.max_lag
-    se = err.bartlett_stderr(est.coefficient, est.coefficient, est.coefficient, est.pair_count)
+    se = bartlett_stderr(est.coefficient, est.coefficient, est.coefficient, est.pair_count)
     cover = _coverage(est, oscillator_rho(est.lags_s, fn, zeta), se)
     for k in (2, 5, 10, 20, 40):
         assert 0.93 <= cover[L + k] <= 0.97, (k, cover[L + k])
@@ -180,7 +181,7 @@ def test_stderr_coverage_cross_pair_with_delay():
     cross = correlate_spectra(spectra, pairs)
     autos = correlate_spectra(spectra, "auto")
     L = cross.max_lag
-    se = err.bartlett_stderr(cross.coefficient, autos.coefficient[:reps], autos.coefficient[reps:],
+    se = bartlett_stderr(cross.coefficient, autos.coefficient[:reps], autos.coefficient[reps:],
                              cross.pair_count)
     k = np.arange(-L, L + 1)
     rho_true = phi ** np.abs(k - D) / np.sqrt(1 + noise ** 2)  # closed form of the construction
@@ -207,7 +208,7 @@ def test_estimated_oscillator_and_low_pass_correlations_follow_closed_forms():
     fs, fn, zeta = 20.0, 2.0, 0.04
     x, _, _ = simulate_oscillator(40000, 1, fs, fn, zeta, rng)
     est = correlate_block(x, fs, 4.0, pairs="auto")
-    se = err.bartlett_stderr(est.coefficient, est.coefficient, est.coefficient, est.pair_count)
+    se = bartlett_stderr(est.coefficient, est.coefficient, est.coefficient, est.pair_count)
     zscore = (est.coefficient - oscillator_rho(est.lags_s, fn, zeta)) / np.where(se > 0, se, 1)
     assert np.max(np.abs(zscore)) < 4.5
     # first-order low-pass noise (AR(1) = its exact discretisation): rho = exp(-|tau|/tau_c)
@@ -215,7 +216,7 @@ def test_estimated_oscillator_and_low_pass_correlations_follow_closed_forms():
     phi = np.exp(-1 / (fs2 * tau_c))
     y = simulate_ar1(phi, 50000, 1, rng)
     est2 = correlate_block(y, fs2, 2.0, pairs="auto")
-    se2 = err.bartlett_stderr(est2.coefficient, est2.coefficient, est2.coefficient, est2.pair_count)
+    se2 = bartlett_stderr(est2.coefficient, est2.coefficient, est2.coefficient, est2.pair_count)
     z2 = (est2.coefficient - np.exp(-np.abs(est2.lags_s) / tau_c)) / np.where(se2 > 0, se2, 1)
     assert np.max(np.abs(z2)) < 4.5
 
@@ -402,7 +403,7 @@ def test_biased_estimate_satisfies_validity_invariants(case):
         if a == b:
             _, psd = err.lag_window_psd(est.R[row], 2.0)
             assert err.auto_correlation_checks(est.R[row], spectra.mean_square[a], psd) == []
-        se = err.bartlett_stderr(rho, est.coefficient[est.pairs.index((a, a))],
+        se = bartlett_stderr(rho, est.coefficient[est.pairs.index((a, a))],
                                  est.coefficient[est.pairs.index((b, b))], est.pair_count[row])
         assert np.all(se[finite & (est.pair_count[row] > 0)] >= 0)
 

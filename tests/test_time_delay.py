@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 
 from corrtransforms.numerics.correlation import correlate_block
-from corrtransforms.numerics.random_error import bartlett_stderr
+from corrtransforms.numerics.bartlett import bartlett_stderr
 from corrtransforms.numerics.time_delay import estimate_lag, refine_peak
 from tests.indicator_fixtures import simulate_sdof
 

@@ -3,8 +3,8 @@ import numpy as np
 import pytest
 import scipy.signal
 
-from corrtransforms.numerics.timescales import (bartlett_kernel, corr_time_s, correlation_envelope,
-                                       decay_time_s, lag_error_covariance)
+from corrtransforms.numerics.bartlett import bartlett_kernel, lag_error_covariance
+from corrtransforms.numerics.timescales import corr_time_s, correlation_envelope, decay_time_s
 from tests.indicator_fixtures import auto_record, sdof_correlation, simulate_ou
 
 FS = 50.0

@@ -226,6 +226,22 @@ class CorrelationEstimate:
             raise KeyError((a, b)) from None
 
 
+def even_extension(coefficient) -> np.ndarray:
+    """Lags ``0..L`` of an even function (an auto-correlation) -> lags ``-L..L``.
+
+    Parameters
+    ----------
+    coefficient : array_like, shape (..., L + 1)
+
+    Returns
+    -------
+    ndarray, shape (..., 2L + 1)
+        ``[rho_L, ..., rho_1, rho_0, rho_1, ..., rho_L]``: the layout of a cross pair's lags.
+    """
+    rho = np.asarray(coefficient)
+    return np.concatenate([rho[..., :0:-1], rho], axis=-1)
+
+
 def resolve_pairs(pairs: PairSpec, n_channels: int) -> Tuple[Tuple[int, int], ...]:
     """Channel index pairs from ``"all"``, ``"auto"`` or an explicit list.
 

@@ -16,8 +16,8 @@ import numpy as np
 import scipy.optimize
 import scipy.signal
 
-from corrtransforms.numerics.timescales import (MAX_COVARIANCE_LAGS, _lag_sums, bartlett_kernel, bartlett_variance,
-                         correlation_envelope)
+from corrtransforms.numerics.bartlett import bartlett_kernel, bartlett_variance, coarsen_lags, kernel_quadratic_form
+from corrtransforms.numerics.timescales import correlation_envelope
 
 #: quality codes of this module (code -> meaning)
 QUALITY_CODES = {
@@ -149,7 +149,7 @@ def fit_mode(coefficient, stderr, lag_step_s: float, band_hz: Tuple[float, float
 
         Cov(theta) = (J^T W J)^-1 J^T W Sigma W J (J^T W J)^-1,   W = diag(1/s^2)
 
-    with ``Sigma`` Bartlett's lag-error covariance (:func:`~corrtransforms.numerics.timescales.lag_error_covariance`)
+    with ``Sigma`` Bartlett's lag-error covariance (:func:`~corrtransforms.numerics.bartlett.lag_error_covariance`)
     [3]_ (Sec. 5.2 of White's robust covariance, from memory).
 
     **Against the logarithmic decrement.** The decrement ``delta = ln(x_k / x_{k+m}) / m`` uses two
@@ -331,43 +331,9 @@ def _analytic(rho: np.ndarray) -> np.ndarray:
 def _correlated_meat(Jw: np.ndarray, model: np.ndarray, lags: np.ndarray, sig: np.ndarray,
                      scale: float) -> np.ndarray:
     """``J_w^T (Sigma / sig sig^T) J_w`` with ``Sigma = scale^2 K(model) / 1`` (Bartlett; strided when long)."""
-    stride = int(np.ceil(len(lags) / MAX_COVARIANCE_LAGS))
-    if stride > 1:
-        groups = np.arange(len(lags)) // stride
-        G = np.stack([np.bincount(groups, weights=Jw[:, m] / sig) for m in range(Jw.shape[1])], axis=1)
-        nodes = np.minimum(lags[::stride][:G.shape[0]] + (stride - 1) // 2, len(model) - 1)
-    else:
-        G, nodes = Jw / sig[:, None], lags
-    nodes = np.asarray(nodes)
+    G, nodes = coarsen_lags(Jw / sig[:, None], lags, len(model))
     spacing = np.diff(nodes)
     if len(nodes) < 3 or np.any(spacing != spacing[0]):
         sigma = scale ** 2 * bartlett_kernel(model, nodes)
         return G.T @ sigma @ G
-    return scale ** 2 * _bartlett_quadratic_form(model, int(nodes[0]), int(spacing[0]), G)
-
-
-def _bartlett_quadratic_form(model: np.ndarray, first: int, spacing: int, G: np.ndarray) -> np.ndarray:
-    """``G^T K G`` for Bartlett's kernel ``K`` at the equally spaced lags ``first + spacing * k``.
-
-    Notes
-    -----
-    With ``c(m) = sum_v rho_v rho_{v+m}`` (:func:`~corrtransforms.numerics.timescales.bartlett_kernel`),
-    ``K = T + H - 2 r c^T - 2 c r^T + 2 c(0) r r^T`` where ``T_ij = c(|l_j - l_i|)`` is Toeplitz,
-    ``H_ij = c(l_i + l_j)`` Hankel, ``r_i = rho(l_i)`` and ``c_i = c(l_i)``. On equally spaced
-    lags ``T G`` is a convolution of ``G`` with ``c(spacing |d|)`` and ``H G`` a correlation
-    with ``c(2 l_0 + spacing q)``, both by FFT (Golub & Van Loan, *Matrix Computations*, 4th ed.,
-    Sec. 4.7.7, fast Toeplitz matrix-vector products; from memory): O(m log m) instead of the
-    O(m^2) of forming ``K``; the same quadratic form to rounding.
-    """
-    rho = np.nan_to_num(np.asarray(model, dtype=float))
-    c = _lag_sums(rho)
-    m = G.shape[0]
-    nodes = first + spacing * np.arange(m)
-    toeplitz = c[spacing * np.abs(np.arange(-(m - 1), m))][:, None]
-    hankel = c[2 * first + spacing * np.arange(2 * m - 1)][:, None]
-    KG = (scipy.signal.fftconvolve(toeplitz, G, axes=0)[m - 1:2 * m - 1]
-          + scipy.signal.fftconvolve(hankel, G[::-1], axes=0)[m - 1:2 * m - 1])
-    g_rho = G.T @ rho[nodes]
-    g_c = G.T @ c[nodes]
-    meat = G.T @ KG - 2 * np.outer(g_rho, g_c) - 2 * np.outer(g_c, g_rho) + 2 * c[0] * np.outer(g_rho, g_rho)
-    return 0.5 * (meat + meat.T)
+    return scale ** 2 * kernel_quadratic_form(model, int(nodes[0]), int(spacing[0]), G)

@@ -5,7 +5,8 @@ correlation of the process. This module states how far, in two forms that answer
 questions:
 
 - **per lag, general** (the ``stderr`` column): Bartlett's variance formula evaluated on the
-  estimated coefficients themselves, :func:`bartlett_stderr`, with the pair count at each lag in
+  estimated coefficients themselves,
+  :func:`corrtransforms.numerics.bartlett.bartlett_stderr`, with the pair count at each lag in
   place of ``n`` for gappy records. This is the figure to put on a coefficient at any lag.
 - **closed form, one number per pair** (the ``rel_error`` column): Bendat & Piersol's
   bandwidth-limited white-noise formulas, :func:`mean_square_rel_error` ``1/sqrt(BT)`` and
@@ -27,6 +28,8 @@ import numpy as np
 import scipy.fft
 from scipy.integrate import trapezoid
 from scipy.signal.windows import parzen
+
+from corrtransforms.numerics.bartlett import bartlett_sums
 
 #: quality codes of the correlate stage (code -> meaning); records.quality_text joins them
 QUALITY_CODES = {
@@ -76,117 +79,13 @@ def tone_ratio(n_averaged: int, false_alarm: float = TONE_FALSE_ALARM) -> float:
     return float(gamma.isf(false_alarm, K, scale=1.0 / K) / gamma.median(K, scale=1.0 / K))
 
 
-def _nan_to_zero(x):
-    return np.where(np.isfinite(x), x, 0.0)
-
-
-def bartlett_sums(rho_ab, rho_aa, rho_bb):
-    """Lag sums of Bartlett's variance formula for every lag, by FFT convolution.
-
-    Parameters
-    ----------
-    rho_ab, rho_aa, rho_bb : array_like, shape (..., 2L + 1)
-        Coefficients at lags ``-L..L`` (index ``i`` is lag ``i - L``); NaN counts as 0.
-
-    Returns
-    -------
-    constant : ndarray, shape (...)
-        ``A = sum_v rho_aa(v) rho_bb(v)``.
-    reflected : ndarray, shape (..., 2L + 1)
-        ``B(k) = sum_v rho_ab(k + v) rho_ab(k - v)``.
-    mixed : ndarray, shape (..., 2L + 1)
-        ``C(k) = sum_v [rho_aa(v) rho_ab(k + v) + rho_ab(-v) rho_bb(k + v)]``.
-    square : ndarray, shape (...)
-        ``E = sum_v [rho_ab(v)^2 + rho_aa(v)^2 / 2 + rho_bb(v)^2 / 2]``.
-
-    Notes
-    -----
-    With ``rho_aa`` and ``rho_bb`` even, ``B(k) = (rho_ab * rho_ab)(2k)`` and
-    ``C(k) = (rho_ab * (rho_aa + rho_bb))(k)`` are convolutions, computed for all lags at once
-    with one real FFT of length ``next_fast_len(4L + 1)``; the sums run over the estimated lags
-    ``|v| <= L`` (the coefficients beyond are taken as 0).
-    """
-    ab = _nan_to_zero(np.asarray(rho_ab, dtype=float))
-    aa = _nan_to_zero(np.asarray(rho_aa, dtype=float))
-    bb = _nan_to_zero(np.asarray(rho_bb, dtype=float))
-    width = ab.shape[-1]
-    L = (width - 1) // 2
-    K = scipy.fft.next_fast_len(2 * width - 1, real=True)
-    F_ab = scipy.fft.rfft(ab, n=K, axis=-1)
-    F_sum = scipy.fft.rfft(aa + bb, n=K, axis=-1)
-    # index j of a full convolution of two (2L+1)-arrays is lag j - 2L
-    conv_ab_ab = scipy.fft.irfft(F_ab * F_ab, n=K, axis=-1)
-    conv_mixed = scipy.fft.irfft(F_ab * F_sum, n=K, axis=-1)
-    reflected = conv_ab_ab[..., 0:4 * L + 1:2]
-    mixed = conv_mixed[..., L:3 * L + 1]
-    constant = (aa * bb).sum(axis=-1)
-    square = (ab * ab + 0.5 * aa * aa + 0.5 * bb * bb).sum(axis=-1)
-    return constant, reflected, mixed, square
-
-
-def bartlett_stderr(rho_ab, rho_aa, rho_bb, pair_count):
-    """Standard error of an estimated correlation coefficient at every lag (Bartlett).
-
-    Parameters
-    ----------
-    rho_ab : array_like, shape (..., 2L + 1)
-        Estimated coefficient of the pair at lags ``-L..L``; for an auto pair pass the same
-        array three times.
-    rho_aa, rho_bb : array_like, shape (..., 2L + 1)
-        Estimated auto-correlation coefficients of channels a and b at lags ``-L..L``.
-    pair_count : array_like, shape (..., 2L + 1)
-        Valid sample pairs at each lag, in place of ``n`` (Bartlett's ``n`` for a complete
-        record; the large-``n`` formula does not distinguish ``n`` from ``n - |k|``).
-
-    Returns
-    -------
-    ndarray, shape (..., 2L + 1)
-        ``sqrt(var r_ab(k))``; NaN where the coefficient is NaN or no pairs exist.
-
-    Notes
-    -----
-    Bartlett's formula for cross-correlation coefficients of jointly Gaussian stationary
-    series (Box, Jenkins & Reinsel [2]_, Eq. (12.1.4), equation number from memory), with
-    ``rho_ab(k) = corr(a_t, b_{t+k})``::
-
-        n var r_ab(k) = sum_v { rho_aa(v) rho_bb(v) + rho_ab(k+v) rho_ab(k-v)
-                              - 2 rho_ab(k) [rho_aa(v) rho_ab(k+v) + rho_ab(-v) rho_bb(k+v)]
-                              + rho_ab(k)^2 [rho_ab(v)^2 + rho_aa(v)^2/2 + rho_bb(v)^2/2] }
-
-    For ``a = b`` it reduces to Bartlett's 1946 formula for the auto-correlation [1]_
-    (Box, Jenkins & Reinsel Eq. (2.1.13))::
-
-        n var r_k = sum_v { rho_v^2 + rho_{v+k} rho_{v-k} - 4 rho_k rho_v rho_{v-k}
-                            + 2 rho_v^2 rho_k^2 }
-
-    The sums use the estimated coefficients (:func:`bartlett_sums`). Their sampling noise adds
-    roughly ``(2L + 1) / n`` relative to the sums, so the figure is slightly conservative when
-    ``L`` is not small against ``n``.
-
-    References
-    ----------
-    .. [1] M. S. Bartlett, "On the theoretical specification and sampling properties of
-       autocorrelated time-series", J. R. Stat. Soc. Suppl. 8(1), 27-41, 1946.
-    .. [2] G. E. P. Box, G. M. Jenkins and G. C. Reinsel, *Time Series Analysis: Forecasting
-       and Control*, 4th ed., Wiley, 2008, Eqs. (2.1.13) and (12.1.4) (from memory).
-    """
-    rho = np.asarray(rho_ab, dtype=float)
-    constant, reflected, mixed, square = bartlett_sums(rho_ab, rho_aa, rho_bb)
-    r = _nan_to_zero(rho)
-    n_var = (constant[..., None] + reflected - 2.0 * r * mixed + r * r * square[..., None])
-    count = np.asarray(pair_count, dtype=float)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        var = np.maximum(n_var, 0.0) / count
-    return np.where(np.isfinite(rho) & (count > 0), np.sqrt(var), np.nan)
-
-
 def correlation_random_error(rho_ab, rho_aa, rho_bb, pair_count):
     """Normalised random error of the correlation estimate ``R_ab`` at every lag (general form).
 
     Parameters
     ----------
     rho_ab, rho_aa, rho_bb, pair_count : array_like, shape (..., 2L + 1)
-        As in :func:`bartlett_stderr`.
+        As in :func:`corrtransforms.numerics.bartlett.bartlett_stderr`.
 
     Returns
     -------
@@ -219,41 +118,6 @@ def correlation_random_error(rho_ab, rho_aa, rho_bb, pair_count):
         return np.where(np.isfinite(rho) & (count > 0), sd / np.abs(rho), np.nan)
 
 
-def large_lag_stderr(rho, n):
-    """Bartlett's large-lag standard error of auto-correlation coefficients at lags ``0..L``.
-
-    Parameters
-    ----------
-    rho : array_like, shape (L + 1,)
-        Estimated coefficients at lags 0..L (``rho[0] = 1``).
-    n : int
-        Record length in samples.
-
-    Returns
-    -------
-    ndarray, shape (L + 1,)
-        ``se[0] = 0``, ``se[1] = 1/sqrt(n)``, ``se[k] = sqrt((1 + 2 sum_{j<k} r_j^2) / n)``.
-
-    Notes
-    -----
-    Bartlett's formula when the true coefficients vanish beyond lag ``k - 1`` (Box, Jenkins &
-    Reinsel [1]_ Eq. (2.1.15), from memory). It is the interval statsmodels'
-    ``acf(..., alpha=..., bartlett_confint=True)`` draws around ``r_k``; use it to judge whether
-    ``r_k`` differs from zero, and :func:`bartlett_stderr` for the error of ``r_k`` itself.
-
-    References
-    ----------
-    .. [1] G. E. P. Box, G. M. Jenkins and G. C. Reinsel, *Time Series Analysis*, 4th ed.,
-       Wiley, 2008, Sec. 2.1.6.
-    """
-    r = np.asarray(rho, dtype=float)
-    var = np.empty_like(r)
-    var[0] = 0.0
-    if len(r) > 1:
-        var[1:] = 1.0 + 2.0 * np.concatenate([[0.0], np.cumsum(r[1:-1] ** 2)])
-    return np.sqrt(var / float(n))
-
-
 def lag_window_psd(R, fs: float) -> Tuple[np.ndarray, np.ndarray]:
     """One-sided PSD from an auto- or cross-product correlation at lags ``-L..L`` (Parzen window).
 
@@ -284,7 +148,8 @@ def lag_window_psd(R, fs: float) -> Tuple[np.ndarray, np.ndarray]:
     .. [1] M. B. Priestley, *Spectral Analysis and Time Series*, Academic Press, 1981,
        Sec. 6.2.3 (Parzen window).
     """
-    R = _nan_to_zero(np.asarray(R, dtype=float))
+    R = np.asarray(R, dtype=float)
+    R = np.where(np.isfinite(R), R, 0.0)
     width = R.shape[-1]
     L = (width - 1) // 2
     M = 2 * scipy.fft.next_fast_len(L + 1)

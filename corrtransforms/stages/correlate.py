@@ -18,6 +18,7 @@ import numpy as np
 import pyarrow as pa
 
 from corrtransforms.numerics import random_error as err
+from corrtransforms.numerics.bartlett import bartlett_stderr
 from corrtransforms.config import AssetConfig
 from corrtransforms.numerics.correlation import DEFAULT_MIN_PAIRS, channel_spectra, correlate_spectra
 from corrtransforms.numerics.timescales import integral_time_scale
@@ -165,7 +166,7 @@ def correlate_window(block: WindowBlock, config: AssetConfig,
             b_rows = np.array([auto_row[b] for _, b in requested])
             rho = est.coefficient[rows]
             counts = est.pair_count[rows]
-            stderr = err.bartlett_stderr(rho, rho_auto[a_rows], rho_auto[b_rows], counts)
+            stderr = bartlett_stderr(rho, rho_auto[a_rows], rho_auto[b_rows], counts)
             is_auto = np.array([a == b for a, b in requested])
             bandwidth = np.where(is_auto, bandwidth_ch[a_rows],
                                  err.statistical_bandwidth(freqs, psd[a_rows], psd[b_rows]))
@@ -221,7 +222,7 @@ def correlate_window(block: WindowBlock, config: AssetConfig,
             mest = correlate_spectra(spectra, [(c, c)], estimator=cc.estimator, band_hz=mode.band_hz,
                                      min_pairs=min_pairs)
             rho_m = mest.coefficient[0]
-            se_m = err.bartlett_stderr(rho_m, rho_m, rho_m, mest.pair_count[0])
+            se_m = bartlett_stderr(rho_m, rho_m, rho_m, mest.pair_count[0])
             codes = list(channel_codes[mode.channel])
             if not np.all(np.isfinite(rho_m)):
                 codes.append("few_pairs")
