@@ -22,6 +22,7 @@ import pyarrow.parquet as pq
 import pytest
 import scipy.signal
 
+from corrtransforms.numerics import spectra
 from corrtransforms.stages import screen as st
 from corrtransforms.config import ScreeningConfig
 from corrtransforms.records import WindowBlock
@@ -113,8 +114,8 @@ def test_line_finder_equals_the_full_running_median(kind):
     if kind == "zeros":
         power[: m // 2] = 0.0
     for width, reach in ((25, 3), (49, 6), (7, 0)):
-        got_lines, got_local = st.spectral_lines(power, width, st.LINE_THRESHOLD, reach)
-        want_lines, want_local = _full_median_lines(power, width, st.LINE_THRESHOLD, reach)
+        got_lines, got_local = spectra.spectral_lines(power, width, spectra.LINE_THRESHOLD, reach)
+        want_lines, want_local = _full_median_lines(power, width, spectra.LINE_THRESHOLD, reach)
         np.testing.assert_array_equal(got_lines, want_lines)
         np.testing.assert_array_equal(got_local, want_local)
     if kind in ("tones", "edge_tone"):

@@ -12,6 +12,7 @@ from scipy.signal import lfilter
 from statsmodels.tsa.stattools import acf, ccf
 
 from corrtransforms.numerics import random_error as err
+from corrtransforms.numerics.spectra import lag_window_psd, strongest_tone, tone_ratio
 from corrtransforms.numerics.bartlett import bartlett_stderr, large_lag_stderr
 from corrtransforms.numerics.correlation import channel_spectra, correlate_block, correlate_spectra
 from corrtransforms.numerics.timescales import integral_time_scale
@@ -235,7 +236,7 @@ def test_statistical_bandwidth_closed_forms():
     phi, fs = 0.8, 100.0
     y = simulate_ar1(phi, 200000, 1, rng)
     est = correlate_block(y, fs, 1.0, pairs="auto")
-    freqs, psd = err.lag_window_psd(est.R[0], fs)
+    freqs, psd = lag_window_psd(est.R[0], fs)
     assert np.trapezoid(psd, freqs) == pytest.approx(est.R[0][est.max_lag], rel=1e-9)  # = R(0)
     expected = 1 / (2 / fs * (1 + phi ** 2) / (1 - phi ** 2))
     assert err.statistical_bandwidth(freqs, psd) == pytest.approx(expected, rel=0.03)
@@ -340,13 +341,13 @@ def test_strongest_tone_found_in_noise_and_absent_without_tone():
     noise[:, 1] += 0.5 * np.cos(2 * np.pi * 7.3 * t + 1.0)
     spectra = channel_spectra(noise, fs, 1.0)
     assert spectra.n_segments > 4  # a block-averaged periodogram
-    freq, _ = err.strongest_tone(spectra.frequencies_hz(), spectra.periodogram(), n_averaged=spectra.n_segments)
+    freq, _ = strongest_tone(spectra.frequencies_hz(), spectra.periodogram(), n_averaged=spectra.n_segments)
     assert freq[1] == pytest.approx(7.3, abs=fs / spectra.segment_fft_length)
     assert np.isnan(freq[[0, 2, 3]]).all()
     # the threshold keeps the false-alarm probability of a broadband bin fixed:
     # Gamma(K, 1/K) quantiles (scipy.stats.gamma); K = 1 gives the 20 dB rule
-    assert err.tone_ratio(1) == pytest.approx(100, rel=0.01)
-    assert err.tone_ratio(10) < err.tone_ratio(2) < err.tone_ratio(1)
+    assert tone_ratio(1) == pytest.approx(100, rel=0.01)
+    assert tone_ratio(10) < tone_ratio(2) < tone_ratio(1)
 
 
 # ------------------------------------------------------------------------------------------
@@ -355,7 +356,7 @@ def test_strongest_tone_found_in_noise_and_absent_without_tone():
 def test_checks_flag_invalid_estimates():
     L = 5
     good = 0.5 ** np.abs(np.arange(-L, L + 1))
-    freqs, psd = err.lag_window_psd(good, 1.0)
+    freqs, psd = lag_window_psd(good, 1.0)
     assert err.auto_correlation_checks(good, 1.0, psd) == []
     assert "r0_mismatch" in err.auto_correlation_checks(good, 1.2, psd)
     odd = good.copy()
@@ -368,7 +369,7 @@ def test_checks_flag_invalid_estimates():
     not_psd[L] = 1.0
     not_psd[[L - 1, L + 1]] = 0.95
     not_psd[[L - 2, L + 2]] = -0.95  # not positive semi-definite: spectrum negative somewhere
-    _, bad_psd = err.lag_window_psd(not_psd, 1.0)
+    _, bad_psd = lag_window_psd(not_psd, 1.0)
     assert "negative_psd" in err.auto_correlation_checks(not_psd, 1.0, bad_psd)
 
 
@@ -401,7 +402,7 @@ def test_biased_estimate_satisfies_validity_invariants(case):
         finite = np.isfinite(rho)
         assert np.all(np.abs(rho[finite]) <= 1 + 1e-9)  # Cauchy-Schwarz for the biased estimate
         if a == b:
-            _, psd = err.lag_window_psd(est.R[row], 2.0)
+            _, psd = lag_window_psd(est.R[row], 2.0)
             assert err.auto_correlation_checks(est.R[row], spectra.mean_square[a], psd) == []
         se = bartlett_stderr(rho, est.coefficient[est.pairs.index((a, a))],
                                  est.coefficient[est.pairs.index((b, b))], est.pair_count[row])

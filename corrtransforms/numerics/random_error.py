@@ -18,16 +18,16 @@ questions:
 It also gives the effective number of independent samples (:func:`effective_samples`), the
 record length needed for a target error (:func:`required_record_length`), the bound for a
 random-phase tone (:func:`tone_required_half_length`) and the validity checks
-(:func:`auto_correlation_checks`), which return quality codes from :data:`QUALITY_CODES`.
+(:func:`auto_correlation_checks`), which return quality codes from :data:`QUALITY_CODES`. The
+per-lag variance lives in :mod:`corrtransforms.numerics.bartlett`, the PSD and the tone finder
+in :mod:`corrtransforms.numerics.spectra`.
 """
 from __future__ import annotations
 
-from typing import List, Optional, Tuple
+from typing import List
 
 import numpy as np
-import scipy.fft
 from scipy.integrate import trapezoid
-from scipy.signal.windows import parzen
 
 from corrtransforms.numerics.bartlett import bartlett_sums
 
@@ -42,42 +42,6 @@ QUALITY_CODES = {
                      "bandwidth, stderr and n_effective are then optimistic",
     "tone_record_short": "the record is shorter than the random-phase tone bound for the strongest sharp PSD peak",
 }
-
-#: probability that a broadband periodogram bin passes the sharp-peak test (common practice:
-#: so small that noise never passes; for one block it is the 20 dB rule, ratio 100 to the median)
-TONE_FALSE_ALARM = 1e-30
-
-
-def tone_ratio(n_averaged: int, false_alarm: float = TONE_FALSE_ALARM) -> float:
-    """Peak-to-median ratio a sharp peak must exceed in a periodogram averaged over K blocks.
-
-    Parameters
-    ----------
-    n_averaged : int
-        Number ``K`` of averaged blocks (1 for a raw periodogram).
-    false_alarm : float
-        Probability that a bin of a smooth (broadband) spectrum exceeds the ratio.
-
-    Returns
-    -------
-    float
-        ``q / m`` with ``q`` the upper ``false_alarm`` quantile and ``m`` the median of
-        ``Gamma(K, 1/K)``: 99.7 for K = 1, 10.1 for K = 10.
-
-    Notes
-    -----
-    A periodogram bin of a Gaussian record is ``S(f) chi^2_2 / 2``; the average of K blocks is
-    ``S(f) Gamma(K, 1/K)`` [1]_ (Sec. 11.5, from memory).
-
-    References
-    ----------
-    .. [1] J. S. Bendat and A. G. Piersol, *Random Data*, 4th ed., Wiley, 2010.
-    """
-    from scipy.stats import gamma
-
-    K = max(int(n_averaged), 1)
-    return float(gamma.isf(false_alarm, K, scale=1.0 / K) / gamma.median(K, scale=1.0 / K))
-
 
 def correlation_random_error(rho_ab, rho_aa, rho_bb, pair_count):
     """Normalised random error of the correlation estimate ``R_ab`` at every lag (general form).
@@ -116,51 +80,6 @@ def correlation_random_error(rho_ab, rho_aa, rho_bb, pair_count):
     with np.errstate(invalid="ignore", divide="ignore"):
         sd = np.sqrt(np.maximum(constant[..., None] + reflected, 0.0) / count)
         return np.where(np.isfinite(rho) & (count > 0), sd / np.abs(rho), np.nan)
-
-
-def lag_window_psd(R, fs: float) -> Tuple[np.ndarray, np.ndarray]:
-    """One-sided PSD from an auto- or cross-product correlation at lags ``-L..L`` (Parzen window).
-
-    Parameters
-    ----------
-    R : array_like, shape (..., 2L + 1)
-        Correlation at lags ``-L..L`` (NaN counts as 0).
-    fs : float
-        Sample rate in Hz.
-
-    Returns
-    -------
-    frequencies_hz : ndarray, shape (M/2 + 1,)
-        ``0..fs/2`` in steps of ``fs / M``, ``M = 2 next_fast_len(L + 1)``.
-    psd : ndarray, shape (..., M/2 + 1)
-        ``G(f) = 2 S(f)`` with ``S(f) = dt sum_k w(k) R(k) exp(-2 pi i f k dt)`` (real part);
-        its trapezoidal integral over ``0..fs/2`` equals ``R(0)`` exactly.
-
-    Notes
-    -----
-    Blackman-Tukey estimate with the Parzen lag window ``w`` [1]_ (Sec. 6.2, from memory).
-    The Parzen spectral window is non-negative, so for a biased (positive semi-definite)
-    auto-correlation estimate the result is ``>= 0`` up to round-off: a negative value shows a
-    defective estimate.
-
-    References
-    ----------
-    .. [1] M. B. Priestley, *Spectral Analysis and Time Series*, Academic Press, 1981,
-       Sec. 6.2.3 (Parzen window).
-    """
-    R = np.asarray(R, dtype=float)
-    R = np.where(np.isfinite(R), R, 0.0)
-    width = R.shape[-1]
-    L = (width - 1) // 2
-    M = 2 * scipy.fft.next_fast_len(L + 1)
-    w = parzen(width, sym=True) if width > 1 else np.ones(1)
-    seq = np.zeros(R.shape[:-1] + (M,))
-    weighted = R * w
-    seq[..., :L + 1] = weighted[..., L:]
-    if L:
-        seq[..., M - L:] = weighted[..., :L]
-    S = scipy.fft.rfft(seq, axis=-1).real / fs
-    return scipy.fft.rfftfreq(M, d=1.0 / fs), 2.0 * S
 
 
 def statistical_bandwidth(frequencies_hz, psd_a, psd_b=None):
@@ -394,57 +313,6 @@ def tone_required_half_length(angular_frequency, target_rel_error=0.05):
         return 1.0 / (2.0 * float(target_rel_error) * np.asarray(angular_frequency, dtype=float))
 
 
-def strongest_tone(frequencies_hz, periodogram, n_averaged: int = 1, ratio: Optional[float] = None,
-                   half_width_bins: Optional[int] = None, exclude_bins: int = 3):
-    """Frequency of the strongest sharp peak of each periodogram (NaN when there is none).
-
-    Parameters
-    ----------
-    frequencies_hz : array_like, shape (K,)
-    periodogram : array_like, shape (n_channels, K) or (K,)
-    n_averaged : int
-        Blocks averaged in the periodogram (sets the default ``ratio``).
-    ratio : float, optional
-        A peak is sharp when it exceeds ``ratio`` times the larger of the medians of the
-        ``half_width_bins`` bins on each side of it (beyond ``exclude_bins`` of its main lobe).
-        None means :func:`tone_ratio` ``(n_averaged)``.
-    half_width_bins : int, optional
-        None means ``max(32, K // 100)``.
-    exclude_bins : int
-        Bins next to the peak left out of the medians (its own main lobe).
-
-    Returns
-    -------
-    frequency_hz : ndarray, shape (n_channels,)
-    peak_ratio : ndarray, shape (n_channels,)
-
-    Notes
-    -----
-    Only the highest bin (at least ``half_width_bins`` from either end) is tested. Common
-    practice; see :data:`TONE_FALSE_ALARM`.
-    """
-    if ratio is None:
-        ratio = tone_ratio(n_averaged)
-    P = np.atleast_2d(np.asarray(periodogram, dtype=float))
-    f = np.asarray(frequencies_hz, dtype=float)
-    K = P.shape[-1]
-    W = int(half_width_bins) if half_width_bins is not None else max(32, K // 100)
-    lo, hi = W + exclude_bins, K - W - exclude_bins
-    if hi <= lo:
-        return np.full(P.shape[0], np.nan), np.full(P.shape[0], np.nan)
-    rows = np.arange(P.shape[0])
-    k = lo + np.argmax(P[:, lo:hi], axis=1)
-    offsets = np.arange(W)
-    left = np.median(P[rows[:, None], (k - exclude_bins - W)[:, None] + offsets], axis=1)
-    right = np.median(P[rows[:, None], (k + exclude_bins + 1)[:, None] + offsets], axis=1)
-    background = np.maximum(left, right)
-    peak = P[rows, k]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        peak_ratio = np.where(background > 0, peak / np.where(background > 0, background, 1.0), np.nan)
-    freq = np.where(peak_ratio >= ratio, f[k], np.nan)
-    return freq, peak_ratio
-
-
 def auto_correlation_checks(R_auto, mean_square, biased_psd, rtol: float = 1e-6) -> List[str]:
     """Validity checks of one estimated auto-correlation; returns quality codes (empty if valid).
 
@@ -455,8 +323,8 @@ def auto_correlation_checks(R_auto, mean_square, biased_psd, rtol: float = 1e-6)
     mean_square : float
         Mean square of the detrended record's valid samples, computed in the time domain.
     biased_psd : array_like
-        :func:`lag_window_psd` of the biased estimate (for the unbiased estimator: the pair
-        counts times ``R`` over ``N``).
+        :func:`corrtransforms.numerics.spectra.lag_window_psd` of the biased estimate (for the
+        unbiased estimator: the pair counts times ``R`` over ``N``).
     rtol : float
         Relative tolerance of the checks (round-off of the FFT is ~1e-13).
 

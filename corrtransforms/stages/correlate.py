@@ -21,6 +21,7 @@ from corrtransforms.numerics import random_error as err
 from corrtransforms.numerics.bartlett import bartlett_stderr
 from corrtransforms.config import AssetConfig
 from corrtransforms.numerics.correlation import DEFAULT_MIN_PAIRS, channel_spectra, correlate_spectra
+from corrtransforms.numerics.spectra import lag_window_psd, strongest_tone
 from corrtransforms.numerics.timescales import integral_time_scale
 from corrtransforms.records import ModeCorrelation, PairCorrelation, WindowCorrelation, quality_text
 from corrtransforms.tables import CORRELATIONS, TIMESTAMP
@@ -137,7 +138,7 @@ def correlate_window(block: WindowBlock, config: AssetConfig,
             R_biased = R_auto * count_auto / valid_counts[:, None]
         else:
             R_biased = R_auto
-        freqs, psd = err.lag_window_psd(R_biased, fs)
+        freqs, psd = lag_window_psd(R_biased, fs)
         bandwidth_ch = err.statistical_bandwidth(freqs, psd)
         # per-channel figures
         # general (Bartlett) relative error of each mean square: var R(0) / R(0)^2 =
@@ -145,7 +146,7 @@ def correlate_window(block: WindowBlock, config: AssetConfig,
         finite_auto = np.where(np.isfinite(rho_auto), rho_auto, 0.0)
         ms_rel = np.sqrt(2.0 * np.einsum("ij,ij->i", finite_auto, finite_auto) / count_auto[:, L])
         integral_scale = np.array([integral_time_scale(r[L:], dt) for r in rho_auto])
-        tone_freq, _ = err.strongest_tone(spectra.frequencies_hz(), spectra.periodogram()[used],
+        tone_freq, _ = strongest_tone(spectra.frequencies_hz(), spectra.periodogram()[used],
                                           n_averaged=spectra.n_segments)
         tone_record = 2.0 * err.tone_required_half_length(2 * np.pi * tone_freq, target)
         tail = max(1, int(np.ceil(0.1 * L)))

@@ -43,9 +43,9 @@ from typing import Dict, Mapping, Optional, Tuple
 
 import numpy as np
 from scipy import fft as _fft
-from scipy import ndimage as _ndimage
 from scipy import stats as _stats
 
+from corrtransforms.numerics.spectra import LINE_THRESHOLD, spectral_lines
 from corrtransforms.numerics.timescales import integral_time_scale
 from corrtransforms.records import IndicatorRow, quality_text
 from corrtransforms.rejects import WHOLE_WINDOW, Reject, iso_utc
@@ -63,8 +63,6 @@ INDEPENDENCE_FACTOR = 10.0
 MINIMUM_SEGMENTS = 10
 #: a segment with a smaller fraction of valid samples is left out of the sequence
 MIN_SEGMENT_COVERAGE = 0.5
-#: a periodogram ordinate this many times above its local median is a sharp spectral line
-LINE_THRESHOLD = 50.0
 #: number of tests combined (Bonferroni) for a channel and for a cross pair
 CHANNEL_TESTS = 4
 PAIR_TESTS = 2
@@ -858,79 +856,6 @@ def transform_workers() -> int:
     except ValueError:
         return 1
     return max(1, value)
-
-
-def spectral_lines(power, width: int, threshold: float = LINE_THRESHOLD, reach: int = 0):
-    """Sharp lines of a spectrum: ordinates above ``threshold`` times their running median.
-
-    Parameters
-    ----------
-    power : ndarray, shape (m,)
-        Spectral ordinates (a periodogram).
-    width : int
-        Odd length of the running median (the spectrum is mirrored at both ends, as
-        ``scipy.ndimage.median_filter(power, width, mode="mirror")`` does).
-    threshold : float
-        An ordinate is a line when ``power > threshold * max(median, 1e-300)``.
-    reach : int
-        Each line is widened by this many ordinates on either side (its leakage).
-
-    Returns
-    -------
-    lines : ndarray of bool, shape (m,)
-        The widened lines.
-    local : ndarray, shape (lines.sum(),)
-        The running median at the line ordinates, in order: the values that replace them.
-
-    Notes
-    -----
-    Exactly the result of the full running median, at a fraction of its cost: the median of a
-    window is never below the same order statistic of any superset of the window (removing
-    elements can only raise the ``k``-th smallest), so the ``(width // 2)``-th smallest of each
-    block of ``width`` ordinates together with its neighbours is a lower bound for the median of
-    every window centred in that block. Only ordinates above ``threshold`` times that bound can be
-    lines; the median is computed exactly there and at the widened lines. With a bound far below
-    the median (a steep spectrum), too many candidates fall back to the full running median.
-    """
-    power = np.asarray(power, dtype=float)
-    m = len(power)
-    half = int(width) // 2
-    width = 2 * half + 1
-
-    def widened(found):
-        if reach and found.any():
-            return _ndimage.binary_dilation(found, structure=np.ones(2 * reach + 1, dtype=bool))
-        return found
-
-    def from_full_median():
-        local = _ndimage.median_filter(power, size=width, mode="mirror")
-        found = widened(power > threshold * np.maximum(local, 1e-300))
-        return found, local[found]
-
-    if m <= width:
-        return from_full_median()
-    padded = np.pad(power, half, mode="reflect")  # numpy "reflect" is ndimage "mirror"
-    blocks = -(-m // width)
-    # block j holds centres j*width .. j*width + width - 1; their windows span padded[j*width :
-    # j*width + 2*width - 1] (padded at the end with +inf, which only lowers the bound)
-    span = np.full(blocks * width + 2 * half, np.inf)
-    span[:len(padded)] = padded
-    superset = np.lib.stride_tricks.as_strided(
-        span, shape=(blocks, 2 * width - 1), strides=(span.strides[0] * width, span.strides[0]))
-    bound = np.partition(superset, half, axis=1)[:, half]
-    bound_per_bin = np.repeat(bound, width)[:m]
-    candidates = np.flatnonzero(power > threshold * np.maximum(bound_per_bin, 1e-300))
-    windows = np.lib.stride_tricks.sliding_window_view(padded, width)
-    if len(candidates) > m // 8:
-        return from_full_median()
-    found = np.zeros(m, dtype=bool)
-    if len(candidates):
-        median = np.median(windows[candidates], axis=1)
-        found[candidates[power[candidates] > threshold * np.maximum(median, 1e-300)]] = True
-    if not found.any():
-        return found, np.empty(0)
-    found = widened(found)
-    return found, np.median(windows[np.flatnonzero(found)], axis=1)
 
 
 def _taper_counts(taper: np.ndarray, size: int, max_lag: int) -> np.ndarray:
