@@ -17,7 +17,7 @@ import scipy.optimize
 import scipy.signal
 
 from corrtransforms.numerics.bartlett import bartlett_kernel, bartlett_variance, coarsen_lags, kernel_quadratic_form
-from corrtransforms.numerics.timescales import correlation_envelope
+from corrtransforms.numerics.envelope import analytic_correlation, correlation_envelope
 
 #: quality codes of this module (code -> meaning)
 QUALITY_CODES = {
@@ -230,7 +230,7 @@ def fit_mode(coefficient, stderr, lag_step_s: float, band_hz: Tuple[float, float
     zeta0 = float(np.clip(-slope / (2 * np.pi * damped0), 1e-4, 0.5))
     freq0 = damped0 / np.sqrt(1 - zeta0 ** 2)
     amp0 = float(np.exp(intercept))
-    analytic_phase = np.angle(y + 1j * np.imag(_analytic(rho[:first_bad])[lags]))
+    analytic_phase = np.angle(y + 1j * np.imag(analytic_correlation(rho[:first_bad])[lags]))
     phi0 = float(np.angle(np.mean(np.exp(1j * (analytic_phase - 2 * np.pi * damped0 * tau)))))
 
     lower = [0.0, 0.5 * low, DAMPING_BOUNDS[0], -2 * np.pi]
@@ -319,13 +319,6 @@ def fit_decaying_cosine(lags_s, values, sigma, start, bounds):
     except (ValueError, np.linalg.LinAlgError):  # pragma: no cover - defensive
         return np.full(4, np.nan), False
     return result.x, bool(result.status > 0 and np.all(np.isfinite(result.x)))
-
-
-def _analytic(rho: np.ndarray) -> np.ndarray:
-    import scipy.signal
-
-    full = np.concatenate([rho[:0:-1], rho])
-    return scipy.signal.hilbert(full)[len(rho) - 1:]
 
 
 def _correlated_meat(Jw: np.ndarray, model: np.ndarray, lags: np.ndarray, sig: np.ndarray,

@@ -20,6 +20,8 @@ import scipy.fft
 import scipy.signal
 from scipy.signal.windows import parzen
 
+from corrtransforms.numerics.envelope import correlation_envelope
+
 WEIGHTINGS = ("none", "phat", "scot")
 
 #: quality codes of this module (code -> meaning)
@@ -364,7 +366,7 @@ def _envelope_widths(located_clean: np.ndarray, peak_index: np.ndarray, lag_step
     """:func:`envelope_width_s` of every row: one Hilbert transform along the rows, the
     half-maximum crossings found by masks instead of walking."""
     count, n = located_clean.shape
-    env = np.abs(scipy.signal.hilbert(located_clean, axis=-1))
+    env = correlation_envelope(located_clean, auto=False)
     if not np.all(np.isfinite(env)):
         raise ValueError("the Hilbert envelope is not finite: only the per-pair path takes such rows")
     line = np.arange(count)

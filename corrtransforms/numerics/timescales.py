@@ -5,7 +5,7 @@
   :func:`integral_weights` the trapezoid weights both use (the one home of this integral: the
   correlate stage's ``n_effective`` and screening's memory time use it too).
 - :func:`decay_time_s`: lag at which the Hilbert envelope of ``rho`` first falls to ``1/e``.
-- :func:`correlation_envelope`: the Hilbert envelope itself (even extension for an auto pair).
+The Hilbert envelope itself is :func:`corrtransforms.numerics.envelope.correlation_envelope`.
 The standard errors use the covariance of the estimation errors between lags of
 :mod:`corrtransforms.numerics.bartlett` (errors at neighbouring lags are strongly correlated, so
 treating them as independent understates the error of an integral or a fit several-fold).
@@ -18,10 +18,9 @@ from __future__ import annotations
 from typing import NamedTuple, Optional, Tuple
 
 import numpy as np
-import scipy.signal
 
 from corrtransforms.numerics.bartlett import linear_functional_stderr
-from corrtransforms.numerics.correlation import even_extension
+from corrtransforms.numerics.envelope import correlation_envelope
 
 #: quality codes of this module (code -> meaning)
 QUALITY_CODES = {
@@ -38,44 +37,6 @@ class TimeScale(NamedTuple):
     value: float
     stderr: float
     quality: Tuple[str, ...]
-
-
-def correlation_envelope(coefficient, auto: bool = True) -> np.ndarray:
-    """Hilbert envelope of a correlation function.
-
-    Parameters
-    ----------
-    coefficient : array_like
-        Lags 0..L of an auto-correlation (``auto=True``) or any lag range of a cross-correlation.
-    auto : bool
-        Build the analytic signal on the even extension -L..L (so lag 0 is not an edge) and
-        return lags 0..L again.
-
-    Returns
-    -------
-    ndarray
-        ``|rho(tau) + i H[rho](tau)|``, same lags as ``coefficient``.
-
-    Notes
-    -----
-    The analytic signal is formed with ``scipy.signal.hilbert`` (one-sided spectrum, Marple's
-    discrete analytic signal). For a narrow-band correlation
-    ``A(tau) cos(w tau + phi)`` with a slowly varying ``A`` the envelope is ``A`` (Bendat &
-    Piersol [1]_, Sec. 13.1 (from memory)). For a correlation with much power near zero
-    frequency (low-pass, e.g. ``exp(-|tau|/tau_c)``) the Hilbert transform does not vanish and
-    the envelope lies above ``|rho|``: see :func:`decay_time_s`.
-
-    References
-    ----------
-    .. [1] J. S. Bendat and A. G. Piersol, *Random Data*, 4th ed., Wiley, 2010, Ch. 13.
-    .. [2] S. L. Marple, "Computing the discrete-time analytic signal via FFT", IEEE Trans.
-       Signal Process. 47(9), 2600-2603, 1999.
-    """
-    rho = np.asarray(coefficient, dtype=float)
-    if auto:
-        full = even_extension(rho)
-        return np.abs(scipy.signal.hilbert(full))[len(rho) - 1:]
-    return np.abs(scipy.signal.hilbert(rho))
 
 
 def _first_crossing(values: np.ndarray, level: float, start: int = 0) -> Optional[float]:
@@ -265,7 +226,7 @@ def decay_time_s(coefficient, stderr, lag_step_s: float, auto: bool = True,
 
     Notes
     -----
-    ``E(tau) = |rho(tau) + i H[rho](tau)|`` (:func:`correlation_envelope`); the crossing
+    ``E(tau) = |rho(tau) + i H[rho](tau)|`` (:func:`corrtransforms.numerics.envelope.correlation_envelope`); the crossing
     ``tau_e`` is interpolated linearly between lags. For a narrow-band response, e.g. the
     correlation ``exp(-zeta w_n tau)[cos w_d tau + zeta/sqrt(1-zeta^2) sin w_d tau]`` of a
     lightly damped oscillator, ``tau_e ~ 1/(zeta w_n)`` (the free-decay time constant).
