@@ -168,14 +168,14 @@ def test_segment_statistics_of_rows_match_numpy_and_do_not_depend_on_the_batch()
             for i in range(count):
                 seg = slice(i * length, (i + 1) * length)
                 dev = x[seg][ok[seg]] - center
-                assert got.mean_square[i] == pytest.approx(np.mean(dev ** 2), rel=1e-12)
+                assert got.mean_product[i] == pytest.approx(np.mean(dev ** 2), rel=1e-12)
                 assert got.kurtosis[i] == pytest.approx(np.mean(dev ** 4) / np.mean(dev ** 2) ** 2, rel=1e-12)
                 assert got.mean[i] == pytest.approx(np.mean(x[seg][ok[seg]]), rel=1e-12, abs=1e-12)
             alone = segments.segment_statistics(block.values[:, row], block.valid[:, row], count)
-            for field in ("valid_count", "mean", "mean_square", "kurtosis"):  # a batch of one: the same bits
+            for field in ("valid_count", "mean", "mean_product", "kurtosis"):  # a batch of one: the same bits
                 np.testing.assert_array_equal(getattr(got, field), getattr(alone, field))
         for got, want in zip(whole, [m for m, c in zip(mixed, complete) if c]):
-            for field in ("valid_count", "mean", "mean_square", "kurtosis"):  # complete branch == masked branch
+            for field in ("valid_count", "mean", "mean_product", "kurtosis"):  # complete branch == masked branch
                 np.testing.assert_array_equal(getattr(got, field), getattr(want, field))
 
 
@@ -198,7 +198,7 @@ def test_cross_products_of_a_window_match_numpy():
             want = [np.mean(((records[a] - ca) * (records[b] - cb))[i * length:(i + 1) * length]
                             [both[i * length:(i + 1) * length]]) for i in range(count)]
             assert got.segment_length == length
-            np.testing.assert_allclose(got.mean_square, want, rtol=1e-10)
+            np.testing.assert_allclose(got.mean_product, want, rtol=1e-10)
 
 
 # --------------------------------------------------------------------------------------------

@@ -264,7 +264,7 @@ def test_segment_statistics_against_numpy_with_mask():
         seg, ok = x[i * 100:(i + 1) * 100], valid[i * 100:(i + 1) * 100]
         assert s.valid_count[i] == ok.sum()
         assert s.mean[i] == pytest.approx(np.mean(seg[ok]), rel=1e-12)
-        assert s.mean_square[i] == pytest.approx(np.mean((seg[ok] - center) ** 2), rel=1e-12)
+        assert s.mean_product[i] == pytest.approx(np.mean((seg[ok] - center) ** 2), rel=1e-12)
     y = 0.5 * x + rng.standard_normal(1003)
     valid_y = rng.random(1003) > 0.2
     c = segments.segment_cross_products(x, y, valid, valid_y, segments=10)
@@ -273,7 +273,7 @@ def test_segment_statistics_against_numpy_with_mask():
     for i in range(10):
         sl = slice(i * 100, (i + 1) * 100)
         ok = both[sl]
-        assert c.mean_square[i] == pytest.approx(np.mean((x[sl][ok] - ca) * (y[sl][ok] - cb)), rel=1e-12)
+        assert c.mean_product[i] == pytest.approx(np.mean((x[sl][ok] - ca) * (y[sl][ok] - cb)), rel=1e-12)
 
 
 def test_time_scales_of_ar1_match_closed_form():
@@ -286,7 +286,7 @@ def test_time_scales_of_ar1_match_closed_form():
     decays, integrals, dofs = [], [], []
     for _ in range(10):
         scales = record_memory.correlation_time_scales(ar1(rng, phi), None, FS)
-        decays.append(scales.envelope_decay_s)
+        decays.append(scales.last_lag_above_inv_e_s)
         integrals.append(scales.integral_time_s)
         dofs.append(scales.degrees_of_freedom_per_sample)
         assert scales.line_count == 0  # a smooth spectrum has no sharp lines
@@ -313,7 +313,7 @@ def test_time_scales_of_oscillator_and_tone():
     rng = np.random.default_rng(12)
     damping, freq = 0.05, 2.0
     theta = 1 / (damping * 2 * math.pi * freq)
-    decays = [record_memory.correlation_time_scales(oscillator(rng, freq, damping), None, FS).envelope_decay_s
+    decays = [record_memory.correlation_time_scales(oscillator(rng, freq, damping), None, FS).last_lag_above_inv_e_s
               for _ in range(10)]
     assert theta - 0.5 / freq - 0.2 <= np.median(decays) <= theta + 0.2
     # a strong tone never decorrelates; its sharp line is left out of the memory time

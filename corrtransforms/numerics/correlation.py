@@ -270,6 +270,51 @@ def resolve_pairs(pairs: PairSpec, n_channels: int) -> Tuple[Tuple[int, int], ..
     return tuple(out)
 
 
+def pairs_by_name(pairs, names: Sequence[str], usable=None, missing: str = "skip") -> Tuple[Tuple[int, int], ...]:
+    """Channel index pairs of a configured pair list, by channel name: the one pair resolution.
+
+    Parameters
+    ----------
+    pairs : None, {"all", "auto"} or sequence of (str, str)
+        None means "auto". "all" and "auto" as in :func:`resolve_pairs`, over the usable channels;
+        a sequence names the channels of each pair, kept in its order, duplicates dropped.
+    names : sequence of str
+        The window's channel names (index order).
+    usable : array_like of bool, optional
+        Channels that may take part; None means all. A listed pair with an unusable channel is
+        left out (the reader has emitted a reject for that channel).
+    missing : {"skip", "raise"}
+        A listed pair naming a channel not in ``names``: left out, or a ValueError.
+
+    Returns
+    -------
+    tuple of (int, int)
+    """
+    names = tuple(names)
+    used = [i for i in range(len(names)) if usable is None or usable[i]]
+    if pairs is None:
+        pairs = "auto"
+    if isinstance(pairs, str):
+        return tuple((used[a], used[b]) for a, b in resolve_pairs(pairs, len(used)))
+    _check_choice("missing", missing, ("skip", "raise"))
+    index = {name: i for i, name in enumerate(names)}
+    out = []
+    for pair in pairs:
+        a, b = pair
+        ia, ib = index.get(a), index.get(b)
+        if ia is None or ib is None:
+            if missing == "raise":
+                absent = a if ia is None else b
+                raise ValueError(f"pair {tuple(pair)!r} names channel {absent!r}, which the window does not "
+                                 f"hold (channels: {', '.join(names)})")
+            continue
+        if usable is not None and not (usable[ia] and usable[ib]):
+            continue
+        if (ia, ib) not in out:
+            out.append((ia, ib))
+    return tuple(out)
+
+
 def _detrend_rows(rows: np.ndarray, n: int, valid_rows: Optional[np.ndarray], counts: np.ndarray,
                   detrend: str):
     """Detrend each row (channel) of ``rows`` in place; returns channel means and variances.

@@ -37,8 +37,11 @@ class CorrelationTimeScales:
     ----------
     integral_time_s : float
         Integral of the auto-correlation coefficient from lag 0 to its first zero crossing.
-    envelope_decay_s : float
-        Lag after which the envelope of the auto-correlation coefficient stays below 1/e.
+    last_lag_above_inv_e_s : float
+        Last lag (searched up to ``n/4``, interpolated) at which ``|rho|`` still reaches ``1/e``:
+        the peaks of an oscillating ``rho`` trace its envelope. Not the indicator
+        ``decay_time_s`` (the Hilbert envelope's first 1/e crossing,
+        :func:`corrtransforms.numerics.timescales.decay_time_s`); was ``envelope_decay_s``.
     memory_s : float
         The larger of the two: the record's memory time.
     line_count : int
@@ -52,16 +55,16 @@ class CorrelationTimeScales:
     """
 
     integral_time_s: float
-    envelope_decay_s: float
+    last_lag_above_inv_e_s: float
     memory_s: float
     line_count: int
     degrees_of_freedom_per_sample: float
     kurtosis: float
 
 
-def correlation_time_scales(values, valid=None, sample_rate_hz: float = 1.0,
+def correlation_time_scales(values, valid=None, fs: float = 1.0,
                             max_memory_s: Optional[float] = None) -> CorrelationTimeScales:
-    """Integral time scale and envelope decay time of a record, from one FFT auto-correlation.
+    """Integral time scale and last lag with ``|rho| >= 1/e`` of a record, from one FFT auto-correlation.
 
     Parameters
     ----------
@@ -69,8 +72,8 @@ def correlation_time_scales(values, valid=None, sample_rate_hz: float = 1.0,
         The record.
     valid : array_like of bool, shape (n,), optional
         Mask of valid samples; gaps are handled by normalising each lag by its weighted pair count.
-    sample_rate_hz : float
-        Sample rate ``fs`` in Hz.
+    fs : float
+        Sample rate in Hz.
     max_memory_s : float, optional
         Longest memory time of interest. When given, lags are only computed, and the envelope
         searched, up to three times it (the reach of the degrees-of-freedom sum), so the
@@ -95,7 +98,7 @@ def correlation_time_scales(values, valid=None, sample_rate_hz: float = 1.0,
     above ``LINE_THRESHOLD`` times the local median over 25 frequency resolutions, with their
     leakage) are replaced by that median, because a deterministic tone never decorrelates
     but its contribution to segment mean squares barely fluctuates. From the line-free spectrum
-    come ``rho(k) = R(k) / R(0)`` and two scales: the envelope decay time, the largest lag
+    come ``rho(k) = R(k) / R(0)`` and two scales: the last lag above 1/e, the largest lag
     (searched up to ``n/4``) at which ``|rho|`` still reaches ``1/e`` -- the peaks of an
     oscillating ``rho`` trace its envelope, so for a mode ``exp(-zeta omega_n tau) cos(...)``
     this is ``1 / (zeta omega_n)`` to within half a period, and for ``exp(-tau / theta)`` it is
@@ -112,7 +115,7 @@ def correlation_time_scales(values, valid=None, sample_rate_hz: float = 1.0,
     Sect. 8.2 (mean square estimates and their random error); section numbers from memory.
     """
     x, m = clean_record(values, valid)
-    result = record_time_scales(x[None, :], m[None, :], sample_rate_hz, max_memory_s)[0]
+    result = record_time_scales(x[None, :], m[None, :], fs, max_memory_s)[0]
     if isinstance(result, ValueError):
         raise result
     return result
@@ -138,7 +141,7 @@ def _lag_limits(n: int, fs: float, max_memory_s: Optional[float]) -> Tuple[int, 
     return _fft.next_fast_len(n + max_lag + 1), max_lag, max(1, min(n // 4, max_lag))
 
 
-def record_time_scales(x: np.ndarray, m: np.ndarray, sample_rate_hz: float,
+def record_time_scales(x: np.ndarray, m: np.ndarray, fs: float,
                          max_memory_s: Optional[float] = None):
     """:func:`correlation_time_scales` of several records at once (rows of ``x``, masks ``m``).
 
@@ -147,7 +150,7 @@ def record_time_scales(x: np.ndarray, m: np.ndarray, sample_rate_hz: float,
     every row has the same mask. Returns, per row, a CorrelationTimeScales or the ValueError
     that :func:`correlation_time_scales` raises for it.
     """
-    fs = float(sample_rate_hz)
+    fs = float(fs)
     c, n = x.shape
     out: list = [None] * c
     counts_valid = m.sum(axis=1)
@@ -244,16 +247,16 @@ def _time_scales_from_correlation(rho_full, rho, search, max_lag, fs, line_count
     above = np.nonzero(magnitude >= 1.0 / math.e)[0]
     last = int(above[-1])
     if last >= search:
-        decay = float(search)
+        last_above = float(search)
     else:
         drop = magnitude[last] - magnitude[last + 1]
-        decay = last + ((magnitude[last] - 1.0 / math.e) / drop if drop > 0 else 0.0)
-    memory_samples = max(integral, decay)
+        last_above = last + ((magnitude[last] - 1.0 / math.e) / drop if drop > 0 else 0.0)
+    memory_samples = max(integral, last_above)
 
     reach = int(min(max_lag, max(1, math.ceil(3 * memory_samples))))
     sum_rho_squared = float(rho_full[0] ** 2 + 2.0 * np.sum(rho_full[1:reach + 1] ** 2))
     per_sample = 1.0 / sum_rho_squared
-    return CorrelationTimeScales(integral / fs, decay / fs, memory_samples / fs, line_count,
+    return CorrelationTimeScales(integral / fs, last_above / fs, memory_samples / fs, line_count,
                                  per_sample, kurtosis)
 
 

@@ -31,7 +31,7 @@ class SegmentStatistics:
         Valid samples (both channels valid, for a pair) in each segment.
     mean : ndarray, shape (M,)
         Segment mean of the record (for a pair: of channel a).
-    mean_square : ndarray, shape (M,)
+    mean_product : ndarray, shape (M,)
         Segment mean square about the record's overall valid mean (for a pair: the segment mean
         cross-product of the two records about their means), NaN for a segment without samples.
     kurtosis : ndarray, shape (M,)
@@ -44,7 +44,7 @@ class SegmentStatistics:
     segment_length: int
     valid_count: np.ndarray
     mean: np.ndarray
-    mean_square: np.ndarray
+    mean_product: np.ndarray
     center: Tuple[float, ...]
     kurtosis: Optional[np.ndarray] = None
 
@@ -100,7 +100,7 @@ def segment_statistics(values, valid=None, segments: int = 20) -> SegmentStatist
     Notes
     -----
     With ``x_bar`` the valid mean of the record and ``S_i`` the valid samples of segment ``i``:
-    ``mean_i = (1/|S_i|) sum_{S_i} x``, ``mean_square_i = (1/|S_i|) sum_{S_i} (x - x_bar)^2``,
+    ``mean_i = (1/|S_i|) sum_{S_i} x``, ``mean_product_i = (1/|S_i|) sum_{S_i} (x - x_bar)^2`` (the mean square),
     the segment estimate of ``R_xx(0)`` of the mean-removed record.
 
     References
@@ -169,7 +169,7 @@ def segment_cross_products(values_a, values_b, valid_a=None, valid_b=None,
     Returns
     -------
     SegmentStatistics
-        ``mean_square`` holds ``(1/|S_i|) sum_{S_i} (a - a_bar)(b - b_bar)``, the segment
+        ``mean_product`` holds ``(1/|S_i|) sum_{S_i} (a - a_bar)(b - b_bar)``, the segment
         estimate of ``R_ab(0)``; ``mean`` holds the segment means of ``a``.
         :class:`SegmentCrossProducts` of a window of these two records.
 

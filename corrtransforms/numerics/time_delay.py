@@ -20,9 +20,8 @@ import scipy.fft
 import scipy.signal
 from scipy.signal.windows import parzen
 
+from corrtransforms.numerics.correlation import WEIGHTINGS
 from corrtransforms.numerics.envelope import correlation_envelope
-
-WEIGHTINGS = ("none", "phat", "scot")
 
 #: quality codes of this module (code -> meaning)
 QUALITY_CODES = {

@@ -12,7 +12,7 @@ pairs keep lags ``0..L``, cross pairs ``-L..L``.
 """
 from __future__ import annotations
 
-from typing import Dict, Iterable, List, Sequence, Tuple
+from typing import Dict, Iterable, List
 
 import numpy as np
 import pyarrow as pa
@@ -20,7 +20,7 @@ import pyarrow as pa
 from corrtransforms.numerics import random_error as err
 from corrtransforms.numerics.bartlett import bartlett_stderr
 from corrtransforms.config import AssetConfig
-from corrtransforms.numerics.correlation import DEFAULT_MIN_PAIRS, channel_spectra, correlate_spectra
+from corrtransforms.numerics.correlation import DEFAULT_MIN_PAIRS, channel_spectra, correlate_spectra, pairs_by_name
 from corrtransforms.numerics.spectra import lag_window_psd, strongest_tone
 from corrtransforms.numerics.timescales import integral_time_scale
 from corrtransforms.records import ModeCorrelation, PairCorrelation, WindowCorrelation, quality_text
@@ -40,23 +40,6 @@ def _usable_channels(spectra, min_pairs: int) -> np.ndarray:
     var = np.nan_to_num(spectra.variance)
     flat = var <= 1e-20 * spectra.channel_mean ** 2
     return (spectra.valid_counts >= max(min_pairs, 2)) & ~flat & (var > 0)
-
-
-def _requested_pairs(pairs, names: Sequence[str], usable: np.ndarray) -> List[Tuple[int, int]]:
-    used = [i for i in range(len(names)) if usable[i]]
-    if pairs == "auto":
-        return [(i, i) for i in used]
-    if pairs == "all":
-        return [(i, j) for k, i in enumerate(used) for j in used[k:]]
-    index = {name: i for i, name in enumerate(names)}
-    out = []
-    for a, b in pairs:
-        ia, ib = index.get(a), index.get(b)
-        if ia is None or ib is None or not usable[ia] or not usable[ib]:
-            continue  # the reader has emitted a reject for the missing or unusable channel
-        if (ia, ib) not in out:
-            out.append((ia, ib))
-    return out
 
 
 def correlate_window(block: WindowBlock, config: AssetConfig,
@@ -113,7 +96,7 @@ def correlate_window(block: WindowBlock, config: AssetConfig,
     spectra = channel_spectra(block.values, fs, cc.max_lag_s, valid=block.valid, detrend=cc.detrend)
     L, n = spectra.max_lag, spectra.n_samples
     usable = _usable_channels(spectra, min_pairs)
-    requested = _requested_pairs(cc.pairs, names, usable)
+    requested = list(pairs_by_name(cc.pairs, names, usable))
     used = [i for i in range(len(names)) if usable[i]]
     channel_codes = {names[i]: tuple(block.channel_quality.get(names[i], ())) for i in used}
 

@@ -25,7 +25,7 @@ with ``k`` tests, so the probability that a stationary subject is flagged stays 
 
 Segments must be roughly independent: each segment is made at least
 :data:`~corrtransforms.numerics.record_memory.INDEPENDENCE_FACTOR` times longer than the record's memory time (the larger of the integral time scale and the
-envelope decay time of its auto-correlation, with sharp spectral lines removed). When the window
+last lag at which ``|rho|`` of its auto-correlation reaches ``1/e``, with sharp spectral lines removed). When the window
 is too short for the configured number of segments, fewer are used, down to
 :data:`MINIMUM_SEGMENTS`; below that the subject gets the quality code
 ``"window_too_short_for_screening"`` and no flag.
@@ -45,6 +45,7 @@ from typing import Dict, Mapping, Optional, Tuple
 
 import numpy as np
 
+from corrtransforms.numerics.correlation import pairs_by_name
 from corrtransforms.numerics.rank_tests import (OutlierTestResult, reverse_arrangements_test, runs_test,
                                                 variance_outlier_test)
 from corrtransforms.numerics.record_memory import (MINIMUM_SEGMENTS, CorrelationTimeScales,
@@ -131,7 +132,7 @@ class WindowScreening:
 
 def _usable(statistics: SegmentStatistics) -> np.ndarray:
     return (statistics.valid_count >= MIN_SEGMENT_COVERAGE * statistics.segment_length) \
-        & np.isfinite(statistics.mean_square)
+        & np.isfinite(statistics.mean_product)
 
 
 def _not_screened(subject, code, memory_s=float("nan")) -> SubjectScreening:
@@ -202,7 +203,7 @@ def _screen_record(x, m, sample_rate_hz: float, segments: int, alpha: float, sub
     usable = _usable(stats)
     if usable.sum() < MINIMUM_SEGMENTS:
         return _not_screened(subject, QUALITY_TOO_SHORT, scales.memory_s)
-    mean_square = stats.mean_square[usable]
+    mean_square = stats.mean_product[usable]
     means = stats.mean[usable]
     # chi-square degrees of freedom of each segment mean square: Gaussian value, lowered by
     # 2 / (kurtosis - 1) for a heavy-tailed record (exact for independent samples); the median
@@ -276,7 +277,7 @@ def _screen_cross_products(stats: SegmentStatistics, sample_rate_hz: float, alph
     usable = _usable(stats)
     if usable.sum() < MINIMUM_SEGMENTS:
         return _not_screened(subject, QUALITY_TOO_SHORT, memory_s)
-    cross = stats.mean_square[usable]
+    cross = stats.mean_product[usable]
     ra = reverse_arrangements_test(cross)
     runs = runs_test(cross)
     p_values = {"reverse_arrangements_cross_product": ra.p_value, "runs_cross_product": runs.p_value}
@@ -290,24 +291,11 @@ def _screen_cross_products(stats: SegmentStatistics, sample_rate_hz: float, alph
 
 
 def _pairs_of(block, pairs) -> Tuple[Tuple[str, ...], Tuple[Tuple[str, str], ...]]:
+    """The channels to screen (in order of first appearance) and the cross pairs of ``pairs``."""
     names = tuple(block.channels)
-    if pairs is None or pairs == "auto":
-        return names, ()
-    if pairs == "all":
-        cross = tuple((names[i], names[j]) for i in range(len(names)) for j in range(i + 1, len(names)))
-        return names, cross
-    channels, cross = [], []
-    for pair in pairs:
-        a, b = pair
-        for c in (a, b):
-            if c not in names:
-                raise ValueError(f"pair {tuple(pair)!r} names channel {c!r}, which the window does not "
-                                 f"hold (channels: {', '.join(names)})")
-            if c not in channels:
-                channels.append(c)
-        if a != b and (a, b) not in cross:
-            cross.append((a, b))
-    return tuple(channels), tuple(cross)
+    resolved = pairs_by_name(pairs, names, missing="raise")
+    channels = tuple(names[i] for i in dict.fromkeys(c for pair in resolved for c in pair))
+    return channels, tuple((names[a], names[b]) for a, b in resolved if a != b)
 
 
 def screen_window(block, screening_config, pairs=None) -> WindowScreening:
