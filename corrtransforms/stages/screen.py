@@ -338,69 +338,91 @@ def screen_window(block, screening_config, pairs=None) -> WindowScreening:
     alpha = float(screening_config.alpha)
     channels, cross = _pairs_of(block, pairs)
     index = {name: i for i, name in enumerate(block.channels)}
-    fs = float(block.sample_rate_hz)
-    results: Dict[str, SubjectScreening] = {}
-    # every channel cleaned once, as contiguous rows; the time scales of all channels at once
+    records, valid_rows = _clean_rows(block)
+    results = _screen_channels(block, records, valid_rows, channels, index, screening_config.segments, alpha)
+    cross_products = SegmentCrossProducts(records, valid_rows)
+    for a, b in cross:
+        results[f"{a}:{b}"] = _screen_cross_pair(block, cross_products, index, a, b, results[a], results[b],
+                                                 screening_config.segments, alpha)
+    return _window_result(block, results, screening_config.action, alpha)
+
+
+def _clean_rows(block):
+    """Every channel of the window cleaned once, as contiguous rows: ``(records, valid)`` with
+    ``records`` 0 where a sample is invalid or not finite."""
     values_rows = np.ascontiguousarray(np.asarray(block.values, dtype=float).T)
     valid_rows = np.ascontiguousarray(np.asarray(block.valid, dtype=bool).T)
     finite = np.isfinite(values_rows)
     if valid_rows.all() and finite.all():
-        records = values_rows
-    else:
-        valid_rows = valid_rows & finite  # a new array: one channel's transpose is a view of the block
-        records = np.where(valid_rows, values_rows, 0.0)
+        return values_rows, valid_rows
+    valid_rows = valid_rows & finite  # a new array: one channel's transpose is a view of the block
+    return np.where(valid_rows, values_rows, 0.0), valid_rows
+
+
+def _screen_channels(block, records, valid_rows, channels, index, segments: int,
+                     alpha: float) -> Dict[str, SubjectScreening]:
+    """:func:`screen_channel` of every channel: the time scales of all channels in one batch, the
+    segment statistics of the complete channels batched by segment count."""
+    fs = float(block.sample_rate_hz)
     eligible = [name for name in channels if _enough_to_screen(valid_rows[index[name]])]
     rows = [index[name] for name in eligible]
     limit = screening_memory_limit_s(block.n_samples / fs)
     scales = dict(zip(eligible, record_time_scales(records[rows], valid_rows[rows], fs, limit))) if rows else {}
     complete = valid_rows.all(axis=1)
-    # segment statistics of the complete channels, batched by segment count
     by_count: Dict[int, list] = {}
     for name, found in scales.items():
         if not isinstance(found, ValueError) and complete[index[name]]:
-            count = segments_for_record(block.n_samples / fs, found.memory_s, screening_config.segments)
+            count = segments_for_record(block.n_samples / fs, found.memory_s, segments)
             if count:
                 by_count.setdefault(count, []).append(name)
     segment_stats: Dict[str, SegmentStatistics] = {}
     for count, names in by_count.items():
         members = [index[nm] for nm in names]
-        stats_rows = segment_statistics_of_rows(records[members], valid_rows[members], count)
-        segment_stats.update(zip(names, stats_rows))
+        segment_stats.update(zip(names, segment_statistics_of_rows(records[members], valid_rows[members], count)))
+    results: Dict[str, SubjectScreening] = {}
     for name in channels:
         i = index[name]
         found = scales.get(name)
         if found is None or isinstance(found, ValueError):
             results[name] = _not_screened(name, QUALITY_NOT_SCREENED)
         else:
-            results[name] = _screen_record(records[i], valid_rows[i], fs, screening_config.segments, alpha,
-                                           name, found, segment_stats.get(name))
-    cross_products = SegmentCrossProducts(records, valid_rows)
-    for a, b in cross:
-        subject = f"{a}:{b}"
-        ra, rb = results[a], results[b]
-        memory = float(np.nanmax([ra.memory_s, rb.memory_s])) if not (
-            math.isnan(ra.memory_s) and math.isnan(rb.memory_s)) else float("nan")
-        if ra.segments == 0 or rb.segments == 0:
-            code = QUALITY_NOT_SCREENED if QUALITY_NOT_SCREENED in ra.quality + rb.quality else QUALITY_TOO_SHORT
-            joint = _not_screened(subject, code, memory)
-        else:
-            count = segments_for_record(block.n_samples / fs, memory, screening_config.segments)
-            if count == 0:
-                joint = _not_screened(subject, QUALITY_TOO_SHORT, memory)
-            else:
-                stats = cross_products.statistics(index[a], index[b], count)
-                joint = _screen_cross_products(stats, fs, alpha, subject, memory)
-        flagged = joint.flagged or ra.flagged or rb.flagged
-        quality = tuple(c for c in joint.quality if c != QUALITY_NONSTATIONARY)
-        if flagged:
-            quality = quality + (QUALITY_NONSTATIONARY,)
-        results[subject] = dataclasses.replace(joint, flagged=flagged, quality=quality)
+            results[name] = _screen_record(records[i], valid_rows[i], fs, segments, alpha, name, found,
+                                           segment_stats.get(name))
+    return results
 
+
+def _screen_cross_pair(block, cross_products: SegmentCrossProducts, index, a: str, b: str,
+                       ra: SubjectScreening, rb: SubjectScreening, segments: int, alpha: float) -> SubjectScreening:
+    """The joint test of pair ``a:b`` with the flags of its two channels propagated."""
+    fs = float(block.sample_rate_hz)
+    subject = f"{a}:{b}"
+    memory = float(np.nanmax([ra.memory_s, rb.memory_s])) if not (
+        math.isnan(ra.memory_s) and math.isnan(rb.memory_s)) else float("nan")
+    if ra.segments == 0 or rb.segments == 0:
+        code = QUALITY_NOT_SCREENED if QUALITY_NOT_SCREENED in ra.quality + rb.quality else QUALITY_TOO_SHORT
+        joint = _not_screened(subject, code, memory)
+    else:
+        count = segments_for_record(block.n_samples / fs, memory, segments)
+        if count == 0:
+            joint = _not_screened(subject, QUALITY_TOO_SHORT, memory)
+        else:
+            stats = cross_products.statistics(index[a], index[b], count)
+            joint = _screen_cross_products(stats, fs, alpha, subject, memory)
+    flagged = joint.flagged or ra.flagged or rb.flagged
+    quality = tuple(c for c in joint.quality if c != QUALITY_NONSTATIONARY)
+    if flagged:
+        quality = quality + (QUALITY_NONSTATIONARY,)
+    return dataclasses.replace(joint, flagged=flagged, quality=quality)
+
+
+def _window_result(block, results: Dict[str, SubjectScreening], action: str, alpha: float) -> WindowScreening:
+    """The window's ``stationarity_p`` rows, quality codes, and its reject when excluded."""
+    start = int(block.window_start_us)
     rows = tuple(IndicatorRow(start, s, INDICATOR, float(r.p_value), float("nan"), "", quality_text(r.quality))
                  for s, r in results.items())
     subject_quality = {s: tuple(r.quality) for s, r in results.items()}
     flagged_subjects = [s for s, r in results.items() if r.flagged]
-    excluded = screening_config.action == "exclude" and bool(flagged_subjects)
+    excluded = action == "exclude" and bool(flagged_subjects)
     rejects: Tuple[Reject, ...] = ()
     if excluded:
         detail = "; ".join(
@@ -411,4 +433,3 @@ def screen_window(block, screening_config, pairs=None) -> WindowScreening:
                           detail=f"alpha={alpha:g}; flagged {detail}",
                           asset=block.asset, window_start_us=start),)
     return WindowScreening(start, results, rows, subject_quality, excluded, rejects)
-
