@@ -142,24 +142,59 @@ def _lag_limits(n: int, fs: float, max_memory_s: Optional[float]) -> Tuple[int, 
 
 
 def record_time_scales(x: np.ndarray, m: np.ndarray, fs: float,
-                         max_memory_s: Optional[float] = None):
+                       max_memory_s: Optional[float] = None):
     """:func:`correlation_time_scales` of several records at once (rows of ``x``, masks ``m``).
 
-    ``x`` holds the records with 0 at invalid samples (as :func:`corrtransforms.numerics.segments.clean_record` returns them). The
-    transforms of all rows are done in one call each, and the taper's own transform once when
-    every row has the same mask. Returns, per row, a CorrelationTimeScales or the ValueError
-    that :func:`correlation_time_scales` raises for it.
+    ``x`` holds the records with 0 at invalid samples (as
+    :func:`corrtransforms.numerics.segments.clean_record` returns them). The transforms of all
+    rows are done in one call each, and the taper's own transform once when every row has the
+    same mask. Returns, per row, a CorrelationTimeScales or the ValueError that
+    :func:`correlation_time_scales` raises for it.
     """
     fs = float(fs)
+    n = x.shape[1]
+    out: list = [None] * x.shape[0]
+    rows, deviation, masks, kurtoses = _varying_rows(x, m, out)
+    if not rows:
+        return out
+    same_mask = bool(np.all(masks == masks[:1]))
+    hann = np.hanning(n + 2)[1:-1]
+    taper = hann * (masks[:1] if same_mask else masks)
+    size, max_lag, search = _lag_limits(n, fs, max_memory_s)
+    deviation *= taper
+    spectrum = _fft.rfft(deviation, size, axis=-1, workers=transform_threads())
+    power = spectrum.real ** 2 + spectrum.imag ** 2
+    if same_mask and masks[0].all():
+        counts = _complete_taper_counts(n, size, max_lag)  # the same for every complete record
+    else:
+        counts = _taper_counts(taper, size, max_lag)
+    lines, clean_rows = _line_free_power(power, size / n)
+    # rows without a line: the clean spectrum is the spectrum itself (no second transform)
+    with_lines = [k for k, _ in clean_rows]
+    stacked = np.concatenate([power, np.stack([row for _, row in clean_rows])]) if clean_rows else power
+    both = _fft.irfft(stacked, size, axis=-1, workers=transform_threads())[:, :max_lag + 1]
+    full = both[:len(rows)] / counts
+    clean_correlation = full.copy()
+    if with_lines:
+        clean_correlation[with_lines] = both[len(rows):] / (counts if counts.shape[0] == 1 else counts[with_lines])
+    for k, i in enumerate(rows):
+        out[i] = _time_scales_from_correlation(full[k] / full[k, 0],
+                                               clean_correlation[k] / clean_correlation[k, 0],
+                                               search, max_lag, fs, int(lines[k].sum()), kurtoses[k])
+    return out
+
+
+def _varying_rows(x: np.ndarray, m: np.ndarray, out: list):
+    """Rows with at least 8 valid samples that vary: their indices, mean-removed records (0 at
+    invalid samples), masks and kurtoses; ``out`` gets the ValueError of every other row."""
     c, n = x.shape
-    out: list = [None] * c
     counts_valid = m.sum(axis=1)
     ok = np.flatnonzero((counts_valid >= 8) if n >= 8 else np.zeros(c, bool))
     for i in range(c):
         if i not in ok:
             out[i] = ValueError("a record needs at least 8 valid samples")
     if not len(ok):
-        return out
+        return [], None, None, []
     # moments of all rows at once (x is 0 at invalid samples)
     count = counts_valid[ok].astype(float)
     centers = x[ok].sum(axis=1) / count
@@ -178,51 +213,34 @@ def record_time_scales(x: np.ndarray, m: np.ndarray, fs: float,
         else:
             keep.append(k)
     if not keep:
-        return out
+        return [], None, None, []
     rows = [int(ok[k]) for k in keep]
     kurtoses = [float(fourth_all[k] / second_all[k] ** 2) for k in keep]
     if len(keep) < len(ok):
         deviation, masks = deviation[keep], masks[keep]
-    same_mask = bool(np.all(masks == masks[:1]))
-    hann = np.hanning(n + 2)[1:-1]
-    taper = hann * (masks[:1] if same_mask else masks)
-    size, max_lag, search = _lag_limits(n, fs, max_memory_s)
-    deviation *= taper
-    spectrum = _fft.rfft(deviation, size, axis=-1, workers=transform_threads())
-    power = spectrum.real ** 2 + spectrum.imag ** 2
-    if same_mask and masks[0].all():
-        counts = _complete_taper_counts(n, size, max_lag)  # the same for every complete record
-    else:
-        counts = _taper_counts(taper, size, max_lag)
+    return rows, deviation, masks, kurtoses
 
-    # sharp spectral lines: far above the local median (the spectrum is mirrored at zero and
-    # Nyquist frequency, so the median near the ends sees real neighbours); widen by the Hann
-    # main lobe
-    bins_per_resolution = size / n
+
+def _line_free_power(power: np.ndarray, bins_per_resolution: float):
+    """Sharp spectral lines of each row of ``power`` and, for rows with lines, the spectrum with
+    them replaced by their local median: ``(lines, [(row, clean power), ...])``.
+
+    The lines are ordinates far above the local median over 25 frequency resolutions (the
+    spectrum mirrored at zero and Nyquist frequency, so the median near the ends sees real
+    neighbours), widened by the Hann main lobe.
+    """
     median_width = int(2 * round(12 * bins_per_resolution) + 1)
     reach = int(math.ceil(3 * bins_per_resolution))
     lines = np.zeros(power.shape, dtype=bool)
     clean_rows = []
-    for k in range(len(rows)):
+    for k in range(power.shape[0]):
         found, local_at_lines = spectral_lines(power[k], median_width, LINE_THRESHOLD, reach)
         lines[k] = found
         if found.any():
             clean = power[k].copy()
             clean[found] = local_at_lines
             clean_rows.append((k, clean))
-    # rows without a line: the clean spectrum is the spectrum itself (no second transform)
-    with_lines = [k for k, _ in clean_rows]
-    stacked = np.concatenate([power, np.stack([row for _, row in clean_rows])]) if clean_rows else power
-    both = _fft.irfft(stacked, size, axis=-1, workers=transform_threads())[:, :max_lag + 1]
-    full = both[:len(rows)] / counts
-    clean_correlation = full.copy()
-    if with_lines:
-        clean_correlation[with_lines] = both[len(rows):] / (counts if counts.shape[0] == 1 else counts[with_lines])
-    for k, i in enumerate(rows):
-        out[i] = _time_scales_from_correlation(full[k] / full[k, 0],
-                                               clean_correlation[k] / clean_correlation[k, 0],
-                                               search, max_lag, fs, int(lines[k].sum()), kurtoses[k])
-    return out
+    return lines, clean_rows
 
 
 def _taper_counts(taper: np.ndarray, size: int, max_lag: int) -> np.ndarray:

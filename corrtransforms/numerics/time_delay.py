@@ -441,33 +441,58 @@ def _lag_variances(rho_clean: np.ndarray, peak_index: np.ndarray, rows, lag_step
             else:
                 gamma2 = min(float(peak_coef[row]) ** 2, 0.999)
                 product[line] = mag_ab[line] ** 2 / gamma2
-        f = scipy.fft.rfftfreq(n_fft, lag_step_s)
-        w2 = (2 * np.pi * f) ** 2
-        w2[1:(n_fft + 1) // 2] *= 2.0
-        df = 1.0 / (n_fft * lag_step_s)
-        excess = mag_ab ** 2  # then, in place: clip(product - |S_ab|^2, 0, None)
-        np.subtract(product, excess, out=excess)
-        np.clip(excess, 0, None, out=excess)
-        if all(weightings[row] == "none" for row, _ in members):
-            # psi = 1: w2 * psi**2 and w2 * psi are w2 exactly
-            excess *= w2
-            numerator = np.sum(excess, axis=1) * df
-            curvature = np.sum(w2 * mag_ab, axis=1) * df
-        else:
-            tiny = 1e-9 * (mag_ab.max(axis=1) + 1e-300)
-            psi = np.ones_like(mag_ab)
-            kind = np.array([weightings[row] for row, _ in members])
-            phat, scot = kind == "phat", kind == "scot"
-            if phat.any():
-                psi[phat] = 1.0 / np.maximum(mag_ab[phat], tiny[phat, None])
-            if scot.any():
-                psi[scot] = 1.0 / np.maximum(np.sqrt(product[scot]), tiny[scot, None])
-            numerator = np.sum(w2 * psi ** 2 * excess, axis=1) * df
-            curvature = np.sum(w2 * psi * mag_ab, axis=1) * df
+        numerator, curvature = _variance_sums(mag_ab, product, [weightings[row] for row, _ in members],
+                                              n_fft, lag_step_s)
         for line, (row, _) in enumerate(members):
             if curvature[line] > 0:
                 variance[row] = float(numerator[line] / (record_s[row] * curvature[line] ** 2))
     return variance
+
+
+def _variance_sums(mag_ab: np.ndarray, product: np.ndarray, kinds, n_fft: int, lag_step_s: float):
+    """Numerator ``int w^2 psi^2 [S_aa S_bb - |S_ab|^2] df`` and curvature ``int w^2 psi |S_ab| df``
+    of :func:`lag_variance` for rows of one transform length (``kinds``: each row's weighting)."""
+    f = scipy.fft.rfftfreq(n_fft, lag_step_s)
+    w2 = (2 * np.pi * f) ** 2
+    w2[1:(n_fft + 1) // 2] *= 2.0
+    df = 1.0 / (n_fft * lag_step_s)
+    excess = mag_ab ** 2  # then, in place: clip(product - |S_ab|^2, 0, None)
+    np.subtract(product, excess, out=excess)
+    np.clip(excess, 0, None, out=excess)
+    if all(kind == "none" for kind in kinds):
+        # psi = 1: w2 * psi**2 and w2 * psi are w2 exactly
+        excess *= w2
+        return np.sum(excess, axis=1) * df, np.sum(w2 * mag_ab, axis=1) * df
+    tiny = 1e-9 * (mag_ab.max(axis=1) + 1e-300)
+    psi = np.ones_like(mag_ab)
+    kind = np.array(kinds)
+    phat, scot = kind == "phat", kind == "scot"
+    if phat.any():
+        psi[phat] = 1.0 / np.maximum(mag_ab[phat], tiny[phat, None])
+    if scot.any():
+        psi[scot] = 1.0 / np.maximum(np.sqrt(product[scot]), tiny[scot, None])
+    return np.sum(w2 * psi ** 2 * excess, axis=1) * df, np.sum(w2 * psi * mag_ab, axis=1) * df
+
+
+def _lag_rows(coefficient, stderr, record_s, weighted_coefficient, weighting: str, auto_a, auto_b):
+    """The inputs of :func:`estimate_lags` checked and as arrays: ``(rho, stderr, weighted rows,
+    located, autos_a, autos_b, record_s)``, ``located`` the rows whose peak is searched."""
+    rho = np.asarray(coefficient, dtype=float)
+    s = np.asarray(stderr, dtype=float)
+    if rho.ndim != 2 or rho.shape != s.shape:
+        raise ValueError(f"coefficient {rho.shape} and stderr {s.shape} must be 2-d of equal shape")
+    if weighting not in WEIGHTINGS:
+        raise ValueError(f"weighting={weighting!r}: must be one of " + ", ".join(WEIGHTINGS))
+    count, n = rho.shape
+    weighted = _row_arrays(weighted_coefficient, count, n, "weighted_coefficient")
+    if any(w is not None for w in weighted):
+        located = np.array([rho[i] if w is None else w for i, w in enumerate(weighted)]).reshape(rho.shape)
+    else:
+        located = rho
+    autos_a = _row_arrays(auto_a, count, None, "auto_a", clean=True)
+    autos_b = _row_arrays(auto_b, count, None, "auto_b", clean=True)
+    record = np.broadcast_to(np.asarray(record_s, dtype=float), (count,))
+    return rho, s, weighted, located, autos_a, autos_b, record
 
 
 def estimate_lags(coefficient, stderr, first_lag_s: float, lag_step_s: float, record_s,
@@ -500,24 +525,22 @@ def estimate_lags(coefficient, stderr, first_lag_s: float, lag_step_s: float, re
     Returns
     -------
     list of LagEstimate
-        One per row, in row order; each equals ``estimate_lag`` of that row's pair (the same
-        arithmetic: stacked matrix-vector products, row-wise transforms and sums).
+        One per row, in row order; a row does not depend on the others (stacked matrix-vector
+        products, row-wise transforms and sums). A row holding an infinite value gets NaN and
+        ``nonfinite_correlation``.
 
     Raises
     ------
     ValueError
-        Malformed input (shapes, weighting) or a row whose numbers cannot be located (a
-        non-finite peak position or envelope); callers that isolate failures per pair fall back
-        to :func:`estimate_lag` pair by pair. A row holding an infinite value gets NaN and
-        ``nonfinite_correlation``.
+        Malformed input (shapes, weighting) or a non-finite peak position or envelope; callers
+        that isolate failures per pair call :func:`estimate_lag` pair by pair.
 
     Notes
     -----
-    The formulas are those of :func:`estimate_lag`, :func:`refine_peak`, :func:`lag_variance`
-    and :func:`envelope_width_s`. For a peak sample ``k`` at least ``INTERPOLATION_HALF_WIDTH``
-    lags from both ends, the fine-grid kernel ``sinc(k + t_m - j)`` depends on ``j - k`` and the
-    grid offset ``t_m`` only (``k + t_m`` is exact for ``t_m`` a multiple of 1/32), so one
-    65 x 129 kernel serves every row.
+    The formulas of :func:`estimate_lag`, :func:`refine_peak`, :func:`lag_variance` and
+    :func:`envelope_width_s`. For a peak sample ``k`` at least ``INTERPOLATION_HALF_WIDTH`` lags
+    from both ends, the kernel ``sinc(k + t_m - j)`` depends on ``j - k`` and the grid offset
+    ``t_m`` only (exact multiples of 1/32), so one 65 x 129 kernel serves every row.
 
     References
     ----------
@@ -525,22 +548,10 @@ def estimate_lags(coefficient, stderr, first_lag_s: float, lag_step_s: float, re
        time delay", IEEE Trans. Acoust., Speech, Signal Process. 24(4), 320-327, 1976.
     .. [2] J. S. Bendat and A. G. Piersol, *Random Data*, 4th ed., Wiley, 2010, Sec. 5.1.
     """
-    rho = np.asarray(coefficient, dtype=float)
-    s = np.asarray(stderr, dtype=float)
-    if rho.ndim != 2 or rho.shape != s.shape:
-        raise ValueError(f"coefficient {rho.shape} and stderr {s.shape} must be 2-d of equal shape")
-    if weighting not in WEIGHTINGS:
-        raise ValueError(f"weighting={weighting!r}: must be one of " + ", ".join(WEIGHTINGS))
-    count, n = rho.shape
-    weighted = _row_arrays(weighted_coefficient, count, n, "weighted_coefficient")
+    rho, s, weighted, located, autos_a, autos_b, record = _lag_rows(coefficient, stderr, record_s,
+                                                                    weighted_coefficient, weighting, auto_a, auto_b)
     weightings = [("none" if w is None else weighting) for w in weighted]
-    if any(w is not None for w in weighted):
-        located = np.array([rho[i] if w is None else w for i, w in enumerate(weighted)]).reshape(rho.shape)
-    else:
-        located = rho
-    autos_a = _row_arrays(auto_a, count, None, "auto_a", clean=True)
-    autos_b = _row_arrays(auto_b, count, None, "auto_b", clean=True)
-    record = np.broadcast_to(np.asarray(record_s, dtype=float), (count,))
+    count, n = rho.shape
     nan = float("nan")
     if count == 0:
         return []
@@ -551,16 +562,25 @@ def estimate_lags(coefficient, stderr, first_lag_s: float, lag_step_s: float, re
         return [LagEstimate(nan, nan, nan, nan, nan, ("too_few_lags",))] * count
     infinite = np.isinf(located).any(axis=1) | np.isinf(rho).any(axis=1)
     if infinite.any():  # no peak can be located: NaN and the code, the other rows as usual
-        finite_rows = np.flatnonzero(~infinite)
         out = [LagEstimate(nan, nan, nan, nan, nan, ("nonfinite_correlation",))] * count
-        if len(finite_rows):
-            found = estimate_lags(rho[finite_rows], s[finite_rows], first_lag_s, lag_step_s, record[finite_rows],
-                                  weighted_coefficient=[weighted[i] for i in finite_rows], weighting=weighting,
-                                  auto_a=[autos_a[i] for i in finite_rows], auto_b=[autos_b[i] for i in finite_rows],
-                                  max_lag_s=max_lag_s, peak_z=peak_z)
-            for i, estimate in zip(finite_rows, found):
-                out[i] = estimate
+        finite_rows = np.flatnonzero(~infinite)
+        found = estimate_lags(rho[finite_rows], s[finite_rows], first_lag_s, lag_step_s, record[finite_rows],
+                              weighted_coefficient=[weighted[i] for i in finite_rows], weighting=weighting,
+                              auto_a=[autos_a[i] for i in finite_rows], auto_b=[autos_b[i] for i in finite_rows],
+                              max_lag_s=max_lag_s, peak_z=peak_z)
+        for i, estimate in zip(finite_rows, found):
+            out[i] = estimate
         return out
+    return _finite_row_estimates(rho, s, located, idx, record, autos_a, autos_b, weightings, first_lag_s,
+                                 lag_step_s, peak_z)
+
+
+def _finite_row_estimates(rho, s, located, idx, record, autos_a, autos_b, weightings, first_lag_s: float,
+                          lag_step_s: float, peak_z: float) -> List[LagEstimate]:
+    """The steps of :func:`estimate_lags` on rows without infinite values: peak sample in the
+    search range ``idx``, refined position, peak coefficient and its stderr, lag variance, width."""
+    count, n = rho.shape
+    nan = float("nan")
     nonfinite = ~(np.all(np.isfinite(located[:, idx]), axis=1) & np.all(np.isfinite(rho[:, idx]), axis=1))
     located_clean = np.nan_to_num(located)
     k = idx[np.argmax(np.abs(located_clean[:, idx]), axis=1)]
