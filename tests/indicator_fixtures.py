@@ -13,7 +13,7 @@ import numpy as np
 import scipy.linalg
 
 from corrtransforms.numerics.correlation import correlate_block
-from corrtransforms.numerics.random_error import bartlett_stderr
+from corrtransforms.numerics.bartlett import bartlett_stderr
 
 
 def sdof_correlation(lags_s, freq_hz, damping):

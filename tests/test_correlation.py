@@ -238,3 +238,17 @@ def test_input_arrays_are_not_modified():
     before = x.copy()
     correlate_block(x, 1.0, 10, detrend="linear")
     np.testing.assert_array_equal(x, before)
+
+
+def test_pairs_by_name_resolves_strings_lists_usable_and_missing_channels():
+    from corrtransforms.numerics.correlation import pairs_by_name
+    names = ("a", "b", "c")
+    # "all": every (i, j) with i <= j over the usable channels, row-major (as resolve_pairs)
+    assert pairs_by_name("all", names) == resolve_pairs("all", 3)
+    assert pairs_by_name("all", names, usable=[True, False, True]) == ((0, 0), (0, 2), (2, 2))
+    assert pairs_by_name(None, names) == pairs_by_name("auto", names) == ((0, 0), (1, 1), (2, 2))
+    listed = [("c", "a"), ("a", "x"), ("c", "a"), ("b", "b")]
+    assert pairs_by_name(listed, names) == ((2, 0), (1, 1))  # order kept, duplicate and missing dropped
+    assert pairs_by_name(listed, names, usable=[True, False, True]) == ((2, 0),)
+    with pytest.raises(ValueError, match="does not hold"):
+        pairs_by_name(listed, names, missing="raise")

@@ -105,7 +105,7 @@ def test_correlated_meat_equals_the_dense_bartlett_quadratic_form(start, count):
     #                   - 2 rho_j rho_v rho_{v-i} + 2 rho_i rho_j rho_v^2, summed here with
     # numpy.correlate over the even extension, as a dense matrix
     from corrtransforms.numerics.modal_fit import _correlated_meat
-    from corrtransforms.numerics.timescales import MAX_COVARIANCE_LAGS
+    from corrtransforms.numerics.bartlett import MAX_COVARIANCE_LAGS
     rng = np.random.default_rng(4)
     L = 3000
     model = decaying_cosine(np.arange(L + 1) / FS, 1.0, 2.0, 0.01, -0.01)

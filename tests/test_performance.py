@@ -22,6 +22,8 @@ import pyarrow.parquet as pq
 import pytest
 import scipy.signal
 
+from corrtransforms.numerics import spectra
+from corrtransforms.numerics import record_memory, segments
 from corrtransforms.stages import screen as st
 from corrtransforms.config import ScreeningConfig
 from corrtransforms.records import WindowBlock
@@ -65,7 +67,7 @@ def test_batched_screening_equals_screening_each_subject(gaps):
         for j in range(i + 1, len(names)):
             a, b = names[i], names[j]
             memory = max(alone[a].memory_s, alone[b].memory_s)
-            count = st.segments_for_record(block.n_samples / FS, memory, 20)
+            count = record_memory.segments_for_record(block.n_samples / FS, memory, 20)
             want = st.screen_pair(block.values[:, i], block.valid[:, i], block.values[:, j], block.valid[:, j],
                                   FS, count, 0.05, f"{a}:{b}", memory)
             got = window.subjects[f"{a}:{b}"]
@@ -79,9 +81,9 @@ def test_time_scales_of_several_records_equal_one_at_a_time():
     rng = np.random.default_rng(5)
     block = _block(rng, gaps=True)
     records = np.where(block.valid, block.values, 0.0).T
-    batch = st._time_scales_of_rows(np.ascontiguousarray(records), np.ascontiguousarray(block.valid.T), FS)
+    batch = record_memory.record_time_scales(np.ascontiguousarray(records), np.ascontiguousarray(block.valid.T), FS)
     for i in range(records.shape[0]):
-        one = st.correlation_time_scales(block.values[:, i], block.valid[:, i], FS)
+        one = record_memory.correlation_time_scales(block.values[:, i], block.valid[:, i], FS)
         assert dataclasses.astuple(batch[i]) == pytest.approx(dataclasses.astuple(one), rel=1e-12)
 
 
@@ -113,8 +115,8 @@ def test_line_finder_equals_the_full_running_median(kind):
     if kind == "zeros":
         power[: m // 2] = 0.0
     for width, reach in ((25, 3), (49, 6), (7, 0)):
-        got_lines, got_local = st.spectral_lines(power, width, st.LINE_THRESHOLD, reach)
-        want_lines, want_local = _full_median_lines(power, width, st.LINE_THRESHOLD, reach)
+        got_lines, got_local = spectra.spectral_lines(power, width, spectra.LINE_THRESHOLD, reach)
+        want_lines, want_local = _full_median_lines(power, width, spectra.LINE_THRESHOLD, reach)
         np.testing.assert_array_equal(got_lines, want_lines)
         np.testing.assert_array_equal(got_local, want_local)
     if kind in ("tones", "edge_tone"):
@@ -126,14 +128,14 @@ def test_memory_limit_keeps_time_scales_below_it_and_marks_longer_memory():
     # resolution differs, so to a tolerance); above: memory_s beyond the limit, so not screened
     rng = np.random.default_rng(21)
     n, fs = 30000, 50.0
-    limit = st.screening_memory_limit_s(n / fs)  # 6 s for a 10-minute record
+    limit = record_memory.screening_memory_limit_s(n / fs)  # 6 s for a 10-minute record
     for phi, long_memory in ((0.9, False), (0.98, False), (0.9995, True)):
         x = scipy.signal.lfilter([1.0], [1.0, -phi], rng.standard_normal(n))
-        full = st.correlation_time_scales(x, None, fs)
-        capped = st.correlation_time_scales(x, None, fs, limit)
+        full = record_memory.correlation_time_scales(x, None, fs)
+        capped = record_memory.correlation_time_scales(x, None, fs, limit)
         if long_memory:
             assert full.memory_s > limit and capped.memory_s > limit
-            assert st.segments_for_record(n / fs, capped.memory_s, 20) == 0
+            assert record_memory.segments_for_record(n / fs, capped.memory_s, 20) == 0
         else:
             assert full.memory_s < limit
             assert capped.memory_s == pytest.approx(full.memory_s, rel=1e-6)
@@ -145,34 +147,58 @@ def test_memory_limit_keeps_time_scales_below_it_and_marks_longer_memory():
     wn, zeta = 2 * np.pi * 2.0, 0.005
     system = scipy.signal.lti([wn ** 2], [1, 2 * zeta * wn, wn ** 2])
     _, y, _ = scipy.signal.lsim(system, rng.standard_normal(n), t)
-    assert st.correlation_time_scales(y, None, fs, limit).memory_s > limit
+    assert record_memory.correlation_time_scales(y, None, fs, limit).memory_s > limit
 
 
-def test_segment_statistics_of_complete_rows_equal_the_single_record_function():
+def test_segment_statistics_of_rows_match_numpy_and_do_not_depend_on_the_batch():
     block = _block(np.random.default_rng(9))
-    records = np.ascontiguousarray(block.values.T)
-    for segments in (10, 20, 17):
-        batch = st._segment_statistics_of_complete_rows(records, segments)
-        for row, got in zip(records, batch):
-            want = st.segment_statistics(row, None, segments)
-            assert got.segment_length == want.segment_length and got.center == pytest.approx(want.center, rel=1e-15)
-            np.testing.assert_array_equal(got.valid_count, want.valid_count)
-            for field in ("mean", "mean_square", "kurtosis"):
-                np.testing.assert_allclose(getattr(got, field), getattr(want, field), rtol=1e-12)
+    block.valid[1000:1300, 1] = False  # one gappy channel beside complete ones
+    records = np.ascontiguousarray(np.where(block.valid, block.values, 0.0).T)
+    valid = np.ascontiguousarray(block.valid.T)
+    complete = valid.all(axis=1)
+    assert complete.any() and not complete.all()  # both branches of the batched function
+    for count in (10, 20, 17):
+        length = records.shape[1] // count
+        mixed = segments.segment_statistics_of_rows(records, valid, count)
+        whole = segments.segment_statistics_of_rows(records[complete], valid[complete], count)
+        for row, got in enumerate(mixed):
+            x, ok = records[row], valid[row]
+            center = x[ok].mean()
+            # reference: numpy per segment (Bendat & Piersol Sect. 10.3: mean square per interval)
+            for i in range(count):
+                seg = slice(i * length, (i + 1) * length)
+                dev = x[seg][ok[seg]] - center
+                assert got.mean_product[i] == pytest.approx(np.mean(dev ** 2), rel=1e-12)
+                assert got.kurtosis[i] == pytest.approx(np.mean(dev ** 4) / np.mean(dev ** 2) ** 2, rel=1e-12)
+                assert got.mean[i] == pytest.approx(np.mean(x[seg][ok[seg]]), rel=1e-12, abs=1e-12)
+            alone = segments.segment_statistics(block.values[:, row], block.valid[:, row], count)
+            for field in ("valid_count", "mean", "mean_product", "kurtosis"):  # a batch of one: the same bits
+                np.testing.assert_array_equal(getattr(got, field), getattr(alone, field))
+        for got, want in zip(whole, [m for m, c in zip(mixed, complete) if c]):
+            for field in ("valid_count", "mean", "mean_product", "kurtosis"):  # complete branch == masked branch
+                np.testing.assert_array_equal(getattr(got, field), getattr(want, field))
 
 
-def test_cross_products_of_complete_records_equal_the_single_pair_function():
+def test_cross_products_of_a_window_match_numpy():
     rng = np.random.default_rng(8)
     block = _block(rng)
-    records = np.ascontiguousarray(block.values.T)
-    batched = st._CompleteCrossProducts(records, np.ones(records.shape[0], bool))
-    for segments in (10, 17, 20):
-        got = batched.statistics(1, 3, segments)
-        want = st.segment_cross_products(block.values[:, 1], block.values[:, 3], segments=segments)
-        assert got.segment_length == want.segment_length
-        np.testing.assert_array_equal(got.valid_count, want.valid_count)
-        np.testing.assert_allclose(got.mean_square, want.mean_square, rtol=1e-10)
-        np.testing.assert_allclose(got.mean, want.mean, rtol=1e-10, atol=1e-12)
+    block.valid[1000:1300, 1] = False  # one gappy channel beside complete ones
+    records = np.ascontiguousarray(np.where(block.valid, block.values, 0.0).T)
+    valid = np.ascontiguousarray(block.valid.T)
+    batched = segments.SegmentCrossProducts(records, valid)
+    complete = np.flatnonzero(valid.all(axis=1))
+    gappy = np.flatnonzero(~valid.all(axis=1))
+    for a, b in ((complete[0], complete[1]), (gappy[0], complete[0])):  # matrix-product and per-pair sums
+        for count in (10, 17, 20):
+            got = batched.statistics(a, b, count)
+            both = valid[a] & valid[b]
+            ca, cb = records[a][both].mean(), records[b][both].mean()
+            length = records.shape[1] // count
+            # reference: numpy mean of (a - a_bar)(b - b_bar) per segment (Bendat & Piersol Sect. 10.3)
+            want = [np.mean(((records[a] - ca) * (records[b] - cb))[i * length:(i + 1) * length]
+                            [both[i * length:(i + 1) * length]]) for i in range(count)]
+            assert got.segment_length == length
+            np.testing.assert_allclose(got.mean_product, want, rtol=1e-10)
 
 
 # --------------------------------------------------------------------------------------------

@@ -12,7 +12,10 @@ from scipy.signal import lfilter
 from statsmodels.tsa.stattools import acf, ccf
 
 from corrtransforms.numerics import random_error as err
+from corrtransforms.numerics.spectra import lag_window_psd, strongest_tone, tone_ratio
+from corrtransforms.numerics.bartlett import bartlett_stderr, large_lag_stderr
 from corrtransforms.numerics.correlation import channel_spectra, correlate_block, correlate_spectra
+from corrtransforms.numerics.timescales import integral_time_scale
 
 
 # ------------------------------------------------------------------------------------------
@@ -72,12 +75,12 @@ def test_biased_auto_and_large_lag_interval_match_statsmodels_acf():
     np.testing.assert_allclose(r, ref, rtol=1e-10, atol=1e-12)
     # statsmodels' interval: r_k -/+ z (1 + 2 sum_{j<k} r_j^2)/N, the large-lag Bartlett form
     z = scipy.stats.norm.ppf(0.975)
-    np.testing.assert_allclose(err.large_lag_stderr(r, len(x)), (confint[:, 1] - ref) / z, rtol=1e-10)
+    np.testing.assert_allclose(large_lag_stderr(r, len(x)), (confint[:, 1] - ref) / z, rtol=1e-10)
     # the general per-lag figure is a different quantity: at lag 1 of AR(1) it is
     # sqrt((1 - phi^2)/N) (Box, Jenkins & Reinsel Eq. 2.1.16), below the large-lag 1/sqrt(N)
     full = est.coefficient[0]
-    se = err.bartlett_stderr(full, full, full, est.pair_count[0])[L:]
-    assert se[1] < err.large_lag_stderr(r, len(x))[1]
+    se = bartlett_stderr(full, full, full, est.pair_count[0])[L:]
+    assert se[1] < large_lag_stderr(r, len(x))[1]
 
 
 @pytest.mark.parametrize("adjusted", [False, True])
@@ -109,7 +112,7 @@ def test_bartlett_of_ar1_equals_its_exact_closed_form(phi):
     L, N = 200, 1000
     k = np.arange(-L, L + 1)
     rho = phi ** np.abs(k)
-    se = err.bartlett_stderr(rho, rho, rho, np.full(2 * L + 1, N))
+    se = bartlett_stderr(rho, rho, rho, np.full(2 * L + 1, N))
     kk = np.arange(0, 40)
     exact = (1 + phi ** 2) * (1 - phi ** (2 * kk)) / (1 - phi ** 2) - 2 * kk * phi ** (2 * kk)
     np.testing.assert_allclose(N * se[L + kk] ** 2, exact, rtol=1e-9, atol=1e-12)
@@ -120,7 +123,7 @@ def test_bartlett_cross_of_independent_ar1_pair():
     # for AR(1) with parameters p and q (Box, Jenkins & Reinsel Eq. 12.1.5, from memory)
     p, q, L, N = 0.7, 0.4, 150, 500
     k = np.arange(-L, L + 1)
-    se = err.bartlett_stderr(np.zeros(2 * L + 1), p ** np.abs(k), q ** np.abs(k), np.full(2 * L + 1, N))
+    se = bartlett_stderr(np.zeros(2 * L + 1), p ** np.abs(k), q ** np.abs(k), np.full(2 * L + 1, N))
     np.testing.assert_allclose(N * se ** 2, (1 + p * q) / (1 - p * q), rtol=1e-10)
 
 
@@ -130,8 +133,8 @@ def test_bartlett_cross_of_a_pure_delay_equals_the_shifted_auto():
     k = np.arange(-L, L + 1)
     rho_aa = phi ** np.abs(k)
     rho_ab = phi ** np.abs(k - D)
-    se_ab = err.bartlett_stderr(rho_ab, rho_aa, rho_aa, np.full(2 * L + 1, N))
-    se_aa = err.bartlett_stderr(rho_aa, rho_aa, rho_aa, np.full(2 * L + 1, N))
+    se_ab = bartlett_stderr(rho_ab, rho_aa, rho_aa, np.full(2 * L + 1, N))
+    se_aa = bartlett_stderr(rho_aa, rho_aa, rho_aa, np.full(2 * L + 1, N))
     inner = slice(L - 40, L + 40)
     np.testing.assert_allclose(se_ab[L - 40 + D:L + 40 + D], se_aa[inner], rtol=1e-8, atol=1e-7)
 
@@ -149,7 +152,7 @@ def test_stderr_coverage_ar1():
     x = simulate_ar1(phi, 2000, 1000, rng)
     est = correlate_block(x, 1.0, 50, pairs="auto")
     L = est.max_lag
-    se = err.bartlett_stderr(est.coefficient, est.coefficient, est.coefficient, est.pair_count)
+    se = bartlett_stderr(est.coefficient, est.coefficient, est.coefficient, est.pair_count)
     cover = _coverage(est, phi ** np.abs(np.arange(-L, L + 1)), se)
     for k in (1, 2, 3, 5, 10):
         assert 0.93 <= cover[L + k] <= 0.97, (k, cover[L + k])
@@ -161,7 +164,7 @@ def test_stderr_coverage_oscillator():
     x, _, _ = simulate_oscillator(6000, 1000, fs, fn, zeta, rng)
     est = correlate_block(x, fs, 15.0, pairs="auto")
     L = est.max_lag
-    se = err.bartlett_stderr(est.coefficient, est.coefficient, est.coefficient, est.pair_count)
+    se = bartlett_stderr(est.coefficient, est.coefficient, est.coefficient, est.pair_count)
     cover = _coverage(est, oscillator_rho(est.lags_s, fn, zeta), se)
     for k in (2, 5, 10, 20, 40):
         assert 0.93 <= cover[L + k] <= 0.97, (k, cover[L + k])
@@ -179,7 +182,7 @@ def test_stderr_coverage_cross_pair_with_delay():
     cross = correlate_spectra(spectra, pairs)
     autos = correlate_spectra(spectra, "auto")
     L = cross.max_lag
-    se = err.bartlett_stderr(cross.coefficient, autos.coefficient[:reps], autos.coefficient[reps:],
+    se = bartlett_stderr(cross.coefficient, autos.coefficient[:reps], autos.coefficient[reps:],
                              cross.pair_count)
     k = np.arange(-L, L + 1)
     rho_true = phi ** np.abs(k - D) / np.sqrt(1 + noise ** 2)  # closed form of the construction
@@ -206,7 +209,7 @@ def test_estimated_oscillator_and_low_pass_correlations_follow_closed_forms():
     fs, fn, zeta = 20.0, 2.0, 0.04
     x, _, _ = simulate_oscillator(40000, 1, fs, fn, zeta, rng)
     est = correlate_block(x, fs, 4.0, pairs="auto")
-    se = err.bartlett_stderr(est.coefficient, est.coefficient, est.coefficient, est.pair_count)
+    se = bartlett_stderr(est.coefficient, est.coefficient, est.coefficient, est.pair_count)
     zscore = (est.coefficient - oscillator_rho(est.lags_s, fn, zeta)) / np.where(se > 0, se, 1)
     assert np.max(np.abs(zscore)) < 4.5
     # first-order low-pass noise (AR(1) = its exact discretisation): rho = exp(-|tau|/tau_c)
@@ -214,7 +217,7 @@ def test_estimated_oscillator_and_low_pass_correlations_follow_closed_forms():
     phi = np.exp(-1 / (fs2 * tau_c))
     y = simulate_ar1(phi, 50000, 1, rng)
     est2 = correlate_block(y, fs2, 2.0, pairs="auto")
-    se2 = err.bartlett_stderr(est2.coefficient, est2.coefficient, est2.coefficient, est2.pair_count)
+    se2 = bartlett_stderr(est2.coefficient, est2.coefficient, est2.coefficient, est2.pair_count)
     z2 = (est2.coefficient - np.exp(-np.abs(est2.lags_s) / tau_c)) / np.where(se2 > 0, se2, 1)
     assert np.max(np.abs(z2)) < 4.5
 
@@ -233,7 +236,7 @@ def test_statistical_bandwidth_closed_forms():
     phi, fs = 0.8, 100.0
     y = simulate_ar1(phi, 200000, 1, rng)
     est = correlate_block(y, fs, 1.0, pairs="auto")
-    freqs, psd = err.lag_window_psd(est.R[0], fs)
+    freqs, psd = lag_window_psd(est.R[0], fs)
     assert np.trapezoid(psd, freqs) == pytest.approx(est.R[0][est.max_lag], rel=1e-9)  # = R(0)
     expected = 1 / (2 / fs * (1 + phi ** 2) / (1 - phi ** 2))
     assert err.statistical_bandwidth(freqs, psd) == pytest.approx(expected, rel=0.03)
@@ -289,13 +292,13 @@ def test_effective_samples_of_ar1():
     # Sec. 2.1.5, from memory), i.e. N_eff = N (1 - phi)/(1 + phi)
     phi, N, dt = 0.9, 10000, 0.01
     rho = phi ** np.arange(0, 600)
-    T_I = err.integral_time_scale(rho, dt)
+    T_I = integral_time_scale(rho, dt)
     assert T_I == pytest.approx(dt * (1 + phi) / (2 * (1 - phi)), rel=1e-9)
     assert err.effective_samples(N * dt, T_I, N) == pytest.approx(N * (1 - phi) / (1 + phi), rel=1e-9)
     # from an estimate (integrated to its first zero crossing)
     y = simulate_ar1(phi, N, 1, np.random.default_rng(3))
     est = correlate_block(y, 1 / dt, 3.0, pairs="auto")
-    T_hat = err.integral_time_scale(est.coefficient[0][est.max_lag:], dt)
+    T_hat = integral_time_scale(est.coefficient[0][est.max_lag:], dt)
     assert T_hat == pytest.approx(T_I, rel=0.25)
     # white noise: T_I = dt/2, N_eff = N
     assert err.effective_samples(N * dt, dt / 2, N) == pytest.approx(N)
@@ -338,13 +341,13 @@ def test_strongest_tone_found_in_noise_and_absent_without_tone():
     noise[:, 1] += 0.5 * np.cos(2 * np.pi * 7.3 * t + 1.0)
     spectra = channel_spectra(noise, fs, 1.0)
     assert spectra.n_segments > 4  # a block-averaged periodogram
-    freq, _ = err.strongest_tone(spectra.frequencies_hz(), spectra.periodogram(), n_averaged=spectra.n_segments)
+    freq, _ = strongest_tone(spectra.frequencies_hz(), spectra.periodogram(), n_averaged=spectra.n_segments)
     assert freq[1] == pytest.approx(7.3, abs=fs / spectra.segment_fft_length)
     assert np.isnan(freq[[0, 2, 3]]).all()
     # the threshold keeps the false-alarm probability of a broadband bin fixed:
     # Gamma(K, 1/K) quantiles (scipy.stats.gamma); K = 1 gives the 20 dB rule
-    assert err.tone_ratio(1) == pytest.approx(100, rel=0.01)
-    assert err.tone_ratio(10) < err.tone_ratio(2) < err.tone_ratio(1)
+    assert tone_ratio(1) == pytest.approx(100, rel=0.01)
+    assert tone_ratio(10) < tone_ratio(2) < tone_ratio(1)
 
 
 # ------------------------------------------------------------------------------------------
@@ -353,7 +356,7 @@ def test_strongest_tone_found_in_noise_and_absent_without_tone():
 def test_checks_flag_invalid_estimates():
     L = 5
     good = 0.5 ** np.abs(np.arange(-L, L + 1))
-    freqs, psd = err.lag_window_psd(good, 1.0)
+    freqs, psd = lag_window_psd(good, 1.0)
     assert err.auto_correlation_checks(good, 1.0, psd) == []
     assert "r0_mismatch" in err.auto_correlation_checks(good, 1.2, psd)
     odd = good.copy()
@@ -366,7 +369,7 @@ def test_checks_flag_invalid_estimates():
     not_psd[L] = 1.0
     not_psd[[L - 1, L + 1]] = 0.95
     not_psd[[L - 2, L + 2]] = -0.95  # not positive semi-definite: spectrum negative somewhere
-    _, bad_psd = err.lag_window_psd(not_psd, 1.0)
+    _, bad_psd = lag_window_psd(not_psd, 1.0)
     assert "negative_psd" in err.auto_correlation_checks(not_psd, 1.0, bad_psd)
 
 
@@ -399,9 +402,9 @@ def test_biased_estimate_satisfies_validity_invariants(case):
         finite = np.isfinite(rho)
         assert np.all(np.abs(rho[finite]) <= 1 + 1e-9)  # Cauchy-Schwarz for the biased estimate
         if a == b:
-            _, psd = err.lag_window_psd(est.R[row], 2.0)
+            _, psd = lag_window_psd(est.R[row], 2.0)
             assert err.auto_correlation_checks(est.R[row], spectra.mean_square[a], psd) == []
-        se = err.bartlett_stderr(rho, est.coefficient[est.pairs.index((a, a))],
+        se = bartlett_stderr(rho, est.coefficient[est.pairs.index((a, a))],
                                  est.coefficient[est.pairs.index((b, b))], est.pair_count[row])
         assert np.all(se[finite & (est.pair_count[row] > 0)] >= 0)
 
@@ -411,7 +414,7 @@ def test_biased_estimate_satisfies_validity_invariants(case):
        st.floats(1e-3, 10), st.integers(1, 10000))
 def test_effective_samples_stay_within_one_and_n(rho_tail, dt, n):
     rho = np.concatenate([[1.0], rho_tail])
-    T_I = err.integral_time_scale(rho, dt)
+    T_I = integral_time_scale(rho, dt)
     assert T_I >= 0
     value = err.effective_samples(n * dt, T_I, n)
     assert 1.0 <= value <= n

@@ -7,6 +7,7 @@ import numpy as np
 import pytest
 from scipy import signal, stats
 
+from corrtransforms.numerics import rank_tests, record_memory, segments
 from corrtransforms.stages import screen as st
 from corrtransforms.numerics.robust import summarize_baseline
 from corrtransforms.config import ScreeningConfig
@@ -71,18 +72,18 @@ def test_reverse_arrangements_distribution_matches_enumeration_of_permutations()
     for n in range(1, 8):
         counts = np.zeros(n * (n - 1) // 2 + 1)
         for perm in itertools.permutations(range(n)):
-            counts[int(st.reverse_arrangements(perm))] += 1
-        assert np.allclose(st.reverse_arrangements_distribution(n), counts / math.factorial(n), atol=1e-15)
+            counts[int(rank_tests.reverse_arrangements(perm))] += 1
+        assert np.allclose(rank_tests.reverse_arrangements_distribution(n), counts / math.factorial(n), atol=1e-15)
     # Mahonian numbers, row N = 4: 1, 3, 5, 6, 5, 3, 1 (OEIS A008302; Kendall, Rank Correlation
     # Methods, Ch. 4)
-    assert np.allclose(st.reverse_arrangements_distribution(4) * 24, [1, 3, 5, 6, 5, 3, 1])
+    assert np.allclose(rank_tests.reverse_arrangements_distribution(4) * 24, [1, 3, 5, 6, 5, 3, 1])
 
 
 @pytest.mark.parametrize("n", [2, 5, 10, 20, 47, 100, 200])
 def test_reverse_arrangements_moments(n):
     # mean N(N-1)/4 and variance N(2N+5)(N-1)/72 (Bendat & Piersol, Random Data, 4th ed.,
     # Sect. 4.5.2; Kendall, Rank Correlation Methods, Ch. 4)
-    pmf = st.reverse_arrangements_distribution(n)
+    pmf = rank_tests.reverse_arrangements_distribution(n)
     a = np.arange(len(pmf))
     mean = float((a * pmf).sum())
     variance = float(((a - mean) ** 2 * pmf).sum())
@@ -118,7 +119,7 @@ def test_reverse_arrangements_percentage_points_match_published_table():
     exact_matches = 0
     for n, row in REVERSE_ARRANGEMENT_TABLE.items():
         for alpha, tabulated in zip(TABLE_ALPHAS, row):
-            computed = st.reverse_arrangements_percentage_point(n, alpha)
+            computed = rank_tests.reverse_arrangements_percentage_point(n, alpha)
             # within one count (the table's large-N entries follow the normal approximation,
             # N = 100 within two)
             assert abs(computed - tabulated) <= (2 if n >= 100 else 1), (n, alpha, computed, tabulated)
@@ -139,18 +140,18 @@ def test_reverse_arrangements_p_value_equals_scipy_exact_kendall_tau(n):
     rng = np.random.default_rng(n)
     for trial in range(20):
         x = rng.standard_normal(n) + (trial % 4) * 0.08 * np.arange(n)
-        result = st.reverse_arrangements_test(x)
+        result = rank_tests.reverse_arrangements_test(x)
         reference = stats.kendalltau(np.arange(n), x, method="exact")
         assert 1 - 4 * result.statistic / (n * (n - 1)) == pytest.approx(reference.statistic, abs=1e-12)
         assert result.p_value == pytest.approx(reference.pvalue, rel=1e-9, abs=1e-14)
 
 
 def test_reverse_arrangements_count_and_ties():
-    assert st.reverse_arrangements([1, 2, 3, 4]) == 0
-    assert st.reverse_arrangements([4, 3, 2, 1]) == 6
-    assert st.reverse_arrangements([2, 1, 1]) == 2.5  # a tie counts one half (Kendall)
+    assert rank_tests.reverse_arrangements([1, 2, 3, 4]) == 0
+    assert rank_tests.reverse_arrangements([4, 3, 2, 1]) == 6
+    assert rank_tests.reverse_arrangements([2, 1, 1]) == 2.5  # a tie counts one half (Kendall)
     with pytest.raises(ValueError):
-        st.reverse_arrangements_test([1.0])
+        rank_tests.reverse_arrangements_test([1.0])
 
 
 # ---------------------------------------------------------------------------------------------
@@ -168,14 +169,14 @@ def _enumerated_runs_distribution(n1, n2):
 @pytest.mark.parametrize("n1,n2", [(1, 1), (2, 5), (5, 5), (6, 4), (7, 7)])
 def test_runs_distribution_matches_enumeration(n1, n2):
     # reference: brute-force enumeration of all C(n1+n2, n1) arrangements
-    assert np.allclose(st.runs_distribution(n1, n2), _enumerated_runs_distribution(n1, n2), atol=1e-14)
+    assert np.allclose(rank_tests.runs_distribution(n1, n2), _enumerated_runs_distribution(n1, n2), atol=1e-14)
 
 
 @pytest.mark.parametrize("n1,n2", [(10, 10), (7, 13), (50, 50)])
 def test_runs_moments(n1, n2):
     # mean 2 n1 n2 / n + 1, variance 2 n1 n2 (2 n1 n2 - n) / (n^2 (n - 1)) (Mood 1940, Eq. (5)-(6)
     # from memory; Bendat & Piersol Sect. 4.5.2)
-    pmf = st.runs_distribution(n1, n2)
+    pmf = rank_tests.runs_distribution(n1, n2)
     r = np.arange(len(pmf))
     n = n1 + n2
     mean = (r * pmf).sum()
@@ -191,7 +192,7 @@ def test_runs_normal_approximation_matches_statsmodels():
     for n in (20, 40, 60, 100):
         for _ in range(10):
             x = rng.standard_normal(n)
-            ours = st.runs_test(x, method="normal", continuity_correction=False)
+            ours = rank_tests.runs_test(x, method="normal", continuity_correction=False)
             _, p_reference = runstest_1samp(x, cutoff="median", correction=False)
             assert ours.p_value == pytest.approx(p_reference, rel=1e-9)
 
@@ -203,10 +204,10 @@ def test_runs_exact_p_value_matches_enumeration():
     cdf = np.cumsum(pmf)
     for _ in range(30):
         x = rng.standard_normal(12)
-        runs, n_above, n_below = st.runs_about_median(x)
+        runs, n_above, n_below = rank_tests.runs_about_median(x)
         assert (n_above, n_below) == (6, 6)
         expected = min(1.0, 2 * min(cdf[runs], 1 - cdf[runs - 1]))
-        assert st.runs_test(x).p_value == pytest.approx(expected, rel=1e-12)
+        assert rank_tests.runs_test(x).p_value == pytest.approx(expected, rel=1e-12)
 
 
 # Bendat & Piersol, Random Data, Appendix A, percentage points r_{n;alpha} of the run
@@ -223,7 +224,7 @@ RUNS_TABLE = {
 def test_runs_percentage_points_match_published_table():
     for n, row in RUNS_TABLE.items():
         for alpha, tabulated in zip(TABLE_ALPHAS, row):
-            computed = st.runs_percentage_point(n, alpha)
+            computed = rank_tests.runs_percentage_point(n, alpha)
             assert abs(computed - tabulated) <= 1, (n, alpha, computed, tabulated)
 
 
@@ -239,13 +240,13 @@ def test_variance_outlier_test_size_and_power_on_chi_square_segments():
     rejected = 0
     for _ in range(trials):
         variances = rng.standard_normal((segments, samples)).var(axis=1, ddof=1)
-        rejected += st.variance_outlier_test(variances, samples - 1).p_value <= ALPHA
+        rejected += rank_tests.variance_outlier_test(variances, samples - 1).p_value <= ALPHA
     rate = rejected / trials
     assert ALPHA - 3 * simulation_sd(ALPHA, trials) <= rate <= ALPHA + 3 * simulation_sd(ALPHA, trials)
     # one segment with twice the variance is found, at the right index
     x = rng.standard_normal((segments, samples))
     x[7] *= math.sqrt(4.0)
-    result = st.variance_outlier_test(x.var(axis=1, ddof=1), samples - 1)
+    result = rank_tests.variance_outlier_test(x.var(axis=1, ddof=1), samples - 1)
     assert result.index == 7 and result.p_value < 1e-3
 
 
@@ -256,23 +257,23 @@ def test_segment_statistics_against_numpy_with_mask():
     rng = np.random.default_rng(2)
     x = rng.standard_normal(1003) + 5.0
     valid = rng.random(1003) > 0.1
-    s = st.segment_statistics(x, valid, segments=10)
+    s = segments.segment_statistics(x, valid, segments=10)
     center = x[valid].mean()
     assert s.segment_length == 100 and s.center == (center,)
     for i in range(10):
         seg, ok = x[i * 100:(i + 1) * 100], valid[i * 100:(i + 1) * 100]
         assert s.valid_count[i] == ok.sum()
         assert s.mean[i] == pytest.approx(np.mean(seg[ok]), rel=1e-12)
-        assert s.mean_square[i] == pytest.approx(np.mean((seg[ok] - center) ** 2), rel=1e-12)
+        assert s.mean_product[i] == pytest.approx(np.mean((seg[ok] - center) ** 2), rel=1e-12)
     y = 0.5 * x + rng.standard_normal(1003)
     valid_y = rng.random(1003) > 0.2
-    c = st.segment_cross_products(x, y, valid, valid_y, segments=10)
+    c = segments.segment_cross_products(x, y, valid, valid_y, segments=10)
     both = valid & valid_y
     ca, cb = x[both].mean(), y[both].mean()
     for i in range(10):
         sl = slice(i * 100, (i + 1) * 100)
         ok = both[sl]
-        assert c.mean_square[i] == pytest.approx(np.mean((x[sl][ok] - ca) * (y[sl][ok] - cb)), rel=1e-12)
+        assert c.mean_product[i] == pytest.approx(np.mean((x[sl][ok] - ca) * (y[sl][ok] - cb)), rel=1e-12)
 
 
 def test_time_scales_of_ar1_match_closed_form():
@@ -284,8 +285,8 @@ def test_time_scales_of_ar1_match_closed_form():
     integral = (1 / (1 - phi) - 0.5) / FS
     decays, integrals, dofs = [], [], []
     for _ in range(10):
-        scales = st.correlation_time_scales(ar1(rng, phi), None, FS)
-        decays.append(scales.envelope_decay_s)
+        scales = record_memory.correlation_time_scales(ar1(rng, phi), None, FS)
+        decays.append(scales.last_lag_above_inv_e_s)
         integrals.append(scales.integral_time_s)
         dofs.append(scales.degrees_of_freedom_per_sample)
         assert scales.line_count == 0  # a smooth spectrum has no sharp lines
@@ -296,29 +297,39 @@ def test_time_scales_of_ar1_match_closed_form():
     assert np.median(dofs) == pytest.approx((1 - phi ** 2) / (1 + phi ** 2), rel=0.1)
 
 
+def test_screening_integral_time_stops_at_the_interpolated_zero_crossing():
+    # rho_k = 1 - k/m with m = 10.5 crosses zero between lags 10 and 11: the integral to the
+    # crossing is the triangle m/2 (closed form). The earlier screening copy integrated through
+    # lag 11 (trapezoid including the negative ordinate): 11 - 11^2/(2m) = 5.238 instead of 5.25.
+    m = 10.5
+    rho = 1.0 - np.arange(40) / m
+    scales = record_memory._time_scales_from_correlation(rho, rho, 20, 39, FS, 0, 3.0)
+    assert scales.integral_time_s == pytest.approx(m / 2 / FS, rel=1e-12)
+
+
 def test_time_scales_of_oscillator_and_tone():
     # envelope exp(-zeta w_n tau): decay time 1/(zeta w_n), read at the peaks of |rho|, so at most
     # half a period early (Bendat & Piersol Sect. 5.2, single-degree-of-freedom system)
     rng = np.random.default_rng(12)
     damping, freq = 0.05, 2.0
     theta = 1 / (damping * 2 * math.pi * freq)
-    decays = [st.correlation_time_scales(oscillator(rng, freq, damping), None, FS).envelope_decay_s
+    decays = [record_memory.correlation_time_scales(oscillator(rng, freq, damping), None, FS).last_lag_above_inv_e_s
               for _ in range(10)]
     assert theta - 0.5 / freq - 0.2 <= np.median(decays) <= theta + 0.2
     # a strong tone never decorrelates; its sharp line is left out of the memory time
     t = np.arange(N) / FS
     noise = ar1(rng)
     tone = noise + 5 * np.std(noise) * np.sin(2 * math.pi * 3.3 * t)
-    with_tone = st.correlation_time_scales(tone, None, FS)
-    without = st.correlation_time_scales(noise, None, FS)
+    with_tone = record_memory.correlation_time_scales(tone, None, FS)
+    without = record_memory.correlation_time_scales(noise, None, FS)
     assert with_tone.line_count > 0 and without.line_count == 0
     assert with_tone.memory_s == pytest.approx(without.memory_s, rel=0.3)
 
 
 def test_segment_count_follows_the_independence_rule():
-    assert st.segments_for_record(600, 1.0, 20) == 20
-    assert st.segments_for_record(600, 4.0, 20) == 15        # 600 / (10 * 4)
-    assert st.segments_for_record(600, 7.0, 20) == 0         # 8 < MINIMUM_SEGMENTS
+    assert record_memory.segments_for_record(600, 1.0, 20) == 20
+    assert record_memory.segments_for_record(600, 4.0, 20) == 15        # 600 / (10 * 4)
+    assert record_memory.segments_for_record(600, 7.0, 20) == 0         # 8 < MINIMUM_SEGMENTS
     # oscillator with damping 0.02 at 2 Hz: theta = 3.98 s, so about 15 segments of 40 s
     rng = np.random.default_rng(13)
     counts = [st.screen_channel(oscillator(rng, 2.0, 0.02), np.ones(N, bool), FS).segments for _ in range(15)]

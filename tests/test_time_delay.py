@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 
 from corrtransforms.numerics.correlation import correlate_block
-from corrtransforms.numerics.random_error import bartlett_stderr
+from corrtransforms.numerics.bartlett import bartlett_stderr
 from corrtransforms.numerics.time_delay import estimate_lag, refine_peak
 from tests.indicator_fixtures import simulate_sdof
 
@@ -285,8 +285,9 @@ def test_batched_lags_reject_malformed_input():
         estimate_lags(rho, rho, first_lag_s, dt, record_s, auto_a=[None, None])
     infinite = rho.copy()
     infinite[1, 7] = np.inf
-    with pytest.raises(ValueError, match="infinite"):
-        estimate_lags(infinite, rho, first_lag_s, dt, record_s)
+    got = estimate_lags(infinite, rho, first_lag_s, dt, record_s)  # the row with inf: NaN and a code
+    assert got[1].quality == ("nonfinite_correlation",) and np.isnan(got[1].lag_s)
+    _compare([got[0], got[2]], estimate_lags(rho[[0, 2]], rho[[0, 2]], first_lag_s, dt, record_s))
 
 
 def _three_channel_window(weighting):
@@ -340,7 +341,8 @@ def test_window_indicators_use_batched_lags_equal_to_per_pair_and_isolate_a_malf
     assert "ValueError" in failures_b[0][1]
     assert rows_b == [r for r in rows if r.subject != cross[1].subject]
 
-    # infinite values: not taken by the batched call; the per-pair path decides, pair by pair
+    # infinite values: the batched call gives that pair NaN and nonfinite_correlation, as the
+    # per-pair path (a batch of one) does
     infinite_pair = dataclasses.replace(cross[0], coefficient=np.where(np.arange(len(cross[0].coefficient)) == 3,
                                                                       np.inf, cross[0].coefficient))
     infinite = dataclasses.replace(wc, pairs=tuple(infinite_pair if p is cross[0] else p for p in wc.pairs))

@@ -226,6 +226,22 @@ class CorrelationEstimate:
             raise KeyError((a, b)) from None
 
 
+def even_extension(coefficient) -> np.ndarray:
+    """Lags ``0..L`` of an even function (an auto-correlation) -> lags ``-L..L``.
+
+    Parameters
+    ----------
+    coefficient : array_like, shape (..., L + 1)
+
+    Returns
+    -------
+    ndarray, shape (..., 2L + 1)
+        ``[rho_L, ..., rho_1, rho_0, rho_1, ..., rho_L]``: the layout of a cross pair's lags.
+    """
+    rho = np.asarray(coefficient)
+    return np.concatenate([rho[..., :0:-1], rho], axis=-1)
+
+
 def resolve_pairs(pairs: PairSpec, n_channels: int) -> Tuple[Tuple[int, int], ...]:
     """Channel index pairs from ``"all"``, ``"auto"`` or an explicit list.
 
@@ -251,6 +267,51 @@ def resolve_pairs(pairs: PairSpec, n_channels: int) -> Tuple[Tuple[int, int], ..
         if not (0 <= a < n_channels and 0 <= b < n_channels):
             raise ValueError(f"pair {tuple(p)!r} names a channel outside 0..{n_channels - 1}")
         out.append((a, b))
+    return tuple(out)
+
+
+def pairs_by_name(pairs, names: Sequence[str], usable=None, missing: str = "skip") -> Tuple[Tuple[int, int], ...]:
+    """Channel index pairs of a configured pair list, by channel name: the one pair resolution.
+
+    Parameters
+    ----------
+    pairs : None, {"all", "auto"} or sequence of (str, str)
+        None means "auto". "all" and "auto" as in :func:`resolve_pairs`, over the usable channels;
+        a sequence names the channels of each pair, kept in its order, duplicates dropped.
+    names : sequence of str
+        The window's channel names (index order).
+    usable : array_like of bool, optional
+        Channels that may take part; None means all. A listed pair with an unusable channel is
+        left out (the reader has emitted a reject for that channel).
+    missing : {"skip", "raise"}
+        A listed pair naming a channel not in ``names``: left out, or a ValueError.
+
+    Returns
+    -------
+    tuple of (int, int)
+    """
+    names = tuple(names)
+    used = [i for i in range(len(names)) if usable is None or usable[i]]
+    if pairs is None:
+        pairs = "auto"
+    if isinstance(pairs, str):
+        return tuple((used[a], used[b]) for a, b in resolve_pairs(pairs, len(used)))
+    _check_choice("missing", missing, ("skip", "raise"))
+    index = {name: i for i, name in enumerate(names)}
+    out = []
+    for pair in pairs:
+        a, b = pair
+        ia, ib = index.get(a), index.get(b)
+        if ia is None or ib is None:
+            if missing == "raise":
+                absent = a if ia is None else b
+                raise ValueError(f"pair {tuple(pair)!r} names channel {absent!r}, which the window does not "
+                                 f"hold (channels: {', '.join(names)})")
+            continue
+        if usable is not None and not (usable[ia] and usable[ib]):
+            continue
+        if (ia, ib) not in out:
+            out.append((ia, ib))
     return tuple(out)
 
 
@@ -321,6 +382,37 @@ def _block_transforms(rows: np.ndarray, max_lag: int, segment_length: int, fft_l
             scipy.fft.rfft(extended, n=fft_length, axis=-1))
 
 
+def _values_and_mask(values, valid) -> Tuple[np.ndarray, np.ndarray]:
+    """Samples as ``(n_samples, n_channels)`` floats and the mask of valid, finite samples."""
+    values = np.asarray(values, dtype=float)
+    if values.ndim == 1:
+        values = values[:, None]
+    if values.ndim != 2:
+        raise ValueError(f"values must have shape (n_samples, n_channels), got {values.shape}")
+    finite = np.isfinite(values)
+    if valid is None:
+        return values, finite
+    valid = np.asarray(valid, dtype=bool)
+    if valid.ndim == 1:
+        valid = valid[:, None]
+    if valid.shape != values.shape:
+        raise ValueError(f"valid has shape {valid.shape}, values {values.shape}")
+    return values, valid & finite
+
+
+def _lag_and_segment_samples(n: int, fs: float, max_lag_s: float, segment_length) -> Tuple[int, int]:
+    """``max_lag`` and the segment length in samples, checked against the record's ``n``."""
+    if not fs > 0:
+        raise ValueError(f"fs={fs!r}: must be a positive sample rate in Hz")
+    max_lag = int(round(max_lag_s * fs))
+    if not 0 <= max_lag < n:
+        raise ValueError(f"max_lag_s={max_lag_s!r} is {max_lag} samples: must be in 0..{n - 1}")
+    S = default_segment_length(n, max_lag) if segment_length is None else int(segment_length)
+    if not 1 <= S:
+        raise ValueError(f"segment_length={segment_length!r}: must be a positive number of samples")
+    return max_lag, min(S, n)
+
+
 def channel_spectra(values, fs: float, max_lag_s: float, valid=None,
                     detrend: str = "mean", segment_length: Optional[int] = None) -> ChannelSpectra:
     """Real FFTs of every channel's detrended, masked record and of its mask.
@@ -365,31 +457,9 @@ def channel_spectra(values, fs: float, max_lag_s: float, valid=None,
        4th ed., Wiley, 2010, Sec. 11.4.2 (correlation estimates via FFT with zero padding).
     """
     _check_choice("detrend", detrend, DETRENDS)
-    values = np.asarray(values, dtype=float)
-    if values.ndim == 1:
-        values = values[:, None]
-    if values.ndim != 2:
-        raise ValueError(f"values must have shape (n_samples, n_channels), got {values.shape}")
-    finite = np.isfinite(values)
-    if valid is None:
-        valid = finite
-    else:
-        valid = np.asarray(valid, dtype=bool)
-        if valid.ndim == 1:
-            valid = valid[:, None]
-        if valid.shape != values.shape:
-            raise ValueError(f"valid has shape {valid.shape}, values {values.shape}")
-        valid = valid & finite
+    values, valid = _values_and_mask(values, valid)
     n = values.shape[0]
-    if not fs > 0:
-        raise ValueError(f"fs={fs!r}: must be a positive sample rate in Hz")
-    max_lag = int(round(max_lag_s * fs))
-    if not 0 <= max_lag < n:
-        raise ValueError(f"max_lag_s={max_lag_s!r} is {max_lag} samples: must be in 0..{n - 1}")
-    S = default_segment_length(n, max_lag) if segment_length is None else int(segment_length)
-    if not 1 <= S:
-        raise ValueError(f"segment_length={segment_length!r}: must be a positive number of samples")
-    S = min(S, n)
+    max_lag, S = _lag_and_segment_samples(n, fs, max_lag_s, segment_length)
     Q = scipy.fft.next_fast_len(S + 2 * max_lag, real=True)
     complete = bool(valid.all())
     # channels as contiguous rows (transforms along the last axis of contiguous rows are
@@ -505,35 +575,53 @@ def correlate_spectra(spectra: ChannelSpectra, pairs: PairSpec = "all", estimato
     _check_choice("estimator", estimator, ESTIMATORS)
     _check_choice("weighting", weighting, WEIGHTINGS)
     pair_list = resolve_pairs(pairs, spectra.n_channels)
-    L, n = spectra.max_lag, spectra.n_samples
-    lags_s = np.arange(-L, L + 1) / spectra.sample_rate_hz
-    n_pairs = len(pair_list)
+    L = spectra.max_lag
     a_idx = np.array([p[0] for p in pair_list], dtype=int)
     b_idx = np.array([p[1] for p in pair_list], dtype=int)
-    if band_hz is not None:
-        low, high = float(band_hz[0]), float(band_hz[1])
-        if not 0 <= low < high:
-            raise ValueError(f"band_hz={band_hz!r}: must be (low, high) with 0 <= low < high")
-        band_hz = (low, high)
-
+    band_hz = _checked_band(band_hz)
     counts_ch = spectra.valid_counts.astype(float)
-    bounds = np.ones(n_pairs)
+    bounds = np.ones(len(pair_list))
     if band_hz is None and weighting == "none":
         sums = _block_sums(spectra.segment_spectra, spectra.extended_spectra, a_idx, b_idx,
                            spectra.segment_fft_length, L)
         R0 = np.where(counts_ch > 0, np.nan_to_num(spectra.mean_square), 0.0)
     else:
         sums, R0, bounds = _full_sums(spectra, a_idx, b_idx, band_hz, weighting)
+    counts = _pair_counts(spectra, a_idx, b_idx)
+    R, coefficient, scale = _normalised(sums, counts, counts_ch, R0, bounds, a_idx, b_idx, estimator, weighting,
+                                        counts < max(int(min_pairs), 1))
+    return CorrelationEstimate(pairs=pair_list, lags_s=np.arange(-L, L + 1) / spectra.sample_rate_hz, R=R,
+                               pair_count=counts, coefficient=coefficient, scale=scale,
+                               sample_rate_hz=spectra.sample_rate_hz, estimator=estimator,
+                               band_hz=band_hz, weighting=weighting, min_pairs=int(min_pairs))
 
+
+def _checked_band(band_hz):
+    """``band_hz`` as a ``(low, high)`` float pair, or None."""
+    if band_hz is None:
+        return None
+    low, high = float(band_hz[0]), float(band_hz[1])
+    if not 0 <= low < high:
+        raise ValueError(f"band_hz={band_hz!r}: must be (low, high) with 0 <= low < high")
+    return (low, high)
+
+
+def _pair_counts(spectra: ChannelSpectra, a_idx, b_idx) -> np.ndarray:
+    """Valid sample pairs of every pair at lags ``-L..L`` (``n - |k|`` for complete records)."""
+    L, n = spectra.max_lag, spectra.n_samples
     if spectra.complete:
-        counts = np.broadcast_to((n - np.abs(np.arange(-L, L + 1))).astype(np.int64),
-                                 (n_pairs, 2 * L + 1)).copy()
-    else:
-        counts = np.rint(_block_sums(spectra.mask_segment_spectra, spectra.mask_extended_spectra,
-                                     a_idx, b_idx, spectra.segment_fft_length, L)).astype(np.int64)
-        np.maximum(counts, 0, out=counts)
+        return np.broadcast_to((n - np.abs(np.arange(-L, L + 1))).astype(np.int64),
+                               (len(a_idx), 2 * L + 1)).copy()
+    counts = np.rint(_block_sums(spectra.mask_segment_spectra, spectra.mask_extended_spectra,
+                                 a_idx, b_idx, spectra.segment_fft_length, L)).astype(np.int64)
+    np.maximum(counts, 0, out=counts)
+    return counts
 
-    few = counts < max(int(min_pairs), 1)
+
+def _normalised(sums, counts, counts_ch, R0, bounds, a_idx, b_idx, estimator: str, weighting: str, few):
+    """``(R, coefficient, scale)`` of the lag sums: the estimator's divisor, then the coefficient
+    ``R / sqrt(R_aa(0) R_bb(0))`` (a weighted correlation: ``sums`` over its ``bounds``); NaN at
+    lags with too few pairs (``few``)."""
     if weighting != "none":
         R = sums
         scale = bounds
@@ -550,10 +638,7 @@ def correlate_spectra(spectra: ChannelSpectra, pairs: PairSpec = "all", estimato
     if weighting != "none":
         coefficient = np.where(few, np.nan, coefficient)
         R = np.where(few, np.nan, R)
-    return CorrelationEstimate(pairs=pair_list, lags_s=lags_s, R=R, pair_count=counts,
-                               coefficient=coefficient, scale=scale,
-                               sample_rate_hz=spectra.sample_rate_hz, estimator=estimator,
-                               band_hz=band_hz, weighting=weighting, min_pairs=int(min_pairs))
+    return R, coefficient, scale
 
 
 def _block_sums(blocks, extended, a_idx, b_idx, fft_length, L):

@@ -7,6 +7,13 @@ a band around one mode the correlation is one exponentially decaying cosine, so
     rho(tau) ~ A exp(-zeta w_n tau) cos(w_d tau + phi),   w_d = w_n sqrt(1 - zeta^2)
 
 and :func:`fit_mode` estimates ``f_n = w_n / 2 pi`` and ``zeta`` by weighted least squares.
+
+Against the logarithmic decrement: the decrement ``delta = ln(x_k / x_{k+m}) / m`` uses two (or
+a few) peak values: sampled peaks miss the true peak (a bias of ``1 - cos(pi f/fs)``), the
+non-zero phase ``phi`` shifts peaks off the envelope, each peak carries the full error of one
+lag, and no standard error follows. The fit uses every lag in the range weighted by its error,
+estimates frequency and damping jointly with a covariance, and for an ideal decaying cosine
+returns ``f_n`` and ``zeta`` exactly.
 """
 from __future__ import annotations
 
@@ -16,8 +23,8 @@ import numpy as np
 import scipy.optimize
 import scipy.signal
 
-from corrtransforms.numerics.timescales import (MAX_COVARIANCE_LAGS, _lag_sums, bartlett_kernel, bartlett_variance,
-                         correlation_envelope)
+from corrtransforms.numerics.bartlett import bartlett_kernel, bartlett_variance, coarsen_lags, kernel_quadratic_form
+from corrtransforms.numerics.envelope import analytic_correlation, correlation_envelope
 
 #: quality codes of this module (code -> meaning)
 QUALITY_CODES = {
@@ -110,9 +117,9 @@ def fit_mode(coefficient, stderr, lag_step_s: float, band_hz: Tuple[float, float
         Lag spacing, the sample period.
     band_hz : (float, float)
         The mode's band; the fitted frequency must lie in it.
-    end_fraction, max_cycles, min_cycles : float
+    end_fraction, max_cycles, min_cycles, start_bandwidths : float
         Fitting range controls, defaults :data:`END_FRACTION`, :data:`MAX_CYCLES`,
-        :data:`MIN_CYCLES`.
+        :data:`MIN_CYCLES`, :data:`START_BANDWIDTHS` (:func:`_fitting_range`).
 
     Returns
     -------
@@ -124,40 +131,9 @@ def fit_mode(coefficient, stderr, lag_step_s: float, band_hz: Tuple[float, float
     **Model.** NExT [1]_: the correlation of a response to stationary white excitation is a sum of
     free decays; band-limited to one mode it is ``A exp(-zeta w_n tau) cos(w_d tau + phi)``. For
     the single-degree-of-freedom oscillator ``A = 1/sqrt(1 - zeta^2)``, ``phi = -arcsin(zeta)``
-    exactly.
-
-    **Fitting range.** From ``start_bandwidths / (high - low)`` seconds (at least the first lag;
-    lag 0 is the normalisation ``rho = 1`` with zero error): band-limiting with a rectangular
-    spectral window removes the resonance's spectral tails, whose correlation lives at lags
-    below about the inverse band width; fitting from lag 1 biases ``zeta`` low by 10-20 % on
-    simulated records with a band of +/- 25 % around the mode. The range ends at the first lag where the
-    Hilbert envelope falls below ``end_fraction`` of its value at the first lag or below
-    ``NOISE_FLOOR_Z`` standard errors, at most ``max_cycles`` periods. Most of the information on
-    ``zeta`` sits at ``tau ~ 1/(zeta w_n)`` (the derivative of the model with respect to ``zeta``
-    is ``-w_n tau`` times the model); the tail beyond a 10 % envelope is mostly estimation error
-    and leakage from outside the band.
-
-    **Estimator.** Weighted least squares, residuals ``(rho_k - model_k) / s_k``, solved with
-    ``scipy.optimize.least_squares`` (trust-region reflective, bounded ``0 < zeta < 0.95``) with
-    the analytic Jacobian. Start values: the damped frequency from the mean spacing of the zero
-    crossings, ``zeta`` from the slope of the log-envelope (a straight-line fit), the amplitude
-    and phase from the analytic signal.
-
-    **Standard errors.** The errors of a correlation estimate at neighbouring lags are strongly
-    correlated, so the textbook fit covariance ``(J^T W J)^-1`` (independent residuals) is too
-    small by a factor of several. The covariance used is the sandwich
-
-        Cov(theta) = (J^T W J)^-1 J^T W Sigma W J (J^T W J)^-1,   W = diag(1/s^2)
-
-    with ``Sigma`` Bartlett's lag-error covariance (:func:`~corrtransforms.numerics.timescales.lag_error_covariance`)
-    [3]_ (Sec. 5.2 of White's robust covariance, from memory).
-
-    **Against the logarithmic decrement.** The decrement ``delta = ln(x_k / x_{k+m}) / m`` uses two
-    (or a few) peak values: sampled peaks miss the true peak (a bias of ``1 - cos(pi f/fs)``),
-    the non-zero phase ``phi`` shifts peaks off the envelope, each peak carries the full error
-    of one lag, and no standard error follows. The fit uses every lag in the range weighted by
-    its error, estimates frequency and damping jointly with a covariance, and for an ideal
-    decaying cosine returns ``f_n`` and ``zeta`` exactly.
+    exactly [2]_. The steps: lag weights (:func:`_fit_weights`), the fitting range
+    (:func:`_fitting_range`), start values and the weighted least-squares fits
+    (:func:`_fit_parameters`), the standard errors (:func:`_sandwich_stderr`).
 
     References
     ----------
@@ -166,22 +142,52 @@ def fit_mode(coefficient, stderr, lag_step_s: float, band_hz: Tuple[float, float
        Experimental Modal Analysis 10(4), 260-277, 1995.
     .. [2] J. S. Bendat and A. G. Piersol, *Random Data*, 4th ed., Wiley, 2010, Sec. 6.1 (the
        correlation of a white-noise driven oscillator).
-    .. [3] H. White, "A heteroskedasticity-consistent covariance matrix estimator", Econometrica
-       48(4), 817-838, 1980.
     """
     rho = np.asarray(coefficient, dtype=float)
     s = np.asarray(stderr, dtype=float)
     if rho.shape != s.shape or rho.ndim != 1:
         raise ValueError(f"coefficient {rho.shape} and stderr {s.shape} must be 1-d of equal length")
     low, high = float(band_hz[0]), float(band_hz[1])
-    nyquist = 0.5 / lag_step_s
-    if high >= nyquist or low <= 0 or low >= high:
+    if high >= 0.5 / lag_step_s or low <= 0 or low >= high:
         return _nan_fit(["band_outside_nyquist"])
     if len(rho) < 8 or not np.isfinite(rho[1]):
         return _nan_fit(["nonfinite_correlation" if len(rho) >= 8 else "too_few_cycles"])
-    quality = []
     finite = np.isfinite(rho)
     first_bad = int(np.argmin(finite)) if not finite.all() else len(rho)
+    envelope, s_fit, usable_s, weighted, quality = _fit_weights(rho, s, first_bad)
+    found = _fitting_range(rho, envelope, s_fit, weighted, first_bad, lag_step_s, low, high, end_fraction,
+                           max_cycles, start_bandwidths, quality)
+    if isinstance(found, ModalFit):
+        return found
+    start, end, damped0 = found
+    cycles = (end - start) * lag_step_s * damped0
+    start_s, end_s = start * lag_step_s, end * lag_step_s
+    if cycles < min_cycles or end - start < 6:
+        return _nan_fit(quality + ["too_few_cycles"], start_s, end_s, cycles)
+    lags = np.arange(start, end + 1)
+    tau = lags * lag_step_s
+    p, ok, sig, scale = _fit_parameters(rho, s, s_fit, usable_s, envelope, weighted, lags, first_bad, lag_step_s,
+                                        low, high, damped0)
+    if not ok:
+        return _nan_fit(quality + ["fit_not_converged"], start_s, end_s, cycles)
+    amplitude, freq, zeta, phase = (float(v) for v in p)
+    if not low <= freq <= high:
+        return _nan_fit(quality + ["frequency_outside_band"], start_s, end_s, cycles)
+    if zeta <= DAMPING_BOUNDS[0] * 1.01 or zeta >= DAMPING_BOUNDS[1] * 0.999:
+        return _nan_fit(quality + ["damping_out_of_range"], start_s, end_s, cycles)
+    freq_sd, damping_sd = _sandwich_stderr(p, tau, sig, lags, first_bad, lag_step_s, scale)
+    phase = float(np.angle(np.exp(1j * phase)))
+    return ModalFit(freq, freq_sd, zeta, damping_sd, amplitude, phase, start_s, end_s,
+                    float((end - start) * lag_step_s * freq * np.sqrt(1 - zeta ** 2)), tuple(quality))
+
+
+def _fit_weights(rho: np.ndarray, s: np.ndarray, first_bad: int):
+    """Hilbert envelope up to the first NaN lag and the lag weights of the first fit.
+
+    Returns ``(envelope, s_fit, usable_s, weighted, quality)``: ``s_fit`` is the stderr floored
+    at 1e-3 of its largest value (ones without any usable stderr, quality ``no_stderr``).
+    """
+    quality = []
     envelope = np.full(len(rho), np.nan)
     envelope[:first_bad] = correlation_envelope(rho[:first_bad], auto=True)
     usable_s = np.isfinite(s) & (s > 0)
@@ -194,7 +200,29 @@ def fit_mode(coefficient, stderr, lag_step_s: float, band_hz: Tuple[float, float
         s_fit = np.where(usable_s, np.maximum(s_fit, floor), floor)
     else:
         s_fit = np.ones_like(rho)
+    return envelope, s_fit, usable_s, weighted, quality
 
+
+def _fitting_range(rho, envelope, s_fit, weighted: bool, first_bad: int, lag_step_s: float, low: float,
+                   high: float, end_fraction: float, max_cycles: float, start_bandwidths: float, quality: list):
+    """First and last lag of the fit and the damped frequency's start value (or a NaN ModalFit).
+
+    Notes
+    -----
+    From ``start_bandwidths / (high - low)`` seconds (at least the first lag; lag 0 is the
+    normalisation ``rho = 1`` with zero error): band-limiting with a rectangular spectral window
+    removes the resonance's spectral tails, whose correlation lives at lags below about the
+    inverse band width; fitting from lag 1 biases ``zeta`` low by 10-20 % on simulated records
+    with a band of +/- 25 % around the mode. The range ends at the first lag where the Hilbert
+    envelope falls below ``end_fraction`` of its value at the first lag or below
+    ``NOISE_FLOOR_Z`` standard errors, at most ``max_cycles`` periods. Most of the information
+    on ``zeta`` sits at ``tau ~ 1/(zeta w_n)`` (the derivative of the model with respect to
+    ``zeta`` is ``-w_n tau`` times the model); the tail beyond a 10 % envelope is mostly
+    estimation error and leakage from outside the band. The damped frequency comes from the
+    mean spacing of the zero crossings in the range (the band's geometric centre when that
+    falls outside the band). Appends ``nonfinite_correlation`` to ``quality`` when NaN lags cut
+    the range short.
+    """
     start = max(1, int(np.ceil(start_bandwidths / ((high - low) * lag_step_s))))
     if start + 6 >= first_bad:
         return _nan_fit(quality + ["too_few_cycles"], start * lag_step_s, (first_bad - 1) * lag_step_s,
@@ -215,33 +243,41 @@ def fit_mode(coefficient, stderr, lag_step_s: float, band_hz: Tuple[float, float
     end = min(end, start + int(np.ceil(max_cycles / (damped0 * lag_step_s))))
     if first_bad < len(rho) and end >= first_bad - 1:
         quality.append("nonfinite_correlation")  # the range was cut short by NaN lags
-    cycles = (end - start) * lag_step_s * damped0
-    start_s, end_s = start * lag_step_s, end * lag_step_s
-    if cycles < min_cycles or end - start < 6:
-        return _nan_fit(quality + ["too_few_cycles"], start_s, end_s, cycles)
+    return start, end, damped0
 
-    lags = np.arange(start, end + 1)
+
+def _fit_parameters(rho, s, s_fit, usable_s, envelope, weighted: bool, lags, first_bad: int, lag_step_s: float,
+                    low: float, high: float, damped0: float):
+    """Start values and the weighted least-squares fit(s); returns ``(p, ok, sig, scale)``.
+
+    Notes
+    -----
+    Weighted least squares, residuals ``(rho_k - model_k) / s_k``, solved with
+    ``scipy.optimize.least_squares`` (trust-region reflective, bounded ``0 < zeta < 0.95``) with
+    the analytic Jacobian. Start values: the damped frequency ``damped0``, ``zeta`` from the
+    slope of the log-envelope (a straight-line fit), the amplitude and phase from the analytic
+    signal. With a stderr, a second pass takes its weights from Bartlett's variance of the fitted
+    model, scaled to the given stderr by ``scale`` (NaN without a second pass): weights computed
+    from the noisy estimate itself are correlated with its errors and bias ``zeta`` low by
+    10-20 % in band-limited correlations.
+    """
     tau = lags * lag_step_s
     y = rho[lags]
     sig = s_fit[lags]
-    # start values: log-envelope slope, analytic-signal phase
     env = np.maximum(envelope[lags], 1e-12)
     slope, intercept = np.polyfit(tau, np.log(env), 1, w=env / sig)
     zeta0 = float(np.clip(-slope / (2 * np.pi * damped0), 1e-4, 0.5))
     freq0 = damped0 / np.sqrt(1 - zeta0 ** 2)
     amp0 = float(np.exp(intercept))
-    analytic_phase = np.angle(y + 1j * np.imag(_analytic(rho[:first_bad])[lags]))
+    analytic_phase = np.angle(y + 1j * np.imag(analytic_correlation(rho[:first_bad])[lags]))
     phi0 = float(np.angle(np.mean(np.exp(1j * (analytic_phase - 2 * np.pi * damped0 * tau)))))
 
     lower = [0.0, 0.5 * low, DAMPING_BOUNDS[0], -2 * np.pi]
-    upper = [np.inf, min(1.5 * high, nyquist), DAMPING_BOUNDS[1], 2 * np.pi]
+    upper = [np.inf, min(1.5 * high, 0.5 / lag_step_s), DAMPING_BOUNDS[1], 2 * np.pi]
     x0 = np.clip([amp0, freq0, zeta0, phi0], np.add(lower, 1e-9), np.subtract(upper, 1e-9))
     p, ok = fit_decaying_cosine(tau, y, sig, x0, (lower, upper))
     scale = float("nan")
     if ok and weighted:
-        # second pass: weights from Bartlett's variance of the fitted model, scaled to the given
-        # stderr (weights computed from the noisy estimate itself are correlated with its errors
-        # and bias zeta low by 10-20 % in band-limited correlations)
         model = decaying_cosine(np.arange(first_bad) * lag_step_s, *p)
         model[0] = 1.0
         shape = np.sqrt(bartlett_variance(model))
@@ -251,31 +287,42 @@ def fit_mode(coefficient, stderr, lag_step_s: float, band_hz: Tuple[float, float
             sig = np.maximum(scale * shape[lags], 1e-3 * scale * shape[lags].max())
             p, ok = fit_decaying_cosine(tau, y, sig, np.clip(p, np.add(lower, 1e-9),
                                                              np.subtract(upper, 1e-9)), (lower, upper))
-    if not ok:
-        return _nan_fit(quality + ["fit_not_converged"], start_s, end_s, cycles)
-    amplitude, freq, zeta, phase = (float(v) for v in p)
-    if not low <= freq <= high:
-        return _nan_fit(quality + ["frequency_outside_band"], start_s, end_s, cycles)
-    if zeta <= DAMPING_BOUNDS[0] * 1.01 or zeta >= DAMPING_BOUNDS[1] * 0.999:
-        return _nan_fit(quality + ["damping_out_of_range"], start_s, end_s, cycles)
+    return p, ok, sig, scale
 
-    freq_sd = damping_sd = float("nan")
-    if np.isfinite(scale):
-        Jw = _jacobian(tau, *p) / sig[:, None]
-        try:
-            bread = np.linalg.inv(Jw.T @ Jw)
-        except np.linalg.LinAlgError:
-            bread = None
-        if bread is not None:
-            model = decaying_cosine(np.arange(first_bad) * lag_step_s, *p)
-            model[0] = 1.0
-            meat = _correlated_meat(Jw, model, lags, sig, scale)
-            cov = bread @ meat @ bread
-            freq_sd = float(np.sqrt(max(cov[1, 1], 0.0)))
-            damping_sd = float(np.sqrt(max(cov[2, 2], 0.0)))
-    phase = float(np.angle(np.exp(1j * phase)))
-    return ModalFit(freq, freq_sd, zeta, damping_sd, amplitude, phase, start_s, end_s,
-                    float((end - start) * lag_step_s * freq * np.sqrt(1 - zeta ** 2)), tuple(quality))
+
+def _sandwich_stderr(p, tau, sig, lags, first_bad: int, lag_step_s: float, scale: float):
+    """Standard errors of frequency and damping: the sandwich with Bartlett's lag covariance.
+
+    Notes
+    -----
+    The errors of a correlation estimate at neighbouring lags are strongly correlated, so the
+    textbook fit covariance ``(J^T W J)^-1`` (independent residuals) is too small by a factor of
+    several. The covariance used is the sandwich
+
+        Cov(theta) = (J^T W J)^-1 J^T W Sigma W J (J^T W J)^-1,   W = diag(1/s^2)
+
+    with ``Sigma`` Bartlett's lag-error covariance
+    (:func:`~corrtransforms.numerics.bartlett.lag_error_covariance`) [1]_ (Sec. 5.2 of White's
+    robust covariance, from memory). NaN without a second-pass ``scale`` or with a singular
+    ``J^T W J``.
+
+    References
+    ----------
+    .. [1] H. White, "A heteroskedasticity-consistent covariance matrix estimator", Econometrica
+       48(4), 817-838, 1980.
+    """
+    if not np.isfinite(scale):
+        return float("nan"), float("nan")
+    Jw = _jacobian(tau, *p) / sig[:, None]
+    try:
+        bread = np.linalg.inv(Jw.T @ Jw)
+    except np.linalg.LinAlgError:
+        return float("nan"), float("nan")
+    model = decaying_cosine(np.arange(first_bad) * lag_step_s, *p)
+    model[0] = 1.0
+    meat = _correlated_meat(Jw, model, lags, sig, scale)
+    cov = bread @ meat @ bread
+    return float(np.sqrt(max(cov[1, 1], 0.0))), float(np.sqrt(max(cov[2, 2], 0.0)))
 
 
 def fit_decaying_cosine(lags_s, values, sigma, start, bounds):
@@ -321,53 +368,12 @@ def fit_decaying_cosine(lags_s, values, sigma, start, bounds):
     return result.x, bool(result.status > 0 and np.all(np.isfinite(result.x)))
 
 
-def _analytic(rho: np.ndarray) -> np.ndarray:
-    import scipy.signal
-
-    full = np.concatenate([rho[:0:-1], rho])
-    return scipy.signal.hilbert(full)[len(rho) - 1:]
-
-
 def _correlated_meat(Jw: np.ndarray, model: np.ndarray, lags: np.ndarray, sig: np.ndarray,
                      scale: float) -> np.ndarray:
     """``J_w^T (Sigma / sig sig^T) J_w`` with ``Sigma = scale^2 K(model) / 1`` (Bartlett; strided when long)."""
-    stride = int(np.ceil(len(lags) / MAX_COVARIANCE_LAGS))
-    if stride > 1:
-        groups = np.arange(len(lags)) // stride
-        G = np.stack([np.bincount(groups, weights=Jw[:, m] / sig) for m in range(Jw.shape[1])], axis=1)
-        nodes = np.minimum(lags[::stride][:G.shape[0]] + (stride - 1) // 2, len(model) - 1)
-    else:
-        G, nodes = Jw / sig[:, None], lags
-    nodes = np.asarray(nodes)
+    G, nodes = coarsen_lags(Jw / sig[:, None], lags, len(model))
     spacing = np.diff(nodes)
     if len(nodes) < 3 or np.any(spacing != spacing[0]):
         sigma = scale ** 2 * bartlett_kernel(model, nodes)
         return G.T @ sigma @ G
-    return scale ** 2 * _bartlett_quadratic_form(model, int(nodes[0]), int(spacing[0]), G)
-
-
-def _bartlett_quadratic_form(model: np.ndarray, first: int, spacing: int, G: np.ndarray) -> np.ndarray:
-    """``G^T K G`` for Bartlett's kernel ``K`` at the equally spaced lags ``first + spacing * k``.
-
-    Notes
-    -----
-    With ``c(m) = sum_v rho_v rho_{v+m}`` (:func:`~corrtransforms.numerics.timescales.bartlett_kernel`),
-    ``K = T + H - 2 r c^T - 2 c r^T + 2 c(0) r r^T`` where ``T_ij = c(|l_j - l_i|)`` is Toeplitz,
-    ``H_ij = c(l_i + l_j)`` Hankel, ``r_i = rho(l_i)`` and ``c_i = c(l_i)``. On equally spaced
-    lags ``T G`` is a convolution of ``G`` with ``c(spacing |d|)`` and ``H G`` a correlation
-    with ``c(2 l_0 + spacing q)``, both by FFT (Golub & Van Loan, *Matrix Computations*, 4th ed.,
-    Sec. 4.7.7, fast Toeplitz matrix-vector products; from memory): O(m log m) instead of the
-    O(m^2) of forming ``K``; the same quadratic form to rounding.
-    """
-    rho = np.nan_to_num(np.asarray(model, dtype=float))
-    c = _lag_sums(rho)
-    m = G.shape[0]
-    nodes = first + spacing * np.arange(m)
-    toeplitz = c[spacing * np.abs(np.arange(-(m - 1), m))][:, None]
-    hankel = c[2 * first + spacing * np.arange(2 * m - 1)][:, None]
-    KG = (scipy.signal.fftconvolve(toeplitz, G, axes=0)[m - 1:2 * m - 1]
-          + scipy.signal.fftconvolve(hankel, G[::-1], axes=0)[m - 1:2 * m - 1])
-    g_rho = G.T @ rho[nodes]
-    g_c = G.T @ c[nodes]
-    meat = G.T @ KG - 2 * np.outer(g_rho, g_c) - 2 * np.outer(g_c, g_rho) + 2 * c[0] * np.outer(g_rho, g_rho)
-    return 0.5 * (meat + meat.T)
+    return scale ** 2 * kernel_quadratic_form(model, int(nodes[0]), int(spacing[0]), G)

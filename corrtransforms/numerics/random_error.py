@@ -5,7 +5,8 @@ correlation of the process. This module states how far, in two forms that answer
 questions:
 
 - **per lag, general** (the ``stderr`` column): Bartlett's variance formula evaluated on the
-  estimated coefficients themselves, :func:`bartlett_stderr`, with the pair count at each lag in
+  estimated coefficients themselves,
+  :func:`corrtransforms.numerics.bartlett.bartlett_stderr`, with the pair count at each lag in
   place of ``n`` for gappy records. This is the figure to put on a coefficient at any lag.
 - **closed form, one number per pair** (the ``rel_error`` column): Bendat & Piersol's
   bandwidth-limited white-noise formulas, :func:`mean_square_rel_error` ``1/sqrt(BT)`` and
@@ -17,16 +18,18 @@ questions:
 It also gives the effective number of independent samples (:func:`effective_samples`), the
 record length needed for a target error (:func:`required_record_length`), the bound for a
 random-phase tone (:func:`tone_required_half_length`) and the validity checks
-(:func:`auto_correlation_checks`), which return quality codes from :data:`QUALITY_CODES`.
+(:func:`auto_correlation_checks`), which return quality codes from :data:`QUALITY_CODES`. The
+per-lag variance lives in :mod:`corrtransforms.numerics.bartlett`, the PSD and the tone finder
+in :mod:`corrtransforms.numerics.spectra`.
 """
 from __future__ import annotations
 
-from typing import List, Optional, Tuple
+from typing import List
 
 import numpy as np
-import scipy.fft
 from scipy.integrate import trapezoid
-from scipy.signal.windows import parzen
+
+from corrtransforms.numerics.bartlett import bartlett_sums
 
 #: quality codes of the correlate stage (code -> meaning); records.quality_text joins them
 QUALITY_CODES = {
@@ -40,153 +43,13 @@ QUALITY_CODES = {
     "tone_record_short": "the record is shorter than the random-phase tone bound for the strongest sharp PSD peak",
 }
 
-#: probability that a broadband periodogram bin passes the sharp-peak test (common practice:
-#: so small that noise never passes; for one block it is the 20 dB rule, ratio 100 to the median)
-TONE_FALSE_ALARM = 1e-30
-
-
-def tone_ratio(n_averaged: int, false_alarm: float = TONE_FALSE_ALARM) -> float:
-    """Peak-to-median ratio a sharp peak must exceed in a periodogram averaged over K blocks.
-
-    Parameters
-    ----------
-    n_averaged : int
-        Number ``K`` of averaged blocks (1 for a raw periodogram).
-    false_alarm : float
-        Probability that a bin of a smooth (broadband) spectrum exceeds the ratio.
-
-    Returns
-    -------
-    float
-        ``q / m`` with ``q`` the upper ``false_alarm`` quantile and ``m`` the median of
-        ``Gamma(K, 1/K)``: 99.7 for K = 1, 10.1 for K = 10.
-
-    Notes
-    -----
-    A periodogram bin of a Gaussian record is ``S(f) chi^2_2 / 2``; the average of K blocks is
-    ``S(f) Gamma(K, 1/K)`` [1]_ (Sec. 11.5, from memory).
-
-    References
-    ----------
-    .. [1] J. S. Bendat and A. G. Piersol, *Random Data*, 4th ed., Wiley, 2010.
-    """
-    from scipy.stats import gamma
-
-    K = max(int(n_averaged), 1)
-    return float(gamma.isf(false_alarm, K, scale=1.0 / K) / gamma.median(K, scale=1.0 / K))
-
-
-def _nan_to_zero(x):
-    return np.where(np.isfinite(x), x, 0.0)
-
-
-def bartlett_sums(rho_ab, rho_aa, rho_bb):
-    """Lag sums of Bartlett's variance formula for every lag, by FFT convolution.
-
-    Parameters
-    ----------
-    rho_ab, rho_aa, rho_bb : array_like, shape (..., 2L + 1)
-        Coefficients at lags ``-L..L`` (index ``i`` is lag ``i - L``); NaN counts as 0.
-
-    Returns
-    -------
-    constant : ndarray, shape (...)
-        ``A = sum_v rho_aa(v) rho_bb(v)``.
-    reflected : ndarray, shape (..., 2L + 1)
-        ``B(k) = sum_v rho_ab(k + v) rho_ab(k - v)``.
-    mixed : ndarray, shape (..., 2L + 1)
-        ``C(k) = sum_v [rho_aa(v) rho_ab(k + v) + rho_ab(-v) rho_bb(k + v)]``.
-    square : ndarray, shape (...)
-        ``E = sum_v [rho_ab(v)^2 + rho_aa(v)^2 / 2 + rho_bb(v)^2 / 2]``.
-
-    Notes
-    -----
-    With ``rho_aa`` and ``rho_bb`` even, ``B(k) = (rho_ab * rho_ab)(2k)`` and
-    ``C(k) = (rho_ab * (rho_aa + rho_bb))(k)`` are convolutions, computed for all lags at once
-    with one real FFT of length ``next_fast_len(4L + 1)``; the sums run over the estimated lags
-    ``|v| <= L`` (the coefficients beyond are taken as 0).
-    """
-    ab = _nan_to_zero(np.asarray(rho_ab, dtype=float))
-    aa = _nan_to_zero(np.asarray(rho_aa, dtype=float))
-    bb = _nan_to_zero(np.asarray(rho_bb, dtype=float))
-    width = ab.shape[-1]
-    L = (width - 1) // 2
-    K = scipy.fft.next_fast_len(2 * width - 1, real=True)
-    F_ab = scipy.fft.rfft(ab, n=K, axis=-1)
-    F_sum = scipy.fft.rfft(aa + bb, n=K, axis=-1)
-    # index j of a full convolution of two (2L+1)-arrays is lag j - 2L
-    conv_ab_ab = scipy.fft.irfft(F_ab * F_ab, n=K, axis=-1)
-    conv_mixed = scipy.fft.irfft(F_ab * F_sum, n=K, axis=-1)
-    reflected = conv_ab_ab[..., 0:4 * L + 1:2]
-    mixed = conv_mixed[..., L:3 * L + 1]
-    constant = (aa * bb).sum(axis=-1)
-    square = (ab * ab + 0.5 * aa * aa + 0.5 * bb * bb).sum(axis=-1)
-    return constant, reflected, mixed, square
-
-
-def bartlett_stderr(rho_ab, rho_aa, rho_bb, pair_count):
-    """Standard error of an estimated correlation coefficient at every lag (Bartlett).
-
-    Parameters
-    ----------
-    rho_ab : array_like, shape (..., 2L + 1)
-        Estimated coefficient of the pair at lags ``-L..L``; for an auto pair pass the same
-        array three times.
-    rho_aa, rho_bb : array_like, shape (..., 2L + 1)
-        Estimated auto-correlation coefficients of channels a and b at lags ``-L..L``.
-    pair_count : array_like, shape (..., 2L + 1)
-        Valid sample pairs at each lag, in place of ``n`` (Bartlett's ``n`` for a complete
-        record; the large-``n`` formula does not distinguish ``n`` from ``n - |k|``).
-
-    Returns
-    -------
-    ndarray, shape (..., 2L + 1)
-        ``sqrt(var r_ab(k))``; NaN where the coefficient is NaN or no pairs exist.
-
-    Notes
-    -----
-    Bartlett's formula for cross-correlation coefficients of jointly Gaussian stationary
-    series (Box, Jenkins & Reinsel [2]_, Eq. (12.1.4), equation number from memory), with
-    ``rho_ab(k) = corr(a_t, b_{t+k})``::
-
-        n var r_ab(k) = sum_v { rho_aa(v) rho_bb(v) + rho_ab(k+v) rho_ab(k-v)
-                              - 2 rho_ab(k) [rho_aa(v) rho_ab(k+v) + rho_ab(-v) rho_bb(k+v)]
-                              + rho_ab(k)^2 [rho_ab(v)^2 + rho_aa(v)^2/2 + rho_bb(v)^2/2] }
-
-    For ``a = b`` it reduces to Bartlett's 1946 formula for the auto-correlation [1]_
-    (Box, Jenkins & Reinsel Eq. (2.1.13))::
-
-        n var r_k = sum_v { rho_v^2 + rho_{v+k} rho_{v-k} - 4 rho_k rho_v rho_{v-k}
-                            + 2 rho_v^2 rho_k^2 }
-
-    The sums use the estimated coefficients (:func:`bartlett_sums`). Their sampling noise adds
-    roughly ``(2L + 1) / n`` relative to the sums, so the figure is slightly conservative when
-    ``L`` is not small against ``n``.
-
-    References
-    ----------
-    .. [1] M. S. Bartlett, "On the theoretical specification and sampling properties of
-       autocorrelated time-series", J. R. Stat. Soc. Suppl. 8(1), 27-41, 1946.
-    .. [2] G. E. P. Box, G. M. Jenkins and G. C. Reinsel, *Time Series Analysis: Forecasting
-       and Control*, 4th ed., Wiley, 2008, Eqs. (2.1.13) and (12.1.4) (from memory).
-    """
-    rho = np.asarray(rho_ab, dtype=float)
-    constant, reflected, mixed, square = bartlett_sums(rho_ab, rho_aa, rho_bb)
-    r = _nan_to_zero(rho)
-    n_var = (constant[..., None] + reflected - 2.0 * r * mixed + r * r * square[..., None])
-    count = np.asarray(pair_count, dtype=float)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        var = np.maximum(n_var, 0.0) / count
-    return np.where(np.isfinite(rho) & (count > 0), np.sqrt(var), np.nan)
-
-
 def correlation_random_error(rho_ab, rho_aa, rho_bb, pair_count):
     """Normalised random error of the correlation estimate ``R_ab`` at every lag (general form).
 
     Parameters
     ----------
     rho_ab, rho_aa, rho_bb, pair_count : array_like, shape (..., 2L + 1)
-        As in :func:`bartlett_stderr`.
+        As in :func:`corrtransforms.numerics.bartlett.bartlett_stderr`.
 
     Returns
     -------
@@ -217,85 +80,6 @@ def correlation_random_error(rho_ab, rho_aa, rho_bb, pair_count):
     with np.errstate(invalid="ignore", divide="ignore"):
         sd = np.sqrt(np.maximum(constant[..., None] + reflected, 0.0) / count)
         return np.where(np.isfinite(rho) & (count > 0), sd / np.abs(rho), np.nan)
-
-
-def large_lag_stderr(rho, n):
-    """Bartlett's large-lag standard error of auto-correlation coefficients at lags ``0..L``.
-
-    Parameters
-    ----------
-    rho : array_like, shape (L + 1,)
-        Estimated coefficients at lags 0..L (``rho[0] = 1``).
-    n : int
-        Record length in samples.
-
-    Returns
-    -------
-    ndarray, shape (L + 1,)
-        ``se[0] = 0``, ``se[1] = 1/sqrt(n)``, ``se[k] = sqrt((1 + 2 sum_{j<k} r_j^2) / n)``.
-
-    Notes
-    -----
-    Bartlett's formula when the true coefficients vanish beyond lag ``k - 1`` (Box, Jenkins &
-    Reinsel [1]_ Eq. (2.1.15), from memory). It is the interval statsmodels'
-    ``acf(..., alpha=..., bartlett_confint=True)`` draws around ``r_k``; use it to judge whether
-    ``r_k`` differs from zero, and :func:`bartlett_stderr` for the error of ``r_k`` itself.
-
-    References
-    ----------
-    .. [1] G. E. P. Box, G. M. Jenkins and G. C. Reinsel, *Time Series Analysis*, 4th ed.,
-       Wiley, 2008, Sec. 2.1.6.
-    """
-    r = np.asarray(rho, dtype=float)
-    var = np.empty_like(r)
-    var[0] = 0.0
-    if len(r) > 1:
-        var[1:] = 1.0 + 2.0 * np.concatenate([[0.0], np.cumsum(r[1:-1] ** 2)])
-    return np.sqrt(var / float(n))
-
-
-def lag_window_psd(R, fs: float) -> Tuple[np.ndarray, np.ndarray]:
-    """One-sided PSD from an auto- or cross-product correlation at lags ``-L..L`` (Parzen window).
-
-    Parameters
-    ----------
-    R : array_like, shape (..., 2L + 1)
-        Correlation at lags ``-L..L`` (NaN counts as 0).
-    fs : float
-        Sample rate in Hz.
-
-    Returns
-    -------
-    frequencies_hz : ndarray, shape (M/2 + 1,)
-        ``0..fs/2`` in steps of ``fs / M``, ``M = 2 next_fast_len(L + 1)``.
-    psd : ndarray, shape (..., M/2 + 1)
-        ``G(f) = 2 S(f)`` with ``S(f) = dt sum_k w(k) R(k) exp(-2 pi i f k dt)`` (real part);
-        its trapezoidal integral over ``0..fs/2`` equals ``R(0)`` exactly.
-
-    Notes
-    -----
-    Blackman-Tukey estimate with the Parzen lag window ``w`` [1]_ (Sec. 6.2, from memory).
-    The Parzen spectral window is non-negative, so for a biased (positive semi-definite)
-    auto-correlation estimate the result is ``>= 0`` up to round-off: a negative value shows a
-    defective estimate.
-
-    References
-    ----------
-    .. [1] M. B. Priestley, *Spectral Analysis and Time Series*, Academic Press, 1981,
-       Sec. 6.2.3 (Parzen window).
-    """
-    R = _nan_to_zero(np.asarray(R, dtype=float))
-    width = R.shape[-1]
-    L = (width - 1) // 2
-    M = 2 * scipy.fft.next_fast_len(L + 1)
-    w = parzen(width, sym=True) if width > 1 else np.ones(1)
-    seq = np.zeros(R.shape[:-1] + (M,))
-    weighted = R * w
-    seq[..., :L + 1] = weighted[..., L:]
-    if L:
-        seq[..., M - L:] = weighted[..., :L]
-    S = scipy.fft.rfft(seq, axis=-1).real / fs
-    return scipy.fft.rfftfreq(M, d=1.0 / fs), 2.0 * S
 
 
 def statistical_bandwidth(frequencies_hz, psd_a, psd_b=None):
@@ -431,48 +215,6 @@ def required_record_length(bandwidth_hz, target_rel_error, rho=None):
         return (1.0 + 1.0 / (r * r)) / (2.0 * B * eps2)
 
 
-def integral_time_scale(rho, lag_step_s: float) -> float:
-    """Integral time scale ``T_I = int_0^{tau_0} rho(tau) dtau`` up to the first zero crossing.
-
-    Parameters
-    ----------
-    rho : array_like, shape (L + 1,)
-        Auto-correlation coefficients at lags ``0..L``.
-    lag_step_s : float
-        Lag step ``dt``.
-
-    Returns
-    -------
-    float
-        ``T_I`` in seconds (trapezoid rule, linear interpolation to the crossing; the whole
-        range when ``rho`` stays positive).
-
-    Notes
-    -----
-    Stopping at the first zero crossing is common practice: beyond it the estimate is mostly
-    noise, and for oscillatory correlations the full integral tends to zero. For an AR(1)
-    sequence ``rho_k = phi^k`` summed without a crossing, the trapezoid rule gives
-    ``T_I = dt (1 + phi) / (2 (1 - phi))``, the exact discrete result.
-
-    References
-    ----------
-    .. [1] H. Tennekes and J. L. Lumley, *A First Course in Turbulence*, MIT Press, 1972,
-       Sec. 6.4 (integral scale and averaging time).
-    """
-    r = np.asarray(rho, dtype=float)
-    r = np.where(np.isfinite(r), r, 0.0)
-    nonpositive = np.flatnonzero(r <= 0)
-    if len(nonpositive) == 0:
-        return float(trapezoid(r, dx=lag_step_s))
-    k0 = int(nonpositive[0])
-    if k0 == 0:
-        return 0.0
-    area = float(trapezoid(r[:k0], dx=lag_step_s)) if k0 > 1 else 0.0
-    last, nxt = r[k0 - 1], r[k0]
-    area += 0.5 * last * lag_step_s * last / (last - nxt)
-    return area
-
-
 def effective_samples(record_s, integral_scale_s, n_samples):
     """Effective number of independent samples ``N_eff = T / (2 T_I)``, within ``[1, n]``.
 
@@ -481,7 +223,7 @@ def effective_samples(record_s, integral_scale_s, n_samples):
     record_s : float
         Record length ``T``.
     integral_scale_s : float
-        Integral time scale ``T_I`` (:func:`integral_time_scale`).
+        Integral time scale ``T_I`` (:func:`corrtransforms.numerics.timescales.integral_time_scale`).
     n_samples : int
         Samples in the record (the upper bound; white noise has ``T_I = dt/2``).
 
@@ -571,57 +313,6 @@ def tone_required_half_length(angular_frequency, target_rel_error=0.05):
         return 1.0 / (2.0 * float(target_rel_error) * np.asarray(angular_frequency, dtype=float))
 
 
-def strongest_tone(frequencies_hz, periodogram, n_averaged: int = 1, ratio: Optional[float] = None,
-                   half_width_bins: Optional[int] = None, exclude_bins: int = 3):
-    """Frequency of the strongest sharp peak of each periodogram (NaN when there is none).
-
-    Parameters
-    ----------
-    frequencies_hz : array_like, shape (K,)
-    periodogram : array_like, shape (n_channels, K) or (K,)
-    n_averaged : int
-        Blocks averaged in the periodogram (sets the default ``ratio``).
-    ratio : float, optional
-        A peak is sharp when it exceeds ``ratio`` times the larger of the medians of the
-        ``half_width_bins`` bins on each side of it (beyond ``exclude_bins`` of its main lobe).
-        None means :func:`tone_ratio` ``(n_averaged)``.
-    half_width_bins : int, optional
-        None means ``max(32, K // 100)``.
-    exclude_bins : int
-        Bins next to the peak left out of the medians (its own main lobe).
-
-    Returns
-    -------
-    frequency_hz : ndarray, shape (n_channels,)
-    peak_ratio : ndarray, shape (n_channels,)
-
-    Notes
-    -----
-    Only the highest bin (at least ``half_width_bins`` from either end) is tested. Common
-    practice; see :data:`TONE_FALSE_ALARM`.
-    """
-    if ratio is None:
-        ratio = tone_ratio(n_averaged)
-    P = np.atleast_2d(np.asarray(periodogram, dtype=float))
-    f = np.asarray(frequencies_hz, dtype=float)
-    K = P.shape[-1]
-    W = int(half_width_bins) if half_width_bins is not None else max(32, K // 100)
-    lo, hi = W + exclude_bins, K - W - exclude_bins
-    if hi <= lo:
-        return np.full(P.shape[0], np.nan), np.full(P.shape[0], np.nan)
-    rows = np.arange(P.shape[0])
-    k = lo + np.argmax(P[:, lo:hi], axis=1)
-    offsets = np.arange(W)
-    left = np.median(P[rows[:, None], (k - exclude_bins - W)[:, None] + offsets], axis=1)
-    right = np.median(P[rows[:, None], (k + exclude_bins + 1)[:, None] + offsets], axis=1)
-    background = np.maximum(left, right)
-    peak = P[rows, k]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        peak_ratio = np.where(background > 0, peak / np.where(background > 0, background, 1.0), np.nan)
-    freq = np.where(peak_ratio >= ratio, f[k], np.nan)
-    return freq, peak_ratio
-
-
 def auto_correlation_checks(R_auto, mean_square, biased_psd, rtol: float = 1e-6) -> List[str]:
     """Validity checks of one estimated auto-correlation; returns quality codes (empty if valid).
 
@@ -632,8 +323,8 @@ def auto_correlation_checks(R_auto, mean_square, biased_psd, rtol: float = 1e-6)
     mean_square : float
         Mean square of the detrended record's valid samples, computed in the time domain.
     biased_psd : array_like
-        :func:`lag_window_psd` of the biased estimate (for the unbiased estimator: the pair
-        counts times ``R`` over ``N``).
+        :func:`corrtransforms.numerics.spectra.lag_window_psd` of the biased estimate (for the
+        unbiased estimator: the pair counts times ``R`` over ``N``).
     rtol : float
         Relative tolerance of the checks (round-off of the FFT is ~1e-13).
 

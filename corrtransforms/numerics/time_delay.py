@@ -20,7 +20,8 @@ import scipy.fft
 import scipy.signal
 from scipy.signal.windows import parzen
 
-WEIGHTINGS = ("none", "phat", "scot")
+from corrtransforms.numerics.correlation import WEIGHTINGS
+from corrtransforms.numerics.envelope import correlation_envelope
 
 #: quality codes of this module (code -> meaning)
 QUALITY_CODES = {
@@ -130,15 +131,6 @@ def refine_peak(values, index: int, upsample: int = UPSAMPLE,
     return float(position), height
 
 
-def _centered_segment(values: np.ndarray, center: int, half: int, window: np.ndarray, n_fft: int):
-    """Lags ``center-half..center+half`` tapered by ``window``, lag ``center`` at index 0."""
-    seg = np.zeros(n_fft)
-    part = np.nan_to_num(values[center - half:center + half + 1]) * window
-    seg[:half + 1] = part[half:]
-    seg[n_fft - half:] = part[:half]
-    return seg
-
-
 def lag_variance(cross, peak_index: int, lag_step_s: float, record_s: float, auto_a=None,
                  auto_b=None, weighting: str = "none", peak_coef: Optional[float] = None) -> float:
     """Small-error variance of the cross-correlation peak lag (Knapp & Carter; Carter).
@@ -188,74 +180,26 @@ def lag_variance(cross, peak_index: int, lag_step_s: float, record_s: float, aut
        time delay", IEEE Trans. Acoust., Speech, Signal Process. 24(4), 320-327, 1976.
     .. [2] G. C. Carter, "Coherence and time delay estimation", Proc. IEEE 75(2), 236-255, 1987.
     """
-    rho = np.asarray(cross, dtype=float)
-    L = (len(rho) - 1) // 2
-    shift = peak_index - L
-    half = L - abs(shift)
-    if auto_a is not None and auto_b is not None:
-        half = min(half, len(auto_a) - 1, len(auto_b) - 1)
-    if half < 4 or not record_s > 0:
-        return float("nan")
-    window = parzen(2 * half + 1)
-    n_fft = scipy.fft.next_fast_len(8 * half, real=False)
-    # real sequences: the spectra are Hermitian (the autos' even segments give real, even
-    # spectra), so every sum below runs over the rfft bins 0..n_fft//2, the bins strictly
-    # between 0 and n_fft/2 counted twice
-    S_ab = lag_step_s * scipy.fft.rfft(_centered_segment(rho, peak_index, half, window, n_fft))
-    mag_ab = np.abs(S_ab)
-    if auto_a is not None and auto_b is not None:
-        # both autos' even segments in one real transform each: rows of one (2, n_fft) array
-        segments = np.zeros((2, n_fft))
-        for row, auto in enumerate((auto_a, auto_b)):
-            a = np.nan_to_num(np.asarray(auto, dtype=float)[:half + 1]) * window[half:]
-            segments[row, :half + 1] = a
-            segments[row, n_fft - half:] = a[:0:-1]
-        spectra = lag_step_s * scipy.fft.rfft(segments, axis=1).real
-        product = np.clip(spectra[0], 0, None) * np.clip(spectra[1], 0, None)
-    else:
-        if peak_coef is None or not np.isfinite(peak_coef) or peak_coef == 0:
-            return float("nan")
-        gamma2 = min(peak_coef ** 2, 0.999)
-        product = mag_ab ** 2 / gamma2
-    f = scipy.fft.rfftfreq(n_fft, lag_step_s)
-    w2 = (2 * np.pi * f) ** 2
-    w2[1:(n_fft + 1) // 2] *= 2.0  # the negative frequencies' share (Hermitian symmetry)
-    tiny = 1e-9 * (mag_ab.max() + 1e-300)
-    if weighting == "none":
-        psi = np.ones_like(mag_ab)
-    elif weighting == "phat":
-        psi = 1.0 / np.maximum(mag_ab, tiny)
-    elif weighting == "scot":
-        psi = 1.0 / np.maximum(np.sqrt(product), tiny)
-    else:
+    if weighting not in WEIGHTINGS:
         raise ValueError(f"weighting={weighting!r}: must be one of " + ", ".join(WEIGHTINGS))
-    df = 1.0 / (n_fft * lag_step_s)
-    numerator = np.sum(w2 * psi ** 2 * np.clip(product - mag_ab ** 2, 0, None)) * df
-    curvature = np.sum(w2 * psi * mag_ab) * df
-    if curvature <= 0:
-        return float("nan")
-    return float(numerator / (record_s * curvature ** 2))
+    rho = np.nan_to_num(np.asarray(cross, dtype=float))[None, :]
+    autos = [None if auto is None else np.nan_to_num(np.asarray(auto, dtype=float)) for auto in (auto_a, auto_b)]
+    coef = np.array([float("nan") if peak_coef is None else float(peak_coef)])
+    return float(_lag_variances(rho, np.array([int(peak_index)]), [0], lag_step_s, np.array([float(record_s)]),
+                                [autos[0]], [autos[1]], [weighting], coef)[0])
 
 
 def envelope_width_s(values, index: int, lag_step_s: float) -> float:
-    """Full width at half maximum of the Hilbert envelope of ``values`` around sample ``index``."""
-    env = np.abs(scipy.signal.hilbert(np.nan_to_num(np.asarray(values, dtype=float))))
-    half = 0.5 * env[index]
-    if not half > 0:
-        return float("nan")
-    left = index
-    while left > 0 and env[left] > half:
-        left -= 1
-    right = index
-    while right < len(env) - 1 and env[right] > half:
-        right += 1
-    if env[left] > half or env[right] > half:
-        return float("nan")
+    """Full width at half maximum of the Hilbert envelope of ``values`` around sample ``index``.
 
-    def cross(i_out, i_in):
-        return i_out + (half - env[i_out]) / (env[i_in] - env[i_out]) * (i_in - i_out)
-
-    return float((cross(right, right - 1) - cross(left, left + 1)) * lag_step_s)
+    A batch of one of the batched form (:func:`estimate_lags`); NaN when the envelope does not
+    fall to half its value at ``index`` on both sides, or is not finite.
+    """
+    try:
+        return float(_envelope_widths(np.nan_to_num(np.asarray(values, dtype=float))[None, :],
+                                      np.array([int(index)]), lag_step_s)[0])
+    except ValueError:  # a non-finite envelope
+        return float("nan")
 
 
 def estimate_lag(coefficient, stderr, first_lag_s: float, lag_step_s: float, record_s: float,
@@ -295,7 +239,7 @@ def estimate_lag(coefficient, stderr, first_lag_s: float, lag_step_s: float, rec
     error interpolated linearly from ``stderr``; ``sd(lag_s)`` from :func:`lag_variance`.
     ``peak_width_s`` is the full width at half maximum of the Hilbert envelope of the located
     function: how sharp the peak is (a narrow-band source gives a broad, oscillating peak; PHAT
-    whitening sharpens it).
+    whitening sharpens it). A batch of one of :func:`estimate_lags`.
 
     References
     ----------
@@ -308,45 +252,15 @@ def estimate_lag(coefficient, stderr, first_lag_s: float, lag_step_s: float, rec
     s = np.asarray(stderr, dtype=float)
     if rho.shape != s.shape or rho.ndim != 1:
         raise ValueError(f"coefficient {rho.shape} and stderr {s.shape} must be 1-d of equal length")
-    if weighting not in WEIGHTINGS:
-        raise ValueError(f"weighting={weighting!r}: must be one of " + ", ".join(WEIGHTINGS))
-    located = rho if weighted_coefficient is None else np.asarray(weighted_coefficient, dtype=float)
-    if located.shape != rho.shape:
-        raise ValueError(f"weighted_coefficient {located.shape} must match coefficient {rho.shape}")
-    if weighted_coefficient is None:
-        weighting = "none"
-    lags = first_lag_s + lag_step_s * np.arange(len(rho))
-    search = np.ones(len(rho), dtype=bool) if max_lag_s is None else np.abs(lags) <= max_lag_s + 1e-9 * lag_step_s
-    idx = np.nonzero(search)[0]
-    nan = float("nan")
-    if len(idx) < 3:
-        return LagEstimate(nan, nan, nan, nan, nan, ("too_few_lags",))
-    quality = []
-    if not np.all(np.isfinite(located[idx])) or not np.all(np.isfinite(rho[idx])):
-        quality.append("nonfinite_correlation")
-    magnitude = np.abs(np.nan_to_num(located[idx]))
-    k = int(idx[int(np.argmax(magnitude))])
-    at_edge = k == idx[0] or k == idx[-1]
-    position, _ = refine_peak(located, k)
-    if at_edge:
-        quality.append("peak_at_max_lag")
-        position = float(k)
-    peak_coef = float(sinc_interpolate(rho, [position], k)[0])
-    j = min(max(int(np.floor(position)), 0), len(rho) - 2)
-    frac = position - j
-    peak_sd = float((1 - frac) * s[j] + frac * s[j + 1])
-    lag_s = nan if at_edge else float(first_lag_s + position * lag_step_s)
-    if np.isfinite(peak_sd) and abs(peak_coef) < peak_z * peak_sd:
-        quality.append("weak_peak")
-    variance = lag_variance(rho, k, lag_step_s, record_s, auto_a, auto_b, weighting, peak_coef)
-    lag_sd = nan if at_edge else float(np.sqrt(variance))
-    width = envelope_width_s(located, k, lag_step_s)
-    return LagEstimate(lag_s, lag_sd, peak_coef, peak_sd, width, tuple(quality))
+    return estimate_lags(rho[None, :], s[None, :], first_lag_s, lag_step_s, [record_s],
+                         weighted_coefficient=None if weighted_coefficient is None else [weighted_coefficient],
+                         weighting=weighting, auto_a=[auto_a], auto_b=[auto_b], max_lag_s=max_lag_s,
+                         peak_z=peak_z)[0]
 
 
 # --------------------------------------------------------------------------------------------
-# Batched form: every cross pair of a window at once (one row per pair), same arithmetic as the
-# per-pair functions above, so each row equals :func:`estimate_lag` of that pair.
+# Batched form: every cross pair of a window at once (one row per pair); the per-pair functions
+# above are batches of one of it.
 # --------------------------------------------------------------------------------------------
 
 #: offsets (in samples) of the fine grid searched by :func:`refine_peak` around the peak sample
@@ -451,7 +365,7 @@ def _envelope_widths(located_clean: np.ndarray, peak_index: np.ndarray, lag_step
     """:func:`envelope_width_s` of every row: one Hilbert transform along the rows, the
     half-maximum crossings found by masks instead of walking."""
     count, n = located_clean.shape
-    env = np.abs(scipy.signal.hilbert(located_clean, axis=-1))
+    env = correlation_envelope(located_clean, auto=False)
     if not np.all(np.isfinite(env)):
         raise ValueError("the Hilbert envelope is not finite: only the per-pair path takes such rows")
     line = np.arange(count)
@@ -497,7 +411,7 @@ def _lag_variances(rho_clean: np.ndarray, peak_index: np.ndarray, rows, lag_step
         segments = np.zeros((len(members), n_fft))
         auto_slot = {}
         for line, (row, half) in enumerate(members):
-            # the lags k-half..k+half tapered, lag k at index 0 (as _centered_segment)
+            # the lags k-half..k+half tapered, lag k at index 0
             center = int(peak_index[row])
             part = rho_clean[row, center - half:center + half + 1] * _parzen(2 * half + 1)
             segments[line, :half + 1] = part[half:]
@@ -527,33 +441,58 @@ def _lag_variances(rho_clean: np.ndarray, peak_index: np.ndarray, rows, lag_step
             else:
                 gamma2 = min(float(peak_coef[row]) ** 2, 0.999)
                 product[line] = mag_ab[line] ** 2 / gamma2
-        f = scipy.fft.rfftfreq(n_fft, lag_step_s)
-        w2 = (2 * np.pi * f) ** 2
-        w2[1:(n_fft + 1) // 2] *= 2.0
-        df = 1.0 / (n_fft * lag_step_s)
-        excess = mag_ab ** 2  # then, in place: clip(product - |S_ab|^2, 0, None)
-        np.subtract(product, excess, out=excess)
-        np.clip(excess, 0, None, out=excess)
-        if all(weightings[row] == "none" for row, _ in members):
-            # psi = 1: w2 * psi**2 and w2 * psi are w2 exactly
-            excess *= w2
-            numerator = np.sum(excess, axis=1) * df
-            curvature = np.sum(w2 * mag_ab, axis=1) * df
-        else:
-            tiny = 1e-9 * (mag_ab.max(axis=1) + 1e-300)
-            psi = np.ones_like(mag_ab)
-            kind = np.array([weightings[row] for row, _ in members])
-            phat, scot = kind == "phat", kind == "scot"
-            if phat.any():
-                psi[phat] = 1.0 / np.maximum(mag_ab[phat], tiny[phat, None])
-            if scot.any():
-                psi[scot] = 1.0 / np.maximum(np.sqrt(product[scot]), tiny[scot, None])
-            numerator = np.sum(w2 * psi ** 2 * excess, axis=1) * df
-            curvature = np.sum(w2 * psi * mag_ab, axis=1) * df
+        numerator, curvature = _variance_sums(mag_ab, product, [weightings[row] for row, _ in members],
+                                              n_fft, lag_step_s)
         for line, (row, _) in enumerate(members):
             if curvature[line] > 0:
                 variance[row] = float(numerator[line] / (record_s[row] * curvature[line] ** 2))
     return variance
+
+
+def _variance_sums(mag_ab: np.ndarray, product: np.ndarray, kinds, n_fft: int, lag_step_s: float):
+    """Numerator ``int w^2 psi^2 [S_aa S_bb - |S_ab|^2] df`` and curvature ``int w^2 psi |S_ab| df``
+    of :func:`lag_variance` for rows of one transform length (``kinds``: each row's weighting)."""
+    f = scipy.fft.rfftfreq(n_fft, lag_step_s)
+    w2 = (2 * np.pi * f) ** 2
+    w2[1:(n_fft + 1) // 2] *= 2.0
+    df = 1.0 / (n_fft * lag_step_s)
+    excess = mag_ab ** 2  # then, in place: clip(product - |S_ab|^2, 0, None)
+    np.subtract(product, excess, out=excess)
+    np.clip(excess, 0, None, out=excess)
+    if all(kind == "none" for kind in kinds):
+        # psi = 1: w2 * psi**2 and w2 * psi are w2 exactly
+        excess *= w2
+        return np.sum(excess, axis=1) * df, np.sum(w2 * mag_ab, axis=1) * df
+    tiny = 1e-9 * (mag_ab.max(axis=1) + 1e-300)
+    psi = np.ones_like(mag_ab)
+    kind = np.array(kinds)
+    phat, scot = kind == "phat", kind == "scot"
+    if phat.any():
+        psi[phat] = 1.0 / np.maximum(mag_ab[phat], tiny[phat, None])
+    if scot.any():
+        psi[scot] = 1.0 / np.maximum(np.sqrt(product[scot]), tiny[scot, None])
+    return np.sum(w2 * psi ** 2 * excess, axis=1) * df, np.sum(w2 * psi * mag_ab, axis=1) * df
+
+
+def _lag_rows(coefficient, stderr, record_s, weighted_coefficient, weighting: str, auto_a, auto_b):
+    """The inputs of :func:`estimate_lags` checked and as arrays: ``(rho, stderr, weighted rows,
+    located, autos_a, autos_b, record_s)``, ``located`` the rows whose peak is searched."""
+    rho = np.asarray(coefficient, dtype=float)
+    s = np.asarray(stderr, dtype=float)
+    if rho.ndim != 2 or rho.shape != s.shape:
+        raise ValueError(f"coefficient {rho.shape} and stderr {s.shape} must be 2-d of equal shape")
+    if weighting not in WEIGHTINGS:
+        raise ValueError(f"weighting={weighting!r}: must be one of " + ", ".join(WEIGHTINGS))
+    count, n = rho.shape
+    weighted = _row_arrays(weighted_coefficient, count, n, "weighted_coefficient")
+    if any(w is not None for w in weighted):
+        located = np.array([rho[i] if w is None else w for i, w in enumerate(weighted)]).reshape(rho.shape)
+    else:
+        located = rho
+    autos_a = _row_arrays(auto_a, count, None, "auto_a", clean=True)
+    autos_b = _row_arrays(auto_b, count, None, "auto_b", clean=True)
+    record = np.broadcast_to(np.asarray(record_s, dtype=float), (count,))
+    return rho, s, weighted, located, autos_a, autos_b, record
 
 
 def estimate_lags(coefficient, stderr, first_lag_s: float, lag_step_s: float, record_s,
@@ -586,23 +525,22 @@ def estimate_lags(coefficient, stderr, first_lag_s: float, lag_step_s: float, re
     Returns
     -------
     list of LagEstimate
-        One per row, in row order; each equals ``estimate_lag`` of that row's pair (the same
-        arithmetic: stacked matrix-vector products, row-wise transforms and sums).
+        One per row, in row order; a row does not depend on the others (stacked matrix-vector
+        products, row-wise transforms and sums). A row holding an infinite value gets NaN and
+        ``nonfinite_correlation``.
 
     Raises
     ------
     ValueError
-        Malformed input (shapes, weighting) or a row whose numbers cannot be located (e.g.
-        infinite correlations); callers that isolate failures per pair fall back to
-        :func:`estimate_lag` pair by pair.
+        Malformed input (shapes, weighting) or a non-finite peak position or envelope; callers
+        that isolate failures per pair call :func:`estimate_lag` pair by pair.
 
     Notes
     -----
-    The formulas are those of :func:`estimate_lag`, :func:`refine_peak`, :func:`lag_variance`
-    and :func:`envelope_width_s`. For a peak sample ``k`` at least ``INTERPOLATION_HALF_WIDTH``
-    lags from both ends, the fine-grid kernel ``sinc(k + t_m - j)`` depends on ``j - k`` and the
-    grid offset ``t_m`` only (``k + t_m`` is exact for ``t_m`` a multiple of 1/32), so one
-    65 x 129 kernel serves every row.
+    The formulas of :func:`estimate_lag`, :func:`refine_peak`, :func:`lag_variance` and
+    :func:`envelope_width_s`. For a peak sample ``k`` at least ``INTERPOLATION_HALF_WIDTH`` lags
+    from both ends, the kernel ``sinc(k + t_m - j)`` depends on ``j - k`` and the grid offset
+    ``t_m`` only (exact multiples of 1/32), so one 65 x 129 kernel serves every row.
 
     References
     ----------
@@ -610,22 +548,10 @@ def estimate_lags(coefficient, stderr, first_lag_s: float, lag_step_s: float, re
        time delay", IEEE Trans. Acoust., Speech, Signal Process. 24(4), 320-327, 1976.
     .. [2] J. S. Bendat and A. G. Piersol, *Random Data*, 4th ed., Wiley, 2010, Sec. 5.1.
     """
-    rho = np.asarray(coefficient, dtype=float)
-    s = np.asarray(stderr, dtype=float)
-    if rho.ndim != 2 or rho.shape != s.shape:
-        raise ValueError(f"coefficient {rho.shape} and stderr {s.shape} must be 2-d of equal shape")
-    if weighting not in WEIGHTINGS:
-        raise ValueError(f"weighting={weighting!r}: must be one of " + ", ".join(WEIGHTINGS))
-    count, n = rho.shape
-    weighted = _row_arrays(weighted_coefficient, count, n, "weighted_coefficient")
+    rho, s, weighted, located, autos_a, autos_b, record = _lag_rows(coefficient, stderr, record_s,
+                                                                    weighted_coefficient, weighting, auto_a, auto_b)
     weightings = [("none" if w is None else weighting) for w in weighted]
-    if any(w is not None for w in weighted):
-        located = np.array([rho[i] if w is None else w for i, w in enumerate(weighted)]).reshape(rho.shape)
-    else:
-        located = rho
-    autos_a = _row_arrays(auto_a, count, None, "auto_a", clean=True)
-    autos_b = _row_arrays(auto_b, count, None, "auto_b", clean=True)
-    record = np.broadcast_to(np.asarray(record_s, dtype=float), (count,))
+    count, n = rho.shape
     nan = float("nan")
     if count == 0:
         return []
@@ -634,8 +560,27 @@ def estimate_lags(coefficient, stderr, first_lag_s: float, lag_step_s: float, re
     idx = np.nonzero(search)[0]
     if len(idx) < 3:
         return [LagEstimate(nan, nan, nan, nan, nan, ("too_few_lags",))] * count
-    if np.isinf(located).any() or np.isinf(rho).any():
-        raise ValueError("infinite correlation values: only the per-pair path (estimate_lag) takes them")
+    infinite = np.isinf(located).any(axis=1) | np.isinf(rho).any(axis=1)
+    if infinite.any():  # no peak can be located: NaN and the code, the other rows as usual
+        out = [LagEstimate(nan, nan, nan, nan, nan, ("nonfinite_correlation",))] * count
+        finite_rows = np.flatnonzero(~infinite)
+        found = estimate_lags(rho[finite_rows], s[finite_rows], first_lag_s, lag_step_s, record[finite_rows],
+                              weighted_coefficient=[weighted[i] for i in finite_rows], weighting=weighting,
+                              auto_a=[autos_a[i] for i in finite_rows], auto_b=[autos_b[i] for i in finite_rows],
+                              max_lag_s=max_lag_s, peak_z=peak_z)
+        for i, estimate in zip(finite_rows, found):
+            out[i] = estimate
+        return out
+    return _finite_row_estimates(rho, s, located, idx, record, autos_a, autos_b, weightings, first_lag_s,
+                                 lag_step_s, peak_z)
+
+
+def _finite_row_estimates(rho, s, located, idx, record, autos_a, autos_b, weightings, first_lag_s: float,
+                          lag_step_s: float, peak_z: float) -> List[LagEstimate]:
+    """The steps of :func:`estimate_lags` on rows without infinite values: peak sample in the
+    search range ``idx``, refined position, peak coefficient and its stderr, lag variance, width."""
+    count, n = rho.shape
+    nan = float("nan")
     nonfinite = ~(np.all(np.isfinite(located[:, idx]), axis=1) & np.all(np.isfinite(rho[:, idx]), axis=1))
     located_clean = np.nan_to_num(located)
     k = idx[np.argmax(np.abs(located_clean[:, idx]), axis=1)]

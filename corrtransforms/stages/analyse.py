@@ -20,19 +20,12 @@ import dataclasses
 from typing import Dict, List, Optional, Tuple
 
 from corrtransforms.config import AssetConfig
+from corrtransforms.numerics.correlation import pairs_by_name
 from corrtransforms.records import WindowCorrelation
 from corrtransforms.rejects import Reject
 from corrtransforms.stages.screen import screen_window
 from corrtransforms.records import WindowBlock
 from corrtransforms.stages.correlate import correlate_window
-
-
-def _screened_pairs(config: AssetConfig, block: WindowBlock):
-    pairs = config.correlation.pairs
-    if isinstance(pairs, str):
-        return pairs
-    present = set(block.channels)
-    return [p for p in pairs if p[0] in present and p[1] in present]
 
 
 def analyse_window(block: WindowBlock, config: AssetConfig
@@ -53,7 +46,9 @@ def analyse_window(block: WindowBlock, config: AssetConfig
     rejects : list of Reject
         The screening's ``nonstationary_window`` reject when excluded, else empty.
     """
-    screening = screen_window(block, config.screening, _screened_pairs(config, block))
+    names = tuple(block.channels)
+    screened = [(names[a], names[b]) for a, b in pairs_by_name(config.correlation.pairs, names)]
+    screening = screen_window(block, config.screening, screened)
     if screening.excluded:
         return None, list(screening.rejects)
     result = correlate_window(block, config)

@@ -12,14 +12,17 @@ pairs keep lags ``0..L``, cross pairs ``-L..L``.
 """
 from __future__ import annotations
 
-from typing import Dict, Iterable, List, Sequence, Tuple
+from typing import Dict, Iterable, List
 
 import numpy as np
 import pyarrow as pa
 
 from corrtransforms.numerics import random_error as err
+from corrtransforms.numerics.bartlett import bartlett_stderr
 from corrtransforms.config import AssetConfig
-from corrtransforms.numerics.correlation import DEFAULT_MIN_PAIRS, channel_spectra, correlate_spectra
+from corrtransforms.numerics.correlation import DEFAULT_MIN_PAIRS, channel_spectra, correlate_spectra, pairs_by_name
+from corrtransforms.numerics.spectra import lag_window_psd, strongest_tone
+from corrtransforms.numerics.timescales import integral_time_scale
 from corrtransforms.records import ModeCorrelation, PairCorrelation, WindowCorrelation, quality_text
 from corrtransforms.tables import CORRELATIONS, TIMESTAMP
 from corrtransforms.records import WindowBlock
@@ -37,23 +40,6 @@ def _usable_channels(spectra, min_pairs: int) -> np.ndarray:
     var = np.nan_to_num(spectra.variance)
     flat = var <= 1e-20 * spectra.channel_mean ** 2
     return (spectra.valid_counts >= max(min_pairs, 2)) & ~flat & (var > 0)
-
-
-def _requested_pairs(pairs, names: Sequence[str], usable: np.ndarray) -> List[Tuple[int, int]]:
-    used = [i for i in range(len(names)) if usable[i]]
-    if pairs == "auto":
-        return [(i, i) for i in used]
-    if pairs == "all":
-        return [(i, j) for k, i in enumerate(used) for j in used[k:]]
-    index = {name: i for i, name in enumerate(names)}
-    out = []
-    for a, b in pairs:
-        ia, ib = index.get(a), index.get(b)
-        if ia is None or ib is None or not usable[ia] or not usable[ib]:
-            continue  # the reader has emitted a reject for the missing or unusable channel
-        if (ia, ib) not in out:
-            out.append((ia, ib))
-    return out
 
 
 def correlate_window(block: WindowBlock, config: AssetConfig,
@@ -108,135 +94,169 @@ def correlate_window(block: WindowBlock, config: AssetConfig,
     fs = float(block.sample_rate_hz)
     names = tuple(block.channels)
     spectra = channel_spectra(block.values, fs, cc.max_lag_s, valid=block.valid, detrend=cc.detrend)
-    L, n = spectra.max_lag, spectra.n_samples
     usable = _usable_channels(spectra, min_pairs)
-    requested = _requested_pairs(cc.pairs, names, usable)
+    requested = list(pairs_by_name(cc.pairs, names, usable))
     used = [i for i in range(len(names)) if usable[i]]
     channel_codes = {names[i]: tuple(block.channel_quality.get(names[i], ())) for i in used}
-
     autos = [(i, i) for i in used]
     needed = autos + [p for p in requested if p[0] != p[1]]
     est = correlate_spectra(spectra, needed, estimator=cc.estimator, min_pairs=min_pairs) if needed else None
-
-    rms: Dict[str, float] = {}
-    rms_stderr: Dict[str, float] = {}
+    channels = _ChannelFigures(spectra, est, used, cc) if est is not None else None
     pairs_out: List[PairCorrelation] = []
     modes_out: List[ModeCorrelation] = []
     if est is not None:
-        dt = 1.0 / fs
-        target = cc.target_rel_error
-        auto_row = {i: k for k, i in enumerate(used)}
-        rho_auto = est.coefficient[:len(used)]
+        if requested:
+            pairs_out = _pair_correlations(spectra, est, channels, requested, needed, names, channel_codes, cc,
+                                           min_pairs)
+        modes_out = _mode_correlations(spectra, config, names, usable, channel_codes, min_pairs)
+    return WindowCorrelation(
+        asset=block.asset, window_start_us=int(block.window_start_us), sample_rate_hz=fs,
+        n_samples=spectra.n_samples, channels=tuple(names[i] for i in used),
+        rms={} if channels is None else {names[i]: channels.rms[i] for i in used},
+        rms_stderr={} if channels is None else {names[i]: channels.rms_stderr[i] for i in used},
+        pairs=tuple(pairs_out), modes=tuple(modes_out), covariates=dict(block.covariates),
+        subject_quality={name: codes for name, codes in channel_codes.items() if codes},
+    )
+
+
+def _undecayed(rho_tail: np.ndarray, L: int) -> bool:
+    """|rho| above :data:`UNDECAYED_COEFFICIENT` in the last 10 % of the positive lags."""
+    tail = max(1, int(np.ceil(0.1 * L)))
+    return L > 0 and np.nanmax(np.abs(rho_tail[-tail:]), initial=0.0) > UNDECAYED_COEFFICIENT
+
+
+class _ChannelFigures:
+    """Per usable channel (row ``k`` is channel ``used[k]``): the biased PSD and its statistical
+    bandwidth, integral time scale, strongest tone, validity checks, rms and its stderr."""
+
+    def __init__(self, spectra, est, used: List[int], cc):
+        fs, L = spectra.sample_rate_hz, spectra.max_lag
+        self.auto_row = {i: k for k, i in enumerate(used)}
+        self.rho = est.coefficient[:len(used)]
         count_auto = est.pair_count[:len(used)]
         valid_counts = spectra.valid_counts[used].astype(float)
         # biased auto-correlations for the PSD and the validity checks
         R_auto = est.R[:len(used)]
-        if cc.estimator == "unbiased":
-            R_biased = R_auto * count_auto / valid_counts[:, None]
-        else:
-            R_biased = R_auto
-        freqs, psd = err.lag_window_psd(R_biased, fs)
-        bandwidth_ch = err.statistical_bandwidth(freqs, psd)
-        # per-channel figures
+        R_biased = R_auto * count_auto / valid_counts[:, None] if cc.estimator == "unbiased" else R_auto
+        self.frequencies_hz, self.psd = lag_window_psd(R_biased, fs)
+        self.bandwidth_hz = err.statistical_bandwidth(self.frequencies_hz, self.psd)
         # general (Bartlett) relative error of each mean square: var R(0) / R(0)^2 =
         # sum_v [rho(v)^2 + rho(v) rho(-v)] / N = 2 sum_v rho(v)^2 / N (correlation_random_error at 0)
-        finite_auto = np.where(np.isfinite(rho_auto), rho_auto, 0.0)
+        finite_auto = np.where(np.isfinite(self.rho), self.rho, 0.0)
         ms_rel = np.sqrt(2.0 * np.einsum("ij,ij->i", finite_auto, finite_auto) / count_auto[:, L])
-        integral_scale = np.array([err.integral_time_scale(r[L:], dt) for r in rho_auto])
-        tone_freq, _ = err.strongest_tone(spectra.frequencies_hz(), spectra.periodogram()[used],
-                                          n_averaged=spectra.n_segments)
-        tone_record = 2.0 * err.tone_required_half_length(2 * np.pi * tone_freq, target)
-        tail = max(1, int(np.ceil(0.1 * L)))
-        checks = {}
+        self.integral_scale_s = np.array([integral_time_scale(r[L:], 1.0 / fs) for r in self.rho])
+        self.tone_freq_hz, _ = strongest_tone(spectra.frequencies_hz(), spectra.periodogram()[used],
+                                              n_averaged=spectra.n_segments)
+        self.tone_record_s = 2.0 * err.tone_required_half_length(2 * np.pi * self.tone_freq_hz,
+                                                                 cc.target_rel_error)
+        self.checks, self.rms, self.rms_stderr = {}, {}, {}
         for k, i in enumerate(used):
-            codes = list(err.auto_correlation_checks(R_auto[k], spectra.mean_square[i], psd[k]))
-            if L > 0 and np.nanmax(np.abs(rho_auto[k, L + 1:][-tail:]), initial=0.0) > UNDECAYED_COEFFICIENT:
+            codes = list(err.auto_correlation_checks(R_auto[k], spectra.mean_square[i], self.psd[k]))
+            if _undecayed(self.rho[k, L + 1:], L):
                 codes.append("max_lag_short")
-            checks[i] = codes
+            self.checks[i] = codes
             r = float(np.sqrt(spectra.mean_square[i]))
-            rms[names[i]] = r
-            rms_stderr[names[i]] = float(r * ms_rel[k] / 2.0)
+            self.rms[i] = r
+            self.rms_stderr[i] = float(r * ms_rel[k] / 2.0)
 
-        if requested:
-            row_of = {p: k for k, p in enumerate(needed)}
-            rows = np.array([row_of[p] for p in requested])
-            a_rows = np.array([auto_row[a] for a, _ in requested])
-            b_rows = np.array([auto_row[b] for _, b in requested])
-            rho = est.coefficient[rows]
-            counts = est.pair_count[rows]
-            stderr = err.bartlett_stderr(rho, rho_auto[a_rows], rho_auto[b_rows], counts)
-            is_auto = np.array([a == b for a, b in requested])
-            bandwidth = np.where(is_auto, bandwidth_ch[a_rows],
-                                 err.statistical_bandwidth(freqs, psd[a_rows], psd[b_rows]))
-            record_s = counts[:, L] / fs
-            bt = bandwidth * record_s
-            abs_rho = np.where(np.isfinite(rho), np.abs(rho), -1.0)
-            peak = rho[np.arange(len(rows)), np.argmax(abs_rho, axis=1)]
-            rel_error = np.where(is_auto, err.mean_square_rel_error(bandwidth, record_s),
-                                 err.correlation_rel_error(peak, bandwidth, record_s))
-            required = np.where(is_auto, err.required_record_length(bandwidth, target),
-                                err.required_record_length(bandwidth, target, rho=peak))
-            n_eff = err.effective_samples(record_s, np.maximum(integral_scale[a_rows], integral_scale[b_rows]),
-                                          counts[:, L])
-            weighted = {}
-            cross = [p for p in requested if p[0] != p[1]]
-            if cc.weighting != "none" and cross:
-                west = correlate_spectra(spectra, cross, estimator=cc.estimator, weighting=cc.weighting,
-                                         min_pairs=min_pairs)
-                weighted = {p: west.coefficient[k] for k, p in enumerate(cross)}
-            for k, (a, b) in enumerate(requested):
-                ka, kb = a_rows[k], b_rows[k]
-                tones = [(tone_record[ka], tone_freq[ka]), (tone_record[kb], tone_freq[kb])]
-                tones = [t for t in tones if np.isfinite(t[0])]
-                t_record, t_freq = max(tones) if tones else (np.nan, np.nan)
-                codes = list(channel_codes[names[a]]) + list(channel_codes[names[b]])
-                codes += checks[a] + (checks[b] if b != a else [])
-                if not np.all(np.isfinite(rho[k])):
-                    codes.append("few_pairs")
-                if a != b and np.nanmax(np.abs(rho[k]), initial=0.0) > 1.0 + 1e-9:
-                    codes.append("coefficient_exceeds_one")
-                if np.isfinite(t_record) and record_s[k] < t_record:
-                    codes.append("tone_record_short")
-                sl = slice(L, None) if a == b else slice(None)
-                pairs_out.append(PairCorrelation(
-                    channel_a=names[a], channel_b=names[b],
-                    first_lag_s=0.0 if a == b else -L / fs, lag_step_s=dt,
-                    coefficient=rho[k, sl].copy(), stderr=stderr[k, sl].copy(),
-                    pair_count=counts[k, sl].copy(), scale=float(est.scale[rows[k]]),
-                    coverage=float(counts[k, L] / n) if n else 0.0,
-                    bandwidth_hz=float(bandwidth[k]), record_s=float(record_s[k]),
-                    rel_error=float(rel_error[k]), required_record_s=float(required[k]),
-                    meets_target=bool(rel_error[k] <= target),
-                    bandwidth_time=float(bt[k]), n_effective=float(n_eff[k]),
-                    tone_freq_hz=float(t_freq), tone_required_record_s=float(t_record),
-                    quality=tuple(sorted(set(codes))),
-                    weighted_coefficient=weighted.get((a, b)),
-                ))
 
-        for mode in config.modes:
-            if mode.channel not in names or not usable[names.index(mode.channel)]:
-                continue  # the reader has emitted a reject for this channel
-            c = names.index(mode.channel)
-            mest = correlate_spectra(spectra, [(c, c)], estimator=cc.estimator, band_hz=mode.band_hz,
-                                     min_pairs=min_pairs)
-            rho_m = mest.coefficient[0]
-            se_m = err.bartlett_stderr(rho_m, rho_m, rho_m, mest.pair_count[0])
-            codes = list(channel_codes[mode.channel])
-            if not np.all(np.isfinite(rho_m)):
-                codes.append("few_pairs")
-            if L > 0 and np.nanmax(np.abs(rho_m[L + 1:][-tail:]), initial=0.0) > UNDECAYED_COEFFICIENT:
-                codes.append("max_lag_short")
-            modes_out.append(ModeCorrelation(
-                mode=mode.name, channel=mode.channel, band_hz=tuple(mode.band_hz), lag_step_s=dt,
-                coefficient=rho_m[L:].copy(), stderr=se_m[L:].copy(),
-                record_s=float(spectra.valid_counts[c] / fs), quality=tuple(sorted(set(codes)))))
+def _pair_correlations(spectra, est, channels: _ChannelFigures, requested, needed, names, channel_codes, cc,
+                       min_pairs: int) -> List[PairCorrelation]:
+    """One :class:`PairCorrelation` per requested pair, with its error metadata and quality."""
+    fs, L, n = spectra.sample_rate_hz, spectra.max_lag, spectra.n_samples
+    target = cc.target_rel_error
+    row_of = {p: k for k, p in enumerate(needed)}
+    rows = np.array([row_of[p] for p in requested])
+    a_rows = np.array([channels.auto_row[a] for a, _ in requested])
+    b_rows = np.array([channels.auto_row[b] for _, b in requested])
+    rho = est.coefficient[rows]
+    counts = est.pair_count[rows]
+    figures = _pair_error_figures(rho, counts, channels, a_rows, b_rows,
+                                  np.array([a == b for a, b in requested]), fs, L, target)
+    weighted = {}
+    cross = [p for p in requested if p[0] != p[1]]
+    if cc.weighting != "none" and cross:
+        west = correlate_spectra(spectra, cross, estimator=cc.estimator, weighting=cc.weighting,
+                                 min_pairs=min_pairs)
+        weighted = {p: west.coefficient[k] for k, p in enumerate(cross)}
+    out = []
+    for k, (a, b) in enumerate(requested):
+        ka, kb = a_rows[k], b_rows[k]
+        tones = [(channels.tone_record_s[ka], channels.tone_freq_hz[ka]),
+                 (channels.tone_record_s[kb], channels.tone_freq_hz[kb])]
+        tones = [t for t in tones if np.isfinite(t[0])]
+        t_record, t_freq = max(tones) if tones else (np.nan, np.nan)
+        codes = list(channel_codes[names[a]]) + list(channel_codes[names[b]])
+        codes += channels.checks[a] + (channels.checks[b] if b != a else [])
+        if not np.all(np.isfinite(rho[k])):
+            codes.append("few_pairs")
+        if a != b and np.nanmax(np.abs(rho[k]), initial=0.0) > 1.0 + 1e-9:
+            codes.append("coefficient_exceeds_one")
+        if np.isfinite(t_record) and figures["record_s"][k] < t_record:
+            codes.append("tone_record_short")
+        sl = slice(L, None) if a == b else slice(None)
+        out.append(PairCorrelation(
+            channel_a=names[a], channel_b=names[b],
+            first_lag_s=0.0 if a == b else -L / fs, lag_step_s=1.0 / fs,
+            coefficient=rho[k, sl].copy(), stderr=figures["stderr"][k, sl].copy(),
+            pair_count=counts[k, sl].copy(), scale=float(est.scale[rows[k]]),
+            coverage=float(counts[k, L] / n) if n else 0.0,
+            bandwidth_hz=float(figures["bandwidth_hz"][k]), record_s=float(figures["record_s"][k]),
+            rel_error=float(figures["rel_error"][k]), required_record_s=float(figures["required_record_s"][k]),
+            meets_target=bool(figures["rel_error"][k] <= target),
+            bandwidth_time=float(figures["bandwidth_time"][k]), n_effective=float(figures["n_effective"][k]),
+            tone_freq_hz=float(t_freq), tone_required_record_s=float(t_record),
+            quality=tuple(sorted(set(codes))),
+            weighted_coefficient=weighted.get((a, b)),
+        ))
+    return out
 
-    return WindowCorrelation(
-        asset=block.asset, window_start_us=int(block.window_start_us), sample_rate_hz=fs,
-        n_samples=n, channels=tuple(names[i] for i in used), rms=rms, rms_stderr=rms_stderr,
-        pairs=tuple(pairs_out), modes=tuple(modes_out), covariates=dict(block.covariates),
-        subject_quality={name: codes for name, codes in channel_codes.items() if codes},
-    )
+
+def _pair_error_figures(rho, counts, channels: _ChannelFigures, a_rows, b_rows, is_auto, fs: float, L: int,
+                        target: float) -> Dict[str, np.ndarray]:
+    """Record-length error metadata of the requested pairs (rows): per-lag stderr, bandwidth,
+    record length, BT, closed-form relative error, required record length, N_eff."""
+    stderr = bartlett_stderr(rho, channels.rho[a_rows], channels.rho[b_rows], counts)
+    bandwidth = np.where(is_auto, channels.bandwidth_hz[a_rows],
+                         err.statistical_bandwidth(channels.frequencies_hz, channels.psd[a_rows],
+                                                   channels.psd[b_rows]))
+    record_s = counts[:, L] / fs
+    abs_rho = np.where(np.isfinite(rho), np.abs(rho), -1.0)
+    peak = rho[np.arange(len(rho)), np.argmax(abs_rho, axis=1)]
+    rel_error = np.where(is_auto, err.mean_square_rel_error(bandwidth, record_s),
+                         err.correlation_rel_error(peak, bandwidth, record_s))
+    required = np.where(is_auto, err.required_record_length(bandwidth, target),
+                        err.required_record_length(bandwidth, target, rho=peak))
+    scales = np.maximum(channels.integral_scale_s[a_rows], channels.integral_scale_s[b_rows])
+    return {"stderr": stderr, "bandwidth_hz": bandwidth, "record_s": record_s,
+            "bandwidth_time": bandwidth * record_s, "rel_error": rel_error, "required_record_s": required,
+            "n_effective": err.effective_samples(record_s, scales, counts[:, L])}
+
+
+def _mode_correlations(spectra, config: AssetConfig, names, usable, channel_codes,
+                       min_pairs: int) -> List[ModeCorrelation]:
+    """The band-limited auto-correlation of every configured single-channel mode."""
+    cc = config.correlation
+    fs, L = spectra.sample_rate_hz, spectra.max_lag
+    out = []
+    for mode in config.modes:
+        if mode.channel not in names or not usable[names.index(mode.channel)]:
+            continue  # the reader has emitted a reject for this channel
+        c = names.index(mode.channel)
+        mest = correlate_spectra(spectra, [(c, c)], estimator=cc.estimator, band_hz=mode.band_hz,
+                                 min_pairs=min_pairs)
+        rho_m = mest.coefficient[0]
+        se_m = bartlett_stderr(rho_m, rho_m, rho_m, mest.pair_count[0])
+        codes = list(channel_codes[mode.channel])
+        if not np.all(np.isfinite(rho_m)):
+            codes.append("few_pairs")
+        if _undecayed(rho_m[L + 1:], L):
+            codes.append("max_lag_short")
+        out.append(ModeCorrelation(
+            mode=mode.name, channel=mode.channel, band_hz=tuple(mode.band_hz), lag_step_s=1.0 / fs,
+            coefficient=rho_m[L:].copy(), stderr=se_m[L:].copy(),
+            record_s=float(spectra.valid_counts[c] / fs), quality=tuple(sorted(set(codes)))))
+    return out
 
 
 def _list_column(arrays: List[np.ndarray]) -> pa.Array:
