@@ -43,7 +43,7 @@ import scipy.linalg
 import scipy.signal
 
 from corrtransforms.config import parse_config
-from corrtransforms.records import WindowBlock, quality_codes
+from corrtransforms.records import WindowBlock, holds_window, quality_codes
 from corrtransforms.stages.analyse import analyse_window
 from corrtransforms.stages.indicators import window_indicators
 
@@ -445,7 +445,7 @@ def held(value: float, stderr: float, quality: str) -> bool:
     """Would the shift detectors hold this window out (as :mod:`corrtransforms.stages.shifts`)?"""
     if not (np.isfinite(value) and np.isfinite(stderr)):
         return True
-    return any(c.startswith("nonstationary") for c in quality_codes(quality))
+    return holds_window(quality_codes(quality))
 
 
 def cell_summary(truth: float, observations: List[Observation]) -> dict:

@@ -23,6 +23,18 @@ import numpy as np
 OK = "ok"
 
 
+#: Quality codes that hold a window out of the shift detectors (the row is written, but neither
+#: the baseline nor the detectors take it): the record is not stationary, or the value's standard
+#: error cannot be trusted (a lag peak that the weighting made up, too few independent samples for
+#: the error formulas). A code matches when it starts with one of these prefixes.
+HOLDING_CODES = ("nonstationary", "spurious_lag_peak", "few_effective_samples")
+
+
+def holds_window(codes) -> bool:
+    """True when any of ``codes`` holds the window out of the shift detectors (:data:`HOLDING_CODES`)."""
+    return any(str(c).startswith(HOLDING_CODES) for c in codes)
+
+
 def quality_text(codes) -> str:
     """Quality codes as stored in tables: "ok" when empty, else sorted unique codes joined by ";"."""
     unique = sorted({c for c in codes if c and c != OK})

@@ -45,7 +45,7 @@ import pyarrow as pa
 from corrtransforms import tables
 from corrtransforms.numerics.covariate_model import BaselineModel, fit_baseline_model
 from corrtransforms.numerics.detectors import cusum_path, cusum_run_lengths, cusum_run_sums, ewma_limits, ewma_path
-from corrtransforms.records import IndicatorRow, quality_codes, quality_text
+from corrtransforms.records import IndicatorRow, holds_window, quality_codes, quality_text
 from corrtransforms.rejects import Reject, iso_utc
 from corrtransforms.timeutil import day_date, day_number, local_days
 from corrtransforms.stages.state import (ACCUMULATING, BASELINE, FITTED, NORMAL, SHIFTED, ShiftState,
@@ -168,7 +168,7 @@ def _timestamps(values: Sequence[Optional[int]]) -> pa.Array:
 
 
 def _is_nonstationary(codes: Tuple[str, ...]) -> bool:
-    return any(c.startswith("nonstationary") for c in codes)
+    return holds_window(codes)
 
 
 def _standardised_residuals(model: BaselineModel, v, se, x):
