@@ -515,7 +515,7 @@ def _parse_baseline(raw: Mapping[str, Any]) -> BaselineConfig:
     if (b_start is None) != (b_end is None):
         raise ConfigError("[baseline] start" if b_start is None else "[baseline] end", None,
                           "start and end must be given together")
-    if b_start is not None and b_end < b_start:
+    if b_start is not None and b_end is not None and b_end < b_start:
         raise ConfigError("[baseline] end", b_end.isoformat(), f"must not be before start ({b_start})")
     b_windows = (_number("[baseline] windows", base["windows"], low=2, integer=True)
                  if "windows" in base else None)

@@ -49,7 +49,9 @@ def local_to_utc_us(local_us: np.ndarray, timezone: str) -> np.ndarray:
     offsets = np.empty(len(buckets), dtype=np.int64)
     for i, b in enumerate(buckets):
         wall = epoch + _dt.timedelta(microseconds=int(b) * quarter)
-        offsets[i] = int(wall.replace(tzinfo=zone).utcoffset() / _dt.timedelta(microseconds=1))
+        offset = wall.replace(tzinfo=zone).utcoffset()
+        assert offset is not None  # a ZoneInfo always gives an offset
+        offsets[i] = int(offset / _dt.timedelta(microseconds=1))
     return local_us - offsets[inverse.reshape(-1)]
 
 

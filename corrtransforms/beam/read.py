@@ -33,7 +33,7 @@ class _ReadWindowsFn(beam.DoFn):
                     self._samples.inc(int(item.valid.sum()))
                     yield item
                 else:
-                    if item.rejects_whole_window:
+                    if item.rejects_whole_window and item.window_start_us is not None:
                         done.add(item.window_start_us)
                     count_reject(item)
                     yield beam.pvalue.TaggedOutput("rejects", item)

@@ -345,8 +345,8 @@ def _detrend_rows(rows: np.ndarray, n: int, valid_rows: Optional[np.ndarray], co
             s1 = np.zeros(len(counts))
             s2 = np.full(len(counts), float(np.dot(t, t)))
         else:
-            s1 = np.einsum("ij,j->i", valid_rows, t, dtype=float)
-            s2 = np.einsum("ij,j->i", valid_rows, t * t, dtype=float)
+            s1 = np.einsum("ij,j->i", valid_rows, t, dtype=float)  # type: ignore[arg-type]
+            s2 = np.einsum("ij,j->i", valid_rows, t * t, dtype=float)  # type: ignore[arg-type]
         sty = np.einsum("ij,j->i", body, t)
         denom = counts * s2 - s1 * s1
         ok = (counts >= 2) & (denom > 0)
@@ -464,11 +464,12 @@ def channel_spectra(values, fs: float, max_lag_s: float, valid=None,
     complete = bool(valid.all())
     # channels as contiguous rows (transforms along the last axis of contiguous rows are
     # several times faster than along axis 0)
-    valid_rows = None if complete else np.ascontiguousarray(valid.T)
+    valid_rows: Optional[np.ndarray] = None
     if complete:
         rows = np.array(values.T, order="C", copy=True)  # detrended in place below
         counts = np.full(values.shape[1], n, dtype=np.int64)
     else:
+        valid_rows = np.ascontiguousarray(valid.T)
         rows = np.where(valid_rows, values.T, 0.0)
         counts = valid_rows.sum(axis=1).astype(np.int64)
     channel_mean, variance = _detrend_rows(rows, n, valid_rows, counts, detrend)
@@ -479,7 +480,7 @@ def channel_spectra(values, fs: float, max_lag_s: float, valid=None,
             mean_square = np.where(counts > 0, np.einsum("ij,ij->i", rows, rows) / np.maximum(counts, 1), np.nan)
     blocks, extended = _block_transforms(rows, max_lag, S, Q)
     mask_blocks = mask_extended = None
-    if not complete:
+    if valid_rows is not None:
         mask_blocks, mask_extended = _block_transforms(valid_rows.astype(float), max_lag, S, Q)
     return ChannelSpectra(sample_rate_hz=float(fs), n_samples=n, max_lag=max_lag, segment_length=S,
                           segment_fft_length=Q, segment_spectra=blocks, extended_spectra=extended,
@@ -695,6 +696,7 @@ def _full_sums(spectra: ChannelSpectra, a_idx, b_idx, band_hz, weighting):
             if weighting == "phat":
                 denom = np.abs(cross)
             else:
+                assert smoothed is not None  # computed above for SCOT
                 denom = np.sqrt(smoothed[ra[start:stop]] * smoothed[rb[start:stop]])
             tiny = 1e-12 * denom.max(axis=-1, keepdims=True) + 1e-300
             w = np.where(denom > tiny, 1.0 / np.maximum(denom, tiny), 0.0)

@@ -374,6 +374,6 @@ def _correlated_meat(Jw: np.ndarray, model: np.ndarray, lags: np.ndarray, sig: n
     G, nodes = coarsen_lags(Jw / sig[:, None], lags, len(model))
     spacing = np.diff(nodes)
     if len(nodes) < 3 or np.any(spacing != spacing[0]):
-        sigma = scale ** 2 * bartlett_kernel(model, nodes)
+        sigma = scale ** 2 * bartlett_kernel(model, [int(k) for k in nodes])
         return G.T @ sigma @ G
     return scale ** 2 * kernel_quadratic_form(model, int(nodes[0]), int(spacing[0]), G)

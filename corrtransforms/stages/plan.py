@@ -26,7 +26,7 @@ import json
 import math
 import os
 import re
-from typing import Callable, Dict, Iterable, List, Optional, Sequence, Tuple
+from typing import Any, Callable, Dict, Iterable, List, Optional, Sequence, Set, Tuple
 
 import numpy as np
 import pyarrow as pa
@@ -44,7 +44,7 @@ _BYTES_PER_VALUE = 8
 #: bytes per row of the long layout: time (8) + value (8) + channel code (4)
 _BYTES_PER_LONG_ROW = 20
 
-OpenFile = Callable[[str], "object"]
+OpenFile = Callable[[str], Any]
 
 
 def open_local_file(path: str):
@@ -392,7 +392,7 @@ def record_window_starts(records: Sequence[Tuple[int, int]], config: AssetConfig
     """Window starts of ``[windows] align = "records"``: per record ``first + j * hop`` for every
     window that holds one of the record's samples (sorted, each once)."""
     _, hop_us, _, period_us = window_grid(config)
-    starts = set()
+    starts: Set[int] = set()
     for first, last in records:
         count = math.floor((last + period_us / 2 - first) / hop_us) + 1
         starts.update(first + j * hop_us for j in range(count))
@@ -513,7 +513,7 @@ def missing_channels(footers: Sequence[FileFooter], config: AssetConfig) -> Dict
             raise ConfigError("[channels] names", name, "is in no file; columns found: " + ", ".join(found))
     """
     long = config.archive.layout == "long"
-    found = set()
+    found: Set[str] = set()
     for footer in footers:
         found.update(footer.long_channels if long else footer.numeric_columns)
     found.discard(config.archive.time_column)
@@ -645,7 +645,7 @@ def _window_needs(usable: Sequence[_UsableFile], config: AssetConfig, lo_us: Opt
             if record_starts is None:
                 first = math.floor((rg.start_us - offset_us - length_us + half_period) / hop_us) + 1
                 last = math.floor((rg.end_us - offset_us + half_period) / hop_us)
-                starts = [offset_us + k * hop_us for k in range(first, last + 1)]
+                starts: Sequence[int] = [offset_us + k * hop_us for k in range(first, last + 1)]
             else:
                 # starts s with rg.start - length + T/2 < s <= rg.end + T/2
                 a = bisect.bisect_right(record_starts, rg.start_us - length_us + half_period)

@@ -132,8 +132,9 @@ def _read_piece(handle, piece) -> Tuple[List[Tuple[int, Optional[pa.Table]]], Li
     return done, failed
 
 
-def _row_group_columns(table: pa.Table, piece, names, archive, wide: bool) -> Dict[str, pa.Array]:
-    """The row group's columns as the task needs them (raises on types that cannot be cast)."""
+def _row_group_columns(table: pa.Table, piece, names, archive, wide: bool) -> Tuple[Dict[str, pa.Array], bool]:
+    """The row group's columns as the task needs them, and whether its times were naive (raises on
+    types that cannot be cast)."""
     times, naive = _time_to_us(table.column(archive.time_column))
     columns = {"time": times}
     if wide:
@@ -192,7 +193,7 @@ def _piece_rows(task: ReadTask, piece, names, config: AssetConfig, open_file: Op
             decoded, failed = _read_piece(handle, piece)
     except Exception as err:  # noqa: BLE001 - reported, the task's other files still count
         decoded, failed = [], [(rg, f"{type(err).__name__}: {err}") for rg in piece.row_groups]
-    kept = []
+    kept: List[Tuple[pa.Table, bool]] = []
     for rg, table in decoded:
         try:
             columns, naive = _row_group_columns(table, piece, names, archive, wide)
@@ -279,9 +280,12 @@ def _task_data(pieces: List[_PieceRows], names, config: AssetConfig, lost: List[
         absent = np.array([p.absent for p in pieces], dtype=bool).reshape(len(tables), len(names))
         codes = None
     else:
-        merged = pa.concat_tables(tables) if tables else None
-        values = merged.column("value").to_numpy(zero_copy_only=False).reshape(-1, 1) if tables else np.zeros((0, 1))
-        codes = merged.column("code").to_numpy(zero_copy_only=False).astype(np.int32) if tables else np.zeros(0, np.int32)
+        if tables:
+            merged = pa.concat_tables(tables)
+            values = merged.column("value").to_numpy(zero_copy_only=False).reshape(-1, 1)
+            codes = merged.column("code").to_numpy(zero_copy_only=False).astype(np.int32)
+        else:
+            values, codes = np.zeros((0, 1)), np.zeros(0, np.int32)
         absent = np.zeros((len(tables), 1), dtype=bool)
     values = np.asarray(values, dtype=np.float64)
     if times.size and np.any(np.diff(times) < 0):
@@ -456,8 +460,8 @@ class _SnappedWindow:
 def _window(task: ReadTask, data: _TaskData, config: AssetConfig, start_us: int) -> List[Union[WindowBlock, Reject]]:
     """Assemble one window: a block plus findings, or findings ending in a whole-window reject."""
     _, _, n_samples, period_us = window_grid(config)
-    lo = np.searchsorted(data.times, start_us - 0.5 * period_us, side="left")
-    hi = np.searchsorted(data.times, start_us + (n_samples - 0.5) * period_us, side="left")
+    lo = int(np.searchsorted(data.times, start_us - 0.5 * period_us, side="left"))
+    hi = int(np.searchsorted(data.times, start_us + (n_samples - 0.5) * period_us, side="left"))
     times = data.times[lo:hi]
     if times.size == 0:
         return [Reject.for_window(config.name, start_us, "read", "insufficient_coverage", "no samples in the window")]
@@ -566,7 +570,7 @@ def _checked_block(task: ReadTask, data: _TaskData, config: AssetConfig, start_u
         return [Reject.for_window(config.name, start_us, "read", "conflicting_duplicates",
                                   f"{totals['conflicts']} grid points hold different values at equal "
                                   f"timestamps; files: {files}")]
-    out: List[Union[WindowBlock, Reject]] = _repair_findings(task, data, config, start_us, window)
+    out: List[Union[WindowBlock, Reject]] = list(_repair_findings(task, data, config, start_us, window))
     kept, failures, quality, flags = _channel_verdicts(task, config, start_us, window)
     out.extend(flags)
     if not kept:
@@ -738,7 +742,11 @@ def _lost_rows(task: ReadTask, data: _TaskData, config: AssetConfig, start_us: i
 def read_task(task: ReadTask, config: AssetConfig, open_file: OpenFile = open_local_file
               ) -> Tuple[List[WindowBlock], List[Reject]]:
     """:func:`read_windows` collected into (blocks, rejects)."""
-    blocks, rejects = [], []
+    blocks: List[WindowBlock] = []
+    rejects: List[Reject] = []
     for item in read_windows(task, config, open_file):
-        (blocks if isinstance(item, WindowBlock) else rejects).append(item)
+        if isinstance(item, WindowBlock):
+            blocks.append(item)
+        else:
+            rejects.append(item)
     return blocks, rejects

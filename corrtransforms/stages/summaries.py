@@ -26,7 +26,7 @@ import json
 import math
 import re
 import uuid
-from typing import Any, Callable, Dict, List, Mapping, Optional, Sequence
+from typing import Any, Callable, Dict, List, Mapping, Optional, Sequence, Tuple
 
 import numpy as np
 import pyarrow as pa
@@ -202,7 +202,7 @@ def last_row_of_each_series(table: pa.Table) -> np.ndarray:
     if table.num_rows == 0:
         return mask
     starts = table.column("window_start").cast(pa.int64()).to_numpy(zero_copy_only=False)
-    latest = {}
+    latest: Dict[Tuple[str, str], int] = {}
     for i, key in enumerate(zip(table.column("subject").to_pylist(), table.column("indicator").to_pylist())):
         if key not in latest or starts[i] >= starts[latest[key]]:
             latest[key] = i
