@@ -1,4 +1,5 @@
-"""The report pipeline (pipelines/report.py) on small output tables written with pyarrow.
+"""The report (corrtransforms.report, run as ``python -m pipelines.report``) on small output tables
+written with pyarrow, on local disk and on an object-store filesystem.
 
 Counts on the page are checked against DuckDB queries over the same Parquet files (an outside
 reader); pictures are checked to be valid PNG images with the shifted windows marked.
@@ -15,7 +16,10 @@ import pyarrow.dataset as ds
 import pytest
 from matplotlib import image as mpimg
 
+from corrtransforms.report import write_report
+from corrtransforms.report.files import ReportFiles
 from pipelines import report
+from tests import memory_filesystem
 
 UTC = dt.timezone.utc
 START = dt.datetime(2025, 5, 1, tzinfo=UTC)
@@ -273,7 +277,8 @@ def test_empty_output_folder_still_gets_a_page(tmp_path):
 
 
 def test_missing_output_folder_is_an_error(tmp_path, capsys):
-    assert report.main(["--output", str(tmp_path / "nothing")]) == 2
+    # exit status 1 (a configuration error): 2 means a missing previous state (README "Commands")
+    assert report.main(["--output", str(tmp_path / "nothing")]) == 1
     assert "is not a folder" in capsys.readouterr().err
 
 
@@ -311,3 +316,35 @@ def test_an_episodes_table_is_used_when_present(tmp_path):
     page = _parse(os.path.join(root, "report", "index.html"))
     first = _table_with(page, "estimated onset")[0]
     assert (first["subject"], first["indicator"], first["windows"]) == ("torsion_1", "mode_damping", "15")
+
+
+def test_a_report_read_from_and_written_to_an_object_store(tmp_path):
+    """The same output copied to the in-memory object store (``memfs://``, no folders) gives the
+    same page, and the pictures land in the store, not on local disk."""
+    local = str(tmp_path / "local")
+    write_example_output(local)
+    memory_filesystem.reset()
+    for folder, _, names in os.walk(local):
+        for name in names:
+            path = os.path.join(folder, name)
+            with open(path, "rb") as handle:
+                memory_filesystem.put("memfs://site/out/" + os.path.relpath(path, local).replace(os.sep, "/"),
+                                      handle.read())
+    cwd = os.getcwd()
+    os.chdir(tmp_path)
+    try:
+        index = write_report("memfs://site/out", store=ReportFiles())
+    finally:
+        os.chdir(cwd)
+    assert index == "memfs://site/out/report/index.html"
+    assert not [n for n in os.listdir(tmp_path) if n.startswith("memfs")]  # nothing written locally
+    opened = {path for _, path in memory_filesystem.calls("open")}
+    assert any("/out/indicators/asset=demo-asset/" in p for p in opened)
+    remote_page = memory_filesystem.get(index).decode("utf-8")
+    write_report(local)
+    with open(os.path.join(local, "report", "index.html"), encoding="utf-8") as handle:
+        local_page = handle.read()
+    drop = lambda page: [line for line in page.splitlines() if "report written" not in line]  # noqa: E731
+    assert drop(remote_page) == drop(local_page)
+    pictures = [p for p in memory_filesystem.paths("memfs://site/out/report/plots/") if p.endswith(".png")]
+    assert len(pictures) == 5 and all(memory_filesystem.get(p)[:8] == b"\x89PNG\r\n\x1a\n" for p in pictures)
