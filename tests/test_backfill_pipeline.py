@@ -222,3 +222,34 @@ def test_an_archive_path_without_files_stops_before_the_pipeline(tmp_path):
         backfill.main(["--config", str(config), "--output", str(tmp_path / "out")])
     assert "[archive] path" in str(stop.value) and "no files match" in str(stop.value)
     assert not (tmp_path / "out").exists()
+
+
+def _command(*args, cwd=None):
+    """One of the real commands from the checkout: (exit status, stdout, stderr)."""
+    repo = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+    done = subprocess.run([sys.executable, "-m", *args], capture_output=True, text=True, cwd=cwd or repo,
+                          timeout=120)
+    return done.returncode, done.stdout, done.stderr
+
+
+def test_flags_are_checked_and_help_lists_them(tmp_path):
+    status, out, err = _command("pipelines.backfill", "--help")
+    assert status == 0 and "apitools" not in err
+    flags = [line.split()[0] for line in out.splitlines() if line.startswith("  --")]
+    assert flags == ["--config", "--output", "--start", "--end", "--run_id", "--stale_temporary_hours", "--help"]
+    assert "exit statuses" in out and "3  nothing to do or nothing usable" in out and "beam.apache.org" in out
+    # an unknown flag: status 1 and the nearest known flag (difflib)
+    status, _, err = _command("pipelines.backfill", "--config", "x.toml", "--outptu", str(tmp_path))
+    assert status == 1 and "unknown flag --outptu; did you mean --output?" in err
+    # another command's flag is an error too, naming whose it is
+    status, _, err = _command("pipelines.backfill", "--config", "x.toml", "--output", str(tmp_path),
+                              "--date", "2024-03-04")
+    assert status == 1 and "--date is a flag of nightly, not of backfill" in err
+    # Beam's runner flags pass (the run then stops at the missing configuration file: status 1)
+    status, _, err = _command("pipelines.backfill", "--config", str(tmp_path / "none.toml"), "--output",
+                              str(tmp_path), "--direct_num_workers=2", "--runner", "FnApiRunner")
+    assert status == 1 and "configuration error" in err and "unknown flag" not in err
+    # the hyphenated spelling of a flag is an alias of its underscore form
+    status, _, err = _command("pipelines.nightly", "--config", str(tmp_path / "none.toml"), "--output",
+                              str(tmp_path), "--rebuild-state", "--run-id", "x")
+    assert status == 1 and "configuration error" in err and "unknown flag" not in err

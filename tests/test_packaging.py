@@ -175,4 +175,4 @@ def test_the_installed_commands_run_in_a_clean_environment(built, tmp_path):
     assert where.stdout.strip().startswith(site)
     for command in COMMANDS:
         done = _run([str(venv / "bin" / command), "--help"], cwd=str(tmp_path))
-        assert "usage" in done.stdout, (command, done.stdout)
+        assert "--output" in done.stdout and "exit statuses" in done.stdout, (command, done.stdout)

@@ -12,7 +12,7 @@ from corrtransforms.launch import common
 
 def main(argv: Optional[List[str]] = None) -> Dict[str, int]:
     """Run the backfill; returns the counters (also printed as a summary)."""
-    options, args, config = common.parse_options(argv)
+    options, args, config = common.parse_options(argv, "backfill")
     start, end = common.as_date(args.start), common.as_date(args.end)
     if start and end and end < start:
         raise SystemExit(f"--end {end} is before --start {start}")

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import argparse
 import datetime as _dt
+import difflib
 import logging
 import posixpath
 import sys
@@ -72,6 +73,100 @@ class JobOptions(PipelineOptions):
                                  "(runs that died); 0 keeps them")
         parser.add_argument("--report_dir", default=None,
                             help="report: where to write the report (default OUTPUT/report)")
+
+
+#: each command's own flags and their one-line help (every other JobOptions flag belongs to another
+#: command and is an error)
+COMMAND_FLAGS = {
+    "backfill": {
+        "--config": "FILE   the asset's TOML configuration (a path or filesystem URL; required)",
+        "--output": "DIR    output root folder or filesystem URL (required)",
+        "--start": "DAY    first day to process, YYYY-MM-DD in the asset's time zone (default: the first data)",
+        "--end": "DAY    last day to process, inclusive (default: the last data)",
+        "--run_id": "ID     id of this run in provenance and temporary names (default: UTC time + random)",
+        "--stale_temporary_hours": "H      delete other runs' temporary files not written for H hours (24; 0 keeps)",
+    },
+    "nightly": {
+        "--config": "FILE   the asset's TOML configuration (a path or filesystem URL; required)",
+        "--output": "DIR    output root folder or filesystem URL (required)",
+        "--date": "DAY    the day to process, YYYY-MM-DD (default: yesterday in the asset's time zone)",
+        "--rebuild_state": "       rebuild a missing previous state from the indicators table",
+        "--run_id": "ID     id of this run in provenance and temporary names (default: UTC time + random)",
+        "--stale_temporary_hours": "H      delete other runs' temporary files not written for H hours (24; 0 keeps)",
+    },
+    "report": {
+        "--output": "DIR    output root folder or filesystem URL to report (required)",
+        "--report_dir": "DIR    where to write index.html and plots/ (default: OUTPUT/report)",
+    },
+}
+COMMAND_PURPOSE = {
+    "backfill": "Reduce an asset's Parquet archive (or some of its days) to the output tables.",
+    "nightly": "Process one day of an asset, resuming the shift detectors from the previous state.",
+    "report": "Write OUTPUT/report/index.html and one picture per subject and indicator.",
+}
+EXIT_STATUSES = """exit statuses:
+  0  done
+  1  configuration or runtime error (a bad flag, key or path, a channel no file has, a failed run)
+  2  missing previous state (nightly without an earlier state; see --rebuild_state)
+  3  nothing to do or nothing usable: the requested days hold no data, or every planned window
+     was rejected"""
+BEAM_FLAGS_NOTE = ("Beam's pipeline flags pass to Beam (--runner, --direct_num_workers, --temp_location, "
+                   "filesystem credentials ...):\n  see "
+                   "https://beam.apache.org/releases/pydoc/current/apache_beam.options.pipeline_options.html")
+
+
+def help_text(command: str) -> str:
+    """The ``--help`` page of a command: its own flags one per line, exit statuses, Beam's flags."""
+    lines = [f"usage: corrtransforms-{command} (or python -m pipelines.{command}) "
+             + " ".join(f"{flag} ..." for flag in COMMAND_FLAGS[command] if flag in ("--config", "--output"))
+             + " [flags] [Beam flags]", "", COMMAND_PURPOSE[command], "", "flags:"]
+    lines += [f"  {flag:<24} {text}" for flag, text in COMMAND_FLAGS[command].items()]
+    lines += ["  --help                   this text",
+              "  (hyphenated spellings such as --report-dir or --run-id are accepted for the flags above)",
+              "", EXIT_STATUSES, "", BEAM_FLAGS_NOTE]
+    return "\n".join(lines)
+
+
+def beam_flags() -> List[str]:
+    """Every flag Beam's PipelineOptions classes define (this package's own JobOptions excluded)."""
+    from apache_beam.options.pipeline_options import _BeamArgumentParser
+
+    parser = _BeamArgumentParser(conflict_handler="resolve", add_help=False)
+    pending, seen = list(PipelineOptions.__subclasses__()), set()
+    while pending:
+        cls = pending.pop()
+        if cls in seen:
+            continue
+        seen.add(cls)
+        pending.extend(cls.__subclasses__())
+        if cls is not JobOptions:
+            cls._add_argparse_args(parser)
+    return sorted({s for action in parser._actions for s in action.option_strings if s.startswith("--")})
+
+
+def check_flags(command: str, argv: List[str]) -> None:
+    """Stop on ``--help`` (the command's help, status 0) and on any flag that is neither the
+    command's own nor Beam's (status 1, naming the nearest known flag); a flag of another
+    command says whose it is."""
+    if "--help" in argv or "-h" in argv:
+        print(help_text(command))
+        raise SystemExit(DONE)
+    own = list(COMMAND_FLAGS[command])
+    beam_known = None
+    for token in argv:
+        name = token.split("=", 1)[0]
+        if not name.startswith("--") or name in own:
+            continue
+        beam_known = beam_known if beam_known is not None else set(beam_flags())
+        if name in beam_known:
+            continue
+        owners = [c for c, flags in COMMAND_FLAGS.items() if name in flags]
+        if owners:
+            raise SystemExit(f"{command}: {name} is a flag of {' and '.join(owners)}, not of {command} "
+                             f"(its flags: {', '.join(own)}; see --help)")
+        near = difflib.get_close_matches(name, own + sorted(beam_known), n=1, cutoff=0.6)
+        raise SystemExit(f"{command}: unknown flag {name}" + (f"; did you mean {near[0]}?" if near else "")
+                         + " (see --help)")
 
 
 def new_run_id() -> str:
@@ -177,11 +272,12 @@ def with_underscores(argv: List[str]) -> List[str]:
     return out
 
 
-def pipeline_options(argv: Optional[List[str]]) -> PipelineOptions:
-    """Beam's options from the command line, with the local runner as default; the filesystems
-    get them at once (the launcher reads configuration and earlier state before the pipeline
-    exists: S3 credentials and endpoint, GCS project...)."""
+def pipeline_options(argv: Optional[List[str]], command: str) -> PipelineOptions:
+    """Beam's options from ``command``'s command line (checked by :func:`check_flags`), with the
+    local runner as default; the filesystems get them at once (the launcher reads configuration
+    and earlier state before the pipeline exists: S3 credentials and endpoint, GCS project...)."""
     argv = with_underscores(list(sys.argv[1:] if argv is None else argv))
+    check_flags(command, argv)
     options = PipelineOptions(argv)
     standard = options.view_as(StandardOptions)
     if not standard.runner:
@@ -190,11 +286,11 @@ def pipeline_options(argv: Optional[List[str]]) -> PipelineOptions:
     return options
 
 
-def parse_options(argv: Optional[List[str]], options_class=JobOptions):
+def parse_options(argv: Optional[List[str]], command: str):
     """(options, the command's view of them, the asset's configuration); SystemExit (status 1)
-    on a missing flag, a configuration error or an archive path that matches no file."""
-    options = pipeline_options(argv)
-    args = options.view_as(options_class)
+    on a bad or missing flag, a configuration error or an archive path that matches no file."""
+    options = pipeline_options(argv, command)
+    args = options.view_as(JobOptions)
     for flag in ("config", "output"):
         if not getattr(args, flag):
             raise SystemExit(f"--{flag} is required")

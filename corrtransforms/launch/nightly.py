@@ -56,7 +56,7 @@ def previous_states(output: str, config: AssetConfig, day: _dt.date, rebuild: bo
 
 def main(argv: Optional[List[str]] = None) -> Dict[str, int]:
     """Run one night; returns the counters (also printed as a summary)."""
-    options, args, config = common.parse_options(argv)
+    options, args, config = common.parse_options(argv, "nightly")
     day = common.as_date(args.date) or yesterday(config)
     run_id = args.run_id or common.new_run_id()
     initial = previous_states(args.output, config, day, args.rebuild_state, run_id)

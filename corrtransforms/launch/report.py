@@ -17,7 +17,7 @@ def main(argv: Optional[List[str]] = None) -> int:
     """Write the report; returns the exit status (0 done, 1 a missing or empty output)."""
     from corrtransforms.report import files, write_report
 
-    options = common.pipeline_options(argv)
+    options = common.pipeline_options(argv, "report")
     args = options.view_as(common.JobOptions)
     if not args.output:
         raise SystemExit("--output is required")
