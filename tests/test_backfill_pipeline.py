@@ -253,3 +253,25 @@ def test_flags_are_checked_and_help_lists_them(tmp_path):
     status, _, err = _command("pipelines.nightly", "--config", str(tmp_path / "none.toml"), "--output",
                               str(tmp_path), "--rebuild-state", "--run-id", "x")
     assert status == 1 and "configuration error" in err and "unknown flag" not in err
+
+
+def test_exit_statuses_of_unusable_runs(tmp_path):
+    """Through the real command: a configured channel no file has (1), days without data (3) and
+    a run whose every window is rejected (3), each with a message that says why."""
+    write_files(str(tmp_path / "archive"), wide_table(samples(600, 10.0, seed=5)), 300, 1000)
+    good = _write_config(tmp_path / "a.toml", tmp_path / "archive")
+    absent = _write_config(tmp_path / "c.toml", tmp_path / "archive", names='["a", "c"]')
+    status, _, err = _command("pipelines.backfill", "--config", absent, "--output", str(tmp_path / "out-c"))
+    assert status == 1 and "'c' is a column of no file in 2 files" in err
+    assert "columns found: a, b, temperature" in err
+    status, _, err = _command("pipelines.backfill", "--config", good, "--output", str(tmp_path / "out-a"),
+                              "--start", "2030-01-01", "--end", "2030-01-02")
+    assert status == 3 and "no data in 2030-01-01 to 2030-01-02" in err
+    # the last sample: T0 + 599.9 s (600 s at 10 Hz from T0)
+    assert "the last data seen ends 2024-03-04 00:09:59 UTC" in err
+    wrong_rate = tmp_path / "b.toml"
+    wrong_rate.write_text(open(good).read().replace("sample_rate_hz = 10.0", "sample_rate_hz = 20.0"))
+    status, out, err = _command("pipelines.backfill", "--config", str(wrong_rate), "--output", str(tmp_path / "out-b"))
+    assert status == 3 and "windows planned 10, computed 0, rejected 10" in out
+    assert "all 10 planned windows (2024-03-04) were rejected" in err
+    assert "top reasons: sample_rate_mismatch (10 windows, e.g. 2024-03-04T00:00:00Z: median sample interval" in err

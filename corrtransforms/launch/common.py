@@ -28,12 +28,13 @@ from corrtransforms.beam.monitor import PROGRESS_LOGGER, MonitorAsset
 from corrtransforms.beam.output_tables import (LATEST_STATE, latest_states, remove_stale_temporary,
                                                summarize_partitions, write_episodes)
 from corrtransforms.config import AssetConfig, ConfigError, load_config, parse_config
+from corrtransforms.launch import checks
 from corrtransforms.stages import plan as archive_plan
 from corrtransforms.stages.write import provenance_metadata
 
 #: exit statuses (README "Commands"): done; configuration or runtime error; missing previous
 #: state; nothing to do or nothing usable
-DONE, ERROR, MISSING_STATE, NOTHING_USABLE = 0, 1, 2, 3
+DONE, ERROR, MISSING_STATE, NOTHING_USABLE = 0, 1, 2, checks.NOTHING_USABLE
 
 
 def _date(text: str) -> str:
@@ -222,6 +223,7 @@ def run(options: PipelineOptions, config: AssetConfig, output: str, start: Optio
     counters = window_accounting(result.metrics())
     counters["episodes"] = write_episodes(output, config, run_id)
     print(summary(counters))
+    checks.check_usable(counters, config, output, start, end)
     return counters
 
 
@@ -299,6 +301,8 @@ def parse_options(argv: Optional[List[str]], command: str):
     except ConfigError as err:
         raise SystemExit(f"configuration error: {err}") from None
     check_archive(config)
+    checks.check_channels(config, as_date(args.start if command == "backfill" else args.date),
+                          as_date(args.end if command == "backfill" else args.date))
     return options, args, config
 
 

@@ -33,10 +33,23 @@ def yesterday(config: AssetConfig, now: Optional[_dt.datetime] = None) -> _dt.da
     return (now.astimezone(zoneinfo.ZoneInfo(config.archive.timezone)) - _dt.timedelta(days=1)).date()
 
 
+def report_gap(config: AssetConfig, day: _dt.date, states) -> int:
+    """Say how many days lie between the latest state and ``day`` (a nightly that did not run, or
+    days without data); returns that count."""
+    latest = max(states.column("local_date").to_pylist())
+    missing = (day - latest).days - 1
+    if missing > 0:
+        print(f"nightly {config.name} {day}: resuming from the state of {latest}: {missing} "
+              f"day{'s' if missing != 1 else ''} without state in between ({latest + _dt.timedelta(days=1)} to "
+              f"{day - _dt.timedelta(days=1)}); run those nights first if they hold data")
+    return missing
+
+
 def previous_states(output: str, config: AssetConfig, day: _dt.date, rebuild: bool, run_id: str = ""):
     """The state table to resume ``day`` from, or SystemExit(2) when there is none."""
     states = common.earlier_states(output, config, day, run_id)
     if states is not None:
+        report_gap(config, day, states)
         return states
     earlier_indicators = [d for d, _ in partition_files(output, "indicators", config.name) if d < day.isoformat()]
     if not rebuild:
