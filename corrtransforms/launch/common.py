@@ -28,7 +28,7 @@ from corrtransforms.beam.monitor import PROGRESS_LOGGER, MonitorAsset
 from corrtransforms.beam.output_tables import (LATEST_STATE, latest_states, remove_stale_temporary,
                                                summarize_partitions, write_episodes)
 from corrtransforms.config import AssetConfig, ConfigError, load_config, parse_config
-from corrtransforms.launch import checks
+from corrtransforms.launch import checks, run_summary
 from corrtransforms.stages import plan as archive_plan
 from corrtransforms.stages.write import provenance_metadata
 
@@ -224,6 +224,9 @@ def run(options: PipelineOptions, config: AssetConfig, output: str, start: Optio
     counters["episodes"] = write_episodes(output, config, run_id)
     print(summary(counters))
     checks.check_usable(counters, config, output, start, end)
+    finished = run_summary.build(counters, config, output, run_id, start, end)
+    print(run_summary.text(finished))
+    print(f"run summary written to {run_summary.write(finished, output)}")
     return counters
 
 
