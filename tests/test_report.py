@@ -8,6 +8,8 @@ import datetime as dt
 import html.parser
 import math
 import os
+import subprocess
+import sys
 
 import duckdb
 import numpy as np
@@ -261,7 +263,7 @@ def test_missing_tables_are_named_on_the_page(tmp_path):
     assert report.main(["--output", root]) == 0
     with open(os.path.join(root, "report", "index.html"), encoding="utf-8") as handle:
         text = handle.read()
-    assert "No shifts table was found" in text and "No rejects table was found" in text
+    assert "No shifts table was found" in text and "No input was rejected." in text
     page = _parse(os.path.join(root, "report", "index.html"))
     assets = {a["asset"]: a for a in _table_with(page, "windows planned")}
     assert int(assets["demo-asset"]["windows computed"]) == 70  # from the indicators table
@@ -348,3 +350,71 @@ def test_a_report_read_from_and_written_to_an_object_store(tmp_path):
     assert drop(remote_page) == drop(local_page)
     pictures = [p for p in memory_filesystem.paths("memfs://site/out/report/plots/") if p.endswith(".png")]
     assert len(pictures) == 5 and all(memory_filesystem.get(p)[:8] == b"\x89PNG\r\n\x1a\n" for p in pictures)
+
+
+def test_legend_lies_inside_the_canvas_and_codes_that_hold_a_window_out_are_drawn_apart(tmp_path):
+    """The legend of a monitored picture with both kinds of quality codes (six entries) is
+    within the figure's canvas, and the held-out windows get their own legend entry."""
+    import matplotlib.pyplot as plt
+
+    from corrtransforms.report.plots import draw_series
+
+    root = str(tmp_path)
+    write_example_output(root)
+    from corrtransforms.report.files import ReportFiles
+    from corrtransforms.report.summaries import read_output
+
+    output = read_output(root, ReportFiles())
+    indicators, shifts = output.get("indicators"), output.get("shifts")
+    pick = lambda t: t.filter(pa.compute.equal(t.column("subject"), "bending_1"))  # noqa: E731
+    values = pick(indicators)
+    quality = values.column("quality").to_pylist()
+    quality[3], quality[9] = "clipped", "nonstationary;clipped"
+    values = values.set_column(values.column_names.index("quality"), "quality", pa.array(quality))
+    figure = draw_series("demo-asset", "bending_1", "mode_freq_hz", values, pick(shifts))
+    picture = tmp_path / "legend.png"
+    figure.savefig(picture, dpi=100)
+    renderer = figure.canvas.get_renderer()
+    legend = figure.legends[0]
+    box, canvas = legend.get_window_extent(renderer), figure.bbox
+    labels = [t.get_text() for t in legend.get_texts()]
+    plt.close(figure)
+    assert canvas.x0 <= box.x0 and box.x1 <= canvas.x1 and canvas.y0 <= box.y0 and box.y1 <= canvas.y1
+    assert "value with an informational quality code (clipped)" in labels
+    assert "held out of the detectors (clipped, nonstationary)" in labels
+    assert mpimg.imread(picture).shape[:2] == (600, 1000)
+
+
+def test_shift_size_in_percent_and_baseline_status_on_the_page(tmp_path):
+    root = str(tmp_path)
+    write_example_output(root)
+    state = [dict(asset="demo-asset", date="2025-05-06", window_start=dt.datetime(2025, 5, 6, 22, tzinfo=UTC),
+                  subject="bending_1", indicator="mode_freq_hz", phase="fitted", windows_seen=70,
+                  model_location=2.45, model_quality="ok"),
+             dict(asset="demo-asset", date="2025-05-06", window_start=dt.datetime(2025, 5, 6, 22, tzinfo=UTC),
+                  subject="footing_n:footing_s", indicator="lag_s", phase="accumulating", windows_seen=12,
+                  model_location=None, model_quality="ok")]
+    _write(root, "state", pa.Table.from_pylist(state))
+    assert report.main(["--output", root]) == 0
+    page = _parse(os.path.join(root, "report", "index.html"))
+    first = _table_with(page, "estimated onset")[0]
+    size = float(first["shift size"].split()[0])
+    assert first["of baseline level"] == f"{100 * size / 2.45:+.1f} %"  # shift / |baseline level|
+    with open(os.path.join(root, "report", "index.html"), encoding="utf-8") as handle:
+        text = handle.read()
+    assert "bending_1 \u2014 mode_freq_hz (baseline fitted)" in text
+    assert "footing_n:footing_s \u2014 lag_s (baseline accumulating, 12 windows seen)" in text
+
+
+def test_a_missing_matplotlib_is_one_line_and_status_1(tmp_path):
+    root = str(tmp_path)
+    write_example_output(root, with_correlations=False)
+    script = ("import sys; sys.modules['matplotlib'] = None\n"
+              "from pipelines import report\n"
+              f"sys.exit(report.main(['--output', {root!r}]))")
+    repo = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, cwd=repo, timeout=120)
+    assert done.returncode == 1
+    assert done.stderr.strip().splitlines() == [
+        'report: matplotlib is not installed; install the report extra: pip install "corrtransforms[report]"']
+    assert not os.path.exists(os.path.join(root, "report"))  # no empty plots folder

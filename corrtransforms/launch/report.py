@@ -21,6 +21,12 @@ def main(argv: Optional[List[str]] = None) -> int:
     args = options.view_as(common.JobOptions)
     if not args.output:
         raise SystemExit("--output is required")
+    try:
+        import matplotlib  # noqa: F401 - the pictures need it; checked before anything is written
+    except ImportError:
+        print('report: matplotlib is not installed; install the report extra: pip install "corrtransforms[report]"',
+              file=sys.stderr)
+        return common.ERROR
     store = files.default_store()
     if not store.holds_anything(args.output):
         print(f"report: --output {args.output!r} is not a folder (nothing is stored under it)", file=sys.stderr)

@@ -18,7 +18,7 @@ import numpy as np
 from corrtransforms.report import files
 from corrtransforms.report.plots import write_plots
 from corrtransforms.report.summaries import (TABLES, OutputTables, _text_time, asset_summaries, read_output,
-                                             reject_counts, shift_episodes)
+                                             reject_counts, series_baselines, shift_episodes, shift_percent)
 
 CAUTION = ("Indicators and shift flags support, and never replace, inspection and judgement by "
            "qualified engineers under local codes and licensed practice.")
@@ -67,13 +67,15 @@ def _episode_rows(episodes: List[Dict], plots: Dict[Tuple[str, str, str], str]) 
         plot = plots.get((e["asset"], e["subject"], e["indicator"]))
         link = f'<a href="{_e(plot)}">picture</a>' if plot else ""
         size = _number(e.get("shift_size"), 3)
+        percent = e.get("shift_percent")
+        percent = "" if percent is None else f"{percent:+.1f} %"
         rows.append(
             f'<tr class="{_e(e["status"])}"><td>{_e(e["asset"])}</td>'
             f'<td>{_e(e["subject"])}</td><td>{_e(e["indicator"])}</td><td>{direction}</td>'
             f'<td class="time">{_e(_text_time(e.get("onset")))}</td>'
             f'<td class="time">{_e(_text_time(e.get("first_alarm")))}</td>'
             f'<td class="time">{_e(_text_time(e.get("last_window")))}</td><td class="num">{_e(e.get("n_windows"))}</td>'
-            f'<td class="num">{_e(size)} {_e(e.get("unit") or "")}</td>'
+            f'<td class="num">{_e(size)} {_e(e.get("unit") or "")}</td><td class="num">{_e(percent)}</td>'
             f'<td class="num">{_e(_number(e.get("peak_abs_z"), 3))}</td><td>{_e(e.get("detector") or "")}</td>'
             f'<td>{link}</td></tr>')
     return rows
@@ -81,7 +83,7 @@ def _episode_rows(episodes: List[Dict], plots: Dict[Tuple[str, str, str], str]) 
 
 _EPISODE_HEAD = ("<tr><th>asset</th><th>subject</th><th>indicator</th><th>direction</th>"
                  "<th>estimated onset</th><th>first alarm</th><th>last shifted</th><th>windows</th>"
-                 "<th>shift size</th><th>peak |z|</th><th>detector</th><th></th></tr>")
+                 "<th>shift size</th><th>of baseline level</th><th>peak |z|</th><th>detector</th><th></th></tr>")
 
 
 def render_index(output: OutputTables, assets: List[Dict], rejects: List[Dict], episodes: List[Dict],
@@ -129,7 +131,10 @@ def render_index(output: OutputTables, assets: List[Dict], rejects: List[Dict], 
                      "reasons are below); planned = computed + rejected.</p>")
 
     parts.append('<h2 id="rejects">Rejected, repaired and flagged input by reason</h2>')
-    if output.get("rejects") is None:
+    if output.get("rejects") is None and output.get("indicators") is not None:
+        parts.append("<p>No input was rejected. The rejects table has no rows: nothing was repaired or flagged "
+                     "either.</p>")
+    elif output.get("rejects") is None:
         parts.append(f'<p class="note">No rejects table was found ({_e(output.notes.get("rejects", ""))}).</p>')
     else:
         parts.append("<table><tr><th>asset</th><th>reason</th><th>action</th><th>stage</th><th>rows</th>"
@@ -170,7 +175,8 @@ def render_index(output: OutputTables, assets: List[Dict], rejects: List[Dict], 
             parts.append(f"<h3>{_e(asset)}</h3>")
             parts.append('<div class="grid">')
             for p in mine:
-                label = f'{p["subject"]} \u2014 {p["indicator"]}' + ("" if p["monitored"] else " (not monitored)")
+                label = f'{p["subject"]} \u2014 {p["indicator"]}' + (
+                    f' (baseline {p["baseline"]})' if p.get("baseline") else "" if p["monitored"] else " (not monitored)")
                 parts.append(f'<figure><a href="{_e(p["path"])}"><img src="{_e(p["path"])}" alt="{_e(label)}" '
                              f'loading="lazy"></a><figcaption>{_e(label)}</figcaption></figure>')
             parts.append("</div>")
@@ -213,7 +219,16 @@ def write_report(output_dir: str, report_dir: Optional[str] = None, store=None) 
     assets = asset_summaries(output)
     rejects = reject_counts(output)
     episodes, source = shift_episodes(output)
+    baselines = series_baselines(output)
+    for e in episodes:
+        level = baselines.get((e["asset"], e["subject"], e["indicator"]), {}).get("level")
+        e["shift_percent"] = shift_percent(e.get("shift_size"), level)
     plots = write_plots(output, report_dir, store)
+    for p in plots:
+        found = baselines.get((p["asset"], p["subject"], p["indicator"]))
+        if found:
+            p["baseline"] = (f'{found["status"]}, {found["windows_seen"]} windows seen'
+                             if found["status"] == "accumulating" else found["status"])
     generated = _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
     page = render_index(output, assets, rejects, episodes, source, plots, generated)
     index = store.join(report_dir, "index.html")

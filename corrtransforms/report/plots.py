@@ -16,6 +16,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from corrtransforms.report.summaries import OutputTables, _column, _us
+from corrtransforms.stages.shifts import _is_nonstationary
 
 #: width of the healthy band drawn around the expectation, in residual scales (common practice:
 #: the Shewhart three-sigma limits)
@@ -29,6 +30,7 @@ STDERR_COLOUR = "#9a9a9a"
 BASELINE_COLOUR = "#ececec"
 SHIFTED_COLOUR = "#c0392b"
 QUALITY_COLOUR = "#8a6d00"
+HELD_OUT_COLOUR = "#6a3d9a"
 
 
 
@@ -69,14 +71,44 @@ def _break_gaps(time_us: np.ndarray, *arrays: np.ndarray):
     return (_as_datetimes(time_out),) + tuple(np.insert(a.astype(float), gaps, np.nan) for a in arrays)
 
 
-def plot_series(path: str, asset: str, subject: str, indicator: str, values: pa.Table,
+def plot_series(path, asset: str, subject: str, indicator: str, values: pa.Table,
                 shifts: Optional[pa.Table]) -> None:
-    """Write one trend picture (PNG) for a subject and indicator.
+    """Write one trend picture (PNG) for a subject and indicator (:func:`draw_series`)."""
+    import matplotlib.pyplot as plt
+
+    fig = draw_series(asset, subject, indicator, values, shifts)
+    fig.savefig(path, dpi=100, format="png")
+    plt.close(fig)
+
+
+def _quality_marks(ax, time, value, finite, quality, handles) -> None:
+    """Values with quality codes: hollow circles where the codes are informational, crosses where
+    they hold the window out of the detectors (the shift stage's rule,
+    :func:`corrtransforms.stages.shifts._is_nonstationary`)."""
+    codes_of = [tuple(c for c in str(q).split(";") if c and c != "ok") for q in quality]
+    coded = np.array([bool(c) for c in codes_of], dtype=bool) & finite
+    held = np.array([_is_nonstationary(c) for c in codes_of], dtype=bool) & coded
+    for mask, label, style in (
+            (coded & ~held, "value with an informational quality code", dict(
+                s=14, facecolors="none", edgecolors=QUALITY_COLOUR, linewidths=0.7)),
+            (held, "held out of the detectors", dict(s=22, marker="x", color=HELD_OUT_COLOUR, linewidths=0.9))):
+        if not mask.any():
+            continue
+        counts: Dict[str, int] = {}
+        for codes in (c for c, m in zip(codes_of, mask) if m):
+            for code in codes:
+                counts[code] = counts.get(code, 0) + 1
+        common = sorted(counts, key=lambda c: (-counts[c], c))
+        text = f"{label} ({', '.join(common[:2])}{', ...' if len(common) > 2 else ''})"
+        handles.append(ax.scatter(time[mask], value[mask], zorder=4, label=text, **style))
+
+
+def draw_series(asset: str, subject: str, indicator: str, values: pa.Table, shifts: Optional[pa.Table]):
+    """One trend picture for a subject and indicator, as a matplotlib Figure (constrained layout,
+    the legend below the axes inside the figure).
 
     Parameters
     ----------
-    path : str or binary file object
-        Where the PNG goes.
     asset, subject, indicator : str
         Names for the title.
     values : pyarrow.Table
@@ -104,10 +136,10 @@ def plot_series(path: str, asset: str, subject: str, indicator: str, values: pa.
     unit = next((u for u in v["unit"] if u), "")
     monitored = shifts is not None and shifts.num_rows > 0
     if monitored:
-        fig, (ax, az) = plt.subplots(2, 1, figsize=(10, 6.0), sharex=True,
-                                     gridspec_kw={"height_ratios": [3, 1.2], "hspace": 0.08})
+        fig, (ax, az) = plt.subplots(2, 1, figsize=(10, 6.0), sharex=True, layout="constrained",
+                                     gridspec_kw={"height_ratios": [3, 1.2]})
     else:
-        fig, ax = plt.subplots(1, 1, figsize=(10, 4.2))
+        fig, ax = plt.subplots(1, 1, figsize=(10, 4.2), layout="constrained")
         az = None
     time = _as_datetimes(v["time"])
     value, stderr = v["value"], v["stderr"]
@@ -165,15 +197,7 @@ def plot_series(path: str, asset: str, subject: str, indicator: str, values: pa.
     gap_time, line = _break_gaps(v["time"][finite], value[finite])
     ax.plot(gap_time, line, color=INK, linewidth=0.5, alpha=0.5, zorder=2)
     handles.append(ax.scatter(time[finite & ok], value[finite & ok], s=7, color=INK, zorder=4, label="value"))
-    if (finite & ~ok).any():
-        codes: Dict[str, int] = {}
-        for text in v["quality"][finite & ~ok]:
-            for code in str(text).split(";"):
-                codes[code] = codes.get(code, 0) + 1
-        common = sorted(codes, key=lambda c: (-codes[c], c))
-        label = "value with quality code (" + ", ".join(common[:2]) + (", ..." if len(common) > 2 else "") + ")"
-        handles.append(ax.scatter(time[finite & ~ok], value[finite & ~ok], s=14, facecolors="none",
-                                  edgecolors=QUALITY_COLOUR, linewidths=0.7, zorder=4, label=label))
+    _quality_marks(ax, time, value, finite, v["quality"], handles)
     if finite.any():
         low, high = np.nanpercentile(value[finite], [0.5, 99.5])
         pad = 0.15 * (high - low) if high > low else max(abs(high) * 0.05, 1e-12)
@@ -188,8 +212,7 @@ def plot_series(path: str, asset: str, subject: str, indicator: str, values: pa.
     ax.set_ylabel(f"{indicator} [{unit}]" if unit else indicator)
     ax.grid(True, color="#dddddd", linewidth=0.5)
     legend = [h for h in handles if not str(h.get_label()).startswith("_")]
-    fig.legend(handles=legend, loc="lower center", fontsize=8, frameon=False, ncol=4,
-               bbox_to_anchor=(0.5, 0.0))
+    fig.legend(handles=legend, loc="outside lower center", fontsize=8, frameon=False, ncol=3)
     bottom = az if az is not None else ax
     locator = mdates.AutoDateLocator()
     bottom.xaxis.set_major_locator(locator)
@@ -199,10 +222,7 @@ def plot_series(path: str, asset: str, subject: str, indicator: str, values: pa.
         if a is not None:
             for side in ("top", "right"):
                 a.spines[side].set_visible(False)
-    rows_of_legend = (len(legend) + 3) // 4
-    fig.subplots_adjust(left=0.08, right=0.98, top=0.93, bottom=0.1 + 0.045 * rows_of_legend)
-    fig.savefig(path, dpi=100, format="png")
-    plt.close(fig)
+    return fig
 
 
 def write_plots(output: OutputTables, report_dir: str, store) -> List[Dict]:

@@ -333,3 +333,34 @@ def shift_episodes(output: OutputTables) -> Tuple[List[Dict], str]:
     if shifts is None:
         return [], ""
     return episodes_from_shifts(shifts), "shifts"
+
+
+def series_baselines(output: OutputTables) -> Dict[Tuple[str, str, str], Dict]:
+    """Per (asset, subject, indicator), from the series' latest state row: the baseline status
+    ("accumulating", "fitted" or "too short": fitted on fewer windows than ``[baseline]
+    min_windows``, quality code ``baseline_too_short``), the windows seen and the baseline level
+    (``model_location``, the fitted median or intercept; None while accumulating)."""
+    state = output.get("state")
+    if state is None or not {"phase", "window_start", "subject", "indicator"} <= set(state.column_names):
+        return {}
+    starts = _us(state.column("window_start"))
+    rows = zip(_column(state, "asset", ""), _column(state, "subject", ""), _column(state, "indicator", ""),
+               starts, _column(state, "phase", ""), _column(state, "model_quality", ""),
+               _column(state, "windows_seen"), _column(state, "model_location"))
+    found: Dict[Tuple[str, str, str], Dict] = {}
+    for asset, subject, indicator, start, phase, quality, seen, location in rows:
+        key = (asset, subject, indicator)
+        if key in found and found[key]["start"] >= start:
+            continue
+        status = ("accumulating" if phase == "accumulating" else
+                  "too short" if "baseline_too_short" in str(quality or "") else "fitted")
+        level = None if phase == "accumulating" or location is None or not np.isfinite(location) else float(location)
+        found[key] = {"start": start, "status": status, "windows_seen": seen, "level": level}
+    return found
+
+
+def shift_percent(shift_size, level) -> Optional[float]:
+    """The shift size in % of the baseline level (None without a level or at a zero level)."""
+    if shift_size is None or level is None or not np.isfinite(shift_size) or level == 0:
+        return None
+    return 100.0 * float(shift_size) / abs(level)
