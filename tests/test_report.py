@@ -369,7 +369,7 @@ def test_legend_lies_inside_the_canvas_and_codes_that_hold_a_window_out_are_draw
     pick = lambda t: t.filter(pa.compute.equal(t.column("subject"), "bending_1"))  # noqa: E731
     values = pick(indicators)
     quality = values.column("quality").to_pylist()
-    quality[3], quality[9] = "clipped", "nonstationary;clipped"
+    quality[3], quality[9] = "window_too_short_for_screening;max_lag_short", "nonstationary;clipped"
     values = values.set_column(values.column_names.index("quality"), "quality", pa.array(quality))
     figure = draw_series("demo-asset", "bending_1", "mode_freq_hz", values, pick(shifts))
     picture = tmp_path / "legend.png"
@@ -380,8 +380,8 @@ def test_legend_lies_inside_the_canvas_and_codes_that_hold_a_window_out_are_draw
     labels = [t.get_text() for t in legend.get_texts()]
     plt.close(figure)
     assert canvas.x0 <= box.x0 and box.x1 <= canvas.x1 and canvas.y0 <= box.y0 and box.y1 <= canvas.y1
-    assert "value with an informational quality code (clipped)" in labels
-    assert "held out of the detectors (clipped, nonstationary)" in labels
+    assert "value with an informational quality code (max_lag_short, ...)" in labels
+    assert "held out of the detectors (clipped, ...)" in labels
     assert mpimg.imread(picture).shape[:2] == (600, 1000)
 
 

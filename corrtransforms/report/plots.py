@@ -99,7 +99,7 @@ def _quality_marks(ax, time, value, finite, quality, handles) -> None:
             for code in codes:
                 counts[code] = counts.get(code, 0) + 1
         common = sorted(counts, key=lambda c: (-counts[c], c))
-        text = f"{label} ({', '.join(common[:2])}{', ...' if len(common) > 2 else ''})"
+        text = f"{label} ({common[0]}{', ...' if len(common) > 1 else ''})"
         handles.append(ax.scatter(time[mask], value[mask], zorder=4, label=text, **style))
 
 
@@ -212,7 +212,8 @@ def draw_series(asset: str, subject: str, indicator: str, values: pa.Table, shif
     ax.set_ylabel(f"{indicator} [{unit}]" if unit else indicator)
     ax.grid(True, color="#dddddd", linewidth=0.5)
     legend = [h for h in handles if not str(h.get_label()).startswith("_")]
-    fig.legend(handles=legend, loc="outside lower center", fontsize=8, frameon=False, ncol=3)
+    widest = max((len(str(h.get_label())) for h in legend), default=0)
+    fig.legend(handles=legend, loc="outside lower center", fontsize=8, frameon=False, ncol=3 if widest <= 40 else 2)
     bottom = az if az is not None else ax
     locator = mdates.AutoDateLocator()
     bottom.xaxis.set_major_locator(locator)
