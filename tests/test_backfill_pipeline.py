@@ -228,7 +228,7 @@ def _command(*args, cwd=None):
     """One of the real commands from the checkout: (exit status, stdout, stderr)."""
     repo = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
     done = subprocess.run([sys.executable, "-m", *args], capture_output=True, text=True, cwd=cwd or repo,
-                          timeout=120)
+                          timeout=600)  # a guard against a hang only: the machine's CPUs are shared
     return done.returncode, done.stdout, done.stderr
 
 
