@@ -3,67 +3,12 @@
     python -m pipelines.nightly --config FILE --output DIR [--date YYYY-MM-DD] [--rebuild_state]
                                 [any Beam flag]
 
-Processes the windows that start on ``--date`` (default: yesterday in the asset's time zone),
-replaces exactly that day's partitions of every table, and resumes every detector from the
-latest state written before that day. When no earlier state exists the run stops before doing
-anything, with exit status 2 and a message; ``--rebuild_state`` instead replays the detectors
-over the indicators table already written before that day (no raw samples are read again), which
-gives the state a backfill would have written. Rerunning a night is harmless: it replaces the
-same partitions with the same rows.
+The checkout's spelling of the installed command ``corrtransforms-nightly``
+(:mod:`corrtransforms.launch.nightly`, which explains the exit statuses).
 """
-from __future__ import annotations
+from corrtransforms.launch.nightly import MISSING_STATE, cli, main, yesterday
 
-import datetime as _dt
-import sys
-import zoneinfo
-from typing import Dict, List, Optional
-
-from corrtransforms import tables
-from corrtransforms.beam.output_tables import partition_files, read_partitions
-from corrtransforms.config import AssetConfig
-from corrtransforms.stages.state import replay_states
-from pipelines.backfill import JobOptions, as_date, earlier_states, new_run_id, parse_options, run
-
-#: exit status when the previous day's state is missing
-MISSING_STATE = 2
-
-
-def yesterday(config: AssetConfig, now: Optional[_dt.datetime] = None) -> _dt.date:
-    """The calendar day before today in the asset's time zone."""
-    now = now or _dt.datetime.now(_dt.timezone.utc)
-    return (now.astimezone(zoneinfo.ZoneInfo(config.archive.timezone)) - _dt.timedelta(days=1)).date()
-
-
-def previous_states(output: str, config: AssetConfig, day: _dt.date, rebuild: bool, run_id: str = ""):
-    """The state table to resume ``day`` from, or SystemExit(2) when there is none."""
-    states = earlier_states(output, config, day, run_id)
-    if states is not None:
-        return states
-    earlier_indicators = [d for d, _ in partition_files(output, "indicators", config.name) if d < day.isoformat()]
-    if not rebuild:
-        hint = ("the indicators table has earlier days: pass --rebuild_state to replay the detectors over them"
-                if earlier_indicators else
-                "run the backfill over the earlier days first (it writes the state), "
-                "or pass --rebuild_state to start from the indicators table")
-        print(f"nightly {config.name} {day}: no detector state before {day} under {output}/state/asset={config.name}/; "
-              f"{hint}", file=sys.stderr)
-        raise SystemExit(MISSING_STATE)
-    indicators = read_partitions(output, "indicators", config.name, tables.INDICATORS, before=day)
-    rebuilt, _ = replay_states(indicators, config)
-    print(f"nightly {config.name} {day}: rebuilt the state of {rebuilt.num_rows} series from "
-          f"{indicators.num_rows} indicator rows of {len(earlier_indicators)} earlier days")
-    return rebuilt if rebuilt.num_rows else None
-
-
-def main(argv: Optional[List[str]] = None) -> Dict[str, int]:
-    """Run one night; returns the counters (also printed as a summary)."""
-    options, args, config = parse_options(argv, JobOptions)
-    day = as_date(args.date) or yesterday(config)
-    run_id = args.run_id or new_run_id()
-    initial = previous_states(args.output, config, day, args.rebuild_state, run_id)
-    print(f"nightly {config.name}: processing {day}")
-    return run(options, config, args.output, day, day, run_id, initial)
-
+__all__ = ["MISSING_STATE", "main", "yesterday"]
 
 if __name__ == "__main__":  # pragma: no cover
-    main()
+    cli()

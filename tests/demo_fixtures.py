@@ -43,12 +43,13 @@ def small_config_text(archive_path: str = "archive") -> str:
 
 
 def partition_files(output: str) -> List[str]:
-    """Relative paths of every committed file of a local output folder, sorted."""
+    """Relative paths of every committed file of a local output folder, sorted (the run summaries
+    under ``_runs/``, named by run id, left out)."""
     found = []
     for root, _, names in os.walk(output):
         for name in names:
             found.append(os.path.relpath(os.path.join(root, name), output).replace(os.sep, "/"))
-    return sorted(found)
+    return sorted(f for f in found if not f.startswith("_runs/"))
 
 
 def table_bytes(table: pa.Table) -> bytes:

@@ -222,3 +222,56 @@ def test_an_archive_path_without_files_stops_before_the_pipeline(tmp_path):
         backfill.main(["--config", str(config), "--output", str(tmp_path / "out")])
     assert "[archive] path" in str(stop.value) and "no files match" in str(stop.value)
     assert not (tmp_path / "out").exists()
+
+
+def _command(*args, cwd=None):
+    """One of the real commands from the checkout: (exit status, stdout, stderr)."""
+    repo = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+    done = subprocess.run([sys.executable, "-m", *args], capture_output=True, text=True, cwd=cwd or repo,
+                          timeout=600)  # a guard against a hang only: the machine's CPUs are shared
+    return done.returncode, done.stdout, done.stderr
+
+
+def test_flags_are_checked_and_help_lists_them(tmp_path):
+    status, out, err = _command("pipelines.backfill", "--help")
+    assert status == 0 and "apitools" not in err
+    flags = [line.split()[0] for line in out.splitlines() if line.startswith("  --")]
+    assert flags == ["--config", "--output", "--start", "--end", "--run_id", "--stale_temporary_hours", "--help"]
+    assert "exit statuses" in out and "3  nothing to do or nothing usable" in out and "beam.apache.org" in out
+    # an unknown flag: status 1 and the nearest known flag (difflib)
+    status, _, err = _command("pipelines.backfill", "--config", "x.toml", "--outptu", str(tmp_path))
+    assert status == 1 and "unknown flag --outptu; did you mean --output?" in err
+    # another command's flag is an error too, naming whose it is
+    status, _, err = _command("pipelines.backfill", "--config", "x.toml", "--output", str(tmp_path),
+                              "--date", "2024-03-04")
+    assert status == 1 and "--date is a flag of nightly, not of backfill" in err
+    # Beam's runner flags pass (the run then stops at the missing configuration file: status 1)
+    status, _, err = _command("pipelines.backfill", "--config", str(tmp_path / "none.toml"), "--output",
+                              str(tmp_path), "--direct_num_workers=2", "--runner", "FnApiRunner")
+    assert status == 1 and "configuration error" in err and "unknown flag" not in err
+    # the hyphenated spelling of a flag is an alias of its underscore form
+    status, _, err = _command("pipelines.nightly", "--config", str(tmp_path / "none.toml"), "--output",
+                              str(tmp_path), "--rebuild-state", "--run-id", "x")
+    assert status == 1 and "configuration error" in err and "unknown flag" not in err
+
+
+def test_exit_statuses_of_unusable_runs(tmp_path):
+    """Through the real command: a configured channel no file has (1), days without data (3) and
+    a run whose every window is rejected (3), each with a message that says why."""
+    write_files(str(tmp_path / "archive"), wide_table(samples(600, 10.0, seed=5)), 300, 1000)
+    good = _write_config(tmp_path / "a.toml", tmp_path / "archive")
+    absent = _write_config(tmp_path / "c.toml", tmp_path / "archive", names='["a", "c"]')
+    status, _, err = _command("pipelines.backfill", "--config", absent, "--output", str(tmp_path / "out-c"))
+    assert status == 1 and "'c' is a column of no file in 2 files" in err
+    assert "columns found: a, b, temperature" in err
+    status, _, err = _command("pipelines.backfill", "--config", good, "--output", str(tmp_path / "out-a"),
+                              "--start", "2030-01-01", "--end", "2030-01-02")
+    assert status == 3 and "no data in 2030-01-01 to 2030-01-02" in err
+    # the last sample: T0 + 599.9 s (600 s at 10 Hz from T0)
+    assert "the last data seen ends 2024-03-04 00:09:59 UTC" in err
+    wrong_rate = tmp_path / "b.toml"
+    wrong_rate.write_text(open(good).read().replace("sample_rate_hz = 10.0", "sample_rate_hz = 20.0"))
+    status, out, err = _command("pipelines.backfill", "--config", str(wrong_rate), "--output", str(tmp_path / "out-b"))
+    assert status == 3 and "windows planned 10, computed 0, rejected 10" in out
+    assert "all 10 planned windows (2024-03-04) were rejected" in err
+    assert "top reasons: sample_rate_mismatch (10 windows, e.g. 2024-03-04T00:00:00Z: median sample interval" in err

@@ -26,7 +26,7 @@ def _files(output):
     found = []
     for folder, _, names in os.walk(output):
         found += [os.path.relpath(os.path.join(folder, n), output) for n in names]
-    return sorted(found)
+    return sorted(f for f in found if not f.startswith("_runs"))  # run summaries: named by run id
 
 
 def _without_run_id(metadata):

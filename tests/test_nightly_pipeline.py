@@ -239,3 +239,21 @@ def test_summaries_read_the_same_through_the_local_store_and_beam_filesystems(si
     assert _sorted_rows(latest) == _sorted_rows(ot.summarize_partitions(
         out, "state", "footbridge", tables.STATE, ot.latest_states, ot.LATEST_STATE))
 
+
+def test_a_night_after_a_gap_says_how_many_days_were_missing_and_a_day_without_data_is_status_3(site, tmp_path):
+    """Through the real command on a copy of the backfill (data end 2025-05-14): the night of
+    2025-05-17 resumes from the state of 2025-05-14, two days without state in between, and finds
+    no data (exit status 3, naming the day and the last data time)."""
+    import subprocess
+    import sys
+
+    root, config, full = site
+    output = str(tmp_path / "copy")
+    shutil.copytree(full, output)
+    repo = os.path.dirname(DEMO_DIR)
+    done = subprocess.run([sys.executable, "-m", "pipelines.nightly", "--config", config, "--output", output,
+                           "--date", "2025-05-17"], capture_output=True, text=True, cwd=repo, timeout=300)
+    assert done.returncode == 3, done.stderr
+    assert ("resuming from the state of 2025-05-14: 2 days without state in between (2025-05-15 to 2025-05-16)"
+            in done.stdout)
+    assert "no data in 2025-05-17" in done.stderr and "the last data seen ends 2025-05-14" in done.stderr

@@ -40,7 +40,7 @@ def _assert_inside(tmp_path, output, archive_files):
         assert path.startswith(output + os.sep) or path in allowed or path.endswith(".toml"), path
     for path in _every_file(output):  # and inside the output, only the table layout
         relative = os.path.relpath(path, output).split(os.sep)
-        assert relative[0] in ("correlations", "indicators", "shifts", "state", "rejects", "episodes", "_summaries",
+        assert relative[0] in ("correlations", "indicators", "shifts", "state", "rejects", "episodes", "_summaries", "_runs",
                                "report"), path
         if relative[0] == "report":  # report/index.html, report/plots/<asset>/<picture>.png
             assert relative[1:2] == ["index.html"] or (relative[1] == "plots" and relative[2] == "odd-asset"

@@ -1,4 +1,5 @@
-"""The report pipeline (pipelines/report.py) on small output tables written with pyarrow.
+"""The report (corrtransforms.report, run as ``python -m pipelines.report``) on small output tables
+written with pyarrow, on local disk and on an object-store filesystem.
 
 Counts on the page are checked against DuckDB queries over the same Parquet files (an outside
 reader); pictures are checked to be valid PNG images with the shifted windows marked.
@@ -7,6 +8,8 @@ import datetime as dt
 import html.parser
 import math
 import os
+import subprocess
+import sys
 
 import duckdb
 import numpy as np
@@ -15,7 +18,10 @@ import pyarrow.dataset as ds
 import pytest
 from matplotlib import image as mpimg
 
+from corrtransforms.report import write_report
+from corrtransforms.report.files import ReportFiles
 from pipelines import report
+from tests import memory_filesystem
 
 UTC = dt.timezone.utc
 START = dt.datetime(2025, 5, 1, tzinfo=UTC)
@@ -257,7 +263,7 @@ def test_missing_tables_are_named_on_the_page(tmp_path):
     assert report.main(["--output", root]) == 0
     with open(os.path.join(root, "report", "index.html"), encoding="utf-8") as handle:
         text = handle.read()
-    assert "No shifts table was found" in text and "No rejects table was found" in text
+    assert "No shifts table was found" in text and "No input was rejected." in text
     page = _parse(os.path.join(root, "report", "index.html"))
     assets = {a["asset"]: a for a in _table_with(page, "windows planned")}
     assert int(assets["demo-asset"]["windows computed"]) == 70  # from the indicators table
@@ -273,7 +279,8 @@ def test_empty_output_folder_still_gets_a_page(tmp_path):
 
 
 def test_missing_output_folder_is_an_error(tmp_path, capsys):
-    assert report.main(["--output", str(tmp_path / "nothing")]) == 2
+    # exit status 1 (a configuration error): 2 means a missing previous state (README "Commands")
+    assert report.main(["--output", str(tmp_path / "nothing")]) == 1
     assert "is not a folder" in capsys.readouterr().err
 
 
@@ -311,3 +318,103 @@ def test_an_episodes_table_is_used_when_present(tmp_path):
     page = _parse(os.path.join(root, "report", "index.html"))
     first = _table_with(page, "estimated onset")[0]
     assert (first["subject"], first["indicator"], first["windows"]) == ("torsion_1", "mode_damping", "15")
+
+
+def test_a_report_read_from_and_written_to_an_object_store(tmp_path):
+    """The same output copied to the in-memory object store (``memfs://``, no folders) gives the
+    same page, and the pictures land in the store, not on local disk."""
+    local = str(tmp_path / "local")
+    write_example_output(local)
+    memory_filesystem.reset()
+    for folder, _, names in os.walk(local):
+        for name in names:
+            path = os.path.join(folder, name)
+            with open(path, "rb") as handle:
+                memory_filesystem.put("memfs://site/out/" + os.path.relpath(path, local).replace(os.sep, "/"),
+                                      handle.read())
+    cwd = os.getcwd()
+    os.chdir(tmp_path)
+    try:
+        index = write_report("memfs://site/out", store=ReportFiles())
+    finally:
+        os.chdir(cwd)
+    assert index == "memfs://site/out/report/index.html"
+    assert not [n for n in os.listdir(tmp_path) if n.startswith("memfs")]  # nothing written locally
+    opened = {path for _, path in memory_filesystem.calls("open")}
+    assert any("/out/indicators/asset=demo-asset/" in p for p in opened)
+    remote_page = memory_filesystem.get(index).decode("utf-8")
+    write_report(local)
+    with open(os.path.join(local, "report", "index.html"), encoding="utf-8") as handle:
+        local_page = handle.read()
+    drop = lambda page: [line for line in page.splitlines() if "report written" not in line]  # noqa: E731
+    assert drop(remote_page) == drop(local_page)
+    pictures = [p for p in memory_filesystem.paths("memfs://site/out/report/plots/") if p.endswith(".png")]
+    assert len(pictures) == 5 and all(memory_filesystem.get(p)[:8] == b"\x89PNG\r\n\x1a\n" for p in pictures)
+
+
+def test_legend_lies_inside_the_canvas_and_codes_that_hold_a_window_out_are_drawn_apart(tmp_path):
+    """The legend of a monitored picture with both kinds of quality codes (six entries) is
+    within the figure's canvas, and the held-out windows get their own legend entry."""
+    import matplotlib.pyplot as plt
+
+    from corrtransforms.report.plots import draw_series
+
+    root = str(tmp_path)
+    write_example_output(root)
+    from corrtransforms.report.files import ReportFiles
+    from corrtransforms.report.summaries import read_output
+
+    output = read_output(root, ReportFiles())
+    indicators, shifts = output.get("indicators"), output.get("shifts")
+    pick = lambda t: t.filter(pa.compute.equal(t.column("subject"), "bending_1"))  # noqa: E731
+    values = pick(indicators)
+    quality = values.column("quality").to_pylist()
+    quality[3], quality[9] = "window_too_short_for_screening;max_lag_short", "nonstationary;clipped"
+    values = values.set_column(values.column_names.index("quality"), "quality", pa.array(quality))
+    figure = draw_series("demo-asset", "bending_1", "mode_freq_hz", values, pick(shifts))
+    picture = tmp_path / "legend.png"
+    figure.savefig(picture, dpi=100)
+    renderer = figure.canvas.get_renderer()
+    legend = figure.legends[0]
+    box, canvas = legend.get_window_extent(renderer), figure.bbox
+    labels = [t.get_text() for t in legend.get_texts()]
+    plt.close(figure)
+    assert canvas.x0 <= box.x0 and box.x1 <= canvas.x1 and canvas.y0 <= box.y0 and box.y1 <= canvas.y1
+    assert "value with an informational quality code (max_lag_short, ...)" in labels
+    assert "held out of the detectors (clipped, ...)" in labels
+    assert mpimg.imread(picture).shape[:2] == (600, 1000)
+
+
+def test_shift_size_in_percent_and_baseline_status_on_the_page(tmp_path):
+    root = str(tmp_path)
+    write_example_output(root)
+    state = [dict(asset="demo-asset", date="2025-05-06", window_start=dt.datetime(2025, 5, 6, 22, tzinfo=UTC),
+                  subject="bending_1", indicator="mode_freq_hz", phase="fitted", windows_seen=70,
+                  model_location=2.45, model_quality="ok"),
+             dict(asset="demo-asset", date="2025-05-06", window_start=dt.datetime(2025, 5, 6, 22, tzinfo=UTC),
+                  subject="footing_n:footing_s", indicator="lag_s", phase="accumulating", windows_seen=12,
+                  model_location=None, model_quality="ok")]
+    _write(root, "state", pa.Table.from_pylist(state))
+    assert report.main(["--output", root]) == 0
+    page = _parse(os.path.join(root, "report", "index.html"))
+    first = _table_with(page, "estimated onset")[0]
+    size = float(first["shift size"].split()[0])
+    assert first["of baseline level"] == f"{100 * size / 2.45:+.1f} %"  # shift / |baseline level|
+    with open(os.path.join(root, "report", "index.html"), encoding="utf-8") as handle:
+        text = handle.read()
+    assert "bending_1 \u2014 mode_freq_hz (baseline fitted)" in text
+    assert "footing_n:footing_s \u2014 lag_s (baseline accumulating, 12 windows seen)" in text
+
+
+def test_a_missing_matplotlib_is_one_line_and_status_1(tmp_path):
+    root = str(tmp_path)
+    write_example_output(root, with_correlations=False)
+    script = ("import sys; sys.modules['matplotlib'] = None\n"
+              "from pipelines import report\n"
+              f"sys.exit(report.main(['--output', {root!r}]))")
+    repo = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, cwd=repo, timeout=120)
+    assert done.returncode == 1
+    assert done.stderr.strip().splitlines() == [
+        'report: matplotlib is not installed; install the report extra: pip install "corrtransforms[report]"']
+    assert not os.path.exists(os.path.join(root, "report"))  # no empty plots folder

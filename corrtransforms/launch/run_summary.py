@@ -1,0 +1,145 @@
+"""The summary at the end of a backfill or nightly run: on the console and as JSON in
+``OUTPUT/_runs/asset=NAME/<run id>.json``.
+
+It says where the output went, how many windows were planned, computed and rejected (by reason),
+which series are still accumulating their baseline (from the state table), the new and open
+shift episodes (subject, indicator, direction, onset, size in units and in % of the baseline
+level, peak |z|) and the report command to run next.
+"""
+from __future__ import annotations
+
+import datetime as _dt
+import json
+from typing import Any, Dict, List, Optional
+
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from corrtransforms import tables
+from corrtransforms.beam.filesystems import BeamFiles, open_file
+from corrtransforms.beam.output_tables import latest_states, partition_files
+from corrtransforms.config import AssetConfig
+from corrtransforms.stages.write import conform
+
+RUNS = "_runs"
+
+
+def _time(value) -> Optional[str]:
+    return None if value is None else value.astimezone(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
+
+
+def run_states(output: str, config: AssetConfig, start: Optional[_dt.date], end: Optional[_dt.date]):
+    """The latest state row of each series among the state partitions of the run's days (one
+    day's files for a nightly run; no read-back summary is written)."""
+    pieces = []
+    for date, path in partition_files(output, "state", config.name):
+        day = _dt.date.fromisoformat(date)
+        if (start is None or day >= start) and (end is None or day <= end):
+            with open_file(path) as handle:
+                pieces.append(conform(pq.read_table(handle), tables.STATE))
+    return latest_states(pa.concat_tables(pieces)) if pieces else tables.STATE.empty_table()
+
+
+def baseline_status(states) -> Dict[str, Any]:
+    """Series of the latest state rows by phase; the accumulating ones' fewest windows so far and
+    the windows their baseline needs (``model_n`` is unknown until the fit: the configured count)."""
+    phases = states.column("phase").to_pylist()
+    seen = [n for n, p in zip(states.column("windows_seen").to_pylist(), phases) if p == "accumulating"]
+    return {"series": len(phases), "accumulating": len(seen), "fewest_windows_seen": min(seen) if seen else None}
+
+
+def _baseline_levels(states) -> Dict[tuple, float]:
+    return {(s, i): loc for s, i, loc in zip(states.column("subject").to_pylist(),
+                                             states.column("indicator").to_pylist(),
+                                             states.column("model_location").to_pylist()) if loc is not None}
+
+
+def read_episodes(output: str, config: AssetConfig) -> List[Dict[str, Any]]:
+    """The asset's episodes summary (``episodes/asset=NAME/episodes.parquet``), or none."""
+    store = BeamFiles()
+    path = store.join(output, "episodes", f"asset={config.name}", "episodes.parquet")
+    if not store.exists(path):
+        return []
+    with open_file(path) as handle:
+        return pq.read_table(handle).to_pylist()
+
+
+def _episode_entry(e: Dict[str, Any], levels: Dict[tuple, float]) -> Dict[str, Any]:
+    level = levels.get((e["subject"], e["indicator"]))
+    size = e.get("shift_size")
+    percent = (100.0 * size / abs(level) if size is not None and level is not None and abs(level) > 0 else None)
+    return {"subject": e["subject"], "indicator": e["indicator"], "status": e["status"],
+            "direction": "up" if e["direction"] > 0 else "down", "onset": _time(e.get("onset")),
+            "first_alarm": _time(e.get("first_alarm")), "shift_size": size, "unit": e.get("unit") or "",
+            "baseline_level": level, "shift_percent": percent, "peak_abs_z": e.get("peak_abs_z")}
+
+
+def _in_days(moment, config: AssetConfig, start, end) -> bool:
+    import zoneinfo
+
+    day = moment.astimezone(zoneinfo.ZoneInfo(config.archive.timezone)).date()
+    return (start is None or day >= start) and (end is None or day <= end)
+
+
+def build(counters: Dict[str, int], config: AssetConfig, output: str, run_id: str, start: Optional[_dt.date],
+          end: Optional[_dt.date]) -> Dict[str, Any]:
+    """The run summary as plain values (what the JSON file holds)."""
+    states = run_states(output, config, start, end)
+    levels = _baseline_levels(states)
+    episodes = read_episodes(output, config)
+    prefix = "windows_rejected_"
+    return {
+        "run_id": run_id, "asset": config.name, "output": output,
+        "days": {"start": None if start is None else start.isoformat(), "end": None if end is None else end.isoformat()},
+        "windows": {"planned": counters.get("windows_planned", 0), "computed": counters.get("windows_computed", 0),
+                    "rejected": counters.get("windows_rejected", 0),
+                    "rejected_by_reason": {k[len(prefix):]: v for k, v in sorted(counters.items())
+                                           if k.startswith(prefix)}},
+        "baseline": {**baseline_status(states), "windows_needed": config.baseline.windows,
+                     "until": None if config.baseline.end is None else config.baseline.end.isoformat()},
+        "new_episodes": [_episode_entry(e, levels) for e in episodes if _in_days(e["first_alarm"], config, start, end)],
+        "open_episodes": [_episode_entry(e, levels) for e in episodes if e["status"] == "open"],
+        "next": f"corrtransforms-report --output {output}   (from a checkout: python -m pipelines.report --output {output})",
+    }
+
+
+def _baseline_line(b: Dict[str, Any]) -> str:
+    if not b["series"]:
+        return "baseline: no monitored series yet"
+    if not b["accumulating"]:
+        return f"baseline: fitted for all {b['series']} series"
+    need = (f" of {b['windows_needed']}" if b["windows_needed"] else
+            f" (baseline until {b['until']})" if b["until"] else "")
+    alarms = "no alarms possible yet" if b["accumulating"] == b["series"] else "alarms possible for the others"
+    return (f"{b['accumulating']} of {b['series']} series: baseline accumulating, "
+            f"{b['fewest_windows_seen']}{need} windows; {alarms}")
+
+
+def _episode_line(e: Dict[str, Any]) -> str:
+    size = "" if e["shift_size"] is None else f"{e['shift_size']:+.4g} {e['unit']}".rstrip()
+    percent = "" if e["shift_percent"] is None else f" ({e['shift_percent']:+.1f} % of the baseline level)"
+    z = "" if e["peak_abs_z"] is None else f", peak |z| {e['peak_abs_z']:.1f}"
+    return f"  {e['subject']} {e['indicator']} {e['direction']}, onset {e['onset']}, size {size}{percent}{z}"
+
+
+def text(summary: Dict[str, Any]) -> str:
+    """The console form of the summary."""
+    w = summary["windows"]
+    lines = [f"run {summary['run_id']} of {summary['asset']}: output {summary['output']}",
+             f"windows: planned {w['planned']}, computed {w['computed']}, rejected {w['rejected']}"
+             + "".join(f"; {reason} {n}" for reason, n in w["rejected_by_reason"].items()),
+             _baseline_line(summary["baseline"])]
+    for key, title in (("new_episodes", "new shift episodes"), ("open_episodes", "open shift episodes")):
+        lines.append(f"{title}: {len(summary[key])}" + (":" if summary[key] else ""))
+        lines += [_episode_line(e) for e in summary[key]]
+    lines.append(f"next: {summary['next']}")
+    return "\n".join(lines)
+
+
+def write(summary: Dict[str, Any], output: str) -> str:
+    """Write the summary as JSON under ``OUTPUT/_runs/asset=NAME/``; returns its path."""
+    store = BeamFiles()
+    path = store.join(output, RUNS, f"asset={summary['asset']}", f"{summary['run_id']}.json")
+    with store.create(path) as handle:
+        handle.write(json.dumps(summary, indent=2).encode("utf-8"))
+    return path
