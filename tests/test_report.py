@@ -18,7 +18,8 @@ import pyarrow.dataset as ds
 import pytest
 from matplotlib import image as mpimg
 
-from corrtransforms.report import write_report
+from corrtransforms import tables
+from corrtransforms.report import episodes_from_shifts, write_report
 from corrtransforms.report.files import ReportFiles
 from pipelines import report
 from tests import memory_filesystem
@@ -87,6 +88,7 @@ def write_example_output(root, seed=3, with_shifts=True, with_rejects=True, with
                     "resid_scale": scale, "z": float(z), "cusum_pos": 0.0, "cusum_neg": 0.0, "ewma": 0.0,
                     "ewma_limit": 1.0, "state": state,
                     "onset": computed[onset_index] if state == "shifted" else None,
+                    "first_alarm": computed[onset_index + 2] if state == "shifted" else None,
                     "direction": (1 if value[i] > expected[i] else -1) if state == "shifted" else 0,
                     "shift_size": float(value[i] - expected[i]) if state == "shifted" else None,
                     "detector": "cusum+ewma" if state == "shifted" else None, "quality": "ok", "unit": unit})
@@ -95,7 +97,7 @@ def write_example_output(root, seed=3, with_shifts=True, with_rejects=True, with
             ("indicator", pa.string()), ("value", pa.float64()), ("stderr", pa.float64()),
             ("expected", pa.float64()), ("resid_scale", pa.float64()), ("z", pa.float64()),
             ("cusum_pos", pa.float64()), ("cusum_neg", pa.float64()), ("ewma", pa.float64()),
-            ("ewma_limit", pa.float64()), ("state", pa.string()), ("onset", TS), ("direction", pa.int8()),
+            ("ewma_limit", pa.float64()), ("state", pa.string()), ("onset", TS), ("first_alarm", TS), ("direction", pa.int8()),
             ("shift_size", pa.float64()), ("detector", pa.string()), ("quality", pa.string()), ("unit", pa.string())])
         _write(root, "shifts", pa.Table.from_pylist(shift_rows, schema=shift_schema))
 
@@ -284,26 +286,33 @@ def test_missing_output_folder_is_an_error(tmp_path, capsys):
     assert "is not a folder" in capsys.readouterr().err
 
 
-def test_episodes_are_runs_of_shifted_windows():
+def test_episodes_of_a_shifts_table_are_the_stages_episodes_open_first():
+    """The page's episodes come from the package's one algorithm (stages.summaries.shift_episodes):
+    an episode is identified by the first_alarm its shifted rows carry; open episodes first."""
     times = [START + dt.timedelta(hours=i) for i in range(6)]
     states_a = ["baseline", "normal", "shifted", "shifted", "normal", "shifted"]
     z_a = [0.1, 0.5, 4.0, -6.5, 1.0, 3.5]
-    rows = [dict(asset="x", window_start=t, subject="a", indicator="rms", state=s, z=z,
+    first_a = [None, None, times[2], times[2], None, times[5]]
+    rows = [dict(asset="x", window_start=t, subject="a", indicator="rms", state=s, z=z, expected=1.0,
                  direction=(1 if s == "shifted" else 0), onset=(times[1] if s == "shifted" else None),
-                 shift_size=(0.2 if s == "shifted" else None), detector=("cusum" if s == "shifted" else None),
-                 unit="g") for t, s, z in zip(times, states_a, z_a)]
-    rows += [dict(asset="x", window_start=times[4], subject="b", indicator="rms", state="normal", z=0.0, direction=0,
-                  onset=None, shift_size=None, detector=None, unit="g"),
+                 first_alarm=f, shift_size=(0.2 if s == "shifted" else None),
+                 detector=("cusum" if s == "shifted" else None), unit="g")
+            for t, s, z, f in zip(times, states_a, z_a, first_a)]
+    rows += [dict(asset="x", window_start=times[4], subject="b", indicator="rms", state="normal", z=0.0,
+                  expected=1.0, direction=0, onset=None, first_alarm=None, shift_size=None, detector=None, unit="g"),
              dict(asset="x", window_start=times[5], subject="b", indicator="rms", state="shifted", z=-5.0,
-                  direction=-1, onset=times[5], shift_size=-0.3, detector="ewma", unit="g")]
-    table = pa.Table.from_pylist(rows[::-1])  # unsorted on purpose
-    episodes = report.episodes_from_shifts(table)
+                  expected=1.0, direction=-1, onset=times[5], first_alarm=times[5], shift_size=-0.3,
+                  detector="ewma", unit="g")]
+    schema = tables.SHIFTS.insert(0, pa.field("asset", pa.string()))
+    table = pa.Table.from_pylist(rows[::-1], schema=schema)  # unsorted on purpose
+    episodes = episodes_from_shifts(table)
     summary = [(e["subject"], e["status"], e["n_windows"], e["first_alarm"], e["last_window"], e["direction"])
                for e in episodes]
-    # open episodes first, by onset: a's last window (onset times[1]) before b's (onset times[5])
+    # open episodes first, by onset: a's last episode (onset times[1]) before b's (onset times[5])
     assert summary == [("a", "open", 1, times[5], times[5], 1), ("b", "open", 1, times[5], times[5], -1),
                        ("a", "closed", 2, times[2], times[3], 1)]
     assert episodes[2]["peak_abs_z"] == 6.5 and episodes[2]["detector"] == "cusum"
+    assert episodes[2]["shift_size_pct"] == pytest.approx(20.0)  # 100 * 0.2 / |1.0|
 
 
 def test_an_episodes_table_is_used_when_present(tmp_path):

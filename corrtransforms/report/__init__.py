@@ -11,7 +11,7 @@ picture is drawn.
 """
 from corrtransforms.report.page import CAUTION, render_index, write_report
 from corrtransforms.report.plots import plot_file_name, plot_series
-from corrtransforms.report.summaries import episodes_from_shifts, read_output, shift_episodes
+from corrtransforms.report.summaries import episodes_from_shifts, read_output, report_episodes
 
 __all__ = ["CAUTION", "episodes_from_shifts", "plot_file_name", "plot_series", "read_output", "render_index",
-           "shift_episodes", "write_report"]
+           "report_episodes", "write_report"]

@@ -18,7 +18,7 @@ import numpy as np
 from corrtransforms.report import files
 from corrtransforms.report.plots import write_plots
 from corrtransforms.report.summaries import (TABLES, OutputTables, _text_time, asset_summaries, read_output,
-                                             reject_counts, series_baselines, shift_episodes, shift_percent)
+                                             reject_counts, series_baselines, report_episodes, shift_percent)
 
 CAUTION = ("Indicators and shift flags support, and never replace, inspection and judgement by "
            "qualified engineers under local codes and licensed practice.")
@@ -218,7 +218,7 @@ def write_report(output_dir: str, report_dir: Optional[str] = None, store=None) 
     output = read_output(output_dir, store)
     assets = asset_summaries(output)
     rejects = reject_counts(output)
-    episodes, source = shift_episodes(output)
+    episodes, source = report_episodes(output)
     baselines = series_baselines(output)
     for e in episodes:
         level = baselines.get((e["asset"], e["subject"], e["indicator"]), {}).get("level")

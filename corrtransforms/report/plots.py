@@ -16,7 +16,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from corrtransforms.report.summaries import OutputTables, _column, _us
-from corrtransforms.stages.shifts import _is_nonstationary
+from corrtransforms.records import holds_window
 
 #: width of the healthy band drawn around the expectation, in residual scales (common practice:
 #: the Shewhart three-sigma limits)
@@ -84,10 +84,10 @@ def plot_series(path, asset: str, subject: str, indicator: str, values: pa.Table
 def _quality_marks(ax, time, value, finite, quality, handles) -> None:
     """Values with quality codes: hollow circles where the codes are informational, crosses where
     they hold the window out of the detectors (the shift stage's rule,
-    :func:`corrtransforms.stages.shifts._is_nonstationary`)."""
+    :func:`corrtransforms.records.holds_window`)."""
     codes_of = [tuple(c for c in str(q).split(";") if c and c != "ok") for q in quality]
     coded = np.array([bool(c) for c in codes_of], dtype=bool) & finite
-    held = np.array([_is_nonstationary(c) for c in codes_of], dtype=bool) & coded
+    held = np.array([holds_window(c) for c in codes_of], dtype=bool) & coded
     for mask, label, style in (
             (coded & ~held, "value with an informational quality code", dict(
                 s=14, facecolors="none", edgecolors=QUALITY_COLOUR, linewidths=0.7)),

@@ -19,6 +19,8 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
+from corrtransforms.stages import summaries as stage_summaries
+
 TABLES = ("correlations", "indicators", "shifts", "rejects", "state", "episodes")
 _PARTITION = re.compile(r"/asset=([^/]+)/date=([^/]+)/[^/]+$")
 
@@ -240,71 +242,37 @@ def _direction_sign(value) -> int:
 
 
 def episodes_from_shifts(shifts: pa.Table) -> List[Dict]:
-    """Shift episodes: maximal runs of consecutive windows in state "shifted" per series.
+    """Shift episodes of a shifts table as the page shows them: the package's one episodes
+    algorithm (:func:`corrtransforms.stages.summaries.shift_episodes`), as dicts, open first.
 
     Parameters
     ----------
     shifts : pyarrow.Table
-        Rows of the shifts table (with ``asset``).
+        Rows of the shifts table (with ``asset`` when read from the Hive folders).
 
     Returns
     -------
     list of dict
-        asset, subject, indicator, status ("open" when the run reaches the series' last window,
-        else "closed"), onset (the latest onset estimate in the run), first_alarm, last_window,
-        direction (+1/-1), shift_size (at the run's last window), peak_abs_z, detector (the
-        detectors that signalled), n_windows, unit. Open episodes first, each group by onset.
+        The episodes table's columns (asset, subject, indicator, onset, first_alarm,
+        last_window, status, direction, shift_size, shift_size_pct, peak_abs_z, detector,
+        n_windows, unit); open episodes first, each group by onset.
     """
-    starts = _us(shifts.column("window_start"))
-    order = np.lexsort((starts, np.array(_column(shifts, "indicator", ""), dtype=object).astype(str),
-                        np.array(_column(shifts, "subject", ""), dtype=object).astype(str),
-                        np.array(_column(shifts, "asset", ""), dtype=object).astype(str)))
-    table = shifts.take(pa.array(order))
-    starts = starts[order]
-    assets, subjects, indicators = (_column(table, c, "") for c in ("asset", "subject", "indicator"))
-    states, onsets = _column(table, "state", ""), _column(table, "onset")
-    directions, sizes, zs = _column(table, "direction"), _column(table, "shift_size"), _column(table, "z")
-    detectors, units = _column(table, "detector"), _column(table, "unit", "")
-    episodes: List[Dict] = []
-    current: Optional[Dict] = None
-    for i in range(table.num_rows):
-        series = (assets[i], subjects[i], indicators[i])
-        new_series = i == 0 or series != (assets[i - 1], subjects[i - 1], indicators[i - 1])
-        if new_series and current is not None:
-            current["status"] = "open"  # the run reached the previous series' last window
-            current = None
-        if states[i] == "shifted":
-            if current is None:
-                current = {"asset": series[0], "subject": series[1], "indicator": series[2],
-                           "first_alarm": int(starts[i]), "onset": None, "detectors": set(),
-                           "peak_abs_z": float("nan"), "n_windows": 0, "status": "closed"}
-                episodes.append(current)
-            current["last_window"] = int(starts[i])
-            current["n_windows"] += 1
-            if onsets[i] is not None:
-                current["onset"] = onsets[i]
-            if directions[i] is not None and _direction_sign(directions[i]) != 0:
-                current["direction"] = _direction_sign(directions[i])
-            if sizes[i] is not None and np.isfinite(sizes[i]):
-                current["shift_size"] = float(sizes[i])
-            if zs[i] is not None and np.isfinite(zs[i]):
-                current["peak_abs_z"] = float(np.nanmax([current["peak_abs_z"], abs(zs[i])]))
-            if detectors[i]:
-                current["detectors"].update(str(detectors[i]).split("+"))
-            current["unit"] = units[i] or ""
-        else:
-            current = None  # the run ended before the series' last window: closed
-    if current is not None:
-        current["status"] = "open"
-    for e in episodes:
-        e.setdefault("direction", 0)
-        e.setdefault("shift_size", float("nan"))
-        e["detector"] = "+".join(sorted(e.pop("detectors")))
-        e["onset"] = e["onset"] if e["onset"] is not None else _dt.datetime.fromtimestamp(
-            e["first_alarm"] / 1e6, tz=_dt.timezone.utc)
-        e["first_alarm"] = _dt.datetime.fromtimestamp(e["first_alarm"] / 1e6, tz=_dt.timezone.utc)
-        e["last_window"] = _dt.datetime.fromtimestamp(e["last_window"] / 1e6, tz=_dt.timezone.utc)
-    return _sort_episodes(episodes)
+    return _episode_rows(stage_summaries.shift_episodes(shifts).to_pylist())
+
+
+def _episode_rows(rows: List[Dict]) -> List[Dict]:
+    """Episode rows with the page's conventions: direction as +1/-1/0, a status, NaN for a
+    missing size or peak, an empty asset when the table had none; sorted open first."""
+    out = []
+    for row in rows:
+        row.setdefault("asset", "")
+        row["direction"] = _direction_sign(row.get("direction"))
+        row["status"] = row.get("status") or "closed"
+        row["detector"] = row.get("detector") or ""
+        for key in ("shift_size", "peak_abs_z"):
+            row[key] = float("nan") if row.get(key) is None else row[key]
+        out.append(row)
+    return _sort_episodes(out)
 
 
 def _sort_episodes(episodes: List[Dict]) -> List[Dict]:
@@ -313,22 +281,14 @@ def _sort_episodes(episodes: List[Dict]) -> List[Dict]:
                                            e["subject"], e["indicator"]))
 
 
-def shift_episodes(output: OutputTables) -> Tuple[List[Dict], str]:
+def report_episodes(output: OutputTables) -> Tuple[List[Dict], str]:
     """Episodes from the episodes table when present, else derived from the shifts table.
 
     Returns the episodes (open first) and where they came from ("episodes", "shifts" or "").
     """
     table = output.get("episodes")
     if table is not None:
-        rows = []
-        for row in table.to_pylist():
-            row.setdefault("asset", "")
-            row["direction"] = _direction_sign(row.get("direction"))
-            row["status"] = row.get("status") or "closed"
-            for key in ("shift_size", "peak_abs_z"):
-                row[key] = float("nan") if row.get(key) is None else row[key]
-            rows.append(row)
-        return _sort_episodes(rows), "episodes"
+        return _episode_rows(table.to_pylist()), "episodes"
     shifts = output.get("shifts")
     if shifts is None:
         return [], ""
