@@ -86,13 +86,8 @@ _EPISODE_HEAD = ("<tr><th>asset</th><th>subject</th><th>indicator</th><th>direct
                  "<th>shift size</th><th>of baseline level</th><th>peak |z|</th><th>detector</th><th></th></tr>")
 
 
-def render_index(output: OutputTables, assets: List[Dict], rejects: List[Dict], episodes: List[Dict],
-                 episode_source: str, plots: List[Dict], generated: str) -> str:
-    """The index page as an HTML string (open episodes first, then assets, rejects, closed
-    episodes, pictures, and the tables found)."""
-    plot_index = {(p["asset"], p["subject"], p["indicator"]): p["path"] for p in plots}
-    open_episodes = [e for e in episodes if e["status"] == "open"]
-    closed = [e for e in episodes if e["status"] != "open"]
+def _page_head(output: OutputTables, generated: str) -> List[str]:
+    """Doctype, title, output folder and the caution."""
     parts = ["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
              '<meta name="viewport" content="width=device-width, initial-scale=1">',
              "<title>corrtransforms report</title>", f"<style>{_CSS}</style></head><body>",
@@ -100,7 +95,12 @@ def render_index(output: OutputTables, assets: List[Dict], rejects: List[Dict], 
              f'<p class="meta">Output folder <code>{_e(_shown_folder(output.folder))}</code>; '
              f"report written {_e(generated)}. All times UTC.</p>",
              f'<p class="caution"><strong>Caution.</strong> {_e(CAUTION)}</p>']
+    return parts
 
+
+def _open_section(output: OutputTables, open_episodes: List[Dict], plot_index: Dict) -> List[str]:
+    """Open shift episodes, earliest onset first."""
+    parts: List[str] = []
     parts.append(f'<h2 id="open">Open shift episodes ({len(open_episodes)})</h2>')
     if output.get("shifts") is None and output.get("episodes") is None:
         parts.append('<p class="note">No shifts table was found: shift detection has not run on this '
@@ -111,7 +111,12 @@ def render_index(output: OutputTables, assets: List[Dict], rejects: List[Dict], 
         parts.append("<p>Series whose latest window is still in state shifted, earliest onset first.</p>")
         parts.append("<div class=\"wide\"><table class=\"episodes\">" + _EPISODE_HEAD
                      + "".join(_episode_rows(open_episodes, plot_index)) + "</table></div>")
+    return parts
 
+
+def _assets_section(assets: List[Dict]) -> List[str]:
+    """Per asset: days, windows planned, computed and rejected."""
+    parts: List[str] = []
     parts.append('<h2 id="assets">Assets and windows processed</h2>')
     if not assets:
         parts.append('<p class="note">No output tables with rows were found in this folder.</p>')
@@ -129,7 +134,12 @@ def render_index(output: OutputTables, assets: List[Dict], rejects: List[Dict], 
         parts.append("</table>")
         parts.append("<p>Windows computed have correlation rows; windows rejected produced none (their "
                      "reasons are below); planned = computed + rejected.</p>")
+    return parts
 
+
+def _rejects_section(output: OutputTables, rejects: List[Dict]) -> List[str]:
+    """Rejected, repaired and flagged input by reason."""
+    parts: List[str] = []
     parts.append('<h2 id="rejects">Rejected, repaired and flagged input by reason</h2>')
     if output.get("rejects") is None and output.get("indicators") is not None:
         parts.append("<p>No input was rejected. The rejects table has no rows: nothing was repaired or flagged "
@@ -146,7 +156,12 @@ def render_index(output: OutputTables, assets: List[Dict], rejects: List[Dict], 
                 f'<td>{_e(r["stage"])}</td><td class="num">{r["count"]}</td><td>{_e(subjects)}</td>'
                 f'<td>{_e(r["example"][:160])}</td></tr>')
         parts.append("</table>")
+    return parts
 
+
+def _closed_section(closed: List[Dict], episode_source: str, plot_index: Dict) -> List[str]:
+    """Closed shift episodes."""
+    parts: List[str] = []
     parts.append(f'<h2 id="closed">Closed shift episodes ({len(closed)})</h2>')
     if closed:
         parts.append("<div class=\"wide\"><table class=\"episodes\">" + _EPISODE_HEAD
@@ -154,9 +169,14 @@ def render_index(output: OutputTables, assets: List[Dict], rejects: List[Dict], 
     else:
         parts.append("<p>None.</p>")
     if episode_source == "shifts":
-        parts.append('<p class="note">Episodes are runs of consecutive windows in state shifted, '
-                     "derived from the shifts table.</p>")
+        parts.append('<p class="note">Episodes are derived from the shifts table (each begins at a first alarm and '
+                     "ends where the series leaves state shifted or reverses direction).</p>")
+    return parts
 
+
+def _trends_section(output: OutputTables, plots: List[Dict]) -> List[str]:
+    """The pictures, per asset, monitored series first."""
+    parts: List[str] = []
     parts.append('<h2 id="trends">Trends per subject and indicator</h2>')
     if output.get("indicators") is None:
         parts.append(f'<p class="note">No indicators table was found ({_e(output.notes.get("indicators", ""))}); '
@@ -180,7 +200,12 @@ def render_index(output: OutputTables, assets: List[Dict], rejects: List[Dict], 
                 parts.append(f'<figure><a href="{_e(p["path"])}"><img src="{_e(p["path"])}" alt="{_e(label)}" '
                              f'loading="lazy"></a><figcaption>{_e(label)}</figcaption></figure>')
             parts.append("</div>")
+    return parts
 
+
+def _tables_section(output: OutputTables) -> List[str]:
+    """Which tables were read, with their row counts."""
+    parts: List[str] = []
     parts.append('<h2 id="tables">Tables read</h2><table><tr><th>table</th><th>rows</th><th>note</th></tr>')
     for name in TABLES:
         table = output.get(name)
@@ -190,6 +215,20 @@ def render_index(output: OutputTables, assets: List[Dict], rejects: List[Dict], 
             note = (note + "; episodes derived from the shifts table") if output.get("shifts") is not None else note
         parts.append(f"<tr><td>{_e(name)}</td><td class=\"num\">{rows}</td><td>{_e(note)}</td></tr>")
     parts.append("</table>")
+    return parts
+
+
+def render_index(output: OutputTables, assets: List[Dict], rejects: List[Dict], episodes: List[Dict],
+                 episode_source: str, plots: List[Dict], generated: str) -> str:
+    """The index page as an HTML string (open episodes first, then assets, rejects, closed
+    episodes, pictures, and the tables found)."""
+    plot_index = {(p["asset"], p["subject"], p["indicator"]): p["path"] for p in plots}
+    open_episodes = [e for e in episodes if e["status"] == "open"]
+    closed = [e for e in episodes if e["status"] != "open"]
+    parts = (_page_head(output, generated) + _open_section(output, open_episodes, plot_index)
+             + _assets_section(assets) + _rejects_section(output, rejects)
+             + _closed_section(closed, episode_source, plot_index) + _trends_section(output, plots)
+             + _tables_section(output))
     parts.append(f'<p class="caution">{_e(CAUTION)}</p>')
     parts.append("</body></html>")
     return "\n".join(parts) + "\n"

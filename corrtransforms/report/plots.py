@@ -129,7 +129,6 @@ def draw_series(asset: str, subject: str, indicator: str, values: pa.Table, shif
     import matplotlib
 
     matplotlib.use("Agg")
-    import matplotlib.dates as mdates
     import matplotlib.pyplot as plt
 
     v = _series_arrays(values, ["value", "stderr", "unit", "quality"])
@@ -142,51 +141,68 @@ def draw_series(asset: str, subject: str, indicator: str, values: pa.Table, shif
         fig, ax = plt.subplots(1, 1, figsize=(10, 4.2), layout="constrained")
         az = None
     time = _as_datetimes(v["time"])
+    handles: List = []
+    if monitored:
+        _shift_layers(ax, az, shifts, handles)
+    _value_layers(ax, v, time, handles)
+    _finish(fig, ax, az, f"{asset} \u2014 {subject} \u2014 {indicator}", indicator, unit, v, shifts, handles)
+    return fig
+
+
+def _shift_layers(ax, az, shifts: pa.Table, handles: List) -> None:
+    """What the shift detector wrote: baseline windows, healthy band, expectation, shifted
+    windows and onsets on the upper axes; the standardised residual on the lower."""
+    s = _series_arrays(shifts, ["expected", "resid_scale", "z", "state", "onset", "value", "stderr"])
+    stime = _as_datetimes(s["time"])
+    baseline = s["state"] == "baseline"
+    if baseline.any():
+        first, last = stime[baseline][0], stime[baseline][-1]
+        handles.append(ax.axvspan(first, last, color=BASELINE_COLOUR, zorder=0, label="baseline windows"))
+        az.axvspan(first, last, color=BASELINE_COLOUR, zorder=0)
+    spread = np.sqrt(s["resid_scale"] ** 2 + np.where(np.isfinite(s["stderr"]), s["stderr"], 0.0) ** 2)
+    band = np.isfinite(s["expected"]) & np.isfinite(spread)
+    if band.any():
+        gap_time, expected, low, high = _break_gaps(
+            s["time"], s["expected"], np.where(band, s["expected"] - BAND_SCALES * spread, np.nan),
+            np.where(band, s["expected"] + BAND_SCALES * spread, np.nan))
+        handles.append(ax.fill_between(
+            gap_time, low, high, color=BAND_COLOUR, linewidth=0, zorder=1,
+            label=f"healthy band: |z| \u2264 {BAND_SCALES:g}"))
+        handles.append(ax.plot(gap_time, expected, color=EXPECTED_COLOUR, linewidth=1.2, zorder=3,
+                               label="expected (covariate-compensated)")[0])
+    shifted = s["state"] == "shifted"
+    if shifted.any():
+        handles.append(ax.scatter(stime[shifted], s["value"][shifted], s=26, marker="D",
+                                  color=SHIFTED_COLOUR, zorder=5, label="shifted window"))
+        onsets = np.unique(s["onset"][shifted & (s["onset"] != np.iinfo(np.int64).min)])
+        for k, onset in enumerate(onsets):
+            line = ax.axvline(_as_datetimes(np.array([onset]))[0], color=SHIFTED_COLOUR, linestyle="--",
+                              linewidth=1.0, zorder=4, label="estimated onset" if k == 0 else None)
+            az.axvline(_as_datetimes(np.array([onset]))[0], color=SHIFTED_COLOUR, linestyle="--", linewidth=1.0)
+            if k == 0:
+                handles.append(line)
+    _z_panel(az, s, stime, shifted)
+
+
+def _z_panel(az, s: Dict[str, np.ndarray], stime, shifted: np.ndarray) -> None:
+    """The lower panel: z with its +/- BAND_SCALES lines, shifted windows as diamonds."""
+    zfinite = np.isfinite(s["z"])
+    az.axhline(0.0, color=INK, linewidth=0.6)
+    for level in (-BAND_SCALES, BAND_SCALES):
+        az.axhline(level, color=EXPECTED_COLOUR, linewidth=0.8, linestyle=":")
+    az.plot(stime[zfinite & ~shifted], s["z"][zfinite & ~shifted], ".", color=INK, markersize=3)
+    az.plot(stime[zfinite & shifted], s["z"][zfinite & shifted], "D", color=SHIFTED_COLOUR, markersize=3.5)
+    az.set_ylabel("z")
+    zlim = np.nanpercentile(np.abs(s["z"][zfinite]), 99.5) if zfinite.any() else BAND_SCALES
+    az.set_ylim(-max(zlim, 4.0) * 1.1, max(zlim, 4.0) * 1.1)
+    az.grid(True, color="#dddddd", linewidth=0.5)
+
+
+
+def _value_layers(ax, v: Dict[str, np.ndarray], time, handles: List) -> None:
+    """The indicator values with their error band and quality marks, and the value axis range."""
     value, stderr = v["value"], v["stderr"]
     finite = np.isfinite(value)
-    handles = []
-
-    if monitored:
-        s = _series_arrays(shifts, ["expected", "resid_scale", "z", "state", "onset", "value", "stderr"])
-        stime = _as_datetimes(s["time"])
-        baseline = s["state"] == "baseline"
-        if baseline.any():
-            first, last = stime[baseline][0], stime[baseline][-1]
-            handles.append(ax.axvspan(first, last, color=BASELINE_COLOUR, zorder=0, label="baseline windows"))
-            az.axvspan(first, last, color=BASELINE_COLOUR, zorder=0)
-        spread = np.sqrt(s["resid_scale"] ** 2 + np.where(np.isfinite(s["stderr"]), s["stderr"], 0.0) ** 2)
-        band = np.isfinite(s["expected"]) & np.isfinite(spread)
-        if band.any():
-            gap_time, expected, low, high = _break_gaps(
-                s["time"], s["expected"], np.where(band, s["expected"] - BAND_SCALES * spread, np.nan),
-                np.where(band, s["expected"] + BAND_SCALES * spread, np.nan))
-            handles.append(ax.fill_between(
-                gap_time, low, high, color=BAND_COLOUR, linewidth=0, zorder=1,
-                label=f"healthy band: |z| \u2264 {BAND_SCALES:g}"))
-            handles.append(ax.plot(gap_time, expected, color=EXPECTED_COLOUR, linewidth=1.2, zorder=3,
-                                   label="expected (covariate-compensated)")[0])
-        shifted = s["state"] == "shifted"
-        if shifted.any():
-            handles.append(ax.scatter(stime[shifted], s["value"][shifted], s=26, marker="D",
-                                      color=SHIFTED_COLOUR, zorder=5, label="shifted window"))
-            onsets = np.unique(s["onset"][shifted & (s["onset"] != np.iinfo(np.int64).min)])
-            for k, onset in enumerate(onsets):
-                line = ax.axvline(_as_datetimes(np.array([onset]))[0], color=SHIFTED_COLOUR, linestyle="--",
-                                  linewidth=1.0, zorder=4, label="estimated onset" if k == 0 else None)
-                az.axvline(_as_datetimes(np.array([onset]))[0], color=SHIFTED_COLOUR, linestyle="--", linewidth=1.0)
-                if k == 0:
-                    handles.append(line)
-        zfinite = np.isfinite(s["z"])
-        az.axhline(0.0, color=INK, linewidth=0.6)
-        for level in (-BAND_SCALES, BAND_SCALES):
-            az.axhline(level, color=EXPECTED_COLOUR, linewidth=0.8, linestyle=":")
-        az.plot(stime[zfinite & ~shifted], s["z"][zfinite & ~shifted], ".", color=INK, markersize=3)
-        az.plot(stime[zfinite & shifted], s["z"][zfinite & shifted], "D", color=SHIFTED_COLOUR, markersize=3.5)
-        az.set_ylabel("z")
-        zlim = np.nanpercentile(np.abs(s["z"][zfinite]), 99.5) if zfinite.any() else BAND_SCALES
-        az.set_ylim(-max(zlim, 4.0) * 1.1, max(zlim, 4.0) * 1.1)
-        az.grid(True, color="#dddddd", linewidth=0.5)
-
     band_ok = finite & np.isfinite(stderr)
     if band_ok.any():
         gap_time, low, high = _break_gaps(v["time"][finite], np.where(band_ok, value - stderr, np.nan)[finite],
@@ -205,7 +221,16 @@ def draw_series(asset: str, subject: str, indicator: str, values: pa.Table, shif
     else:
         ax.text(0.5, 0.5, "no finite values", transform=ax.transAxes, ha="center", va="center", color=INK)
 
-    ax.set_title(f"{asset} \u2014 {subject} \u2014 {indicator}", loc="left", fontsize=12, color=INK)
+
+
+def _finish(fig, ax, az, title: str, indicator: str, unit: str, v: Dict[str, np.ndarray],
+            shifts: Optional[pa.Table], handles: List) -> None:
+    """Titles, labels, the legend inside the figure below the axes, the date axis."""
+    import matplotlib.dates as mdates
+
+    monitored = shifts is not None and shifts.num_rows > 0
+    finite = np.isfinite(v["value"])
+    ax.set_title(title, loc="left", fontsize=12, color=INK)
     shifted_count = int((shifts.column("state").to_numpy(zero_copy_only=False) == "shifted").sum()) if monitored else 0
     ax.set_title(f"{int(finite.sum())} windows" + (f", {shifted_count} shifted" if monitored else ", not monitored"),
                  loc="right", fontsize=9, color="#555555")
@@ -223,7 +248,6 @@ def draw_series(asset: str, subject: str, indicator: str, values: pa.Table, shif
         if a is not None:
             for side in ("top", "right"):
                 a.spines[side].set_visible(False)
-    return fig
 
 
 def write_plots(output: OutputTables, report_dir: str, store) -> List[Dict]:
