@@ -11,15 +11,20 @@ import pytest
 import statsmodels.api as sm
 
 from corrtransforms import tables
-
 from corrtransforms.numerics import detectors
-
 from corrtransforms.stages import shifts as shift_series
 from corrtransforms.stages import state as shift_state
 from corrtransforms.stages import summaries
 from corrtransforms.timeutil import local_days
-from tests.shift_fixtures import (HOUR_US, TIMEZONE, assert_tables_identical, indicator_rows, make_config,
-                                  same, seasonal_series)
+from tests.shift_fixtures import (
+    HOUR_US,
+    TIMEZONE,
+    assert_tables_identical,
+    indicator_rows,
+    make_config,
+    same,
+    seasonal_series,
+)
 
 # Detector settings of the scenario, chosen from a tolerable false-alarm rate of about one per
 # 10^4 in-control windows per detector (two-sided ARL0 from Page's integral equation:

@@ -37,7 +37,6 @@ from scipy import special as _special
 
 from corrtransforms.numerics.detectors import CHARTS, cusum_path, ewma_limits, ewma_path
 
-
 # --------------------------------------------------------------------------------------------
 # Average run length by simulation
 

@@ -43,18 +43,33 @@ import numpy as np
 import pyarrow as pa
 
 from corrtransforms import tables
-from corrtransforms.numerics.covariate_model import BaselineModel, fit_baseline_model
 from corrtransforms.numerics.arl import limit_for_estimated_parameters
+from corrtransforms.numerics.covariate_model import BaselineModel, fit_baseline_model
 from corrtransforms.numerics.detectors import cusum_path, cusum_run_lengths, cusum_run_sums, ewma_limits, ewma_path
 from corrtransforms.numerics.robust import robust_location_scale
-from corrtransforms.numerics.serial_dependence import (MIN_PAIRS, ar1_prediction_errors, innovation_scale,
-                                                       latent_ar1_coefficient, robust_lag_one_correlation)
+from corrtransforms.numerics.serial_dependence import (
+    MIN_PAIRS,
+    ar1_prediction_errors,
+    innovation_scale,
+    latent_ar1_coefficient,
+    robust_lag_one_correlation,
+)
 from corrtransforms.records import IndicatorRow, quality_codes, quality_text
 from corrtransforms.rejects import Reject, iso_utc
+from corrtransforms.stages.state import (
+    ACCUMULATING,
+    BASELINE,
+    FITTED,
+    NORMAL,
+    SHIFTED,
+    ShiftState,
+    StateMismatchError,
+    resume_or_start,
+    select_resume_state,
+    settings_digest,
+    states_table,
+)
 from corrtransforms.timeutil import day_date, day_number, local_days
-from corrtransforms.stages.state import (ACCUMULATING, BASELINE, FITTED, NORMAL, SHIFTED, ShiftState,
-                                         StateMismatchError, resume_or_start, select_resume_state,
-                                         settings_digest, states_table)
 
 COVARIATE_INDICATOR = "covariate_mean"
 STAGE = "shifts"
