@@ -264,3 +264,12 @@ def test_a_two_percent_drop_of_a_correlated_mode_frequency_is_flagged_within_a_d
     alarm = (upper > h) | (lower > h)
     delay = np.where(alarm.any(axis=1), alarm.argmax(axis=1) + 1, 999)
     assert np.median(delay) <= 12 and np.mean(delay <= 24) >= 0.85
+
+
+def test_limits_for_an_estimated_baseline_shrink_towards_the_configured_ones_with_n():
+    # design: the known-parameter ARL0 (Page's equation); the widening falls with n and is capped
+    # at 3 h for a baseline too short to say anything (a 4-window baseline must not fail)
+    widened = [arl.limit_for_estimated_parameters("cusum", 10.0, n) for n in (4, 60, 120, 1000)]
+    assert widened[0] == 30.0 and widened[1] > widened[2] > widened[3] > 10.0
+    assert widened[3] < 11.0
+    assert arl.limit_for_estimated_parameters("ewma", 4.3, 10**6, smoothing=0.1) < 4.32

@@ -514,3 +514,30 @@ def test_the_readme_duckdb_query_gives_the_onsets_and_peaks_of_the_episodes_tabl
     for key, (onset, peak) in wanted.items():
         assert found[key][0] == onset <= key[2]
         assert math.isfinite(peak) and found[key][1] == peak, key
+
+
+#: STATE columns added with the residual chart (issue 15 part 3)
+DEPENDENCE_FIELDS = ("sample_window_start", "dependence_phi", "dependence_pairs", "innovation_scale",
+                     "innovation_ratio", "cusum_h_used", "ewma_L_used", "predictor_mean", "predictor_var",
+                     "predictor_window_start", "window_spacing_s")
+
+
+def test_a_state_row_from_before_the_dependence_fields_resumes_as_the_old_chart():
+    times, values, stderr, _ = _series(n=200)
+    config = make_config("none", baseline={"windows": 100, "min_windows": 30})
+    table, states = shift_series.detect_shifts(times, values, stderr, None, None, config,
+                                               subject="pump", indicator="rms", unit="mm/s")
+    fitted = [s for s in states if s.phase == "fitted"][0]
+    assert fitted.dependence_pairs >= 30 and fitted.cusum_h_used > 10.0  # fitted and widened
+    old_row = {k: v for k, v in fitted.to_row().items() if k not in DEPENDENCE_FIELDS}
+    old = shift_state.ShiftState.from_row(old_row)
+    assert (old.dependence_phi, old.innovation_ratio, old.cusum_h_used, old.predictor_var) == (0.0, 1.0, None, None)
+    later = times > fitted.window_start_us
+    resumed, _ = shift_series.detect_shifts(times[later], values[later], stderr[later], None, None, config, old)
+    frame = resumed.to_pandas()
+    assert all("dependence_not_estimated" in q for q in frame.quality)
+    # the old chart: the CUSUM of z itself (phi 0, ratio 1), with the configured h = 10
+    z = frame.z.to_numpy()
+    upper, lower = detectors.cusum_path(z, 0.5, old.cusum_pos, old.cusum_neg)
+    np.testing.assert_allclose(frame.cusum_pos, upper, atol=1e-12)
+    np.testing.assert_allclose(frame.cusum_neg, lower, atol=1e-12)

@@ -422,10 +422,13 @@ def false_alarm_rate_estimated(chart: str, limit: float, offset_sd: float, log_s
     offset, ratio, weight = _baseline_error_nodes(offset_sd, log_scale_sd)
     rates = []
     for d, c in zip(offset, ratio):
-        if chart == "cusum":
-            arl = cusum_arl_integral_equation(k / c, limit / c, shift=d / c, nodes=40)
-        else:
-            arl = ewma_arl_integral_equation(smoothing, limit / c, shift=d / c, nodes=64)
+        try:
+            if chart == "cusum":
+                arl = cusum_arl_integral_equation(k / c, limit / c, shift=d / c, nodes=40)
+            else:
+                arl = ewma_arl_integral_equation(smoothing, limit / c, shift=d / c, nodes=64)
+        except np.linalg.LinAlgError:  # a tiny scale ratio: the run length is astronomically long
+            arl = np.inf
         # beyond ~1e15 the linear system is ill-conditioned: such a node adds nothing to the rate
         rates.append(1.0 / arl if np.isfinite(arl) and 0 < arl < 1e15 else 0.0)
     return float(np.dot(weight, rates))
