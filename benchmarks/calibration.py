@@ -544,9 +544,11 @@ def _detect_shifts():
 #: window spacing of the simulated indicator series (10-minute windows)
 WINDOW_US = 600 * 1_000_000
 BASELINE_WINDOWS = 120
-#: constant indicator stderr of the simulated series, as a fraction of the residual scale: z is
-#: invariant to it (s_resid^2 + stderr^2 = total scale^2, see robust.net_scale)
-SERIES_STDERR = 0.5
+#: constant indicator stderr of the simulated series. 0 since the detectors fit the AR(1) of the
+#: indicator's own variability net of the windows' (independent) errors: the simulated AR(1) is
+#: the whole residual, so a stated stderr of 0.5 that is not independent noise would make the
+#: fitted phi 4/3 too large. The old chart on z gave the same rows with 0 or 0.5.
+SERIES_STDERR = 0.0
 
 
 def detector_config():

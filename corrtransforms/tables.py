@@ -126,6 +126,17 @@ STATE = pa.schema([
     _f("detector", pa.string(), "", "detector(s) currently signalling"),
     _f("first_alarm", TIMESTAMP, "", "first alarm of the current episode"),
     _f("ewma_limit", pa.float64(), "", "last EWMA limit"),
+    _f("sample_window_start", pa.list_(TIMESTAMP), "", "window starts of the baseline sample (while accumulating; lag-1 pairs)"),
+    _f("dependence_phi", pa.float64(), "", "AR(1) coefficient of the residuals fitted on the baseline (0: none or not estimated)"),
+    _f("dependence_pairs", pa.int64(), "", "adjacent baseline pairs phi was fitted from (0 for states written before it)"),
+    _f("innovation_scale", pa.float64(), "see unit column", "scale of the one-step prediction errors: resid_scale sqrt(1 - phi^2) innovation_ratio"),
+    _f("innovation_ratio", pa.float64(), "", "robust scale of the baseline's standardised prediction errors (divides them)"),
+    _f("cusum_h_used", pa.float64(), "", "CUSUM h widened for the baseline's estimation error (null: configured h)"),
+    _f("ewma_L_used", pa.float64(), "", "EWMA L widened for the baseline's estimation error (null: configured L)"),
+    _f("predictor_mean", pa.float64(), "see unit column", "filtered mean of the residual after predictor_window_start"),
+    _f("predictor_var", pa.float64(), "", "its variance (null: the stationary start)"),
+    _f("predictor_window_start", TIMESTAMP, "", "last window the predictor was updated with"),
+    _f("window_spacing_s", pa.float64(), "s", "median spacing of the baseline windows: one prediction step (null: [windows] hop_s)"),
 ])
 
 EPISODES = pa.schema([

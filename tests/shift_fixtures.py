@@ -95,3 +95,32 @@ def assert_tables_identical(a, b):
         x, y = a.column(name).to_pylist(), b.column(name).to_pylist()
         bad = [i for i in range(len(x)) if not same(x[i], y[i])]
         assert not bad, (name, bad[:5], [(x[i], y[i]) for i in bad[:3]])
+
+
+def ar1_series(rng, n_series: int, n: int, phi: float) -> np.ndarray:
+    """Unit-variance AR(1) series, shape (n_series, n), started from the stationary law."""
+    innovations = rng.standard_normal((n_series, n)) * math.sqrt(1.0 - phi * phi)
+    x = np.empty((n_series, n))
+    x[:, 0] = rng.standard_normal(n_series)
+    for t in range(1, n):
+        x[:, t] = phi * x[:, t - 1] + innovations[:, t]
+    return x
+
+
+def residual_chart_errors(values: np.ndarray, baseline: int) -> np.ndarray:
+    """What the shifts stage does to a batch of series without covariates or stderr, written with
+    the numerics functions: median/MAD baseline of the first ``baseline`` windows, robust AR(1),
+    filter over the whole series, errors divided by the MAD of the baseline's own errors.
+    Returns the monitored windows' standardised prediction errors, shape (n_series, n - baseline)."""
+    from corrtransforms.numerics import serial_dependence as sd
+
+    base = values[:, :baseline]
+    location = np.median(base, axis=1, keepdims=True)
+    scale = 1.482602218505602 * np.median(np.abs(base - location), axis=1)
+    resid = values - location
+    rho, pairs = sd.robust_lag_one_correlation(resid[:, :baseline] / scale[:, None])
+    phi = sd.latent_ar1_coefficient(rho, scale, scale)
+    errors, _, _ = sd.ar1_prediction_errors(resid, 0.0, 1, phi, scale)
+    ratio = 1.482602218505602 * np.median(np.abs(errors[:, :baseline] - np.median(errors[:, :baseline], axis=1,
+                                                                                    keepdims=True)), axis=1)
+    return errors[:, baseline:] / ratio[:, None]

@@ -15,11 +15,14 @@ The numerical ARLs (integral equation, Markov chain) are the project's own code,
 check is made three ways: simulation vs table, integral equation vs table, and the numerical
 methods against each other.
 """
+import math
+
 import numpy as np
 import pandas as pd
 import pytest
 
-from corrtransforms.numerics import arl, detectors
+from corrtransforms.numerics import arl, detectors, serial_dependence
+from tests.shift_fixtures import ar1_series, residual_chart_errors
 
 # --------------------------------------------------------------------------------------------
 # Detector statistics against their definitions
@@ -171,3 +174,102 @@ def test_ewma_exact_limits_arl_markov_chain_vs_simulation():
 def test_simulation_rejects_unknown_chart():
     with pytest.raises(ValueError, match="cusum"):
         arl.simulate_run_lengths("shewhart", n_chains=2)
+
+
+# --------------------------------------------------------------------------------------------
+# Serially correlated residuals: the residual chart with limits for an estimated baseline
+
+
+def test_robust_lag_one_correlation_of_an_ar1_and_the_pairs_across_gaps():
+    # closed form: the lag-1 autocorrelation of an AR(1) is phi (Box, Jenkins & Reinsel 2008, eq. 3.2.11)
+    x = ar1_series(np.random.default_rng(4), 1, 20000, 0.7)[0]
+    rho, pairs = serial_dependence.robust_lag_one_correlation(x)
+    assert pairs == 19999 and abs(rho - 0.7) < 0.03  # sd of the MAD-based estimate ~0.008 here
+    adjacent = np.ones(19999, dtype=bool)
+    adjacent[::2] = False  # every other pair spans a gap: left out
+    assert serial_dependence.robust_lag_one_correlation(x, adjacent)[1] == 9999
+
+
+def test_prediction_errors_equal_z_without_dependence_and_statsmodels_kalman_filter_with_it():
+    rng = np.random.default_rng(5)
+    r, se = rng.normal(0, 1.2, 300), np.full(300, 0.6)
+    errors, _, _ = serial_dependence.ar1_prediction_errors(r, se, 1, 0.0, 1.0)
+    np.testing.assert_array_equal(errors, r / np.sqrt(1.0 + se * se))  # phi 0: the error-aware z
+    # AR(1) state plus measurement error: statsmodels' SARIMAX Kalman filter, stationary start
+    from statsmodels.tsa.statespace.sarimax import SARIMAX
+    phi, s2 = 0.7, 1.0
+    model = SARIMAX(r, order=(1, 0, 0), trend="n", measurement_error=True)
+    fitted = model.filter(np.array([phi, 0.36, s2 * (1 - phi * phi)]))
+    reference = fitted.filter_results.standardized_forecasts_error[0]
+    errors, _, _ = serial_dependence.ar1_prediction_errors(r, se, 1, phi, math.sqrt(s2))
+    np.testing.assert_allclose(errors, reference, rtol=1e-9, atol=1e-9)  # statsmodels: 5e-11
+    # a gap of 3 windows is 3 predictions without an update: the same as NaN observations there
+    gapped = r.copy()
+    gapped[10:12] = np.nan
+    ref_gap = model.clone(gapped).filter(np.array([phi, 0.36, s2 * (1 - phi * phi)]))
+    steps = np.ones(298, dtype=int)
+    steps[10] = 3
+    kept = np.r_[r[:10], r[12:]]
+    errors, _, _ = serial_dependence.ar1_prediction_errors(kept, 0.6, steps, phi, 1.0)
+    expected = np.r_[ref_gap.filter_results.standardized_forecasts_error[0][:10],
+                     ref_gap.filter_results.standardized_forecasts_error[0][12:]]
+    np.testing.assert_allclose(errors, expected, rtol=1e-9, atol=1e-9)
+
+
+def test_a_window_with_a_poor_estimate_cannot_alarm_on_its_own():
+    r = np.array([0.0, 0.0, 0.0, 50.0, 0.0])
+    se = np.array([0.1, 0.1, 0.1, 1000.0, 0.1])
+    errors, _, _ = serial_dependence.ar1_prediction_errors(r, se, 1, 0.8, 1.0)
+    assert abs(errors[3]) < 0.06 and abs(errors[4]) < 1e-3  # and it hardly moves the predictor
+
+
+@pytest.mark.parametrize("phi", [0.0, 0.5, 0.8])
+def test_false_alarm_rate_with_ar1_residuals_and_an_estimated_baseline_is_near_design(phi):
+    # 300 series, baseline 120 windows, 3000 monitored; CUSUM k 0.5 with h 7 widened for the
+    # baseline's error. The rate of first false alarms, alarms / windows monitored until the
+    # first one, estimates 1 / E[RL] over baselines; design 1 / ARL0(h = 7) from Page's
+    # equation (cusum_arl_integral_equation, ARL0 ~ 2.7e3 two-sided). About 250 alarms: Poisson
+    # sd ~6 %, so a factor 2 either way (the acceptance target) is a wide, safe tolerance.
+    h = arl.limit_for_estimated_parameters("cusum", 7.0, 120)
+    design = 1.0 / arl.cusum_arl_integral_equation(0.5, 7.0)
+    errors = residual_chart_errors(ar1_series(np.random.default_rng(11), 300, 3120, phi), 120)
+    upper, lower = detectors.cusum_path(errors, 0.5)
+    alarm = (upper > h) | (lower > h)
+    hit = alarm.any(axis=1)
+    exposure = np.where(hit, alarm.argmax(axis=1) + 1, alarm.shape[1]).sum()
+    assert hit.sum() > 100
+    assert 0.5 < hit.sum() / exposure / design < 2.0
+    # without the prediction errors (CUSUM on z itself) phi 0.8 is far outside
+    if phi == 0.8:
+        x = ar1_series(np.random.default_rng(11), 300, 3120, phi)
+        z = (x[:, 120:] - np.median(x[:, :120], axis=1, keepdims=True)) / np.std(x[:, :120], axis=1, keepdims=True)
+        up, lo = detectors.cusum_path(z, 0.5)
+        raw = (up > h) | (lo > h)
+        raw_exposure = np.where(raw.any(axis=1), raw.argmax(axis=1) + 1, raw.shape[1]).sum()
+        assert raw.any(axis=1).sum() / raw_exposure / design > 10.0
+
+
+def test_a_two_percent_drop_of_a_correlated_mode_frequency_is_flagged_within_a_day():
+    # a mode frequency with a residual scale of 0.5 % (4 residual scales for a 2 % drop),
+    # AR(1) phi 0.8 between 2-hourly windows, baseline 120 windows, default CUSUM k 0.5, h 10
+    # widened for the baseline (about 14.9): the first prediction error sees 4 / 0.6 = 6.7
+    # scales, each later one 4 (1 - 0.8) / 0.6 = 1.3, so about (14.9 - 6.2) / 0.83 + 1 ~ 11
+    # windows on average. Measured: median 11, 60 % within a day (12 windows), 90 % within two
+    # (a baseline that overestimates the scale is slow); required: median <= 12, 85 % within 24
+    h = arl.limit_for_estimated_parameters("cusum", 10.0, 120)
+    x = ar1_series(np.random.default_rng(12), 200, 120 + 48, 0.8)
+    x[:, 120:] -= 4.0
+    errors = residual_chart_errors(x, 120)
+    upper, lower = detectors.cusum_path(errors, 0.5)
+    alarm = (upper > h) | (lower > h)
+    delay = np.where(alarm.any(axis=1), alarm.argmax(axis=1) + 1, 999)
+    assert np.median(delay) <= 12 and np.mean(delay <= 24) >= 0.85
+
+
+def test_limits_for_an_estimated_baseline_shrink_towards_the_configured_ones_with_n():
+    # design: the known-parameter ARL0 (Page's equation); the widening falls with n and is capped
+    # at 3 h for a baseline too short to say anything (a 4-window baseline must not fail)
+    widened = [arl.limit_for_estimated_parameters("cusum", 10.0, n) for n in (4, 60, 120, 1000)]
+    assert widened[0] == 30.0 and widened[1] > widened[2] > widened[3] > 10.0
+    assert widened[3] < 11.0
+    assert arl.limit_for_estimated_parameters("ewma", 4.3, 10**6, smoothing=0.1) < 4.32

@@ -28,13 +28,14 @@ Montgomery, D. C. (2009). Introduction to Statistical Quality Control, 6th ed., 
 """
 from __future__ import annotations
 
+import functools
 from typing import Optional
 
 import numpy as np
+from scipy import optimize as _optimize
 from scipy import special as _special
 
 from corrtransforms.numerics.detectors import CHARTS, cusum_path, ewma_limits, ewma_path
-
 
 # --------------------------------------------------------------------------------------------
 # Average run length by simulation
@@ -340,3 +341,142 @@ def ewma_arl_markov_chain(smoothing: float, width: float, shift: float = 0.0, st
         probability = probability @ transition
         probability[np.abs(centre) > ewma_limits(step, smoothing, width, exact=True)] = 0.0
     return float(total + probability @ fundamental)
+
+
+# --------------------------------------------------------------------------------------------
+# Limits for a baseline of estimated parameters
+
+#: asymptotic variance of the normalised MAD over sigma^2, times n, for normal data:
+#: 1 / (4 phi(z_3/4)^2 z_3/4^2) = 1.3605 (Hampel 1974; Rousseeuw & Croux 1993, from memory)
+MAD_VARIANCE_FACTOR = 1.3605
+#: asymptotic variance of the sample median over sigma^2, times n: pi / 2
+MEDIAN_VARIANCE_FACTOR = float(np.pi / 2.0)
+
+
+def baseline_error_spread(n: int):
+    """Spread of the standing errors a baseline of ``n`` windows leaves in the prediction errors.
+
+    Parameters
+    ----------
+    n : int
+        Baseline windows.
+
+    Returns
+    -------
+    offset_sd : float
+        Standard deviation of the standing offset of the standardised prediction errors,
+        ``sqrt(pi / (2 n))``: the median of ``n`` AR(1) values has the variance
+        ``(pi / 2) (1 + phi) / ((1 - phi) n)`` and a standing offset ``d`` of the residuals is
+        ``d sqrt((1 - phi) / (1 + phi))`` in the prediction errors, so phi drops out.
+    log_scale_sd : float
+        Standard deviation of the log of the true over the estimated scale of the prediction
+        errors, ``sqrt(1.3605 / n)``: that scale is the normalised MAD of the baseline's own
+        prediction errors, independent in control (the asymptotic variance of the MAD).
+
+    Notes
+    -----
+    Large-sample approximations (from memory); their effect on the false-alarm rate is checked
+    by simulation in tests/test_detectors.py and benchmarks/calibration.py.
+    """
+    offset_sd = float(np.sqrt(MEDIAN_VARIANCE_FACTOR / n))
+    return offset_sd, float(np.sqrt(MAD_VARIANCE_FACTOR / n))
+
+
+def _baseline_error_nodes(offset_sd: float, log_scale_sd: float, nodes: int = 9):
+    """Gauss-Hermite nodes (offset, scale ratio) and weights of the baseline's errors."""
+    x, w = np.polynomial.hermite_e.hermegauss(nodes)
+    w = w / w.sum()
+    offset = np.repeat(offset_sd * x, nodes)
+    ratio = np.tile(np.exp(log_scale_sd * x), nodes)
+    return offset, ratio, np.outer(w, w).reshape(-1)
+
+
+def false_alarm_rate_estimated(chart: str, limit: float, offset_sd: float, log_scale_sd: float,
+                               k: float = 0.5, smoothing: float = 0.1) -> float:
+    """In-control false-alarm rate (1 / ARL) averaged over the baseline's estimation errors.
+
+    Parameters
+    ----------
+    chart : {"cusum", "ewma"}
+    limit : float
+        CUSUM h or EWMA L.
+    offset_sd, log_scale_sd : float
+        From :func:`baseline_error_spread`.
+    k, smoothing : float
+        CUSUM reference value, EWMA lambda.
+
+    Returns
+    -------
+    float
+        ``E[1 / ARL(limit; d, c)]`` over a standing offset ``d ~ N(0, offset_sd^2)`` and a
+        scale ratio ``log c ~ N(0, log_scale_sd^2)``: the charted values are N(d, c^2), i.e. a
+        chart with ``k / c``, ``h / c`` (``L / c``) and shift ``d / c`` on N(0, 1) values.
+
+    Notes
+    -----
+    The approach of Jones, Champ & Rigdon (2004): the run length given the baseline, averaged
+    over the baseline's sampling distribution. The *rate* is averaged rather than the ARL
+    itself because the false episodes per window of many series are the mean rate; the mean
+    ARL is dominated by the few lucky baselines with very long runs (from memory).
+    """
+    offset, ratio, weight = _baseline_error_nodes(offset_sd, log_scale_sd)
+    rates = []
+    for d, c in zip(offset, ratio):
+        try:
+            if chart == "cusum":
+                arl = cusum_arl_integral_equation(k / c, limit / c, shift=d / c, nodes=40)
+            else:
+                arl = ewma_arl_integral_equation(smoothing, limit / c, shift=d / c, nodes=64)
+        except np.linalg.LinAlgError:  # a tiny scale ratio: the run length is astronomically long
+            arl = np.inf
+        # beyond ~1e15 the linear system is ill-conditioned: such a node adds nothing to the rate
+        rates.append(1.0 / arl if np.isfinite(arl) and 0 < arl < 1e15 else 0.0)
+    return float(np.dot(weight, rates))
+
+
+def limit_for_estimated_parameters(chart: str, limit: float, n: int, k: float = 0.5,
+                                   smoothing: float = 0.1) -> float:
+    """CUSUM h or EWMA L whose rate averaged over the baseline's errors is the design rate.
+
+    Parameters
+    ----------
+    chart : {"cusum", "ewma"}
+    limit : float
+        Configured h or L: the design rate is its known-parameter ``1 / ARL0`` (zero start).
+    n : int
+        Baseline windows (:func:`baseline_error_spread`).
+    k, smoothing : float
+
+    Returns
+    -------
+    float
+        The widened limit (``>= limit``; at most ``3 limit``), to 4 decimals (cached per
+        argument set: a function of the configuration and ``n`` only).
+
+    References
+    ----------
+    Jones, L. A., Champ, C. W. & Rigdon, S. E. (2004). The run length distribution of the CUSUM
+    with estimated parameters. Journal of Quality Technology 36, 95-108.
+    """
+    return _limit_for_estimated_parameters(chart, float(limit), int(n), float(k), float(smoothing))
+
+
+@functools.lru_cache(maxsize=256)
+def _limit_for_estimated_parameters(chart, limit, n, k, smoothing) -> float:
+    if chart not in CHARTS:
+        raise ValueError(f"chart = {chart!r}: must be one of {CHARTS}")
+    if chart == "cusum":
+        design = 1.0 / cusum_arl_integral_equation(k, limit, nodes=40)
+    else:
+        design = 1.0 / ewma_arl_integral_equation(smoothing, limit, nodes=64)
+    offset_sd, log_scale_sd = baseline_error_spread(n)
+
+    def excess(candidate):
+        rate = false_alarm_rate_estimated(chart, candidate, offset_sd, log_scale_sd, k, smoothing)
+        return np.log(max(rate, 1e-300)) - np.log(design)
+
+    if excess(limit) <= 0:
+        return limit
+    if excess(3.0 * limit) > 0:
+        return 3.0 * limit
+    return round(float(_optimize.brentq(excess, limit, 3.0 * limit, xtol=1e-4)), 4)

@@ -43,14 +43,33 @@ import numpy as np
 import pyarrow as pa
 
 from corrtransforms import tables
+from corrtransforms.numerics.arl import limit_for_estimated_parameters
 from corrtransforms.numerics.covariate_model import BaselineModel, fit_baseline_model
 from corrtransforms.numerics.detectors import cusum_path, cusum_run_lengths, cusum_run_sums, ewma_limits, ewma_path
+from corrtransforms.numerics.robust import robust_location_scale
+from corrtransforms.numerics.serial_dependence import (
+    MIN_PAIRS,
+    ar1_prediction_errors,
+    innovation_scale,
+    latent_ar1_coefficient,
+    robust_lag_one_correlation,
+)
 from corrtransforms.records import IndicatorRow, holds_window, quality_codes, quality_text
 from corrtransforms.rejects import Reject, iso_utc
+from corrtransforms.stages.state import (
+    ACCUMULATING,
+    BASELINE,
+    FITTED,
+    NORMAL,
+    SHIFTED,
+    ShiftState,
+    StateMismatchError,
+    resume_or_start,
+    select_resume_state,
+    settings_digest,
+    states_table,
+)
 from corrtransforms.timeutil import day_date, day_number, local_days
-from corrtransforms.stages.state import (ACCUMULATING, BASELINE, FITTED, NORMAL, SHIFTED, ShiftState,
-                                         StateMismatchError, resume_or_start, select_resume_state,
-                                         settings_digest, states_table)
 
 COVARIATE_INDICATOR = "covariate_mean"
 STAGE = "shifts"
@@ -66,6 +85,8 @@ QUALITY_CODES = {
     "baseline_too_short": "fewer baseline windows than [baseline] min_windows; no alarms",
     "covariate_constant": "a covariate did not vary over the baseline; it was left out of the model",
     "covariate_model_unfitted": "too few baseline windows with all covariates; the median model was used",
+    "dependence_not_estimated": (f"fewer than {MIN_PAIRS} adjacent baseline windows (or a state from before "
+                                 "the dependence was fitted): the residuals are taken as independent (phi 0)"),
 }
 
 
@@ -182,10 +203,19 @@ def _standardised_residuals(model: BaselineModel, v, se, x):
     return expected, covariate_missing, resid, z
 
 
-def _fitted_quality(model: BaselineModel, v, se, codes, covariate_missing, usable) -> List[str]:
+def window_steps(times_us, hop_us: float, previous_us: Optional[int] = None) -> np.ndarray:
+    """Windows between consecutive used windows, ``max(1, round(dt / hop))``; the first counts
+    from ``previous_us`` (1 when None). A gap or a held window makes a step larger than 1."""
+    t = np.asarray(times_us, dtype=np.int64)
+    before = np.concatenate(([t[0] - hop_us if previous_us is None else previous_us], t[:-1])) if t.size else t
+    return np.maximum(1, np.rint((t - before) / hop_us)).astype(np.int64)
+
+
+def _fitted_quality(model: BaselineModel, v, se, codes, covariate_missing, usable,
+                    stage_codes: Tuple[str, ...] = ()) -> List[str]:
     """Quality text of each window after the baseline: its own codes, the model's, and this
     stage's (``value_missing``, ``stderr_missing``, ``covariate_missing``, ``detector_held``)."""
-    model_codes = tuple(model.quality)
+    model_codes = tuple(model.quality) + (() if model.too_short else tuple(stage_codes))
     quality = []
     for j in range(len(v)):
         extra = list(model_codes)
@@ -269,6 +299,7 @@ class _SeriesRun:
         self.use_cusum = s.detector in ("cusum", "both")
         self.use_ewma = s.detector in ("ewma", "both")
         self.p = len(state.covariates)
+        self._limits_from_state()
         self.columns = _Columns()
         self.day_states: List[ShiftState] = []
         # provisional model of the baseline phase: (sample size at its fit, model); refitted
@@ -287,12 +318,68 @@ class _SeriesRun:
         return fit_baseline_model(values, stderr, x, self.state.covariates,
                                   self.config.baseline.min_windows, self.state.order)
 
+    def _limits_from_state(self):
+        """CUSUM h and EWMA L in use: widened for the baseline's error once fitted (the
+        configured ones for a state written before that)."""
+        s, st = self.config.shifts, self.state
+        self.hop_us = 1e6 * (self.config.windows.hop_s if st.window_spacing_s is None else st.window_spacing_s)
+        self.h = s.cusum_h if st.cusum_h_used is None else float(st.cusum_h_used)
+        self.width = s.ewma_L if st.ewma_L_used is None else float(st.ewma_L_used)
+
     def _finalize(self):
         st = self.state
         st.model = self._fit()
         st.phase = FITTED
-        st.sample_value, st.sample_stderr, st.sample_covariates = [], [], []
+        self._fit_dependence()
+        st.sample_value, st.sample_stderr, st.sample_covariates, st.sample_window_start = [], [], [], []
         st.state = NORMAL
+
+    def _fit_dependence(self):
+        """AR(1) of the baseline residuals, the scale of their prediction errors, the predictor
+        after the last baseline window and the limits widened for the baseline's error
+        (:mod:`corrtransforms.numerics.serial_dependence`, :func:`limit_for_estimated_parameters`)."""
+        st, model, s = self.state, self.state.model, self.config.shifts
+        values, stderr, x = self._sample_arrays()
+        if model.too_short or values.size < 2:
+            return
+        times = np.asarray(st.sample_window_start, dtype=np.int64)
+        if times.size == values.size:  # one prediction step: the series' own window spacing
+            st.window_spacing_s = float(np.median(np.diff(times))) / 1e6
+            self.hop_us = st.window_spacing_s * 1e6
+        # a sample carried by a state from before the window starts were kept: taken as adjacent
+        steps = (window_steps(times, self.hop_us) if times.size == values.size
+                 else np.ones(values.size, dtype=np.int64))
+        expected, _ = model.predict(x, n=values.size)
+        resid = values - expected
+        with np.errstate(invalid="ignore", divide="ignore"):
+            z = resid / np.sqrt(model.resid_scale ** 2 + stderr * stderr)
+        rho, pairs = robust_lag_one_correlation(z, steps[1:] == 1)
+        phi = float(latent_ar1_coefficient(rho, model.resid_scale, model.scale)) if pairs >= MIN_PAIRS else 0.0
+        errors, mean, var = ar1_prediction_errors(resid, stderr, steps, phi, model.resid_scale)
+        _, ratio, _ = robust_location_scale(errors)
+        ratio = ratio if np.isfinite(ratio) and ratio > 0 else 1.0
+        st.dependence_phi, st.dependence_pairs, st.innovation_ratio = phi, int(pairs), float(ratio)
+        st.innovation_scale = float(innovation_scale(model.resid_scale, phi)) * float(ratio)
+        st.predictor_mean, st.predictor_var = float(mean), float(var)
+        st.predictor_window_start = int(times[-1]) if times.size == values.size else None
+        if s.detector in ("cusum", "both"):
+            st.cusum_h_used = limit_for_estimated_parameters("cusum", s.cusum_h, model.n, k=s.cusum_k)
+        if s.detector in ("ewma", "both"):
+            st.ewma_L_used = limit_for_estimated_parameters("ewma", s.ewma_L, model.n, smoothing=s.ewma_lambda)
+        self._limits_from_state()
+
+    def _prediction_errors(self, resid, stderr, times):
+        """Standardised one-step prediction errors of the used windows, continuing the carried
+        predictor across held windows and gaps, divided by the baseline's innovation ratio."""
+        st = self.state
+        if not len(times):
+            return np.zeros(0)
+        steps = window_steps(times, self.hop_us, st.predictor_window_start)
+        errors, mean, var = ar1_prediction_errors(resid, stderr, steps, st.dependence_phi,
+                                                  st.model.resid_scale, st.predictor_mean, st.predictor_var)
+        st.predictor_mean, st.predictor_var = float(mean), float(var)
+        st.predictor_window_start = int(times[-1])
+        return errors / st.innovation_ratio
 
     def _baseline_window(self, t, v, se, codes, x, day):
         """One window while the baseline accumulates; returns its row values."""
@@ -330,6 +417,7 @@ class _SeriesRun:
             if usable:
                 st.sample_value.append(float(v))
                 st.sample_stderr.append(float(se))
+                st.sample_window_start.append(int(t))
                 if self.p:
                     st.sample_covariates.extend(float(c) for c in x)
             else:
@@ -385,7 +473,8 @@ class _SeriesRun:
         expected, covariate_missing, resid, z = _standardised_residuals(model, v, se, x)
         nonstationary = np.array([_is_nonstationary(c) for c in codes], dtype=bool)
         usable = np.isfinite(z) & ~nonstationary
-        quality = _fitted_quality(model, v, se, codes, covariate_missing, usable)
+        stage_codes = ("dependence_not_estimated",) if st.dependence_pairs < MIN_PAIRS else ()
+        quality = _fitted_quality(model, v, se, codes, covariate_missing, usable, stage_codes)
         resid_scale = np.full(n, model.resid_scale)
         if model.too_short:
             nan = np.full(n, np.nan)
@@ -395,7 +484,8 @@ class _SeriesRun:
                              state=[NORMAL] * n, onset=[None] * n, direction=np.zeros(n, np.int8),
                              shift_size=nan, detector=[None] * n, first_alarm=[None] * n, quality=quality)
             return
-        paths = self._detector_paths(z[usable], resid[usable])
+        errors = self._prediction_errors(resid[usable], se[usable], t[usable])
+        paths = self._detector_paths(errors, resid[usable])
         decisions = self._decide_windows(paths, resid[usable], t[usable])
         # rows: used windows take their values, held windows carry the previous ones
         carry = np.concatenate(([0], np.cumsum(usable)))[1:]  # 0 = from the incoming state
@@ -412,7 +502,8 @@ class _SeriesRun:
             self._keep_last(paths, decisions)
 
     def _detector_paths(self, z, resid) -> "_DetectorPaths":
-        """CUSUM and EWMA statistics over the used windows, continued from the carried state."""
+        """CUSUM and EWMA statistics of the standardised prediction errors ``z`` of the used
+        windows, continued from the carried state."""
         st = self.state
         upper, lower = cusum_path(z, self.k, st.cusum_pos, st.cusum_neg)
         n_upper = cusum_run_lengths(upper, st.run_count_pos)

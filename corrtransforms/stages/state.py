@@ -99,7 +99,21 @@ class ShiftState:
     sample_value: List[float] = dataclasses.field(default_factory=list)
     sample_stderr: List[float] = dataclasses.field(default_factory=list)
     sample_covariates: List[float] = dataclasses.field(default_factory=list)
+    sample_window_start: List[int] = dataclasses.field(default_factory=list)
     model: Optional[BaselineModel] = None
+    # serial dependence fitted on the baseline (numerics.serial_dependence); the defaults are
+    # what a state written before it was added resumes with: phi 0, no scale correction, the
+    # configured limits (the old detector) and the quality code dependence_not_estimated
+    dependence_phi: float = 0.0
+    dependence_pairs: int = 0
+    innovation_scale: float = float("nan")
+    innovation_ratio: float = 1.0
+    cusum_h_used: Optional[float] = None
+    ewma_L_used: Optional[float] = None
+    predictor_mean: float = 0.0
+    predictor_var: Optional[float] = None
+    predictor_window_start: Optional[int] = None
+    window_spacing_s: Optional[float] = None
     cusum_pos: float = 0.0
     cusum_neg: float = 0.0
     run_start_pos: Optional[int] = None
@@ -161,6 +175,17 @@ class ShiftState:
             "detector": self.detector,
             "first_alarm": us_to_datetime(self.first_alarm),
             "ewma_limit": self.ewma_limit,
+            "sample_window_start": [us_to_datetime(int(v)) for v in self.sample_window_start],
+            "dependence_phi": self.dependence_phi,
+            "dependence_pairs": int(self.dependence_pairs),
+            "innovation_scale": self.innovation_scale,
+            "innovation_ratio": self.innovation_ratio,
+            "cusum_h_used": self.cusum_h_used,
+            "ewma_L_used": self.ewma_L_used,
+            "predictor_mean": self.predictor_mean,
+            "predictor_var": self.predictor_var,
+            "predictor_window_start": us_to_datetime(self.predictor_window_start),
+            "window_spacing_s": self.window_spacing_s,
         }
 
     @classmethod
@@ -203,6 +228,13 @@ class ShiftState:
             ewma_limit=num("ewma_limit"), state=row["state"], onset=datetime_to_us(row.get("onset")),
             direction=int(row.get("direction") or 0), shift_size=num("shift_size"),
             detector=row.get("detector"), first_alarm=datetime_to_us(row.get("first_alarm")),
+            sample_window_start=[datetime_to_us(v) for v in row.get("sample_window_start") or ()],
+            dependence_phi=num("dependence_phi", 0.0), dependence_pairs=int(row.get("dependence_pairs") or 0),
+            innovation_scale=num("innovation_scale"), innovation_ratio=num("innovation_ratio", 1.0),
+            cusum_h_used=row.get("cusum_h_used"), ewma_L_used=row.get("ewma_L_used"),
+            predictor_mean=num("predictor_mean", 0.0), predictor_var=row.get("predictor_var"),
+            predictor_window_start=datetime_to_us(row.get("predictor_window_start")),
+            window_spacing_s=row.get("window_spacing_s"),
         )
 
 
