@@ -115,8 +115,7 @@ def test_yesterday_is_taken_in_the_assets_time_zone(site):
     asset = load_config(config)
     late_evening_utc = dt.datetime(2026, 3, 1, 23, 30, tzinfo=dt.timezone.utc)
     assert nightly.yesterday(asset, late_evening_utc) == dt.date(2026, 2, 28)
-    tokyo = asset.__class__(**{**asset.__dict__, "archive": asset.archive.__class__(
-        **{**asset.archive.__dict__, "timezone": "Asia/Tokyo"})})
+    tokyo = asset.__class__(**{**asset.__dict__, "timezone": "Asia/Tokyo"})  # [asset] timezone: the calendar day
     assert nightly.yesterday(tokyo, late_evening_utc) == dt.date(2026, 3, 1)  # already 2 March in Tokyo
 
 

@@ -79,7 +79,7 @@ def reject_examples(output: str, config: AssetConfig, start: Optional[_dt.date],
     for row in rejects.to_pylist():
         if row["subject"] != "*" or row["action"] != "rejected" or row["window_start"] is None:
             continue
-        day = local_date(int(row["window_start"].timestamp() * 1e6), config.archive.timezone)
+        day = local_date(int(row["window_start"].timestamp() * 1e6), config.timezone)
         if (start and _dt.date.fromisoformat(day) < start) or (end and _dt.date.fromisoformat(day) > end):
             continue
         days.add(day)

@@ -30,7 +30,7 @@ MISSING_STATE = common.MISSING_STATE
 def yesterday(config: AssetConfig, now: Optional[_dt.datetime] = None) -> _dt.date:
     """The calendar day before today in the asset's time zone."""
     now = now or _dt.datetime.now(_dt.timezone.utc)
-    return (now.astimezone(zoneinfo.ZoneInfo(config.archive.timezone)) - _dt.timedelta(days=1)).date()
+    return (now.astimezone(zoneinfo.ZoneInfo(config.timezone)) - _dt.timedelta(days=1)).date()
 
 
 def report_gap(config: AssetConfig, day: _dt.date, states) -> int:

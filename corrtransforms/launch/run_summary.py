@@ -77,7 +77,7 @@ def _episode_entry(e: Dict[str, Any], levels: Dict[tuple, float]) -> Dict[str, A
 def _in_days(moment, config: AssetConfig, start, end) -> bool:
     import zoneinfo
 
-    day = moment.astimezone(zoneinfo.ZoneInfo(config.archive.timezone)).date()
+    day = moment.astimezone(zoneinfo.ZoneInfo(config.timezone)).date()
     return (start is None or day >= start) and (end is None or day <= end)
 
 

@@ -693,7 +693,7 @@ def detect_shifts(times_us, values, stderr, quality, covariates, config, state: 
     x = _covariate_matrix(covariates, names, n)
     run = _SeriesRun(config, state)
     if n:
-        days = local_days(t, config.archive.timezone)
+        days = local_days(t, config.timezone)
         edges = np.concatenate(([0], np.flatnonzero(np.diff(days)) + 1, [n]))
         for a, b in zip(edges[:-1], edges[1:]):
             run.process_day(t[a:b], v[a:b], se[a:b], codes[a:b], None if x is None else x[a:b], int(days[a]))
@@ -823,7 +823,7 @@ def detect_shifts_for_rows(rows: Iterable[IndicatorRow], covariates_by_window: M
             subject=subject, indicator=indicator, unit=unique[0].unit, order=order)
     except StateMismatchError as err:
         rejects.append(Reject(STAGE, "state", subject, "state_mismatch", f"{indicator}: {err}", asset=asset,
-                              date=day_date(int(local_days(times[:1], config.archive.timezone)[0])).isoformat()))
+                              date=day_date(int(local_days(times[:1], config.timezone)[0])).isoformat()))
         return _empty_outcome(rejects)
     except Exception as err:  # noqa: BLE001 - routed to the rejects table with its text
         rejects.append(Reject(STAGE, iso_utc(int(times[0])), subject, "shift_detection_failed",

@@ -65,7 +65,7 @@ def settings_digest(config, order: int = 1) -> str:
                      b.windows, b.min_windows],
         "shifts": [s.detector, s.cusum_k, s.cusum_h, s.ewma_lambda, s.ewma_L],
         "covariates": list(config.compensated_covariates()),
-        "timezone": config.archive.timezone,
+        "timezone": config.timezone,
         "order": order,
         "format": 1,
     }

@@ -171,7 +171,7 @@ def to_partitions(table_name: str, element: Any, config: AssetConfig) -> List[Tu
     :class:`~corrtransforms.records.WindowCorrelation` (converted with
     :func:`corrtransforms.stages.correlate.correlation_table`).
     """
-    tz = config.archive.timezone
+    tz = config.timezone
     if isinstance(element, Reject):
         element = [element]
     if isinstance(element, list) and element and all(isinstance(e, Reject) for e in element):
