@@ -3,6 +3,7 @@
 It lets Beam's ``--setup_file ./setup.py`` build the package for remote workers when the
 ``build`` frontend is not installed (Beam then falls back to ``python setup.py sdist``).
 """
+
 from setuptools import setup
 
 setup()

@@ -8,6 +8,7 @@ each under ``/usr/bin/time -v`` and prints peak resident memory, wall time, samp
 the ratio of peak memory between the longest and the shortest archive (memory must not grow with
 archive length: the target is a ratio within 1.2).
 """
+
 from __future__ import annotations
 
 import argparse
@@ -41,12 +42,20 @@ def write_archive(folder: str, days: int, rate: float, channels: int, seed: int 
         os.makedirs(sub, exist_ok=True)
         t0 = int(start.timestamp() * 1_000_000)
         time = pa.array(t0 + np.round(np.arange(per_hour) * 1e6 / rate).astype(np.int64)).cast(
-            pa.timestamp("us", "UTC"))
+            pa.timestamp("us", "UTC")
+        )
         data = rng.standard_normal((per_hour, channels), dtype=np.float32)
-        columns = {"time": time, **{n: data[:, i] for i, n in enumerate(names)},
-                   "temperature": np.full(per_hour, 15.0 + hour / 24, np.float32)}
-        pq.write_table(pa.table(columns), os.path.join(sub, f"{start.strftime('%H')}.parquet"),
-                       row_group_size=per_hour // 4, compression="zstd")
+        columns = {
+            "time": time,
+            **{n: data[:, i] for i, n in enumerate(names)},
+            "temperature": np.full(per_hour, 15.0 + hour / 24, np.float32),
+        }
+        pq.write_table(
+            pa.table(columns),
+            os.path.join(sub, f"{start.strftime('%H')}.parquet"),
+            row_group_size=per_hour // 4,
+            compression="zstd",
+        )
     open(marker, "w").close()
     return total
 
@@ -57,7 +66,8 @@ def run(days: int, args) -> dict:
     samples = write_archive(archive, days, args.rate, args.channels)
     config = os.path.join(work, "asset.toml")
     with open(config, "w") as handle:
-        handle.write(textwrap.dedent(f"""
+        handle.write(
+            textwrap.dedent(f"""
             [asset]
             name = "bench"
             [archive]
@@ -69,19 +79,35 @@ def run(days: int, args) -> dict:
             length_s = 600.0
             [correlation]
             max_lag_s = {args.max_lag_s}
-            """))
+            """)
+        )
     output = os.path.join(work, "out")
-    command = ["/usr/bin/time", "-v", sys.executable, "-m", "pipelines.backfill", "--config", config,
-               "--output", output]
+    command = [
+        "/usr/bin/time",
+        "-v",
+        sys.executable,
+        "-m",
+        "pipelines.backfill",
+        "--config",
+        config,
+        "--output",
+        output,
+    ]
     done = subprocess.run(command, capture_output=True, text=True, cwd=os.path.dirname(HERE))
     if done.returncode != 0:
         raise RuntimeError(done.stderr[-3000:])
     rss_kb = int(re.search(r"Maximum resident set size \(kbytes\): (\d+)", done.stderr).group(1))
     wall = re.search(r"Elapsed \(wall clock\) time \(h:mm:ss or m:ss\): ([\d:.]+)", done.stderr).group(1)
-    seconds = sum(float(x) * 60 ** i for i, x in enumerate(reversed(wall.split(":"))))
+    seconds = sum(float(x) * 60**i for i, x in enumerate(reversed(wall.split(":"))))
     summary = done.stdout.strip().splitlines()[0] if done.stdout.strip() else ""
-    return {"days": days, "samples": samples, "rss_mb": rss_kb / 1024, "seconds": seconds,
-            "samples_per_s": samples / seconds, "summary": summary}
+    return {
+        "days": days,
+        "samples": samples,
+        "rss_mb": rss_kb / 1024,
+        "seconds": seconds,
+        "samples_per_s": samples / seconds,
+        "summary": summary,
+    }
 
 
 def main(argv=None):
@@ -93,8 +119,10 @@ def main(argv=None):
     args = parser.parse_args(argv)
     results = [run(d, args) for d in args.days]
     for r in results:
-        print(f"{r['days']} day(s): {r['samples']:,} samples, peak RSS {r['rss_mb']:.0f} MB, "
-              f"{r['seconds']:.0f} s, {r['samples_per_s']:,.0f} samples/s  [{r['summary']}]")
+        print(
+            f"{r['days']} day(s): {r['samples']:,} samples, peak RSS {r['rss_mb']:.0f} MB, "
+            f"{r['seconds']:.0f} s, {r['samples_per_s']:,.0f} samples/s  [{r['summary']}]"
+        )
     if len(results) > 1:
         ratio = results[-1]["rss_mb"] / results[0]["rss_mb"]
         print(f"peak RSS ratio {results[-1]['days']} d / {results[0]['days']} d = {ratio:.2f} (target <= 1.20)")

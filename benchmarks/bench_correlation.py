@@ -12,6 +12,7 @@ Case: 8 channels, a 10-minute window at 100 Hz (60 000 samples), max lag 10 s, a
 Run: ``python -m benchmarks.bench_correlation [--repeats N] [--gaps]``. Prints a table and the
 ratios; never asserts a time.
 """
+
 from __future__ import annotations
 
 import argparse
@@ -68,16 +69,31 @@ def main(argv=None):
     if args.gaps:
         valid &= rng.random(x.shape) > 0.02
     names = tuple(f"ch{i}" for i in range(CHANNELS))
-    block = WindowBlock(asset="bench", window_start_us=0, window_length_s=MINUTES * 60.0, sample_rate_hz=FS,
-                        channels=names, values=np.where(valid, x, 0.0), valid=valid)
-    config = parse_config({"asset": {"name": "bench"}, "archive": {"path": "unused", "sample_rate_hz": FS},
-                           "correlation": {"max_lag_s": MAX_LAG_S}})
+    block = WindowBlock(
+        asset="bench",
+        window_start_us=0,
+        window_length_s=MINUTES * 60.0,
+        sample_rate_hz=FS,
+        channels=names,
+        values=np.where(valid, x, 0.0),
+        valid=valid,
+    )
+    config = parse_config(
+        {
+            "asset": {"name": "bench"},
+            "archive": {"path": "unused", "sample_rate_hz": FS},
+            "correlation": {"max_lag_s": MAX_LAG_S},
+        }
+    )
 
-    ours_full, ours_core, theirs = _interleaved_best([
-        lambda: correlate_window(block, config),
-        lambda: correlate_block(x, FS, MAX_LAG_S, pairs="all", valid=valid),
-        lambda: _scipy_per_pair(x, L),
-    ], args.repeats)
+    ours_full, ours_core, theirs = _interleaved_best(
+        [
+            lambda: correlate_window(block, config),
+            lambda: correlate_block(x, FS, MAX_LAG_S, pairs="all", valid=valid),
+            lambda: _scipy_per_pair(x, L),
+        ],
+        args.repeats,
+    )
 
     # same numbers (complete record only: scipy has no masked estimator)
     if not args.gaps:
@@ -89,8 +105,10 @@ def main(argv=None):
         agreement = "masked estimator (2 % gaps): no scipy equivalent, timing only"
 
     pairs = CHANNELS * (CHANNELS + 1) // 2
-    print(f"{CHANNELS} channels, {n} samples ({MINUTES} min at {FS:g} Hz), max lag {MAX_LAG_S:g} s, "
-          f"{pairs} pairs, best of {args.repeats}")
+    print(
+        f"{CHANNELS} channels, {n} samples ({MINUTES} min at {FS:g} Hz), max lag {MAX_LAG_S:g} s, "
+        f"{pairs} pairs, best of {args.repeats}"
+    )
     print(f"{'what':58s} {'time [ms]':>10s}")
     print(f"{'correlate_window (incl. stderr, bandwidth, checks, records)':58s} {1e3 * ours_full:10.1f}")
     print(f"{'correlate_block (estimator only)':58s} {1e3 * ours_core:10.1f}")

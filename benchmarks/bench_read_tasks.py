@@ -18,6 +18,7 @@ the Reshuffle. This script
    layout for each budget, as seconds per archive hour and the ratio to the default budget: the
    per-task overhead of small tasks on one machine.
 """
+
 from __future__ import annotations
 
 import argparse
@@ -34,10 +35,9 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from corrtransforms.stages import plan as archive_plan
-
-from corrtransforms.stages import read as window_read
 from corrtransforms.config import ReadingConfig, parse_config
+from corrtransforms.stages import plan as archive_plan
+from corrtransforms.stages import read as window_read
 
 MIB = 2**20
 DEFAULT_BUDGET = ReadingConfig().task_bytes
@@ -46,14 +46,16 @@ US = 1_000_000
 
 
 def bench_config(archive: str, budget: int, rate: float = 100.0):
-    return parse_config({
-        "asset": {"name": "bench"},
-        "archive": {"path": archive, "sample_rate_hz": rate},
-        "channels": {"covariates": ["temperature"]},
-        "windows": {"length_s": 600.0},
-        "correlation": {"max_lag_s": 10.0},
-        "reading": {"task_bytes": budget},
-    })
+    return parse_config(
+        {
+            "asset": {"name": "bench"},
+            "archive": {"path": archive, "sample_rate_hz": rate},
+            "channels": {"covariates": ["temperature"]},
+            "windows": {"length_s": 600.0},
+            "correlation": {"max_lag_s": 10.0},
+            "reading": {"task_bytes": budget},
+        }
+    )
 
 
 def write_bench_hour(path: str, start: dt.datetime, rate: float = 100.0, channels: int = 8, seed: int = 0) -> None:
@@ -62,17 +64,23 @@ def write_bench_hour(path: str, start: dt.datetime, rate: float = 100.0, channel
     rng = np.random.default_rng(seed)
     t0 = int(start.timestamp() * US)
     time_column = pa.array(t0 + np.round(np.arange(per_hour) * 1e6 / rate).astype(np.int64)).cast(
-        pa.timestamp("us", "UTC"))
+        pa.timestamp("us", "UTC")
+    )
     data = rng.standard_normal((per_hour, channels), dtype=np.float32)
-    columns = {"time": time_column, **{f"ch{i}": data[:, i] for i in range(channels)},
-               "temperature": np.full(per_hour, 15.0, np.float32)}
+    columns = {
+        "time": time_column,
+        **{f"ch{i}": data[:, i] for i in range(channels)},
+        "temperature": np.full(per_hour, 15.0, np.float32),
+    }
     os.makedirs(os.path.dirname(path), exist_ok=True)
     pq.write_table(pa.table(columns), path, row_group_size=per_hour // 4, compression="zstd")
 
 
 def shifted(footer: archive_plan.FileFooter, path: str, shift_us: int) -> archive_plan.FileFooter:
-    spans = tuple(dataclasses.replace(rg, start_us=rg.start_us + shift_us, end_us=rg.end_us + shift_us)
-                  for rg in footer.row_groups)
+    spans = tuple(
+        dataclasses.replace(rg, start_us=rg.start_us + shift_us, end_us=rg.end_us + shift_us)
+        for rg in footer.row_groups
+    )
     return dataclasses.replace(footer, path=path, row_groups=spans)
 
 
@@ -81,9 +89,14 @@ def plan_summary(footers, config) -> Dict[str, float]:
     archive_bytes = sum(rg.decoded_bytes for f in footers for rg in f.row_groups)
     sizes = [t.decoded_bytes for t in plan.tasks]
     windows = [len(t.window_starts_us) for t in plan.tasks]
-    return {"tasks": len(plan.tasks), "windows": sum(windows), "windows_per_task": statistics.mean(windows),
-            "mean_task_mib": statistics.mean(sizes) / MIB, "max_task_mib": max(sizes) / MIB,
-            "decode_factor": sum(sizes) / archive_bytes}
+    return {
+        "tasks": len(plan.tasks),
+        "windows": sum(windows),
+        "windows_per_task": statistics.mean(windows),
+        "mean_task_mib": statistics.mean(sizes) / MIB,
+        "max_task_mib": max(sizes) / MIB,
+        "decode_factor": sum(sizes) / archive_bytes,
+    }
 
 
 def bench_footers(folder: str, hours: int) -> List[archive_plan.FileFooter]:
@@ -101,14 +114,16 @@ def demo_footers(folder: str) -> List[archive_plan.FileFooter]:
     os.makedirs(folder, exist_ok=True)
     path = os.path.join(folder, "record.parquet")
     table = generate.record_table(starts[0])
-    pq.write_table(table, path, compression="zstd", row_group_size=len(table) // 2, use_dictionary=False,
-                   write_statistics=True)
+    pq.write_table(
+        table, path, compression="zstd", row_group_size=len(table) // 2, use_dictionary=False, write_statistics=True
+    )
     config = demo_config(folder, DEFAULT_BUDGET)
     footer, findings = archive_plan.read_footer(path, config)
     assert footer is not None and not findings, findings
     first = int(starts[0].timestamp() * US)
-    return [shifted(footer, f"{folder}/r{i:04d}.parquet", int(s.timestamp() * US) - first)
-            for i, s in enumerate(starts)]
+    return [
+        shifted(footer, f"{folder}/r{i:04d}.parquet", int(s.timestamp() * US) - first) for i, s in enumerate(starts)
+    ]
 
 
 def demo_config(folder: str, budget: int):
@@ -146,25 +161,30 @@ def main(argv: Sequence[str] = None) -> int:
     work = tempfile.mkdtemp(prefix="bench-read-tasks-")
     try:
         print("Read tasks planned (real planner, real footers repeated over the archive)")
-        print(f"{'archive':<36}{'budget MiB':>11}{'tasks':>8}{'windows':>9}{'win/task':>10}"
-              f"{'mean MiB':>10}{'max MiB':>9}{'decode x':>10}")
+        print(
+            f"{'archive':<36}{'budget MiB':>11}{'tasks':>8}{'windows':>9}{'win/task':>10}"
+            f"{'mean MiB':>10}{'max MiB':>9}{'decode x':>10}"
+        )
         day = bench_footers(os.path.join(work, "bench"), 24)
         month = bench_footers(os.path.join(work, "bench"), 24 * 30)
         demo = demo_footers(os.path.join(work, "demo"))
-        for name, footers, make in (("benchmark 8 ch 100 Hz, 1 day", day, bench_config),
-                                    ("benchmark 8 ch 100 Hz, 30 days", month, bench_config),
-                                    ("demo, 35 days (420 records)", demo, demo_config)):
+        for name, footers, make in (
+            ("benchmark 8 ch 100 Hz, 1 day", day, bench_config),
+            ("benchmark 8 ch 100 Hz, 30 days", month, bench_config),
+            ("demo, 35 days (420 records)", demo, demo_config),
+        ):
             for budget in budgets:
                 s = plan_summary(footers, make(os.path.join(work, "x"), budget))
                 mark = " (default)" if budget == DEFAULT_BUDGET else ""
-                print(f"{name:<36}{budget / MIB:>11g}{s['tasks']:>8}{s['windows']:>9}{s['windows_per_task']:>10.1f}"
-                      f"{s['mean_task_mib']:>10.1f}{s['max_task_mib']:>9.1f}{s['decode_factor']:>10.2f}{mark}")
+                print(
+                    f"{name:<36}{budget / MIB:>11g}{s['tasks']:>8}{s['windows']:>9}{s['windows_per_task']:>10.1f}"
+                    f"{s['mean_task_mib']:>10.1f}{s['max_task_mib']:>9.1f}{s['decode_factor']:>10.2f}{mark}"
+                )
 
         folder = os.path.join(work, "timed")
         for h in range(args.hours):
             write_bench_hour(os.path.join(folder, f"{h:02d}.parquet"), START + dt.timedelta(hours=h), seed=h)
-        print(f"\nRead stage in-process on {args.hours} real hours of the benchmark layout "
-              f"(best of {args.repeats})")
+        print(f"\nRead stage in-process on {args.hours} real hours of the benchmark layout (best of {args.repeats})")
         print(f"{'budget MiB':>11}{'tasks':>8}{'windows':>9}{'s / hour':>10}{'ratio to default':>18}")
         results = {}
         for budget in budgets:
@@ -172,8 +192,10 @@ def main(argv: Sequence[str] = None) -> int:
             results[budget] = min(runs, key=lambda r: r["seconds"])
         reference = results.get(DEFAULT_BUDGET, next(iter(results.values())))["seconds"]
         for budget, r in results.items():
-            print(f"{budget / MIB:>11g}{r['tasks']:>8}{r['windows']:>9}{r['seconds'] / args.hours:>10.3f}"
-                  f"{r['seconds'] / reference:>18.2f}")
+            print(
+                f"{budget / MIB:>11g}{r['tasks']:>8}{r['windows']:>9}{r['seconds'] / args.hours:>10.3f}"
+                f"{r['seconds'] / reference:>18.2f}"
+            )
     finally:
         shutil.rmtree(work, ignore_errors=True)
     return 0

@@ -30,6 +30,7 @@ so a run that needed the network would fail; ``--trace-network`` runs the pipeli
 shortest archive under ``strace -f -e trace=connect`` and lists every non-loopback connect.
 Work files go to benchmarks/_work/ (git-ignored); the archives are kept between runs.
 """
+
 from __future__ import annotations
 
 import argparse
@@ -49,9 +50,13 @@ HERE = os.path.dirname(os.path.abspath(__file__))
 ROOT = os.path.dirname(HERE)
 WORK = os.path.join(HERE, "_work")
 VARIANTS = ("pipeline", "workers2", "script", "floor", "lean")
-LABELS = {"pipeline": "1 pipeline, in-process runner", "workers2": "2 pipeline, 2 worker processes",
-          "script": "3 plain script (scipy per pair)", "floor": "4 floor (decode + FFTs)",
-          "lean": "5 pipeline, lean job, in-process"}
+LABELS = {
+    "pipeline": "1 pipeline, in-process runner",
+    "workers2": "2 pipeline, 2 worker processes",
+    "script": "3 plain script (scipy per pair)",
+    "floor": "4 floor (decode + FFTs)",
+    "lean": "5 pipeline, lean job, in-process",
+}
 
 
 def _children(pid: int) -> List[int]:
@@ -110,8 +115,12 @@ def measure(command: List[str], log_path: str, env: Optional[dict] = None) -> di
         with open(log_path) as handle:
             tail = handle.read()[-3000:]
         raise RuntimeError(f"{' '.join(command)} failed ({child.returncode}):\n{tail}")
-    return {"seconds": seconds, "tree_rss_mb": peak[0] / 2**20, "maxrss_mb": usage.ru_maxrss / 1024,
-            "cpu_s": usage.ru_utime + usage.ru_stime}
+    return {
+        "seconds": seconds,
+        "tree_rss_mb": peak[0] / 2**20,
+        "maxrss_mb": usage.ru_maxrss / 1024,
+        "cpu_s": usage.ru_utime + usage.ru_stime,
+    }
 
 
 def _offline(command: List[str]) -> List[str]:
@@ -162,16 +171,22 @@ def trace_network(days: int, archive: str, config: str, folder: str) -> None:
         return
     for variant in ("pipeline", "workers2"):
         trace = os.path.join(folder, f"{variant}.strace")
-        command = ["strace", "-f", "-qq", "-e", "trace=connect", "-o", trace] + command_for(variant, archive, config,
-                                                                                          folder)
+        command = ["strace", "-f", "-qq", "-e", "trace=connect", "-o", trace] + command_for(
+            variant, archive, config, folder
+        )
         measure(command, os.path.join(folder, f"{variant}.strace.log"))
         with open(trace) as handle:
             calls = [line for line in handle if "connect(" in line]
-        outside = [c.strip() for c in calls
-                   if ("AF_INET" in c and "127.0.0.1" not in c and "::1" not in c and "0.0.0.0" not in c)]
+        outside = [
+            c.strip()
+            for c in calls
+            if ("AF_INET" in c and "127.0.0.1" not in c and "::1" not in c and "0.0.0.0" not in c)
+        ]
         families = sorted({m.group(1) for m in (re.search(r"sa_family=(AF_\w+)", c) for c in calls) if m})
-        print(f"network trace, {variant}: {len(calls)} connect() calls ({', '.join(families) or 'none'}); "
-              f"to non-loopback addresses: {len(outside)}")
+        print(
+            f"network trace, {variant}: {len(calls)} connect() calls ({', '.join(families) or 'none'}); "
+            f"to non-loopback addresses: {len(outside)}"
+        )
         for line in outside[:5]:
             print("   ", line[:200])
 
@@ -182,8 +197,9 @@ def main(argv=None) -> Dict:
     parser.add_argument("--variants", nargs="+", default=list(VARIANTS), choices=VARIANTS)
     parser.add_argument("--repeats", type=int, default=1)
     parser.add_argument("--offline", action="store_true", help="run every variant without a network")
-    parser.add_argument("--trace-network", action="store_true",
-                        help="list the connect() calls of the pipeline variants (strace)")
+    parser.add_argument(
+        "--trace-network", action="store_true", help="list the connect() calls of the pipeline variants (strace)"
+    )
     parser.add_argument("--work", default=WORK)
     args = parser.parse_args(argv)
 
@@ -191,8 +207,10 @@ def main(argv=None) -> Dict:
     started = time.perf_counter()
     archives = scale_archive.prepare(args.work, args.days)
     print(f"archives ready in {time.perf_counter() - started:.0f} s under {args.work}")
-    print(f"machine: {os.cpu_count()} cores, load average {os.getloadavg()[0]:.2f} at start "
-          "(shared with other work: timings are noisy)")
+    print(
+        f"machine: {os.cpu_count()} cores, load average {os.getloadavg()[0]:.2f} at start "
+        "(shared with other work: timings are noisy)"
+    )
     results: Dict[int, Dict[str, dict]] = {}
     for days in sorted(args.days):
         archive, config = archives[days]
@@ -208,18 +226,23 @@ def main(argv=None) -> Dict:
                 if variant in PIPELINE_VARIANTS:
                     run["accounting"] = check_pipeline_log(variant, log_path, days)
                 runs[variant].append(run)
-                print(f"  {days} d {variant:9s} {run['seconds']:7.1f} s  tree RSS {run['tree_rss_mb']:6.0f} MB",
-                      flush=True)
+                print(
+                    f"  {days} d {variant:9s} {run['seconds']:7.1f} s  tree RSS {run['tree_rss_mb']:6.0f} MB",
+                    flush=True,
+                )
         samples = days * 24 * scale_archive.ROWS_PER_HOUR * len(scale_archive.CHANNELS)
         results[days] = {}
         for variant, items in runs.items():
             seconds = [r["seconds"] for r in items]
             results[days][variant] = {
-                "seconds": statistics.median(seconds), "best": min(seconds),
+                "seconds": statistics.median(seconds),
+                "best": min(seconds),
                 "samples_per_s": samples / statistics.median(seconds),
                 "tree_rss_mb": max(r["tree_rss_mb"] for r in items),
                 "maxrss_mb": max(r["maxrss_mb"] for r in items),
-                "cpu_s": statistics.median(r["cpu_s"] for r in items), "samples": samples}
+                "cpu_s": statistics.median(r["cpu_s"] for r in items),
+                "samples": samples,
+            }
         if args.trace_network and days == min(args.days):
             trace_network(days, archive, config, folder)
     print()
@@ -228,21 +251,28 @@ def main(argv=None) -> Dict:
 
 
 def report(results: Dict[int, Dict[str, dict]], args) -> str:
-    lines = [f"8 channels at 100 Hz, 10-minute windows, 36 pairs, max lag 10 s, indicators, screening and "
-             f"shifts on; median of {args.repeats} run(s); {os.cpu_count()} cores"
-             + (" ; offline (empty network namespace)" if args.offline else ""),
-             "",
-             f"{'days':>4}  {'variant':32s} {'wall s':>8} {'CPU s':>8} {'Msamples/s':>11} "
-             f"{'tree RSS MB':>12} {'max RSS MB':>11}"]
+    lines = [
+        f"8 channels at 100 Hz, 10-minute windows, 36 pairs, max lag 10 s, indicators, screening and "
+        f"shifts on; median of {args.repeats} run(s); {os.cpu_count()} cores"
+        + (" ; offline (empty network namespace)" if args.offline else ""),
+        "",
+        f"{'days':>4}  {'variant':32s} {'wall s':>8} {'CPU s':>8} {'Msamples/s':>11} "
+        f"{'tree RSS MB':>12} {'max RSS MB':>11}",
+    ]
     for days in sorted(results):
         for variant in VARIANTS:
             r = results[days].get(variant)
             if r is None:
                 continue
-            lines.append(f"{days:>4}  {LABELS[variant]:32s} {r['seconds']:8.1f} {r['cpu_s']:8.1f} "
-                         f"{r['samples_per_s'] / 1e6:11.2f} {r['tree_rss_mb']:12.0f} {r['maxrss_mb']:11.0f}")
-    lines += ["", f"{'days':>4}  {'1/4 pipeline/floor':>19} {'efficiency 4/1':>15} {'3/1 speed-up':>13} "
-                  f"{'1/2 worker scaling':>19} {'5/4 lean/floor':>15} {'3/5 script/lean':>16}"]
+            lines.append(
+                f"{days:>4}  {LABELS[variant]:32s} {r['seconds']:8.1f} {r['cpu_s']:8.1f} "
+                f"{r['samples_per_s'] / 1e6:11.2f} {r['tree_rss_mb']:12.0f} {r['maxrss_mb']:11.0f}"
+            )
+    lines += [
+        "",
+        f"{'days':>4}  {'1/4 pipeline/floor':>19} {'efficiency 4/1':>15} {'3/1 speed-up':>13} "
+        f"{'1/2 worker scaling':>19} {'5/4 lean/floor':>15} {'3/5 script/lean':>16}",
+    ]
 
     def ratio(days, top, bottom):
         r = results[days]
@@ -251,13 +281,16 @@ def report(results: Dict[int, Dict[str, dict]], args) -> str:
         return "-"
 
     for days in sorted(results):
-        lines.append(f"{days:>4}  {ratio(days, 'pipeline', 'floor'):>19} {ratio(days, 'floor', 'pipeline'):>15} "
-                     f"{ratio(days, 'script', 'pipeline'):>13} {ratio(days, 'pipeline', 'workers2'):>19} "
-                     f"{ratio(days, 'lean', 'floor'):>15} {ratio(days, 'script', 'lean'):>16}")
+        lines.append(
+            f"{days:>4}  {ratio(days, 'pipeline', 'floor'):>19} {ratio(days, 'floor', 'pipeline'):>15} "
+            f"{ratio(days, 'script', 'pipeline'):>13} {ratio(days, 'pipeline', 'workers2'):>19} "
+            f"{ratio(days, 'lean', 'floor'):>15} {ratio(days, 'script', 'lean'):>16}"
+        )
     first = min(results)
     lines += ["", f"growth against the {first}-day archive: time per day (1.00 = linear) and peak tree RSS ratio"]
-    lines.append(f"{'days':>4}  " + " ".join(f"{v + ' t/day':>15} {v + ' RSS':>13}" for v in VARIANTS
-                                            if v in results[first]))
+    lines.append(
+        f"{'days':>4}  " + " ".join(f"{v + ' t/day':>15} {v + ' RSS':>13}" for v in VARIANTS if v in results[first])
+    )
     for days in sorted(results):
         cells = []
         for v in VARIANTS:

@@ -15,6 +15,7 @@ so the record is continuous. The temperature follows a daily sine.
 The longest archive is generated once; shorter ones are hard links to its first days, so every
 variant of every length reads byte-identical files.
 """
+
 from __future__ import annotations
 
 import datetime as dt
@@ -38,8 +39,7 @@ SEED = 7
 #: (frequency Hz, damping ratio) of the invented modes
 MODES = ((3.1, 0.02), (7.0, 0.015))
 #: mode-shape ordinates of each channel for each mode (invented)
-SHAPES = np.array([[1.0, 0.3], [0.8, -0.6], [0.5, 1.0], [-0.4, 0.7],
-                   [0.9, 0.1], [0.2, -0.9], [0.1, 0.05], [0.1, 0.05]])
+SHAPES = np.array([[1.0, 0.3], [0.8, -0.6], [0.5, 1.0], [-0.4, 0.7], [0.9, 0.1], [0.2, -0.9], [0.1, 0.05], [0.1, 0.05]])
 GROUND_DELAY_SAMPLES = 5  # acc8 sees the ground-borne component 50 ms after acc7
 
 
@@ -47,7 +47,7 @@ def _resonator(freq_hz: float, damping: float, fs: float):
     """AR(2) coefficients of an impulse-invariant single-degree-of-freedom oscillator."""
     w = 2 * np.pi * freq_hz
     r = np.exp(-damping * w / fs)
-    wd = w * np.sqrt(1 - damping ** 2) / fs
+    wd = w * np.sqrt(1 - damping**2) / fs
     return np.array([1.0]), np.array([1.0, -2 * r * np.cos(wd), r * r])
 
 
@@ -74,7 +74,7 @@ def write_archive(archive: str, days: int, hours: Optional[int] = None) -> None:
         modal = np.empty((n, len(MODES)))
         for m, (b, a) in enumerate(filters):
             out, states[m] = signal.lfilter(b, a, rng.standard_normal(n), zi=states[m])
-            modal[:, m] = out / np.sqrt(np.mean(out ** 2) + 1e-30)
+            modal[:, m] = out / np.sqrt(np.mean(out**2) + 1e-30)
         ground = rng.standard_normal(n)
         delayed = np.concatenate([ground_tail, ground[:-GROUND_DELAY_SAMPLES]])
         ground_tail = ground[-GROUND_DELAY_SAMPLES:]
@@ -82,16 +82,19 @@ def write_archive(archive: str, days: int, hours: Optional[int] = None) -> None:
         data[:, 6] += ground
         data[:, 7] += 0.8 * delayed
         t0 = int(hour.timestamp() * 1_000_000)
-        time = pa.array(t0 + np.arange(n, dtype=np.int64) * int(1e6 / SAMPLE_RATE_HZ),
-                        type=pa.int64()).cast(pa.timestamp("us", "UTC"))
+        time = pa.array(t0 + np.arange(n, dtype=np.int64) * int(1e6 / SAMPLE_RATE_HZ), type=pa.int64()).cast(
+            pa.timestamp("us", "UTC")
+        )
         seconds = (hour - START).total_seconds() + np.arange(n) / SAMPLE_RATE_HZ
         temperature = (12.0 + 4.0 * np.sin(2 * np.pi * seconds / 86400.0)).astype(np.float32)
-        columns = {"time": time, **{c: data[:, i].astype(np.float32) for i, c in enumerate(CHANNELS)},
-                   COVARIATE: temperature}
+        columns = {
+            "time": time,
+            **{c: data[:, i].astype(np.float32) for i, c in enumerate(CHANNELS)},
+            COVARIATE: temperature,
+        }
         path = file_path(archive, hour)
         os.makedirs(os.path.dirname(path), exist_ok=True)
-        pq.write_table(pa.table(columns), path, row_group_size=ROW_GROUP_ROWS, compression="zstd",
-                       use_dictionary=False)
+        pq.write_table(pa.table(columns), path, row_group_size=ROW_GROUP_ROWS, compression="zstd", use_dictionary=False)
     open(marker, "w").close()
 
 
@@ -135,8 +138,10 @@ def config_text(archive_folder: str = "archive", lean: bool = False) -> str:
         return text
     text = text.split("[[modes]]")[0] + "[baseline]" + text.split("[baseline]")[1]
     text = text.replace("[screening]\nenabled = true", "[screening]\nenabled = false")
-    text = text.replace('[shifts]\ndetector = "both"',
-                        '[shifts]\ndetector = "both"\nindicators = ["rms", "corr_time_s", "lag_s", "peak_coef"]')
+    text = text.replace(
+        '[shifts]\ndetector = "both"',
+        '[shifts]\ndetector = "both"\nindicators = ["rms", "corr_time_s", "lag_s", "peak_coef"]',
+    )
     return text.replace("# invented benchmark asset", "# invented benchmark asset, lean job")
 
 

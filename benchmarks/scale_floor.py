@@ -11,6 +11,7 @@ checks, no error metadata, no indicators, no output. A tight loop in one process
 Prints one line ``FLOOR windows=W samples=S checksum=C`` (the checksum keeps the work from being
 optimised away and lets two runs be compared).
 """
+
 from __future__ import annotations
 
 import argparse
@@ -42,15 +43,15 @@ def run(archive: str, max_lag_s: float = 10.0, window_s: float = 600.0) -> dict:
         data = np.concatenate([pending, block], axis=1) if pending.shape[1] else block
         whole = data.shape[1] // n
         for w in range(whole):
-            x = data[:, w * n:(w + 1) * n]
+            x = data[:, w * n : (w + 1) * n]
             spectra = scipy.fft.rfft(x, n=size, axis=-1)  # one transform per channel
             cross = np.conj(spectra[a_idx]) * spectra[b_idx]
             r = scipy.fft.irfft(cross, n=size, axis=-1)  # one inverse transform per pair
-            lags = np.concatenate([r[:, -L:], r[:, :L + 1]], axis=1)
+            lags = np.concatenate([r[:, -L:], r[:, : L + 1]], axis=1)
             checksum += float(lags.sum())
             windows += 1
             samples += n * c
-        pending = data[:, whole * n:]
+        pending = data[:, whole * n :]
     return {"windows": windows, "samples": samples, "checksum": checksum}
 
 

@@ -14,6 +14,7 @@ tables but without error metadata, screening or shift detection.
 Written to be reasonable, not slow: columns selected on read, one float64 conversion per window,
 windows with missing samples skipped, memory bounded by one day of results.
 """
+
 from __future__ import annotations
 
 import argparse
@@ -32,7 +33,7 @@ def correlation_time(rho: np.ndarray, dt: float) -> float:
     """Trapezoid integral of an auto-correlation coefficient (lags 0..L) to its first zero."""
     below = np.flatnonzero(rho <= 0)
     end = below[0] if below.size else len(rho) - 1
-    return float(np.trapezoid(rho[:end + 1], dx=dt))
+    return float(np.trapezoid(rho[: end + 1], dx=dt))
 
 
 def analyse(window: pd.DataFrame, max_lag: int, dt: float):
@@ -63,18 +64,30 @@ def analyse(window: pd.DataFrame, max_lag: int, dt: float):
 def write_day(output: str, day: str, correlations: list, indicators: list) -> None:
     folder = os.path.join(output, f"date={day}")
     os.makedirs(folder, exist_ok=True)
-    pq.write_table(pa.table({
-        "window_start": pa.array([r[0] for r in correlations], pa.timestamp("us", "UTC")),
-        "channel_a": [r[1] for r in correlations],
-        "channel_b": [r[2] for r in correlations],
-        "coefficient": pa.array([r[3] for r in correlations], pa.list_(pa.float32())),
-    }), os.path.join(folder, "correlations.parquet"), compression="zstd")
-    pq.write_table(pa.table({
-        "window_start": pa.array([r[0] for r in indicators], pa.timestamp("us", "UTC")),
-        "subject": [r[1] for r in indicators],
-        "indicator": [r[2] for r in indicators],
-        "value": [r[3] for r in indicators],
-    }), os.path.join(folder, "indicators.parquet"), compression="zstd")
+    pq.write_table(
+        pa.table(
+            {
+                "window_start": pa.array([r[0] for r in correlations], pa.timestamp("us", "UTC")),
+                "channel_a": [r[1] for r in correlations],
+                "channel_b": [r[2] for r in correlations],
+                "coefficient": pa.array([r[3] for r in correlations], pa.list_(pa.float32())),
+            }
+        ),
+        os.path.join(folder, "correlations.parquet"),
+        compression="zstd",
+    )
+    pq.write_table(
+        pa.table(
+            {
+                "window_start": pa.array([r[0] for r in indicators], pa.timestamp("us", "UTC")),
+                "subject": [r[1] for r in indicators],
+                "indicator": [r[2] for r in indicators],
+                "value": [r[3] for r in indicators],
+            }
+        ),
+        os.path.join(folder, "indicators.parquet"),
+        compression="zstd",
+    )
 
 
 def run(archive: str, output: str, max_lag_s: float = 10.0, window_s: float = 600.0) -> dict:

@@ -6,6 +6,7 @@ power against a variance step, 30-s bursts of several sizes and a strong tone (i
 Prints one line per case: the fraction of 10-minute windows (20 Hz) flagged at the defaults
 (M = 20 segments, alpha = 0.05), with its binomial standard error, and the time per window.
 """
+
 import argparse
 import math
 import time
@@ -26,7 +27,7 @@ def ar1(rng, n=N, phi=0.9):
 def oscillator(rng, n=N, freq_hz=2.0, damping=0.05):
     w, dt = 2 * math.pi * freq_hz, 1 / FS
     r = math.exp(-damping * w * dt)
-    wd = w * math.sqrt(1 - damping ** 2)
+    wd = w * math.sqrt(1 - damping**2)
     return signal.lfilter([1.0], [1.0, -2 * r * math.cos(wd * dt), r * r], rng.standard_normal(n + 4000))[4000:]
 
 
@@ -40,7 +41,7 @@ def burst(rng, x, make, rms_ratio):
     start = rng.integers(0, len(x) - length)
     extra = make(rng, n=length)
     y = x.copy()
-    y[start:start + length] += math.sqrt(rms_ratio ** 2 - 1) * np.std(x) / np.std(extra) * extra
+    y[start : start + length] += math.sqrt(rms_ratio**2 - 1) * np.std(x) / np.std(extra) * extra
     return y
 
 
@@ -54,11 +55,19 @@ def main(argv=None):
     for name, make in (("AR(1) phi=0.9", ar1), ("oscillator 2 Hz, zeta=0.05", oscillator)):
         cases += [
             (f"{name}: stationary", lambda make=make: make(rng)),
-            (f"{name}: variance x3 halfway", lambda make=make: np.r_[make(rng, n=N // 2), math.sqrt(3) * make(rng, n=N // 2)]),
+            (
+                f"{name}: variance x3 halfway",
+                lambda make=make: np.r_[make(rng, n=N // 2), math.sqrt(3) * make(rng, n=N // 2)],
+            ),
             (f"{name}: 30-s burst, rms x1.5", lambda make=make: burst(rng, make(rng), make, 1.5)),
             (f"{name}: 30-s burst, rms x2", lambda make=make: burst(rng, make(rng), make, 2.0)),
             (f"{name}: 30-s burst, rms x3", lambda make=make: burst(rng, make(rng), make, 3.0)),
-            (f"{name}: tone 10x the random power", lambda make=make: (lambda x: x + math.sqrt(20) * np.std(x) * np.sin(2 * math.pi * 3.3 * t + rng.uniform(0, 6.3)))(make(rng))),
+            (
+                f"{name}: tone 10x the random power",
+                lambda make=make: (
+                    lambda x: x + math.sqrt(20) * np.std(x) * np.sin(2 * math.pi * 3.3 * t + rng.uniform(0, 6.3))
+                )(make(rng)),
+            ),
         ]
     cases.append(("heavy-tailed AR(1) (Student t, 5 dof): stationary", lambda: heavy_tailed(rng)))
     valid = np.ones(N, bool)
@@ -67,8 +76,10 @@ def main(argv=None):
         flags = [st.screen_channel(make(), valid, FS, 20, 0.05).flagged for _ in range(args.windows)]
         seconds = (time.perf_counter() - started) / args.windows
         rate = float(np.mean(flags))
-        print(f"{label:55s} flagged {rate:6.3f} +- {math.sqrt(max(rate * (1 - rate), 1e-9) / args.windows):.3f}"
-              f"   {1e3 * seconds:5.1f} ms/window")
+        print(
+            f"{label:55s} flagged {rate:6.3f} +- {math.sqrt(max(rate * (1 - rate), 1e-9) / args.windows):.3f}"
+            f"   {1e3 * seconds:5.1f} ms/window"
+        )
 
 
 if __name__ == "__main__":

@@ -9,6 +9,7 @@ the key, the value and what is allowed, for example::
 The README's configuration reference lists every key with its default; this module is the source
 of truth for both.
 """
+
 from __future__ import annotations
 
 import dataclasses
@@ -38,10 +39,17 @@ SCREENING_ACTIONS = ("flag", "exclude")
 DETECTORS = ("cusum", "ewma", "both")
 #: indicator names of the indicators table (more may follow); "covariate_mean" rows carry the
 #: window means of covariate channels and are inputs of compensation, never monitored themselves
-INDICATOR_NAMES = ("rms", "corr_time_s", "decay_time_s", "mode_freq_hz", "mode_damping", "lag_s",
-                   "peak_coef", "stationarity_p")
-DEFAULT_MONITORED = ("rms", "corr_time_s", "decay_time_s", "mode_freq_hz", "mode_damping", "lag_s",
-                     "peak_coef")
+INDICATOR_NAMES = (
+    "rms",
+    "corr_time_s",
+    "decay_time_s",
+    "mode_freq_hz",
+    "mode_damping",
+    "lag_s",
+    "peak_coef",
+    "stationarity_p",
+)
+DEFAULT_MONITORED = ("rms", "corr_time_s", "decay_time_s", "mode_freq_hz", "mode_damping", "lag_s", "peak_coef")
 ASSET_NAME_PATTERN = re.compile(r"^[A-Za-z0-9_-]{1,64}$")
 CHANNEL_NAME_PATTERN = re.compile(r"^[^:\x00-\x1f]{1,128}$")
 
@@ -186,8 +194,11 @@ class AssetConfig:
 
         def plain(value):
             if dataclasses.is_dataclass(value):
-                return {f.name: plain(getattr(value, f.name)) for f in dataclasses.fields(value)
-                        if f.name not in ("source", "notes")}
+                return {
+                    f.name: plain(getattr(value, f.name))
+                    for f in dataclasses.fields(value)
+                    if f.name not in ("source", "notes")
+                }
             if isinstance(value, (list, tuple)):
                 return [plain(v) for v in value]
             if isinstance(value, Mapping):
@@ -209,8 +220,7 @@ class AssetConfig:
 
 _KNOWN = {
     "asset": {"name", "timezone"},
-    "archive": {"path", "layout", "time_column", "channel_column", "value_column",
-                "sample_rate_hz", "timezone"},
+    "archive": {"path", "layout", "time_column", "channel_column", "value_column", "sample_rate_hz", "timezone"},
     "channels": {"names", "covariates", "units"},
     "windows": {"length_s", "hop_s", "min_coverage", "align", "offset_s", "record_gap_s"},
     "correlation": {"max_lag_s", "pairs", "estimator", "detrend", "weighting", "target_rel_error"},
@@ -282,8 +292,11 @@ def _section(raw: Mapping[str, Any], name: str, required=False) -> Mapping[str, 
         raise ConfigError(f"[{name}]", value, "must be a table")
     unknown = sorted(set(value) - _KNOWN[name])
     if unknown:
-        raise ConfigError(f"[{name}] {unknown[0]}", value[unknown[0]],
-                          "is not a known key; known keys: " + ", ".join(sorted(_KNOWN[name])))
+        raise ConfigError(
+            f"[{name}] {unknown[0]}",
+            value[unknown[0]],
+            "is not a known key; known keys: " + ", ".join(sorted(_KNOWN[name])),
+        )
     return value
 
 
@@ -297,11 +310,11 @@ def _timezone(key, value):
     import zoneinfo
 
     if not isinstance(value, str):
-        raise ConfigError(key, value, "must be an IANA time zone name such as \"UTC\" or \"Europe/Vienna\"")
+        raise ConfigError(key, value, 'must be an IANA time zone name such as "UTC" or "Europe/Vienna"')
     try:
         zoneinfo.ZoneInfo(value)
     except (zoneinfo.ZoneInfoNotFoundError, ValueError):
-        raise ConfigError(key, value, "must be an IANA time zone name such as \"UTC\" or \"Europe/Vienna\"") from None
+        raise ConfigError(key, value, 'must be an IANA time zone name such as "UTC" or "Europe/Vienna"') from None
     return value
 
 
@@ -326,8 +339,9 @@ def parse_config(raw: Mapping[str, Any], base_dir: str = "", source: str = "") -
     """
     unknown = sorted(set(raw) - set(_KNOWN))
     if unknown:
-        raise ConfigError(f"[{unknown[0]}]", "...", "is not a known section; known sections: "
-                          + ", ".join(sorted(_KNOWN)))
+        raise ConfigError(
+            f"[{unknown[0]}]", "...", "is not a known section; known sections: " + ", ".join(sorted(_KNOWN))
+        )
     name = _parse_asset(raw)
     archive = _parse_archive(raw, base_dir)
     timezone, notes = _calendar_timezone(raw, archive)
@@ -335,17 +349,32 @@ def parse_config(raw: Mapping[str, Any], base_dir: str = "", source: str = "") -
     windows = _parse_windows(raw, archive)
     correlation = _parse_correlation(raw, windows, channels)
     modes = _parse_modes(raw, archive, channels)
-    return AssetConfig(name=name, archive=archive, channels=channels, windows=windows,
-                       correlation=correlation, modes=modes, baseline=_parse_baseline(raw),
-                       screening=_parse_screening(raw), shifts=_parse_shifts(raw, channels),
-                       reading=_parse_reading(raw), timezone=timezone, source=source, notes=notes)
+    return AssetConfig(
+        name=name,
+        archive=archive,
+        channels=channels,
+        windows=windows,
+        correlation=correlation,
+        modes=modes,
+        baseline=_parse_baseline(raw),
+        screening=_parse_screening(raw),
+        shifts=_parse_shifts(raw, channels),
+        reading=_parse_reading(raw),
+        timezone=timezone,
+        source=source,
+        notes=notes,
+    )
 
 
 def _parse_asset(raw: Mapping[str, Any]) -> str:
     """``[asset]``: the asset's name."""
     asset = _section(raw, "asset", required=True)
-    return _string("[asset] name", asset.get("name"), ASSET_NAME_PATTERN,
-                   "1-64 letters, digits, '-' or '_' (it becomes a folder name)")
+    return _string(
+        "[asset] name",
+        asset.get("name"),
+        ASSET_NAME_PATTERN,
+        "1-64 letters, digits, '-' or '_' (it becomes a folder name)",
+    )
 
 
 def _calendar_timezone(raw: Mapping[str, Any], archive: ArchiveConfig) -> Tuple[str, Tuple[str, ...]]:
@@ -362,9 +391,11 @@ def _calendar_timezone(raw: Mapping[str, Any], archive: ArchiveConfig) -> Tuple[
     arch = raw.get("archive") or {}
     if "timezone" not in arch or archive.timezone == "UTC":
         return "UTC", ()
-    note = (f"[archive] timezone = {archive.timezone!r} also sets the calendar day of windows (partitions, "
-            f"--date, baselines) because [asset] timezone is not given; this fallback is deprecated: "
-            f"add [asset] timezone = {archive.timezone!r} to keep today's days")
+    note = (
+        f"[archive] timezone = {archive.timezone!r} also sets the calendar day of windows (partitions, "
+        f"--date, baselines) because [asset] timezone is not given; this fallback is deprecated: "
+        f"add [asset] timezone = {archive.timezone!r} to keep today's days"
+    )
     _LOG.warning(note)
     return archive.timezone, (note,)
 
@@ -394,12 +425,15 @@ def _parse_channels(raw: Mapping[str, Any]) -> ChannelsConfig:
     covariates = _string_list("[channels] covariates", ch.get("covariates", []))
     units = ch.get("units", {})
     if not isinstance(units, Mapping) or not all(isinstance(v, str) for v in units.values()):
-        raise ConfigError("[channels] units", units, "must be a table of channel name = \"unit\"")
+        raise ConfigError("[channels] units", units, 'must be a table of channel name = "unit"')
     if names is not None:
         both = sorted(set(names) & set(covariates))
         if both:
-            raise ConfigError("[channels] covariates", list(covariates),
-                              f"must not repeat a correlated channel ({both[0]!r} is in names too)")
+            raise ConfigError(
+                "[channels] covariates",
+                list(covariates),
+                f"must not repeat a correlated channel ({both[0]!r} is in names too)",
+            )
     if not names and names is not None:
         raise ConfigError("[channels] names", [], "must list at least one channel, or be omitted for all")
     return ChannelsConfig(names=names, covariates=covariates, units=dict(units))
@@ -416,40 +450,53 @@ def _parse_windows(raw: Mapping[str, Any], archive: ArchiveConfig) -> WindowsCon
     align = _choice("[windows] align", win.get("align", "epoch"), ALIGNMENTS)
     offset_s = _number("[windows] offset_s", win.get("offset_s", 0.0), low=0, high=hop_s, high_open=True)
     if offset_s and align == "records":
-        raise ConfigError("[windows] offset_s", offset_s,
-                          "must be 0 with align = \"records\" (record starts fix the windows)")
-    record_gap_s = (_number("[windows] record_gap_s", win["record_gap_s"], low=0, low_open=True)
-                    if "record_gap_s" in win else None)
+        raise ConfigError(
+            "[windows] offset_s", offset_s, 'must be 0 with align = "records" (record starts fix the windows)'
+        )
+    record_gap_s = (
+        _number("[windows] record_gap_s", win["record_gap_s"], low=0, low_open=True) if "record_gap_s" in win else None
+    )
     windows = WindowsConfig(
-        length_s=length_s, hop_s=hop_s,
-        min_coverage=_number("[windows] min_coverage", win.get("min_coverage", 0.9), low=0, high=1,
-                             low_open=True),
-        align=align, offset_s=offset_s, record_gap_s=record_gap_s,
+        length_s=length_s,
+        hop_s=hop_s,
+        min_coverage=_number("[windows] min_coverage", win.get("min_coverage", 0.9), low=0, high=1, low_open=True),
+        align=align,
+        offset_s=offset_s,
+        record_gap_s=record_gap_s,
     )
     n_per_window = length_s * archive.sample_rate_hz
     if abs(n_per_window - round(n_per_window)) > 1e-6 or n_per_window < 16:
-        raise ConfigError("[windows] length_s", length_s,
-                          f"must hold a whole number (>= 16) of samples at {archive.sample_rate_hz} Hz")
+        raise ConfigError(
+            "[windows] length_s",
+            length_s,
+            f"must hold a whole number (>= 16) of samples at {archive.sample_rate_hz} Hz",
+        )
     return windows
 
 
-def _parse_correlation(raw: Mapping[str, Any], windows: WindowsConfig,
-                       channels: ChannelsConfig) -> CorrelationConfig:
+def _parse_correlation(raw: Mapping[str, Any], windows: WindowsConfig, channels: ChannelsConfig) -> CorrelationConfig:
     """``[correlation]``: maximum lag, pairs, estimator, detrending, weighting, target error."""
     cor = _section(raw, "correlation")
     length_s = windows.length_s
-    max_lag_s = _number("[correlation] max_lag_s", cor.get("max_lag_s", min(10.0, length_s / 10)),
-                        low=0, low_open=True)
+    max_lag_s = _number("[correlation] max_lag_s", cor.get("max_lag_s", min(10.0, length_s / 10)), low=0, low_open=True)
     if max_lag_s >= length_s / 2:
-        raise ConfigError("[correlation] max_lag_s", max_lag_s,
-                          f"must be below half the window length ({length_s / 2} s)")
+        raise ConfigError(
+            "[correlation] max_lag_s", max_lag_s, f"must be below half the window length ({length_s / 2} s)"
+        )
     return CorrelationConfig(
-        max_lag_s=max_lag_s, pairs=_parse_pairs(cor.get("pairs", "all"), channels.names),
+        max_lag_s=max_lag_s,
+        pairs=_parse_pairs(cor.get("pairs", "all"), channels.names),
         estimator=_choice("[correlation] estimator", cor.get("estimator", "biased"), ESTIMATORS),
         detrend=_choice("[correlation] detrend", cor.get("detrend", "mean"), DETRENDS),
         weighting=_choice("[correlation] weighting", cor.get("weighting", "none"), WEIGHTINGS),
-        target_rel_error=_number("[correlation] target_rel_error", cor.get("target_rel_error", 0.05),
-                                 low=0, high=1, low_open=True, high_open=True),
+        target_rel_error=_number(
+            "[correlation] target_rel_error",
+            cor.get("target_rel_error", 0.05),
+            low=0,
+            high=1,
+            low_open=True,
+            high_open=True,
+        ),
     )
 
 
@@ -457,22 +504,24 @@ def _parse_pairs(pairs_raw: Any, names: Optional[Tuple[str, ...]]):
     """``[correlation] pairs``: "all", "auto" or a tuple of (a, b) pairs of configured channels."""
     if isinstance(pairs_raw, str):
         return _choice("[correlation] pairs", pairs_raw, ("all", "auto"))
-    if isinstance(pairs_raw, list) and pairs_raw and all(
-            isinstance(p, list) and len(p) == 2 and all(isinstance(c, str) for c in p) for p in pairs_raw):
+    if (
+        isinstance(pairs_raw, list)
+        and pairs_raw
+        and all(isinstance(p, list) and len(p) == 2 and all(isinstance(c, str) for c in p) for p in pairs_raw)
+    ):
         pairs = tuple((p[0], p[1]) for p in pairs_raw)
         if names is not None:
             for p in pairs:
                 for c in p:
                     if c not in names:
-                        raise ConfigError("[correlation] pairs", pairs_raw,
-                                          f"names channel {c!r}, which is not in [channels] names")
+                        raise ConfigError(
+                            "[correlation] pairs", pairs_raw, f"names channel {c!r}, which is not in [channels] names"
+                        )
         return pairs
-    raise ConfigError("[correlation] pairs", pairs_raw,
-                      "must be \"all\", \"auto\" or a list of [a, b] channel pairs")
+    raise ConfigError("[correlation] pairs", pairs_raw, 'must be "all", "auto" or a list of [a, b] channel pairs')
 
 
-def _parse_modes(raw: Mapping[str, Any], archive: ArchiveConfig, channels: ChannelsConfig
-                 ) -> Tuple[ModeConfig, ...]:
+def _parse_modes(raw: Mapping[str, Any], archive: ArchiveConfig, channels: ChannelsConfig) -> Tuple[ModeConfig, ...]:
     """``[[modes]]``: named modes, each a channel and a frequency band below Nyquist."""
     modes_raw = raw.get("modes", [])
     if not isinstance(modes_raw, list):
@@ -490,16 +539,22 @@ def _parse_mode(i: int, m: Any, archive: ArchiveConfig, channels: ChannelsConfig
         raise ConfigError(where, m, "must be a table")
     unknown = sorted(set(m) - _KNOWN["modes"])
     if unknown:
-        raise ConfigError(f"{where} {unknown[0]}", m[unknown[0]],
-                          "is not a known key; known keys: " + ", ".join(sorted(_KNOWN["modes"])))
+        raise ConfigError(
+            f"{where} {unknown[0]}",
+            m[unknown[0]],
+            "is not a known key; known keys: " + ", ".join(sorted(_KNOWN["modes"])),
+        )
     mname = _string(f"{where} name", m.get("name"), CHANNEL_NAME_PATTERN, "a name (no ':')")
     mchan = _string(f"{where} channel", m.get("channel"), CHANNEL_NAME_PATTERN, "a channel name")
     if channels.names is not None and mchan not in channels.names:
         raise ConfigError(f"{where} channel", mchan, "must be one of [channels] names")
     band = m.get("band_hz")
-    if (not isinstance(band, list) or len(band) != 2
-            or not all(isinstance(b, (int, float)) and not isinstance(b, bool) for b in band)
-            or not 0 < band[0] < band[1]):
+    if (
+        not isinstance(band, list)
+        or len(band) != 2
+        or not all(isinstance(b, (int, float)) and not isinstance(b, bool) for b in band)
+        or not 0 < band[0] < band[1]
+    ):
         raise ConfigError(f"{where} band_hz", band, "must be [low, high] in Hz with 0 < low < high")
     nyquist = archive.sample_rate_hz / 2
     if band[1] >= nyquist:
@@ -513,19 +568,22 @@ def _parse_baseline(raw: Mapping[str, Any]) -> BaselineConfig:
     b_start = _date("[baseline] start", base["start"]) if "start" in base else None
     b_end = _date("[baseline] end", base["end"]) if "end" in base else None
     if (b_start is None) != (b_end is None):
-        raise ConfigError("[baseline] start" if b_start is None else "[baseline] end", None,
-                          "start and end must be given together")
+        raise ConfigError(
+            "[baseline] start" if b_start is None else "[baseline] end", None, "start and end must be given together"
+        )
     if b_start is not None and b_end is not None and b_end < b_start:
         raise ConfigError("[baseline] end", b_end.isoformat(), f"must not be before start ({b_start})")
-    b_windows = (_number("[baseline] windows", base["windows"], low=2, integer=True)
-                 if "windows" in base else None)
+    b_windows = _number("[baseline] windows", base["windows"], low=2, integer=True) if "windows" in base else None
     if b_windows is not None and b_start is not None:
         raise ConfigError("[baseline] windows", b_windows, "give either start/end or windows, not both")
     if b_windows is None and b_start is None:
         b_windows = 100
-    return BaselineConfig(start=b_start, end=b_end, windows=b_windows,
-                          min_windows=_number("[baseline] min_windows", base.get("min_windows", 30),
-                                              low=2, integer=True))
+    return BaselineConfig(
+        start=b_start,
+        end=b_end,
+        windows=b_windows,
+        min_windows=_number("[baseline] min_windows", base.get("min_windows", 30), low=2, integer=True),
+    )
 
 
 def _parse_screening(raw: Mapping[str, Any]) -> ScreeningConfig:
@@ -547,10 +605,16 @@ def _parse_shifts(raw: Mapping[str, Any], channels: ChannelsConfig) -> ShiftsCon
     sh = _section(raw, "shifts")
     compensate = _parse_compensate(sh.get("compensate", None), channels.covariates)
     monitored = sh.get("indicators", list(DEFAULT_MONITORED))
-    if (not isinstance(monitored, list) or not monitored
-            or not all(isinstance(i, str) and i in INDICATOR_NAMES for i in monitored)):
-        raise ConfigError("[shifts] indicators", monitored,
-                          "must be a non-empty list of indicator names from: " + ", ".join(INDICATOR_NAMES))
+    if (
+        not isinstance(monitored, list)
+        or not monitored
+        or not all(isinstance(i, str) and i in INDICATOR_NAMES for i in monitored)
+    ):
+        raise ConfigError(
+            "[shifts] indicators",
+            monitored,
+            "must be a non-empty list of indicator names from: " + ", ".join(INDICATOR_NAMES),
+        )
     return ShiftsConfig(
         indicators=tuple(monitored),
         detector=_choice("[shifts] detector", sh.get("detector", "both"), DETECTORS),
@@ -571,10 +635,11 @@ def _parse_compensate(comp: Any, covariates: Tuple[str, ...]) -> Optional[Tuple[
     if isinstance(comp, list) and all(isinstance(c, str) for c in comp):
         missing = [c for c in comp if c not in set(covariates)]
         if missing:
-            raise ConfigError("[shifts] compensate", comp,
-                              f"names {missing[0]!r}, which is not in [channels] covariates")
+            raise ConfigError(
+                "[shifts] compensate", comp, f"names {missing[0]!r}, which is not in [channels] covariates"
+            )
         return tuple(comp)
-    raise ConfigError("[shifts] compensate", comp, "must be \"all\", \"none\" or a list of covariate names")
+    raise ConfigError("[shifts] compensate", comp, 'must be "all", "none" or a list of covariate names')
 
 
 def _parse_reading(raw: Mapping[str, Any]) -> ReadingConfig:
@@ -582,10 +647,10 @@ def _parse_reading(raw: Mapping[str, Any]) -> ReadingConfig:
     rd = _section(raw, "reading")
     return ReadingConfig(
         task_bytes=_number("[reading] task_bytes", rd.get("task_bytes", 32 * 2**20), low=2**16, integer=True),
-        grid_tolerance=_number("[reading] grid_tolerance", rd.get("grid_tolerance", 0.25), low=0, high=0.5,
-                               low_open=True, high_open=True),
-        clip_fraction=_number("[reading] clip_fraction", rd.get("clip_fraction", 0.01), low=0, high=1,
-                              low_open=True),
+        grid_tolerance=_number(
+            "[reading] grid_tolerance", rd.get("grid_tolerance", 0.25), low=0, high=0.5, low_open=True, high_open=True
+        ),
+        clip_fraction=_number("[reading] clip_fraction", rd.get("clip_fraction", 0.01), low=0, high=1, low_open=True),
     )
 
 

@@ -13,6 +13,7 @@
 Lag convention everywhere: ``R_ab(tau) = E[a(t) b(t + tau)]``; a peak at positive ``tau`` means
 channel b lags channel a. Lag ``i`` of an array is ``first_lag_s + i * lag_step_s``.
 """
+
 from __future__ import annotations
 
 import dataclasses
@@ -177,7 +178,7 @@ class WindowCorrelation:
     #: e.g. screening's "nonstationary"
     subject_quality: Mapping[str, Tuple[str, ...]] = dataclasses.field(default_factory=dict)
     #: extra indicator rows produced by earlier stages (e.g. stationarity_p from screening)
-    extra_indicators: Tuple["IndicatorRow", ...] = ()
+    extra_indicators: Tuple[IndicatorRow, ...] = ()
 
     def auto(self, channel: str) -> Optional[PairCorrelation]:
         for p in self.pairs:

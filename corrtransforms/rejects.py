@@ -14,6 +14,7 @@ the job did about it:
 Reason codes are stable snake_case strings; :data:`REASONS` documents each one and the README's
 table is generated from it.
 """
+
 from __future__ import annotations
 
 import dataclasses
@@ -39,7 +40,10 @@ REASONS = {
     "sample_rate_mismatch": ("rejected", "the sample interval in the data differs from the nominal sample rate"),
     "overlapping_files": ("repaired", "two files hold samples of the same span; identical samples were kept once"),
     "decode_failed": ("rejected", "a row group could not be decoded while reading the window"),
-    "statistics_mismatch": ("rejected", "a row group's timestamps disagree with its footer statistics; its rows were not used"),
+    "statistics_mismatch": (
+        "rejected",
+        "a row group's timestamps disagree with its footer statistics; its rows were not used",
+    ),
     "null_timestamps": ("rejected", "rows without a timestamp (null); they were not used"),
     # windows (stage "read")
     "insufficient_coverage": ("rejected", "fewer valid samples than [windows] min_coverage requires"),
@@ -54,12 +58,24 @@ REASONS = {
     # correlate / indicators / screening / shifts
     "no_valid_pairs": ("rejected", "no requested channel pair has enough valid samples"),
     "correlation_failed": ("rejected", "the estimator raised an error; detail holds it"),
-    "nonstationary_window": ("rejected", "stationarity screening failed and [screening] action = \"exclude\""),
+    "nonstationary_window": ("rejected", 'stationarity screening failed and [screening] action = "exclude"'),
     "indicator_failed": ("rejected", "an indicator computation raised an error; detail holds it"),
-    "duplicate_indicator_rows": ("rejected", "several indicator rows of one subject and indicator share a window start; only the first (sorted) was used"),
-    "duplicate_covariate_rows": ("rejected", "several covariate_mean rows of one covariate share a window start; the covariate was treated as missing"),
-    "window_before_state": ("rejected", "the window is not after the resumed state's last window; run a backfill to include it"),
-    "state_mismatch": ("rejected", "the resumed shift state was computed with other [baseline]/[shifts] settings; run a backfill"),
+    "duplicate_indicator_rows": (
+        "rejected",
+        "several indicator rows of one subject and indicator share a window start; only the first (sorted) was used",
+    ),
+    "duplicate_covariate_rows": (
+        "rejected",
+        "several covariate_mean rows of one covariate share a window start; the covariate was treated as missing",
+    ),
+    "window_before_state": (
+        "rejected",
+        "the window is not after the resumed state's last window; run a backfill to include it",
+    ),
+    "state_mismatch": (
+        "rejected",
+        "the resumed shift state was computed with other [baseline]/[shifts] settings; run a backfill",
+    ),
     "shift_detection_failed": ("rejected", "shift detection raised an error for the series; detail holds it"),
 }
 
@@ -120,8 +136,16 @@ class Reject:
             raise ValueError(f"action {self.action!r} not one of {ACTIONS}")
 
     @classmethod
-    def for_window(cls, asset: str, window_start_us: int, stage: str, reason: str, detail: str,
-                   subject: str = WHOLE_WINDOW, action: Optional[str] = None) -> "Reject":
+    def for_window(
+        cls,
+        asset: str,
+        window_start_us: int,
+        stage: str,
+        reason: str,
+        detail: str,
+        subject: str = WHOLE_WINDOW,
+        action: Optional[str] = None,
+    ) -> Reject:
         """A finding of one window: ``source`` is the window's ISO start time.
 
         Parameters
@@ -139,8 +163,16 @@ class Reject:
             None takes the reason's default action.
         """
         start = int(window_start_us)
-        return cls(stage=stage, source=iso_utc(start), subject=subject, reason=reason, detail=detail,
-                   asset=asset, window_start_us=start, action=action)
+        return cls(
+            stage=stage,
+            source=iso_utc(start),
+            subject=subject,
+            reason=reason,
+            detail=detail,
+            asset=asset,
+            window_start_us=start,
+            action=action,
+        )
 
     @property
     def rejects_whole_window(self) -> bool:

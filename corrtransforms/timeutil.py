@@ -2,6 +2,7 @@
 Unix epoch (UTC); these convert between that, wall-clock times of a time zone, calendar days and
 text. One home for them (stages and the report import from here).
 """
+
 from __future__ import annotations
 
 import datetime as _dt
@@ -65,8 +66,7 @@ def local_date(utc_us: int, timezone: str) -> str:
 
 def day_start_us(day: _dt.date, timezone: str) -> int:
     """UTC microseconds of local midnight starting ``day`` in ``timezone``."""
-    local = int((_dt.datetime(day.year, day.month, day.day) - _dt.datetime(1970, 1, 1))
-                / _dt.timedelta(microseconds=1))
+    local = int((_dt.datetime(day.year, day.month, day.day) - _dt.datetime(1970, 1, 1)) / _dt.timedelta(microseconds=1))
     return int(local_to_utc_us(np.array([local]), timezone)[0])
 
 
@@ -128,8 +128,7 @@ def local_days(times_us, timezone: str) -> np.ndarray:
     -------
     ndarray of int32
     """
-    times = pa.array(np.asarray(times_us, dtype=np.int64), type=pa.int64()).cast(
-        pa.timestamp("us", tz=timezone))
+    times = pa.array(np.asarray(times_us, dtype=np.int64), type=pa.int64()).cast(pa.timestamp("us", tz=timezone))
     local = pc.local_timestamp(times)
     return local.cast(pa.date32()).cast(pa.int32()).to_numpy(zero_copy_only=False).astype(np.int32)
 

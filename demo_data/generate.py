@@ -26,6 +26,7 @@ and a shorter run (``--days``) writes the same records as the start of a longer 
 :func:`expected_changes` returns the injected changes (what the demo should find) as plain data; the
 default scenario's list is committed as ``demo_data/expected_changes.json``.
 """
+
 from __future__ import annotations
 
 import argparse
@@ -86,12 +87,18 @@ class Mode:
 
 
 MODES = (
-    Mode("bending_1", "deck_mid_v", (2.0, 2.9), 2.45, 0.008, -0.0015, 0.020,
-         {"deck_mid_v": 1.0, "deck_qtr_v": 0.71}),
-    Mode("lateral_1", "deck_mid_h", (1.0, 1.7), 1.32, 0.015, -0.0010, 0.006,
-         {"deck_mid_h": 1.0, "deck_mid_v": 0.04}),
-    Mode("torsion_1", "deck_qtr_v", (4.0, 5.3), 4.62, 0.010, -0.0012, 0.010,
-         {"deck_qtr_v": 1.0, "deck_mid_v": 0.55, "deck_mid_h": 0.15}),
+    Mode("bending_1", "deck_mid_v", (2.0, 2.9), 2.45, 0.008, -0.0015, 0.020, {"deck_mid_v": 1.0, "deck_qtr_v": 0.71}),
+    Mode("lateral_1", "deck_mid_h", (1.0, 1.7), 1.32, 0.015, -0.0010, 0.006, {"deck_mid_h": 1.0, "deck_mid_v": 0.04}),
+    Mode(
+        "torsion_1",
+        "deck_qtr_v",
+        (4.0, 5.3),
+        4.62,
+        0.010,
+        -0.0012,
+        0.010,
+        {"deck_qtr_v": 1.0, "deck_mid_v": 0.55, "deck_mid_h": 0.15},
+    ),
 )
 #: corner frequency of the broadband modal forces (first-order low-pass), Hz
 FORCE_CORNER_HZ = 8.0
@@ -116,7 +123,7 @@ STUCK_VALUE = -0.0312
 
 STIFFNESS_LOSS_AT = _dt.datetime(2025, 5, 16, 12, tzinfo=UTC)
 STIFFNESS_LOSS_MODE = "bending_1"
-STIFFNESS_LOSS_FREQUENCY_FACTOR = 0.97          # modal stiffness x 0.9409
+STIFFNESS_LOSS_FREQUENCY_FACTOR = 0.97  # modal stiffness x 0.9409
 DAMPING_INCREASE_AT = _dt.datetime(2025, 5, 21, 12, tzinfo=UTC)
 DAMPING_INCREASE_MODE = "torsion_1"
 DAMPING_AFTER = 0.018
@@ -136,8 +143,9 @@ CORRUPT_KEEP_FRACTION = 0.55
 # Exact discretisation of linear stochastic differential equations
 
 
-def discretise_linear_sde(state_matrix: np.ndarray, noise_input: np.ndarray, intensity: float,
-                          step_s: float) -> Tuple[np.ndarray, np.ndarray]:
+def discretise_linear_sde(
+    state_matrix: np.ndarray, noise_input: np.ndarray, intensity: float, step_s: float
+) -> Tuple[np.ndarray, np.ndarray]:
     """Exact discrete-time form of ``dx = A x dt + G dW`` sampled every ``step_s`` seconds.
 
     Parameters
@@ -190,8 +198,9 @@ def _covariance_factor(covariance: np.ndarray) -> np.ndarray:
     return vectors * np.sqrt(np.clip(values, 0.0, None))
 
 
-def simulate_stationary(transition: np.ndarray, noise_covariance: np.ndarray, output: np.ndarray,
-                        n_samples: int, rng: np.random.Generator) -> np.ndarray:
+def simulate_stationary(
+    transition: np.ndarray, noise_covariance: np.ndarray, output: np.ndarray, n_samples: int, rng: np.random.Generator
+) -> np.ndarray:
     """Simulate ``y[k] = C x[k]``, ``x[k+1] = Ad x[k] + w[k]`` started in the stationary state.
 
     Parameters
@@ -272,15 +281,13 @@ def modal_acceleration_model(frequency_hz: float, damping: float, force_corner_h
     """
     omega = 2 * math.pi * frequency_hz
     omega_c = 2 * math.pi * force_corner_hz
-    a = np.array([[0.0, 1.0, 0.0],
-                  [-omega ** 2, -2 * damping * omega, 1.0],
-                  [0.0, 0.0, -omega_c]])
+    a = np.array([[0.0, 1.0, 0.0], [-(omega**2), -2 * damping * omega, 1.0], [0.0, 0.0, -omega_c]])
     g = np.array([0.0, 0.0, 1.0])
-    c = np.array([-omega ** 2, -2 * damping * omega, 1.0])
+    c = np.array([-(omega**2), -2 * damping * omega, 1.0])
     return a, g, c
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _stationary_output_std(frequency_hz: float, damping: float, step_s: float) -> float:
     a, g, c = modal_acceleration_model(frequency_hz, damping)
     ad, qd = discretise_linear_sde(a, g, 1.0, step_s)
@@ -331,8 +338,9 @@ def deck_temperature_c(seconds_since_start) -> np.ndarray:
     t = np.asarray(seconds_since_start, dtype=float)
     hours = t / 3600.0
     days = hours / 24.0
-    return (12.0 + 4.5 * np.sin(2 * np.pi * (hours - 9.0) / 24.0)
-            + 3.0 * np.sin(2 * np.pi * days / 9.0 + 0.3) + 0.05 * days)
+    return (
+        12.0 + 4.5 * np.sin(2 * np.pi * (hours - 9.0) / 24.0) + 3.0 * np.sin(2 * np.pi * days / 9.0 + 0.3) + 0.05 * days
+    )
 
 
 def mode_parameters(mode: Mode, when: _dt.datetime, temperature_c: float) -> Tuple[float, float]:
@@ -366,8 +374,9 @@ def _excitation_levels(start: _dt.datetime, rng: np.random.Generator) -> Tuple[f
     return deck, traffic
 
 
-def simulate_record(start: _dt.datetime, sample_rate_hz: float = SAMPLE_RATE_HZ,
-                    record_s: float = RECORD_S, seed: int = SEED) -> Dict[str, np.ndarray]:
+def simulate_record(
+    start: _dt.datetime, sample_rate_hz: float = SAMPLE_RATE_HZ, record_s: float = RECORD_S, seed: int = SEED
+) -> Dict[str, np.ndarray]:
     """Samples of every channel of the record starting at ``start`` (before any injected fault).
 
     Parameters
@@ -414,9 +423,8 @@ def simulate_record(start: _dt.datetime, sample_rate_hz: float = SAMPLE_RATE_HZ,
     local_n = signal.sosfilt(sos, rng.standard_normal(n + warmup))[warmup:]
     local_s = signal.sosfilt(sos, rng.standard_normal(n + warmup))[warmup:]
     local_scale = GROUND_LOCAL_NOISE * GROUND_RMS * traffic_level
-    channels["footing_n"] += ground[pad:pad + n] + local_scale * local_n / local_n.std()
-    channels["footing_s"] += (GROUND_TRANSMISSION * delayed[pad:pad + n]
-                              + local_scale * local_s / local_s.std())
+    channels["footing_n"] += ground[pad : pad + n] + local_scale * local_n / local_n.std()
+    channels["footing_s"] += GROUND_TRANSMISSION * delayed[pad : pad + n] + local_scale * local_s / local_s.std()
 
     for name in VIBRATION_CHANNELS:
         channels[name] += SENSOR_NOISE_RMS * rng.standard_normal(n)
@@ -452,7 +460,8 @@ def expected_changes(days: int = DEFAULT_DAYS, every_hours: int = DEFAULT_EVERY_
     -------
     dict
         ``shifts``: one entry per injected change with ``subject``, ``indicator``, ``direction``
-        ("up" | "down") and ``sign`` (+1 | -1, as in the shifts table), ``date`` and ``at`` (UTC onset), ``before``/``after`` (true values at the
+        ("up" | "down") and ``sign`` (+1 | -1, as in the shifts table), ``date`` and ``at`` (UTC onset),
+        ``before``/``after`` (true values at the
         reference temperature) and ``cause``; ``rejects``: the broken input with ``reason``,
         ``subject``, ``date``, ``source`` (file path inside the archive folder, or null; the
         rejects table holds the full path, so compare with ``endswith``) and
@@ -465,45 +474,97 @@ def expected_changes(days: int = DEFAULT_DAYS, every_hours: int = DEFAULT_EVERY_
     shifts = []
     if STIFFNESS_LOSS_AT < end:
         m = modes[STIFFNESS_LOSS_MODE]
-        shifts.append(dict(
-            subject=m.name, indicator="mode_freq_hz", direction="down", sign=-1,
-            date=STIFFNESS_LOSS_AT.date().isoformat(), at=_iso(STIFFNESS_LOSS_AT),
-            before=m.frequency_hz, after=round(m.frequency_hz * STIFFNESS_LOSS_FREQUENCY_FACTOR, 6),
-            cause="loss of bending stiffness near midspan (modal stiffness -5.9 %, frequency -3 %)"))
+        shifts.append(
+            dict(
+                subject=m.name,
+                indicator="mode_freq_hz",
+                direction="down",
+                sign=-1,
+                date=STIFFNESS_LOSS_AT.date().isoformat(),
+                at=_iso(STIFFNESS_LOSS_AT),
+                before=m.frequency_hz,
+                after=round(m.frequency_hz * STIFFNESS_LOSS_FREQUENCY_FACTOR, 6),
+                cause="loss of bending stiffness near midspan (modal stiffness -5.9 %, frequency -3 %)",
+            )
+        )
     if DAMPING_INCREASE_AT < end:
         m = modes[DAMPING_INCREASE_MODE]
-        shifts.append(dict(
-            subject=m.name, indicator="mode_damping", direction="up", sign=1,
-            date=DAMPING_INCREASE_AT.date().isoformat(), at=_iso(DAMPING_INCREASE_AT),
-            before=m.damping, after=DAMPING_AFTER,
-            cause="added friction damping in the torsion mode (damping ratio 1.0 % -> 1.8 %)"))
+        shifts.append(
+            dict(
+                subject=m.name,
+                indicator="mode_damping",
+                direction="up",
+                sign=1,
+                date=DAMPING_INCREASE_AT.date().isoformat(),
+                at=_iso(DAMPING_INCREASE_AT),
+                before=m.damping,
+                after=DAMPING_AFTER,
+                cause="added friction damping in the torsion mode (damping ratio 1.0 % -> 1.8 %)",
+            )
+        )
     if LAG_CHANGE_AT < end:
-        shifts.append(dict(
-            subject="footing_n:footing_s", indicator="lag_s", direction="up", sign=1,
-            date=LAG_CHANGE_AT.date().isoformat(), at=_iso(LAG_CHANGE_AT),
-            before=FOOTING_DELAY_S, after=FOOTING_DELAY_AFTER_S,
-            cause="longer ground transmission path to the south footing (delay 60 ms -> 90 ms)"))
+        shifts.append(
+            dict(
+                subject="footing_n:footing_s",
+                indicator="lag_s",
+                direction="up",
+                sign=1,
+                date=LAG_CHANGE_AT.date().isoformat(),
+                at=_iso(LAG_CHANGE_AT),
+                before=FOOTING_DELAY_S,
+                after=FOOTING_DELAY_AFTER_S,
+                cause="longer ground transmission path to the south footing (delay 60 ms -> 90 ms)",
+            )
+        )
     rejects = []
     dead = [s for s in starts if s.date() == DEAD_DAY]
     if dead:
-        rejects.append(dict(reason="flat_channel", subject=DEAD_CHANNEL, date=DEAD_DAY.isoformat(),
-                            source=None, windows=len(dead),
-                            cause="sensor output stuck at a constant value for one day"))
+        rejects.append(
+            dict(
+                reason="flat_channel",
+                subject=DEAD_CHANNEL,
+                date=DEAD_DAY.isoformat(),
+                source=None,
+                windows=len(dead),
+                cause="sensor output stuck at a constant value for one day",
+            )
+        )
     corrupt = _first_record_at_or_after(starts, CORRUPT_FILE_AT)
     if corrupt is not None:
-        rejects.append(dict(reason="unreadable_file", subject="*", date=corrupt.date().isoformat(),
-                            source=record_relative_path(corrupt), windows=1,
-                            cause="file truncated: the Parquet footer is missing"))
+        rejects.append(
+            dict(
+                reason="unreadable_file",
+                subject="*",
+                date=corrupt.date().isoformat(),
+                source=record_relative_path(corrupt),
+                windows=1,
+                cause="file truncated: the Parquet footer is missing",
+            )
+        )
     renamed = _first_record_at_or_after(starts, RENAMED_TIME_COLUMN_AT)
     if renamed is not None:
-        rejects.append(dict(reason="missing_time_column", subject=TIME_COLUMN, date=renamed.date().isoformat(),
-                            source=record_relative_path(renamed), windows=1,
-                            cause=f"time column renamed to {RENAMED_TIME_COLUMN!r}"))
-    return dict(asset=ASSET, days=days, every_hours=every_hours, records=len(starts),
-                first_record=_iso(starts[0]), last_record=_iso(starts[-1]),
-                baseline=dict(start=BASELINE_START.isoformat(), end=BASELINE_END.isoformat()),
-                monitored=["mode_freq_hz", "mode_damping", "lag_s"],
-                shifts=shifts, rejects=rejects)
+        rejects.append(
+            dict(
+                reason="missing_time_column",
+                subject=TIME_COLUMN,
+                date=renamed.date().isoformat(),
+                source=record_relative_path(renamed),
+                windows=1,
+                cause=f"time column renamed to {RENAMED_TIME_COLUMN!r}",
+            )
+        )
+    return dict(
+        asset=ASSET,
+        days=days,
+        every_hours=every_hours,
+        records=len(starts),
+        first_record=_iso(starts[0]),
+        last_record=_iso(starts[-1]),
+        baseline=dict(start=BASELINE_START.isoformat(), end=BASELINE_END.isoformat()),
+        monitored=["mode_freq_hz", "mode_damping", "lag_s"],
+        shifts=shifts,
+        rejects=rejects,
+    )
 
 
 def _schema(time_column: str = TIME_COLUMN) -> pa.Schema:
@@ -511,12 +572,12 @@ def _schema(time_column: str = TIME_COLUMN) -> pa.Schema:
     for name in VIBRATION_CHANNELS:
         fields.append(pa.field(name, pa.float32(), metadata={"unit": ACCELERATION_UNIT}))
     fields.append(pa.field(TEMPERATURE_CHANNEL, pa.float32(), metadata={"unit": TEMPERATURE_UNIT}))
-    return pa.schema(fields, metadata={"source": "corrtransforms demo generator (invented data)",
-                                       "asset": ASSET, "seed": str(SEED)})
+    return pa.schema(
+        fields, metadata={"source": "corrtransforms demo generator (invented data)", "asset": ASSET, "seed": str(SEED)}
+    )
 
 
-def record_table(start: _dt.datetime, time_column: str = TIME_COLUMN,
-                 dead_channel: Optional[str] = None) -> pa.Table:
+def record_table(start: _dt.datetime, time_column: str = TIME_COLUMN, dead_channel: Optional[str] = None) -> pa.Table:
     """One record as a wide Arrow table (time + float32 channels), faults applied as asked."""
     channels = simulate_record(start)
     if dead_channel is not None:
@@ -551,8 +612,13 @@ def _clear_previous(out_dir: str) -> int:
     return removed
 
 
-def write_archive(out_dir: str, days: int = DEFAULT_DAYS, every_hours: int = DEFAULT_EVERY_HOURS,
-                  progress=None, dates: Optional[Sequence[_dt.date]] = None) -> Dict:
+def write_archive(
+    out_dir: str,
+    days: int = DEFAULT_DAYS,
+    every_hours: int = DEFAULT_EVERY_HOURS,
+    progress=None,
+    dates: Optional[Sequence[_dt.date]] = None,
+) -> Dict:
     """Write the demo archive under ``out_dir`` and return :func:`expected_changes`.
 
     Files this generator wrote earlier under ``out_dir`` are removed first, so a shorter rerun
@@ -572,14 +638,16 @@ def write_archive(out_dir: str, days: int = DEFAULT_DAYS, every_hours: int = DEF
         table = record_table(
             start,
             time_column=RENAMED_TIME_COLUMN if start == renamed else TIME_COLUMN,
-            dead_channel=DEAD_CHANNEL if start.date() == DEAD_DAY else None)
-        pq.write_table(table, path, compression="zstd", row_group_size=len(table) // 2,
-                       use_dictionary=False, write_statistics=True)
+            dead_channel=DEAD_CHANNEL if start.date() == DEAD_DAY else None,
+        )
+        pq.write_table(
+            table, path, compression="zstd", row_group_size=len(table) // 2, use_dictionary=False, write_statistics=True
+        )
         if start == corrupt:
             with open(path, "rb") as handle:
                 data = handle.read()
             with open(path, "wb") as handle:
-                handle.write(data[:int(len(data) * CORRUPT_KEEP_FRACTION)])
+                handle.write(data[: int(len(data) * CORRUPT_KEEP_FRACTION)])
         if progress is not None and (i + 1) % 50 == 0:
             progress(f"{i + 1}/{len(starts)} records written")
     return expected_changes(days, every_hours)
@@ -616,27 +684,38 @@ def write_config(config_path: str, archive_dir: str) -> str:
 
 def main(argv: Optional[Sequence[str]] = None) -> int:
     parser = argparse.ArgumentParser(
-        prog="python -m demo_data.generate",
-        description="Write the invented footbridge demo archive (deterministic).")
-    parser.add_argument("--out", default=os.path.join(os.path.dirname(os.path.abspath(__file__)), "archive"),
-                        help="archive folder to write (default: demo_data/archive)")
-    parser.add_argument("--days", type=int, default=DEFAULT_DAYS,
-                        help=f"days of records from {START.date()} (default {DEFAULT_DAYS})")
-    parser.add_argument("--every-hours", type=int, default=DEFAULT_EVERY_HOURS,
-                        help=f"one 10-minute record every H hours (default {DEFAULT_EVERY_HOURS})")
-    parser.add_argument("--expected-out", default=None,
-                        help="also write the expected changes of this run as JSON to this file")
-    parser.add_argument("--config-out", default=None,
-                        help="also write the demo configuration to this file, naming the archive "
-                             "written by this run (for an installed package, whose footbridge.toml "
-                             "names demo_data/archive beside itself)")
+        prog="python -m demo_data.generate", description="Write the invented footbridge demo archive (deterministic)."
+    )
+    parser.add_argument(
+        "--out",
+        default=os.path.join(os.path.dirname(os.path.abspath(__file__)), "archive"),
+        help="archive folder to write (default: demo_data/archive)",
+    )
+    parser.add_argument(
+        "--days", type=int, default=DEFAULT_DAYS, help=f"days of records from {START.date()} (default {DEFAULT_DAYS})"
+    )
+    parser.add_argument(
+        "--every-hours",
+        type=int,
+        default=DEFAULT_EVERY_HOURS,
+        help=f"one 10-minute record every H hours (default {DEFAULT_EVERY_HOURS})",
+    )
+    parser.add_argument(
+        "--expected-out", default=None, help="also write the expected changes of this run as JSON to this file"
+    )
+    parser.add_argument(
+        "--config-out",
+        default=None,
+        help="also write the demo configuration to this file, naming the archive "
+        "written by this run (for an installed package, whose footbridge.toml "
+        "names demo_data/archive beside itself)",
+    )
     args = parser.parse_args(argv)
     try:
         record_starts(args.days, args.every_hours)
     except ValueError as err:
         parser.error(str(err))
-    expected = write_archive(args.out, args.days, args.every_hours,
-                             progress=lambda text: print(text, file=sys.stderr))
+    expected = write_archive(args.out, args.days, args.every_hours, progress=lambda text: print(text, file=sys.stderr))
     if args.expected_out:
         with open(args.expected_out, "w", encoding="utf-8") as handle:
             json.dump(expected, handle, indent=2)
@@ -644,8 +723,10 @@ def main(argv: Optional[Sequence[str]] = None) -> int:
     if args.config_out:
         write_config(args.config_out, args.out)
         print(f"wrote the configuration {args.config_out}")
-    print(f"wrote {expected['records']} records ({expected['first_record']} .. {expected['last_record']}) "
-          f"to {args.out}; injected: {len(expected['shifts'])} shifts, {len(expected['rejects'])} broken inputs")
+    print(
+        f"wrote {expected['records']} records ({expected['first_record']} .. {expected['last_record']}) "
+        f"to {args.out}; injected: {len(expected['shifts'])} shifts, {len(expected['rejects'])} broken inputs"
+    )
     return 0
 
 

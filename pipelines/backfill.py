@@ -6,6 +6,7 @@
 The checkout's spelling of the installed command ``corrtransforms-backfill``
 (:mod:`corrtransforms.launch.backfill`).
 """
+
 from corrtransforms.launch.backfill import cli, main
 from corrtransforms.launch.common import load_job_config
 

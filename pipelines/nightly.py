@@ -6,6 +6,7 @@
 The checkout's spelling of the installed command ``corrtransforms-nightly``
 (:mod:`corrtransforms.launch.nightly`, which explains the exit statuses).
 """
+
 from corrtransforms.launch.nightly import MISSING_STATE, cli, main, yesterday
 
 __all__ = ["MISSING_STATE", "main", "yesterday"]

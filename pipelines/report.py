@@ -5,6 +5,7 @@
 The checkout's spelling of the installed command ``corrtransforms-report``
 (:mod:`corrtransforms.launch.report`); the report itself is :mod:`corrtransforms.report`.
 """
+
 from corrtransforms.launch.report import cli, main
 from corrtransforms.report import episodes_from_shifts, plot_file_name
 

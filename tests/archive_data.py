@@ -4,6 +4,7 @@ Channels: "a" is a first-order autoregressive process, "b" is "a" delayed by ``d
 independent noise (so the a:b cross-correlation peaks at +delay / rate seconds), and
 "temperature" is a slow covariate. All data are invented.
 """
+
 from __future__ import annotations
 
 import datetime as dt
@@ -21,8 +22,15 @@ US = 1_000_000
 T0 = int(dt.datetime(2024, 3, 4, tzinfo=dt.timezone.utc).timestamp()) * US
 
 
-def samples(seconds: float, rate: float, seed: int = 0, start_us: int = T0, delay: int = 3,
-            channels: Sequence[str] = ("a", "b"), covariate: bool = True) -> Dict[str, np.ndarray]:
+def samples(
+    seconds: float,
+    rate: float,
+    seed: int = 0,
+    start_us: int = T0,
+    delay: int = 3,
+    channels: Sequence[str] = ("a", "b"),
+    covariate: bool = True,
+) -> Dict[str, np.ndarray]:
     """Columns of a wide record: "time" (int64 us UTC) and one float64 array per channel."""
     rng = np.random.default_rng(seed)
     n = int(round(seconds * rate))
@@ -54,12 +62,24 @@ def long_table(columns: Dict[str, np.ndarray], tz: Optional[str] = "UTC") -> pa.
     times = np.repeat(columns["time"], len(names))
     channel = np.tile(np.array(names, dtype=object), n)
     value = np.column_stack([columns[k] for k in names]).reshape(-1)
-    return pa.table({"time": pa.array(times, pa.int64()).cast(pa.timestamp("us", tz)),
-                     "channel": pa.array(channel, pa.string()), "value": value})
+    return pa.table(
+        {
+            "time": pa.array(times, pa.int64()).cast(pa.timestamp("us", tz)),
+            "channel": pa.array(channel, pa.string()),
+            "value": value,
+        }
+    )
 
 
-def write_files(folder: str, table: pa.Table, file_seconds: float, row_group_size: int,
-                hive: bool = False, prefix: str = "part", **kwargs) -> list:
+def write_files(
+    folder: str,
+    table: pa.Table,
+    file_seconds: float,
+    row_group_size: int,
+    hive: bool = False,
+    prefix: str = "part",
+    **kwargs,
+) -> list:
     """Split ``table`` by time into files of ``file_seconds`` each; returns the paths."""
     os.makedirs(folder, exist_ok=True)
     times = table.column("time").cast(pa.int64()).to_numpy()
@@ -81,9 +101,19 @@ def write_files(folder: str, table: pa.Table, file_seconds: float, row_group_siz
     return paths
 
 
-def make_config(archive: str, rate: float = 10.0, layout: str = "wide", length_s: float = 60.0,
-                max_lag_s: float = 2.0, names=("a", "b"), covariates=("temperature",),
-                timezone: str = "UTC", task_bytes: int = 2**16, extra: Optional[dict] = None, **windows):
+def make_config(
+    archive: str,
+    rate: float = 10.0,
+    layout: str = "wide",
+    length_s: float = 60.0,
+    max_lag_s: float = 2.0,
+    names=("a", "b"),
+    covariates=("temperature",),
+    timezone: str = "UTC",
+    task_bytes: int = 2**16,
+    extra: Optional[dict] = None,
+    **windows,
+):
     raw = {
         "asset": {"name": "test-asset"},
         "archive": {"path": archive, "layout": layout, "sample_rate_hz": rate, "timezone": timezone},
@@ -124,16 +154,30 @@ def bad_wide_archive(folder: str, rate: float = 10.0, seed: int = 7) -> Dict[str
     return {
         "computed": sorted(set(range(22)) - {2, 4, 13}) + [40],
         "rejected": {2: "insufficient_coverage", 4: "conflicting_duplicates", 13: "sample_rate_mismatch"},
-        "findings": {1: ["nonfinite_values"], 3: ["duplicate_timestamps"], 5: ["unordered_timestamps"],
-                     6: ["off_grid_timestamps"], 7: ["flat_channel"], 8: ["clipped_channel"],
-                     10: ["overlapping_files"], 11: ["overlapping_files"], 15: ["jitter_beyond_tolerance"],
-                     16: ["insufficient_coverage"], 17: ["insufficient_coverage"], 40: ["insufficient_coverage"]},
-        "file_findings": {"wide-empty.parquet": "empty_file", "wide-corrupt.parquet": "unreadable_file",
-                          "wide-renamed-time.parquet": "missing_time_column",
-                          "wide-no-rows.parquet": "no_rows", "wide-string-time.parquet": "time_column_not_timestamp",
-                          "wide-03b-no-b.parquet": "missing_channel_column",
-                          "wide-text-b.parquet": "non_numeric_channel",
-                          "wide-04.parquet": "statistics_missing"},
+        "findings": {
+            1: ["nonfinite_values"],
+            3: ["duplicate_timestamps"],
+            5: ["unordered_timestamps"],
+            6: ["off_grid_timestamps"],
+            7: ["flat_channel"],
+            8: ["clipped_channel"],
+            10: ["overlapping_files"],
+            11: ["overlapping_files"],
+            15: ["jitter_beyond_tolerance"],
+            16: ["insufficient_coverage"],
+            17: ["insufficient_coverage"],
+            40: ["insufficient_coverage"],
+        },
+        "file_findings": {
+            "wide-empty.parquet": "empty_file",
+            "wide-corrupt.parquet": "unreadable_file",
+            "wide-renamed-time.parquet": "missing_time_column",
+            "wide-no-rows.parquet": "no_rows",
+            "wide-string-time.parquet": "time_column_not_timestamp",
+            "wide-03b-no-b.parquet": "missing_channel_column",
+            "wide-text-b.parquet": "non_numeric_channel",
+            "wide-04.parquet": "statistics_missing",
+        },
         "columns": cols,
     }
 
@@ -187,8 +231,12 @@ def _damage_rows(cols: Dict[str, np.ndarray], rng) -> Dict[str, np.ndarray]:
     r13 = window_rows(table, 13)
     lo = T0 + 13 * 60 * US
     t12 = lo + np.round(np.arange(int(60 * 12)) * US / 12).astype(np.int64)
-    extra = {"time": t12, "a": rng.standard_normal(t12.size), "b": rng.standard_normal(t12.size),
-             "temperature": np.full(t12.size, 20.5)}
+    extra = {
+        "time": t12,
+        "a": rng.standard_normal(t12.size),
+        "b": rng.standard_normal(t12.size),
+        "temperature": np.full(t12.size, 20.5),
+    }
     before = np.flatnonzero(~r13 & (table["time"] < lo))
     after = np.flatnonzero(~r13 & (table["time"] >= lo))
     # window 5's unordered stretch stays as it is: rows keep their order, window 13 is swapped
@@ -215,8 +263,11 @@ def _write_bad_wide_files(folder: str, table: Dict[str, np.ndarray], rng, rate: 
     t3 = part3.column("time").cast(pa.int64()).to_numpy()
     in_1617 = (t3 >= T0 + 16 * 60 * US) & (t3 < T0 + 18 * 60 * US)
     pq.write_table(part3.filter(pa.array(~in_1617)), os.path.join(folder, "wide-03.parquet"), row_group_size=400)
-    pq.write_table(part3.filter(pa.array(in_1617)).drop_columns(["b"]),
-                   os.path.join(folder, "wide-03b-no-b.parquet"), row_group_size=400)
+    pq.write_table(
+        part3.filter(pa.array(in_1617)).drop_columns(["b"]),
+        os.path.join(folder, "wide-03b-no-b.parquet"),
+        row_group_size=400,
+    )
     # windows 10-11 also in a second file (identical samples)
     both = full.filter(pa.array((times >= T0 + 10 * 60 * US) & (times < T0 + 12 * 60 * US)))
     pq.write_table(both, os.path.join(folder, "wide-overlap.parquet"), row_group_size=400)
@@ -225,7 +276,8 @@ def _write_bad_wide_files(folder: str, table: Dict[str, np.ndarray], rng, rate: 
     with open(os.path.join(folder, "wide-corrupt.parquet"), "wb") as handle:
         handle.write(rng.bytes(5000))
     renamed = wide_table(samples(60, rate, seed=1, start_us=T0 + 30 * 60 * US)).rename_columns(
-        ["timestamp", "a", "b", "temperature"])
+        ["timestamp", "a", "b", "temperature"]
+    )
     pq.write_table(renamed, os.path.join(folder, "wide-renamed-time.parquet"))
     text = wide_table(samples(60, rate, seed=2, start_us=T0 + 40 * 60 * US))
     text = text.set_column(2, "b", pa.array([f"{v:.3f}" for v in text.column("b").to_pylist()]))
@@ -235,16 +287,24 @@ def _write_bad_wide_files(folder: str, table: Dict[str, np.ndarray], rng, rate: 
     pq.write_table(string_time, os.path.join(folder, "wide-string-time.parquet"))
 
 
-def duty_cycled_records(n_records: int = 4, rate: float = 25.0, record_s: float = 600.0,
-                        first_offset_s: float = 180.0, every_s: float = 7200.0) -> list:
+def duty_cycled_records(
+    n_records: int = 4,
+    rate: float = 25.0,
+    record_s: float = 600.0,
+    first_offset_s: float = 180.0,
+    every_s: float = 7200.0,
+) -> list:
     """Columns of duty-cycled records: ``record_s`` of samples starting ``first_offset_s`` after
     T0 and then every ``every_s`` (by default 10-minute records at hh:03:00 every 2 hours)."""
-    return [samples(record_s, rate, seed=100 + r, start_us=T0 + int((first_offset_s + r * every_s) * US))
-            for r in range(n_records)]
+    return [
+        samples(record_s, rate, seed=100 + r, start_us=T0 + int((first_offset_s + r * every_s) * US))
+        for r in range(n_records)
+    ]
 
 
-def write_duty_cycled_archive(folder: str, records: list, one_file: bool = False,
-                              row_group_size: int = 5000, layout: str = "wide") -> list:
+def write_duty_cycled_archive(
+    folder: str, records: list, one_file: bool = False, row_group_size: int = 5000, layout: str = "wide"
+) -> list:
     """One file per record (or all records in one file); returns the paths."""
     os.makedirs(folder, exist_ok=True)
     tables = [(wide_table if layout == "wide" else long_table)(r) for r in records]

@@ -3,6 +3,7 @@
 Days 2025-05-01 and 05-02 are the baseline, 05-13 has the stuck channel and 05-19 the truncated
 file (see demo_data/generate.py); one 10-minute record every 12 hours, so 8 records in all.
 """
+
 from __future__ import annotations
 
 import datetime as dt
@@ -33,9 +34,11 @@ def small_config_text(archive_path: str = "archive") -> str:
     """The demo configuration with a two-day baseline (3 windows suffice) and ``archive_path``."""
     with open(DEMO_CONFIG, encoding="utf-8") as handle:
         text = handle.read()
-    replacements = [(r'(?m)^path = "archive"', f'path = "{archive_path}"'),
-                    (r"(?m)^end = 2025-05-10", "end = 2025-05-02"),
-                    (r"(?m)^min_windows = 30", "min_windows = 3")]
+    replacements = [
+        (r'(?m)^path = "archive"', f'path = "{archive_path}"'),
+        (r"(?m)^end = 2025-05-10", "end = 2025-05-02"),
+        (r"(?m)^min_windows = 30", "min_windows = 3"),
+    ]
     for pattern, new in replacements:
         text, count = re.subn(pattern, new, text)
         assert count == 1, f"the demo configuration changed: {pattern!r} not found once"

@@ -7,13 +7,14 @@ B^T expm(A^T s) ds``, both from one matrix exponential (Van Loan, "Computing int
 the matrix exponential", IEEE Trans. Automatic Control 23(3), 395-404, 1978, Theorem 1). The
 sampled process then has exactly the continuous process's correlation at the sample lags.
 """
+
 from __future__ import annotations
 
 import numpy as np
 import scipy.linalg
 
-from corrtransforms.numerics.correlation import correlate_block
 from corrtransforms.numerics.bartlett import bartlett_stderr
+from corrtransforms.numerics.correlation import correlate_block
 
 
 def sdof_correlation(lags_s, freq_hz, damping):
@@ -25,9 +26,8 @@ def sdof_correlation(lags_s, freq_hz, damping):
     """
     tau = np.abs(np.asarray(lags_s, dtype=float))
     wn = 2 * np.pi * freq_hz
-    wd = wn * np.sqrt(1 - damping ** 2)
-    return np.exp(-damping * wn * tau) * (np.cos(wd * tau)
-                                          + damping / np.sqrt(1 - damping ** 2) * np.sin(wd * tau))
+    wd = wn * np.sqrt(1 - damping**2)
+    return np.exp(-damping * wn * tau) * (np.cos(wd * tau) + damping / np.sqrt(1 - damping**2) * np.sin(wd * tau))
 
 
 def modal_state_space(freqs_hz, dampings, rotation_rad=0.0):
@@ -45,7 +45,7 @@ def modal_state_space(freqs_hz, dampings, rotation_rad=0.0):
         phi = np.array([[c, -s], [s, c]])
     else:
         phi = np.eye(n)
-    K = phi @ np.diag(wn ** 2) @ phi.T
+    K = phi @ np.diag(wn**2) @ phi.T
     C = phi @ np.diag(2 * zeta * wn) @ phi.T
     A = np.block([[np.zeros((n, n)), np.eye(n)], [-K, -C]])
     B = np.vstack([np.zeros((n, n)), np.eye(n)])
@@ -85,7 +85,7 @@ def simulate_ou(tau_c, fs, n_samples, rng):
     import scipy.signal
 
     phi = np.exp(-1.0 / (fs * tau_c))
-    e = rng.standard_normal(n_samples) * np.sqrt(1 - phi ** 2)
+    e = rng.standard_normal(n_samples) * np.sqrt(1 - phi**2)
     e[0] = rng.standard_normal()  # stationary start
     return scipy.signal.lfilter([1.0], [1.0, -phi], e)
 

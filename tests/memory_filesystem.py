@@ -10,6 +10,7 @@ can show which paths went through Beam's FileSystems.
 Importing this module registers the scheme (Beam finds FileSystem subclasses by scheme). Objects
 live in this process: use it with an in-process runner.
 """
+
 from __future__ import annotations
 
 import io
@@ -17,7 +18,7 @@ import threading
 import time
 from typing import Dict, List, Tuple
 
-from apache_beam.io.filesystem import (BeamIOError, CompressedFile, CompressionTypes, FileMetadata, FileSystem)
+from apache_beam.io.filesystem import BeamIOError, CompressedFile, CompressionTypes, FileMetadata, FileSystem
 from apache_beam.io.filesystemio import Downloader, DownloaderStream, Uploader, UploaderStream
 
 SCHEME = "memfs"
@@ -119,7 +120,7 @@ class MemoryFileSystem(FileSystem):
     def split(self, path):
         if not path.startswith(PREFIX):
             raise ValueError(f"not a {PREFIX} path: {path!r}")
-        head, _, tail = path[len(PREFIX):].rpartition("/")
+        head, _, tail = path[len(PREFIX) :].rpartition("/")
         return PREFIX + head, tail
 
     def mkdirs(self, path):

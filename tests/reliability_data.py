@@ -4,6 +4,7 @@ The clean archive: 10 minutes at 10 Hz of the invented channels "a", "b" and the
 "temperature" (see :mod:`tests.archive_data`), five files of 2 minutes (windows 2i and 2i+1 in
 file i), row groups of 400 rows (40 s). With 60-s windows it plans exactly 10 windows.
 """
+
 from __future__ import annotations
 
 import math
@@ -37,8 +38,15 @@ def write_clean_archive(folder: str, columns=None, **parquet_options) -> List[st
     return write_files(folder, wide_table(columns), FILE_SECONDS, ROW_GROUP, **parquet_options)
 
 
-def write_config(path: str, archive: str, name: str = "rel-asset", layout: str = "wide",
-                 names: str = '["a", "b"]', covariates: str = '["temperature"]', extra: str = "") -> str:
+def write_config(
+    path: str,
+    archive: str,
+    name: str = "rel-asset",
+    layout: str = "wide",
+    names: str = '["a", "b"]',
+    covariates: str = '["temperature"]',
+    extra: str = "",
+) -> str:
     text = f"""
     [asset]
     name = "{name}"
@@ -117,8 +125,11 @@ def reject_rows(output: str) -> List[dict]:
 
 
 def whole_window_rejects(rejects: Iterable[dict]) -> Dict[int, str]:
-    return {window_index(r["window_start"]): r["reason"] for r in rejects
-            if r["subject"] == "*" and r["action"] == "rejected" and r["window_start"] is not None}
+    return {
+        window_index(r["window_start"]): r["reason"]
+        for r in rejects
+        if r["subject"] == "*" and r["action"] == "rejected" and r["window_start"] is not None
+    }
 
 
 def windows_with_findings(rejects: Iterable[dict]) -> Dict[int, set]:

@@ -4,6 +4,7 @@ A structure's modal frequency of 2 Hz falls linearly with temperature so that th
 range of the record moves it by 3 % (peak to peak: a seasonal warming plus a daily cycle); at a
 known local midnight the frequency drops by 1.5 % (a stiffness loss). Windows every 2 hours.
 """
+
 import datetime as dt
 import math
 import zoneinfo
@@ -35,9 +36,17 @@ def make_config(compensate="all", baseline=None, **shifts):
     return parse_config(raw)
 
 
-def seasonal_series(seed: int, days: int = 50, step_day: int = 40, hours_per_window: int = 2,
-                    swing: float = 0.03, step: float = -0.015, process_rel: float = 0.0025,
-                    stderr_rel: float = 0.002, warming_from_day: int = 14):
+def seasonal_series(
+    seed: int,
+    days: int = 50,
+    step_day: int = 40,
+    hours_per_window: int = 2,
+    swing: float = 0.03,
+    step: float = -0.015,
+    process_rel: float = 0.0025,
+    stderr_rel: float = 0.002,
+    warming_from_day: int = 14,
+):
     """Times (us), values, stderr, temperature and the step time of the invented series.
 
     Temperature: a cool fortnight (daily cycle +/- 5 degC and slow weather of ~1.5 degC), then a
@@ -53,10 +62,9 @@ def seasonal_series(seed: int, days: int = 50, step_day: int = 40, hours_per_win
     day = (times - start) / (24 * HOUR_US)
     weather = np.zeros(n)
     for i in range(1, n):  # AR(1) with a correlation time of about two days
-        weather[i] = 0.96 * weather[i - 1] + rng.normal(0, 1.5 * np.sqrt(1 - 0.96 ** 2))
+        weather[i] = 0.96 * weather[i - 1] + rng.normal(0, 1.5 * np.sqrt(1 - 0.96**2))
     warming = 12.0 * np.clip((day - warming_from_day) / (days - warming_from_day), 0, 1)
-    temperature = (4.0 + warming + 5.0 * np.sin(2 * np.pi * (day - 0.375)) + weather
-                   + rng.normal(0, 0.3, n))
+    temperature = 4.0 + warming + 5.0 * np.sin(2 * np.pi * (day - 0.375)) + weather + rng.normal(0, 0.3, n)
     slope = -swing * FREQUENCY_HZ / (temperature.max() - temperature.min())
     healthy = FREQUENCY_HZ + slope * (temperature - temperature.mean())
     step_us = local_midnight_us(FIRST_DAY + dt.timedelta(days=step_day))
@@ -66,14 +74,26 @@ def seasonal_series(seed: int, days: int = 50, step_day: int = 40, hours_per_win
     return times, values, stderr, temperature, step_us
 
 
-def indicator_rows(times, values, stderr, temperature, subject="deck", indicator="mode_freq_hz", unit="Hz",
-                   quality=None):
+def indicator_rows(
+    times, values, stderr, temperature, subject="deck", indicator="mode_freq_hz", unit="Hz", quality=None
+):
     rows = []
     for i, t in enumerate(times):
-        rows.append(IndicatorRow(int(t), subject, indicator, float(values[i]), float(stderr[i]), unit,
-                                 "ok" if quality is None else quality[i]))
-    covariates = [IndicatorRow(int(t), "temperature", "covariate_mean", float(temperature[i]), 0.01, "degC", "ok")
-                  for i, t in enumerate(times)]
+        rows.append(
+            IndicatorRow(
+                int(t),
+                subject,
+                indicator,
+                float(values[i]),
+                float(stderr[i]),
+                unit,
+                "ok" if quality is None else quality[i],
+            )
+        )
+    covariates = [
+        IndicatorRow(int(t), "temperature", "covariate_mean", float(temperature[i]), 0.01, "degC", "ok")
+        for i, t in enumerate(times)
+    ]
     return rows, covariates
 
 
@@ -121,6 +141,7 @@ def residual_chart_errors(values: np.ndarray, baseline: int) -> np.ndarray:
     rho, pairs = sd.robust_lag_one_correlation(resid[:, :baseline] / scale[:, None])
     phi = sd.latent_ar1_coefficient(rho, scale, scale)
     errors, _, _ = sd.ar1_prediction_errors(resid, 0.0, 1, phi, scale)
-    ratio = 1.482602218505602 * np.median(np.abs(errors[:, :baseline] - np.median(errors[:, :baseline], axis=1,
-                                                                                    keepdims=True)), axis=1)
+    ratio = 1.482602218505602 * np.median(
+        np.abs(errors[:, :baseline] - np.median(errors[:, :baseline], axis=1, keepdims=True)), axis=1
+    )
     return errors[:, baseline:] / ratio[:, None]

@@ -1,4 +1,5 @@
 """Planning from Parquet footers: windows, read tasks, time zones and file-level rejects."""
+
 import datetime as dt
 import os
 import pickle
@@ -9,11 +10,27 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from corrtransforms.stages.plan import (find_records, list_local_archive, missing_channels, plan_archive, read_footer,
-                                       window_grid)
+from corrtransforms.stages.plan import (
+    find_records,
+    list_local_archive,
+    missing_channels,
+    plan_archive,
+    read_footer,
+    window_grid,
+)
 from corrtransforms.timeutil import local_to_utc_us
-from tests.archive_data import (T0, US, bad_wide_archive, duty_cycled_records, long_table, make_config, samples,
-                                wide_table, write_duty_cycled_archive, write_files)
+from tests.archive_data import (
+    T0,
+    US,
+    bad_wide_archive,
+    duty_cycled_records,
+    long_table,
+    make_config,
+    samples,
+    wide_table,
+    write_duty_cycled_archive,
+    write_files,
+)
 
 
 def _windows(plan):
@@ -97,7 +114,8 @@ def test_statistics_missing_falls_back_to_reading_time(tmp_path):
     assert [f.reason for f in findings] == ["statistics_missing"] and findings[0].action == "repaired"
     times = table.column("time").cast(pa.int64()).to_numpy()
     assert [(rg.start_us, rg.end_us) for rg in footer.row_groups] == [
-        (int(times[i]), int(times[min(i + 699, len(times) - 1)])) for i in range(0, len(times), 700)]
+        (int(times[i]), int(times[min(i + 699, len(times) - 1)])) for i in range(0, len(times), 700)
+    ]
 
 
 def test_local_to_utc_matches_zoneinfo_across_daylight_saving():
@@ -125,8 +143,7 @@ def test_day_range_in_the_asset_time_zone_and_naive_times(tmp_path):
     day = dt.date(2024, 3, 4)
     only = plan_archive(list_local_archive(folder), config, start=day, end=day)
     berlin = zoneinfo.ZoneInfo("Europe/Berlin")
-    expected = [s for s in everything
-                if dt.datetime.fromtimestamp(s / US, berlin).date() == day]  # reference: zoneinfo
+    expected = [s for s in everything if dt.datetime.fromtimestamp(s / US, berlin).date() == day]  # reference: zoneinfo
     assert _windows(only) == expected == [T0 - 60 * 60 * US + k * 600 * US for k in range(3)]
     assert only.days == ("2024-03-04",)
 
@@ -138,8 +155,9 @@ def test_archive_time_zone_reads_naive_times_and_asset_time_zone_sets_the_days(t
     naive = dict(cols, time=cols["time"] + 3600 * US)
     folder = str(tmp_path / "tz")
     write_files(folder, wide_table(naive, tz=None), 3600, 1000, hive=True)
-    utc_days = make_config(folder, rate=1.0, length_s=600.0, max_lag_s=10.0, timezone="Europe/Berlin",
-                           extra={"asset": {"timezone": "UTC"}})
+    utc_days = make_config(
+        folder, rate=1.0, length_s=600.0, max_lag_s=10.0, timezone="Europe/Berlin", extra={"asset": {"timezone": "UTC"}}
+    )
     assert (utc_days.archive.timezone, utc_days.timezone, utc_days.notes) == ("Europe/Berlin", "UTC", ())
     plan = plan_archive(list_local_archive(folder), utc_days)
     # naive times still read as Berlin wall clock: the same UTC instants as with one zone
@@ -159,8 +177,9 @@ def test_long_layout_plans_like_wide(tmp_path):
     write_files(str(tmp_path / "w"), wide_table(cols), 200, 500)
     write_files(str(tmp_path / "l"), long_table(cols), 200, 1500)
     wide = plan_archive(list_local_archive(str(tmp_path / "w")), make_config(str(tmp_path / "w")))
-    long = plan_archive(list_local_archive(str(tmp_path / "l")), make_config(str(tmp_path / "l"), layout="long",
-                                                                               names=None))
+    long = plan_archive(
+        list_local_archive(str(tmp_path / "l")), make_config(str(tmp_path / "l"), layout="long", names=None)
+    )
     assert _windows(wide) == _windows(long)
     assert long.channels == ("a", "b")  # all channel values, minus the covariate, sorted per file
 
@@ -244,12 +263,16 @@ def test_missing_channels_names_configured_channels_no_footer_holds(tmp_path):
     cols = samples(120, 10.0, seed=5)
     write_files(str(tmp_path / "w"), wide_table(cols), 60, 300)
     # file 2 lacks b: b is still in one file, so only the misspelt channel and covariate are missing
-    pq.write_table(wide_table(samples(60, 10.0, seed=6, start_us=T0 + 200 * US)).drop_columns(["b"]),
-                   str(tmp_path / "w" / "no-b.parquet"))
+    pq.write_table(
+        wide_table(samples(60, 10.0, seed=6, start_us=T0 + 200 * US)).drop_columns(["b"]),
+        str(tmp_path / "w" / "no-b.parquet"),
+    )
     config = make_config(str(tmp_path / "w"), names=("a", "b", "acc9"), covariates=("temprature",))
     footers = _footers(str(tmp_path / "w"), config)
-    assert missing_channels(footers, config) == {"acc9": ("a", "b", "temperature"),
-                                                 "temprature": ("a", "b", "temperature")}
+    assert missing_channels(footers, config) == {
+        "acc9": ("a", "b", "temperature"),
+        "temprature": ("a", "b", "temperature"),
+    }
     assert missing_channels(footers, make_config(str(tmp_path / "w"))) == {}
     assert missing_channels([], config) == {}
     # long layout with channel values in the footers ([channels] names omitted): covariates checked

@@ -1,4 +1,5 @@
 """The backfill command end to end on tiny invented archives written to a temporary folder."""
+
 import json
 import logging
 import os
@@ -11,10 +12,10 @@ import pyarrow as pa
 import pyarrow.dataset as ds
 import pytest
 
-from corrtransforms.stages.plan import list_local_archive, plan_archive
 from corrtransforms.config import load_config
 from corrtransforms.stages.analyse import analyse_window
 from corrtransforms.stages.correlate import correlation_table
+from corrtransforms.stages.plan import list_local_archive, plan_archive
 from corrtransforms.stages.read import read_task
 from pipelines import backfill
 from tests.archive_data import T0, US, bad_wide_archive, long_table, samples, wide_table, write_files
@@ -62,9 +63,11 @@ def _in_memory(config):
 
 def _read(output, table):
     data = ds.dataset(os.path.join(output, table), partitioning="hive").to_table()
-    return data.sort_by([(c, "ascending") for c in ("window_start", "channel_a", "channel_b")]
-                        if table == "correlations" else [("window_start", "ascending"), ("subject", "ascending"),
-                                                         ("reason", "ascending")])
+    return data.sort_by(
+        [(c, "ascending") for c in ("window_start", "channel_a", "channel_b")]
+        if table == "correlations"
+        else [("window_start", "ascending"), ("subject", "ascending"), ("reason", "ascending")]
+    )
 
 
 def _assert_same_correlations(got: pa.Table, expected: pa.Table):
@@ -106,29 +109,42 @@ def test_backfill_accounts_for_every_window_and_equals_the_core(bad_run, caplog,
     rejects = _read(output, "rejects")
     computed = set(correlations.column("window_start").cast(pa.int64()).to_pylist())
     rows = rejects.to_pylist()
-    rejected = {r["window_start"] for r in rows if r["action"] == "rejected" and r["subject"] == "*"
-                and r["window_start"] is not None}
+    rejected = {
+        r["window_start"]
+        for r in rows
+        if r["action"] == "rejected" and r["subject"] == "*" and r["window_start"] is not None
+    }
     rejected_us = {int(t.timestamp() * US) for t in rejected}
     assert len(computed) + len(rejected_us) == plan.windows_planned and not computed & rejected_us
-    assert {(int(r["window_start"].timestamp() * US) - T0) // (60 * US): r["reason"] for r in rows
-            if r["subject"] == "*" and r["action"] == "rejected" and r["window_start"]} == expected["rejected"]
+    assert {
+        (int(r["window_start"].timestamp() * US) - T0) // (60 * US): r["reason"]
+        for r in rows
+        if r["subject"] == "*" and r["action"] == "rejected" and r["window_start"]
+    } == expected["rejected"]
     file_reasons = {os.path.basename(r["source"]): r["reason"] for r in rows if r["stage"] == "plan"}
     assert file_reasons == expected["file_findings"]
     assert set(rejects.column("date").to_pylist()) == {"2024-03-04"}
     # the clipped channel's rows carry the quality code
-    clipped = correlations.filter(pa.compute.equal(correlations.column("window_start"),
-                                                   pa.scalar(T0 + 8 * 60 * US, pa.timestamp("us", "UTC"))))
-    quality = {(a, b): q for a, b, q in zip(clipped.column("channel_a").to_pylist(),
-                                            clipped.column("channel_b").to_pylist(),
-                                            clipped.column("quality").to_pylist())}
+    clipped = correlations.filter(
+        pa.compute.equal(correlations.column("window_start"), pa.scalar(T0 + 8 * 60 * US, pa.timestamp("us", "UTC")))
+    )
+    quality = {
+        (a, b): q
+        for a, b, q in zip(
+            clipped.column("channel_a").to_pylist(),
+            clipped.column("channel_b").to_pylist(),
+            clipped.column("quality").to_pylist(),
+        )
+    }
     assert quality == {("a", "a"): "clipped", ("a", "b"): "clipped", ("b", "b"): "ok"}
 
 
 def test_multi_processing_gives_the_same_rows(bad_run):
     expected, config_path, output = bad_run
     other = output + "-mp"
-    backfill.main(["--config", config_path, "--output", other, "--direct_running_mode=multi_processing",
-                   "--direct_num_workers=2"])
+    backfill.main(
+        ["--config", config_path, "--output", other, "--direct_running_mode=multi_processing", "--direct_num_workers=2"]
+    )
     if not os.path.exists(os.path.join(output, "correlations")):
         backfill.main(["--config", config_path, "--output", output])
     _assert_same_correlations(_read(other, "correlations"), _read(output, "correlations"))
@@ -157,8 +173,9 @@ def test_output_reads_without_this_package(bad_run, tmp_path):
                           "imported": "corrtransforms" in sys.modules}}))
     """)
     env = {k: v for k, v in os.environ.items() if k != "PYTHONPATH"}
-    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, cwd=str(tmp_path),
-                          env=env, timeout=120)
+    done = subprocess.run(
+        [sys.executable, "-c", script], capture_output=True, text=True, cwd=str(tmp_path), env=env, timeout=120
+    )
     assert done.returncode == 0, done.stderr
     found = json.loads(done.stdout.strip().splitlines()[-1])
     correlations = _read(output, "correlations")
@@ -178,8 +195,9 @@ def test_long_layout_with_large_row_groups_equals_wide(tmp_path):
     backfill.main(["--config", wide_cfg, "--output", str(tmp_path / "out-wide")])
     counters = backfill.main(["--config", long_cfg, "--output", str(tmp_path / "out-long")])
     assert counters["windows_planned"] == counters["windows_computed"] == 10
-    _assert_same_correlations(_read(str(tmp_path / "out-long"), "correlations"),
-                              _read(str(tmp_path / "out-wide"), "correlations"))
+    _assert_same_correlations(
+        _read(str(tmp_path / "out-long"), "correlations"), _read(str(tmp_path / "out-wide"), "correlations")
+    )
 
 
 def test_rerunning_a_day_replaces_exactly_that_day(tmp_path):
@@ -227,8 +245,9 @@ def test_an_archive_path_without_files_stops_before_the_pipeline(tmp_path):
 def _command(*args, cwd=None):
     """One of the real commands from the checkout: (exit status, stdout, stderr)."""
     repo = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
-    done = subprocess.run([sys.executable, "-m", *args], capture_output=True, text=True, cwd=cwd or repo,
-                          timeout=600)  # a guard against a hang only: the machine's CPUs are shared
+    done = subprocess.run(
+        [sys.executable, "-m", *args], capture_output=True, text=True, cwd=cwd or repo, timeout=600
+    )  # a guard against a hang only: the machine's CPUs are shared
     return done.returncode, done.stdout, done.stderr
 
 
@@ -242,16 +261,33 @@ def test_flags_are_checked_and_help_lists_them(tmp_path):
     status, _, err = _command("pipelines.backfill", "--config", "x.toml", "--outptu", str(tmp_path))
     assert status == 1 and "unknown flag --outptu; did you mean --output?" in err
     # another command's flag is an error too, naming whose it is
-    status, _, err = _command("pipelines.backfill", "--config", "x.toml", "--output", str(tmp_path),
-                              "--date", "2024-03-04")
+    status, _, err = _command(
+        "pipelines.backfill", "--config", "x.toml", "--output", str(tmp_path), "--date", "2024-03-04"
+    )
     assert status == 1 and "--date is a flag of nightly, not of backfill" in err
     # Beam's runner flags pass (the run then stops at the missing configuration file: status 1)
-    status, _, err = _command("pipelines.backfill", "--config", str(tmp_path / "none.toml"), "--output",
-                              str(tmp_path), "--direct_num_workers=2", "--runner", "FnApiRunner")
+    status, _, err = _command(
+        "pipelines.backfill",
+        "--config",
+        str(tmp_path / "none.toml"),
+        "--output",
+        str(tmp_path),
+        "--direct_num_workers=2",
+        "--runner",
+        "FnApiRunner",
+    )
     assert status == 1 and "configuration error" in err and "unknown flag" not in err
     # the hyphenated spelling of a flag is an alias of its underscore form
-    status, _, err = _command("pipelines.nightly", "--config", str(tmp_path / "none.toml"), "--output",
-                              str(tmp_path), "--rebuild-state", "--run-id", "x")
+    status, _, err = _command(
+        "pipelines.nightly",
+        "--config",
+        str(tmp_path / "none.toml"),
+        "--output",
+        str(tmp_path),
+        "--rebuild-state",
+        "--run-id",
+        "x",
+    )
     assert status == 1 and "configuration error" in err and "unknown flag" not in err
 
 
@@ -264,8 +300,17 @@ def test_exit_statuses_of_unusable_runs(tmp_path):
     status, _, err = _command("pipelines.backfill", "--config", absent, "--output", str(tmp_path / "out-c"))
     assert status == 1 and "'c' is a column of no file in 2 files" in err
     assert "columns found: a, b, temperature" in err
-    status, _, err = _command("pipelines.backfill", "--config", good, "--output", str(tmp_path / "out-a"),
-                              "--start", "2030-01-01", "--end", "2030-01-02")
+    status, _, err = _command(
+        "pipelines.backfill",
+        "--config",
+        good,
+        "--output",
+        str(tmp_path / "out-a"),
+        "--start",
+        "2030-01-01",
+        "--end",
+        "2030-01-02",
+    )
     assert status == 3 and "no data in 2030-01-01 to 2030-01-02" in err
     # the last sample: T0 + 599.9 s (600 s at 10 Hz from T0)
     assert "the last data seen ends 2024-03-04 00:09:59 UTC" in err

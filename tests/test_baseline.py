@@ -1,4 +1,5 @@
 """Baseline location/scale and the covariate model against scipy, statsmodels and closed forms."""
+
 import datetime as dt
 import zoneinfo
 
@@ -8,11 +9,10 @@ import statsmodels.api as sm
 from scipy import stats
 
 from corrtransforms import timeutil
+from corrtransforms.config import BaselineConfig
+from corrtransforms.numerics import covariate_model
 from corrtransforms.numerics import robust as baseline
 from corrtransforms.stages.shifts import period_position
-
-from corrtransforms.numerics import covariate_model
-from corrtransforms.config import BaselineConfig
 
 
 def test_mad_factor_is_the_normal_consistency_constant():
@@ -29,7 +29,7 @@ def test_robust_location_scale_matches_scipy_and_ignores_nonfinite():
     assert n == 301
     assert location == np.median(x)
     assert scale == pytest.approx(stats.median_abs_deviation(x, scale="normal"), rel=1e-12)
-    assert baseline.robust_location_scale([]) [2] == 0
+    assert baseline.robust_location_scale([])[2] == 0
 
 
 def test_robust_scale_is_consistent_and_resists_outliers():
@@ -104,20 +104,26 @@ def test_linear_model_recovers_the_temperature_coefficient_and_reports_fit_quali
     stderr = np.full(n, 0.002)
     frequency = 2.0 * (1 - 0.0015 * (temperature - 10)) + 1e-5 * (speed - 1000) + rng.normal(0, 0.003, n)
     frequency[:8] += 0.2  # a few disturbed baseline windows
-    model = covariate_model.fit_baseline_model(frequency, stderr, np.column_stack([temperature, speed]),
-                                               ("temperature", "speed"), min_windows=30)
+    model = covariate_model.fit_baseline_model(
+        frequency, stderr, np.column_stack([temperature, speed]), ("temperature", "speed"), min_windows=30
+    )
     assert model.n == n and model.quality == ()
-    reference = sm.RLM(frequency, sm.add_constant(np.column_stack([temperature - np.median(temperature),
-                                                                   speed - np.median(speed)])),
-                       M=sm.robust.norms.HuberT()).fit(tol=1e-13, maxiter=1000)
+    reference = sm.RLM(
+        frequency,
+        sm.add_constant(np.column_stack([temperature - np.median(temperature), speed - np.median(speed)])),
+        M=sm.robust.norms.HuberT(),
+    ).fit(tol=1e-13, maxiter=1000)
     np.testing.assert_allclose([model.location, *model.coefficients], reference.params, rtol=1e-6, atol=1e-9)
     assert model.coefficients[0] == pytest.approx(-0.003, rel=0.05)  # the invented true slope
-    resid = frequency - (reference.params[0] + reference.params[1] * (temperature - np.median(temperature))
-                         + reference.params[2] * (speed - np.median(speed)))
-    r_squared = 1 - np.sum(resid ** 2) / np.sum((frequency - frequency.mean()) ** 2)
+    resid = frequency - (
+        reference.params[0]
+        + reference.params[1] * (temperature - np.median(temperature))
+        + reference.params[2] * (speed - np.median(speed))
+    )
+    r_squared = 1 - np.sum(resid**2) / np.sum((frequency - frequency.mean()) ** 2)
     assert model.r_squared == pytest.approx(r_squared, rel=1e-6)
     assert model.scale == pytest.approx(stats.median_abs_deviation(resid, scale="normal"), rel=1e-5)
-    assert model.resid_scale == pytest.approx(np.sqrt(model.scale ** 2 - 0.002 ** 2), rel=1e-9)
+    assert model.resid_scale == pytest.approx(np.sqrt(model.scale**2 - 0.002**2), rel=1e-9)
     assert model.scale == pytest.approx(0.003, rel=0.15)  # the invented noise
 
 
@@ -128,7 +134,8 @@ def test_quadratic_model_matches_statsmodels():
     model = covariate_model.fit_baseline_model(rms, np.full(300, 0.001), speed[:, None], ("speed",), order=2)
     c = speed - np.median(speed)
     reference = sm.RLM(rms, np.column_stack([np.ones(300), c, c * c]), M=sm.robust.norms.HuberT()).fit(
-        tol=1e-13, maxiter=1000)
+        tol=1e-13, maxiter=1000
+    )
     np.testing.assert_allclose([model.location, *model.coefficients], reference.params, rtol=1e-6, atol=1e-12)
     expected, _ = model.predict(np.array([[1000.0]]))
     assert expected[0] == pytest.approx(0.2, abs=0.005)
@@ -159,8 +166,7 @@ def test_constant_or_unusable_covariates_fall_back_with_quality_codes():
     constant = covariate_model.fit_baseline_model(values, stderr, np.full((50, 1), 7.0), ("speed",))
     assert covariate_model.COVARIATE_CONSTANT in constant.quality
     assert constant.coefficients == (0.0,)
-    unfitted = covariate_model.fit_baseline_model(values, stderr, np.full((50, 1), np.nan), ("speed",),
-                                                  min_windows=10)
+    unfitted = covariate_model.fit_baseline_model(values, stderr, np.full((50, 1), np.nan), ("speed",), min_windows=10)
     assert covariate_model.COVARIATE_MODEL_UNFITTED in unfitted.quality
     assert unfitted.location == np.median(values)
     short = covariate_model.fit_baseline_model(values[:5], stderr[:5], min_windows=30)

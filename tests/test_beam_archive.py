@@ -1,4 +1,5 @@
 """Each public transform under TestPipeline + assert_that, compared with the core run in memory."""
+
 import glob
 import hashlib
 import os
@@ -11,14 +12,23 @@ import pytest
 from apache_beam.testing.test_pipeline import TestPipeline
 from apache_beam.testing.util import assert_that, equal_to
 
-from corrtransforms.stages.plan import list_local_archive, plan_archive
 from corrtransforms.beam import LOCAL_RUNNER, CorrelateWindows, PlanReads, ReadWindows, WriteTables, window_accounting
-from corrtransforms.rejects import Reject
 from corrtransforms.records import WindowBlock
+from corrtransforms.rejects import Reject
 from corrtransforms.stages.analyse import analyse_window
+from corrtransforms.stages.plan import list_local_archive, plan_archive
 from corrtransforms.stages.read import read_task
-from tests.archive_data import (T0, US, bad_wide_archive, duty_cycled_records, make_config, samples, wide_table,
-                                write_duty_cycled_archive, write_files)
+from tests.archive_data import (
+    T0,
+    US,
+    bad_wide_archive,
+    duty_cycled_records,
+    make_config,
+    samples,
+    wide_table,
+    write_duty_cycled_archive,
+    write_files,
+)
 
 
 def _pipeline():
@@ -27,8 +37,13 @@ def _pipeline():
 
 def _block_key(block: WindowBlock):
     digest = hashlib.sha256(block.values.tobytes() + block.valid.tobytes()).hexdigest()
-    return (block.window_start_us, block.channels, digest, tuple(sorted(block.covariates.items())),
-            tuple(sorted(block.channel_quality.items())))
+    return (
+        block.window_start_us,
+        block.channels,
+        digest,
+        tuple(sorted(block.covariates.items())),
+        tuple(sorted(block.channel_quality.items())),
+    )
 
 
 def _reject_key(r: Reject):
@@ -54,8 +69,9 @@ def test_plan_reads_matches_the_core_plan(bad):
     with _pipeline() as p:
         out = p | PlanReads(config)
         assert_that(out["tasks"], equal_to(plan.tasks), label="tasks")
-        assert_that(out["rejects"] | beam.Map(_reject_key), equal_to([_reject_key(r) for r in plan.rejects]),
-                    label="rejects")
+        assert_that(
+            out["rejects"] | beam.Map(_reject_key), equal_to([_reject_key(r) for r in plan.rejects]), label="rejects"
+        )
         assert_that(out["days"], equal_to(list(plan.days)), label="days")
 
 
@@ -70,30 +86,46 @@ def test_read_windows_matches_the_core_reader(bad):
     _, config, plan, blocks, rejects = bad
     with _pipeline() as p:
         out = p | beam.Create(plan.tasks) | ReadWindows(config)
-        assert_that(out["blocks"] | "block keys" >> beam.Map(_block_key), equal_to([_block_key(b) for b in blocks]),
-                    label="blocks")
-        assert_that(out["rejects"] | "reject keys" >> beam.Map(_reject_key),
-                    equal_to([_reject_key(r) for r in rejects]), label="rejects")
+        assert_that(
+            out["blocks"] | "block keys" >> beam.Map(_block_key),
+            equal_to([_block_key(b) for b in blocks]),
+            label="blocks",
+        )
+        assert_that(
+            out["rejects"] | "reject keys" >> beam.Map(_reject_key),
+            equal_to([_reject_key(r) for r in rejects]),
+            label="rejects",
+        )
 
 
 def _correlation_key(wc):
-    return tuple((p.channel_a, p.channel_b, wc.window_start_us, np.round(p.coefficient, 12).tobytes(),
-                  round(p.rel_error, 12)) for p in wc.pairs)
+    return tuple(
+        (p.channel_a, p.channel_b, wc.window_start_us, np.round(p.coefficient, 12).tobytes(), round(p.rel_error, 12))
+        for p in wc.pairs
+    )
 
 
 def test_correlate_windows_matches_analyse_window_in_memory(bad):
     _, config, _, blocks, _ = bad
     some = blocks[:6]
     dead = WindowBlock(config.name, T0 - 60 * US, 60.0, 10.0, ("a",), np.zeros((600, 1)), np.zeros((600, 1), bool))
-    broken = WindowBlock(config.name, T0 - 120 * US, 60.0, 10.0, ("a", "b"), np.zeros((600, 1)),
-                         np.ones((600, 1), bool))  # two channel names, one column: the estimator raises
+    broken = WindowBlock(
+        config.name, T0 - 120 * US, 60.0, 10.0, ("a", "b"), np.zeros((600, 1)), np.ones((600, 1), bool)
+    )  # two channel names, one column: the estimator raises
     expected = [_correlation_key(analyse_window(b, config)[0]) for b in some]
     with _pipeline() as p:
         out = p | beam.Create(some + [dead, broken]) | CorrelateWindows(config)
         assert_that(out["correlations"] | beam.Map(_correlation_key), equal_to(expected), label="rows")
-        assert_that(out["rejects"] | beam.Map(lambda r: (r.window_start_us, r.stage, r.reason, r.subject)),
-                    equal_to([(T0 - 60 * US, "correlate", "no_valid_pairs", "*"),
-                              (T0 - 120 * US, "correlate", "correlation_failed", "*")]), label="rejects")
+        assert_that(
+            out["rejects"] | beam.Map(lambda r: (r.window_start_us, r.stage, r.reason, r.subject)),
+            equal_to(
+                [
+                    (T0 - 60 * US, "correlate", "no_valid_pairs", "*"),
+                    (T0 - 120 * US, "correlate", "correlation_failed", "*"),
+                ]
+            ),
+            label="rejects",
+        )
 
 
 def test_write_tables_commits_partitions_and_a_rerun_replaces_them(tmp_path):
@@ -106,11 +138,15 @@ def test_write_tables_commits_partitions_and_a_rerun_replaces_them(tmp_path):
     out = str(tmp_path / "out")
     for run, flush in (("many", 1), ("few", 2**30)):  # one file per element, then one per bundle
         with _pipeline() as p:
-            tables = {"correlations": p | "c" >> beam.Create(correlations),
-                      "rejects": p | "r" >> beam.Create([finding])}
+            tables = {
+                "correlations": p | "c" >> beam.Create(correlations),
+                "rejects": p | "r" >> beam.Create([finding]),
+            }
             commits = tables | WriteTables(out, config, run, flush_bytes=flush)
-            assert_that(commits | beam.Map(lambda results: sorted((c.table, c.date, c.rows) for c in results)),
-                        equal_to([[("correlations", "2024-03-04", 15), ("rejects", "2024-03-04", 1)]]))
+            assert_that(
+                commits | beam.Map(lambda results: sorted((c.table, c.date, c.rows) for c in results)),
+                equal_to([[("correlations", "2024-03-04", 15), ("rejects", "2024-03-04", 1)]]),
+            )
         files = glob.glob(os.path.join(out, "correlations", "*", "*", "*.parquet"))
         if run == "many":
             assert len(files) == 5
@@ -151,6 +187,9 @@ def test_record_aligned_plan_and_read_under_beam_match_the_core_run(tmp_path):
     with _pipeline() as p:
         planned = p | PlanReads(config)
         read = planned["tasks"] | ReadWindows(config)
-        assert_that(read["blocks"] | "block keys" >> beam.Map(_block_key),
-                    equal_to([_block_key(b) for b in blocks]), label="blocks")
+        assert_that(
+            read["blocks"] | "block keys" >> beam.Map(_block_key),
+            equal_to([_block_key(b) for b in blocks]),
+            label="blocks",
+        )
         assert_that(read["rejects"], equal_to([]), label="rejects")

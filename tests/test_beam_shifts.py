@@ -1,14 +1,15 @@
 """DetectShifts in real Beam pipelines: same rows as the core, nightly resumption equals backfill."""
+
+import apache_beam as beam
 import numpy as np
 import pyarrow as pa
 from apache_beam.options.pipeline_options import PipelineOptions
 from apache_beam.testing.test_pipeline import TestPipeline as BeamTestPipeline
 from apache_beam.testing.util import BeamAssertException, assert_that
-import apache_beam as beam
 
-from corrtransforms.stages import shifts as shift_series
 from corrtransforms.beam import LOCAL_RUNNER
 from corrtransforms.beam.shifts import DetectShifts
+from corrtransforms.stages import shifts as shift_series
 from corrtransforms.timeutil import local_days, us_to_datetime
 from tests.shift_fixtures import TIMEZONE, indicator_rows, make_config, same, seasonal_series
 
@@ -20,10 +21,24 @@ def _inputs():
     times, values, stderr, temperature, _ = seasonal_series(11, days=DAYS, step_day=3)
     deck, covariates = indicator_rows(times, values, stderr, temperature)
     rng = np.random.default_rng(12)
-    rms, _ = indicator_rows(times, 0.02 + rng.normal(0, 0.001, times.size), np.full(times.size, 0.0005),
-                            temperature, subject="mast", indicator="rms", unit="m/s2")
-    other, _ = indicator_rows(times, rng.uniform(0, 1, times.size), np.full(times.size, np.nan), temperature,
-                              subject="mast", indicator="stationarity_p", unit="")
+    rms, _ = indicator_rows(
+        times,
+        0.02 + rng.normal(0, 0.001, times.size),
+        np.full(times.size, 0.0005),
+        temperature,
+        subject="mast",
+        indicator="rms",
+        unit="m/s2",
+    )
+    other, _ = indicator_rows(
+        times,
+        rng.uniform(0, 1, times.size),
+        np.full(times.size, np.nan),
+        temperature,
+        subject="mast",
+        indicator="stationarity_p",
+        unit="",
+    )
     duplicate = deck[7]._replace(value=deck[7].value + 1.0)
     return times, deck + rms + other + covariates + [duplicate]
 
@@ -54,6 +69,7 @@ def _equal_rows(expected):
         got = _rows_of(actual)
         if len(got) != len(expected) or not all(same(a, b) for a, b in zip(got, expected)):
             raise BeamAssertException(f"{len(got)} rows differ from the {len(expected)} expected")
+
     return check
 
 
@@ -61,6 +77,7 @@ def _reasons(expected):
     def check(actual):
         if sorted(r.reason for r in actual) != sorted(expected):
             raise BeamAssertException(f"rejects {sorted(r.reason for r in actual)} != {sorted(expected)}")
+
     return check
 
 
@@ -98,12 +115,14 @@ def test_nightly_pipeline_resumes_from_yesterdays_state_and_equals_the_backfill(
     # yesterday's state as the pipeline itself produces it
     with _pipeline() as p:
         result = p | "Earlier rows" >> beam.Create(earlier) | "Detect" >> DetectShifts(config)
-        assert_that(result["state"] | "Last day" >> beam.Map(_last_state_rows),
-                    _equal_rows(_rows_of([states])), label="Check yesterday's state")
+        assert_that(
+            result["state"] | "Last day" >> beam.Map(_last_state_rows),
+            _equal_rows(_rows_of([states])),
+            label="Check yesterday's state",
+        )
     # tonight's run from that state gives the backfill's rows of tonight
     with _pipeline() as p:
-        result = (p | "Tonight's rows" >> beam.Create(tonight)
-                  | "Detect" >> DetectShifts(config, initial_states=states))
+        result = p | "Tonight's rows" >> beam.Create(tonight) | "Detect" >> DetectShifts(config, initial_states=states)
         assert_that(result["shifts"], _equal_rows(expected), label="Check tonight's shifts")
         assert_that(result["rejects"], _reasons([]), label="No rejects tonight")
 

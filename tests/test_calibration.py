@@ -3,6 +3,7 @@
 Each check is small and fast: the generators really produce the law whose closed form the
 calibration matrix uses as its truth.
 """
+
 import math
 
 import numpy as np
@@ -66,7 +67,7 @@ def test_integral_to_first_zero_matches_closed_forms():
     # reference: geometric series, trapezoid of phi^k over 0..L = dt [(1 - phi^(L+1))/(1 - phi) - (1 + phi^L)/2]
     phi, dt, L = 0.9, 0.1, 100
     rho = phi ** np.arange(L + 1)
-    expected = dt * ((1 - phi ** (L + 1)) / (1 - phi) - 0.5 * (1 + phi ** L))
+    expected = dt * ((1 - phi ** (L + 1)) / (1 - phi) - 0.5 * (1 + phi**L))
     assert math.isclose(cal.integral_to_first_zero(rho, dt), expected, rel_tol=1e-12)
     # reference: linear rho = 1 - tau/2 crosses zero at tau = 2 exactly: integral 1
     tau = np.arange(0, 3.05, 0.1)

@@ -4,6 +4,7 @@ Table-driven: each case starts from a valid minimal configuration, sets one key 
 and checks that :class:`ConfigError` names exactly that key (and the value) before any pipeline
 would start.
 """
+
 import copy
 import datetime as dt
 
@@ -87,8 +88,7 @@ BAD_VALUES = [
 ]
 
 
-@pytest.mark.parametrize("section,key,value,named", BAD_VALUES,
-                         ids=[f"{s}.{k}={v!r}" for s, k, v, _ in BAD_VALUES])
+@pytest.mark.parametrize("section,key,value,named", BAD_VALUES, ids=[f"{s}.{k}={v!r}" for s, k, v, _ in BAD_VALUES])
 def test_invalid_value_names_its_key(section, key, value, named):
     raw = copy.deepcopy(MINIMAL)
     raw.setdefault(section, {})[key] = value

@@ -1,12 +1,18 @@
 """The FFT correlation estimator against outside references: scipy.signal.correlate
 (method="direct"), numpy.correlate, brute-force masked sums, numpy.polyfit, and closed forms."""
+
 import numpy as np
 import pytest
 import scipy.signal
 from scipy.signal import correlation_lags
 
-from corrtransforms.numerics.correlation import (DEFAULT_MIN_PAIRS, channel_spectra, correlate_block,
-                                        correlate_spectra, resolve_pairs)
+from corrtransforms.numerics.correlation import (
+    DEFAULT_MIN_PAIRS,
+    channel_spectra,
+    correlate_block,
+    correlate_spectra,
+    resolve_pairs,
+)
 
 
 def _lag_slice(n, L):
@@ -131,16 +137,16 @@ def test_linear_detrend_uses_valid_samples_only():
     spectra = channel_spectra(x, 1.0, 10, valid=valid, detrend="linear")
     coef = np.polyfit(t[valid], x[valid], 1)  # numpy least-squares line on the valid samples
     resid = x[valid] - np.polyval(coef, t[valid])
-    assert spectra.mean_square[0] == pytest.approx(np.mean(resid ** 2), rel=1e-10)
+    assert spectra.mean_square[0] == pytest.approx(np.mean(resid**2), rel=1e-10)
     est = correlate_spectra(spectra, "auto", estimator="unbiased")
-    assert est.R[0][10] == pytest.approx(np.mean(resid ** 2), rel=1e-10)
+    assert est.R[0][10] == pytest.approx(np.mean(resid**2), rel=1e-10)
 
 
 def test_band_limited_white_noise_matches_closed_form():
     # Band-pass white noise on [f1, f2]: rho(tau) = [sin(2 pi f2 tau) - sin(2 pi f1 tau)] /
     # [2 pi (f2 - f1) tau]  (Bendat & Piersol, Random Data, Sec. 5.2.4, from memory)
     rng = np.random.default_rng(21)
-    n, fs, f1, f2 = 2 ** 16, 20.0, 2.0, 4.0
+    n, fs, f1, f2 = 2**16, 20.0, 2.0, 4.0
     x = rng.standard_normal(n)
     est = correlate_block(x, fs, 2.0, pairs="auto", band_hz=(f1, f2))
     tau = est.lags_s
@@ -242,6 +248,7 @@ def test_input_arrays_are_not_modified():
 
 def test_pairs_by_name_resolves_strings_lists_usable_and_missing_channels():
     from corrtransforms.numerics.correlation import pairs_by_name
+
     names = ("a", "b", "c")
     # "all": every (i, j) with i <= j over the usable channels, row-major (as resolve_pairs)
     assert pairs_by_name("all", names) == resolve_pairs("all", 3)

@@ -3,6 +3,7 @@ registered object-store scheme (``memfs://``, see tests/memory_filesystem.py) th
 this process's memory, so any ``open()``/``os`` call on those paths would fail or leave a local
 ``memfs:`` folder behind.
 """
+
 from __future__ import annotations
 
 import io
@@ -80,13 +81,16 @@ def test_backfill_and_nightly_read_and_write_only_through_filesystems(tmp_path, 
     local_out = tmp_path / "local-out"
     _jobs(str(reference_archive / "footbridge.toml"), str(local_out))
     local_files = demo_fixtures.partition_files(str(local_out))
-    remote_files = [p[len(f"{SITE}/out/"):] for p in written if not p.startswith(f"{SITE}/out/_runs/")]
+    remote_files = [p[len(f"{SITE}/out/") :] for p in written if not p.startswith(f"{SITE}/out/_runs/")]
     assert {rel.split("/")[0] for rel in local_files} == set(TABLES) | {"episodes", "_summaries"}
     # part-file names are digests of the rows: equal but where a reject names its file by path
-    assert ([r for r in remote_files if not r.startswith("rejects/")]
-            == [r for r in local_files if not r.startswith("rejects/")])
-    assert (demo_fixtures.partitions([r for r in remote_files if r.startswith("rejects/")]).keys()
-            == demo_fixtures.partitions([r for r in local_files if r.startswith("rejects/")]).keys())
+    assert [r for r in remote_files if not r.startswith("rejects/")] == [
+        r for r in local_files if not r.startswith("rejects/")
+    ]
+    assert (
+        demo_fixtures.partitions([r for r in remote_files if r.startswith("rejects/")]).keys()
+        == demo_fixtures.partitions([r for r in local_files if r.startswith("rejects/")]).keys()
+    )
     local_root = str(reference_archive / "archive")
     for remote_rel, local_rel in zip(remote_files, local_files):
         remote = pq.read_table(io.BytesIO(memory_filesystem.get(f"{SITE}/out/{remote_rel}")))
@@ -104,12 +108,18 @@ def test_backfill_and_nightly_read_and_write_only_through_filesystems(tmp_path, 
 
 def test_delete_tree_removes_only_the_files_below_an_object_store_prefix():
     memory_filesystem.reset()
-    for path in (f"{SITE}/out/_temporary/run/a/b.parquet", f"{SITE}/out/_temporary/run/c.parquet",
-                 f"{SITE}/out/_temporary/run-2/d.parquet", f"{SITE}/out/_temporary/runx.parquet"):
+    for path in (
+        f"{SITE}/out/_temporary/run/a/b.parquet",
+        f"{SITE}/out/_temporary/run/c.parquet",
+        f"{SITE}/out/_temporary/run-2/d.parquet",
+        f"{SITE}/out/_temporary/runx.parquet",
+    ):
         memory_filesystem.put(path, b"x")
     BeamFiles().delete_tree(f"{SITE}/out/_temporary/run")
-    assert memory_filesystem.paths() == [f"{SITE}/out/_temporary/run-2/d.parquet",
-                                         f"{SITE}/out/_temporary/runx.parquet"]
+    assert memory_filesystem.paths() == [
+        f"{SITE}/out/_temporary/run-2/d.parquet",
+        f"{SITE}/out/_temporary/runx.parquet",
+    ]
     BeamFiles().delete_tree(f"{SITE}/nothing/here")  # an empty prefix is no error
 
 

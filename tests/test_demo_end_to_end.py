@@ -5,6 +5,7 @@ archive in a temporary folder, then reads the output the way a user would (panda
 folders, no corrtransforms import needed) and compares it with ``expected_changes()``, the
 generator's own list of what it injected (docs/demo.md).
 """
+
 import contextlib
 import io
 import json
@@ -31,8 +32,9 @@ def demo_run(tmp_path_factory):
     output = root / "output"
     printed = io.StringIO()
     with contextlib.redirect_stdout(printed):
-        counters = backfill.main(["--config", str(root / "footbridge.toml"), "--output", str(output),
-                                  "--run_id", "demo"])
+        counters = backfill.main(
+            ["--config", str(root / "footbridge.toml"), "--output", str(output), "--run_id", "demo"]
+        )
     PRINTED["backfill"] = printed.getvalue()
     return root, output, counters, generate.expected_changes()
 
@@ -78,7 +80,9 @@ def test_rejects_and_window_accounting(demo_run):
     assert set(rejects.reason) == {r["reason"] for r in expected["rejects"]}
     # counts add up: every planned window is computed or rejected, and every record file
     # that could be read became a planned window
-    planned, computed, rejected = (counters.get(k, 0) for k in ("windows_planned", "windows_computed", "windows_rejected"))
+    planned, computed, rejected = (
+        counters.get(k, 0) for k in ("windows_planned", "windows_computed", "windows_rejected")
+    )
     assert planned == computed + rejected
     unreadable_files = sum(r["windows"] for r in expected["rejects"] if r["subject"] in ("*", "time"))
     assert planned == expected["records"] - unreadable_files
@@ -119,7 +123,12 @@ def test_the_run_summary_names_the_three_episodes(demo_run):
         # measured on this demo: -3.0 % (injected -3 %), +72 % (+80 %: the damping fit of the shifted
         # windows is biased low), +50 % (+50 %); tolerance 15 % of the injected change
         assert episode["shift_percent"] is not None and abs(episode["shift_percent"] - injected) <= 0.15 * abs(injected)
-        line = next(line for line in printed.splitlines()
-                    if line.strip().startswith(f"{change['subject']} {change['indicator']} {change['direction']}"))
-        assert f"onset {episode['onset']}" in line and f"{episode['shift_percent']:+.1f} % of the baseline level" in line
+        line = next(
+            line
+            for line in printed.splitlines()
+            if line.strip().startswith(f"{change['subject']} {change['indicator']} {change['direction']}")
+        )
+        assert (
+            f"onset {episode['onset']}" in line and f"{episode['shift_percent']:+.1f} % of the baseline level" in line
+        )
     assert "next: corrtransforms-report --output" in printed

@@ -2,6 +2,7 @@
 
 Each numerical check compares with a closed form or with scipy; the source is in a comment.
 """
+
 import datetime as dt
 import json
 import math
@@ -21,7 +22,7 @@ DEMO_DIR = os.path.dirname(gen.__file__)
 
 def _sdof_white_noise(frequency_hz, damping):
     omega = 2 * math.pi * frequency_hz
-    a = np.array([[0.0, 1.0], [-omega ** 2, -2 * damping * omega]])
+    a = np.array([[0.0, 1.0], [-(omega**2), -2 * damping * omega]])
     return a, np.array([0.0, 1.0]), omega
 
 
@@ -34,14 +35,15 @@ def test_van_loan_discretisation_matches_closed_forms():
     np.testing.assert_allclose(transition, ad_scipy, rtol=1e-12, atol=1e-14)
     # noise covariance: direct quadrature of Qd = int_0^dt e^{As} G q G^T e^{A^T s} ds
     direct = integrate.quad_vec(
-        lambda s: linalg.expm(a * s) @ (intensity * np.outer(g, g)) @ linalg.expm(a * s).T, 0.0, step)[0]
+        lambda s: linalg.expm(a * s) @ (intensity * np.outer(g, g)) @ linalg.expm(a * s).T, 0.0, step
+    )[0]
     np.testing.assert_allclose(covariance, direct, rtol=1e-9, atol=1e-15)
     # stationary variances of the white-noise-driven oscillator x'' + 2 zeta w x' + w^2 x = f,
     # E[f(t) f(t+tau)] = q delta(tau): var(x) = q / (4 zeta w^3), var(x') = q / (4 zeta w)
     # (Crandall & Mark, Random Vibration in Mechanical Systems, 1963, sect. 2.6; Newland,
     # An Introduction to Random Vibrations, 3rd ed., eqs. (14.27)-(14.28); equation numbers from memory)
     stationary = linalg.solve_discrete_lyapunov(transition, covariance)
-    assert stationary[0, 0] == pytest.approx(intensity / (4 * damping * omega ** 3), rel=1e-9)
+    assert stationary[0, 0] == pytest.approx(intensity / (4 * damping * omega**3), rel=1e-9)
     assert stationary[1, 1] == pytest.approx(intensity / (4 * damping * omega), rel=1e-9)
     assert abs(stationary[0, 1]) < 1e-9 * math.sqrt(stationary[0, 0] * stationary[1, 1])
 
@@ -52,16 +54,17 @@ def test_simulated_record_has_the_theoretical_autocorrelation():
     transition, covariance = gen.discretise_linear_sde(a, g, intensity, step)
     rng = np.random.default_rng(7)
     x = gen.simulate_stationary(transition, covariance, np.array([1.0, 0.0]), 200_000, rng)
-    variance = intensity / (4 * damping * omega ** 3)
+    variance = intensity / (4 * damping * omega**3)
     # Monte-Carlo: 8000 s of a process with decay time 1/(zeta w) = 1.6 s, error about 2 %
     assert x.var() == pytest.approx(variance, rel=0.06)
     # normalised autocorrelation of the displacement (Clough & Penzien, Dynamics of Structures,
     # 2nd ed., 1993, eq. (21-13) form): exp(-zeta w tau) (cos wd tau + zeta/sqrt(1-zeta^2) sin wd tau)
-    omega_d = omega * math.sqrt(1 - damping ** 2)
+    omega_d = omega * math.sqrt(1 - damping**2)
     for lag in (3, 6, 12, 25):
         tau = lag * step
         theory = math.exp(-damping * omega * tau) * (
-            math.cos(omega_d * tau) + damping / math.sqrt(1 - damping ** 2) * math.sin(omega_d * tau))
+            math.cos(omega_d * tau) + damping / math.sqrt(1 - damping**2) * math.sin(omega_d * tau)
+        )
         sample = np.mean(x[:-lag] * x[lag:]) / x.var()
         assert sample == pytest.approx(theory, abs=0.04)
 
@@ -118,17 +121,19 @@ def _delay_by_correlation(reference, delayed, sample_rate_hz):
     correlation = signal.correlate(delayed - delayed.mean(), reference - reference.mean(), mode="full")
     lags = signal.correlation_lags(len(delayed), len(reference), mode="full")
     k = int(np.argmax(correlation))
-    y0, y1, y2 = correlation[k - 1:k + 2]
+    y0, y1, y2 = correlation[k - 1 : k + 2]
     return (lags[k] + 0.5 * (y0 - y2) / (y0 - 2 * y1 + y2)) / sample_rate_hz
 
 
 def test_footing_delay_recovered_by_scipy_correlate_before_and_after_the_change():
     before = gen.simulate_record(dt.datetime(2025, 5, 3, 8, tzinfo=gen.UTC))
     after = gen.simulate_record(dt.datetime(2025, 5, 27, 8, tzinfo=gen.UTC))
-    assert _delay_by_correlation(before["footing_n"], before["footing_s"], gen.SAMPLE_RATE_HZ) == \
-        pytest.approx(0.060, abs=0.008)
-    assert _delay_by_correlation(after["footing_n"], after["footing_s"], gen.SAMPLE_RATE_HZ) == \
-        pytest.approx(0.090, abs=0.008)
+    assert _delay_by_correlation(before["footing_n"], before["footing_s"], gen.SAMPLE_RATE_HZ) == pytest.approx(
+        0.060, abs=0.008
+    )
+    assert _delay_by_correlation(after["footing_n"], after["footing_s"], gen.SAMPLE_RATE_HZ) == pytest.approx(
+        0.090, abs=0.008
+    )
 
 
 def test_fractional_delay_is_exact_for_a_band_limited_tone():
@@ -136,8 +141,7 @@ def test_fractional_delay_is_exact_for_a_band_limited_tone():
     # (Oppenheim & Schafer, Discrete-Time Signal Processing, 3rd ed., example 4.6)
     n = np.arange(512)
     tone = np.sin(2 * np.pi * 20 * n / 512)  # a whole number of periods: no wrap-around error
-    np.testing.assert_allclose(gen.fractional_delay(tone, 1.37), np.sin(2 * np.pi * 20 * (n - 1.37) / 512),
-                               atol=1e-12)
+    np.testing.assert_allclose(gen.fractional_delay(tone, 1.37), np.sin(2 * np.pi * 20 * (n - 1.37) / 512), atol=1e-12)
 
 
 @pytest.fixture(scope="module")
@@ -159,7 +163,7 @@ def test_ordinary_file_layout(fault_days):
     assert parquet.metadata.num_rows == 15000 and parquet.metadata.num_row_groups == 2
     table = parquet.read()
     times = table.column("time").cast(pa.int64()).to_numpy()
-    start_us = int(dt.datetime(2025, 5, 3, 12, tzinfo=gen.UTC).timestamp()) * 10 ** 6
+    start_us = int(dt.datetime(2025, 5, 3, 12, tzinfo=gen.UTC).timestamp()) * 10**6
     np.testing.assert_array_equal(times, start_us + 40_000 * np.arange(15000))
     assert all(np.std(table.column(c).to_numpy()) > 0 for c in gen.VIBRATION_CHANNELS)
 

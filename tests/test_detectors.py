@@ -15,6 +15,7 @@ The numerical ARLs (integral equation, Markov chain) are the project's own code,
 check is made three ways: simulation vs table, integral equation vs table, and the numerical
 methods against each other.
 """
+
 import math
 
 import numpy as np
@@ -105,10 +106,13 @@ def _simulated(chart, n_chains, seed, **kw):
     return run_lengths.mean(), run_lengths.std(ddof=1) / np.sqrt(n_chains)
 
 
-@pytest.mark.parametrize("h, table_arl0, table_arl1, chains", [
-    (4.0, 168.0, 8.38, 12000),   # Montgomery Table 9.3 / Hawkins (1993) (from memory)
-    (5.0, 465.0, 10.4, 16000),
-])
+@pytest.mark.parametrize(
+    "h, table_arl0, table_arl1, chains",
+    [
+        (4.0, 168.0, 8.38, 12000),  # Montgomery Table 9.3 / Hawkins (1993) (from memory)
+        (5.0, 465.0, 10.4, 16000),
+    ],
+)
 def test_cusum_arl_three_ways(h, table_arl0, table_arl1, chains):
     k = 0.5
     integral0 = arl.cusum_arl_integral_equation(k, h)
@@ -138,10 +142,13 @@ def test_cusum_integral_equation_is_converged_and_one_sided_is_twice():
     assert one == pytest.approx(2 * b, rel=1e-9)  # symmetric in control: 1/L = 2/L+
 
 
-@pytest.mark.parametrize("smoothing, width, table_arl0, table_arl1", [
-    (0.2, 2.962, 500.0, 10.5),   # Lucas & Saccucci (1990) via Montgomery Table 9.11 (from memory)
-    (0.1, 2.814, 500.0, 10.3),
-])
+@pytest.mark.parametrize(
+    "smoothing, width, table_arl0, table_arl1",
+    [
+        (0.2, 2.962, 500.0, 10.5),  # Lucas & Saccucci (1990) via Montgomery Table 9.11 (from memory)
+        (0.1, 2.814, 500.0, 10.3),
+    ],
+)
 def test_ewma_arl_three_ways(smoothing, width, table_arl0, table_arl1):
     integral0 = arl.ewma_arl_integral_equation(smoothing, width)
     markov0 = arl.ewma_arl_markov_chain(smoothing, width, states=601)
@@ -151,8 +158,7 @@ def test_ewma_arl_three_ways(smoothing, width, table_arl0, table_arl1):
     assert abs(mean0 - integral0) < 4 * se0
     assert abs(mean0 - table_arl0) < 4 * se0 + 2.5
     integral1 = arl.ewma_arl_integral_equation(smoothing, width, shift=1.0)
-    mean1, se1 = _simulated("ewma", 4000, seed=31, smoothing=smoothing, width=width, shift=1.0,
-                            exact_limits=False)
+    mean1, se1 = _simulated("ewma", 4000, seed=31, smoothing=smoothing, width=width, shift=1.0, exact_limits=False)
     assert integral1 == pytest.approx(table_arl1, abs=0.06)
     assert abs(mean1 - integral1) < 4 * se1
 
@@ -197,6 +203,7 @@ def test_prediction_errors_equal_z_without_dependence_and_statsmodels_kalman_fil
     np.testing.assert_array_equal(errors, r / np.sqrt(1.0 + se * se))  # phi 0: the error-aware z
     # AR(1) state plus measurement error: statsmodels' SARIMAX Kalman filter, stationary start
     from statsmodels.tsa.statespace.sarimax import SARIMAX
+
     phi, s2 = 0.7, 1.0
     model = SARIMAX(r, order=(1, 0, 0), trend="n", measurement_error=True)
     fitted = model.filter(np.array([phi, 0.36, s2 * (1 - phi * phi)]))
@@ -211,8 +218,10 @@ def test_prediction_errors_equal_z_without_dependence_and_statsmodels_kalman_fil
     steps[10] = 3
     kept = np.r_[r[:10], r[12:]]
     errors, _, _ = serial_dependence.ar1_prediction_errors(kept, 0.6, steps, phi, 1.0)
-    expected = np.r_[ref_gap.filter_results.standardized_forecasts_error[0][:10],
-                     ref_gap.filter_results.standardized_forecasts_error[0][12:]]
+    expected = np.r_[
+        ref_gap.filter_results.standardized_forecasts_error[0][:10],
+        ref_gap.filter_results.standardized_forecasts_error[0][12:],
+    ]
     np.testing.assert_allclose(errors, expected, rtol=1e-9, atol=1e-9)
 
 

@@ -7,6 +7,7 @@ files have identical names and identical bytes up to the footer; their decoded f
 once the run id is taken out. The archive is the invented one with many kinds of bad input
 (tests/archive_data.py), so the rejects table is not empty.
 """
+
 import os
 
 import pyarrow as pa
@@ -54,8 +55,11 @@ def runs(tmp_path_factory):
     bad_wide_archive(str(root / "archive"))
     config = write_config(root / "asset.toml", "archive")
     outputs = {}
-    for name, flags in (("first", []), ("second", []),
-                        ("multi", ["--direct_running_mode=multi_processing", "--direct_num_workers=2"])):
+    for name, flags in (
+        ("first", []),
+        ("second", []),
+        ("multi", ["--direct_running_mode=multi_processing", "--direct_num_workers=2"]),
+    ):
         outputs[name] = str(root / name)
         backfill.main(["--config", config, "--output", outputs[name], *flags])  # default run id: time + random
     return outputs
@@ -77,15 +81,16 @@ def test_two_runs_write_the_same_files_byte_for_byte_but_the_run_id(runs):
         meta_a, meta_b = pq.ParquetFile(a).schema_arrow.metadata, pq.ParquetFile(b).schema_arrow.metadata
         assert _without_run_id(meta_a) == _without_run_id(meta_b), name
         assert pq.ParquetFile(a).schema_arrow.remove_metadata() == pq.ParquetFile(b).schema_arrow.remove_metadata()
-        decoded = [[tuple(canonical(v) for v in row.values()) for row in pq.read_table(p).to_pylist()]
-                   for p in (a, b)]
+        decoded = [[tuple(canonical(v) for v in row.values()) for row in pq.read_table(p).to_pylist()] for p in (a, b)]
         assert decoded[0] == decoded[1], name  # canonical: NaN equals NaN
         run_ids.add((meta_a[RUN_ID], meta_b[RUN_ID]))
-        footer_a, footer_b = open(a, "rb").read()[len(_data_bytes(a)):], open(b, "rb").read()[len(_data_bytes(b)):]
+        footer_a, footer_b = open(a, "rb").read()[len(_data_bytes(a)) :], open(b, "rb").read()[len(_data_bytes(b)) :]
         if footer_a != footer_b:  # the footers differ by the run id only
             assert meta_a[RUN_ID] in footer_a and meta_b[RUN_ID] in footer_b
-            assert footer_a.replace(meta_a[RUN_ID], meta_b[RUN_ID]).split(b"ARROW:schema")[0] == \
-                footer_b.split(b"ARROW:schema")[0]
+            assert (
+                footer_a.replace(meta_a[RUN_ID], meta_b[RUN_ID]).split(b"ARROW:schema")[0]
+                == footer_b.split(b"ARROW:schema")[0]
+            )
     assert len(run_ids) == 1 and len({x for pair in run_ids for x in pair}) == 2  # two runs, two ids
 
 
@@ -101,7 +106,10 @@ def test_rows_within_a_file_are_sorted_and_unique_per_key(runs):
 def test_multi_process_runner_gives_the_same_rows(runs):
     for table in TABLES:
         assert _rows(runs["multi"], table) == _rows(runs["first"], table), table
-    assert pa.concat_tables([pq.read_table(os.path.join(runs["multi"], n)) for n in _files(runs["multi"])
-                             if n.startswith("episodes")]).num_rows == \
-        sum(pq.read_table(os.path.join(runs["first"], n)).num_rows for n in _files(runs["first"])
-            if n.startswith("episodes"))
+    assert pa.concat_tables(
+        [pq.read_table(os.path.join(runs["multi"], n)) for n in _files(runs["multi"]) if n.startswith("episodes")]
+    ).num_rows == sum(
+        pq.read_table(os.path.join(runs["first"], n)).num_rows
+        for n in _files(runs["first"])
+        if n.startswith("episodes")
+    )

@@ -10,6 +10,7 @@ function-level import:
 - ``corrtransforms/beam/``: no launcher code, no report;
 - nothing in the package imports ``pipelines`` or ``demo_data`` (they are not installed).
 """
+
 from __future__ import annotations
 
 import ast
@@ -23,14 +24,37 @@ ROOT_MODULES = ("config.py", "records.py", "rejects.py", "tables.py", "timeutil.
 
 #: (folder or root module, forbidden import prefixes)
 RULES = {
-    "numerics": ("apache_beam", "pyarrow", "corrtransforms.config", "corrtransforms.rejects",
-                 "corrtransforms.records", "corrtransforms.tables", "corrtransforms.stages",
-                 "corrtransforms.beam", "corrtransforms.report", "corrtransforms.launch", "pipelines",
-                 "demo_data"),
-    "stages": ("apache_beam", "corrtransforms.beam", "corrtransforms.report", "corrtransforms.launch",
-               "pipelines", "demo_data"),
-    "root": ("apache_beam", "corrtransforms.beam", "corrtransforms.report", "corrtransforms.launch",
-             "corrtransforms.stages", "pipelines", "demo_data"),
+    "numerics": (
+        "apache_beam",
+        "pyarrow",
+        "corrtransforms.config",
+        "corrtransforms.rejects",
+        "corrtransforms.records",
+        "corrtransforms.tables",
+        "corrtransforms.stages",
+        "corrtransforms.beam",
+        "corrtransforms.report",
+        "corrtransforms.launch",
+        "pipelines",
+        "demo_data",
+    ),
+    "stages": (
+        "apache_beam",
+        "corrtransforms.beam",
+        "corrtransforms.report",
+        "corrtransforms.launch",
+        "pipelines",
+        "demo_data",
+    ),
+    "root": (
+        "apache_beam",
+        "corrtransforms.beam",
+        "corrtransforms.report",
+        "corrtransforms.launch",
+        "corrtransforms.stages",
+        "pipelines",
+        "demo_data",
+    ),
     "beam": ("corrtransforms.report", "corrtransforms.launch", "pipelines", "demo_data"),
     "report": ("pipelines", "demo_data"),
     "launch": ("pipelines", "demo_data"),

@@ -1,12 +1,18 @@
 """Modal frequency and damping against the exact oscillator correlation, simulated oscillators
 (exact discretisation), scipy.optimize.curve_fit, and the scatter across windows."""
+
 import numpy as np
 import pytest
 import scipy.optimize
 
 from corrtransforms.numerics.modal_fit import decaying_cosine, fit_decaying_cosine, fit_mode
-from tests.indicator_fixtures import (auto_record, modal_state_space, sdof_correlation,
-                                      simulate_sdof, simulate_state_space)
+from tests.indicator_fixtures import (
+    auto_record,
+    modal_state_space,
+    sdof_correlation,
+    simulate_sdof,
+    simulate_state_space,
+)
 
 FS = 50.0
 
@@ -23,7 +29,7 @@ def test_exact_sdof_correlation_is_fitted_to_1e6(fn, zeta):
     assert fit.quality == ()
     assert fit.freq_hz == pytest.approx(fn, rel=1e-6)
     assert fit.damping == pytest.approx(zeta, rel=1e-6)
-    assert fit.amplitude == pytest.approx(1 / np.sqrt(1 - zeta ** 2), rel=1e-6)
+    assert fit.amplitude == pytest.approx(1 / np.sqrt(1 - zeta**2), rel=1e-6)
     assert fit.phase_rad == pytest.approx(-np.arcsin(zeta), abs=1e-6)
 
 
@@ -36,15 +42,18 @@ def test_least_squares_agrees_with_curve_fit():
     bounds = ([0, 1.0, 1e-6, -2 * np.pi], [np.inf, 3.0, 0.95, 2 * np.pi])
     ours, ok = fit_decaying_cosine(tau, y, sigma, start, bounds)
     # independent reference: scipy.optimize.curve_fit, numerical Jacobian, same weights
-    theirs, _ = scipy.optimize.curve_fit(decaying_cosine, tau, y, p0=start, sigma=sigma,
-                                         absolute_sigma=True, bounds=bounds, xtol=1e-14, ftol=1e-14)
+    theirs, _ = scipy.optimize.curve_fit(
+        decaying_cosine, tau, y, p0=start, sigma=sigma, absolute_sigma=True, bounds=bounds, xtol=1e-14, ftol=1e-14
+    )
     assert ok
     np.testing.assert_allclose(ours[1:3], theirs[1:3], rtol=1e-5)
 
 
 def _window_fits(x, n, band, max_lag_s=20.0):
-    return [fit_mode(*auto_record(x[k * n:(k + 1) * n], FS, max_lag_s, band_hz=band), 1 / FS, band)
-            for k in range(len(x) // n)]
+    return [
+        fit_mode(*auto_record(x[k * n : (k + 1) * n], FS, max_lag_s, band_hz=band), 1 / FS, band)
+        for k in range(len(x) // n)
+    ]
 
 
 def test_simulated_sdof_frequency_damping_and_stderr():
@@ -60,8 +69,7 @@ def test_simulated_sdof_frequency_damping_and_stderr():
     assert np.median(damping) == pytest.approx(zeta, rel=0.15)
     # reported stderr consistent with the scatter across windows (factor 1.5); with 80 windows
     # the ratios are 0.89 (frequency) and 0.94 (damping)
-    for values, errors in ((freq, [f.freq_stderr_hz for f in fits]),
-                           (damping, [f.damping_stderr for f in fits])):
+    for values, errors in ((freq, [f.freq_stderr_hz for f in fits]), (damping, [f.damping_stderr for f in fits])):
         ratio = np.std(values, ddof=1) / np.median(errors)
         assert 1 / 1.5 < ratio < 1.5, ratio
 
@@ -104,8 +112,9 @@ def test_correlated_meat_equals_the_dense_bartlett_quadratic_form(start, count):
     # n cov[r_i, r_j] = sum_v rho_v rho_{v+j-i} + rho_{v+j} rho_{v-i} - 2 rho_i rho_v rho_{v-j}
     #                   - 2 rho_j rho_v rho_{v-i} + 2 rho_i rho_j rho_v^2, summed here with
     # numpy.correlate over the even extension, as a dense matrix
-    from corrtransforms.numerics.modal_fit import _correlated_meat
     from corrtransforms.numerics.bartlett import MAX_COVARIANCE_LAGS
+    from corrtransforms.numerics.modal_fit import _correlated_meat
+
     rng = np.random.default_rng(4)
     L = 3000
     model = decaying_cosine(np.arange(L + 1) / FS, 1.0, 2.0, 0.01, -0.01)
@@ -121,10 +130,9 @@ def test_correlated_meat_equals_the_dense_bartlett_quadratic_form(start, count):
     else:
         G, nodes = Jw / sig[:, None], lags
     even = np.concatenate([model[:0:-1], model])
-    c = np.correlate(even, even, "full")[2 * L:]  # c(m) = sum_v rho_v rho_{v+m}, m = 0..2L
+    c = np.correlate(even, even, "full")[2 * L :]  # c(m) = sum_v rho_v rho_{v+m}, m = 0..2L
     i, j = nodes[:, None], nodes[None, :]
-    kernel = (c[np.abs(j - i)] + c[i + j] - 2 * model[i] * c[j] - 2 * model[j] * c[i]
-              + 2 * model[i] * model[j] * c[0])
-    expected = 0.3 ** 2 * G.T @ kernel @ G
+    kernel = c[np.abs(j - i)] + c[i + j] - 2 * model[i] * c[j] - 2 * model[j] * c[i] + 2 * model[i] * model[j] * c[0]
+    expected = 0.3**2 * G.T @ kernel @ G
     got = _correlated_meat(Jw, model, lags, sig, 0.3)
     np.testing.assert_allclose(got, expected, rtol=1e-9, atol=1e-9 * np.abs(expected).max())

@@ -4,6 +4,7 @@ two nights at once do not clobber each other, and a missing state stops with exi
 Invented archive: five minutes of samples at the end of 2024-03-03 and at the start of 2024-03-04
 and 2024-03-05 (UTC), one file each; 60-s windows.
 """
+
 import os
 import shutil
 import signal
@@ -23,15 +24,16 @@ ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 
 
 def _write_chunk(archive, start_us, seconds, seed, prefix):
-    write_files(str(archive), wide_table(samples(seconds, 10.0, seed=seed, start_us=start_us)), seconds, 400,
-                prefix=prefix)
+    write_files(
+        str(archive), wide_table(samples(seconds, 10.0, seed=seed, start_us=start_us)), seconds, 400, prefix=prefix
+    )
 
 
 def _archive(root):
     archive = root / "archive"
-    _write_chunk(archive, T0 - 300 * US, 300, 1, "d1")      # 2024-03-03 23:55 - 24:00
-    _write_chunk(archive, T0, 300, 2, "d2")                 # 2024-03-04 00:00 - 00:05
-    _write_chunk(archive, T0 + DAY, 300, 3, "d3")           # 2024-03-05 00:00 - 00:05
+    _write_chunk(archive, T0 - 300 * US, 300, 1, "d1")  # 2024-03-03 23:55 - 24:00
+    _write_chunk(archive, T0, 300, 2, "d2")  # 2024-03-04 00:00 - 00:05
+    _write_chunk(archive, T0 + DAY, 300, 3, "d3")  # 2024-03-05 00:00 - 00:05
     return write_config(root / "asset.toml", "archive")
 
 
@@ -88,8 +90,9 @@ def test_a_killed_night_leaves_the_previous_output_and_the_rerun_completes(start
     nightly.main(["--config", config, "--output", output, "--date", "2024-03-05"])
     before = _snapshot(output, "2024-03-05")
     _write_chunk(root / "archive", T0 + DAY + 300 * US, 180, 4, "d3-late")  # three more windows arrive
-    process = subprocess.Popen(_nightly_command(config, output, "2024-03-05"), cwd=ROOT,
-                               stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    process = subprocess.Popen(
+        _nightly_command(config, output, "2024-03-05"), cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL
+    )
     temporary = os.path.join(output, "_temporary")
     killed = False
     deadline = time.monotonic() + 120
@@ -133,8 +136,12 @@ def test_two_nights_at_once_do_not_clobber_each_other(started):
     backfill.main(["--config", config, "--output", reference, "--start", "2024-03-03", "--end", "2024-03-04"])
     nightly.main(["--config", config, "--output", reference, "--date", "2024-03-05"])
     # in the shared output: the night of 03-05 and a rerun of 03-04 at the same time
-    processes = [subprocess.Popen(_nightly_command(config, output, d), cwd=ROOT, stdout=subprocess.PIPE,
-                                  stderr=subprocess.PIPE, text=True) for d in ("2024-03-05", "2024-03-04")]
+    processes = [
+        subprocess.Popen(
+            _nightly_command(config, output, d), cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True
+        )
+        for d in ("2024-03-05", "2024-03-04")
+    ]
     for p in processes:
         out, err = p.communicate(timeout=300)
         assert p.returncode == 0, err[-2000:]
@@ -147,8 +154,13 @@ def test_two_nights_at_once_do_not_clobber_each_other(started):
 
 def test_missing_previous_state_exits_with_status_2_and_says_what_to_do(tmp_path):
     config = _archive(tmp_path)
-    done = subprocess.run(_nightly_command(config, str(tmp_path / "empty"), "2024-03-04"), cwd=ROOT,
-                          capture_output=True, text=True, timeout=300)
+    done = subprocess.run(
+        _nightly_command(config, str(tmp_path / "empty"), "2024-03-04"),
+        cwd=ROOT,
+        capture_output=True,
+        text=True,
+        timeout=300,
+    )
     assert done.returncode == nightly.MISSING_STATE == 2
     assert "no detector state before 2024-03-04" in done.stderr and "--rebuild_state" in done.stderr
     assert not os.path.exists(tmp_path / "empty" / "correlations")  # nothing was written

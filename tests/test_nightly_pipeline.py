@@ -4,6 +4,7 @@ Uses a short, sparse version of the invented demo archive (14 days, a record eve
 baseline is the configured first ten days). Every comparison reads the tables back from Parquet
 with pyarrow.dataset, as a user would.
 """
+
 import datetime as dt
 import os
 import shutil
@@ -123,8 +124,8 @@ def test_episodes_from_the_reduced_shifts_equal_those_from_the_whole_table(site)
     # the launcher reads only shifted rows and each series' latest row per file; the summary
     # must be exactly the one built from every row
     from corrtransforms import tables
-    from corrtransforms.stages import summaries
     from corrtransforms.beam.output_tables import episode_evidence, read_partitions
+    from corrtransforms.stages import summaries
 
     _, config, full = site
     whole = read_partitions(full, "shifts", "footbridge", tables.SHIFTS)
@@ -132,8 +133,12 @@ def test_episodes_from_the_reduced_shifts_equal_those_from_the_whole_table(site)
     assert reduced.num_rows < whole.num_rows
     assert summaries.shift_episodes(reduced).equals(summaries.shift_episodes(whole))
     written = ds.dataset(os.path.join(full, "episodes"), format="parquet").to_table()
-    assert written.drop_columns([c for c in written.column_names if c not in tables.EPISODES.names]) \
-        .select(tables.EPISODES.names).to_pylist() == summaries.shift_episodes(whole).to_pylist()
+    assert (
+        written.drop_columns([c for c in written.column_names if c not in tables.EPISODES.names])
+        .select(tables.EPISODES.names)
+        .to_pylist()
+        == summaries.shift_episodes(whole).to_pylist()
+    )
 
 
 def test_nights_update_the_episodes_as_one_backfill_writes_them(site):
@@ -144,16 +149,19 @@ def test_nights_update_the_episodes_as_one_backfill_writes_them(site):
     backfill.main(["--config", config, "--output", stepwise, "--start", "2025-05-01", "--end", "2025-05-11"])
     for day in ("2025-05-12", "2025-05-13", "2025-05-14"):
         nightly.main(["--config", config, "--output", stepwise, "--date", day])
-    episodes = [ds.dataset(os.path.join(out, "episodes"), format="parquet").to_table().to_pylist()
-                for out in (full, stepwise)]
+    episodes = [
+        ds.dataset(os.path.join(out, "episodes"), format="parquet").to_table().to_pylist() for out in (full, stepwise)
+    ]
     assert episodes[0] == episodes[1]
     # the evidence behind them (shifted rows and each series' latest row), folded night by night,
     # equals the evidence of the whole table read at once
     import pyarrow.parquet as pq
+
     from corrtransforms.beam.output_tables import EPISODE_EVIDENCE, summary_path
 
-    evidence = [_sorted_rows(pq.read_table(summary_path(out, "footbridge", EPISODE_EVIDENCE)))
-                for out in (full, stepwise)]
+    evidence = [
+        _sorted_rows(pq.read_table(summary_path(out, "footbridge", EPISODE_EVIDENCE))) for out in (full, stepwise)
+    ]
     assert evidence[0] and evidence[0] == evidence[1]
 
 
@@ -173,16 +181,20 @@ def test_read_back_summaries_equal_reading_every_file(site, tmp_path):
     _, _, full = site
     out = str(tmp_path / "out")
     shutil.copytree(full, out)
-    cases = [("shifts", tables.SHIFTS, ot.episode_evidence, ot.EPISODE_EVIDENCE, ot.EPISODE_COLUMNS),
-             ("state", tables.STATE, ot.latest_states, ot.LATEST_STATE, None)]
+    cases = [
+        ("shifts", tables.SHIFTS, ot.episode_evidence, ot.EPISODE_EVIDENCE, ot.EPISODE_COLUMNS),
+        ("state", tables.STATE, ot.latest_states, ot.LATEST_STATE, None),
+    ]
 
     def reference(table, schema, keep, columns, before=None):
-        return _sorted_rows(ot.read_partitions(out, table, "footbridge", schema, before=before, columns=columns,
-                                               keep=keep))
+        return _sorted_rows(
+            ot.read_partitions(out, table, "footbridge", schema, before=before, columns=columns, keep=keep)
+        )
 
     def summarized(table, schema, keep, name, columns, before=None):
-        return _sorted_rows(ot.summarize_partitions(out, table, "footbridge", schema, keep, name, before=before,
-                                                    columns=columns))
+        return _sorted_rows(
+            ot.summarize_partitions(out, table, "footbridge", schema, keep, name, before=before, columns=columns)
+        )
 
     for table, schema, keep, name, columns in cases:
         want = reference(table, schema, keep, columns)
@@ -194,7 +206,7 @@ def test_read_back_summaries_equal_reading_every_file(site, tmp_path):
         with open(victim, "wb") as handle:
             handle.write(b"not parquet")
         assert summarized(table, schema, keep, name, columns) == want
-        with pytest.raises(Exception):  # ... while reading every file would fail on it
+        with pytest.raises(Exception):  # noqa: B017 - any reader error: reading every file would fail on it
             reference(table, schema, keep, columns)
         with open(victim, "wb") as handle:
             handle.write(original)
@@ -204,15 +216,15 @@ def test_read_back_summaries_equal_reading_every_file(site, tmp_path):
         assert summarized(table, schema, keep, name, columns) == want
         # only dates before a day: not the summary of later days
         before = dt.date.fromisoformat(files[5][0])
-        assert summarized(table, schema, keep, name, columns, before) == reference(table, schema, keep, columns,
-                                                                                   before)
+        assert summarized(table, schema, keep, name, columns, before) == reference(table, schema, keep, columns, before)
         assert summarized(table, schema, keep, name, columns) == want
         # a damaged summary is rebuilt
         with open(ot.summary_path(out, "footbridge", name), "wb") as handle:
             handle.write(b"\x00" * 64)
         assert summarized(table, schema, keep, name, columns) == want
-        assert not [n for n in os.listdir(os.path.dirname(ot.summary_path(out, "footbridge", name)))
-                    if n.endswith(".tmp")]
+        assert not [
+            n for n in os.listdir(os.path.dirname(ot.summary_path(out, "footbridge", name))) if n.endswith(".tmp")
+        ]
 
 
 def test_summaries_read_the_same_through_the_local_store_and_beam_filesystems(site, tmp_path):
@@ -226,17 +238,21 @@ def test_summaries_read_the_same_through_the_local_store_and_beam_filesystems(si
     out = str(tmp_path / "out")
     shutil.copytree(full, out)
     local = LocalFiles()
-    assert summaries.partition_files(local, out, "state", "footbridge") == ot.partition_files(out, "state", "footbridge")
+    assert summaries.partition_files(local, out, "state", "footbridge") == ot.partition_files(
+        out, "state", "footbridge"
+    )
     assert summaries.partition_files(local, out, "state", "nobody") == []
     whole = summaries.read_partitions(local, out, "shifts", "footbridge", tables.SHIFTS)
     assert whole.num_rows > 0
     assert _sorted_rows(whole) == _sorted_rows(ot.read_partitions(out, "shifts", "footbridge", tables.SHIFTS))
     shutil.rmtree(os.path.join(out, summaries.SUMMARIES))
-    latest = summaries.summarize_partitions(local, out, "state", "footbridge", tables.STATE, summaries.latest_states,
-                                            summaries.LATEST_STATE)
+    latest = summaries.summarize_partitions(
+        local, out, "state", "footbridge", tables.STATE, summaries.latest_states, summaries.LATEST_STATE
+    )
     assert os.path.exists(summaries.summary_path(local, out, "footbridge", summaries.LATEST_STATE))
-    assert _sorted_rows(latest) == _sorted_rows(ot.summarize_partitions(
-        out, "state", "footbridge", tables.STATE, ot.latest_states, ot.LATEST_STATE))
+    assert _sorted_rows(latest) == _sorted_rows(
+        ot.summarize_partitions(out, "state", "footbridge", tables.STATE, ot.latest_states, ot.LATEST_STATE)
+    )
 
 
 def test_a_night_after_a_gap_says_how_many_days_were_missing_and_a_day_without_data_is_status_3(site, tmp_path):
@@ -250,9 +266,16 @@ def test_a_night_after_a_gap_says_how_many_days_were_missing_and_a_day_without_d
     output = str(tmp_path / "copy")
     shutil.copytree(full, output)
     repo = os.path.dirname(DEMO_DIR)
-    done = subprocess.run([sys.executable, "-m", "pipelines.nightly", "--config", config, "--output", output,
-                           "--date", "2025-05-17"], capture_output=True, text=True, cwd=repo, timeout=300)
+    done = subprocess.run(
+        [sys.executable, "-m", "pipelines.nightly", "--config", config, "--output", output, "--date", "2025-05-17"],
+        capture_output=True,
+        text=True,
+        cwd=repo,
+        timeout=300,
+    )
     assert done.returncode == 3, done.stderr
-    assert ("resuming from the state of 2025-05-14: 2 days without state in between (2025-05-15 to 2025-05-16)"
-            in done.stdout)
+    assert (
+        "resuming from the state of 2025-05-14: 2 days without state in between (2025-05-15 to 2025-05-16)"
+        in done.stdout
+    )
     assert "no data in 2025-05-17" in done.stderr and "the last data seen ends 2025-05-14" in done.stderr

@@ -4,6 +4,7 @@ Asset names become folder names, so the configuration only accepts letters, digi
 Channel names (from the configuration or from an archive's channel column) only ever appear inside
 files, as column values: a channel called "../x" is a row value, never a path.
 """
+
 import os
 
 import numpy as np
@@ -14,8 +15,24 @@ from pipelines.report import plot_file_name
 from tests.archive_data import long_table, samples, wide_table, write_files
 from tests.reliability_data import read_table, run_backfill, write_config
 
-ODD_ASSET_NAMES = ["../x", "a/b", "a\\b", "..", ".", "/abs", "x y", "name:1", "tab\t", "nul\x00", "", "é", "a" * 65,
-                   "~user", "$HOME", "C:"]
+ODD_ASSET_NAMES = [
+    "../x",
+    "a/b",
+    "a\\b",
+    "..",
+    ".",
+    "/abs",
+    "x y",
+    "name:1",
+    "tab\t",
+    "nul\x00",
+    "",
+    "é",
+    "a" * 65,
+    "~user",
+    "$HOME",
+    "C:",
+]
 ODD_CHANNELS = ["../x", "..", "a/b", "c\\d", "/abs/path", " spaced name ", "é-ü"]
 
 
@@ -40,11 +57,21 @@ def _assert_inside(tmp_path, output, archive_files):
         assert path.startswith(output + os.sep) or path in allowed or path.endswith(".toml"), path
     for path in _every_file(output):  # and inside the output, only the table layout
         relative = os.path.relpath(path, output).split(os.sep)
-        assert relative[0] in ("correlations", "indicators", "shifts", "state", "rejects", "episodes", "_summaries", "_runs",
-                               "report"), path
+        assert relative[0] in (
+            "correlations",
+            "indicators",
+            "shifts",
+            "state",
+            "rejects",
+            "episodes",
+            "_summaries",
+            "_runs",
+            "report",
+        ), path
         if relative[0] == "report":  # report/index.html, report/plots/<asset>/<picture>.png
-            assert relative[1:2] == ["index.html"] or (relative[1] == "plots" and relative[2] == "odd-asset"
-                                                         and len(relative) == 4), path
+            assert relative[1:2] == ["index.html"] or (
+                relative[1] == "plots" and relative[2] == "odd-asset" and len(relative) == 4
+            ), path
         else:
             assert relative[1] == "asset=odd-asset", path
 

@@ -8,6 +8,7 @@ The build runs on a copy of the project's files in a temporary folder (the share
 alone): sdist with setuptools' PEP 517 backend, then the wheel from the unpacked sdist with
 ``pip wheel --no-deps --no-build-isolation`` (no download: setuptools and wheel are test extras).
 """
+
 from __future__ import annotations
 
 import configparser
@@ -25,25 +26,58 @@ import corrtransforms
 
 REPO = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 VERSION = corrtransforms.__version__
-COPIED = ("setup.cfg", "setup.py", "pyproject.toml", "README.md", "MANIFEST.in", "requirements-worker.txt",
-          "corrtransforms", "pipelines", "demo_data", "docs")
+COPIED = (
+    "setup.cfg",
+    "setup.py",
+    "pyproject.toml",
+    "README.md",
+    "MANIFEST.in",
+    "requirements-worker.txt",
+    "corrtransforms",
+    "pipelines",
+    "demo_data",
+    "docs",
+)
 #: modules a worker imports (the Beam layer and everything it reaches), and the demo's files
-REQUIRED = ("corrtransforms/__init__.py", "corrtransforms/config.py", "corrtransforms/stages/plan.py",
-            "corrtransforms/stages/read.py", "corrtransforms/stages/write.py",
-            "corrtransforms/beam/__init__.py", "corrtransforms/beam/plan.py", "corrtransforms/beam/read.py",
-            "corrtransforms/beam/correlate.py", "corrtransforms/beam/write.py", "corrtransforms/beam/filesystems.py",
-            "corrtransforms/beam/metrics.py", "corrtransforms/beam/monitor.py",
-            "corrtransforms/beam/shifts.py", "corrtransforms/beam/indicators.py",
-            "corrtransforms/beam/output_tables.py",
-            "corrtransforms/launch/__init__.py", "corrtransforms/launch/common.py",
-            "corrtransforms/launch/backfill.py", "corrtransforms/launch/nightly.py",
-            "corrtransforms/launch/report.py", "corrtransforms/report/__init__.py",
-            "corrtransforms/report/summaries.py", "corrtransforms/report/plots.py",
-            "corrtransforms/report/page.py", "corrtransforms/report/files.py")
+REQUIRED = (
+    "corrtransforms/__init__.py",
+    "corrtransforms/config.py",
+    "corrtransforms/stages/plan.py",
+    "corrtransforms/stages/read.py",
+    "corrtransforms/stages/write.py",
+    "corrtransforms/beam/__init__.py",
+    "corrtransforms/beam/plan.py",
+    "corrtransforms/beam/read.py",
+    "corrtransforms/beam/correlate.py",
+    "corrtransforms/beam/write.py",
+    "corrtransforms/beam/filesystems.py",
+    "corrtransforms/beam/metrics.py",
+    "corrtransforms/beam/monitor.py",
+    "corrtransforms/beam/shifts.py",
+    "corrtransforms/beam/indicators.py",
+    "corrtransforms/beam/output_tables.py",
+    "corrtransforms/launch/__init__.py",
+    "corrtransforms/launch/common.py",
+    "corrtransforms/launch/backfill.py",
+    "corrtransforms/launch/nightly.py",
+    "corrtransforms/launch/report.py",
+    "corrtransforms/report/__init__.py",
+    "corrtransforms/report/summaries.py",
+    "corrtransforms/report/plots.py",
+    "corrtransforms/report/page.py",
+    "corrtransforms/report/files.py",
+)
 #: files of the checkout that the sdist carries and the wheel does not install
-CHECKOUT_ONLY = ("pipelines/__init__.py", "pipelines/backfill.py", "pipelines/nightly.py", "pipelines/report.py",
-                 "demo_data/__init__.py", "demo_data/generate.py", "demo_data/footbridge.toml",
-                 "demo_data/expected_changes.json")
+CHECKOUT_ONLY = (
+    "pipelines/__init__.py",
+    "pipelines/backfill.py",
+    "pipelines/nightly.py",
+    "pipelines/report.py",
+    "demo_data/__init__.py",
+    "demo_data/generate.py",
+    "demo_data/footbridge.toml",
+    "demo_data/expected_changes.json",
+)
 COMMANDS = ("corrtransforms-backfill", "corrtransforms-nightly", "corrtransforms-report")
 
 pytestmark = pytest.mark.slow
@@ -69,16 +103,32 @@ def built(tmp_path_factory):
             shutil.copy2(origin, source / name)
     dist = root / "dist"
     dist.mkdir()
-    _run([sys.executable, "-c", f"from setuptools import build_meta; build_meta.build_sdist({str(dist)!r})"],
-         cwd=str(source))
+    _run(
+        [sys.executable, "-c", f"from setuptools import build_meta; build_meta.build_sdist({str(dist)!r})"],
+        cwd=str(source),
+    )
     sdists = list(dist.glob("*.tar.gz"))
     assert [p.name for p in sdists] == [f"corrtransforms-{VERSION}.tar.gz"]
     unpacked = root / "unpacked"
     with tarfile.open(sdists[0]) as archive:
         archive.extractall(unpacked, filter="data")
     wheels = root / "wheels"
-    _run([sys.executable, "-m", "pip", "wheel", "--no-deps", "--no-build-isolation", "--no-index",
-          "--quiet", "-w", str(wheels), str(unpacked / f"corrtransforms-{VERSION}")], cwd=str(root))
+    _run(
+        [
+            sys.executable,
+            "-m",
+            "pip",
+            "wheel",
+            "--no-deps",
+            "--no-build-isolation",
+            "--no-index",
+            "--quiet",
+            "-w",
+            str(wheels),
+            str(unpacked / f"corrtransforms-{VERSION}"),
+        ],
+        cwd=str(root),
+    )
     found = list(wheels.glob("*.whl"))
     assert [p.name for p in found] == [f"corrtransforms-{VERSION}-py3-none-any.whl"]
     return root, sdists[0], found[0]
@@ -88,8 +138,11 @@ def test_sdist_holds_the_sources_and_not_the_demo_archive(built):
     _, sdist, _ = built
     with tarfile.open(sdist) as archive:
         names = {n.split("/", 1)[1] for n in archive.getnames() if "/" in n}
-    for required in REQUIRED + CHECKOUT_ONLY + ("setup.cfg", "setup.py", "pyproject.toml", "requirements-worker.txt",
-                                "docs/cluster.md"):
+    for required in (
+        REQUIRED
+        + CHECKOUT_ONLY
+        + ("setup.cfg", "setup.py", "pyproject.toml", "requirements-worker.txt", "docs/cluster.md")
+    ):
         assert required in names, required
     assert not [n for n in names if n.startswith("demo_data/archive") or n.endswith(".parquet")]
 
@@ -147,8 +200,22 @@ print(corrtransforms.__version__)
     assert done.stdout.strip() == VERSION
     # the demo stays runnable from the checkout: the generator's command line, one day, one
     # record in twelve hours
-    _run([sys.executable, "-m", "demo_data.generate", "--out", str(tmp_path / "site" / "archive"), "--days", "1",
-          "--every-hours", "12", "--config-out", str(tmp_path / "site" / "footbridge.toml")], cwd=REPO)
+    _run(
+        [
+            sys.executable,
+            "-m",
+            "demo_data.generate",
+            "--out",
+            str(tmp_path / "site" / "archive"),
+            "--days",
+            "1",
+            "--every-hours",
+            "12",
+            "--config-out",
+            str(tmp_path / "site" / "footbridge.toml"),
+        ],
+        cwd=REPO,
+    )
     assert len(list((tmp_path / "site" / "archive").rglob("*.parquet"))) == 2
     from corrtransforms.config import load_config
 
@@ -164,10 +231,24 @@ def test_the_installed_commands_run_in_a_clean_environment(built, tmp_path):
     venv = tmp_path / "venv"
     _run([sys.executable, "-m", "venv", "--without-pip", str(venv)], cwd=str(tmp_path))
     python = venv / "bin" / "python"
-    _run([sys.executable, "-m", "pip", "--python", str(python), "install", "--no-deps", "--no-index", "--quiet",
-          str(wheel)], cwd=str(tmp_path))
-    site = _run([str(python), "-c", "import sysconfig; print(sysconfig.get_paths()['purelib'])"],
-                cwd=str(tmp_path)).stdout.strip()
+    _run(
+        [
+            sys.executable,
+            "-m",
+            "pip",
+            "--python",
+            str(python),
+            "install",
+            "--no-deps",
+            "--no-index",
+            "--quiet",
+            str(wheel),
+        ],
+        cwd=str(tmp_path),
+    )
+    site = _run(
+        [str(python), "-c", "import sysconfig; print(sysconfig.get_paths()['purelib'])"], cwd=str(tmp_path)
+    ).stdout.strip()
     dependencies = [p for p in sys.path if p.endswith("site-packages")]
     with open(os.path.join(site, "zz_dependencies.pth"), "w") as handle:
         handle.write("\n".join(dependencies) + "\n")

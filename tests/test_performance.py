@@ -13,6 +13,7 @@ compute what they claim.
   ``scipy.signal.correlate`` gives (the floor's lag sums, the script's coefficients) on a small
   invented archive.
 """
+
 from __future__ import annotations
 
 import dataclasses
@@ -22,11 +23,10 @@ import pyarrow.parquet as pq
 import pytest
 import scipy.signal
 
-from corrtransforms.numerics import spectra
-from corrtransforms.numerics import record_memory, segments
-from corrtransforms.stages import screen as st
 from corrtransforms.config import ScreeningConfig
+from corrtransforms.numerics import record_memory, segments, spectra
 from corrtransforms.records import WindowBlock
+from corrtransforms.stages import screen as st
 
 FS = 50.0
 
@@ -36,14 +36,20 @@ def _block(rng, n=6000, channels=4, gaps=False) -> WindowBlock:
     # burst half-way (so some subject is flagged)
     x = scipy.signal.lfilter([1.0], [1.0, -0.8], rng.standard_normal((n, channels)), axis=0)
     x += 0.7 * scipy.signal.lfilter([1.0], [1.0, -0.5], rng.standard_normal(n))[:, None]
-    x[n // 2:n // 2 + 400, 2] *= 5.0
+    x[n // 2 : n // 2 + 400, 2] *= 5.0
     valid = np.ones_like(x, dtype=bool)
     if gaps:
         valid[rng.random(x.shape) < 0.02] = False
         valid[1000:1300, 1] = False
-    return WindowBlock(asset="a", window_start_us=0, window_length_s=n / FS, sample_rate_hz=FS,
-                       channels=tuple(f"c{i}" for i in range(channels)), values=np.where(valid, x, 0.0),
-                       valid=valid)
+    return WindowBlock(
+        asset="a",
+        window_start_us=0,
+        window_length_s=n / FS,
+        sample_rate_hz=FS,
+        channels=tuple(f"c{i}" for i in range(channels)),
+        values=np.where(valid, x, 0.0),
+        valid=valid,
+    )
 
 
 @pytest.mark.parametrize("gaps", [False, True])
@@ -68,8 +74,17 @@ def test_batched_screening_equals_screening_each_subject(gaps):
             a, b = names[i], names[j]
             memory = max(alone[a].memory_s, alone[b].memory_s)
             count = record_memory.segments_for_record(block.n_samples / FS, memory, 20)
-            want = st.screen_pair(block.values[:, i], block.valid[:, i], block.values[:, j], block.valid[:, j],
-                                  FS, count, 0.05, f"{a}:{b}", memory)
+            want = st.screen_pair(
+                block.values[:, i],
+                block.valid[:, i],
+                block.values[:, j],
+                block.valid[:, j],
+                FS,
+                count,
+                0.05,
+                f"{a}:{b}",
+                memory,
+            )
             got = window.subjects[f"{a}:{b}"]
             assert got.segments == want.segments
             np.testing.assert_allclose(got.p_value, want.p_value, rtol=1e-12)
@@ -90,6 +105,7 @@ def test_time_scales_of_several_records_equal_one_at_a_time():
 def _full_median_lines(power, width, threshold, reach):
     # the reference: scipy's running median over every ordinate, mirrored ends
     import scipy.ndimage
+
     local = scipy.ndimage.median_filter(power, size=width, mode="mirror")
     found = power > threshold * np.maximum(local, 1e-300)
     if reach and found.any():
@@ -139,13 +155,12 @@ def test_memory_limit_keeps_time_scales_below_it_and_marks_longer_memory():
         else:
             assert full.memory_s < limit
             assert capped.memory_s == pytest.approx(full.memory_s, rel=1e-6)
-            assert capped.degrees_of_freedom_per_sample == pytest.approx(full.degrees_of_freedom_per_sample,
-                                                                         rel=1e-6)
+            assert capped.degrees_of_freedom_per_sample == pytest.approx(full.degrees_of_freedom_per_sample, rel=1e-6)
     # a lightly damped mode (envelope decay 16 s at 2 Hz, damping 0.005) is too long with or
     # without the limit, although its |rho| at the limit itself may be in a trough
     t = np.arange(n) / fs
     wn, zeta = 2 * np.pi * 2.0, 0.005
-    system = scipy.signal.lti([wn ** 2], [1, 2 * zeta * wn, wn ** 2])
+    system = scipy.signal.lti([wn**2], [1, 2 * zeta * wn, wn**2])
     _, y, _ = scipy.signal.lsim(system, rng.standard_normal(n), t)
     assert record_memory.correlation_time_scales(y, None, fs, limit).memory_s > limit
 
@@ -168,8 +183,8 @@ def test_segment_statistics_of_rows_match_numpy_and_do_not_depend_on_the_batch()
             for i in range(count):
                 seg = slice(i * length, (i + 1) * length)
                 dev = x[seg][ok[seg]] - center
-                assert got.mean_product[i] == pytest.approx(np.mean(dev ** 2), rel=1e-12)
-                assert got.kurtosis[i] == pytest.approx(np.mean(dev ** 4) / np.mean(dev ** 2) ** 2, rel=1e-12)
+                assert got.mean_product[i] == pytest.approx(np.mean(dev**2), rel=1e-12)
+                assert got.kurtosis[i] == pytest.approx(np.mean(dev**4) / np.mean(dev**2) ** 2, rel=1e-12)
                 assert got.mean[i] == pytest.approx(np.mean(x[seg][ok[seg]]), rel=1e-12, abs=1e-12)
             alone = segments.segment_statistics(block.values[:, row], block.valid[:, row], count)
             for field in ("valid_count", "mean", "mean_product", "kurtosis"):  # a batch of one: the same bits
@@ -195,14 +210,21 @@ def test_cross_products_of_a_window_match_numpy():
             ca, cb = records[a][both].mean(), records[b][both].mean()
             length = records.shape[1] // count
             # reference: numpy mean of (a - a_bar)(b - b_bar) per segment (Bendat & Piersol Sect. 10.3)
-            want = [np.mean(((records[a] - ca) * (records[b] - cb))[i * length:(i + 1) * length]
-                            [both[i * length:(i + 1) * length]]) for i in range(count)]
+            want = [
+                np.mean(
+                    ((records[a] - ca) * (records[b] - cb))[i * length : (i + 1) * length][
+                        both[i * length : (i + 1) * length]
+                    ]
+                )
+                for i in range(count)
+            ]
             assert got.segment_length == length
             np.testing.assert_allclose(got.mean_product, want, rtol=1e-10)
 
 
 # --------------------------------------------------------------------------------------------
 # The benchmark's baseline and floor (benchmarks/scale_script.py, benchmarks/scale_floor.py)
+
 
 @pytest.fixture(scope="module")
 def one_hour_archive(tmp_path_factory):
@@ -220,7 +242,8 @@ def _window_records(archive, window):
     table = pq.read_table(path, columns=list(scale_archive.CHANNELS))
     n = 60_000
     return np.column_stack([table.column(c).to_numpy().astype(float) for c in scale_archive.CHANNELS])[
-        window * n:(window + 1) * n]
+        window * n : (window + 1) * n
+    ]
 
 
 def test_floor_lag_sums_equal_scipy_correlate(one_hour_archive):
@@ -258,7 +281,7 @@ def test_plain_script_coefficients_and_indicators(one_hour_archive, tmp_path):
     scale = np.sqrt((x[:, 0] ** 2).mean() * (x[:, 7] ** 2).mean())
     for k in (-3, 0, 5, 1000):
         # closed form of the biased estimate: sum_t a(t) b(t + k) / n, over the overlap
-        direct = (np.dot(x[:n - k, 0], x[k:, 7]) if k >= 0 else np.dot(x[-k:, 0], x[:n + k, 7])) / n
+        direct = (np.dot(x[: n - k, 0], x[k:, 7]) if k >= 0 else np.dot(x[-k:, 0], x[: n + k, 7])) / n
         assert rho[k + 1000] == pytest.approx(direct / scale, rel=2e-5, abs=2e-7)  # float32 storage
     # the invented ground-borne delay: acc8 sees the component 5 samples (50 ms) after acc7
     lags = indicators[(indicators.subject == "acc7:acc8") & (indicators.indicator == "lag_s")]["value"]
@@ -281,8 +304,15 @@ def test_screening_a_one_channel_window_leaves_the_block_as_it_was():
     # the transposed rows of a one-channel block are a view of it: screening must not write there
     x = scipy.signal.lfilter([1.0], [1.0, -0.8], np.random.default_rng(14).standard_normal((6000, 1)), axis=0)
     x[100] = np.nan
-    block = WindowBlock(asset="a", window_start_us=0, window_length_s=6000 / FS, sample_rate_hz=FS,
-                        channels=("c0",), values=x, valid=np.ones_like(x, dtype=bool))
+    block = WindowBlock(
+        asset="a",
+        window_start_us=0,
+        window_length_s=6000 / FS,
+        sample_rate_hz=FS,
+        channels=("c0",),
+        values=x,
+        valid=np.ones_like(x, dtype=bool),
+    )
     valid_before = block.valid.copy()
     st.screen_window(block, ScreeningConfig(), None)
     np.testing.assert_array_equal(block.valid, valid_before)

@@ -13,6 +13,7 @@ Each environment runs the backfill (days up to 2025-05-13) and the nightly job (
 few days of the demo archive with broken inputs; every output file (tables, partitions, part-file
 names, rows, schemas and metadata, and the episodes summary) must equal the in-process run's.
 """
+
 from __future__ import annotations
 
 import os
@@ -72,8 +73,13 @@ def worker_pool(tmp_path_factory):
     env["PATH"] = os.path.dirname(sys.executable) + os.pathsep + env.get("PATH", "")
     env["PYTHONPATH"] = REPO + os.pathsep + env.get("PYTHONPATH", "")
     with open(log_path, "w") as log:
-        pool = subprocess.Popen([sys.executable, "-m", "apache_beam.runners.worker.worker_pool_main",
-                                 "--service_port=0"], cwd=str(cwd), env=env, stdout=log, stderr=log)
+        pool = subprocess.Popen(
+            [sys.executable, "-m", "apache_beam.runners.worker.worker_pool_main", "--service_port=0"],
+            cwd=str(cwd),
+            env=env,
+            stdout=log,
+            stderr=log,
+        )
     address = None
     deadline = time.monotonic() + 60
     while address is None and time.monotonic() < deadline and pool.poll() is None:
@@ -146,8 +152,9 @@ def test_portable_runner_separate_worker_process_equals_in_process(site, in_proc
     reference, first_ref, listing_ref, second_ref = in_process
     address, log_path = worker_pool
     output = str(tmp_path / "out")
-    first, listing, second = _run_both(config, output, PORTABLE + ["--environment_type=EXTERNAL",
-                                                                   f"--environment_config={address}"])
+    first, listing, second = _run_both(
+        config, output, PORTABLE + ["--environment_type=EXTERNAL", f"--environment_config={address}"]
+    )
     _assert_same_outputs(output, reference, listing, listing_ref)
     assert first == first_ref and second == second_ref
     # the work ran in worker processes that the pool started (one per job: backfill, nightly)

@@ -11,6 +11,7 @@ Budget: ``CORRTRANSFORMS_FUZZ_EXAMPLES`` examples of the in-memory path (default
 sets 500) and a twenty-fifth of that (at least 3) through the Beam pipeline. Examples are
 derandomized (the same every run) unless ``CORRTRANSFORMS_FUZZ_RANDOM=1``.
 """
+
 import os
 import shutil
 import tempfile
@@ -21,18 +22,33 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from corrtransforms.stages.plan import list_local_archive, plan_archive
 from corrtransforms.config import load_config
 from corrtransforms.stages.analyse import analyse_window
+from corrtransforms.stages.plan import list_local_archive, plan_archive
 from corrtransforms.stages.read import read_task
-from tests.reliability_data import (CORRELATION_KEY, INDICATOR_KEY, canonical, clean_columns, per_window,
-                                    read_table, reject_rows, rows_by_key, run_backfill, windows_with_findings,
-                                    write_clean_archive, write_config)
+from tests.reliability_data import (
+    CORRELATION_KEY,
+    INDICATOR_KEY,
+    canonical,
+    clean_columns,
+    per_window,
+    read_table,
+    reject_rows,
+    rows_by_key,
+    run_backfill,
+    windows_with_findings,
+    write_clean_archive,
+    write_config,
+)
 
 EXAMPLES = int(os.environ.get("CORRTRANSFORMS_FUZZ_EXAMPLES", "20"))
 BEAM_EXAMPLES = max(3, EXAMPLES // 25)
-FUZZ = dict(deadline=None, database=None, derandomize=os.environ.get("CORRTRANSFORMS_FUZZ_RANDOM") != "1",
-            suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow])
+FUZZ = dict(
+    deadline=None,
+    database=None,
+    derandomize=os.environ.get("CORRTRANSFORMS_FUZZ_RANDOM") != "1",
+    suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow],
+)
 MINUTES = 6  # three files of two minutes: windows 0-5
 
 
@@ -47,8 +63,10 @@ def clean_archive(tmp_path_factory):
     assert planned == MINUTES and len(blocks) == MINUTES and rejects == []
     run_backfill(config_path, str(root / "out"))
     out = str(root / "out")
-    tables = {"correlations": per_window(rows_by_key(read_table(out, "correlations"), CORRELATION_KEY)),
-              "indicators": per_window(rows_by_key(read_table(out, "indicators"), INDICATOR_KEY))}
+    tables = {
+        "correlations": per_window(rows_by_key(read_table(out, "correlations"), CORRELATION_KEY)),
+        "indicators": per_window(rows_by_key(read_table(out, "indicators"), INDICATOR_KEY)),
+    }
     return _Clean(root=root, files=files, blocks=blocks, tables=tables)
 
 
@@ -79,9 +97,13 @@ def _core_run(config):
 
 
 def _block_signature(block):
-    return (block.channels, block.values.tobytes(), block.valid.tobytes(),
-            tuple(sorted((k, canonical(v)) for k, v in block.covariates.items())),
-            tuple(sorted(block.channel_quality.items())))
+    return (
+        block.channels,
+        block.values.tobytes(),
+        block.valid.tobytes(),
+        tuple(sorted((k, canonical(v)) for k, v in block.covariates.items())),
+        tuple(sorted(block.channel_quality.items())),
+    )
 
 
 # --------------------------------------------------------------------------------------------
@@ -117,8 +139,13 @@ def _schema(path, data):
         table = table.set_column(i, name, table.column(name).cast(pa.int64(), safe=False))
     elif action == "to_float32":
         column = table.column(name)
-        table = table.set_column(i, name, column.cast(pa.float32()) if pa.types.is_floating(column.type)
-                                 else column.cast(pa.int64(), safe=False).cast(pa.float64()))
+        table = table.set_column(
+            i,
+            name,
+            column.cast(pa.float32())
+            if pa.types.is_floating(column.type)
+            else column.cast(pa.int64(), safe=False).cast(pa.float64()),
+        )
     pq.write_table(table, path, row_group_size=400, write_page_checksum=True, compression="zstd")
     return action in ("to_int", "to_float32") and name != "time"
 
@@ -126,8 +153,10 @@ def _schema(path, data):
 corruptions = st.one_of(
     st.tuples(st.just(_flip), st.lists(st.tuples(st.floats(0, 1), st.integers(1, 255)), min_size=1, max_size=6)),
     st.tuples(st.just(_truncate), st.floats(0, 0.999)),
-    st.tuples(st.just(_schema), st.tuples(st.sampled_from(["drop", "rename", "to_string", "to_int", "to_float32"]),
-                                          st.integers(0, 3))),
+    st.tuples(
+        st.just(_schema),
+        st.tuples(st.sampled_from(["drop", "rename", "to_string", "to_int", "to_float32"]), st.integers(0, 3)),
+    ),
 )
 
 
@@ -159,8 +188,9 @@ def test_corrupted_files_never_crash_and_never_yield_a_wrong_window(clean_archiv
         if start in exempt_us:
             continue
         if start not in clean or _block_signature(block) != _block_signature(clean[start]):
-            assert findings.get(start), (f"window {start} differs from the clean run without a finding; "
-                                         f"corruption {corruption} of file {target}")
+            assert findings.get(start), (
+                f"window {start} differs from the clean run without a finding; corruption {corruption} of file {target}"
+            )
     # nothing silently lost: a clean window that is not computed is rejected, or its file is
     lost = set(clean) - set(blocks)
     if lost:
@@ -175,8 +205,10 @@ def test_corrupted_files_through_the_pipeline(clean_archive, target, corruption)
         counters = run_backfill(config_path, os.path.join(folder, "out"))
         out = os.path.join(folder, "out")
         rejects = reject_rows(out)
-        got = {"correlations": per_window(rows_by_key(read_table(out, "correlations"), CORRELATION_KEY)),
-               "indicators": per_window(rows_by_key(read_table(out, "indicators"), INDICATOR_KEY))}
+        got = {
+            "correlations": per_window(rows_by_key(read_table(out, "correlations"), CORRELATION_KEY)),
+            "indicators": per_window(rows_by_key(read_table(out, "indicators"), INDICATOR_KEY)),
+        }
     assert counters.get("windows_computed", 0) + counters.get("windows_rejected", 0) == counters["windows_planned"]
     findings = windows_with_findings(rejects)
     for table in ("correlations", "indicators"):

@@ -16,6 +16,7 @@ Every kind also checks: every other window is bit-identical to the clean run (co
 indicators), windows planned = computed + rejected (counters and tables), and every window whose
 rows differ from the clean run has a window-level finding in the rejects table.
 """
+
 import os
 
 import numpy as np
@@ -24,9 +25,22 @@ import pyarrow.parquet as pq
 import pytest
 
 from tests.archive_data import T0, US, wide_table, window_rows
-from tests.reliability_data import (CORRELATION_KEY, INDICATOR_KEY, RATE, ROW_GROUP, clean_columns, per_window,
-                                    read_table, reject_rows, rows_by_key, run_backfill, whole_window_rejects,
-                                    windows_with_findings, write_clean_archive, write_config)
+from tests.reliability_data import (
+    CORRELATION_KEY,
+    INDICATOR_KEY,
+    RATE,
+    ROW_GROUP,
+    clean_columns,
+    per_window,
+    read_table,
+    reject_rows,
+    rows_by_key,
+    run_backfill,
+    whole_window_rejects,
+    windows_with_findings,
+    write_clean_archive,
+    write_config,
+)
 
 PERIOD_US = int(US / RATE)
 
@@ -138,8 +152,10 @@ def jitter_beyond_tolerance(folder, files, cols, rng):
 def sample_rate_change(folder, files, cols, rng):
     n = 120 * 12  # minutes 4-6 written at 12 Hz instead of 10 Hz
     times = T0 + 4 * 60 * US + np.round(np.arange(n) * US / 12).astype(np.int64)
-    _rewrite(files[2], {"time": times, "a": rng.standard_normal(n), "b": rng.standard_normal(n),
-                        "temperature": np.full(n, 20.4)})
+    _rewrite(
+        files[2],
+        {"time": times, "a": rng.standard_normal(n), "b": rng.standard_normal(n), "temperature": np.full(n, 20.4)},
+    )
 
 
 def flat_channel(folder, files, cols, rng):
@@ -211,20 +227,55 @@ MATRIX = [
     ("timestamps as strings", timestamps_as_strings, "time_column_not_timestamp", "rejected", (8, 9), "absent", ()),
     ("NaN and inf runs", nan_and_inf_runs, "nonfinite_values", "repaired", (4,), "changed", ("b",)),
     ("duplicated timestamps, equal", duplicate_equal, "duplicate_timestamps", "repaired", (4,), "same", ()),
-    ("duplicated timestamps, conflicting", duplicate_conflicting, "conflicting_duplicates", "rejected", (4,),
-     "rejected", ()),
+    (
+        "duplicated timestamps, conflicting",
+        duplicate_conflicting,
+        "conflicting_duplicates",
+        "rejected",
+        (4,),
+        "rejected",
+        (),
+    ),
     ("unordered rows", unordered_rows, "unordered_timestamps", "repaired", (4,), "same", ()),
-    ("jittered timestamps within tolerance", jitter_within_tolerance, "off_grid_timestamps", "repaired", (4,),
-     "same", ()),
-    ("jittered timestamps beyond tolerance", jitter_beyond_tolerance, "jitter_beyond_tolerance", "repaired", (4,),
-     "changed", ()),
-    ("sample-rate change inside the archive", sample_rate_change, "sample_rate_mismatch", "rejected", (4, 5),
-     "rejected", ()),
+    (
+        "jittered timestamps within tolerance",
+        jitter_within_tolerance,
+        "off_grid_timestamps",
+        "repaired",
+        (4,),
+        "same",
+        (),
+    ),
+    (
+        "jittered timestamps beyond tolerance",
+        jitter_beyond_tolerance,
+        "jitter_beyond_tolerance",
+        "repaired",
+        (4,),
+        "changed",
+        (),
+    ),
+    (
+        "sample-rate change inside the archive",
+        sample_rate_change,
+        "sample_rate_mismatch",
+        "rejected",
+        (4, 5),
+        "rejected",
+        (),
+    ),
     ("flat channel", flat_channel, "flat_channel", "rejected", (4,), "subset", ()),
     ("clipped channel", clipped_channel, "clipped_channel", "flagged", (4,), "changed", ("b",)),
     ("overlapping files, identical samples", overlapping_files, "overlapping_files", "repaired", (4, 5), "same", ()),
-    ("overlapping files, different samples", overlapping_conflicting, "conflicting_duplicates", "rejected", (4, 5),
-     "rejected", ()),
+    (
+        "overlapping files, different samples",
+        overlapping_conflicting,
+        "conflicting_duplicates",
+        "rejected",
+        (4, 5),
+        "rejected",
+        (),
+    ),
     ("row-group statistics absent", statistics_absent, "statistics_missing", "repaired", (4, 5), "same", ()),
     ("gap below min_coverage", coverage_gap, "insufficient_coverage", "rejected", (4,), "rejected", ()),
     ("corrupt data page (checksummed file)", corrupt_data_page, "decode_failed", "rejected", (4,), "rejected", ()),
@@ -240,20 +291,32 @@ def clean(tmp_path_factory):
     counters = run_backfill(write_config(root / "asset.toml", "archive"), str(root / "out"))
     assert counters["windows_planned"] == counters["windows_computed"] == 10
     out = str(root / "out")
-    return {"correlations": per_window(rows_by_key(read_table(out, "correlations"), CORRELATION_KEY)),
-            "indicators": per_window(rows_by_key(read_table(out, "indicators"), INDICATOR_KEY))}
+    return {
+        "correlations": per_window(rows_by_key(read_table(out, "correlations"), CORRELATION_KEY)),
+        "indicators": per_window(rows_by_key(read_table(out, "indicators"), INDICATOR_KEY)),
+    }
 
 
 def _subjects_of(key):
     """Subjects a correlation key (a, b) or indicator key (subject, indicator) speaks about."""
-    if len(key) == 2 and key[1] in ("rms", "corr_time_s", "decay_time_s", "mode_freq_hz", "mode_damping",
-                                    "lag_s", "peak_coef", "stationarity_p", "covariate_mean"):
+    if len(key) == 2 and key[1] in (
+        "rms",
+        "corr_time_s",
+        "decay_time_s",
+        "mode_freq_hz",
+        "mode_damping",
+        "lag_s",
+        "peak_coef",
+        "stationarity_p",
+        "covariate_mean",
+    ):
         return {key[0]}
     return {key[0]} if key[0] == key[1] else {f"{key[0]}:{key[1]}"}
 
 
-@pytest.mark.parametrize("kind, build, reason, action, touched, outcome, same_subjects", MATRIX,
-                         ids=[row[0] for row in MATRIX])
+@pytest.mark.parametrize(
+    "kind, build, reason, action, touched, outcome, same_subjects", MATRIX, ids=[row[0] for row in MATRIX]
+)
 def test_bad_input_matrix(kind, build, reason, action, touched, outcome, same_subjects, clean, tmp_path):
     archive = tmp_path / "archive"
     files = write_clean_archive(str(archive))
@@ -261,8 +324,10 @@ def test_bad_input_matrix(kind, build, reason, action, touched, outcome, same_su
     counters = run_backfill(write_config(tmp_path / "asset.toml", "archive"), str(tmp_path / "out"))
     output = str(tmp_path / "out")
     rejects = reject_rows(output)
-    got = {name: per_window(rows_by_key(read_table(output, name), key))
-           for name, key in (("correlations", CORRELATION_KEY), ("indicators", INDICATOR_KEY))}
+    got = {
+        name: per_window(rows_by_key(read_table(output, name), key))
+        for name, key in (("correlations", CORRELATION_KEY), ("indicators", INDICATOR_KEY))
+    }
 
     # 1. the reason code is in the rejects table, with its action
     found = [r for r in rejects if r["reason"] == reason]

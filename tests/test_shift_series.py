@@ -1,5 +1,6 @@
 """Shift detection on one series: the seasonal-swing scenario, error awareness, held windows,
 nightly-versus-backfill equivalence, state round trip and the episodes summary."""
+
 import datetime as dt
 import math
 
@@ -39,8 +40,17 @@ DAY_US = 24 * HOUR_US
 def _run(seed, compensate, **overrides):
     times, values, stderr, temperature, step_us = seasonal_series(seed)
     config = make_config(compensate, **dict(SCENARIO, **overrides))
-    table, states = shift_series.detect_shifts(times, values, stderr, None, {"temperature": temperature}, config,
-                                               subject="deck", indicator="mode_freq_hz", unit="Hz")
+    table, states = shift_series.detect_shifts(
+        times,
+        values,
+        stderr,
+        None,
+        {"temperature": temperature},
+        config,
+        subject="deck",
+        indicator="mode_freq_hz",
+        unit="Hz",
+    )
     return table, states, step_us
 
 
@@ -99,21 +109,21 @@ def test_columns_follow_their_formulas():
     fitted = frame[frame.state != "baseline"]
     model = states[-1].model
     # z = (value - expected) / sqrt(s_resid^2 + stderr^2), s_resid constant after the baseline
-    z = (fitted.value - fitted.expected) / np.sqrt(fitted.resid_scale ** 2 + fitted.stderr ** 2)
+    z = (fitted.value - fitted.expected) / np.sqrt(fitted.resid_scale**2 + fitted.stderr**2)
     np.testing.assert_allclose(fitted.z, z, rtol=1e-12)
     assert np.all(fitted.resid_scale == model.resid_scale)
     # the detectors run on the one-step prediction errors of the AR(1)-plus-stderr model: the
     # scalar Kalman filter written out here (Harvey 1989, eqs. 3.2.3-3.2.4, from memory), started
     # from the predictor the baseline left, across the used windows' steps
     last = states[-1]
-    phi, s2, spacing = last.dependence_phi, model.resid_scale ** 2, last.window_spacing_s * 1e6
+    phi, s2, spacing = last.dependence_phi, model.resid_scale**2, last.window_spacing_s * 1e6
     assert last.dependence_pairs >= 30 and 0.0 < abs(phi) < 0.95 and spacing == 2 * HOUR_US
     base_end = [s for s in states if s.phase == "fitted"][0]
     mean, var, previous = base_end.predictor_mean, base_end.predictor_var, base_end.predictor_window_start
     errors = []
     for start, r, se in zip(fitted.window_start.astype("int64") // 1000, fitted.value - fitted.expected, fitted.stderr):
         g = max(1, round((start - previous) / spacing))
-        m_t, p_t = phi ** g * mean, phi ** (2 * g) * var + s2 * (1 - phi ** (2 * g))
+        m_t, p_t = phi**g * mean, phi ** (2 * g) * var + s2 * (1 - phi ** (2 * g))
         errors.append((r - m_t) / math.sqrt(p_t + se * se) / last.innovation_ratio)
         gain = p_t / (p_t + se * se)
         mean, var, previous = m_t + gain * (r - m_t), p_t * (1 - gain), start
@@ -125,8 +135,9 @@ def test_columns_follow_their_formulas():
     ewma = pd.Series(np.concatenate(([0.0], errors))).ewm(alpha=0.1, adjust=False).mean().to_numpy()[1:]
     np.testing.assert_allclose(fitted.ewma, ewma, atol=1e-12)
     assert last.ewma_L_used > 3.75  # widened for the baseline's estimation error
-    np.testing.assert_allclose(fitted.ewma_limit,
-                               detectors.ewma_limits(np.arange(1, len(fitted) + 1), 0.1, last.ewma_L_used))
+    np.testing.assert_allclose(
+        fitted.ewma_limit, detectors.ewma_limits(np.arange(1, len(fitted) + 1), 0.1, last.ewma_L_used)
+    )
     # expected after the baseline: the Huber regression on the baseline windows (statsmodels)
     times, values, stderr, temperature, _ = seasonal_series(3)
     in_base = (frame.state == "baseline").to_numpy()  # rows are in the order of ``times``
@@ -189,8 +200,10 @@ def test_results_after_the_baseline_do_not_depend_on_the_refit_schedule(monkeypa
     assert after.size > 100 and "shifted" in state
     for other in (geometric, sparse):
         assert_tables_identical(other.take(after), every.take(after))
-        assert_tables_identical(other.select(["window_start", "value", "stderr", "state", "quality"]),
-                                every.select(["window_start", "value", "stderr", "state", "quality"]))
+        assert_tables_identical(
+            other.select(["window_start", "value", "stderr", "state", "quality"]),
+            every.select(["window_start", "value", "stderr", "state", "quality"]),
+        )
 
 
 def _series(n=200, seed=7, deviant=(), deviant_size=0.0, deviant_stderr=None, quality=None):
@@ -208,8 +221,9 @@ def _series(n=200, seed=7, deviant=(), deviant_size=0.0, deviant_stderr=None, qu
 
 def _detect(times, values, stderr, quality, **baseline):
     config = make_config("none", baseline=dict({"windows": 100, "min_windows": 30}, **baseline))
-    return shift_series.detect_shifts(times, values, stderr, quality, None, config,
-                                      subject="pump", indicator="rms", unit="mm/s")
+    return shift_series.detect_shifts(
+        times, values, stderr, quality, None, config, subject="pump", indicator="rms", unit="mm/s"
+    )
 
 
 def test_a_window_with_a_large_stderr_does_not_alarm_on_its_own():
@@ -269,8 +283,17 @@ def _nightly(times, values, stderr, temperature, config, tmp_path):
     for number, day in enumerate(np.unique(days)):
         mask = days == day
         table, day_states = shift_series.detect_shifts(
-            times[mask], values[mask], stderr[mask], None, {"temperature": temperature[mask]}, config, state,
-            subject="deck", indicator="mode_freq_hz", unit="Hz")
+            times[mask],
+            values[mask],
+            stderr[mask],
+            None,
+            {"temperature": temperature[mask]},
+            config,
+            state,
+            subject="deck",
+            indicator="mode_freq_hz",
+            unit="Hz",
+        )
         path = tmp_path / f"state-{number}.parquet"
         pq.write_table(shift_state.states_table(day_states), path)
         (state,) = shift_state.states_from_table(pq.read_table(path))
@@ -278,16 +301,28 @@ def _nightly(times, values, stderr, temperature, config, tmp_path):
     return pa.concat_tables(parts), state
 
 
-@pytest.mark.parametrize("baseline", [
-    {"start": "2024-03-01", "end": "2024-03-14", "min_windows": 30},   # a period of local days
-    {"windows": 45, "min_windows": 30},                                # completes in mid-day 4
-])
+@pytest.mark.parametrize(
+    "baseline",
+    [
+        {"start": "2024-03-01", "end": "2024-03-14", "min_windows": 30},  # a period of local days
+        {"windows": 45, "min_windows": 30},  # completes in mid-day 4
+    ],
+)
 def test_nightly_runs_give_exactly_the_backfill_rows(baseline, tmp_path):
     times, values, stderr, temperature, _ = seasonal_series(5, days=20, step_day=17)
     values[30] = np.nan
     config = make_config("all", baseline=baseline, **SCENARIO)
-    backfill, states = shift_series.detect_shifts(times, values, stderr, None, {"temperature": temperature}, config,
-                                                  subject="deck", indicator="mode_freq_hz", unit="Hz")
+    backfill, states = shift_series.detect_shifts(
+        times,
+        values,
+        stderr,
+        None,
+        {"temperature": temperature},
+        config,
+        subject="deck",
+        indicator="mode_freq_hz",
+        unit="Hz",
+    )
     nightly, last_state = _nightly(times, values, stderr, temperature, config, tmp_path)
     assert_tables_identical(nightly, backfill)
     assert same(last_state.to_row(), states[-1].to_row())
@@ -298,8 +333,17 @@ def test_state_round_trip_through_parquet_while_accumulating_and_fitted(tmp_path
     times, values, stderr, temperature, _ = seasonal_series(6, days=16)
     temperature[5] = np.nan
     config = make_config("all", **SCENARIO)
-    _, states = shift_series.detect_shifts(times, values, stderr, None, {"temperature": temperature}, config,
-                                           subject="deck", indicator="mode_freq_hz", unit="Hz")
+    _, states = shift_series.detect_shifts(
+        times,
+        values,
+        stderr,
+        None,
+        {"temperature": temperature},
+        config,
+        subject="deck",
+        indicator="mode_freq_hz",
+        unit="Hz",
+    )
     phases = {s.phase for s in states}
     assert phases == {"accumulating", "fitted"}
     path = tmp_path / "state.parquet"
@@ -316,17 +360,27 @@ def test_state_round_trip_through_parquet_while_accumulating_and_fitted(tmp_path
 def dataclass_tuple(state):
     import dataclasses
 
-    return [getattr(state, f.name) if f.name != "model" else
-            (None if state.model is None else list(dataclasses.astuple(state.model)))
-            for f in dataclasses.fields(state)]
+    return [
+        getattr(state, f.name)
+        if f.name != "model"
+        else (None if state.model is None else list(dataclasses.astuple(state.model)))
+        for f in dataclasses.fields(state)
+    ]
 
 
 def test_resuming_checks_settings_and_order():
     times, values, stderr, temperature, _ = seasonal_series(7, days=3)
     config = make_config("all", baseline={"windows": 20, "min_windows": 10})
-    _, states = shift_series.detect_shifts(times[:12], values[:12], stderr[:12], None,
-                                           {"temperature": temperature[:12]}, config, subject="deck",
-                                           indicator="mode_freq_hz")
+    _, states = shift_series.detect_shifts(
+        times[:12],
+        values[:12],
+        stderr[:12],
+        None,
+        {"temperature": temperature[:12]},
+        config,
+        subject="deck",
+        indicator="mode_freq_hz",
+    )
     other = make_config("all", baseline={"windows": 20, "min_windows": 10}, cusum_h=6.0)
     with pytest.raises(shift_state.StateMismatchError, match="settings"):
         shift_series.detect_shifts(times[12:], values[12:], stderr[12:], None, None, other, states[-1])
@@ -376,7 +430,7 @@ def test_episodes_summarise_runs_of_shifted_windows():
     last = episodes.to_pylist()[-1]
     assert last["status"] == ("open" if shifted[-1] else "closed")
     first = episodes.to_pylist()[0]
-    run = frame.iloc[runs[0]:runs[0] + first["n_windows"]]
+    run = frame.iloc[runs[0] : runs[0] + first["n_windows"]]
     assert first["first_alarm"] == run.window_start.iloc[0].to_pydatetime()
     assert first["peak_abs_z"] == pytest.approx(run.z.abs().max())
     # a table of only the last days still names the episode by its first alarm
@@ -402,8 +456,9 @@ def test_episodes_from_shifted_rows_only_or_read_from_hive_folders_equal_those_o
     shifted = summaries.episode_evidence(table)
     assert shifted.num_rows < table.num_rows
     shuffled = shifted.take(pa.array(np.random.default_rng(3).permutation(shifted.num_rows)))
-    hive = shuffled.append_column("asset", pa.array(["pump-hall"] * shuffled.num_rows)) \
-                   .append_column("date", pa.array(["2024-06-01"] * shuffled.num_rows))
+    hive = shuffled.append_column("asset", pa.array(["pump-hall"] * shuffled.num_rows)).append_column(
+        "date", pa.array(["2024-06-01"] * shuffled.num_rows)
+    )
     from_hive = summaries.shift_episodes(hive)
     assert from_hive.column_names[0] == "asset" and set(from_hive.column("asset").to_pylist()) == {"pump-hall"}
     assert same(from_hive.drop_columns(["asset"]).to_pylist(), whole.to_pylist())
@@ -418,7 +473,7 @@ def _reversal_series():
     """A short upward alarm (three windows 0.2 up, about 14 residual scales each), then, while
     the upward CUSUM is still beyond h, a lasting downward shift of 0.1 from ``DOWN_FROM``."""
     times, values, stderr, quality = _series(n=200)
-    values[DOWN_FROM - 6:DOWN_FROM - 3] += 0.2
+    values[DOWN_FROM - 6 : DOWN_FROM - 3] += 0.2
     values[DOWN_FROM:] -= 0.1
     return times, values, stderr, quality
 
@@ -428,7 +483,7 @@ def test_a_reversal_while_shifted_starts_a_new_episode_and_the_onset_never_follo
     frame = table.to_pandas()
     shifted = frame[frame.state == "shifted"]
     # the state never leaves "shifted" between the two alarms: only the direction reverses
-    assert (frame.state.iloc[DOWN_FROM - 6:200] == "shifted").all()
+    assert (frame.state.iloc[DOWN_FROM - 6 : 200] == "shifted").all()
     flip = int(np.flatnonzero(np.diff(frame.direction.to_numpy()) < 0)[0]) + 1
     assert frame.direction.iloc[flip - 1] == 1 and frame.direction.iloc[flip] == -1
     assert frame.first_alarm.iloc[flip] == frame.window_start.iloc[flip]  # a new episode begins
@@ -443,7 +498,10 @@ def test_a_reversal_while_shifted_starts_a_new_episode_and_the_onset_never_follo
     left_zero = max(i for i in range(flip + 1) if lower[i - 1] == 0 and lower[i] > 0)
     # the residual chart echoes the upward windows by -phi times their size in the next
     # prediction error, which can start the lower run up to 3 windows early
-    assert DOWN_FROM - 3 <= left_zero <= DOWN_FROM and episodes[1]["onset"] == frame.window_start.iloc[left_zero].to_pydatetime()
+    assert (
+        DOWN_FROM - 3 <= left_zero <= DOWN_FROM
+        and episodes[1]["onset"] == frame.window_start.iloc[left_zero].to_pydatetime()
+    )
     assert episodes[0]["last_window"] < episodes[1]["first_alarm"]
     assert sum(e["n_windows"] for e in episodes) == len(shifted)
 
@@ -455,16 +513,19 @@ def frame_state(table, i):
 def test_a_night_resumed_across_a_reversal_gives_the_backfill_rows():
     times, values, stderr, quality = _reversal_series()
     config = make_config("none", baseline={"windows": 100, "min_windows": 30})
-    whole, _ = shift_series.detect_shifts(times, values, stderr, quality, None, config,
-                                          subject="pump", indicator="rms", unit="mm/s")
+    whole, _ = shift_series.detect_shifts(
+        times, values, stderr, quality, None, config, subject="pump", indicator="rms", unit="mm/s"
+    )
     cut = DOWN_FROM  # the night starts at local midnight, inside the upward episode
-    assert local_days(times[cut - 1:cut + 1], TIMEZONE).tolist() == [19880, 19881]  # 6 and 7 June
+    assert local_days(times[cut - 1 : cut + 1], TIMEZONE).tolist() == [19880, 19881]  # 6 and 7 June
     assert frame_state(whole, cut - 1) == ("shifted", 1)
-    first, states = shift_series.detect_shifts(times[:cut], values[:cut], stderr[:cut], None, None, config,
-                                               subject="pump", indicator="rms", unit="mm/s")
+    first, states = shift_series.detect_shifts(
+        times[:cut], values[:cut], stderr[:cut], None, None, config, subject="pump", indicator="rms", unit="mm/s"
+    )
     state = shift_state.ShiftState.from_row(states[-1].to_row())
-    rest, _ = shift_series.detect_shifts(times[cut:], values[cut:], stderr[cut:], None, None, config, state,
-                                         subject="pump", indicator="rms", unit="mm/s")
+    rest, _ = shift_series.detect_shifts(
+        times[cut:], values[cut:], stderr[cut:], None, None, config, state, subject="pump", indicator="rms", unit="mm/s"
+    )
     assert_tables_identical(pa.concat_tables([first, rest]), whole)
 
 
@@ -508,8 +569,9 @@ def test_the_readme_duckdb_query_gives_the_onsets_and_peaks_of_the_episodes_tabl
     query = query.replace("demo_output/", out.replace(os.sep, "/") + "/").split(";")[0]
     found = {(r[0], r[1], r[2]): (r[3], r[4]) for r in duckdb.sql(query).fetchall()}
     episodes = pq.read_table(os.path.join(out, "episodes", "asset=invented-bridge", "episodes.parquet"))
-    wanted = {(e["subject"], e["indicator"], e["first_alarm"]): (e["onset"], e["peak_abs_z"])
-              for e in episodes.to_pylist()}
+    wanted = {
+        (e["subject"], e["indicator"], e["first_alarm"]): (e["onset"], e["peak_abs_z"]) for e in episodes.to_pylist()
+    }
     assert len(wanted) == 2 and found.keys() == wanted.keys()
     for key, (onset, peak) in wanted.items():
         assert found[key][0] == onset <= key[2]
@@ -517,16 +579,27 @@ def test_the_readme_duckdb_query_gives_the_onsets_and_peaks_of_the_episodes_tabl
 
 
 #: STATE columns added with the residual chart (issue 15 part 3)
-DEPENDENCE_FIELDS = ("sample_window_start", "dependence_phi", "dependence_pairs", "innovation_scale",
-                     "innovation_ratio", "cusum_h_used", "ewma_L_used", "predictor_mean", "predictor_var",
-                     "predictor_window_start", "window_spacing_s")
+DEPENDENCE_FIELDS = (
+    "sample_window_start",
+    "dependence_phi",
+    "dependence_pairs",
+    "innovation_scale",
+    "innovation_ratio",
+    "cusum_h_used",
+    "ewma_L_used",
+    "predictor_mean",
+    "predictor_var",
+    "predictor_window_start",
+    "window_spacing_s",
+)
 
 
 def test_a_state_row_from_before_the_dependence_fields_resumes_as_the_old_chart():
     times, values, stderr, _ = _series(n=200)
     config = make_config("none", baseline={"windows": 100, "min_windows": 30})
-    table, states = shift_series.detect_shifts(times, values, stderr, None, None, config,
-                                               subject="pump", indicator="rms", unit="mm/s")
+    table, states = shift_series.detect_shifts(
+        times, values, stderr, None, None, config, subject="pump", indicator="rms", unit="mm/s"
+    )
     fitted = [s for s in states if s.phase == "fitted"][0]
     assert fitted.dependence_pairs >= 30 and fitted.cusum_h_used > 10.0  # fitted and widened
     old_row = {k: v for k, v in fitted.to_row().items() if k not in DEPENDENCE_FIELDS}

@@ -1,4 +1,5 @@
 """Partitioned Parquet output: format, partitions, provenance, commit and the stock-sink traps."""
+
 import glob
 import json
 import os
@@ -12,8 +13,15 @@ import pytest
 import corrtransforms
 from corrtransforms import tables
 from corrtransforms.rejects import Reject
-from corrtransforms.stages.write import (LocalFiles, commit_partition, part_file_name, provenance_metadata,
-                                         rejects_table, write_part, write_tables)
+from corrtransforms.stages.write import (
+    LocalFiles,
+    commit_partition,
+    part_file_name,
+    provenance_metadata,
+    rejects_table,
+    write_part,
+    write_tables,
+)
 from tests.archive_data import T0, US, make_config
 
 HOUR = 3600 * US
@@ -23,16 +31,36 @@ def _correlation_rows(starts, lags=5):
     n = len(starts)
     rng = np.random.default_rng(0)
     data = {f.name: None for f in tables.CORRELATIONS}
-    data.update(window_start=pa.array(starts, pa.int64()).cast(tables.TIMESTAMP), channel_a=["a"] * n,
-                channel_b=["b"] * n, sample_rate_hz=[10.0] * n, n_samples=[600] * n, coverage=[1.0] * n,
-                first_lag_s=[-0.2] * n, lag_step_s=[0.1] * n,
-                coefficient=[rng.standard_normal(lags).astype(np.float32).tolist() for _ in range(n)],
-                scale=[1.0] * n, stderr=[[0.01] * lags] * n, bandwidth_hz=[1.0] * n, record_s=[60.0] * n,
-                rel_error=[0.1] * n, required_record_s=[240.0] * n, meets_target=[False] * n,
-                quality=["ok"] * n, bandwidth_time=[60.0] * n, n_effective=[30.0] * n,
-                tone_freq_hz=[float("nan")] * n, tone_required_record_s=[float("nan")] * n)
-    return pa.Table.from_arrays([pa.array(data[f.name], f.type) if not isinstance(data[f.name], pa.Array)
-                                 else data[f.name] for f in tables.CORRELATIONS], schema=tables.CORRELATIONS)
+    data.update(
+        window_start=pa.array(starts, pa.int64()).cast(tables.TIMESTAMP),
+        channel_a=["a"] * n,
+        channel_b=["b"] * n,
+        sample_rate_hz=[10.0] * n,
+        n_samples=[600] * n,
+        coverage=[1.0] * n,
+        first_lag_s=[-0.2] * n,
+        lag_step_s=[0.1] * n,
+        coefficient=[rng.standard_normal(lags).astype(np.float32).tolist() for _ in range(n)],
+        scale=[1.0] * n,
+        stderr=[[0.01] * lags] * n,
+        bandwidth_hz=[1.0] * n,
+        record_s=[60.0] * n,
+        rel_error=[0.1] * n,
+        required_record_s=[240.0] * n,
+        meets_target=[False] * n,
+        quality=["ok"] * n,
+        bandwidth_time=[60.0] * n,
+        n_effective=[30.0] * n,
+        tone_freq_hz=[float("nan")] * n,
+        tone_required_record_s=[float("nan")] * n,
+    )
+    return pa.Table.from_arrays(
+        [
+            pa.array(data[f.name], f.type) if not isinstance(data[f.name], pa.Array) else data[f.name]
+            for f in tables.CORRELATIONS
+        ],
+        schema=tables.CORRELATIONS,
+    )
 
 
 def _files(root, table="correlations"):
@@ -45,7 +73,9 @@ def test_zstd_compliant_lists_units_timestamps_and_provenance(tmp_path):
     (path,) = _files(str(tmp_path))
     parquet = pq.ParquetFile(path)
     # trap: the stock sink writes uncompressed unless told
-    assert {parquet.metadata.row_group(0).column(i).compression for i in range(parquet.metadata.num_columns)} == {"ZSTD"}
+    assert {parquet.metadata.row_group(0).column(i).compression for i in range(parquet.metadata.num_columns)} == {
+        "ZSTD"
+    }
     # trap: non-compliant list item names; the Parquet spec's LIST layout is <list>.list.element
     assert parquet.metadata.row_group(0).column(8).path_in_schema == "coefficient.list.element"
     schema = parquet.schema_arrow
@@ -68,8 +98,12 @@ def test_rows_go_to_the_local_date_folder(tmp_path):
     folders = sorted(os.path.basename(os.path.dirname(p)) for p in _files(str(tmp_path)))
     assert folders == ["date=2024-03-03", "date=2024-03-04"]
     data = ds.dataset(str(tmp_path / "correlations"), partitioning="hive").to_table()
-    by_date = {d: sorted(v) for d, v in _group(data.column("date").to_pylist(),
-                                              data.column("window_start").cast(pa.int64()).to_pylist()).items()}
+    by_date = {
+        d: sorted(v)
+        for d, v in _group(
+            data.column("date").to_pylist(), data.column("window_start").cast(pa.int64()).to_pylist()
+        ).items()
+    }
     assert by_date == {"2024-03-03": [starts[0]], "2024-03-04": starts[1:]}
 
 
@@ -86,11 +120,14 @@ def test_rerun_with_fewer_shards_leaves_no_stale_files_and_other_days_alone(tmp_
     store, root = LocalFiles(), str(tmp_path)
     meta = provenance_metadata(config, "first")
     day_rows = [_correlation_rows([T0 + i * HOUR]) for i in range(3)]
-    parts = [write_part(store, root, "correlations", config.name, "2024-03-04", t, "first", meta, str(i))
-             for i, t in enumerate(day_rows)]
+    parts = [
+        write_part(store, root, "correlations", config.name, "2024-03-04", t, "first", meta, str(i))
+        for i, t in enumerate(day_rows)
+    ]
     commit_partition(store, root, "correlations", config.name, "2024-03-04", parts)
-    other = write_part(store, root, "correlations", config.name, "2024-03-05",
-                       _correlation_rows([T0 + 25 * HOUR]), "first", meta, "x")
+    other = write_part(
+        store, root, "correlations", config.name, "2024-03-05", _correlation_rows([T0 + 25 * HOUR]), "first", meta, "x"
+    )
     commit_partition(store, root, "correlations", config.name, "2024-03-05", [other])
     assert len(_files(root)) == 4
     write_tables(root, config, "second", {"correlations": [pa.concat_tables(day_rows[:2])]}, days=["2024-03-04"])
@@ -121,8 +158,17 @@ def test_partition_folders_are_created_and_a_silent_rename_failure_is_loud(tmp_p
             return None
 
     store = RenameDoesNothing()
-    part = write_part(store, root, "correlations", config.name, "2024-03-06", _correlation_rows([T0 + 48 * HOUR]),
-                      "r2", provenance_metadata(config, "r2"), "0")
+    part = write_part(
+        store,
+        root,
+        "correlations",
+        config.name,
+        "2024-03-06",
+        _correlation_rows([T0 + 48 * HOUR]),
+        "r2",
+        provenance_metadata(config, "r2"),
+        "0",
+    )
     with pytest.raises(IOError, match="not there after the rename"):
         commit_partition(store, root, "correlations", config.name, "2024-03-06", [part])
 
@@ -132,8 +178,17 @@ def test_uncommitted_parts_are_invisible_to_readers(tmp_path):
     root = str(tmp_path)
     write_tables(root, config, "good", {"correlations": [_correlation_rows([T0])]})
     store = LocalFiles()
-    write_part(store, root, "correlations", config.name, "2024-03-04", _correlation_rows([T0, T0 + HOUR]),
-               "crashed", provenance_metadata(config, "crashed"), "0")  # the run dies before its commit
+    write_part(
+        store,
+        root,
+        "correlations",
+        config.name,
+        "2024-03-04",
+        _correlation_rows([T0, T0 + HOUR]),
+        "crashed",
+        provenance_metadata(config, "crashed"),
+        "0",
+    )  # the run dies before its commit
     assert os.path.isdir(os.path.join(root, "_temporary", "crashed"))
     data = ds.dataset(os.path.join(root, "correlations"), partitioning="hive").to_table()
     assert data.column("window_start").cast(pa.int64()).to_pylist() == [T0]
@@ -148,16 +203,21 @@ def test_file_names_depend_only_on_the_rows(tmp_path):
     two = write_part(store, str(tmp_path), "correlations", "a", "2024-03-04", shuffled, "y", meta, "2")
     assert one.name == two.name == part_file_name(rows) and one.name.startswith("part-20240304T000000Z-")
     nan_columns = ["tone_freq_hz", "tone_required_record_s"]  # NaN != NaN in Table.equals
-    assert pq.read_table(one.temp_path).drop_columns(nan_columns).equals(
-        pq.read_table(two.temp_path).drop_columns(nan_columns))
+    assert (
+        pq.read_table(one.temp_path)
+        .drop_columns(nan_columns)
+        .equals(pq.read_table(two.temp_path).drop_columns(nan_columns))
+    )
     assert part_file_name(rows.slice(1)) != one.name
 
 
 def test_rejects_table_dates_and_actions(tmp_path):
     config = make_config("/nowhere", timezone="Europe/Berlin")
-    findings = [Reject("plan", "/x/f.parquet", "*", "empty_file", "0 bytes", config.name, date="2024-03-02"),
-                Reject("read", "w", "*", "insufficient_coverage", "c", config.name, window_start_us=T0 - HOUR // 2),
-                Reject("read", "w", "a", "clipped_channel", "c", config.name, window_start_us=T0)]
+    findings = [
+        Reject("plan", "/x/f.parquet", "*", "empty_file", "0 bytes", config.name, date="2024-03-02"),
+        Reject("read", "w", "*", "insufficient_coverage", "c", config.name, window_start_us=T0 - HOUR // 2),
+        Reject("read", "w", "a", "clipped_channel", "c", config.name, window_start_us=T0),
+    ]
     table = rejects_table(findings)
     assert table.schema.equals(tables.REJECTS)
     assert table.column("action").to_pylist() == ["rejected", "rejected", "flagged"]
@@ -165,4 +225,6 @@ def test_rejects_table_dates_and_actions(tmp_path):
     data = ds.dataset(str(tmp_path / "rejects"), partitioning="hive").to_table()
     got = _group(data.column("date").to_pylist(), data.column("reason").to_pylist())
     assert {k: sorted(v) for k, v in got.items()} == {
-        "2024-03-02": ["empty_file"], "2024-03-04": ["clipped_channel", "insufficient_coverage"]}
+        "2024-03-02": ["empty_file"],
+        "2024-03-04": ["clipped_channel", "insufficient_coverage"],
+    }

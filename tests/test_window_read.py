@@ -7,8 +7,19 @@ import pytest
 
 from corrtransforms.stages.plan import list_local_archive, plan_archive
 from corrtransforms.stages.read import read_task
-from tests.archive_data import (T0, US, bad_wide_archive, duty_cycled_records, long_table, make_config, samples,
-                                wide_table, window_rows, write_duty_cycled_archive, write_files)
+from tests.archive_data import (
+    T0,
+    US,
+    bad_wide_archive,
+    duty_cycled_records,
+    long_table,
+    make_config,
+    samples,
+    wide_table,
+    window_rows,
+    write_duty_cycled_archive,
+    write_files,
+)
 
 
 def _read_all(folder, config):
@@ -51,11 +62,11 @@ def test_long_layout_pivots_to_the_same_blocks(tmp_path):
     _, wide, _ = _read_all(str(tmp_path / "w"), make_config(str(tmp_path / "w")))
     _, long, rejects = _read_all(str(tmp_path / "l"), make_config(str(tmp_path / "l"), layout="long"))
     assert rejects == [] and len(wide) == len(long) == 5
-    for w, l in zip(wide, long):
-        assert w.window_start_us == l.window_start_us and w.channels == l.channels
-        np.testing.assert_array_equal(w.values, l.values)
-        np.testing.assert_array_equal(w.valid, l.valid)
-        assert w.covariates == pytest.approx(l.covariates)
+    for w, lo in zip(wide, long):
+        assert w.window_start_us == lo.window_start_us and w.channels == lo.channels
+        np.testing.assert_array_equal(w.values, lo.values)
+        np.testing.assert_array_equal(w.valid, lo.valid)
+        assert w.covariates == pytest.approx(lo.covariates)
 
 
 def test_phase_offset_from_the_epoch_grid_is_kept(tmp_path):
@@ -180,8 +191,11 @@ def test_sample_rate_mismatch_rejects_every_window(tmp_path):
     _, blocks, rejects = _read_all(str(tmp_path), make_config(str(tmp_path), rate=10.0))
     reasons = {_k(r.window_start_us): r.reason for r in rejects}
     # window 2 only holds the last sample (119.95 s is within half a 10-Hz period of 120 s)
-    assert blocks == [] and reasons == {0: "sample_rate_mismatch", 1: "sample_rate_mismatch",
-                                        2: "insufficient_coverage"}
+    assert blocks == [] and reasons == {
+        0: "sample_rate_mismatch",
+        1: "sample_rate_mismatch",
+        2: "insufficient_coverage",
+    }
 
 
 def test_grid_phase_is_the_circular_mean_of_scipy():
@@ -208,17 +222,18 @@ def test_complete_windows_with_missing_values_read_in_place_equal_the_snapped_lo
     _, wide, wide_rejects = _read_all(str(tmp_path / "w"), make_config(str(tmp_path / "w")))
     _, long, long_rejects = _read_all(str(tmp_path / "l"), make_config(str(tmp_path / "l"), layout="long"))
     assert len(wide) == len(long) == 5
-    assert sorted((r.window_start_us, r.subject, r.reason) for r in wide_rejects) == \
-        sorted((r.window_start_us, r.subject, r.reason) for r in long_rejects)
-    for w, l in zip(wide, long):
+    assert sorted((r.window_start_us, r.subject, r.reason) for r in wide_rejects) == sorted(
+        (r.window_start_us, r.subject, r.reason) for r in long_rejects
+    )
+    for w, lo in zip(wide, long):
         rows = window_rows(cols, _k(w.window_start_us))
-        np.testing.assert_array_equal(w.values, l.values)
-        np.testing.assert_array_equal(w.valid, l.valid)
+        np.testing.assert_array_equal(w.values, lo.values)
+        np.testing.assert_array_equal(w.valid, lo.valid)
         np.testing.assert_array_equal(w.valid[:, 0], np.isfinite(cols["a"][rows]))
         np.testing.assert_array_equal(w.values[:, 0], np.where(np.isfinite(cols["a"][rows]), cols["a"][rows], 0.0))
         # reference: numpy's nanmean of the covariate samples in the window
         assert w.covariates["temperature"] == pytest.approx(np.nanmean(cols["temperature"][rows]), rel=1e-12)
-        assert w.covariates["temperature"] == pytest.approx(l.covariates["temperature"], rel=1e-12)
+        assert w.covariates["temperature"] == pytest.approx(lo.covariates["temperature"], rel=1e-12)
 
 
 @pytest.mark.parametrize("windows", [{"align": "records"}, {"offset_s": 180.0}], ids=["records", "offset"])

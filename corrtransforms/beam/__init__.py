@@ -8,6 +8,7 @@
 - file access through Beam's FileSystems (:mod:`~corrtransforms.beam.filesystems`) and the
   package's metrics namespace (:mod:`~corrtransforms.beam.metrics`).
 """
+
 from corrtransforms.beam.correlate import CorrelateWindows
 from corrtransforms.beam.indicators import ComputeIndicators
 from corrtransforms.beam.metrics import NAMESPACE, window_accounting
@@ -21,5 +22,15 @@ from corrtransforms.beam.write import WriteTables
 #: Prism runner binary from the network; FnApiRunner is what it falls back to, without trying.
 LOCAL_RUNNER = "FnApiRunner"
 
-__all__ = ["LOCAL_RUNNER", "NAMESPACE", "PlanReads", "ReadWindows", "CorrelateWindows", "ComputeIndicators",
-           "DetectShifts", "WriteTables", "MonitorAsset", "window_accounting"]
+__all__ = [
+    "LOCAL_RUNNER",
+    "NAMESPACE",
+    "PlanReads",
+    "ReadWindows",
+    "CorrelateWindows",
+    "ComputeIndicators",
+    "DetectShifts",
+    "WriteTables",
+    "MonitorAsset",
+    "window_accounting",
+]

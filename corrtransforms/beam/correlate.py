@@ -1,4 +1,5 @@
 """CorrelateWindows: window blocks -> screened correlation records (stage 3)."""
+
 from __future__ import annotations
 
 import apache_beam as beam
@@ -22,8 +23,9 @@ class _CorrelateFn(beam.DoFn):
         try:
             result, findings = self._analyse(block, self._config)
         except Exception as err:  # noqa: BLE001 - routed to rejects with the error text
-            finding = whole_window_reject(self._config, block.window_start_us, "correlate", "correlation_failed",
-                                           f"{type(err).__name__}: {err}")
+            finding = whole_window_reject(
+                self._config, block.window_start_us, "correlate", "correlation_failed", f"{type(err).__name__}: {err}"
+            )
             count_reject(finding)
             yield beam.pvalue.TaggedOutput("rejects", finding)
             return
@@ -33,8 +35,13 @@ class _CorrelateFn(beam.DoFn):
         if result is None:
             return
         if not result.pairs:
-            finding = whole_window_reject(self._config, block.window_start_us, "correlate", "no_valid_pairs",
-                                           f"channels {list(block.channels)}, pairs {self._config.correlation.pairs!r}")
+            finding = whole_window_reject(
+                self._config,
+                block.window_start_us,
+                "correlate",
+                "no_valid_pairs",
+                f"channels {list(block.channels)}, pairs {self._config.correlation.pairs!r}",
+            )
             count_reject(finding)
             yield beam.pvalue.TaggedOutput("rejects", finding)
             return
@@ -56,5 +63,6 @@ class CorrelateWindows(beam.PTransform):
 
     def expand(self, blocks):
         out = blocks | "Correlate each window" >> beam.ParDo(_CorrelateFn(self._config)).with_outputs(
-            "rejects", main="correlations")
+            "rejects", main="correlations"
+        )
         return {"correlations": out.correlations, "rejects": out.rejects}

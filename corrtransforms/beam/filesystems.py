@@ -4,6 +4,7 @@
 - :class:`BeamFiles`: the store interface of :mod:`corrtransforms.stages.write`;
 - :func:`list_archive`: the archive's files for a folder, a glob or a URL.
 """
+
 from __future__ import annotations
 
 from typing import List, Sequence
@@ -43,7 +44,7 @@ class BeamFiles:
             return
         try:
             FileSystems.mkdirs(folder)
-        except IOError:
+        except OSError:
             if not FileSystems.exists(folder):
                 raise
 

@@ -8,15 +8,16 @@
 
 The work is :func:`corrtransforms.stages.indicators.window_indicators_and_failures`.
 """
+
 from __future__ import annotations
 
 import apache_beam as beam
 from apache_beam.metrics import Metrics
 
 from corrtransforms.config import AssetConfig
-from corrtransforms.stages.indicators import window_indicators_and_failures
 from corrtransforms.records import OK, WindowCorrelation
 from corrtransforms.rejects import WHOLE_WINDOW, Reject, iso_utc
+from corrtransforms.stages.indicators import window_indicators_and_failures
 
 NAMESPACE = "corrtransforms"
 STAGE = "indicators"
@@ -25,9 +26,15 @@ STAGE = "indicators"
 def _reject(wc: WindowCorrelation, asset: str, subject: str, detail: str) -> Reject:
     start = getattr(wc, "window_start_us", None)
     source = iso_utc(start) if isinstance(start, int) else repr(start)
-    return Reject(stage=STAGE, source=source, subject=subject, reason="indicator_failed",
-                  detail=detail[:2000], asset=asset,
-                  window_start_us=start if isinstance(start, int) else None)
+    return Reject(
+        stage=STAGE,
+        source=source,
+        subject=subject,
+        reason="indicator_failed",
+        detail=detail[:2000],
+        asset=asset,
+        window_start_us=start if isinstance(start, int) else None,
+    )
 
 
 class _IndicatorsFn(beam.DoFn):
@@ -50,8 +57,9 @@ class _IndicatorsFn(beam.DoFn):
             rows, failures = window_indicators_and_failures(wc, self._config)
         except Exception as err:  # noqa: BLE001 - a malformed window becomes one reject
             self._failed.inc()
-            yield beam.pvalue.TaggedOutput("rejects", _reject(wc, self._config.name, WHOLE_WINDOW,
-                                                              f"{type(err).__name__}: {err}"))
+            yield beam.pvalue.TaggedOutput(
+                "rejects", _reject(wc, self._config.name, WHOLE_WINDOW, f"{type(err).__name__}: {err}")
+            )
             return
         for subject, detail in failures:
             self._failed.inc()
@@ -97,7 +105,7 @@ class ComputeIndicators(beam.PTransform):
         self._config = config
 
     def expand(self, window_correlations):
-        out = (window_correlations
-               | "Indicators per window" >> beam.ParDo(_IndicatorsFn(self._config)).with_outputs(
-                   "rejects", main="indicators"))
+        out = window_correlations | "Indicators per window" >> beam.ParDo(_IndicatorsFn(self._config)).with_outputs(
+            "rejects", main="indicators"
+        )
         return {"indicators": out.indicators, "rejects": out.rejects}

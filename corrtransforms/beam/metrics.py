@@ -4,14 +4,15 @@ Every counter lives in the ``"corrtransforms"`` namespace; :func:`window_account
 from a finished pipeline so the launcher can print that every planned window was computed or
 rejected.
 """
+
 from __future__ import annotations
 
 from typing import Dict
 
 from apache_beam.metrics import Metrics
 
-from corrtransforms.rejects import WHOLE_WINDOW, Reject, iso_utc
 from corrtransforms.config import AssetConfig
+from corrtransforms.rejects import WHOLE_WINDOW, Reject, iso_utc
 
 NAMESPACE = "corrtransforms"
 
@@ -22,8 +23,15 @@ def counter(name: str):
 
 
 def whole_window_reject(config: AssetConfig, start_us: int, stage: str, reason: str, detail: str) -> Reject:
-    return Reject(stage=stage, source=iso_utc(start_us), subject=WHOLE_WINDOW, reason=reason,
-                  detail=detail, asset=config.name, window_start_us=int(start_us))
+    return Reject(
+        stage=stage,
+        source=iso_utc(start_us),
+        subject=WHOLE_WINDOW,
+        reason=reason,
+        detail=detail,
+        asset=config.name,
+        window_start_us=int(start_us),
+    )
 
 
 def count_reject(finding: Reject) -> None:

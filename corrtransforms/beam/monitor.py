@@ -5,6 +5,7 @@ from the archive's footers, reads every window once, screens and correlates it, 
 indicators, runs the shift detectors and writes the five tables (correlations, indicators,
 shifts, state, rejects) into their partitions. The launchers in ``pipelines/`` are thin on top.
 """
+
 from __future__ import annotations
 
 import datetime as _dt
@@ -15,11 +16,11 @@ from typing import Any, Dict, Optional
 import apache_beam as beam
 
 from corrtransforms.beam.correlate import CorrelateWindows
+from corrtransforms.beam.indicators import ComputeIndicators
 from corrtransforms.beam.plan import PlanReads
 from corrtransforms.beam.read import ReadWindows
-from corrtransforms.beam.write import WriteTables
-from corrtransforms.beam.indicators import ComputeIndicators
 from corrtransforms.beam.shifts import DetectShifts
+from corrtransforms.beam.write import WriteTables
 from corrtransforms.config import AssetConfig
 
 #: indicator rows per written batch (they are small: a few tens of bytes each)
@@ -58,8 +59,7 @@ class _ProgressFn(beam.DoFn):
         if force or now - self._last >= self._interval_s:
             self._last = now
             rate = self._done / max(now - self._started, 1e-9)
-            self._log.info("%s: windows done %d / %d planned (%.1f windows/s)", self._asset, self._done,
-                           planned, rate)
+            self._log.info("%s: windows done %d / %d planned (%.1f windows/s)", self._asset, self._done, planned, rate)
 
     def process(self, task, planned):
         self._done += self._pending
@@ -104,8 +104,16 @@ class MonitorAsset(beam.PTransform):
         ``"rejects"`` for callers that add their own steps.
     """
 
-    def __init__(self, config: AssetConfig, output_dir: str, run_id: str, start: Optional[_dt.date] = None,
-                 end: Optional[_dt.date] = None, initial_states: Any = None, progress_interval_s: float = 15.0):
+    def __init__(
+        self,
+        config: AssetConfig,
+        output_dir: str,
+        run_id: str,
+        start: Optional[_dt.date] = None,
+        end: Optional[_dt.date] = None,
+        initial_states: Any = None,
+        progress_interval_s: float = 15.0,
+    ):
         super().__init__()
         self._config, self._output, self._run_id = config, output_dir, run_id
         self._start, self._end, self._initial_states = start, end, initial_states
@@ -114,22 +122,30 @@ class MonitorAsset(beam.PTransform):
     def expand(self, pbegin):
         config = self._config
         plan = pbegin | "Plan reads" >> PlanReads(config, self._start, self._end)
-        planned = (plan["tasks"]
-                   | "Windows per task" >> beam.Map(lambda task: len(task.window_starts_us))
-                   | "Windows planned" >> beam.CombineGlobally(sum))
+        planned = (
+            plan["tasks"]
+            | "Windows per task" >> beam.Map(lambda task: len(task.window_starts_us))
+            | "Windows planned" >> beam.CombineGlobally(sum)
+        )
         tasks = plan["tasks"] | "Log progress" >> beam.ParDo(
-            _ProgressFn(config.name, self._progress_interval_s), planned=beam.pvalue.AsSingleton(planned))
+            _ProgressFn(config.name, self._progress_interval_s), planned=beam.pvalue.AsSingleton(planned)
+        )
         read = tasks | "Read windows" >> ReadWindows(config)
         correlated = read["blocks"] | "Screen and correlate windows" >> CorrelateWindows(config)
         indicators = correlated["correlations"] | "Compute indicators" >> ComputeIndicators(config)
         shifts = indicators["indicators"] | "Detect shifts" >> DetectShifts(config, self._initial_states)
-        indicator_tables = (indicators["indicators"]
-                            | "Batch indicator rows" >> beam.BatchElements(min_batch_size=1000,
-                                                                           max_batch_size=INDICATOR_BATCH)
-                            | "Indicator tables" >> beam.Map(_indicator_table))
-        rejects = ((plan["rejects"], read["rejects"], correlated["rejects"], indicators["rejects"],
-                    shifts["rejects"])
-                   | "All rejects" >> beam.Flatten())
+        indicator_tables = (
+            indicators["indicators"]
+            | "Batch indicator rows" >> beam.BatchElements(min_batch_size=1000, max_batch_size=INDICATOR_BATCH)
+            | "Indicator tables" >> beam.Map(_indicator_table)
+        )
+        rejects = (
+            plan["rejects"],
+            read["rejects"],
+            correlated["rejects"],
+            indicators["rejects"],
+            shifts["rejects"],
+        ) | "All rejects" >> beam.Flatten()
         tables: Dict[str, beam.PCollection] = {
             "correlations": correlated["correlations"],
             "indicators": indicator_tables,
@@ -138,6 +154,13 @@ class MonitorAsset(beam.PTransform):
             "rejects": rejects,
         }
         commits = tables | "Write tables" >> WriteTables(self._output, config, self._run_id, days=plan["days"])
-        return {"commits": commits, "tasks": plan["tasks"], "blocks": read["blocks"],
-                "correlations": correlated["correlations"], "indicators": indicators["indicators"],
-                "shifts": shifts["shifts"], "state": shifts["state"], "rejects": rejects}
+        return {
+            "commits": commits,
+            "tasks": plan["tasks"],
+            "blocks": read["blocks"],
+            "correlations": correlated["correlations"],
+            "indicators": indicators["indicators"],
+            "shifts": shifts["shifts"],
+            "state": shifts["state"],
+            "rejects": rejects,
+        }

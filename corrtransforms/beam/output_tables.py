@@ -5,6 +5,7 @@ store :class:`corrtransforms.beam.filesystems.BeamFiles`, so the output folder m
 registered filesystem URL. :func:`remove_stale_temporary` reads the filesystem's modification
 times, which only Beam's FileSystems report.
 """
+
 from __future__ import annotations
 
 import datetime as _dt
@@ -18,13 +19,32 @@ from corrtransforms.beam.filesystems import BeamFiles
 from corrtransforms.config import AssetConfig
 from corrtransforms.stages import summaries
 from corrtransforms.stages import write as table_writer
-from corrtransforms.stages.summaries import (EPISODE_COLUMNS, EPISODE_EVIDENCE, LATEST_STATE, SUMMARIES,
-                                             episode_evidence, last_row_of_each_series, latest_states)
+from corrtransforms.stages.summaries import (
+    EPISODE_COLUMNS,
+    EPISODE_EVIDENCE,
+    LATEST_STATE,
+    SUMMARIES,
+    episode_evidence,
+    last_row_of_each_series,
+    latest_states,
+)
 
 #: the reductions and names are re-exported for the launchers (their home is stages.summaries)
-__all__ = ["EPISODE_COLUMNS", "EPISODE_EVIDENCE", "LATEST_STATE", "SUMMARIES", "episode_evidence",
-           "last_row_of_each_series", "latest_states", "partition_files", "read_partitions", "summary_path",
-           "summarize_partitions", "write_episodes", "remove_stale_temporary"]
+__all__ = [
+    "EPISODE_COLUMNS",
+    "EPISODE_EVIDENCE",
+    "LATEST_STATE",
+    "SUMMARIES",
+    "episode_evidence",
+    "last_row_of_each_series",
+    "latest_states",
+    "partition_files",
+    "read_partitions",
+    "summary_path",
+    "summarize_partitions",
+    "write_episodes",
+    "remove_stale_temporary",
+]
 
 
 def partition_files(output_dir: str, table: str, asset: str) -> List[tuple]:
@@ -32,9 +52,15 @@ def partition_files(output_dir: str, table: str, asset: str) -> List[tuple]:
     return summaries.partition_files(BeamFiles(), output_dir, table, asset)
 
 
-def read_partitions(output_dir: str, table: str, asset: str, schema: pa.Schema,
-                    before: Optional[_dt.date] = None, columns: Optional[Sequence[str]] = None,
-                    keep: Optional[Callable[[pa.Table], pa.Table]] = None) -> pa.Table:
+def read_partitions(
+    output_dir: str,
+    table: str,
+    asset: str,
+    schema: pa.Schema,
+    before: Optional[_dt.date] = None,
+    columns: Optional[Sequence[str]] = None,
+    keep: Optional[Callable[[pa.Table], pa.Table]] = None,
+) -> pa.Table:
     """:func:`corrtransforms.stages.summaries.read_partitions` over Beam's FileSystems."""
     return summaries.read_partitions(BeamFiles(), output_dir, table, asset, schema, before, columns, keep)
 
@@ -44,14 +70,21 @@ def summary_path(output_dir: str, asset: str, name: str) -> str:
     return summaries.summary_path(BeamFiles(), output_dir, asset, name)
 
 
-def summarize_partitions(output_dir: str, table: str, asset: str, schema: pa.Schema,
-                         keep: Callable[[pa.Table], pa.Table], name: str,
-                         before: Optional[_dt.date] = None,
-                         columns: Optional[Sequence[str]] = None,
-                         provenance: Optional[Mapping[str, str]] = None) -> pa.Table:
+def summarize_partitions(
+    output_dir: str,
+    table: str,
+    asset: str,
+    schema: pa.Schema,
+    keep: Callable[[pa.Table], pa.Table],
+    name: str,
+    before: Optional[_dt.date] = None,
+    columns: Optional[Sequence[str]] = None,
+    provenance: Optional[Mapping[str, str]] = None,
+) -> pa.Table:
     """:func:`corrtransforms.stages.summaries.summarize_partitions` over Beam's FileSystems."""
-    return summaries.summarize_partitions(BeamFiles(), output_dir, table, asset, schema, keep, name,
-                                          before, columns, provenance)
+    return summaries.summarize_partitions(
+        BeamFiles(), output_dir, table, asset, schema, keep, name, before, columns, provenance
+    )
 
 
 def write_episodes(output_dir: str, config: AssetConfig, run_id: str) -> int:
@@ -59,8 +92,9 @@ def write_episodes(output_dir: str, config: AssetConfig, run_id: str) -> int:
     return summaries.write_episodes(BeamFiles(), output_dir, config, run_id)
 
 
-def remove_stale_temporary(output_dir: str, current_run_id: str, older_than_s: float,
-                           now_s: Optional[float] = None) -> List[Tuple[str, float]]:
+def remove_stale_temporary(
+    output_dir: str, current_run_id: str, older_than_s: float, now_s: Optional[float] = None
+) -> List[Tuple[str, float]]:
     """Delete the ``DIR/_temporary/<run id>/`` folders of runs that stopped writing long ago.
 
     Parameters
@@ -102,7 +136,7 @@ def remove_stale_temporary(output_dir: str, current_run_id: str, older_than_s: f
         path = item.path.replace("\\", "/")
         if not path.startswith(prefix):
             continue
-        run = path[len(prefix):].split("/", 1)[0]
+        run = path[len(prefix) :].split("/", 1)[0]
         updated = float(getattr(item, "last_updated_in_seconds", 0.0) or 0.0)
         newest[run] = max(newest.get(run, 0.0), updated)
     now_s = time.time() if now_s is None else float(now_s)

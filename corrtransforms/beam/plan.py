@@ -1,4 +1,5 @@
 """PlanReads: an asset's archive -> read tasks, from the Parquet footers only (stage 1)."""
+
 from __future__ import annotations
 
 import datetime as _dt
@@ -73,23 +74,32 @@ class PlanReads(beam.PTransform):
         ``"rejects"``: file-level findings; ``"days"``: the dates (``YYYY-MM-DD``) this run owns.
     """
 
-    def __init__(self, config: AssetConfig, start: Optional[_dt.date] = None, end: Optional[_dt.date] = None,
-                 pattern: Optional[str] = None):
+    def __init__(
+        self,
+        config: AssetConfig,
+        start: Optional[_dt.date] = None,
+        end: Optional[_dt.date] = None,
+        pattern: Optional[str] = None,
+    ):
         super().__init__()
         self._config, self._start, self._end = config, start, end
         self._pattern = pattern or config.archive.path
 
     def expand(self, pbegin):
         start, end = self._start, self._end
-        paths = (pbegin
-                 | "Archive pattern" >> beam.Create([self._pattern])
-                 | "List files" >> beam.FlatMap(list_archive)
-                 | "Skip days outside the range" >> beam.Filter(archive_plan.in_day_range, start, end)
-                 | "Spread files" >> beam.Reshuffle())
+        paths = (
+            pbegin
+            | "Archive pattern" >> beam.Create([self._pattern])
+            | "List files" >> beam.FlatMap(list_archive)
+            | "Skip days outside the range" >> beam.Filter(archive_plan.in_day_range, start, end)
+            | "Spread files" >> beam.Reshuffle()
+        )
         footers = paths | "Read footers" >> beam.ParDo(_ReadFooterFn(self._config))
-        planned = (footers
-                   | "Collect footers" >> beam.combiners.ToList()
-                   | "Plan windows and tasks" >> beam.ParDo(_PlanFn(self._config, start, end))
-                   .with_outputs("rejects", "days", main="tasks"))
+        planned = (
+            footers
+            | "Collect footers" >> beam.combiners.ToList()
+            | "Plan windows and tasks"
+            >> beam.ParDo(_PlanFn(self._config, start, end)).with_outputs("rejects", "days", main="tasks")
+        )
         tasks = planned.tasks | "Spread tasks" >> beam.Reshuffle()
         return {"tasks": tasks, "rejects": planned.rejects, "days": planned.days}

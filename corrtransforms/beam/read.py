@@ -1,4 +1,5 @@
 """ReadWindows: read tasks -> one window block per planned window, or its rejects (stage 2)."""
+
 from __future__ import annotations
 
 import logging
@@ -41,8 +42,13 @@ class _ReadWindowsFn(beam.DoFn):
             _LOG.exception("read task %s failed", task.task_id)
             for start_us in task.window_starts_us:
                 if start_us not in done:
-                    finding = whole_window_reject(self._config, start_us, "read", "decode_failed",
-                                                   f"reading task {task.task_id} failed: {type(err).__name__}: {err}")
+                    finding = whole_window_reject(
+                        self._config,
+                        start_us,
+                        "read",
+                        "decode_failed",
+                        f"reading task {task.task_id} failed: {type(err).__name__}: {err}",
+                    )
                     count_reject(finding)
                     yield beam.pvalue.TaggedOutput("rejects", finding)
 
@@ -60,5 +66,6 @@ class ReadWindows(beam.PTransform):
 
     def expand(self, tasks):
         out = tasks | "Read task windows" >> beam.ParDo(_ReadWindowsFn(self._config)).with_outputs(
-            "rejects", main="blocks")
+            "rejects", main="blocks"
+        )
         return {"blocks": out.blocks, "rejects": out.rejects}

@@ -9,6 +9,7 @@
 ready for :class:`corrtransforms.beam.write.WriteTables` (tables ``shifts``, ``state``,
 ``rejects``). The work is :func:`corrtransforms.stages.shifts.detect_shifts_for_rows`.
 """
+
 from __future__ import annotations
 
 from typing import Any, Iterable, Union
@@ -16,11 +17,12 @@ from typing import Any, Iterable, Union
 import apache_beam as beam
 import pyarrow as pa
 
-from corrtransforms.stages import shifts as shift_series
-from corrtransforms.stages.state import ShiftState
 from corrtransforms.beam.metrics import counter as _counter
 from corrtransforms.config import AssetConfig
 from corrtransforms.records import IndicatorRow
+from corrtransforms.stages import shifts as shift_series
+from corrtransforms.stages.state import ShiftState
+
 
 class _SplitRowsFn(beam.DoFn):
     """Monitored rows to the main output, covariate means to "covariates"; counts the rest."""
@@ -65,8 +67,9 @@ class _DetectSeriesFn(beam.DoFn):
 
     def process(self, keyed, covariates, states):
         (_asset, subject, indicator), rows = keyed
-        outcome = shift_series.detect_shifts_for_rows(rows, covariates, self._config,
-                                                      states[(subject, indicator)], self._order)
+        outcome = shift_series.detect_shifts_for_rows(
+            rows, covariates, self._config, states[(subject, indicator)], self._order
+        )
         self._series.inc()
         self._windows.inc(outcome.shifts.num_rows)
         self._shifted.inc(outcome.shifted_windows)
@@ -129,8 +132,12 @@ class DetectShifts(beam.PTransform):
     to the samples, and the detectors need it in time order, which the core sorts.
     """
 
-    def __init__(self, config: AssetConfig, initial_states: Union[None, pa.Table, Iterable[Any], beam.PCollection] = None,
-                 order: int = 1):
+    def __init__(
+        self,
+        config: AssetConfig,
+        initial_states: Union[None, pa.Table, Iterable[Any], beam.PCollection] = None,
+        order: int = 1,
+    ):
         super().__init__()
         self._config, self._initial_states, self._order = config, initial_states, order
 
@@ -138,27 +145,30 @@ class DetectShifts(beam.PTransform):
         config = self._config
         asset = config.name
         pipeline = indicator_rows.pipeline
-        split = (indicator_rows
-                 | "Split monitored and covariate rows" >> beam.ParDo(
-                     _SplitRowsFn(config)).with_outputs(
-                         "covariates", main="monitored"))
-        covariates = (split.covariates
-                      | "Key covariates by window" >> beam.Map(lambda r: (int(r.window_start_us), r))
-                      | "Group covariates by window" >> beam.GroupByKey()
-                      | "Covariate means per window" >> beam.ParDo(_CovariateMeansFn(asset)).with_outputs(
-                          "rejects", main="means"))
+        split = indicator_rows | "Split monitored and covariate rows" >> beam.ParDo(_SplitRowsFn(config)).with_outputs(
+            "covariates", main="monitored"
+        )
+        covariates = (
+            split.covariates
+            | "Key covariates by window" >> beam.Map(lambda r: (int(r.window_start_us), r))
+            | "Group covariates by window" >> beam.GroupByKey()
+            | "Covariate means per window" >> beam.ParDo(_CovariateMeansFn(asset)).with_outputs("rejects", main="means")
+        )
         if isinstance(self._initial_states, beam.PCollection):
             states = self._initial_states | "Initial state rows" >> beam.FlatMap(_split_state_table)
         else:
             states = pipeline | "Initial states" >> beam.Create(_state_rows(self._initial_states))
         keyed_states = states | "Key states by series" >> beam.Map(lambda s: ((s["subject"], s["indicator"]), s))
-        detected = (split.monitored
-                    | "Key by series" >> beam.Map(lambda r: ((asset, r.subject, r.indicator), r))
-                    | "Group by series" >> beam.GroupByKey()
-                    | "Detect shifts" >> beam.ParDo(
-                        _DetectSeriesFn(config, self._order),
-                        covariates=beam.pvalue.AsDict(covariates.means),
-                        states=beam.pvalue.AsMultiMap(keyed_states)).with_outputs("state", "rejects", main="shifts"))
-        rejects = ((covariates.rejects, detected.rejects)
-                   | "Collect shift rejects" >> beam.Flatten())
+        detected = (
+            split.monitored
+            | "Key by series" >> beam.Map(lambda r: ((asset, r.subject, r.indicator), r))
+            | "Group by series" >> beam.GroupByKey()
+            | "Detect shifts"
+            >> beam.ParDo(
+                _DetectSeriesFn(config, self._order),
+                covariates=beam.pvalue.AsDict(covariates.means),
+                states=beam.pvalue.AsMultiMap(keyed_states),
+            ).with_outputs("state", "rejects", main="shifts")
+        )
+        rejects = (covariates.rejects, detected.rejects) | "Collect shift rejects" >> beam.Flatten()
         return {"shifts": detected.shifts, "state": detected.state, "rejects": rejects}

@@ -3,6 +3,7 @@
 Part files are written where the rows are made (no shuffle of big rows) and each partition is
 committed after a GroupByKey of the small part-file records.
 """
+
 from __future__ import annotations
 
 import uuid
@@ -44,8 +45,17 @@ class _WritePartsFn(beam.DoFn):
         if not tables:
             return None
         table = pa.concat_tables(tables)
-        part = table_writer.write_part(self._store, self._output, self._table, self._config.name, date, table,
-                                       self._run_id, self._metadata, unique=uuid.uuid4().hex)
+        part = table_writer.write_part(
+            self._store,
+            self._output,
+            self._table,
+            self._config.name,
+            date,
+            table,
+            self._run_id,
+            self._metadata,
+            unique=uuid.uuid4().hex,
+        )
         self._rows.inc(part.rows)
         return part
 
@@ -76,8 +86,9 @@ class _CommitFn(beam.DoFn):
         (asset, date), values = keyed
         parts = [v for v in values if v is not None]
         for name in self._tables:
-            result = table_writer.commit_partition(self._store, self._output, name, asset, date,
-                                                   [p for p in parts if p.table == name])
+            result = table_writer.commit_partition(
+                self._store, self._output, name, asset, date, [p for p in parts if p.table == name]
+            )
             self._files.inc(len(result.files))
             self._stale.inc(len(result.removed))
             yield result
@@ -121,8 +132,14 @@ class WriteTables(beam.PTransform):
     successful bundles are committed, the rest go with the temporary folder.
     """
 
-    def __init__(self, output_dir: str, config: AssetConfig, run_id: str,
-                 days: Union[None, Sequence[str], beam.PCollection] = None, flush_bytes: int = FLUSH_BYTES):
+    def __init__(
+        self,
+        output_dir: str,
+        config: AssetConfig,
+        run_id: str,
+        days: Union[None, Sequence[str], beam.PCollection] = None,
+        flush_bytes: int = FLUSH_BYTES,
+    ):
         super().__init__()
         self._output, self._config, self._run_id = output_dir, config, run_id
         self._days, self._flush_bytes = days, flush_bytes
@@ -133,18 +150,25 @@ class WriteTables(beam.PTransform):
         pipeline = next(iter(tables.values())).pipeline
         keyed = []
         for name in names:
-            parts = (tables[name]
-                     | f"Write {name} parts" >> beam.ParDo(_WritePartsFn(name, self._output, self._config,
-                                                                          self._run_id, self._flush_bytes)))
+            parts = tables[name] | f"Write {name} parts" >> beam.ParDo(
+                _WritePartsFn(name, self._output, self._config, self._run_id, self._flush_bytes)
+            )
             keyed.append(parts | f"Key {name} parts" >> beam.Map(lambda p: ((p.asset, p.date), p)))
         if self._days is not None:
-            days = self._days if isinstance(self._days, beam.PCollection) else (
-                pipeline | "Owned days" >> beam.Create(list(self._days)))
+            days = (
+                self._days
+                if isinstance(self._days, beam.PCollection)
+                else (pipeline | "Owned days" >> beam.Create(list(self._days)))
+            )
             keyed.append(days | "Key owned days" >> beam.Map(lambda d: ((asset, d), None)))
-        results = (keyed
-                   | "All parts" >> beam.Flatten()
-                   | "Group by partition" >> beam.GroupByKey()
-                   | "Commit partitions" >> beam.ParDo(_CommitFn(names, self._output)))
-        return (results
-                | "Collect commits" >> beam.combiners.ToList()
-                | "Remove temporary files" >> beam.Map(_remove_temporary, self._output, self._run_id))
+        results = (
+            keyed
+            | "All parts" >> beam.Flatten()
+            | "Group by partition" >> beam.GroupByKey()
+            | "Commit partitions" >> beam.ParDo(_CommitFn(names, self._output))
+        )
+        return (
+            results
+            | "Collect commits" >> beam.combiners.ToList()
+            | "Remove temporary files" >> beam.Map(_remove_temporary, self._output, self._run_id)
+        )

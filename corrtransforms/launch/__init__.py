@@ -11,6 +11,7 @@ Importing this package first installs a filter on the root logger that drops Bea
 warning "apitools not found ..." (the optional Google Cloud client is absent: nothing to act on);
 every other warning passes.
 """
+
 import logging
 
 

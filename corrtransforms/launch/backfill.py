@@ -1,8 +1,9 @@
 """Backfill: an asset's Parquet archive (or some of its days) -> all five output tables.
 
-    corrtransforms-backfill --config FILE --output DIR [--start YYYY-MM-DD] [--end YYYY-MM-DD]
-                            [any Beam flag, e.g. --runner, --direct_num_workers]
+corrtransforms-backfill --config FILE --output DIR [--start YYYY-MM-DD] [--end YYYY-MM-DD]
+                        [any Beam flag, e.g. --runner, --direct_num_workers]
 """
+
 from __future__ import annotations
 
 from typing import Dict, List, Optional

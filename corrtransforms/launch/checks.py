@@ -3,6 +3,7 @@
 
 Both read only Parquet footers and the run's rejects table, through Beam's FileSystems.
 """
+
 from __future__ import annotations
 
 import datetime as _dt
@@ -43,9 +44,11 @@ def check_channels(config: AssetConfig, start: Optional[_dt.date], end: Optional
             return
     missing = [name for name in wanted if name not in seen]
     if seen and missing:
-        raise SystemExit(f"configuration error: [channels] names: {', '.join(map(repr, missing))} "
-                         f"{'is' if len(missing) == 1 else 'are'} a column of no file in {len(paths)} files of "
-                         f"{config.archive.path!r}; columns found: {', '.join(seen)}")
+        raise SystemExit(
+            f"configuration error: [channels] names: {', '.join(map(repr, missing))} "
+            f"{'is' if len(missing) == 1 else 'are'} a column of no file in {len(paths)} files of "
+            f"{config.archive.path!r}; columns found: {', '.join(seen)}"
+        )
 
 
 def last_data_time(config: AssetConfig) -> str:
@@ -69,8 +72,9 @@ def _days(start: Optional[_dt.date], end: Optional[_dt.date]) -> str:
     return f"{start or 'the first day'} to {end or 'the last day'}"
 
 
-def reject_examples(output: str, config: AssetConfig, start: Optional[_dt.date],
-                    end: Optional[_dt.date], limit: int = 3):
+def reject_examples(
+    output: str, config: AssetConfig, start: Optional[_dt.date], end: Optional[_dt.date], limit: int = 3
+):
     """The most frequent whole-window reject reasons of the days, each with a count and one
     example, and the sorted days those windows belong to."""
     rejects = read_partitions(output, "rejects", config.name, tables.REJECTS)
@@ -83,26 +87,32 @@ def reject_examples(output: str, config: AssetConfig, start: Optional[_dt.date],
         if (start and _dt.date.fromisoformat(day) < start) or (end and _dt.date.fromisoformat(day) > end):
             continue
         days.add(day)
-        entry = found.setdefault(row["reason"], {"reason": row["reason"], "windows": 0,
-                                                 "example": f"{row['source']}: {row['detail']}"})
+        entry = found.setdefault(
+            row["reason"], {"reason": row["reason"], "windows": 0, "example": f"{row['source']}: {row['detail']}"}
+        )
         entry["windows"] += 1
     return sorted(found.values(), key=lambda e: (-e["windows"], e["reason"]))[:limit], sorted(days)
 
 
-def check_usable(counters: Dict[str, int], config: AssetConfig, output: str, start: Optional[_dt.date],
-                 end: Optional[_dt.date]) -> None:
+def check_usable(
+    counters: Dict[str, int], config: AssetConfig, output: str, start: Optional[_dt.date], end: Optional[_dt.date]
+) -> None:
     """SystemExit (status 3) after a run that planned no window or had every window rejected."""
     planned, computed = counters.get("windows_planned", 0), counters.get("windows_computed", 0)
     if planned and computed:
         return
     if not planned:
-        message = (f"nothing to do: {config.name}: no data in {_days(start, end)} under "
-                   f"{config.archive.path!r}; the last data seen ends {last_data_time(config)}")
+        message = (
+            f"nothing to do: {config.name}: no data in {_days(start, end)} under "
+            f"{config.archive.path!r}; the last data seen ends {last_data_time(config)}"
+        )
     else:
         examples, days = reject_examples(output, config, start, end)
         reasons = "; ".join(f"{e['reason']} ({e['windows']} windows, e.g. {e['example']})" for e in examples)
         shown = ", ".join(days[:3]) + (f" and {len(days) - 3} more days" if len(days) > 3 else "")
-        message = (f"nothing usable: {config.name}: all {planned} planned windows ({shown or _days(start, end)}) "
-                   f"were rejected; top reasons: {reasons or 'see the rejects table'}")
+        message = (
+            f"nothing usable: {config.name}: all {planned} planned windows ({shown or _days(start, end)}) "
+            f"were rejected; top reasons: {reasons or 'see the rejects table'}"
+        )
     print(message, file=sys.stderr, flush=True)
     raise SystemExit(NOTHING_USABLE)

@@ -4,6 +4,7 @@ the pipeline, running a job and its summary, and the exit statuses.
 The default runner is Beam's in-process FnApiRunner: this Beam version's "DirectRunner" first
 tries to download a runner binary from the network. ``--runner`` overrides it.
 """
+
 from __future__ import annotations
 
 import argparse
@@ -25,8 +26,13 @@ from corrtransforms import tables
 from corrtransforms.beam import LOCAL_RUNNER
 from corrtransforms.beam.metrics import window_accounting
 from corrtransforms.beam.monitor import PROGRESS_LOGGER, MonitorAsset
-from corrtransforms.beam.output_tables import (LATEST_STATE, latest_states, remove_stale_temporary,
-                                               summarize_partitions, write_episodes)
+from corrtransforms.beam.output_tables import (
+    LATEST_STATE,
+    latest_states,
+    remove_stale_temporary,
+    summarize_partitions,
+    write_episodes,
+)
 from corrtransforms.config import AssetConfig, ConfigError, load_config, parse_config
 from corrtransforms.launch import checks, run_summary
 from corrtransforms.stages import plan as archive_plan
@@ -65,15 +71,27 @@ class JobOptions(PipelineOptions):
         parser.add_argument("--start", type=_date, default=None, help="first day (YYYY-MM-DD, asset time zone)")
         parser.add_argument("--end", type=_date, default=None, help="last day (YYYY-MM-DD, inclusive)")
         parser.add_argument("--run_id", default=None, help="id of this run (default: UTC time + random)")
-        parser.add_argument("--date", type=_date, default=None,
-                            help="nightly: the day to process (default: yesterday in the asset's time zone)")
-        parser.add_argument("--rebuild_state", action="store_true", default=False,
-                            help="nightly: rebuild a missing previous state from the indicators table")
-        parser.add_argument("--stale_temporary_hours", type=float, default=24.0,
-                            help="delete other runs' _temporary folders not written for this many hours "
-                                 "(runs that died); 0 keeps them")
-        parser.add_argument("--report_dir", default=None,
-                            help="report: where to write the report (default OUTPUT/report)")
+        parser.add_argument(
+            "--date",
+            type=_date,
+            default=None,
+            help="nightly: the day to process (default: yesterday in the asset's time zone)",
+        )
+        parser.add_argument(
+            "--rebuild_state",
+            action="store_true",
+            default=False,
+            help="nightly: rebuild a missing previous state from the indicators table",
+        )
+        parser.add_argument(
+            "--stale_temporary_hours",
+            type=float,
+            default=24.0,
+            help="delete other runs' _temporary folders not written for this many hours (runs that died); 0 keeps them",
+        )
+        parser.add_argument(
+            "--report_dir", default=None, help="report: where to write the report (default OUTPUT/report)"
+        )
 
 
 #: each command's own flags and their one-line help (every other JobOptions flag belongs to another
@@ -111,20 +129,33 @@ EXIT_STATUSES = """exit statuses:
   2  missing previous state (nightly without an earlier state; see --rebuild_state)
   3  nothing to do or nothing usable: the requested days hold no data, or every planned window
      was rejected"""
-BEAM_FLAGS_NOTE = ("Beam's pipeline flags pass to Beam (--runner, --direct_num_workers, --temp_location, "
-                   "filesystem credentials ...):\n  see "
-                   "https://beam.apache.org/releases/pydoc/current/apache_beam.options.pipeline_options.html")
+BEAM_FLAGS_NOTE = (
+    "Beam's pipeline flags pass to Beam (--runner, --direct_num_workers, --temp_location, "
+    "filesystem credentials ...):\n  see "
+    "https://beam.apache.org/releases/pydoc/current/apache_beam.options.pipeline_options.html"
+)
 
 
 def help_text(command: str) -> str:
     """The ``--help`` page of a command: its own flags one per line, exit statuses, Beam's flags."""
-    lines = [f"usage: corrtransforms-{command} (or python -m pipelines.{command}) "
-             + " ".join(f"{flag} ..." for flag in COMMAND_FLAGS[command] if flag in ("--config", "--output"))
-             + " [flags] [Beam flags]", "", COMMAND_PURPOSE[command], "", "flags:"]
+    lines = [
+        f"usage: corrtransforms-{command} (or python -m pipelines.{command}) "
+        + " ".join(f"{flag} ..." for flag in COMMAND_FLAGS[command] if flag in ("--config", "--output"))
+        + " [flags] [Beam flags]",
+        "",
+        COMMAND_PURPOSE[command],
+        "",
+        "flags:",
+    ]
     lines += [f"  {flag:<24} {text}" for flag, text in COMMAND_FLAGS[command].items()]
-    lines += ["  --help                   this text",
-              "  (hyphenated spellings such as --report-dir or --run-id are accepted for the flags above)",
-              "", EXIT_STATUSES, "", BEAM_FLAGS_NOTE]
+    lines += [
+        "  --help                   this text",
+        "  (hyphenated spellings such as --report-dir or --run-id are accepted for the flags above)",
+        "",
+        EXIT_STATUSES,
+        "",
+        BEAM_FLAGS_NOTE,
+    ]
     return "\n".join(lines)
 
 
@@ -163,20 +194,29 @@ def check_flags(command: str, argv: List[str]) -> None:
             continue
         owners = [c for c, flags in COMMAND_FLAGS.items() if name in flags]
         if owners:
-            raise SystemExit(f"{command}: {name} is a flag of {' and '.join(owners)}, not of {command} "
-                             f"(its flags: {', '.join(own)}; see --help)")
+            raise SystemExit(
+                f"{command}: {name} is a flag of {' and '.join(owners)}, not of {command} "
+                f"(its flags: {', '.join(own)}; see --help)"
+            )
         near = difflib.get_close_matches(name, own + sorted(beam_known), n=1, cutoff=0.6)
-        raise SystemExit(f"{command}: unknown flag {name}" + (f"; did you mean {near[0]}?" if near else "")
-                         + " (see --help)")
+        raise SystemExit(
+            f"{command}: unknown flag {name}" + (f"; did you mean {near[0]}?" if near else "") + " (see --help)"
+        )
 
 
 def new_run_id() -> str:
     return _dt.datetime.now(_dt.timezone.utc).strftime("%Y%m%dT%H%M%SZ") + "-" + uuid.uuid4().hex[:8]
 
 
-def build_pipeline(p: beam.Pipeline, config: AssetConfig, output: str, start: Optional[_dt.date] = None,
-                   end: Optional[_dt.date] = None, run_id: Optional[str] = None,
-                   initial_states: Any = None) -> Dict[str, beam.PCollection]:
+def build_pipeline(
+    p: beam.Pipeline,
+    config: AssetConfig,
+    output: str,
+    start: Optional[_dt.date] = None,
+    end: Optional[_dt.date] = None,
+    run_id: Optional[str] = None,
+    initial_states: Any = None,
+) -> Dict[str, beam.PCollection]:
     """Add the whole job's steps to ``p`` (see :class:`corrtransforms.beam.MonitorAsset`)."""
     run_id = run_id or new_run_id()
     return p | "Monitor asset" >> MonitorAsset(config, output, run_id, start, end, initial_states)
@@ -186,8 +226,16 @@ def earlier_states(output: str, config: AssetConfig, start: Optional[_dt.date], 
     """State rows written before ``start`` (None when starting from the first window)."""
     if start is None:
         return None
-    states = summarize_partitions(output, "state", config.name, tables.STATE, latest_states, LATEST_STATE,
-                                  before=start, provenance=provenance_metadata(config, run_id))
+    states = summarize_partitions(
+        output,
+        "state",
+        config.name,
+        tables.STATE,
+        latest_states,
+        LATEST_STATE,
+        before=start,
+        provenance=provenance_metadata(config, run_id),
+    )
     return states if states.num_rows else None
 
 
@@ -207,12 +255,21 @@ def remove_stale(options: PipelineOptions, output: str, run_id: str) -> None:
     """Delete the temporary files of other runs that died (``--stale_temporary_hours``)."""
     stale_hours = options.view_as(JobOptions).stale_temporary_hours
     for stale_run, age_s in remove_stale_temporary(output, run_id, 3600.0 * stale_hours):
-        print(f"removed the temporary files of run {stale_run} under {output}: last written "
-              f"{age_s / 3600.0:.1f} h ago (a run that did not finish)")
+        print(
+            f"removed the temporary files of run {stale_run} under {output}: last written "
+            f"{age_s / 3600.0:.1f} h ago (a run that did not finish)"
+        )
 
 
-def run(options: PipelineOptions, config: AssetConfig, output: str, start: Optional[_dt.date],
-        end: Optional[_dt.date], run_id: str, initial_states: Any) -> Dict[str, int]:
+def run(
+    options: PipelineOptions,
+    config: AssetConfig,
+    output: str,
+    start: Optional[_dt.date],
+    end: Optional[_dt.date],
+    run_id: str,
+    initial_states: Any,
+) -> Dict[str, int]:
     """Build, run and summarise one job; rewrites the episodes summary afterwards."""
     _show_progress()
     remove_stale(options, output, run_id)
@@ -253,8 +310,10 @@ def load_job_config(path: str) -> AssetConfig:
         if "://" not in relative and not relative.startswith("/"):
             scheme, rest = path.split("://", 1)
             folder = posixpath.dirname(rest)
-            raw = {**raw, "archive": {**archive,
-                                      "path": f"{scheme}://{posixpath.normpath(posixpath.join(folder, relative))}"}}
+            raw = {
+                **raw,
+                "archive": {**archive, "path": f"{scheme}://{posixpath.normpath(posixpath.join(folder, relative))}"},
+            }
     return parse_config(raw, base_dir="", source=path)
 
 
@@ -304,8 +363,11 @@ def parse_options(argv: Optional[List[str]], command: str):
     except ConfigError as err:
         raise SystemExit(f"configuration error: {err}") from None
     check_archive(config)
-    checks.check_channels(config, as_date(args.start if command == "backfill" else args.date),
-                          as_date(args.end if command == "backfill" else args.date))
+    checks.check_channels(
+        config,
+        as_date(args.start if command == "backfill" else args.date),
+        as_date(args.end if command == "backfill" else args.date),
+    )
     return options, args, config
 
 
@@ -316,11 +378,12 @@ def check_archive(config: AssetConfig) -> None:
     try:
         found = FileSystems.match([pattern], limits=[1])[0].metadata_list
     except Exception as err:  # noqa: BLE001 - an unreachable or malformed location
-        raise SystemExit(f"configuration error: [archive] path = {config.archive.path!r}: "
-                         f"cannot be listed ({type(err).__name__}: {err})") from None
+        raise SystemExit(
+            f"configuration error: [archive] path = {config.archive.path!r}: "
+            f"cannot be listed ({type(err).__name__}: {err})"
+        ) from None
     if not found:
-        raise SystemExit(f"configuration error: [archive] path = {config.archive.path!r}: no files match "
-                         f"{pattern!r}")
+        raise SystemExit(f"configuration error: [archive] path = {config.archive.path!r}: no files match {pattern!r}")
 
 
 def summary(counters: Dict[str, int]) -> str:
@@ -328,22 +391,31 @@ def summary(counters: Dict[str, int]) -> str:
     planned = counters.get("windows_planned", 0)
     computed = counters.get("windows_computed", 0)
     rejected = counters.get("windows_rejected", 0)
-    lines = [f"windows planned {planned}, computed {computed}, rejected {rejected}"
-             + ("" if planned == computed + rejected else "  (ACCOUNTING MISMATCH)")]
+    lines = [
+        f"windows planned {planned}, computed {computed}, rejected {rejected}"
+        + ("" if planned == computed + rejected else "  (ACCOUNTING MISMATCH)")
+    ]
     prefix = "windows_rejected_"
     for name in sorted(k for k in counters if k.startswith(prefix)):
-        lines.append(f"  rejected {name[len(prefix):]}: {counters[name]}")
-    findings = sorted((k[len("findings_"):], v) for k, v in counters.items() if k.startswith("findings_"))
+        lines.append(f"  rejected {name[len(prefix) :]}: {counters[name]}")
+    findings = sorted((k[len("findings_") :], v) for k, v in counters.items() if k.startswith("findings_"))
     if findings:
         lines.append("findings: " + ", ".join(f"{k} {v}" for k, v in findings))
-    lines.append(f"files listed {counters.get('files_listed', 0)}, unusable {counters.get('files_rejected', 0)}; "
-                 f"rows written: " + ", ".join(f"{t} {counters.get('rows_written_' + t, 0)}" for t in
-                                               ("correlations", "indicators", "shifts", "state", "rejects"))
-                 + "; "
-                 f"files committed {counters.get('files_committed', 0)}, stale removed {counters.get('stale_files_removed', 0)}")
-    lines.append(f"shifts: {counters.get('shift_series', 0)} series, {counters.get('shift_windows', 0)} windows, "
-                 f"{counters.get('shift_windows_shifted', 0)} in state shifted; "
-                 f"episodes in the summary: {counters.get('episodes', 0)}")
+    lines.append(
+        f"files listed {counters.get('files_listed', 0)}, unusable {counters.get('files_rejected', 0)}; "
+        f"rows written: "
+        + ", ".join(
+            f"{t} {counters.get('rows_written_' + t, 0)}"
+            for t in ("correlations", "indicators", "shifts", "state", "rejects")
+        )
+        + "; "
+        f"files committed {counters.get('files_committed', 0)}, stale removed {counters.get('stale_files_removed', 0)}"
+    )
+    lines.append(
+        f"shifts: {counters.get('shift_series', 0)} series, {counters.get('shift_windows', 0)} windows, "
+        f"{counters.get('shift_windows_shifted', 0)} in state shifted; "
+        f"episodes in the summary: {counters.get('episodes', 0)}"
+    )
     return "\n".join(lines)
 
 

@@ -11,6 +11,7 @@ over the indicators table already written before that day (no raw samples are re
 gives the state a backfill would have written. Rerunning a night is harmless: it replaces the
 same partitions with the same rows.
 """
+
 from __future__ import annotations
 
 import datetime as _dt
@@ -39,9 +40,11 @@ def report_gap(config: AssetConfig, day: _dt.date, states) -> int:
     latest = max(states.column("local_date").to_pylist())
     missing = (day - latest).days - 1
     if missing > 0:
-        print(f"nightly {config.name} {day}: resuming from the state of {latest}: {missing} "
-              f"day{'s' if missing != 1 else ''} without state in between ({latest + _dt.timedelta(days=1)} to "
-              f"{day - _dt.timedelta(days=1)}); run those nights first if they hold data")
+        print(
+            f"nightly {config.name} {day}: resuming from the state of {latest}: {missing} "
+            f"day{'s' if missing != 1 else ''} without state in between ({latest + _dt.timedelta(days=1)} to "
+            f"{day - _dt.timedelta(days=1)}); run those nights first if they hold data"
+        )
     return missing
 
 
@@ -53,17 +56,24 @@ def previous_states(output: str, config: AssetConfig, day: _dt.date, rebuild: bo
         return states
     earlier_indicators = [d for d, _ in partition_files(output, "indicators", config.name) if d < day.isoformat()]
     if not rebuild:
-        hint = ("the indicators table has earlier days: pass --rebuild_state to replay the detectors over them"
-                if earlier_indicators else
-                "run the backfill over the earlier days first (it writes the state), "
-                "or pass --rebuild_state to start from the indicators table")
-        print(f"nightly {config.name} {day}: no detector state before {day} under {output}/state/asset={config.name}/; "
-              f"{hint}", file=sys.stderr)
+        hint = (
+            "the indicators table has earlier days: pass --rebuild_state to replay the detectors over them"
+            if earlier_indicators
+            else "run the backfill over the earlier days first (it writes the state), "
+            "or pass --rebuild_state to start from the indicators table"
+        )
+        print(
+            f"nightly {config.name} {day}: no detector state before {day} under {output}/state/asset={config.name}/; "
+            f"{hint}",
+            file=sys.stderr,
+        )
         raise SystemExit(MISSING_STATE)
     indicators = read_partitions(output, "indicators", config.name, tables.INDICATORS, before=day)
     rebuilt, _ = replay_states(indicators, config)
-    print(f"nightly {config.name} {day}: rebuilt the state of {rebuilt.num_rows} series from "
-          f"{indicators.num_rows} indicator rows of {len(earlier_indicators)} earlier days")
+    print(
+        f"nightly {config.name} {day}: rebuilt the state of {rebuilt.num_rows} series from "
+        f"{indicators.num_rows} indicator rows of {len(earlier_indicators)} earlier days"
+    )
     return rebuilt if rebuilt.num_rows else None
 
 

@@ -5,6 +5,7 @@
 Writes ``DIR/report/index.html`` and one PNG per subject and indicator
 (:func:`corrtransforms.report.write_report`), reading and writing through Beam's FileSystems.
 """
+
 from __future__ import annotations
 
 import sys
@@ -24,8 +25,10 @@ def main(argv: Optional[List[str]] = None) -> int:
     try:
         import matplotlib  # noqa: F401 - the pictures need it; checked before anything is written
     except ImportError:
-        print('report: matplotlib is not installed; install the report extra: pip install "corrtransforms[report]"',
-              file=sys.stderr)
+        print(
+            'report: matplotlib is not installed; install the report extra: pip install "corrtransforms[report]"',
+            file=sys.stderr,
+        )
         return common.ERROR
     store = files.default_store()
     if not store.holds_anything(args.output):

@@ -6,6 +6,7 @@ which series are still accumulating their baseline (from the state table), the n
 shift episodes (subject, indicator, direction, onset, size in units and in % of the baseline
 level, peak |z|) and the report command to run next.
 """
+
 from __future__ import annotations
 
 import datetime as _dt
@@ -49,9 +50,15 @@ def baseline_status(states) -> Dict[str, Any]:
 
 
 def _baseline_levels(states) -> Dict[tuple, float]:
-    return {(s, i): loc for s, i, loc in zip(states.column("subject").to_pylist(),
-                                             states.column("indicator").to_pylist(),
-                                             states.column("model_location").to_pylist()) if loc is not None}
+    return {
+        (s, i): loc
+        for s, i, loc in zip(
+            states.column("subject").to_pylist(),
+            states.column("indicator").to_pylist(),
+            states.column("model_location").to_pylist(),
+        )
+        if loc is not None
+    }
 
 
 def read_episodes(output: str, config: AssetConfig) -> List[Dict[str, Any]]:
@@ -67,11 +74,20 @@ def read_episodes(output: str, config: AssetConfig) -> List[Dict[str, Any]]:
 def _episode_entry(e: Dict[str, Any], levels: Dict[tuple, float]) -> Dict[str, Any]:
     level = levels.get((e["subject"], e["indicator"]))
     size = e.get("shift_size")
-    percent = (100.0 * size / abs(level) if size is not None and level is not None and abs(level) > 0 else None)
-    return {"subject": e["subject"], "indicator": e["indicator"], "status": e["status"],
-            "direction": "up" if e["direction"] > 0 else "down", "onset": _time(e.get("onset")),
-            "first_alarm": _time(e.get("first_alarm")), "shift_size": size, "unit": e.get("unit") or "",
-            "baseline_level": level, "shift_percent": percent, "peak_abs_z": e.get("peak_abs_z")}
+    percent = 100.0 * size / abs(level) if size is not None and level is not None and abs(level) > 0 else None
+    return {
+        "subject": e["subject"],
+        "indicator": e["indicator"],
+        "status": e["status"],
+        "direction": "up" if e["direction"] > 0 else "down",
+        "onset": _time(e.get("onset")),
+        "first_alarm": _time(e.get("first_alarm")),
+        "shift_size": size,
+        "unit": e.get("unit") or "",
+        "baseline_level": level,
+        "shift_percent": percent,
+        "peak_abs_z": e.get("peak_abs_z"),
+    }
 
 
 def _in_days(moment, config: AssetConfig, start, end) -> bool:
@@ -81,25 +97,43 @@ def _in_days(moment, config: AssetConfig, start, end) -> bool:
     return (start is None or day >= start) and (end is None or day <= end)
 
 
-def build(counters: Dict[str, int], config: AssetConfig, output: str, run_id: str, start: Optional[_dt.date],
-          end: Optional[_dt.date]) -> Dict[str, Any]:
+def build(
+    counters: Dict[str, int],
+    config: AssetConfig,
+    output: str,
+    run_id: str,
+    start: Optional[_dt.date],
+    end: Optional[_dt.date],
+) -> Dict[str, Any]:
     """The run summary as plain values (what the JSON file holds)."""
     states = run_states(output, config, start, end)
     levels = _baseline_levels(states)
     episodes = read_episodes(output, config)
     prefix = "windows_rejected_"
     return {
-        "run_id": run_id, "asset": config.name, "output": output,
-        "days": {"start": None if start is None else start.isoformat(), "end": None if end is None else end.isoformat()},
-        "windows": {"planned": counters.get("windows_planned", 0), "computed": counters.get("windows_computed", 0),
-                    "rejected": counters.get("windows_rejected", 0),
-                    "rejected_by_reason": {k[len(prefix):]: v for k, v in sorted(counters.items())
-                                           if k.startswith(prefix)}},
-        "baseline": {**baseline_status(states), "windows_needed": config.baseline.windows,
-                     "until": None if config.baseline.end is None else config.baseline.end.isoformat()},
+        "run_id": run_id,
+        "asset": config.name,
+        "output": output,
+        "days": {
+            "start": None if start is None else start.isoformat(),
+            "end": None if end is None else end.isoformat(),
+        },
+        "windows": {
+            "planned": counters.get("windows_planned", 0),
+            "computed": counters.get("windows_computed", 0),
+            "rejected": counters.get("windows_rejected", 0),
+            "rejected_by_reason": {k[len(prefix) :]: v for k, v in sorted(counters.items()) if k.startswith(prefix)},
+        },
+        "baseline": {
+            **baseline_status(states),
+            "windows_needed": config.baseline.windows,
+            "until": None if config.baseline.end is None else config.baseline.end.isoformat(),
+        },
         "new_episodes": [_episode_entry(e, levels) for e in episodes if _in_days(e["first_alarm"], config, start, end)],
         "open_episodes": [_episode_entry(e, levels) for e in episodes if e["status"] == "open"],
-        "next": f"corrtransforms-report --output {output}   (from a checkout: python -m pipelines.report --output {output})",
+        "next": (
+            f"corrtransforms-report --output {output}   (from a checkout: python -m pipelines.report --output {output})"
+        ),
     }
 
 
@@ -108,11 +142,14 @@ def _baseline_line(b: Dict[str, Any]) -> str:
         return "baseline: no monitored series yet"
     if not b["accumulating"]:
         return f"baseline: fitted for all {b['series']} series"
-    need = (f" of {b['windows_needed']}" if b["windows_needed"] else
-            f" (baseline until {b['until']})" if b["until"] else "")
+    need = (
+        f" of {b['windows_needed']}" if b["windows_needed"] else f" (baseline until {b['until']})" if b["until"] else ""
+    )
     alarms = "no alarms possible yet" if b["accumulating"] == b["series"] else "alarms possible for the others"
-    return (f"{b['accumulating']} of {b['series']} series: baseline accumulating, "
-            f"{b['fewest_windows_seen']}{need} windows; {alarms}")
+    return (
+        f"{b['accumulating']} of {b['series']} series: baseline accumulating, "
+        f"{b['fewest_windows_seen']}{need} windows; {alarms}"
+    )
 
 
 def _episode_line(e: Dict[str, Any]) -> str:
@@ -125,10 +162,12 @@ def _episode_line(e: Dict[str, Any]) -> str:
 def text(summary: Dict[str, Any]) -> str:
     """The console form of the summary."""
     w = summary["windows"]
-    lines = [f"run {summary['run_id']} of {summary['asset']}: output {summary['output']}",
-             f"windows: planned {w['planned']}, computed {w['computed']}, rejected {w['rejected']}"
-             + "".join(f"; {reason} {n}" for reason, n in w["rejected_by_reason"].items()),
-             _baseline_line(summary["baseline"])]
+    lines = [
+        f"run {summary['run_id']} of {summary['asset']}: output {summary['output']}",
+        f"windows: planned {w['planned']}, computed {w['computed']}, rejected {w['rejected']}"
+        + "".join(f"; {reason} {n}" for reason, n in w["rejected_by_reason"].items()),
+        _baseline_line(summary["baseline"]),
+    ]
     for key, title in (("new_episodes", "new shift episodes"), ("open_episodes", "open shift episodes")):
         lines.append(f"{title}: {len(summary[key])}" + (":" if summary[key] else ""))
         lines += [_episode_line(e) for e in summary[key]]

@@ -26,6 +26,7 @@ properties and enhancements. Technometrics 32, 1-12.
 Siegmund, D. (1985). Sequential Analysis. Springer.
 Montgomery, D. C. (2009). Introduction to Statistical Quality Control, 6th ed., Wiley, ch. 9.
 """
+
 from __future__ import annotations
 
 import functools
@@ -41,10 +42,20 @@ from corrtransforms.numerics.detectors import CHARTS, cusum_path, ewma_limits, e
 # Average run length by simulation
 
 
-def simulate_run_lengths(chart: str, *, shift: float = 0.0, n_chains: int = 10000,
-                         rng: Optional[np.random.Generator] = None, k: float = 0.5, h: float = 5.0,
-                         smoothing: float = 0.2, width: float = 3.0, exact_limits: bool = True,
-                         block: int = 256, max_steps: int = 10**6) -> np.ndarray:
+def simulate_run_lengths(
+    chart: str,
+    *,
+    shift: float = 0.0,
+    n_chains: int = 10000,
+    rng: Optional[np.random.Generator] = None,
+    k: float = 0.5,
+    h: float = 5.0,
+    smoothing: float = 0.2,
+    width: float = 3.0,
+    exact_limits: bool = True,
+    block: int = 256,
+    max_steps: int = 10**6,
+) -> np.ndarray:
     """Run lengths of two-sided charts on N(shift, 1) data, many chains at once.
 
     Parameters
@@ -140,8 +151,9 @@ def _one_sided_cusum_arl_integral(k: float, h: float, mean: float, nodes: int) -
     return float(arl[0])
 
 
-def cusum_arl_integral_equation(k: float, h: float, shift: float = 0.0, nodes: int = 48,
-                                two_sided: bool = True) -> float:
+def cusum_arl_integral_equation(
+    k: float, h: float, shift: float = 0.0, nodes: int = 48, two_sided: bool = True
+) -> float:
     """Zero-start ARL of the tabular CUSUM from Page's integral equation.
 
     Parameters
@@ -195,8 +207,7 @@ def _one_sided_cusum_arl_markov(k: float, h: float, mean: float, states: int) ->
     return float(arl[0])
 
 
-def cusum_arl_markov_chain(k: float, h: float, shift: float = 0.0, states: int = 200,
-                           two_sided: bool = True) -> float:
+def cusum_arl_markov_chain(k: float, h: float, shift: float = 0.0, states: int = 200, two_sided: bool = True) -> float:
     """Zero-start ARL of the tabular CUSUM by the Markov-chain method of Brook & Evans (1972).
 
     Parameters
@@ -250,8 +261,7 @@ def cusum_arl_siegmund(k: float, h: float, shift: float = 0.0, two_sided: bool =
     return float(1.0 / (1.0 / upper + 1.0 / one(-shift - k)))
 
 
-def ewma_arl_integral_equation(smoothing: float, width: float, shift: float = 0.0,
-                               nodes: int = 128) -> float:
+def ewma_arl_integral_equation(smoothing: float, width: float, shift: float = 0.0, nodes: int = 128) -> float:
     """Zero-start ARL of the two-sided EWMA chart with asymptotic limits (Crowder 1987).
 
     Parameters
@@ -290,8 +300,14 @@ def ewma_arl_integral_equation(smoothing: float, width: float, shift: float = 0.
     return float(arl[0])
 
 
-def ewma_arl_markov_chain(smoothing: float, width: float, shift: float = 0.0, states: int = 301,
-                          exact_limits: bool = False, tolerance: float = 1e-13) -> float:
+def ewma_arl_markov_chain(
+    smoothing: float,
+    width: float,
+    shift: float = 0.0,
+    states: int = 301,
+    exact_limits: bool = False,
+    tolerance: float = 1e-13,
+) -> float:
     """Zero-start ARL of the two-sided EWMA chart by a Markov chain (Brook & Evans method).
 
     Parameters
@@ -326,8 +342,9 @@ def ewma_arl_markov_chain(smoothing: float, width: float, shift: float = 0.0, st
     d = 2.0 * c / states
     centre = -c + (np.arange(states) + 0.5) * d
     origin = (1.0 - smoothing) * centre[:, None]
-    transition = (_normal_cdf((centre[None, :] + 0.5 * d - origin) / smoothing - shift)
-                  - _normal_cdf((centre[None, :] - 0.5 * d - origin) / smoothing - shift))
+    transition = _normal_cdf((centre[None, :] + 0.5 * d - origin) / smoothing - shift) - _normal_cdf(
+        (centre[None, :] - 0.5 * d - origin) / smoothing - shift
+    )
     fundamental = np.linalg.solve(np.eye(states) - transition, np.ones(states))
     probability = np.zeros(states)
     probability[states // 2] = 1.0
@@ -391,8 +408,9 @@ def _baseline_error_nodes(offset_sd: float, log_scale_sd: float, nodes: int = 9)
     return offset, ratio, np.outer(w, w).reshape(-1)
 
 
-def false_alarm_rate_estimated(chart: str, limit: float, offset_sd: float, log_scale_sd: float,
-                               k: float = 0.5, smoothing: float = 0.1) -> float:
+def false_alarm_rate_estimated(
+    chart: str, limit: float, offset_sd: float, log_scale_sd: float, k: float = 0.5, smoothing: float = 0.1
+) -> float:
     """In-control false-alarm rate (1 / ARL) averaged over the baseline's estimation errors.
 
     Parameters
@@ -434,8 +452,7 @@ def false_alarm_rate_estimated(chart: str, limit: float, offset_sd: float, log_s
     return float(np.dot(weight, rates))
 
 
-def limit_for_estimated_parameters(chart: str, limit: float, n: int, k: float = 0.5,
-                                   smoothing: float = 0.1) -> float:
+def limit_for_estimated_parameters(chart: str, limit: float, n: int, k: float = 0.5, smoothing: float = 0.1) -> float:
     """CUSUM h or EWMA L whose rate averaged over the baseline's errors is the design rate.
 
     Parameters

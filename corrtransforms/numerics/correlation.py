@@ -27,6 +27,7 @@ Two exact ways to the same lag sums are used:
   cross-spectrum at full resolution: one transform per involved channel at length
   ``next_fast_len(n + L)``, computed on demand and cached, then one inverse transform per pair.
 """
+
 from __future__ import annotations
 
 import dataclasses
@@ -140,8 +141,11 @@ class ChannelSpectra:
         missing = [c for c in dict.fromkeys(channels) if (c, mask) not in self._full_cache]
         if missing:
             if mask:
-                rows = (np.ones((len(missing), self.n_samples)) if self.valid_rows is None
-                        else self.valid_rows[missing].astype(float))
+                rows = (
+                    np.ones((len(missing), self.n_samples))
+                    if self.valid_rows is None
+                    else self.valid_rows[missing].astype(float)
+                )
             else:
                 rows = self.records[missing]
             spectra = scipy.fft.rfft(rows, n=self.fft_length, axis=-1)
@@ -305,8 +309,10 @@ def pairs_by_name(pairs, names: Sequence[str], usable=None, missing: str = "skip
         if ia is None or ib is None:
             if missing == "raise":
                 absent = a if ia is None else b
-                raise ValueError(f"pair {tuple(pair)!r} names channel {absent!r}, which the window does not "
-                                 f"hold (channels: {', '.join(names)})")
+                raise ValueError(
+                    f"pair {tuple(pair)!r} names channel {absent!r}, which the window does not "
+                    f"hold (channels: {', '.join(names)})"
+                )
             continue
         if usable is not None and not (usable[ia] and usable[ib]):
             continue
@@ -315,8 +321,7 @@ def pairs_by_name(pairs, names: Sequence[str], usable=None, missing: str = "skip
     return tuple(out)
 
 
-def _detrend_rows(rows: np.ndarray, n: int, valid_rows: Optional[np.ndarray], counts: np.ndarray,
-                  detrend: str):
+def _detrend_rows(rows: np.ndarray, n: int, valid_rows: Optional[np.ndarray], counts: np.ndarray, detrend: str):
     """Detrend each row (channel) of ``rows`` in place; returns channel means and variances.
 
     ``rows`` has shape (n_channels, >= n) and holds the samples in ``[:, :n]`` with 0 at
@@ -373,13 +378,15 @@ def _block_transforms(rows: np.ndarray, max_lag: int, segment_length: int, fft_l
     L, S = max_lag, segment_length
     n_segments = -(-n // S)
     padded = np.zeros((c, n_segments * S + 2 * L))
-    padded[:, L:L + n] = rows
-    blocks = padded[:, L:L + n_segments * S].reshape(c, n_segments, S)
-    extended = as_strided(padded, shape=(c, n_segments, S + 2 * L),
-                          strides=(padded.strides[0], S * padded.strides[1], padded.strides[1]),
-                          writeable=False)
-    return (scipy.fft.rfft(blocks, n=fft_length, axis=-1),
-            scipy.fft.rfft(extended, n=fft_length, axis=-1))
+    padded[:, L : L + n] = rows
+    blocks = padded[:, L : L + n_segments * S].reshape(c, n_segments, S)
+    extended = as_strided(
+        padded,
+        shape=(c, n_segments, S + 2 * L),
+        strides=(padded.strides[0], S * padded.strides[1], padded.strides[1]),
+        writeable=False,
+    )
+    return (scipy.fft.rfft(blocks, n=fft_length, axis=-1), scipy.fft.rfft(extended, n=fft_length, axis=-1))
 
 
 def _values_and_mask(values, valid) -> Tuple[np.ndarray, np.ndarray]:
@@ -413,8 +420,9 @@ def _lag_and_segment_samples(n: int, fs: float, max_lag_s: float, segment_length
     return max_lag, min(S, n)
 
 
-def channel_spectra(values, fs: float, max_lag_s: float, valid=None,
-                    detrend: str = "mean", segment_length: Optional[int] = None) -> ChannelSpectra:
+def channel_spectra(
+    values, fs: float, max_lag_s: float, valid=None, detrend: str = "mean", segment_length: Optional[int] = None
+) -> ChannelSpectra:
     """Real FFTs of every channel's detrended, masked record and of its mask.
 
     Parameters
@@ -482,12 +490,24 @@ def channel_spectra(values, fs: float, max_lag_s: float, valid=None,
     mask_blocks = mask_extended = None
     if valid_rows is not None:
         mask_blocks, mask_extended = _block_transforms(valid_rows.astype(float), max_lag, S, Q)
-    return ChannelSpectra(sample_rate_hz=float(fs), n_samples=n, max_lag=max_lag, segment_length=S,
-                          segment_fft_length=Q, segment_spectra=blocks, extended_spectra=extended,
-                          mask_segment_spectra=mask_blocks, mask_extended_spectra=mask_extended,
-                          valid_counts=counts, mean_square=mean_square, variance=variance,
-                          channel_mean=channel_mean, records=rows, valid_rows=valid_rows,
-                          detrend=detrend)
+    return ChannelSpectra(
+        sample_rate_hz=float(fs),
+        n_samples=n,
+        max_lag=max_lag,
+        segment_length=S,
+        segment_fft_length=Q,
+        segment_spectra=blocks,
+        extended_spectra=extended,
+        mask_segment_spectra=mask_blocks,
+        mask_extended_spectra=mask_extended,
+        valid_counts=counts,
+        mean_square=mean_square,
+        variance=variance,
+        channel_mean=channel_mean,
+        records=rows,
+        valid_rows=valid_rows,
+        detrend=detrend,
+    )
 
 
 def _zero_lag(power: np.ndarray, fft_length: int) -> np.ndarray:
@@ -501,7 +521,7 @@ def _zero_lag(power: np.ndarray, fft_length: int) -> np.ndarray:
 
 def _take_lags(circular: np.ndarray, max_lag: int, out: np.ndarray) -> None:
     """Copy lags ``-L..L`` of circular correlations (last axis) into ``out``."""
-    out[..., max_lag:] = circular[..., :max_lag + 1]
+    out[..., max_lag:] = circular[..., : max_lag + 1]
     if max_lag:
         out[..., :max_lag] = circular[..., -max_lag:]
 
@@ -515,9 +535,14 @@ def _smooth(power: np.ndarray, width: int) -> np.ndarray:
     return uniform_filter1d(power, size=width, axis=-1, mode="reflect")
 
 
-def correlate_spectra(spectra: ChannelSpectra, pairs: PairSpec = "all", estimator: str = "biased",
-                      band_hz: Optional[Tuple[float, float]] = None, weighting: str = "none",
-                      min_pairs: int = DEFAULT_MIN_PAIRS) -> CorrelationEstimate:
+def correlate_spectra(
+    spectra: ChannelSpectra,
+    pairs: PairSpec = "all",
+    estimator: str = "biased",
+    band_hz: Optional[Tuple[float, float]] = None,
+    weighting: str = "none",
+    min_pairs: int = DEFAULT_MIN_PAIRS,
+) -> CorrelationEstimate:
     """Correlation functions of channel pairs from their spectra: one inverse FFT per pair.
 
     Parameters
@@ -583,18 +608,29 @@ def correlate_spectra(spectra: ChannelSpectra, pairs: PairSpec = "all", estimato
     counts_ch = spectra.valid_counts.astype(float)
     bounds = np.ones(len(pair_list))
     if band_hz is None and weighting == "none":
-        sums = _block_sums(spectra.segment_spectra, spectra.extended_spectra, a_idx, b_idx,
-                           spectra.segment_fft_length, L)
+        sums = _block_sums(
+            spectra.segment_spectra, spectra.extended_spectra, a_idx, b_idx, spectra.segment_fft_length, L
+        )
         R0 = np.where(counts_ch > 0, np.nan_to_num(spectra.mean_square), 0.0)
     else:
         sums, R0, bounds = _full_sums(spectra, a_idx, b_idx, band_hz, weighting)
     counts = _pair_counts(spectra, a_idx, b_idx)
-    R, coefficient, scale = _normalised(sums, counts, counts_ch, R0, bounds, a_idx, b_idx, estimator, weighting,
-                                        counts < max(int(min_pairs), 1))
-    return CorrelationEstimate(pairs=pair_list, lags_s=np.arange(-L, L + 1) / spectra.sample_rate_hz, R=R,
-                               pair_count=counts, coefficient=coefficient, scale=scale,
-                               sample_rate_hz=spectra.sample_rate_hz, estimator=estimator,
-                               band_hz=band_hz, weighting=weighting, min_pairs=int(min_pairs))
+    R, coefficient, scale = _normalised(
+        sums, counts, counts_ch, R0, bounds, a_idx, b_idx, estimator, weighting, counts < max(int(min_pairs), 1)
+    )
+    return CorrelationEstimate(
+        pairs=pair_list,
+        lags_s=np.arange(-L, L + 1) / spectra.sample_rate_hz,
+        R=R,
+        pair_count=counts,
+        coefficient=coefficient,
+        scale=scale,
+        sample_rate_hz=spectra.sample_rate_hz,
+        estimator=estimator,
+        band_hz=band_hz,
+        weighting=weighting,
+        min_pairs=int(min_pairs),
+    )
 
 
 def _checked_band(band_hz):
@@ -611,10 +647,12 @@ def _pair_counts(spectra: ChannelSpectra, a_idx, b_idx) -> np.ndarray:
     """Valid sample pairs of every pair at lags ``-L..L`` (``n - |k|`` for complete records)."""
     L, n = spectra.max_lag, spectra.n_samples
     if spectra.complete:
-        return np.broadcast_to((n - np.abs(np.arange(-L, L + 1))).astype(np.int64),
-                               (len(a_idx), 2 * L + 1)).copy()
-    counts = np.rint(_block_sums(spectra.mask_segment_spectra, spectra.mask_extended_spectra,
-                                 a_idx, b_idx, spectra.segment_fft_length, L)).astype(np.int64)
+        return np.broadcast_to((n - np.abs(np.arange(-L, L + 1))).astype(np.int64), (len(a_idx), 2 * L + 1)).copy()
+    counts = np.rint(
+        _block_sums(
+            spectra.mask_segment_spectra, spectra.mask_extended_spectra, a_idx, b_idx, spectra.segment_fft_length, L
+        )
+    ).astype(np.int64)
     np.maximum(counts, 0, out=counts)
     return counts
 
@@ -656,7 +694,7 @@ def _block_sums(blocks, extended, a_idx, b_idx, fft_length, L):
         for k in range(start, stop):
             np.multiply(conj_blocks[a_idx[k]], extended[b_idx[k]], out=products)
             np.add.reduce(products, axis=0, out=accumulated[k - start])
-        sums[start:stop] = scipy.fft.irfft(accumulated[:stop - start], n=fft_length, axis=-1)[:, :2 * L + 1]
+        sums[start:stop] = scipy.fft.irfft(accumulated[: stop - start], n=fft_length, axis=-1)[:, : 2 * L + 1]
     return sums
 
 
@@ -666,7 +704,7 @@ def _full_sums(spectra: ChannelSpectra, a_idx, b_idx, band_hz, weighting):
     involved = sorted(set(a_idx.tolist()) | set(b_idx.tolist()))
     row = {c: k for k, c in enumerate(involved)}
     X = spectra.full_spectra(involved)
-    power = X.real ** 2 + X.imag ** 2
+    power = X.real**2 + X.imag**2
     band = None
     counts_ch = spectra.valid_counts.astype(float)
     R0 = np.where(counts_ch > 0, np.nan_to_num(spectra.mean_square), 0.0)
@@ -674,8 +712,9 @@ def _full_sums(spectra: ChannelSpectra, a_idx, b_idx, band_hz, weighting):
         f = spectra.full_frequencies_hz()
         band = (f >= band_hz[0]) & (f <= band_hz[1])
         R0 = np.zeros(spectra.n_channels)
-        R0[involved] = np.where(counts_ch[involved] > 0,
-                                _zero_lag(power * band, M) / np.maximum(counts_ch[involved], 1.0), 0.0)
+        R0[involved] = np.where(
+            counts_ch[involved] > 0, _zero_lag(power * band, M) / np.maximum(counts_ch[involved], 1.0), 0.0
+        )
     smoothed = _smooth(power, max(1, M // (2 * L + 1))) if weighting == "scot" else None
     ra = np.array([row[a] for a in a_idx], dtype=int)
     rb = np.array([row[b] for b in b_idx], dtype=int)
@@ -687,7 +726,7 @@ def _full_sums(spectra: ChannelSpectra, a_idx, b_idx, band_hz, weighting):
     buffer = np.empty((min(batch, n_pairs), X.shape[1]), dtype=complex)
     for start in range(0, n_pairs, batch):
         stop = min(start + batch, n_pairs)
-        cross = buffer[:stop - start]
+        cross = buffer[: stop - start]
         for k in range(start, stop):
             np.multiply(conj_X[ra[k]], X[rb[k]], out=cross[k - start])
         if band is not None:
@@ -706,10 +745,18 @@ def _full_sums(spectra: ChannelSpectra, a_idx, b_idx, band_hz, weighting):
     return sums, R0, bounds
 
 
-def correlate_block(values, fs: float, max_lag_s: float, pairs: PairSpec = "all",
-                    estimator: str = "biased", detrend: str = "mean", valid=None,
-                    band_hz: Optional[Tuple[float, float]] = None, weighting: str = "none",
-                    min_pairs: int = DEFAULT_MIN_PAIRS) -> CorrelationEstimate:
+def correlate_block(
+    values,
+    fs: float,
+    max_lag_s: float,
+    pairs: PairSpec = "all",
+    estimator: str = "biased",
+    detrend: str = "mean",
+    valid=None,
+    band_hz: Optional[Tuple[float, float]] = None,
+    weighting: str = "none",
+    min_pairs: int = DEFAULT_MIN_PAIRS,
+) -> CorrelationEstimate:
     """Correlation functions of a block of samples: :func:`channel_spectra` then
     :func:`correlate_spectra`.
 
@@ -755,5 +802,6 @@ def correlate_block(values, fs: float, max_lag_s: float, pairs: PairSpec = "all"
     0.05
     """
     spectra = channel_spectra(values, fs, max_lag_s, valid=valid, detrend=detrend)
-    return correlate_spectra(spectra, pairs, estimator=estimator, band_hz=band_hz,
-                             weighting=weighting, min_pairs=min_pairs)
+    return correlate_spectra(
+        spectra, pairs, estimator=estimator, band_hz=band_hz, weighting=weighting, min_pairs=min_pairs
+    )

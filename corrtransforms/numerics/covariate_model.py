@@ -22,6 +22,7 @@ efficiency at the normal).
 Holland, P. W. & Welsch, R. E. (1977). Robust regression using iteratively reweighted
 least-squares. Comm. Statist. A6, 813-827.
 """
+
 from __future__ import annotations
 
 import dataclasses
@@ -50,8 +51,9 @@ def _median(values: np.ndarray) -> float:
     return float((middle[half - 1] + middle[half]) / 2.0)
 
 
-def huber_regression(design, response, t: float = HUBER_T, max_iter: int = 200,
-                     tol: float = 1e-12) -> Tuple[np.ndarray, float, int]:
+def huber_regression(
+    design, response, t: float = HUBER_T, max_iter: int = 200, tol: float = 1e-12
+) -> Tuple[np.ndarray, float, int]:
     """Huber M-estimate of linear-regression coefficients by IRLS with the MAD scale.
 
     Parameters
@@ -90,7 +92,7 @@ def huber_regression(design, response, t: float = HUBER_T, max_iter: int = 200,
     beta = np.linalg.lstsq(x, y, rcond=None)[0]
     scale = float("nan")
     iterations = 0
-    for iterations in range(1, max_iter + 1):
+    for iterations in range(1, max_iter + 1):  # noqa: B007 - the count is returned
         residual = y - x @ beta
         scale = _median(np.abs(residual)) / _special.ndtri(0.75)
         if scale == 0.0:
@@ -189,9 +191,14 @@ def _terms(centred: np.ndarray, order: int) -> np.ndarray:
     return np.concatenate([centred, centred * centred], axis=1)
 
 
-def fit_baseline_model(values, stderr, covariates: Optional[np.ndarray] = None,
-                       names: Sequence[str] = (), min_windows: int = 30,
-                       order: int = 1) -> BaselineModel:
+def fit_baseline_model(
+    values,
+    stderr,
+    covariates: Optional[np.ndarray] = None,
+    names: Sequence[str] = (),
+    min_windows: int = 30,
+    order: int = 1,
+) -> BaselineModel:
     """Fit the baseline model of one indicator on its baseline windows.
 
     Parameters
@@ -232,11 +239,22 @@ def fit_baseline_model(values, stderr, covariates: Optional[np.ndarray] = None,
         centre = tuple(float("nan") for _ in names)
         if p and covariates is not None and len(y):
             x_all = np.asarray(covariates, dtype=float).reshape(len(y), p)[usable]
-            centre = tuple(float(np.median(c[np.isfinite(c)])) if np.isfinite(c).any() else float("nan")
-                           for c in x_all.T)
-        return BaselineModel(names, order, summary.location, tuple(0.0 for _ in range(p * order)),
-                             centre, summary.scale, summary.stderr_sq, summary.resid_scale,
-                             float("nan"), summary.n, tuple(summary.quality) + tuple(extra))
+            centre = tuple(
+                float(np.median(c[np.isfinite(c)])) if np.isfinite(c).any() else float("nan") for c in x_all.T
+            )
+        return BaselineModel(
+            names,
+            order,
+            summary.location,
+            tuple(0.0 for _ in range(p * order)),
+            centre,
+            summary.scale,
+            summary.stderr_sq,
+            summary.resid_scale,
+            float("nan"),
+            summary.n,
+            tuple(summary.quality) + tuple(extra),
+        )
 
     if p == 0 or covariates is None:
         return median_model()
@@ -259,10 +277,20 @@ def fit_baseline_model(values, stderr, covariates: Optional[np.ndarray] = None,
     residual = yc - design @ beta
     scale = MAD_TO_SIGMA * float(np.median(np.abs(residual - np.median(residual))))
     total = float(np.sum((yc - yc.mean()) ** 2))
-    r_squared = 1.0 - float(np.sum(residual ** 2)) / total if total > 0 else float("nan")
+    r_squared = 1.0 - float(np.sum(residual**2)) / total if total > 0 else float("nan")
     resid_scale, stderr_sq = net_scale(scale, sec)
     if n < min_windows:
         quality.insert(0, BASELINE_TOO_SHORT)
-    return BaselineModel(names, order, float(beta[0]), tuple(float(c) for c in coefficients),
-                         tuple(float(c) for c in center), scale, stderr_sq, resid_scale,
-                         r_squared, n, tuple(quality))
+    return BaselineModel(
+        names,
+        order,
+        float(beta[0]),
+        tuple(float(c) for c in coefficients),
+        tuple(float(c) for c in center),
+        scale,
+        stderr_sq,
+        resid_scale,
+        r_squared,
+        n,
+        tuple(quality),
+    )

@@ -24,6 +24,7 @@ Lucas, J. M. & Saccucci, M. S. (1990). Exponentially weighted moving average con
 properties and enhancements. Technometrics 32, 1-12.
 Montgomery, D. C. (2009). Introduction to Statistical Quality Control, 6th ed., Wiley, ch. 9.
 """
+
 from __future__ import annotations
 
 from typing import Tuple
@@ -133,8 +134,9 @@ def cusum_run_sums(values, run_lengths, start_sum=0.0) -> np.ndarray:
     cumulative = np.concatenate(([0.0], np.cumsum(values)))
     first = index + 1 - lengths
     inside = first >= 0
-    sums = np.where(inside, cumulative[index + 1] - cumulative[np.clip(first, 0, None)],
-                    cumulative[index + 1] + start_sum)
+    sums = np.where(
+        inside, cumulative[index + 1] - cumulative[np.clip(first, 0, None)], cumulative[index + 1] + start_sum
+    )
     return np.where(lengths > 0, sums, 0.0)
 
 

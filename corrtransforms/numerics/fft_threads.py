@@ -6,6 +6,7 @@ thread, so results are bit-identical. Worth it only when a worker process has id
 in-process local runner on a multi-core machine); with one worker process per core it only
 adds contention.
 """
+
 from __future__ import annotations
 
 import os

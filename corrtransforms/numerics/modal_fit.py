@@ -15,6 +15,7 @@ lag, and no standard error follows. The fit uses every lag in the range weighted
 estimates frequency and damping jointly with a covariance, and for an ideal decaying cosine
 returns ``f_n`` and ``zeta`` exactly.
 """
+
 from __future__ import annotations
 
 from typing import NamedTuple, Tuple
@@ -72,14 +73,14 @@ class ModalFit(NamedTuple):
 def decaying_cosine(lags_s, amplitude, freq_hz, damping, phase_rad):
     """``A exp(-zeta w_n tau) cos(w_d tau + phi)`` with ``w_n = 2 pi f_n``, ``w_d = w_n sqrt(1-zeta^2)``."""
     wn = 2 * np.pi * freq_hz
-    wd = wn * np.sqrt(1 - damping ** 2)
+    wd = wn * np.sqrt(1 - damping**2)
     tau = np.asarray(lags_s, dtype=float)
     return amplitude * np.exp(-damping * wn * tau) * np.cos(wd * tau + phase_rad)
 
 
 def _jacobian(tau, amplitude, freq_hz, damping, phase_rad):
     wn = 2 * np.pi * freq_hz
-    root = np.sqrt(1 - damping ** 2)
+    root = np.sqrt(1 - damping**2)
     wd = wn * root
     E = np.exp(-damping * wn * tau)
     C = np.cos(wd * tau + phase_rad)
@@ -102,9 +103,16 @@ def _zero_crossings(rho: np.ndarray) -> np.ndarray:
     return k + rho[k] / (rho[k] - rho[k + 1])
 
 
-def fit_mode(coefficient, stderr, lag_step_s: float, band_hz: Tuple[float, float],
-             end_fraction: float = END_FRACTION, max_cycles: float = MAX_CYCLES,
-             min_cycles: float = MIN_CYCLES, start_bandwidths: float = START_BANDWIDTHS) -> ModalFit:
+def fit_mode(
+    coefficient,
+    stderr,
+    lag_step_s: float,
+    band_hz: Tuple[float, float],
+    end_fraction: float = END_FRACTION,
+    max_cycles: float = MAX_CYCLES,
+    min_cycles: float = MIN_CYCLES,
+    start_bandwidths: float = START_BANDWIDTHS,
+) -> ModalFit:
     """Natural frequency and damping ratio of one mode from its band-limited auto-correlation.
 
     Parameters
@@ -155,8 +163,20 @@ def fit_mode(coefficient, stderr, lag_step_s: float, band_hz: Tuple[float, float
     finite = np.isfinite(rho)
     first_bad = int(np.argmin(finite)) if not finite.all() else len(rho)
     envelope, s_fit, usable_s, weighted, quality = _fit_weights(rho, s, first_bad)
-    found = _fitting_range(rho, envelope, s_fit, weighted, first_bad, lag_step_s, low, high, end_fraction,
-                           max_cycles, start_bandwidths, quality)
+    found = _fitting_range(
+        rho,
+        envelope,
+        s_fit,
+        weighted,
+        first_bad,
+        lag_step_s,
+        low,
+        high,
+        end_fraction,
+        max_cycles,
+        start_bandwidths,
+        quality,
+    )
     if isinstance(found, ModalFit):
         return found
     start, end, damped0 = found
@@ -166,8 +186,9 @@ def fit_mode(coefficient, stderr, lag_step_s: float, band_hz: Tuple[float, float
         return _nan_fit(quality + ["too_few_cycles"], start_s, end_s, cycles)
     lags = np.arange(start, end + 1)
     tau = lags * lag_step_s
-    p, ok, sig, scale = _fit_parameters(rho, s, s_fit, usable_s, envelope, weighted, lags, first_bad, lag_step_s,
-                                        low, high, damped0)
+    p, ok, sig, scale = _fit_parameters(
+        rho, s, s_fit, usable_s, envelope, weighted, lags, first_bad, lag_step_s, low, high, damped0
+    )
     if not ok:
         return _nan_fit(quality + ["fit_not_converged"], start_s, end_s, cycles)
     amplitude, freq, zeta, phase = (float(v) for v in p)
@@ -177,8 +198,18 @@ def fit_mode(coefficient, stderr, lag_step_s: float, band_hz: Tuple[float, float
         return _nan_fit(quality + ["damping_out_of_range"], start_s, end_s, cycles)
     freq_sd, damping_sd = _sandwich_stderr(p, tau, sig, lags, first_bad, lag_step_s, scale)
     phase = float(np.angle(np.exp(1j * phase)))
-    return ModalFit(freq, freq_sd, zeta, damping_sd, amplitude, phase, start_s, end_s,
-                    float((end - start) * lag_step_s * freq * np.sqrt(1 - zeta ** 2)), tuple(quality))
+    return ModalFit(
+        freq,
+        freq_sd,
+        zeta,
+        damping_sd,
+        amplitude,
+        phase,
+        start_s,
+        end_s,
+        float((end - start) * lag_step_s * freq * np.sqrt(1 - zeta**2)),
+        tuple(quality),
+    )
 
 
 def _fit_weights(rho: np.ndarray, s: np.ndarray, first_bad: int):
@@ -203,8 +234,20 @@ def _fit_weights(rho: np.ndarray, s: np.ndarray, first_bad: int):
     return envelope, s_fit, usable_s, weighted, quality
 
 
-def _fitting_range(rho, envelope, s_fit, weighted: bool, first_bad: int, lag_step_s: float, low: float,
-                   high: float, end_fraction: float, max_cycles: float, start_bandwidths: float, quality: list):
+def _fitting_range(
+    rho,
+    envelope,
+    s_fit,
+    weighted: bool,
+    first_bad: int,
+    lag_step_s: float,
+    low: float,
+    high: float,
+    end_fraction: float,
+    max_cycles: float,
+    start_bandwidths: float,
+    quality: list,
+):
     """First and last lag of the fit and the damped frequency's start value (or a NaN ModalFit).
 
     Notes
@@ -225,15 +268,19 @@ def _fitting_range(rho, envelope, s_fit, weighted: bool, first_bad: int, lag_ste
     """
     start = max(1, int(np.ceil(start_bandwidths / ((high - low) * lag_step_s))))
     if start + 6 >= first_bad:
-        return _nan_fit(quality + ["too_few_cycles"], start * lag_step_s, (first_bad - 1) * lag_step_s,
-                        (first_bad - 1 - start) * lag_step_s * np.sqrt(low * high))
+        return _nan_fit(
+            quality + ["too_few_cycles"],
+            start * lag_step_s,
+            (first_bad - 1) * lag_step_s,
+            (first_bad - 1 - start) * lag_step_s * np.sqrt(low * high),
+        )
     e0 = envelope[start]
     below = envelope[start:first_bad] < end_fraction * e0
     if weighted:
         below |= envelope[start:first_bad] < NOISE_FLOOR_Z * s_fit[start:first_bad]
     hits = np.nonzero(below)[0]
     end = start + int(hits[0]) if len(hits) else first_bad - 1
-    crossings = _zero_crossings(rho[start:end + 1])
+    crossings = _zero_crossings(rho[start : end + 1])
     if len(crossings) >= 2:
         damped0 = 1.0 / (2 * np.mean(np.diff(crossings)) * lag_step_s)
     else:
@@ -246,8 +293,20 @@ def _fitting_range(rho, envelope, s_fit, weighted: bool, first_bad: int, lag_ste
     return start, end, damped0
 
 
-def _fit_parameters(rho, s, s_fit, usable_s, envelope, weighted: bool, lags, first_bad: int, lag_step_s: float,
-                    low: float, high: float, damped0: float):
+def _fit_parameters(
+    rho,
+    s,
+    s_fit,
+    usable_s,
+    envelope,
+    weighted: bool,
+    lags,
+    first_bad: int,
+    lag_step_s: float,
+    low: float,
+    high: float,
+    damped0: float,
+):
     """Start values and the weighted least-squares fit(s); returns ``(p, ok, sig, scale)``.
 
     Notes
@@ -267,7 +326,7 @@ def _fit_parameters(rho, s, s_fit, usable_s, envelope, weighted: bool, lags, fir
     env = np.maximum(envelope[lags], 1e-12)
     slope, intercept = np.polyfit(tau, np.log(env), 1, w=env / sig)
     zeta0 = float(np.clip(-slope / (2 * np.pi * damped0), 1e-4, 0.5))
-    freq0 = damped0 / np.sqrt(1 - zeta0 ** 2)
+    freq0 = damped0 / np.sqrt(1 - zeta0**2)
     amp0 = float(np.exp(intercept))
     analytic_phase = np.angle(y + 1j * np.imag(analytic_correlation(rho[:first_bad])[lags]))
     phi0 = float(np.angle(np.mean(np.exp(1j * (analytic_phase - 2 * np.pi * damped0 * tau)))))
@@ -285,8 +344,9 @@ def _fit_parameters(rho, s, s_fit, usable_s, envelope, weighted: bool, lags, fir
         if good.sum() >= 4:
             scale = float(np.median(s[lags][good] / shape[lags][good]))
             sig = np.maximum(scale * shape[lags], 1e-3 * scale * shape[lags].max())
-            p, ok = fit_decaying_cosine(tau, y, sig, np.clip(p, np.add(lower, 1e-9),
-                                                             np.subtract(upper, 1e-9)), (lower, upper))
+            p, ok = fit_decaying_cosine(
+                tau, y, sig, np.clip(p, np.add(lower, 1e-9), np.subtract(upper, 1e-9)), (lower, upper)
+            )
     return p, ok, sig, scale
 
 
@@ -360,20 +420,28 @@ def fit_decaying_cosine(lags_s, values, sigma, start, bounds):
         return -_jacobian(tau, *p) / sig[:, None]
 
     try:
-        result = scipy.optimize.least_squares(residuals, start, jac=jacobian, bounds=bounds,
-                                              method="trf", x_scale="jac", xtol=1e-12,
-                                              ftol=1e-12, gtol=1e-12, max_nfev=400)
+        result = scipy.optimize.least_squares(
+            residuals,
+            start,
+            jac=jacobian,
+            bounds=bounds,
+            method="trf",
+            x_scale="jac",
+            xtol=1e-12,
+            ftol=1e-12,
+            gtol=1e-12,
+            max_nfev=400,
+        )
     except (ValueError, np.linalg.LinAlgError):  # pragma: no cover - defensive
         return np.full(4, np.nan), False
     return result.x, bool(result.status > 0 and np.all(np.isfinite(result.x)))
 
 
-def _correlated_meat(Jw: np.ndarray, model: np.ndarray, lags: np.ndarray, sig: np.ndarray,
-                     scale: float) -> np.ndarray:
+def _correlated_meat(Jw: np.ndarray, model: np.ndarray, lags: np.ndarray, sig: np.ndarray, scale: float) -> np.ndarray:
     """``J_w^T (Sigma / sig sig^T) J_w`` with ``Sigma = scale^2 K(model) / 1`` (Bartlett; strided when long)."""
     G, nodes = coarsen_lags(Jw / sig[:, None], lags, len(model))
     spacing = np.diff(nodes)
     if len(nodes) < 3 or np.any(spacing != spacing[0]):
-        sigma = scale ** 2 * bartlett_kernel(model, [int(k) for k in nodes])
+        sigma = scale**2 * bartlett_kernel(model, [int(k) for k in nodes])
         return G.T @ sigma @ G
-    return scale ** 2 * kernel_quadratic_form(model, int(nodes[0]), int(spacing[0]), G)
+    return scale**2 * kernel_quadratic_form(model, int(nodes[0]), int(spacing[0]), G)

@@ -14,6 +14,7 @@ Hampel, F. R. (1974). The influence curve and its role in robust estimation. JAS
 Rousseeuw, P. J. & Croux, C. (1993). Alternatives to the median absolute deviation. JASA 88,
 1273-1283 (the consistency factor 1/Phi^-1(3/4) = 1.4826).
 """
+
 from __future__ import annotations
 
 import dataclasses

@@ -42,6 +42,7 @@ Harvey, A. C. (1989). Forecasting, Structural Time Series Models and the Kalman 
 Cambridge University Press.
 Durbin, J. & Koopman, S. J. (2012). Time Series Analysis by State Space Methods, 2nd ed., Oxford.
 """
+
 from __future__ import annotations
 
 import warnings
@@ -187,8 +188,9 @@ def ar1_prediction_errors(resid, stderr, steps, phi, resid_scale, mean_start=0.0
     s2 = np.square(np.asarray(resid_scale, dtype=float))
     lead = np.broadcast_shapes(r.shape[:-1], phi.shape, s2.shape)
     m = np.broadcast_to(np.asarray(mean_start, dtype=float), lead).copy()
-    p = (np.broadcast_to(s2, lead) if var_start is None
-         else np.broadcast_to(np.asarray(var_start, dtype=float), lead)).copy()
+    p = (
+        np.broadcast_to(s2, lead) if var_start is None else np.broadcast_to(np.asarray(var_start, dtype=float), lead)
+    ).copy()
     errors = np.empty(np.broadcast_shapes(r.shape, lead + r.shape[-1:]))
     g = np.broadcast_to(g, errors.shape)
     se2 = np.broadcast_to(se2, errors.shape)

@@ -14,6 +14,7 @@ median beside its main lobe with a gamma threshold; every ordinate against a cen
 median with a fixed ratio :data:`LINE_THRESHOLD`); the background both use is
 :func:`medians_at`.
 """
+
 from __future__ import annotations
 
 from typing import Optional, Tuple
@@ -70,9 +71,9 @@ def lag_window_psd(R, fs: float) -> Tuple[np.ndarray, np.ndarray]:
     w = parzen(width, sym=True) if width > 1 else np.ones(1)
     seq = np.zeros(R.shape[:-1] + (M,))
     weighted = R * w
-    seq[..., :L + 1] = weighted[..., L:]
+    seq[..., : L + 1] = weighted[..., L:]
     if L:
-        seq[..., M - L:] = weighted[..., :L]
+        seq[..., M - L :] = weighted[..., :L]
     S = scipy.fft.rfft(seq, axis=-1).real / fs
     return scipy.fft.rfftfreq(M, d=1.0 / fs), 2.0 * S
 
@@ -138,8 +139,14 @@ def tone_ratio(n_averaged: int, false_alarm: float = TONE_FALSE_ALARM) -> float:
     return float(gamma.isf(false_alarm, K, scale=1.0 / K) / gamma.median(K, scale=1.0 / K))
 
 
-def strongest_tone(frequencies_hz, periodogram, n_averaged: int = 1, ratio: Optional[float] = None,
-                   half_width_bins: Optional[int] = None, exclude_bins: int = 3):
+def strongest_tone(
+    frequencies_hz,
+    periodogram,
+    n_averaged: int = 1,
+    ratio: Optional[float] = None,
+    half_width_bins: Optional[int] = None,
+    exclude_bins: int = 3,
+):
     """Frequency of the strongest sharp peak of each periodogram (NaN when there is none).
 
     Parameters
@@ -244,9 +251,10 @@ def spectral_lines(power, width: int, threshold: float = LINE_THRESHOLD, reach: 
     # block j holds centres j*width .. j*width + width - 1; their windows span padded[j*width :
     # j*width + 2*width - 1] (padded at the end with +inf, which only lowers the bound)
     span = np.full(blocks * width + 2 * half, np.inf)
-    span[:len(padded)] = padded
+    span[: len(padded)] = padded
     superset = np.lib.stride_tricks.as_strided(
-        span, shape=(blocks, 2 * width - 1), strides=(span.strides[0] * width, span.strides[0]))
+        span, shape=(blocks, 2 * width - 1), strides=(span.strides[0] * width, span.strides[0])
+    )
     bound = np.partition(superset, half, axis=1)[:, half]
     bound_per_bin = np.repeat(bound, width)[:m]
     candidates = np.flatnonzero(power > threshold * np.maximum(bound_per_bin, 1e-300))

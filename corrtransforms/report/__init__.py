@@ -9,9 +9,18 @@ read and written through Beam's FileSystems (so a gs:// or s3:// output can be r
 matplotlib is an extra (``pip install "corrtransforms[report]"``); it is imported when the first
 picture is drawn.
 """
+
 from corrtransforms.report.page import CAUTION, render_index, write_report
 from corrtransforms.report.plots import plot_file_name, plot_series
 from corrtransforms.report.summaries import episodes_from_shifts, read_output, report_episodes
 
-__all__ = ["CAUTION", "episodes_from_shifts", "plot_file_name", "plot_series", "read_output", "render_index",
-           "report_episodes", "write_report"]
+__all__ = [
+    "CAUTION",
+    "episodes_from_shifts",
+    "plot_file_name",
+    "plot_series",
+    "read_output",
+    "render_index",
+    "report_episodes",
+    "write_report",
+]

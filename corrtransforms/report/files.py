@@ -5,6 +5,7 @@ object, so the same code reports a local folder, an object store or (in the test
 filesystem. :class:`ReportFiles` is the store over Beam's FileSystems; any object with the same
 methods (``join``, ``match``, ``open``, ``create``, ``exists``) will do.
 """
+
 from __future__ import annotations
 
 from typing import List

@@ -6,6 +6,7 @@ episodes, the trend pictures and the tables read, as one static HTML file.
 A table that is missing (for example no shifts yet) is named on the page; the rest of the report
 is still written.
 """
+
 from __future__ import annotations
 
 import datetime as _dt
@@ -17,11 +18,22 @@ import numpy as np
 
 from corrtransforms.report import files
 from corrtransforms.report.plots import write_plots
-from corrtransforms.report.summaries import (TABLES, OutputTables, _text_time, asset_summaries, read_output,
-                                             reject_counts, series_baselines, report_episodes, shift_percent)
+from corrtransforms.report.summaries import (
+    TABLES,
+    OutputTables,
+    _text_time,
+    asset_summaries,
+    read_output,
+    reject_counts,
+    report_episodes,
+    series_baselines,
+    shift_percent,
+)
 
-CAUTION = ("Indicators and shift flags support, and never replace, inspection and judgement by "
-           "qualified engineers under local codes and licensed practice.")
+CAUTION = (
+    "Indicators and shift flags support, and never replace, inspection and judgement by "
+    "qualified engineers under local codes and licensed practice."
+)
 
 _CSS = """
 body { font-family: system-ui, -apple-system, "Segoe UI", Roboto, sans-serif; color: #222;
@@ -71,30 +83,37 @@ def _episode_rows(episodes: List[Dict], plots: Dict[Tuple[str, str, str], str]) 
         percent = "" if percent is None else f"{percent:+.1f} %"
         rows.append(
             f'<tr class="{_e(e["status"])}"><td>{_e(e["asset"])}</td>'
-            f'<td>{_e(e["subject"])}</td><td>{_e(e["indicator"])}</td><td>{direction}</td>'
+            f"<td>{_e(e['subject'])}</td><td>{_e(e['indicator'])}</td><td>{direction}</td>"
             f'<td class="time">{_e(_text_time(e.get("onset")))}</td>'
             f'<td class="time">{_e(_text_time(e.get("first_alarm")))}</td>'
             f'<td class="time">{_e(_text_time(e.get("last_window")))}</td><td class="num">{_e(e.get("n_windows"))}</td>'
             f'<td class="num">{_e(size)} {_e(e.get("unit") or "")}</td><td class="num">{_e(percent)}</td>'
             f'<td class="num">{_e(_number(e.get("peak_abs_z"), 3))}</td><td>{_e(e.get("detector") or "")}</td>'
-            f'<td>{link}</td></tr>')
+            f"<td>{link}</td></tr>"
+        )
     return rows
 
 
-_EPISODE_HEAD = ("<tr><th>asset</th><th>subject</th><th>indicator</th><th>direction</th>"
-                 "<th>estimated onset</th><th>first alarm</th><th>last shifted</th><th>windows</th>"
-                 "<th>shift size</th><th>of baseline level</th><th>peak |z|</th><th>detector</th><th></th></tr>")
+_EPISODE_HEAD = (
+    "<tr><th>asset</th><th>subject</th><th>indicator</th><th>direction</th>"
+    "<th>estimated onset</th><th>first alarm</th><th>last shifted</th><th>windows</th>"
+    "<th>shift size</th><th>of baseline level</th><th>peak |z|</th><th>detector</th><th></th></tr>"
+)
 
 
 def _page_head(output: OutputTables, generated: str) -> List[str]:
     """Doctype, title, output folder and the caution."""
-    parts = ["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
-             '<meta name="viewport" content="width=device-width, initial-scale=1">',
-             "<title>corrtransforms report</title>", f"<style>{_CSS}</style></head><body>",
-             "<h1>Correlation indicators and shifts</h1>",
-             f'<p class="meta">Output folder <code>{_e(_shown_folder(output.folder))}</code>; '
-             f"report written {_e(generated)}. All times UTC.</p>",
-             f'<p class="caution"><strong>Caution.</strong> {_e(CAUTION)}</p>']
+    parts = [
+        "<!DOCTYPE html>",
+        '<html lang="en"><head><meta charset="utf-8">',
+        '<meta name="viewport" content="width=device-width, initial-scale=1">',
+        "<title>corrtransforms report</title>",
+        f"<style>{_CSS}</style></head><body>",
+        "<h1>Correlation indicators and shifts</h1>",
+        f'<p class="meta">Output folder <code>{_e(_shown_folder(output.folder))}</code>; '
+        f"report written {_e(generated)}. All times UTC.</p>",
+        f'<p class="caution"><strong>Caution.</strong> {_e(CAUTION)}</p>',
+    ]
     return parts
 
 
@@ -103,14 +122,20 @@ def _open_section(output: OutputTables, open_episodes: List[Dict], plot_index: D
     parts: List[str] = []
     parts.append(f'<h2 id="open">Open shift episodes ({len(open_episodes)})</h2>')
     if output.get("shifts") is None and output.get("episodes") is None:
-        parts.append('<p class="note">No shifts table was found: shift detection has not run on this '
-                     "output yet, so there are no episodes to list.</p>")
+        parts.append(
+            '<p class="note">No shifts table was found: shift detection has not run on this '
+            "output yet, so there are no episodes to list.</p>"
+        )
     elif not open_episodes:
         parts.append("<p>No series is in state shifted at its latest window.</p>")
     else:
         parts.append("<p>Series whose latest window is still in state shifted, earliest onset first.</p>")
-        parts.append("<div class=\"wide\"><table class=\"episodes\">" + _EPISODE_HEAD
-                     + "".join(_episode_rows(open_episodes, plot_index)) + "</table></div>")
+        parts.append(
+            '<div class="wide"><table class="episodes">'
+            + _EPISODE_HEAD
+            + "".join(_episode_rows(open_episodes, plot_index))
+            + "</table></div>"
+        )
     return parts
 
 
@@ -121,19 +146,24 @@ def _assets_section(assets: List[Dict]) -> List[str]:
     if not assets:
         parts.append('<p class="note">No output tables with rows were found in this folder.</p>')
     else:
-        parts.append("<table><tr><th>asset</th><th>days</th><th>first window</th><th>last window</th>"
-                     "<th>windows planned</th><th>windows computed</th><th>windows rejected</th>"
-                     "<th>indicator rows</th><th>monitored series</th><th>detector state through</th></tr>")
+        parts.append(
+            "<table><tr><th>asset</th><th>days</th><th>first window</th><th>last window</th>"
+            "<th>windows planned</th><th>windows computed</th><th>windows rejected</th>"
+            "<th>indicator rows</th><th>monitored series</th><th>detector state through</th></tr>"
+        )
         for a in assets:
             parts.append(
                 f'<tr><td>{_e(a["asset"])}</td><td class="num">{a["days"]}</td><td>{_e(a["first_window"])}</td>'
                 f'<td>{_e(a["last_window"])}</td><td class="num">{a["windows_planned"]}</td>'
                 f'<td class="num">{a["windows_computed"]}</td><td class="num">{a["windows_rejected"]}</td>'
                 f'<td class="num">{a["indicator_rows"]}</td><td class="num">{a["monitored_series"]}</td>'
-                f'<td>{_e(a["state_through"])}</td></tr>')
+                f"<td>{_e(a['state_through'])}</td></tr>"
+            )
         parts.append("</table>")
-        parts.append("<p>Windows computed have correlation rows; windows rejected produced none (their "
-                     "reasons are below); planned = computed + rejected.</p>")
+        parts.append(
+            "<p>Windows computed have correlation rows; windows rejected produced none (their "
+            "reasons are below); planned = computed + rejected.</p>"
+        )
     return parts
 
 
@@ -142,19 +172,25 @@ def _rejects_section(output: OutputTables, rejects: List[Dict]) -> List[str]:
     parts: List[str] = []
     parts.append('<h2 id="rejects">Rejected, repaired and flagged input by reason</h2>')
     if output.get("rejects") is None and output.get("indicators") is not None:
-        parts.append("<p>No input was rejected. The rejects table has no rows: nothing was repaired or flagged "
-                     "either.</p>")
+        parts.append(
+            "<p>No input was rejected. The rejects table has no rows: nothing was repaired or flagged either.</p>"
+        )
     elif output.get("rejects") is None:
         parts.append(f'<p class="note">No rejects table was found ({_e(output.notes.get("rejects", ""))}).</p>')
     else:
-        parts.append("<table><tr><th>asset</th><th>reason</th><th>action</th><th>stage</th><th>rows</th>"
-                     "<th>subjects</th><th>example</th></tr>")
+        parts.append(
+            "<table><tr><th>asset</th><th>reason</th><th>action</th><th>stage</th><th>rows</th>"
+            "<th>subjects</th><th>example</th></tr>"
+        )
         for r in rejects:
-            subjects = ", ".join(r["subjects"][:6]) + (f" and {len(r['subjects']) - 6} more" if len(r["subjects"]) > 6 else "")
+            subjects = ", ".join(r["subjects"][:6]) + (
+                f" and {len(r['subjects']) - 6} more" if len(r["subjects"]) > 6 else ""
+            )
             parts.append(
-                f'<tr><td>{_e(r["asset"])}</td><td><code>{_e(r["reason"])}</code></td><td>{_e(r["action"])}</td>'
+                f"<tr><td>{_e(r['asset'])}</td><td><code>{_e(r['reason'])}</code></td><td>{_e(r['action'])}</td>"
                 f'<td>{_e(r["stage"])}</td><td class="num">{r["count"]}</td><td>{_e(subjects)}</td>'
-                f'<td>{_e(r["example"][:160])}</td></tr>')
+                f"<td>{_e(r['example'][:160])}</td></tr>"
+            )
         parts.append("</table>")
     return parts
 
@@ -164,13 +200,19 @@ def _closed_section(closed: List[Dict], episode_source: str, plot_index: Dict) -
     parts: List[str] = []
     parts.append(f'<h2 id="closed">Closed shift episodes ({len(closed)})</h2>')
     if closed:
-        parts.append("<div class=\"wide\"><table class=\"episodes\">" + _EPISODE_HEAD
-                     + "".join(_episode_rows(closed, plot_index)) + "</table></div>")
+        parts.append(
+            '<div class="wide"><table class="episodes">'
+            + _EPISODE_HEAD
+            + "".join(_episode_rows(closed, plot_index))
+            + "</table></div>"
+        )
     else:
         parts.append("<p>None.</p>")
     if episode_source == "shifts":
-        parts.append('<p class="note">Episodes are derived from the shifts table (each begins at a first alarm and '
-                     "ends where the series leaves state shifted or reverses direction).</p>")
+        parts.append(
+            '<p class="note">Episodes are derived from the shifts table (each begins at a first alarm and '
+            "ends where the series leaves state shifted or reverses direction).</p>"
+        )
     return parts
 
 
@@ -179,26 +221,40 @@ def _trends_section(output: OutputTables, plots: List[Dict]) -> List[str]:
     parts: List[str] = []
     parts.append('<h2 id="trends">Trends per subject and indicator</h2>')
     if output.get("indicators") is None:
-        parts.append(f'<p class="note">No indicators table was found ({_e(output.notes.get("indicators", ""))}); '
-                     "there is nothing to plot.</p>")
+        parts.append(
+            f'<p class="note">No indicators table was found ({_e(output.notes.get("indicators", ""))}); '
+            "there is nothing to plot.</p>"
+        )
     else:
         if output.get("shifts") is None:
-            parts.append('<p class="note">No shifts table was found: the pictures show the indicator values '
-                         "and their standard errors only, without expectation, healthy band or shift marks.</p>")
-        parts.append("<p>Grey band: value \u00b1 standard error. Where a series is monitored: blue line, the "
-                     "covariate-compensated expectation; light blue band, the healthy band where |z| \u2264 3 (expected \u00b1 3 \u221a(residual scale\u00b2 + standard error\u00b2)); "
-                     "grey background, the baseline windows; red diamonds, shifted windows; dashed red line, "
-                     "the estimated onset; lower panel, the standardised residual z.</p>")
+            parts.append(
+                '<p class="note">No shifts table was found: the pictures show the indicator values '
+                "and their standard errors only, without expectation, healthy band or shift marks.</p>"
+            )
+        parts.append(
+            "<p>Grey band: value \u00b1 standard error. Where a series is monitored: blue line, the "
+            "covariate-compensated expectation; light blue band, the healthy band where |z| \u2264 3 "
+            "(expected \u00b1 3 \u221a(residual scale\u00b2 + standard error\u00b2)); "
+            "grey background, the baseline windows; red diamonds, shifted windows; dashed red line, "
+            "the estimated onset; lower panel, the standardised residual z.</p>"
+        )
         for asset in sorted({p["asset"] for p in plots}):
             mine = [p for p in plots if p["asset"] == asset]
             mine.sort(key=lambda p: (not p["monitored"], p["subject"], p["indicator"]))
             parts.append(f"<h3>{_e(asset)}</h3>")
             parts.append('<div class="grid">')
             for p in mine:
-                label = f'{p["subject"]} \u2014 {p["indicator"]}' + (
-                    f' (baseline {p["baseline"]})' if p.get("baseline") else "" if p["monitored"] else " (not monitored)")
-                parts.append(f'<figure><a href="{_e(p["path"])}"><img src="{_e(p["path"])}" alt="{_e(label)}" '
-                             f'loading="lazy"></a><figcaption>{_e(label)}</figcaption></figure>')
+                label = f"{p['subject']} \u2014 {p['indicator']}" + (
+                    f" (baseline {p['baseline']})"
+                    if p.get("baseline")
+                    else ""
+                    if p["monitored"]
+                    else " (not monitored)"
+                )
+                parts.append(
+                    f'<figure><a href="{_e(p["path"])}"><img src="{_e(p["path"])}" alt="{_e(label)}" '
+                    f'loading="lazy"></a><figcaption>{_e(label)}</figcaption></figure>'
+                )
             parts.append("</div>")
     return parts
 
@@ -213,22 +269,34 @@ def _tables_section(output: OutputTables) -> List[str]:
         note = output.notes.get(name, "")
         if name == "episodes" and table is None:
             note = (note + "; episodes derived from the shifts table") if output.get("shifts") is not None else note
-        parts.append(f"<tr><td>{_e(name)}</td><td class=\"num\">{rows}</td><td>{_e(note)}</td></tr>")
+        parts.append(f'<tr><td>{_e(name)}</td><td class="num">{rows}</td><td>{_e(note)}</td></tr>')
     parts.append("</table>")
     return parts
 
 
-def render_index(output: OutputTables, assets: List[Dict], rejects: List[Dict], episodes: List[Dict],
-                 episode_source: str, plots: List[Dict], generated: str) -> str:
+def render_index(
+    output: OutputTables,
+    assets: List[Dict],
+    rejects: List[Dict],
+    episodes: List[Dict],
+    episode_source: str,
+    plots: List[Dict],
+    generated: str,
+) -> str:
     """The index page as an HTML string (open episodes first, then assets, rejects, closed
     episodes, pictures, and the tables found)."""
     plot_index = {(p["asset"], p["subject"], p["indicator"]): p["path"] for p in plots}
     open_episodes = [e for e in episodes if e["status"] == "open"]
     closed = [e for e in episodes if e["status"] != "open"]
-    parts = (_page_head(output, generated) + _open_section(output, open_episodes, plot_index)
-             + _assets_section(assets) + _rejects_section(output, rejects)
-             + _closed_section(closed, episode_source, plot_index) + _trends_section(output, plots)
-             + _tables_section(output))
+    parts = (
+        _page_head(output, generated)
+        + _open_section(output, open_episodes, plot_index)
+        + _assets_section(assets)
+        + _rejects_section(output, rejects)
+        + _closed_section(closed, episode_source, plot_index)
+        + _trends_section(output, plots)
+        + _tables_section(output)
+    )
     parts.append(f'<p class="caution">{_e(CAUTION)}</p>')
     parts.append("</body></html>")
     return "\n".join(parts) + "\n"
@@ -266,8 +334,11 @@ def write_report(output_dir: str, report_dir: Optional[str] = None, store=None) 
     for p in plots:
         found = baselines.get((p["asset"], p["subject"], p["indicator"]))
         if found:
-            p["baseline"] = (f'{found["status"]}, {found["windows_seen"]} windows seen'
-                             if found["status"] == "accumulating" else found["status"])
+            p["baseline"] = (
+                f"{found['status']}, {found['windows_seen']} windows seen"
+                if found["status"] == "accumulating"
+                else found["status"]
+            )
     generated = _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
     page = render_index(output, assets, rejects, episodes, source, plots, generated)
     index = store.join(report_dir, "index.html")

@@ -5,6 +5,7 @@ table holds the series, also the covariate-compensated expectation, the healthy 
 +/- 3 sqrt(resid_scale^2 + stderr^2), i.e. |z| <= 3), the baseline windows, the shifted windows
 and the estimated onsets, and a lower panel with the standardised residual z.
 """
+
 from __future__ import annotations
 
 import io
@@ -15,8 +16,8 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from corrtransforms.report.summaries import OutputTables, _column, _us
 from corrtransforms.records import holds_window
+from corrtransforms.report.summaries import OutputTables, _column, _us
 
 #: width of the healthy band drawn around the expectation, in residual scales (common practice:
 #: the Shewhart three-sigma limits)
@@ -31,8 +32,6 @@ BASELINE_COLOUR = "#ececec"
 SHIFTED_COLOUR = "#c0392b"
 QUALITY_COLOUR = "#8a6d00"
 HELD_OUT_COLOUR = "#6a3d9a"
-
-
 
 
 def plot_file_name(subject: str, indicator: str) -> str:
@@ -71,8 +70,7 @@ def _break_gaps(time_us: np.ndarray, *arrays: np.ndarray):
     return (_as_datetimes(time_out),) + tuple(np.insert(a.astype(float), gaps, np.nan) for a in arrays)
 
 
-def plot_series(path, asset: str, subject: str, indicator: str, values: pa.Table,
-                shifts: Optional[pa.Table]) -> None:
+def plot_series(path, asset: str, subject: str, indicator: str, values: pa.Table, shifts: Optional[pa.Table]) -> None:
     """Write one trend picture (PNG) for a subject and indicator (:func:`draw_series`)."""
     import matplotlib.pyplot as plt
 
@@ -89,9 +87,13 @@ def _quality_marks(ax, time, value, finite, quality, handles) -> None:
     coded = np.array([bool(c) for c in codes_of], dtype=bool) & finite
     held = np.array([holds_window(c) for c in codes_of], dtype=bool) & coded
     for mask, label, style in (
-            (coded & ~held, "value with an informational quality code", dict(
-                s=14, facecolors="none", edgecolors=QUALITY_COLOUR, linewidths=0.7)),
-            (held, "held out of the detectors", dict(s=22, marker="x", color=HELD_OUT_COLOUR, linewidths=0.9))):
+        (
+            coded & ~held,
+            "value with an informational quality code",
+            dict(s=14, facecolors="none", edgecolors=QUALITY_COLOUR, linewidths=0.7),
+        ),
+        (held, "held out of the detectors", dict(s=22, marker="x", color=HELD_OUT_COLOUR, linewidths=0.9)),
+    ):
         if not mask.any():
             continue
         counts: Dict[str, int] = {}
@@ -135,8 +137,9 @@ def draw_series(asset: str, subject: str, indicator: str, values: pa.Table, shif
     unit = next((u for u in v["unit"] if u), "")
     monitored = shifts is not None and shifts.num_rows > 0
     if monitored:
-        fig, (ax, az) = plt.subplots(2, 1, figsize=(10, 6.0), sharex=True, layout="constrained",
-                                     gridspec_kw={"height_ratios": [3, 1.2]})
+        fig, (ax, az) = plt.subplots(
+            2, 1, figsize=(10, 6.0), sharex=True, layout="constrained", gridspec_kw={"height_ratios": [3, 1.2]}
+        )
     else:
         fig, ax = plt.subplots(1, 1, figsize=(10, 4.2), layout="constrained")
         az = None
@@ -163,21 +166,55 @@ def _shift_layers(ax, az, shifts: pa.Table, handles: List) -> None:
     band = np.isfinite(s["expected"]) & np.isfinite(spread)
     if band.any():
         gap_time, expected, low, high = _break_gaps(
-            s["time"], s["expected"], np.where(band, s["expected"] - BAND_SCALES * spread, np.nan),
-            np.where(band, s["expected"] + BAND_SCALES * spread, np.nan))
-        handles.append(ax.fill_between(
-            gap_time, low, high, color=BAND_COLOUR, linewidth=0, zorder=1,
-            label=f"healthy band: |z| \u2264 {BAND_SCALES:g}"))
-        handles.append(ax.plot(gap_time, expected, color=EXPECTED_COLOUR, linewidth=1.2, zorder=3,
-                               label="expected (covariate-compensated)")[0])
+            s["time"],
+            s["expected"],
+            np.where(band, s["expected"] - BAND_SCALES * spread, np.nan),
+            np.where(band, s["expected"] + BAND_SCALES * spread, np.nan),
+        )
+        handles.append(
+            ax.fill_between(
+                gap_time,
+                low,
+                high,
+                color=BAND_COLOUR,
+                linewidth=0,
+                zorder=1,
+                label=f"healthy band: |z| \u2264 {BAND_SCALES:g}",
+            )
+        )
+        handles.append(
+            ax.plot(
+                gap_time,
+                expected,
+                color=EXPECTED_COLOUR,
+                linewidth=1.2,
+                zorder=3,
+                label="expected (covariate-compensated)",
+            )[0]
+        )
     shifted = s["state"] == "shifted"
     if shifted.any():
-        handles.append(ax.scatter(stime[shifted], s["value"][shifted], s=26, marker="D",
-                                  color=SHIFTED_COLOUR, zorder=5, label="shifted window"))
+        handles.append(
+            ax.scatter(
+                stime[shifted],
+                s["value"][shifted],
+                s=26,
+                marker="D",
+                color=SHIFTED_COLOUR,
+                zorder=5,
+                label="shifted window",
+            )
+        )
         onsets = np.unique(s["onset"][shifted & (s["onset"] != np.iinfo(np.int64).min)])
         for k, onset in enumerate(onsets):
-            line = ax.axvline(_as_datetimes(np.array([onset]))[0], color=SHIFTED_COLOUR, linestyle="--",
-                              linewidth=1.0, zorder=4, label="estimated onset" if k == 0 else None)
+            line = ax.axvline(
+                _as_datetimes(np.array([onset]))[0],
+                color=SHIFTED_COLOUR,
+                linestyle="--",
+                linewidth=1.0,
+                zorder=4,
+                label="estimated onset" if k == 0 else None,
+            )
             az.axvline(_as_datetimes(np.array([onset]))[0], color=SHIFTED_COLOUR, linestyle="--", linewidth=1.0)
             if k == 0:
                 handles.append(line)
@@ -198,17 +235,29 @@ def _z_panel(az, s: Dict[str, np.ndarray], stime, shifted: np.ndarray) -> None:
     az.grid(True, color="#dddddd", linewidth=0.5)
 
 
-
 def _value_layers(ax, v: Dict[str, np.ndarray], time, handles: List) -> None:
     """The indicator values with their error band and quality marks, and the value axis range."""
     value, stderr = v["value"], v["stderr"]
     finite = np.isfinite(value)
     band_ok = finite & np.isfinite(stderr)
     if band_ok.any():
-        gap_time, low, high = _break_gaps(v["time"][finite], np.where(band_ok, value - stderr, np.nan)[finite],
-                                          np.where(band_ok, value + stderr, np.nan)[finite])
-        handles.append(ax.fill_between(gap_time, low, high, color=STDERR_COLOUR, alpha=0.45, linewidth=0,
-                                       zorder=2, label="value \u00b1 standard error"))
+        gap_time, low, high = _break_gaps(
+            v["time"][finite],
+            np.where(band_ok, value - stderr, np.nan)[finite],
+            np.where(band_ok, value + stderr, np.nan)[finite],
+        )
+        handles.append(
+            ax.fill_between(
+                gap_time,
+                low,
+                high,
+                color=STDERR_COLOUR,
+                alpha=0.45,
+                linewidth=0,
+                zorder=2,
+                label="value \u00b1 standard error",
+            )
+        )
     ok = np.array([q in ("", "ok") for q in v["quality"]], dtype=bool)
     gap_time, line = _break_gaps(v["time"][finite], value[finite])
     ax.plot(gap_time, line, color=INK, linewidth=0.5, alpha=0.5, zorder=2)
@@ -222,9 +271,17 @@ def _value_layers(ax, v: Dict[str, np.ndarray], time, handles: List) -> None:
         ax.text(0.5, 0.5, "no finite values", transform=ax.transAxes, ha="center", va="center", color=INK)
 
 
-
-def _finish(fig, ax, az, title: str, indicator: str, unit: str, v: Dict[str, np.ndarray],
-            shifts: Optional[pa.Table], handles: List) -> None:
+def _finish(
+    fig,
+    ax,
+    az,
+    title: str,
+    indicator: str,
+    unit: str,
+    v: Dict[str, np.ndarray],
+    shifts: Optional[pa.Table],
+    handles: List,
+) -> None:
     """Titles, labels, the legend inside the figure below the axes, the date axis."""
     import matplotlib.dates as mdates
 
@@ -232,8 +289,12 @@ def _finish(fig, ax, az, title: str, indicator: str, unit: str, v: Dict[str, np.
     finite = np.isfinite(v["value"])
     ax.set_title(title, loc="left", fontsize=12, color=INK)
     shifted_count = int((shifts.column("state").to_numpy(zero_copy_only=False) == "shifted").sum()) if monitored else 0
-    ax.set_title(f"{int(finite.sum())} windows" + (f", {shifted_count} shifted" if monitored else ", not monitored"),
-                 loc="right", fontsize=9, color="#555555")
+    ax.set_title(
+        f"{int(finite.sum())} windows" + (f", {shifted_count} shifted" if monitored else ", not monitored"),
+        loc="right",
+        fontsize=9,
+        color="#555555",
+    )
     ax.set_ylabel(f"{indicator} [{unit}]" if unit else indicator)
     ax.grid(True, color="#dddddd", linewidth=0.5)
     legend = [h for h in handles if not str(h.get_label()).startswith("_")]
@@ -257,29 +318,45 @@ def write_plots(output: OutputTables, report_dir: str, store) -> List[Dict]:
     if indicators is None:
         return []
     shifts = output.get("shifts")
-    keys = sorted(set(zip(_column(indicators, "asset", ""), _column(indicators, "subject", ""),
-                          _column(indicators, "indicator", ""))))
+    keys = sorted(
+        set(
+            zip(
+                _column(indicators, "asset", ""),
+                _column(indicators, "subject", ""),
+                _column(indicators, "indicator", ""),
+            )
+        )
+    )
     shift_keys = set()
     if shifts is not None:
-        shift_keys = set(zip(_column(shifts, "asset", ""), _column(shifts, "subject", ""),
-                             _column(shifts, "indicator", "")))
+        shift_keys = set(
+            zip(_column(shifts, "asset", ""), _column(shifts, "subject", ""), _column(shifts, "indicator", ""))
+        )
     entries = []
     for asset, subject, indicator in keys:
-        mask = pc.and_(pc.and_(pc.equal(indicators.column("asset"), asset),
-                               pc.equal(indicators.column("subject"), subject)),
-                       pc.equal(indicators.column("indicator"), indicator))
+        mask = pc.and_(
+            pc.and_(pc.equal(indicators.column("asset"), asset), pc.equal(indicators.column("subject"), subject)),
+            pc.equal(indicators.column("indicator"), indicator),
+        )
         series_shifts = None
         if (asset, subject, indicator) in shift_keys:
-            smask = pc.and_(pc.and_(pc.equal(shifts.column("asset"), asset),
-                                    pc.equal(shifts.column("subject"), subject)),
-                            pc.equal(shifts.column("indicator"), indicator))
+            smask = pc.and_(
+                pc.and_(pc.equal(shifts.column("asset"), asset), pc.equal(shifts.column("subject"), subject)),
+                pc.equal(shifts.column("indicator"), indicator),
+            )
             series_shifts = shifts.filter(smask)
         folder = re.sub(r"[^A-Za-z0-9_.-]", "_", asset)
         picture = io.BytesIO()
         plot_series(picture, asset, subject, indicator, indicators.filter(mask), series_shifts)
         with store.create(store.join(report_dir, "plots", folder, plot_file_name(subject, indicator))) as handle:
             handle.write(picture.getvalue())
-        entries.append({"asset": asset, "subject": subject, "indicator": indicator,
-                        "path": f"plots/{folder}/{plot_file_name(subject, indicator)}",
-                        "monitored": series_shifts is not None})
+        entries.append(
+            {
+                "asset": asset,
+                "subject": subject,
+                "indicator": indicator,
+                "path": f"plots/{folder}/{plot_file_name(subject, indicator)}",
+                "monitored": series_shifts is not None,
+            }
+        )
     return entries

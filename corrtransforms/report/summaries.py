@@ -6,6 +6,7 @@ is opened through the store (:mod:`corrtransforms.report.files`) and handed to p
 output may lie on any Beam filesystem. The report reads only small tables (indicators and shifts
 are a few rows per window); from the correlations table it reads the ``window_start`` column alone.
 """
+
 from __future__ import annotations
 
 import dataclasses
@@ -86,8 +87,11 @@ def read_table(store, output_dir: str, name: str, columns: Optional[Sequence[str
     pieces = []
     for asset, date, path in table_files(store, output_dir, name):
         piece = _read_file(store, path, columns)
-        pieces.append(piece.append_column("asset", pa.array([asset] * piece.num_rows, pa.string()))
-                      .append_column("date", pa.array([date] * piece.num_rows, pa.string())))
+        pieces.append(
+            piece.append_column("asset", pa.array([asset] * piece.num_rows, pa.string())).append_column(
+                "date", pa.array([date] * piece.num_rows, pa.string())
+            )
+        )
     if not pieces:
         return None
     table = pa.concat_tables(pieces, promote_options="permissive")
@@ -216,12 +220,27 @@ def reject_counts(output: OutputTables) -> List[Dict]:
         return []
     groups: Dict[Tuple, Dict] = {}
     for asset, stage, reason, action, subject, detail, source in zip(
-            _column(rejects, "asset", ""), _column(rejects, "stage", ""), _column(rejects, "reason", ""),
-            _column(rejects, "action", ""), _column(rejects, "subject", ""), _column(rejects, "detail", ""),
-            _column(rejects, "source", "")):
+        _column(rejects, "asset", ""),
+        _column(rejects, "stage", ""),
+        _column(rejects, "reason", ""),
+        _column(rejects, "action", ""),
+        _column(rejects, "subject", ""),
+        _column(rejects, "detail", ""),
+        _column(rejects, "source", ""),
+    ):
         key = (asset or "", reason or "", action or "", stage or "")
-        entry = groups.setdefault(key, {"asset": key[0], "reason": key[1], "action": key[2], "stage": key[3],
-                                        "count": 0, "subjects": set(), "example": ""})
+        entry = groups.setdefault(
+            key,
+            {
+                "asset": key[0],
+                "reason": key[1],
+                "action": key[2],
+                "stage": key[3],
+                "count": 0,
+                "subjects": set(),
+                "example": "",
+            },
+        )
         entry["count"] += 1
         entry["subjects"].add(subject or "")
         if not entry["example"]:
@@ -277,8 +296,9 @@ def _episode_rows(rows: List[Dict]) -> List[Dict]:
 
 def _sort_episodes(episodes: List[Dict]) -> List[Dict]:
     far = _dt.datetime.max.replace(tzinfo=_dt.timezone.utc)
-    return sorted(episodes, key=lambda e: (e["status"] != "open", e["onset"] or far, e["asset"],
-                                           e["subject"], e["indicator"]))
+    return sorted(
+        episodes, key=lambda e: (e["status"] != "open", e["onset"] or far, e["asset"], e["subject"], e["indicator"])
+    )
 
 
 def report_episodes(output: OutputTables) -> Tuple[List[Dict], str]:
@@ -304,16 +324,28 @@ def series_baselines(output: OutputTables) -> Dict[Tuple[str, str, str], Dict]:
     if state is None or not {"phase", "window_start", "subject", "indicator"} <= set(state.column_names):
         return {}
     starts = _us(state.column("window_start"))
-    rows = zip(_column(state, "asset", ""), _column(state, "subject", ""), _column(state, "indicator", ""),
-               starts, _column(state, "phase", ""), _column(state, "model_quality", ""),
-               _column(state, "windows_seen"), _column(state, "model_location"))
+    rows = zip(
+        _column(state, "asset", ""),
+        _column(state, "subject", ""),
+        _column(state, "indicator", ""),
+        starts,
+        _column(state, "phase", ""),
+        _column(state, "model_quality", ""),
+        _column(state, "windows_seen"),
+        _column(state, "model_location"),
+    )
     found: Dict[Tuple[str, str, str], Dict] = {}
     for asset, subject, indicator, start, phase, quality, seen, location in rows:
         key = (asset, subject, indicator)
         if key in found and found[key]["start"] >= start:
             continue
-        status = ("accumulating" if phase == "accumulating" else
-                  "too short" if "baseline_too_short" in str(quality or "") else "fitted")
+        status = (
+            "accumulating"
+            if phase == "accumulating"
+            else "too short"
+            if "baseline_too_short" in str(quality or "")
+            else "fitted"
+        )
         level = None if phase == "accumulating" or location is None or not np.isfinite(location) else float(location)
         found[key] = {"start": start, "status": status, "windows_seen": seen, "level": level}
     return found

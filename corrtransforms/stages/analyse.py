@@ -14,6 +14,7 @@ merges the screening's findings into the result:
 With ``[screening] action = "exclude"`` a flagged window yields no result, only its
 ``nonstationary_window`` reject: it is neither written nor fed to baselines and detectors.
 """
+
 from __future__ import annotations
 
 import dataclasses
@@ -21,15 +22,13 @@ from typing import Dict, List, Optional, Tuple
 
 from corrtransforms.config import AssetConfig
 from corrtransforms.numerics.correlation import pairs_by_name
-from corrtransforms.records import WindowCorrelation
+from corrtransforms.records import WindowBlock, WindowCorrelation
 from corrtransforms.rejects import Reject
-from corrtransforms.stages.screen import screen_window
-from corrtransforms.records import WindowBlock
 from corrtransforms.stages.correlate import correlate_window
+from corrtransforms.stages.screen import screen_window
 
 
-def analyse_window(block: WindowBlock, config: AssetConfig
-                   ) -> Tuple[Optional[WindowCorrelation], List[Reject]]:
+def analyse_window(block: WindowBlock, config: AssetConfig) -> Tuple[Optional[WindowCorrelation], List[Reject]]:
     """Screen and correlate one window.
 
     Parameters
@@ -53,14 +52,19 @@ def analyse_window(block: WindowBlock, config: AssetConfig
         return None, list(screening.rejects)
     result = correlate_window(block, config)
     codes: Dict[str, Tuple[str, ...]] = {s: tuple(q) for s, q in screening.subject_quality.items()}
-    pairs = tuple(dataclasses.replace(p, quality=tuple(p.quality) + codes.get(p.subject, ()))
-                  if codes.get(p.subject) else p
-                  for p in result.pairs)
+    pairs = tuple(
+        dataclasses.replace(p, quality=tuple(p.quality) + codes.get(p.subject, ())) if codes.get(p.subject) else p
+        for p in result.pairs
+    )
     subject_quality = {s: tuple(q) for s, q in result.subject_quality.items()}
     for subject, found in codes.items():
         subject_quality[subject] = subject_quality.get(subject, ()) + found
     for mode in config.modes:
         if codes.get(mode.channel):
             subject_quality[mode.name] = subject_quality.get(mode.name, ()) + codes[mode.channel]
-    return dataclasses.replace(result, pairs=pairs, subject_quality=subject_quality,
-                               extra_indicators=tuple(result.extra_indicators) + tuple(screening.indicators)), []
+    return dataclasses.replace(
+        result,
+        pairs=pairs,
+        subject_quality=subject_quality,
+        extra_indicators=tuple(result.extra_indicators) + tuple(screening.indicators),
+    ), []

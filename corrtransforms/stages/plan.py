@@ -13,14 +13,16 @@ This module is pure pyarrow/numpy. File access goes through an ``open_file(path)
 returns a binary, seekable file object (the Beam layer hands in
 ``apache_beam.io.filesystems.FileSystems.open``); :func:`open_local_file` serves local paths.
 
-Time conventions (see :mod:`corrtransforms.timeutil`): every time is an integer count of microseconds since the Unix epoch, UTC.
+Time conventions (see :mod:`corrtransforms.timeutil`): every time is an integer count of
+microseconds since the Unix epoch, UTC.
 Naive (time-zone-less) timestamps in a file are local times of ``[archive] timezone``; calendar days
 (of partitions, ``--start``/``--end`` and findings) are those of ``[asset] timezone`` (``config.timezone``).
 """
+
 from __future__ import annotations
 
-import dataclasses
 import bisect
+import dataclasses
 import datetime as _dt
 import json
 import math
@@ -115,7 +117,7 @@ class FileFooter:
 
 
 def _is_numeric(type_: pa.DataType) -> bool:
-    return (pa.types.is_integer(type_) or pa.types.is_floating(type_) or pa.types.is_decimal(type_))
+    return pa.types.is_integer(type_) or pa.types.is_floating(type_) or pa.types.is_decimal(type_)
 
 
 def path_date(path: str) -> Optional[str]:
@@ -133,10 +135,27 @@ def path_date(path: str) -> Optional[str]:
     return None
 
 
-def _file_reject(config: AssetConfig, path: str, reason: str, detail: str, subject: str = WHOLE_FILE,
-                 date: Optional[str] = None, stage: str = "plan", action: Optional[str] = None) -> Reject:
-    return Reject(stage=stage, source=path, subject=subject, reason=reason, detail=detail,
-                  asset=config.name, window_start_us=None, date=date or path_date(path), action=action)
+def _file_reject(
+    config: AssetConfig,
+    path: str,
+    reason: str,
+    detail: str,
+    subject: str = WHOLE_FILE,
+    date: Optional[str] = None,
+    stage: str = "plan",
+    action: Optional[str] = None,
+) -> Reject:
+    return Reject(
+        stage=stage,
+        source=path,
+        subject=subject,
+        reason=reason,
+        detail=detail,
+        asset=config.name,
+        window_start_us=None,
+        date=date or path_date(path),
+        action=action,
+    )
 
 
 def _time_column_info(pf: pq.ParquetFile, time_column: str):
@@ -153,8 +172,9 @@ def _time_column_info(pf: pq.ParquetFile, time_column: str):
     return leaf, unit, naive
 
 
-def read_footer(path: str, config: AssetConfig, open_file: OpenFile = open_local_file
-                ) -> Tuple[Optional[FileFooter], List[Reject]]:
+def read_footer(
+    path: str, config: AssetConfig, open_file: OpenFile = open_local_file
+) -> Tuple[Optional[FileFooter], List[Reject]]:
     """Read one file's footer and summarise it for planning.
 
     Parameters
@@ -240,14 +260,25 @@ def _summarise_file(handle, path: str, config: AssetConfig) -> Tuple[Optional[Fi
         return None, [_unreadable(config, path, err)]
     if not spans:
         return None, [_file_reject(config, path, "no_rows", "no row group holds a timestamp")]
-    footer = FileFooter(path=path, time_naive=naive, row_groups=tuple(spans), numeric_columns=numeric,
-                        other_columns=other, long_channels=long_channels)
+    footer = FileFooter(
+        path=path,
+        time_naive=naive,
+        row_groups=tuple(spans),
+        numeric_columns=numeric,
+        other_columns=other,
+        long_channels=long_channels,
+    )
     findings: List[Reject] = []
     if missing_stats:
-        findings.append(_file_reject(
-            config, path, "statistics_missing",
-            f"row groups {missing_stats}: no min/max statistics of {archive.time_column!r}; time column read",
-            date=local_date(footer.start_us, config.timezone)))
+        findings.append(
+            _file_reject(
+                config,
+                path,
+                "statistics_missing",
+                f"row groups {missing_stats}: no min/max statistics of {archive.time_column!r}; time column read",
+                date=local_date(footer.start_us, config.timezone),
+            )
+        )
     return footer, findings
 
 
@@ -259,33 +290,53 @@ def _schema_problem(pf: pq.ParquetFile, path: str, config: AssetConfig) -> Optio
         return _file_reject(config, path, "no_rows", f"{meta.num_row_groups} row groups, 0 rows")
     names = pf.schema_arrow.names
     if time_column not in names:
-        return _file_reject(config, path, "missing_time_column",
-                            f"no column {time_column!r}; columns: {', '.join(names)}", subject=time_column)
+        return _file_reject(
+            config,
+            path,
+            "missing_time_column",
+            f"no column {time_column!r}; columns: {', '.join(names)}",
+            subject=time_column,
+        )
     time_type = pf.schema_arrow.field(time_column).type
     if not pa.types.is_timestamp(time_type):
-        return _file_reject(config, path, "time_column_not_timestamp",
-                            f"column {time_column!r} has type {time_type}", subject=time_column)
+        return _file_reject(
+            config,
+            path,
+            "time_column_not_timestamp",
+            f"column {time_column!r} has type {time_type}",
+            subject=time_column,
+        )
     return None
 
 
-def _long_layout_problem(schema: pa.Schema, numeric: Tuple[str, ...], path: str,
-                         config: AssetConfig) -> Optional[Reject]:
+def _long_layout_problem(
+    schema: pa.Schema, numeric: Tuple[str, ...], path: str, config: AssetConfig
+) -> Optional[Reject]:
     """Long layout: ``missing_channel_column`` or ``non_numeric_channel`` (value column), else None."""
     archive = config.archive
     for column in (archive.channel_column, archive.value_column):
         if column not in schema.names:
-            return _file_reject(config, path, "missing_channel_column",
-                                f"long layout needs column {column!r}; columns: {', '.join(schema.names)}",
-                                subject=column)
+            return _file_reject(
+                config,
+                path,
+                "missing_channel_column",
+                f"long layout needs column {column!r}; columns: {', '.join(schema.names)}",
+                subject=column,
+            )
     if archive.value_column not in numeric:
-        return _file_reject(config, path, "non_numeric_channel",
-                            f"value column {archive.value_column!r} has type "
-                            f"{schema.field(archive.value_column).type}", subject=archive.value_column)
+        return _file_reject(
+            config,
+            path,
+            "non_numeric_channel",
+            f"value column {archive.value_column!r} has type {schema.field(archive.value_column).type}",
+            subject=archive.value_column,
+        )
     return None
 
 
-def _row_group_spans(pf: pq.ParquetFile, leaf: Optional[int], unit: Optional[str], naive: bool,
-                     row_bytes: int, config: AssetConfig) -> Tuple[List[RowGroupSpan], List[int]]:
+def _row_group_spans(
+    pf: pq.ParquetFile, leaf: Optional[int], unit: Optional[str], naive: bool, row_bytes: int, config: AssetConfig
+) -> Tuple[List[RowGroupSpan], List[int]]:
     """Per non-empty row group its UTC time range, from statistics or (where they are absent)
     from its time column; also the indices of the row groups whose time column was read.
 
@@ -533,8 +584,13 @@ class _UsableFile:
     absent: Tuple[str, ...]
 
 
-def plan_reads(footers: Sequence[FileFooter], footer_rejects: Sequence[Reject], config: AssetConfig,
-               start: Optional[_dt.date] = None, end: Optional[_dt.date] = None) -> ArchivePlan:
+def plan_reads(
+    footers: Sequence[FileFooter],
+    footer_rejects: Sequence[Reject],
+    config: AssetConfig,
+    start: Optional[_dt.date] = None,
+    end: Optional[_dt.date] = None,
+) -> ArchivePlan:
     """Cut the archive's time axis into windows and group them into bounded read tasks.
 
     Parameters
@@ -561,8 +617,8 @@ def plan_reads(footers: Sequence[FileFooter], footer_rejects: Sequence[Reject], 
     reads); with ``align = "records"`` the starts are ``first + j * hop`` of every record found
     from all footers (:func:`find_records`, :func:`record_window_starts`). A window holds the
     samples at ``t`` with ``s - T/2 <= t < s + length - T/2`` (T the sample period), and is
-    planned when a row group's time range holds such a ``t``. Tasks take consecutive windows while the decoded size of the
-    union of their row groups stays within ``[reading] task_bytes``; a window that needs no new
+    planned when a row group's time range holds such a ``t``. Tasks take consecutive windows while
+    the decoded size of the union of their row groups stays within ``[reading] task_bytes``; a window that needs no new
     row group always joins the current task, so a row group larger than a window is decoded once.
     A window is in exactly one task, with every row group of every file it overlaps.
     """
@@ -573,11 +629,13 @@ def plan_reads(footers: Sequence[FileFooter], footer_rejects: Sequence[Reject], 
     lo_us = day_start_us(start, tz) if start else None
     hi_us = day_start_us(end + _dt.timedelta(days=1), tz) if end else None
     usable, rejects = _usable_files(footers, config, channels + covariates, lo_us, hi_us, length_us)
-    record_starts = (record_window_starts(find_records(footers, config), config)
-                     if config.windows.align == "records" else None)
+    record_starts = (
+        record_window_starts(find_records(footers, config), config) if config.windows.align == "records" else None
+    )
     needs = _window_needs(usable, config, lo_us, hi_us, record_starts)
-    sizes = {(f_index, rg.index): rg.decoded_bytes
-             for f_index, file in enumerate(usable) for rg in file.footer.row_groups}
+    sizes = {
+        (f_index, rg.index): rg.decoded_bytes for f_index, file in enumerate(usable) for rg in file.footer.row_groups
+    }
     groups = _group_windows(needs, sizes, config.reading.task_bytes)
     tasks = [_read_task(starts, rg_keys, usable, config, channels, covariates) for starts, rg_keys in groups]
     if start is not None and end is not None:
@@ -585,22 +643,27 @@ def plan_reads(footers: Sequence[FileFooter], footer_rejects: Sequence[Reject], 
     else:
         days = tuple(sorted({d for t in tasks for d in t.dates}))
     out_of_range = {footer.path for footer in footers} - {file.footer.path for file in usable}
-    final = _dated_findings(list(footer_rejects) + rejects, out_of_range, start, end,
-                            days[0] if days else None)
+    final = _dated_findings(list(footer_rejects) + rejects, out_of_range, start, end, days[0] if days else None)
     return ArchivePlan(tasks=tasks, rejects=final, channels=channels, covariates=covariates, days=days)
 
 
-def _usable_files(footers: Sequence[FileFooter], config: AssetConfig, names: Tuple[str, ...],
-                  lo_us: Optional[int], hi_us: Optional[int], length_us: int
-                  ) -> Tuple[List[_UsableFile], List[Reject]]:
+def _usable_files(
+    footers: Sequence[FileFooter],
+    config: AssetConfig,
+    names: Tuple[str, ...],
+    lo_us: Optional[int],
+    hi_us: Optional[int],
+    length_us: int,
+) -> Tuple[List[_UsableFile], List[Reject]]:
     """The files (sorted by path) whose span reaches into [lo_us, hi_us) by less than a window,
     with their columns, and the findings of configured channels a file lacks (wide layout)."""
     archive = config.archive
     rejects: List[Reject] = []
     usable: List[_UsableFile] = []
     for footer in sorted(footers, key=lambda f: f.path):
-        in_range = ((hi_us is None or footer.start_us - length_us < hi_us)
-                    and (lo_us is None or footer.end_us + length_us >= lo_us))
+        in_range = (hi_us is None or footer.start_us - length_us < hi_us) and (
+            lo_us is None or footer.end_us + length_us >= lo_us
+        )
         if archive.layout == "wide":
             absent = tuple(name for name in names if name not in footer.numeric_columns)
             if in_range:
@@ -620,17 +683,32 @@ def _absent_channel_findings(footer: FileFooter, absent: Sequence[str], config: 
     found = []
     for name in absent:
         if name in footer.other_columns:
-            found.append(_file_reject(config, footer.path, "non_numeric_channel",
-                                      f"column {name!r} is not numeric", subject=name, date=file_date))
+            found.append(
+                _file_reject(
+                    config,
+                    footer.path,
+                    "non_numeric_channel",
+                    f"column {name!r} is not numeric",
+                    subject=name,
+                    date=file_date,
+                )
+            )
         else:
-            found.append(_file_reject(config, footer.path, "missing_channel_column",
-                                      f"no column {name!r}", subject=name, date=file_date))
+            found.append(
+                _file_reject(
+                    config, footer.path, "missing_channel_column", f"no column {name!r}", subject=name, date=file_date
+                )
+            )
     return found
 
 
-def _window_needs(usable: Sequence[_UsableFile], config: AssetConfig, lo_us: Optional[int],
-                  hi_us: Optional[int], record_starts: Optional[Sequence[int]] = None
-                  ) -> Dict[int, List[Tuple[int, int]]]:
+def _window_needs(
+    usable: Sequence[_UsableFile],
+    config: AssetConfig,
+    lo_us: Optional[int],
+    hi_us: Optional[int],
+    record_starts: Optional[Sequence[int]] = None,
+) -> Dict[int, List[Tuple[int, int]]]:
     """Window start (UTC us) -> the (file, row group) keys whose time range holds one of its samples.
 
     The window starting at ``s`` holds the samples ``t`` with ``s - T/2 <= t < s + length - T/2``.
@@ -658,8 +736,9 @@ def _window_needs(usable: Sequence[_UsableFile], config: AssetConfig, lo_us: Opt
     return needs
 
 
-def _group_windows(needs: Dict[int, List[Tuple[int, int]]], sizes: Dict[Tuple[int, int], int], budget: int
-                   ) -> List[Tuple[List[int], Dict[Tuple[int, int], None]]]:
+def _group_windows(
+    needs: Dict[int, List[Tuple[int, int]]], sizes: Dict[Tuple[int, int], int], budget: int
+) -> List[Tuple[List[int], Dict[Tuple[int, int], None]]]:
     """Consecutive windows grouped while the decoded size of their row groups' union stays within
     ``budget`` (a window that needs no new row group always joins): [(starts, row-group keys)]."""
     groups: List[Tuple[List[int], Dict[Tuple[int, int], None]]] = []
@@ -678,8 +757,14 @@ def _group_windows(needs: Dict[int, List[Tuple[int, int]]], sizes: Dict[Tuple[in
     return groups
 
 
-def _read_task(starts: Sequence[int], rg_keys: Iterable[Tuple[int, int]], usable: Sequence[_UsableFile],
-               config: AssetConfig, channels: Tuple[str, ...], covariates: Tuple[str, ...]) -> ReadTask:
+def _read_task(
+    starts: Sequence[int],
+    rg_keys: Iterable[Tuple[int, int]],
+    usable: Sequence[_UsableFile],
+    config: AssetConfig,
+    channels: Tuple[str, ...],
+    covariates: Tuple[str, ...],
+) -> ReadTask:
     """The task of one group of windows: one piece per file, files in time order."""
     by_file: Dict[int, List[int]] = {}
     for f_index, rg_index in rg_keys:
@@ -689,19 +774,37 @@ def _read_task(starts: Sequence[int], rg_keys: Iterable[Tuple[int, int]], usable
         file = usable[f_index]
         rgs = tuple(sorted(by_file[f_index]))
         spans = [rg for rg in file.footer.row_groups if rg.index in rgs]
-        pieces.append(FilePiece(path=file.footer.path, row_groups=rgs, columns=file.columns,
-                                time_naive=file.footer.time_naive, absent=file.absent,
-                                start_us=min(s.start_us for s in spans),
-                                decoded_bytes=sum(s.decoded_bytes for s in spans),
-                                row_group_spans_us=tuple((s.start_us, s.end_us) for s in spans)))
+        pieces.append(
+            FilePiece(
+                path=file.footer.path,
+                row_groups=rgs,
+                columns=file.columns,
+                time_naive=file.footer.time_naive,
+                absent=file.absent,
+                start_us=min(s.start_us for s in spans),
+                decoded_bytes=sum(s.decoded_bytes for s in spans),
+                row_group_spans_us=tuple((s.start_us, s.end_us) for s in spans),
+            )
+        )
     starts = tuple(starts)
-    return ReadTask(asset=config.name, task_id=compact_utc(starts[0]), window_starts_us=starts,
-                    channels=channels, covariates=covariates, pieces=tuple(pieces),
-                    dates=tuple(sorted({local_date(s, config.timezone) for s in starts})))
+    return ReadTask(
+        asset=config.name,
+        task_id=compact_utc(starts[0]),
+        window_starts_us=starts,
+        channels=channels,
+        covariates=covariates,
+        pieces=tuple(pieces),
+        dates=tuple(sorted({local_date(s, config.timezone) for s in starts})),
+    )
 
 
-def _dated_findings(findings: Sequence[Reject], out_of_range: set, start: Optional[_dt.date],
-                    end: Optional[_dt.date], first_day: Optional[str]) -> List[Reject]:
+def _dated_findings(
+    findings: Sequence[Reject],
+    out_of_range: set,
+    start: Optional[_dt.date],
+    end: Optional[_dt.date],
+    first_day: Optional[str],
+) -> List[Reject]:
     """File-level findings of the files this run reads, each dated inside the run's days."""
     final: List[Reject] = []
     for finding in findings:
@@ -738,7 +841,7 @@ def expand_archive_path(path: str) -> str:
 
 def is_hidden(path: str, root: str = "") -> bool:
     """True for files in hidden or underscore folders/names below ``root`` (skipped when listing)."""
-    relative = path[len(root):] if root and path.startswith(root) else path.rsplit("/", 1)[-1]
+    relative = path[len(root) :] if root and path.startswith(root) else path.rsplit("/", 1)[-1]
     return any(part.startswith((".", "_")) for part in relative.replace("\\", "/").split("/") if part)
 
 
@@ -748,8 +851,13 @@ def in_day_range(path: str, start: Optional[_dt.date], end: Optional[_dt.date]) 
     return True if not hive else _near_range(hive.group(1), start, end)
 
 
-def plan_archive(paths: Iterable[str], config: AssetConfig, open_file: OpenFile = open_local_file,
-                 start: Optional[_dt.date] = None, end: Optional[_dt.date] = None) -> ArchivePlan:
+def plan_archive(
+    paths: Iterable[str],
+    config: AssetConfig,
+    open_file: OpenFile = open_local_file,
+    start: Optional[_dt.date] = None,
+    end: Optional[_dt.date] = None,
+) -> ArchivePlan:
     """Read every footer and plan (the whole planning stage in one call, without Beam)."""
     footers, findings = [], []
     for path in paths:

@@ -10,6 +10,7 @@ Reject records (actions ``"repaired"`` / ``"flagged"``) or per-channel rejects (
 
 Pure pyarrow/numpy: files are opened through an ``open_file(path)`` callable.
 """
+
 from __future__ import annotations
 
 import collections
@@ -21,11 +22,11 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
+from corrtransforms.config import AssetConfig
+from corrtransforms.records import WindowBlock
+from corrtransforms.rejects import WHOLE_FILE, WHOLE_WINDOW, Reject, iso_utc
 from corrtransforms.stages.plan import OpenFile, ReadTask, open_local_file, window_grid
 from corrtransforms.timeutil import local_date, local_to_utc_us
-from corrtransforms.config import AssetConfig
-from corrtransforms.rejects import WHOLE_FILE, WHOLE_WINDOW, Reject, iso_utc
-from corrtransforms.records import WindowBlock
 
 #: relative difference between the median sample interval and the nominal one above which a
 #: window is rejected as "sample_rate_mismatch" (common practice: 1 %)
@@ -96,8 +97,9 @@ class _PieceRows:
 
 def _file_finding(config: AssetConfig, path: str, reason: str, detail: str, date: str) -> Reject:
     """A finding of the read stage about a file (subject ``"*"``), dated by the task's first window."""
-    return Reject(stage="read", source=path, subject=WHOLE_FILE, reason=reason, detail=detail,
-                  asset=config.name, date=date)
+    return Reject(
+        stage="read", source=path, subject=WHOLE_FILE, reason=reason, detail=detail, asset=config.name, date=date
+    )
 
 
 def _time_to_us(column: pa.ChunkedArray) -> Tuple[pa.Array, bool]:
@@ -175,8 +177,16 @@ def _load(task: ReadTask, config: AssetConfig, open_file: OpenFile, findings: Li
     return _task_data(pieces, names, config, lost)
 
 
-def _piece_rows(task: ReadTask, piece, names, config: AssetConfig, open_file: OpenFile, date: str,
-                findings: List[Reject], lost: List[_LostRows]) -> Optional[_PieceRows]:
+def _piece_rows(
+    task: ReadTask,
+    piece,
+    names,
+    config: AssetConfig,
+    open_file: OpenFile,
+    date: str,
+    findings: List[Reject],
+    lost: List[_LostRows],
+) -> Optional[_PieceRows]:
     """Decode one piece and keep the row groups that pass their checks (None when none does).
 
     Findings go to ``findings`` (``null_timestamps``, ``statistics_mismatch``, ``decode_failed``,
@@ -185,8 +195,10 @@ def _piece_rows(task: ReadTask, piece, names, config: AssetConfig, open_file: Op
     archive = config.archive
     wide = archive.layout == "wide"
     spans = dict(zip(piece.row_groups, piece.row_group_spans_us)) if piece.row_group_spans_us else {}
-    whole_span = (min((s[0] for s in spans.values()), default=piece.start_us),
-                  max((s[1] for s in spans.values()), default=task.window_starts_us[-1] + 10**15))
+    whole_span = (
+        min((s[0] for s in spans.values()), default=piece.start_us),
+        max((s[1] for s in spans.values()), default=task.window_starts_us[-1] + 10**15),
+    )
     read_names = tuple(n for n in names if (not wide) or n in piece.columns)
     try:
         with open_file(piece.path) as handle:
@@ -202,39 +214,88 @@ def _piece_rows(task: ReadTask, piece, names, config: AssetConfig, open_file: Op
             continue
         lo, hi = spans.get(rg, whole_span)
         columns = _drop_null_times(columns, config, piece.path, rg, (lo, hi), read_names, date, findings, lost)
-        if rg in spans and not _agrees_with_statistics(columns["time"], naive, spans[rg], config, piece.path,
-                                                       rg, read_names, date, findings, lost):
+        if rg in spans and not _agrees_with_statistics(
+            columns["time"], naive, spans[rg], config, piece.path, rg, read_names, date, findings, lost
+        ):
             continue
         kept.append((pa.table(columns), naive))
     for rg, error in failed:
         findings.append(_file_finding(config, piece.path, "decode_failed", f"row group {rg}: {error}", date))
         lo, hi = spans.get(rg, whole_span)
-        lost.append(_LostRows(lo, hi, piece.path, (rg,), read_names, "decode_failed",
-                              f"samples of {piece.path} row group {rg} could not be decoded (treated as gaps)"))
+        lost.append(
+            _LostRows(
+                lo,
+                hi,
+                piece.path,
+                (rg,),
+                read_names,
+                "decode_failed",
+                f"samples of {piece.path} row group {rg} could not be decoded (treated as gaps)",
+            )
+        )
     if not kept:
         return None
     # one table per piece (its row groups in file order), one naive flag per piece
-    return _PieceRows(path=piece.path, table=pa.concat_tables([t for t, _ in kept]), naive=kept[0][1],
-                      absent=[name in piece.absent for name in names] if wide else [])
+    return _PieceRows(
+        path=piece.path,
+        table=pa.concat_tables([t for t, _ in kept]),
+        naive=kept[0][1],
+        absent=[name in piece.absent for name in names] if wide else [],
+    )
 
 
-def _drop_null_times(columns: Dict[str, pa.Array], config: AssetConfig, path: str, rg: int, span,
-                     read_names, date: str, findings: List[Reject], lost: List[_LostRows]) -> Dict[str, pa.Array]:
+def _drop_null_times(
+    columns: Dict[str, pa.Array],
+    config: AssetConfig,
+    path: str,
+    rg: int,
+    span,
+    read_names,
+    date: str,
+    findings: List[Reject],
+    lost: List[_LostRows],
+) -> Dict[str, pa.Array]:
     """The row group's columns without its rows that have no timestamp (``null_timestamps``)."""
     times = columns["time"]
     if not times.null_count:
         return columns
-    findings.append(_file_finding(config, path, "null_timestamps",
-                                  f"row group {rg}: {times.null_count} rows without a timestamp dropped", date))
-    lost.append(_LostRows(span[0], span[1], path, (rg,), read_names, "null_timestamps",
-                          f"{times.null_count} rows of {path} row group {rg} have no timestamp and "
-                          "were not used; this window may have lost samples"))
+    findings.append(
+        _file_finding(
+            config,
+            path,
+            "null_timestamps",
+            f"row group {rg}: {times.null_count} rows without a timestamp dropped",
+            date,
+        )
+    )
+    lost.append(
+        _LostRows(
+            span[0],
+            span[1],
+            path,
+            (rg,),
+            read_names,
+            "null_timestamps",
+            f"{times.null_count} rows of {path} row group {rg} have no timestamp and "
+            "were not used; this window may have lost samples",
+        )
+    )
     keep = pc.is_valid(times)
     return {k: pc.filter(v, keep) for k, v in columns.items()}
 
 
-def _agrees_with_statistics(times: pa.Array, naive: bool, span, config: AssetConfig, path: str, rg: int,
-                            read_names, date: str, findings: List[Reject], lost: List[_LostRows]) -> bool:
+def _agrees_with_statistics(
+    times: pa.Array,
+    naive: bool,
+    span,
+    config: AssetConfig,
+    path: str,
+    rg: int,
+    read_names,
+    date: str,
+    findings: List[Reject],
+    lost: List[_LostRows],
+) -> bool:
     """True when the decoded timestamps span exactly the footer's (first, last); else the
     ``statistics_mismatch`` finding and lost rows are recorded."""
     t = times.to_numpy(zero_copy_only=False).astype(np.int64)
@@ -243,12 +304,27 @@ def _agrees_with_statistics(times: pa.Array, naive: bool, span, config: AssetCon
     if not t.size or (int(t.min()), int(t.max())) == tuple(span):
         return True
     lo, hi = min(int(t.min()), span[0]), max(int(t.max()), span[1])
-    findings.append(_file_finding(
-        config, path, "statistics_mismatch",
-        f"row group {rg}: timestamps span {iso_utc(int(t.min()))} .. {iso_utc(int(t.max()))}, "
-        f"statistics said {iso_utc(span[0])} .. {iso_utc(span[1])}; rows not used", date))
-    lost.append(_LostRows(lo, hi, path, (rg,), read_names, "statistics_mismatch",
-                          f"samples of {path} row group {rg} were not used (its statistics are wrong)"))
+    findings.append(
+        _file_finding(
+            config,
+            path,
+            "statistics_mismatch",
+            f"row group {rg}: timestamps span {iso_utc(int(t.min()))} .. {iso_utc(int(t.max()))}, "
+            f"statistics said {iso_utc(span[0])} .. {iso_utc(span[1])}; rows not used",
+            date,
+        )
+    )
+    lost.append(
+        _LostRows(
+            lo,
+            hi,
+            path,
+            (rg,),
+            read_names,
+            "statistics_mismatch",
+            f"samples of {path} row group {rg} were not used (its statistics are wrong)",
+        )
+    )
     return False
 
 
@@ -257,8 +333,11 @@ def _task_data(pieces: List[_PieceRows], names, config: AssetConfig, lost: List[
     wide = config.archive.layout == "wide"
     tables = [p.table for p in pieces]
     counts = [t.num_rows for t in tables]
-    times = (np.concatenate([t.column("time").to_numpy().astype(np.int64) for t in tables])
-             if tables else np.zeros(0, np.int64))
+    times = (
+        np.concatenate([t.column("time").to_numpy().astype(np.int64) for t in tables])
+        if tables
+        else np.zeros(0, np.int64)
+    )
     file_index = np.repeat(np.arange(len(tables), dtype=np.int32), counts)
     bounds = np.concatenate([[0], np.cumsum(counts)]).astype(np.int64)
     unordered = []
@@ -276,7 +355,7 @@ def _task_data(pieces: List[_PieceRows], names, config: AssetConfig, lost: List[
         values = np.empty((int(bounds[-1]), len(names)))
         for i, table in enumerate(tables):
             for j, name in enumerate(names):
-                values[bounds[i]:bounds[i + 1], j] = table.column(name).to_numpy()
+                values[bounds[i] : bounds[i + 1], j] = table.column(name).to_numpy()
         absent = np.array([p.absent for p in pieces], dtype=bool).reshape(len(tables), len(names))
         codes = None
     else:
@@ -336,8 +415,16 @@ def _median_interval(times: np.ndarray) -> float:
     return float(np.median(steps))
 
 
-def _assemble(times: np.ndarray, values: np.ndarray, file_index: np.ndarray, absent: np.ndarray,
-              start_us: int, n_samples: int, period_us: float, tolerance: float) -> _Assembly:
+def _assemble(
+    times: np.ndarray,
+    values: np.ndarray,
+    file_index: np.ndarray,
+    absent: np.ndarray,
+    start_us: int,
+    n_samples: int,
+    period_us: float,
+    tolerance: float,
+) -> _Assembly:
     """Snap rows (already time-sorted) onto the window's grid.
 
     Notes
@@ -413,8 +500,10 @@ def _channel_checks(grid: np.ndarray, valid: np.ndarray, n_channels: int):
         high, low = columns.max(axis=1), columns.min(axis=1)
         at_high = np.count_nonzero(columns == high[:, None], axis=1)
         at_low = np.count_nonzero(columns == low[:, None], axis=1)
-        return [(1.0, size, float(high[c]), float(low[c]), _extreme_fraction(at_high[c], at_low[c], size))
-                for c in range(n_channels)]
+        return [
+            (1.0, size, float(high[c]), float(low[c]), _extreme_fraction(at_high[c], at_low[c], size))
+            for c in range(n_channels)
+        ]
     checks = []
     for c in range(n_channels):
         column = grid[valid[:, c], c]
@@ -429,8 +518,9 @@ def _channel_checks(grid: np.ndarray, valid: np.ndarray, n_channels: int):
 def _clip_fraction(column: np.ndarray) -> float:
     if column.size == 0:
         return 0.0
-    return _extreme_fraction(int(np.count_nonzero(column == column.max())),
-                             int(np.count_nonzero(column == column.min())), column.size)
+    return _extreme_fraction(
+        int(np.count_nonzero(column == column.max())), int(np.count_nonzero(column == column.min())), column.size
+    )
 
 
 def _extreme_fraction(at_high: int, at_low: int, size: int) -> float:
@@ -496,8 +586,9 @@ def _grid_in_place(view: np.ndarray, sources: Tuple[str, ...]) -> _SnappedWindow
     # all columns summed together, as in the general path (a single column alone would be
     # summed pairwise, not row by row, and its mean would differ in the last bit)
     covariate_sums = grid.sum(axis=0)
-    return _SnappedWindow(grid, valid, nonfinite, collections.Counter(), set(), covariate_sums,
-                          covariate_counts, sources)
+    return _SnappedWindow(
+        grid, valid, nonfinite, collections.Counter(), set(), covariate_sums, covariate_counts, sources
+    )
 
 
 def _assembly_groups(data: _TaskData, lo: int, hi: int, n_columns: int) -> List[Tuple[List[int], np.ndarray]]:
@@ -509,8 +600,9 @@ def _assembly_groups(data: _TaskData, lo: int, hi: int, n_columns: int) -> List[
     return [([c], np.flatnonzero(codes == c)) for c in range(n_columns)]
 
 
-def _rate_mismatch(times: np.ndarray, groups, period_us: float, config: AssetConfig, start_us: int,
-                   sources: Tuple[str, ...]) -> Optional[Reject]:
+def _rate_mismatch(
+    times: np.ndarray, groups, period_us: float, config: AssetConfig, start_us: int, sources: Tuple[str, ...]
+) -> Optional[Reject]:
     """The ``sample_rate_mismatch`` reject when the groups' median sample interval differs from the
     nominal one by more than :data:`RATE_TOLERANCE`, else None."""
     intervals = [_median_interval(times[rows]) for _, rows in groups if rows.size >= 3]
@@ -521,37 +613,63 @@ def _rate_mismatch(times: np.ndarray, groups, period_us: float, config: AssetCon
     if abs(median / period_us - 1.0) <= RATE_TOLERANCE:
         return None
     return Reject.for_window(
-        config.name, start_us, "read", "sample_rate_mismatch",
+        config.name,
+        start_us,
+        "read",
+        "sample_rate_mismatch",
         f"median sample interval {median / 1e6:.6g} s ({1e6 / median:.6g} Hz) vs nominal "
-        f"{config.archive.sample_rate_hz:g} Hz; files: {', '.join(sources)}")
+        f"{config.archive.sample_rate_hz:g} Hz; files: {', '.join(sources)}",
+    )
 
 
-def _snapped_grid(data: _TaskData, lo: int, hi: int, groups, n_columns: int, start_us: int,
-                  config: AssetConfig, sources: Tuple[str, ...]) -> _SnappedWindow:
+def _snapped_grid(
+    data: _TaskData,
+    lo: int,
+    hi: int,
+    groups,
+    n_columns: int,
+    start_us: int,
+    config: AssetConfig,
+    sources: Tuple[str, ...],
+) -> _SnappedWindow:
     """Snap each group's rows onto the window's grid (:func:`_assemble`) and add up the counts."""
     _, _, n_samples, period_us = window_grid(config)
     times, file_index, rows_values = data.times[lo:hi], data.file_index[lo:hi], data.values[lo:hi]
-    out = _SnappedWindow(np.zeros((n_samples, n_columns)), np.zeros((n_samples, n_columns), dtype=bool),
-                         np.zeros(n_columns, dtype=np.int64), collections.Counter(), set(),
-                         np.zeros(n_columns), np.zeros(n_columns, dtype=np.int64), sources)
+    out = _SnappedWindow(
+        np.zeros((n_samples, n_columns)),
+        np.zeros((n_samples, n_columns), dtype=bool),
+        np.zeros(n_columns, dtype=np.int64),
+        collections.Counter(),
+        set(),
+        np.zeros(n_columns),
+        np.zeros(n_columns, dtype=np.int64),
+        sources,
+    )
     for columns, rows in groups:
         values = rows_values[rows] if data.channel_codes is None else rows_values[rows][:, :1]
         absent = data.absent[:, columns] if data.channel_codes is None else np.zeros((len(data.files), 1), bool)
-        part = _assemble(times[rows], values, file_index[rows], absent, start_us, n_samples, period_us,
-                         config.reading.grid_tolerance)
+        part = _assemble(
+            times[rows], values, file_index[rows], absent, start_us, n_samples, period_us, config.reading.grid_tolerance
+        )
         out.grid[:, columns] = part.grid
         out.valid[:, columns] = part.valid
         out.nonfinite[columns] += part.nonfinite
-        out.totals.update(off_grid=part.off_grid, beyond=part.beyond_tolerance, duplicates=part.duplicates,
-                          overlaps=part.overlap_duplicates, conflicts=part.conflicts)
+        out.totals.update(
+            off_grid=part.off_grid,
+            beyond=part.beyond_tolerance,
+            duplicates=part.duplicates,
+            overlaps=part.overlap_duplicates,
+            conflicts=part.conflicts,
+        )
         out.conflict_files |= part.conflict_files
         out.covariate_sums[columns] += np.where(part.valid, part.grid, 0.0).sum(axis=0)
         out.covariate_counts[columns] += part.valid.sum(axis=0)
     return out
 
 
-def _complete_on_grid(data: _TaskData, times: np.ndarray, file_ids: np.ndarray, start_us: int,
-                      n_samples: int, period_us: float) -> bool:
+def _complete_on_grid(
+    data: _TaskData, times: np.ndarray, file_ids: np.ndarray, start_us: int, n_samples: int, period_us: float
+) -> bool:
     """True when a wide window's rows are exactly its grid points, each once, from files that
     hold every column (integer sample period in microseconds)."""
     if data.channel_codes is not None or times.size != n_samples or period_us != int(period_us):
@@ -561,15 +679,22 @@ def _complete_on_grid(data: _TaskData, times: np.ndarray, file_ids: np.ndarray, 
     return not (data.absent.size and data.absent[file_ids].any())
 
 
-def _checked_block(task: ReadTask, data: _TaskData, config: AssetConfig, start_us: int,
-                   window: _SnappedWindow) -> List[Union[WindowBlock, Reject]]:
+def _checked_block(
+    task: ReadTask, data: _TaskData, config: AssetConfig, start_us: int, window: _SnappedWindow
+) -> List[Union[WindowBlock, Reject]]:
     """Findings, channel checks and the block of an assembled window grid."""
     totals = window.totals
     if totals["conflicts"]:
         files = ", ".join(sorted(data.files[i] for i in window.conflict_files))
-        return [Reject.for_window(config.name, start_us, "read", "conflicting_duplicates",
-                                  f"{totals['conflicts']} grid points hold different values at equal "
-                                  f"timestamps; files: {files}")]
+        return [
+            Reject.for_window(
+                config.name,
+                start_us,
+                "read",
+                "conflicting_duplicates",
+                f"{totals['conflicts']} grid points hold different values at equal timestamps; files: {files}",
+            )
+        ]
     out: List[Union[WindowBlock, Reject]] = list(_repair_findings(task, data, config, start_us, window))
     kept, failures, quality, flags = _channel_verdicts(task, config, start_us, window)
     out.extend(flags)
@@ -582,17 +707,26 @@ def _checked_block(task: ReadTask, data: _TaskData, config: AssetConfig, start_u
     for name, (reason, detail) in failures.items():
         out.append(Reject.for_window(config.name, start_us, "read", reason, detail, subject=name))
     covariates = _covariate_means(task, config, start_us, window, out)
-    out.append(WindowBlock(
-        asset=config.name, window_start_us=int(start_us), window_length_s=config.windows.length_s,
-        sample_rate_hz=config.archive.sample_rate_hz,
-        channels=tuple(task.channels[c] for c in kept),
-        values=np.ascontiguousarray(window.grid[:, kept]), valid=np.ascontiguousarray(window.valid[:, kept]),
-        covariates=covariates, channel_quality=quality, sources=window.sources))
+    out.append(
+        WindowBlock(
+            asset=config.name,
+            window_start_us=int(start_us),
+            window_length_s=config.windows.length_s,
+            sample_rate_hz=config.archive.sample_rate_hz,
+            channels=tuple(task.channels[c] for c in kept),
+            values=np.ascontiguousarray(window.grid[:, kept]),
+            valid=np.ascontiguousarray(window.valid[:, kept]),
+            covariates=covariates,
+            channel_quality=quality,
+            sources=window.sources,
+        )
+    )
     return out
 
 
-def _repair_findings(task: ReadTask, data: _TaskData, config: AssetConfig, start_us: int,
-                     window: _SnappedWindow) -> List[Reject]:
+def _repair_findings(
+    task: ReadTask, data: _TaskData, config: AssetConfig, start_us: int, window: _SnappedWindow
+) -> List[Reject]:
     """The repaired findings of a window: sorted, deduplicated, snapped, dropped and NaN samples."""
     _, _, n_samples, period_us = window_grid(config)
     totals, sources = window.totals, window.sources
@@ -608,14 +742,21 @@ def _repair_findings(task: ReadTask, data: _TaskData, config: AssetConfig, start
     if totals["duplicates"]:
         note("duplicate_timestamps", f"{totals['duplicates']} duplicated samples with equal values dropped")
     if totals["overlaps"]:
-        note("overlapping_files", f"{totals['overlaps']} samples held by more than one of {', '.join(sources)}; kept once")
+        note(
+            "overlapping_files",
+            f"{totals['overlaps']} samples held by more than one of {', '.join(sources)}; kept once",
+        )
     if totals["off_grid"]:
-        note("off_grid_timestamps",
-             f"{totals['off_grid']} timestamps more than {OFF_GRID_NOISE:g} of a period off the grid; snapped")
+        note(
+            "off_grid_timestamps",
+            f"{totals['off_grid']} timestamps more than {OFF_GRID_NOISE:g} of a period off the grid; snapped",
+        )
     if totals["beyond"]:
-        note("jitter_beyond_tolerance",
-             f"{totals['beyond']} samples further than {config.reading.grid_tolerance:g} of a period from the "
-             "grid dropped (treated as gaps)")
+        note(
+            "jitter_beyond_tolerance",
+            f"{totals['beyond']} samples further than {config.reading.grid_tolerance:g} of a period from the "
+            "grid dropped (treated as gaps)",
+        )
     for c, name in enumerate(task.channels):
         if window.nonfinite[c]:
             note("nonfinite_values", f"{int(window.nonfinite[c])} NaN, inf or null samples treated as gaps", name)
@@ -652,16 +793,24 @@ def _channel_verdicts(task: ReadTask, config: AssetConfig, start_us: int, window
             continue
         if fraction >= config.reading.clip_fraction:
             quality[name] = ("clipped",)
-            flags.append(Reject.for_window(config.name, start_us, "read", "clipped_channel",
-                                           f"{fraction:.4f} of samples at the extreme values "
-                                           f"[{low:g}, {high:g}] (clip_fraction {config.reading.clip_fraction:g})",
-                                           subject=name))
+            flags.append(
+                Reject.for_window(
+                    config.name,
+                    start_us,
+                    "read",
+                    "clipped_channel",
+                    f"{fraction:.4f} of samples at the extreme values "
+                    f"[{low:g}, {high:g}] (clip_fraction {config.reading.clip_fraction:g})",
+                    subject=name,
+                )
+            )
         kept.append(c)
     return kept, failures, quality, flags
 
 
-def _covariate_means(task: ReadTask, config: AssetConfig, start_us: int, window: _SnappedWindow,
-                     out: List) -> Dict[str, float]:
+def _covariate_means(
+    task: ReadTask, config: AssetConfig, start_us: int, window: _SnappedWindow, out: List
+) -> Dict[str, float]:
     """Mean of each covariate's valid grid samples (NaN, with a finding appended to ``out``, when none)."""
     n_channels = len(task.channels)
     covariates = {}
@@ -670,14 +819,22 @@ def _covariate_means(task: ReadTask, config: AssetConfig, start_us: int, window:
         count = window.covariate_counts[c]
         covariates[name] = float(window.covariate_sums[c] / count) if count else float("nan")
         if not count:
-            out.append(Reject.for_window(config.name, start_us, "read", "insufficient_coverage",
-                                         "covariate without a valid sample in the window; its mean is missing (NaN)",
-                                         subject=name))
+            out.append(
+                Reject.for_window(
+                    config.name,
+                    start_us,
+                    "read",
+                    "insufficient_coverage",
+                    "covariate without a valid sample in the window; its mean is missing (NaN)",
+                    subject=name,
+                )
+            )
     return covariates
 
 
-def read_windows(task: ReadTask, config: AssetConfig, open_file: OpenFile = open_local_file
-                 ) -> Iterator[Union[WindowBlock, Reject]]:
+def read_windows(
+    task: ReadTask, config: AssetConfig, open_file: OpenFile = open_local_file
+) -> Iterator[Union[WindowBlock, Reject]]:
     """Read one task and yield, per planned window, its findings and then its block.
 
     Parameters
@@ -735,12 +892,15 @@ def _lost_rows(task: ReadTask, data: _TaskData, config: AssetConfig, start_us: i
             continue
         for name in names:
             if name in task.channels or name in task.covariates:
-                out.append(Reject.for_window(config.name, start_us, "read", reason, detail, subject=name, action="rejected"))
+                out.append(
+                    Reject.for_window(config.name, start_us, "read", reason, detail, subject=name, action="rejected")
+                )
     return out
 
 
-def read_task(task: ReadTask, config: AssetConfig, open_file: OpenFile = open_local_file
-              ) -> Tuple[List[WindowBlock], List[Reject]]:
+def read_task(
+    task: ReadTask, config: AssetConfig, open_file: OpenFile = open_local_file
+) -> Tuple[List[WindowBlock], List[Reject]]:
     """:func:`read_windows` collected into (blocks, rejects)."""
     blocks: List[WindowBlock] = []
     rejects: List[Reject] = []

@@ -32,6 +32,7 @@ The state record, its serialisation, the choice of the state to resume and the s
 live in :mod:`corrtransforms.stages.state`; the episodes summary of a shifts table in
 :mod:`corrtransforms.stages.summaries`.
 """
+
 from __future__ import annotations
 
 import copy
@@ -85,8 +86,10 @@ QUALITY_CODES = {
     "baseline_too_short": "fewer baseline windows than [baseline] min_windows; no alarms",
     "covariate_constant": "a covariate did not vary over the baseline; it was left out of the model",
     "covariate_model_unfitted": "too few baseline windows with all covariates; the median model was used",
-    "dependence_not_estimated": (f"fewer than {MIN_PAIRS} adjacent baseline windows (or a state from before "
-                                 "the dependence was fitted): the residuals are taken as independent (phi 0)"),
+    "dependence_not_estimated": (
+        f"fewer than {MIN_PAIRS} adjacent baseline windows (or a state from before "
+        "the dependence was fitted): the residuals are taken as independent (phi 0)"
+    ),
 }
 
 
@@ -164,9 +167,25 @@ def period_position(day: int, windows_seen: int, baseline_config) -> str:
 class _Columns:
     """Per-row output columns, appended day by day."""
 
-    NAMES = ("window_start", "value", "stderr", "expected", "resid_scale", "z", "cusum_pos",
-             "cusum_neg", "ewma", "ewma_limit", "state", "onset", "direction", "shift_size",
-             "detector", "first_alarm", "quality")
+    NAMES = (
+        "window_start",
+        "value",
+        "stderr",
+        "expected",
+        "resid_scale",
+        "z",
+        "cusum_pos",
+        "cusum_neg",
+        "ewma",
+        "ewma_limit",
+        "state",
+        "onset",
+        "direction",
+        "shift_size",
+        "detector",
+        "first_alarm",
+        "quality",
+    )
 
     def __init__(self):
         self.parts = {name: [] for name in self.NAMES}
@@ -198,7 +217,7 @@ def _standardised_residuals(model: BaselineModel, v, se, x):
     expected, covariate_missing = model.predict(x, n=len(v))
     resid = v - expected
     with np.errstate(invalid="ignore", divide="ignore"):
-        denominator = np.sqrt(model.resid_scale ** 2 + se * se)
+        denominator = np.sqrt(model.resid_scale**2 + se * se)
         z = np.where(denominator > 0, resid / denominator, np.nan)
     return expected, covariate_missing, resid, z
 
@@ -211,8 +230,9 @@ def window_steps(times_us, hop_us: float, previous_us: Optional[int] = None) -> 
     return np.maximum(1, np.rint((t - before) / hop_us)).astype(np.int64)
 
 
-def _fitted_quality(model: BaselineModel, v, se, codes, covariate_missing, usable,
-                    stage_codes: Tuple[str, ...] = ()) -> List[str]:
+def _fitted_quality(
+    model: BaselineModel, v, se, codes, covariate_missing, usable, stage_codes: Tuple[str, ...] = ()
+) -> List[str]:
     """Quality text of each window after the baseline: its own codes, the model's, and this
     stage's (``value_missing``, ``stderr_missing``, ``covariate_missing``, ``detector_held``)."""
     model_codes = tuple(model.quality) + (() if model.too_short else tuple(stage_codes))
@@ -234,14 +254,14 @@ def _fitted_quality(model: BaselineModel, v, se, codes, covariate_missing, usabl
 class _DetectorPaths(NamedTuple):
     """Detector statistics over the used windows of one day (see :mod:`corrtransforms.numerics.detectors`)."""
 
-    upper: np.ndarray      # C+
-    lower: np.ndarray      # C-
-    n_upper: np.ndarray    # windows of C+'s current run above zero
+    upper: np.ndarray  # C+
+    lower: np.ndarray  # C-
+    n_upper: np.ndarray  # windows of C+'s current run above zero
     n_lower: np.ndarray
     sum_upper: np.ndarray  # sum of value - expected over C+'s current run
     sum_lower: np.ndarray
     ewma: np.ndarray
-    limit: np.ndarray      # EWMA control limit (exact, time-varying)
+    limit: np.ndarray  # EWMA control limit (exact, time-varying)
 
 
 @dataclasses.dataclass
@@ -315,8 +335,9 @@ class _SeriesRun:
 
     def _fit(self) -> BaselineModel:
         values, stderr, x = self._sample_arrays()
-        return fit_baseline_model(values, stderr, x, self.state.covariates,
-                                  self.config.baseline.min_windows, self.state.order)
+        return fit_baseline_model(
+            values, stderr, x, self.state.covariates, self.config.baseline.min_windows, self.state.order
+        )
 
     def _limits_from_state(self):
         """CUSUM h and EWMA L in use: widened for the baseline's error once fitted (the
@@ -347,12 +368,11 @@ class _SeriesRun:
             st.window_spacing_s = float(np.median(np.diff(times))) / 1e6
             self.hop_us = st.window_spacing_s * 1e6
         # a sample carried by a state from before the window starts were kept: taken as adjacent
-        steps = (window_steps(times, self.hop_us) if times.size == values.size
-                 else np.ones(values.size, dtype=np.int64))
+        steps = window_steps(times, self.hop_us) if times.size == values.size else np.ones(values.size, dtype=np.int64)
         expected, _ = model.predict(x, n=values.size)
         resid = values - expected
         with np.errstate(invalid="ignore", divide="ignore"):
-            z = resid / np.sqrt(model.resid_scale ** 2 + stderr * stderr)
+            z = resid / np.sqrt(model.resid_scale**2 + stderr * stderr)
         rho, pairs = robust_lag_one_correlation(z, steps[1:] == 1)
         phi = float(latent_ar1_coefficient(rho, model.resid_scale, model.scale)) if pairs >= MIN_PAIRS else 0.0
         errors, mean, var = ar1_prediction_errors(resid, stderr, steps, phi, model.resid_scale)
@@ -375,8 +395,9 @@ class _SeriesRun:
         if not len(times):
             return np.zeros(0)
         steps = window_steps(times, self.hop_us, st.predictor_window_start)
-        errors, mean, var = ar1_prediction_errors(resid, stderr, steps, st.dependence_phi,
-                                                  st.model.resid_scale, st.predictor_mean, st.predictor_var)
+        errors, mean, var = ar1_prediction_errors(
+            resid, stderr, steps, st.dependence_phi, st.model.resid_scale, st.predictor_mean, st.predictor_var
+        )
         st.predictor_mean, st.predictor_var = float(mean), float(var)
         st.predictor_window_start = int(times[-1])
         return errors / st.innovation_ratio
@@ -393,15 +414,20 @@ class _SeriesRun:
             point = provisional_refit_point(needed, count)
             if self.provisional is None or self.provisional[0] != point:
                 values, stderr, xs = self._sample_arrays()
-                fitted = fit_baseline_model(values[:point], stderr[:point],
-                                            None if xs is None else xs[:point], st.covariates,
-                                            self.config.baseline.min_windows, st.order)
+                fitted = fit_baseline_model(
+                    values[:point],
+                    stderr[:point],
+                    None if xs is None else xs[:point],
+                    st.covariates,
+                    self.config.baseline.min_windows,
+                    st.order,
+                )
                 self.provisional = (point, fitted)
                 self.provisional_fits += 1
             model = self.provisional[1]
             exp_arr, missing = model.predict(None if x is None else x[None, :], n=1)
             expected, resid_scale = float(exp_arr[0]), model.resid_scale
-            denominator = math.sqrt(resid_scale ** 2 + se ** 2) if np.isfinite(se) else float("nan")
+            denominator = math.sqrt(resid_scale**2 + se**2) if np.isfinite(se) else float("nan")
             if denominator > 0 and np.isfinite(v):
                 z = (v - expected) / denominator
             if missing[0]:
@@ -438,8 +464,7 @@ class _SeriesRun:
             if period_position(day, st.windows_seen, baseline) == "after":
                 self._finalize()
                 break
-            base_rows.append(self._baseline_window(t[i], v[i], se[i], codes[i],
-                                                   None if x is None else x[i], day))
+            base_rows.append(self._baseline_window(t[i], v[i], se[i], codes[i], None if x is None else x[i], day))
             i += 1
             if not baseline.by_dates and st.windows_seen >= baseline.windows:
                 self._finalize()
@@ -447,11 +472,25 @@ class _SeriesRun:
             expected, resid_scale, z, quality = (list(c) for c in zip(*base_rows))
             m = len(base_rows)
             nan = np.full(m, np.nan)
-            self.columns.add(window_start=t[:m], value=v[:m], stderr=se[:m],
-                             expected=np.asarray(expected, float), resid_scale=np.asarray(resid_scale, float),
-                             z=np.asarray(z, float), cusum_pos=nan, cusum_neg=nan, ewma=nan, ewma_limit=nan,
-                             state=[BASELINE] * m, onset=[None] * m, direction=np.zeros(m, np.int8),
-                             shift_size=nan, detector=[None] * m, first_alarm=[None] * m, quality=quality)
+            self.columns.add(
+                window_start=t[:m],
+                value=v[:m],
+                stderr=se[:m],
+                expected=np.asarray(expected, float),
+                resid_scale=np.asarray(resid_scale, float),
+                z=np.asarray(z, float),
+                cusum_pos=nan,
+                cusum_neg=nan,
+                ewma=nan,
+                ewma_limit=nan,
+                state=[BASELINE] * m,
+                onset=[None] * m,
+                direction=np.zeros(m, np.int8),
+                shift_size=nan,
+                detector=[None] * m,
+                first_alarm=[None] * m,
+                quality=quality,
+            )
         if i < n:
             self._fitted_windows(t[i:], v[i:], se[i:], codes[i:], None if x is None else x[i:])
         if st.phase == ACCUMULATING and baseline.by_dates and day >= day_number(baseline.end):
@@ -479,10 +518,25 @@ class _SeriesRun:
         if model.too_short:
             nan = np.full(n, np.nan)
             st.state = NORMAL
-            self.columns.add(window_start=t, value=v, stderr=se, expected=expected, resid_scale=resid_scale,
-                             z=z, cusum_pos=nan, cusum_neg=nan, ewma=nan, ewma_limit=nan,
-                             state=[NORMAL] * n, onset=[None] * n, direction=np.zeros(n, np.int8),
-                             shift_size=nan, detector=[None] * n, first_alarm=[None] * n, quality=quality)
+            self.columns.add(
+                window_start=t,
+                value=v,
+                stderr=se,
+                expected=expected,
+                resid_scale=resid_scale,
+                z=z,
+                cusum_pos=nan,
+                cusum_neg=nan,
+                ewma=nan,
+                ewma_limit=nan,
+                state=[NORMAL] * n,
+                onset=[None] * n,
+                direction=np.zeros(n, np.int8),
+                shift_size=nan,
+                detector=[None] * n,
+                first_alarm=[None] * n,
+                quality=quality,
+            )
             return
         errors = self._prediction_errors(resid[usable], se[usable], t[usable])
         paths = self._detector_paths(errors, resid[usable])
@@ -490,18 +544,28 @@ class _SeriesRun:
         # rows: used windows take their values, held windows carry the previous ones
         carry = np.concatenate(([0], np.cumsum(usable)))[1:]  # 0 = from the incoming state
         self.columns.add(
-            window_start=t, value=v, stderr=se, expected=expected, resid_scale=resid_scale, z=z,
-            cusum_pos=_carried(st.cusum_pos, paths.upper, carry), cusum_neg=_carried(st.cusum_neg, paths.lower, carry),
-            ewma=_carried(st.ewma, paths.ewma, carry), ewma_limit=_carried(st.ewma_limit, paths.limit, carry),
-            state=_carried_list(st.state, decisions.state, carry), onset=_carried_list(st.onset, decisions.onset, carry),
+            window_start=t,
+            value=v,
+            stderr=se,
+            expected=expected,
+            resid_scale=resid_scale,
+            z=z,
+            cusum_pos=_carried(st.cusum_pos, paths.upper, carry),
+            cusum_neg=_carried(st.cusum_neg, paths.lower, carry),
+            ewma=_carried(st.ewma, paths.ewma, carry),
+            ewma_limit=_carried(st.ewma_limit, paths.limit, carry),
+            state=_carried_list(st.state, decisions.state, carry),
+            onset=_carried_list(st.onset, decisions.onset, carry),
             direction=_carried(st.direction, decisions.direction, carry).astype(np.int8),
             shift_size=_carried(st.shift_size, decisions.size, carry),
             detector=_carried_list(st.detector, decisions.detector, carry),
-            first_alarm=_carried_list(st.first_alarm, decisions.first_alarm, carry), quality=quality)
+            first_alarm=_carried_list(st.first_alarm, decisions.first_alarm, carry),
+            quality=quality,
+        )
         if paths.upper.size:
             self._keep_last(paths, decisions)
 
-    def _detector_paths(self, z, resid) -> "_DetectorPaths":
+    def _detector_paths(self, z, resid) -> _DetectorPaths:
         """CUSUM and EWMA statistics of the standardised prediction errors ``z`` of the used
         windows, continued from the carried state."""
         st = self.state
@@ -509,13 +573,17 @@ class _SeriesRun:
         n_upper = cusum_run_lengths(upper, st.run_count_pos)
         n_lower = cusum_run_lengths(lower, st.run_count_neg)
         return _DetectorPaths(
-            upper=upper, lower=lower, n_upper=n_upper, n_lower=n_lower,
+            upper=upper,
+            lower=lower,
+            n_upper=n_upper,
+            n_lower=n_lower,
             sum_upper=cusum_run_sums(resid, n_upper, st.run_resid_pos),
             sum_lower=cusum_run_sums(resid, n_lower, st.run_resid_neg),
             ewma=ewma_path(z, self.smoothing, st.ewma),
-            limit=ewma_limits(st.ewma_count + 1 + np.arange(z.size), self.smoothing, self.width, exact=True))
+            limit=ewma_limits(st.ewma_count + 1 + np.arange(z.size), self.smoothing, self.width, exact=True),
+        )
 
-    def _decide_windows(self, paths: "_DetectorPaths", resid, times) -> "_Decisions":
+    def _decide_windows(self, paths: _DetectorPaths, resid, times) -> _Decisions:
         """State, onset, direction, size, detectors and first alarm of each used window.
 
         A window is shifted while a configured detector is beyond its limit; its direction is
@@ -543,8 +611,11 @@ class _SeriesRun:
                 out.add(NORMAL, None, 0, float("nan"), None, None)
                 continue
             direction = 1 if (up and not down) or (up and down and paths.upper[j] >= paths.lower[j]) else -1
-            lengths, sums, starts = ((paths.n_upper, paths.sum_upper, out.start_upper) if direction > 0
-                                     else (paths.n_lower, paths.sum_lower, out.start_lower))
+            lengths, sums, starts = (
+                (paths.n_upper, paths.sum_upper, out.start_upper)
+                if direction > 0
+                else (paths.n_lower, paths.sum_lower, out.start_lower)
+            )
             if lengths[j] > 0:
                 onset, size = starts[j], float(sums[j] / lengths[j])
             else:
@@ -558,7 +629,7 @@ class _SeriesRun:
             out.add(SHIFTED, onset, direction, size, "+".join(names), first_alarm)
         return out
 
-    def _keep_last(self, paths: "_DetectorPaths", decisions: "_Decisions") -> None:
+    def _keep_last(self, paths: _DetectorPaths, decisions: _Decisions) -> None:
         """Carry the statistics and decisions of the last used window in the state."""
         st = self.state
         last = paths.upper.size - 1
@@ -582,8 +653,18 @@ class _SeriesRun:
             "subject": pa.array([subject] * n, pa.string()),
             "indicator": pa.array([indicator] * n, pa.string()),
         }
-        for name in ("value", "stderr", "expected", "resid_scale", "z", "cusum_pos", "cusum_neg",
-                     "ewma", "ewma_limit", "shift_size"):
+        for name in (
+            "value",
+            "stderr",
+            "expected",
+            "resid_scale",
+            "z",
+            "cusum_pos",
+            "cusum_neg",
+            "ewma",
+            "ewma_limit",
+            "shift_size",
+        ):
             arrays[name] = pa.array(c.joined(name, np.float64), pa.float64())
         arrays["state"] = pa.array(c.joined("state", object), pa.string())
         arrays["onset"] = _timestamps(c.joined("onset", object))
@@ -626,9 +707,20 @@ def _checked_series(times_us, values, stderr, quality):
     return t, v, se, codes
 
 
-def detect_shifts(times_us, values, stderr, quality, covariates, config, state: Optional[ShiftState] = None,
-                  *, subject: str = "", indicator: str = "", unit: str = "",
-                  order: int = 1) -> Tuple[pa.Table, List[ShiftState]]:
+def detect_shifts(
+    times_us,
+    values,
+    stderr,
+    quality,
+    covariates,
+    config,
+    state: Optional[ShiftState] = None,
+    *,
+    subject: str = "",
+    indicator: str = "",
+    unit: str = "",
+    order: int = 1,
+) -> Tuple[pa.Table, List[ShiftState]]:
     """Baseline, covariate compensation, error-aware z and CUSUM/EWMA detection of one series.
 
     Parameters
@@ -734,8 +826,9 @@ def row_role(row: IndicatorRow, config) -> Optional[str]:
     return None
 
 
-def covariates_for_window(window_start_us: int, rows: Iterable[IndicatorRow],
-                          asset: str = "") -> Tuple[Dict[str, float], List[Reject]]:
+def covariates_for_window(
+    window_start_us: int, rows: Iterable[IndicatorRow], asset: str = ""
+) -> Tuple[Dict[str, float], List[Reject]]:
     """Covariate means of one window from its ``covariate_mean`` indicator rows.
 
     Returns
@@ -755,14 +848,27 @@ def covariates_for_window(window_start_us: int, rows: Iterable[IndicatorRow],
             means[name] = found[0]
             continue
         means[name] = float("nan")
-        rejects.append(Reject(STAGE, iso_utc(window_start_us), name, "duplicate_covariate_rows",
-                              f"{len(found)} covariate_mean rows: {sorted(map(repr, found))}",
-                              asset=asset, window_start_us=int(window_start_us)))
+        rejects.append(
+            Reject(
+                STAGE,
+                iso_utc(window_start_us),
+                name,
+                "duplicate_covariate_rows",
+                f"{len(found)} covariate_mean rows: {sorted(map(repr, found))}",
+                asset=asset,
+                window_start_us=int(window_start_us),
+            )
+        )
     return means, rejects
 
 
-def detect_shifts_for_rows(rows: Iterable[IndicatorRow], covariates_by_window: Mapping[int, Mapping[str, float]],
-                           config, resume_states: Iterable[Any] = (), order: int = 1) -> SeriesOutcome:
+def detect_shifts_for_rows(
+    rows: Iterable[IndicatorRow],
+    covariates_by_window: Mapping[int, Mapping[str, float]],
+    config,
+    resume_states: Iterable[Any] = (),
+    order: int = 1,
+) -> SeriesOutcome:
     """:func:`detect_shifts` on the indicator rows of one (subject, indicator) series.
 
     Parameters
@@ -795,39 +901,83 @@ def detect_shifts_for_rows(rows: Iterable[IndicatorRow], covariates_by_window: M
     for row in rows:
         if unique and int(row.window_start_us) == int(unique[-1].window_start_us):
             kept = unique[-1]
-            rejects.append(Reject(STAGE, iso_utc(int(row.window_start_us)), subject, "duplicate_indicator_rows",
-                                  f"{indicator}: value {row.value!r} stderr {row.stderr!r} not used; "
-                                  f"kept value {kept.value!r} stderr {kept.stderr!r}",
-                                  asset=asset, window_start_us=int(row.window_start_us)))
+            rejects.append(
+                Reject(
+                    STAGE,
+                    iso_utc(int(row.window_start_us)),
+                    subject,
+                    "duplicate_indicator_rows",
+                    f"{indicator}: value {row.value!r} stderr {row.stderr!r} not used; "
+                    f"kept value {kept.value!r} stderr {kept.stderr!r}",
+                    asset=asset,
+                    window_start_us=int(row.window_start_us),
+                )
+            )
             continue
         unique.append(row)
     state, blocking = select_resume_state(resume_states, subject, indicator, int(unique[0].window_start_us))
     if blocking is not None:
         stale = [r for r in unique if int(r.window_start_us) <= blocking.window_start_us]
         for r in stale:
-            rejects.append(Reject(STAGE, iso_utc(int(r.window_start_us)), subject, "window_before_state",
-                                  f"{indicator}: the earliest resumable state is at {iso_utc(blocking.window_start_us)}",
-                                  asset=asset, window_start_us=int(r.window_start_us)))
+            rejects.append(
+                Reject(
+                    STAGE,
+                    iso_utc(int(r.window_start_us)),
+                    subject,
+                    "window_before_state",
+                    f"{indicator}: the earliest resumable state is at {iso_utc(blocking.window_start_us)}",
+                    asset=asset,
+                    window_start_us=int(r.window_start_us),
+                )
+            )
         unique = [r for r in unique if int(r.window_start_us) > blocking.window_start_us]
         state = blocking
         if not unique:
             return _empty_outcome(rejects)
     names = tuple(config.compensated_covariates())
     times = np.array([int(r.window_start_us) for r in unique], dtype=np.int64)
-    covariates = {name: np.array([float(covariates_by_window.get(int(ti), {}).get(name, float("nan")))
-                                  for ti in times]) for name in names}
+    covariates = {
+        name: np.array([float(covariates_by_window.get(int(ti), {}).get(name, float("nan"))) for ti in times])
+        for name in names
+    }
     try:
         table, day_states = detect_shifts(
-            times, [float(r.value) for r in unique], [float(r.stderr) for r in unique],
-            [r.quality for r in unique], covariates, config, state,
-            subject=subject, indicator=indicator, unit=unique[0].unit, order=order)
+            times,
+            [float(r.value) for r in unique],
+            [float(r.stderr) for r in unique],
+            [r.quality for r in unique],
+            covariates,
+            config,
+            state,
+            subject=subject,
+            indicator=indicator,
+            unit=unique[0].unit,
+            order=order,
+        )
     except StateMismatchError as err:
-        rejects.append(Reject(STAGE, "state", subject, "state_mismatch", f"{indicator}: {err}", asset=asset,
-                              date=day_date(int(local_days(times[:1], config.timezone)[0])).isoformat()))
+        rejects.append(
+            Reject(
+                STAGE,
+                "state",
+                subject,
+                "state_mismatch",
+                f"{indicator}: {err}",
+                asset=asset,
+                date=day_date(int(local_days(times[:1], config.timezone)[0])).isoformat(),
+            )
+        )
         return _empty_outcome(rejects)
     except Exception as err:  # noqa: BLE001 - routed to the rejects table with its text
-        rejects.append(Reject(STAGE, iso_utc(int(times[0])), subject, "shift_detection_failed",
-                              f"{indicator}: {type(err).__name__}: {err}", asset=asset,
-                              window_start_us=int(times[0])))
+        rejects.append(
+            Reject(
+                STAGE,
+                iso_utc(int(times[0])),
+                subject,
+                "shift_detection_failed",
+                f"{indicator}: {type(err).__name__}: {err}",
+                asset=asset,
+                window_start_us=int(times[0]),
+            )
+        )
         return _empty_outcome(rejects)
     return SeriesOutcome(table, states_table(day_states), rejects)

@@ -12,6 +12,7 @@ and its rebuild from an indicators table.
   detection depends only on the indicator rows and the configuration, so the replayed state
   equals the state a backfill would have written.
 """
+
 from __future__ import annotations
 
 import copy
@@ -61,8 +62,12 @@ def settings_digest(config, order: int = 1) -> str:
     """
     b, s = config.baseline, config.shifts
     plain = {
-        "baseline": [b.start.isoformat() if b.start else None, b.end.isoformat() if b.end else None,
-                     b.windows, b.min_windows],
+        "baseline": [
+            b.start.isoformat() if b.start else None,
+            b.end.isoformat() if b.end else None,
+            b.windows,
+            b.min_windows,
+        ],
         "shifts": [s.detector, s.cusum_k, s.cusum_h, s.ewma_lambda, s.ewma_L],
         "covariates": list(config.compensated_covariates()),
         "timezone": config.timezone,
@@ -189,7 +194,7 @@ class ShiftState:
         }
 
     @classmethod
-    def from_row(cls, row: Mapping[str, Any]) -> "ShiftState":
+    def from_row(cls, row: Mapping[str, Any]) -> ShiftState:
         """Inverse of :meth:`to_row` (also accepts integer microseconds for timestamps)."""
 
         def num(name, default=float("nan")):
@@ -201,38 +206,61 @@ class ShiftState:
         if row.get("model_n") is not None:
             quality = row.get("model_quality") or "ok"
             model = BaselineModel(
-                covariates=covariates, order=int(row["model_order"]), location=num("model_location"),
+                covariates=covariates,
+                order=int(row["model_order"]),
+                location=num("model_location"),
                 coefficients=tuple(float(c) for c in row["model_coefficients"] or ()),
                 center=tuple(float(c) for c in row["model_covariate_center"] or ()),
-                scale=num("model_scale"), stderr_sq=num("model_stderr_sq"),
-                resid_scale=num("resid_scale"), r_squared=num("r_squared"), n=int(row["model_n"]),
-                quality=() if quality == "ok" else tuple(quality.split(";")))
+                scale=num("model_scale"),
+                stderr_sq=num("model_stderr_sq"),
+                resid_scale=num("resid_scale"),
+                r_squared=num("r_squared"),
+                n=int(row["model_n"]),
+                quality=() if quality == "ok" else tuple(quality.split(";")),
+            )
         local_date = row.get("local_date")
         if isinstance(local_date, _dt.date):
             local_date = day_number(local_date)
         return cls(
-            subject=row["subject"], indicator=row["indicator"], settings=row["settings"],
-            covariates=covariates, order=int(row.get("model_order") or 1),
+            subject=row["subject"],
+            indicator=row["indicator"],
+            settings=row["settings"],
+            covariates=covariates,
+            order=int(row.get("model_order") or 1),
             window_start_us=datetime_to_us(row.get("window_start")),
             local_day=None if local_date is None else int(local_date),
-            phase=row["phase"], windows_seen=int(row["windows_seen"]),
+            phase=row["phase"],
+            windows_seen=int(row["windows_seen"]),
             sample_value=[float(v) for v in row.get("sample_value") or ()],
             sample_stderr=[float(v) for v in row.get("sample_stderr") or ()],
             sample_covariates=[float(v) for v in row.get("sample_covariates") or ()],
             model=model,
-            cusum_pos=num("cusum_pos", 0.0), cusum_neg=num("cusum_neg", 0.0),
-            run_start_pos=datetime_to_us(row.get("run_start_pos")), run_start_neg=datetime_to_us(row.get("run_start_neg")),
-            run_count_pos=int(row.get("run_count_pos") or 0), run_count_neg=int(row.get("run_count_neg") or 0),
-            run_resid_pos=num("run_resid_pos", 0.0), run_resid_neg=num("run_resid_neg", 0.0),
-            ewma=num("ewma", 0.0), ewma_count=int(row.get("ewma_count") or 0),
-            ewma_limit=num("ewma_limit"), state=row["state"], onset=datetime_to_us(row.get("onset")),
-            direction=int(row.get("direction") or 0), shift_size=num("shift_size"),
-            detector=row.get("detector"), first_alarm=datetime_to_us(row.get("first_alarm")),
+            cusum_pos=num("cusum_pos", 0.0),
+            cusum_neg=num("cusum_neg", 0.0),
+            run_start_pos=datetime_to_us(row.get("run_start_pos")),
+            run_start_neg=datetime_to_us(row.get("run_start_neg")),
+            run_count_pos=int(row.get("run_count_pos") or 0),
+            run_count_neg=int(row.get("run_count_neg") or 0),
+            run_resid_pos=num("run_resid_pos", 0.0),
+            run_resid_neg=num("run_resid_neg", 0.0),
+            ewma=num("ewma", 0.0),
+            ewma_count=int(row.get("ewma_count") or 0),
+            ewma_limit=num("ewma_limit"),
+            state=row["state"],
+            onset=datetime_to_us(row.get("onset")),
+            direction=int(row.get("direction") or 0),
+            shift_size=num("shift_size"),
+            detector=row.get("detector"),
+            first_alarm=datetime_to_us(row.get("first_alarm")),
             sample_window_start=[datetime_to_us(v) for v in row.get("sample_window_start") or ()],
-            dependence_phi=num("dependence_phi", 0.0), dependence_pairs=int(row.get("dependence_pairs") or 0),
-            innovation_scale=num("innovation_scale"), innovation_ratio=num("innovation_ratio", 1.0),
-            cusum_h_used=row.get("cusum_h_used"), ewma_L_used=row.get("ewma_L_used"),
-            predictor_mean=num("predictor_mean", 0.0), predictor_var=row.get("predictor_var"),
+            dependence_phi=num("dependence_phi", 0.0),
+            dependence_pairs=int(row.get("dependence_pairs") or 0),
+            innovation_scale=num("innovation_scale"),
+            innovation_ratio=num("innovation_ratio", 1.0),
+            cusum_h_used=row.get("cusum_h_used"),
+            ewma_L_used=row.get("ewma_L_used"),
+            predictor_mean=num("predictor_mean", 0.0),
+            predictor_var=row.get("predictor_var"),
             predictor_window_start=datetime_to_us(row.get("predictor_window_start")),
             window_spacing_s=row.get("window_spacing_s"),
         )
@@ -248,8 +276,9 @@ def states_from_table(table: pa.Table) -> List[ShiftState]:
     return [ShiftState.from_row(row) for row in table.to_pylist()]
 
 
-def select_resume_state(states: Iterable[Any], subject: str, indicator: str,
-                        first_window_us: int) -> Tuple[Optional[ShiftState], Optional[ShiftState]]:
+def select_resume_state(
+    states: Iterable[Any], subject: str, indicator: str, first_window_us: int
+) -> Tuple[Optional[ShiftState], Optional[ShiftState]]:
     """The state to resume a series from: the latest one before the run's first window.
 
     Parameters
@@ -284,8 +313,15 @@ def select_resume_state(states: Iterable[Any], subject: str, indicator: str,
     return None, None
 
 
-def resume_or_start(state: Optional[ShiftState], digest: str, covariates: Tuple[str, ...], order: int,
-                    subject: str, indicator: str, first_window_us: Optional[int]) -> ShiftState:
+def resume_or_start(
+    state: Optional[ShiftState],
+    digest: str,
+    covariates: Tuple[str, ...],
+    order: int,
+    subject: str,
+    indicator: str,
+    first_window_us: Optional[int],
+) -> ShiftState:
     """The state a run of one series starts from: a fresh one, or a checked copy of ``state``.
 
     Parameters
@@ -317,14 +353,14 @@ def resume_or_start(state: Optional[ShiftState], digest: str, covariates: Tuple[
     if state is None:
         return ShiftState(subject=subject, indicator=indicator, settings=digest, covariates=covariates, order=order)
     if state.settings != digest:
-        raise StateMismatchError(
-            f"state settings {state.settings} differ from this configuration's {digest}")
+        raise StateMismatchError(f"state settings {state.settings} differ from this configuration's {digest}")
     if (subject and subject != state.subject) or (indicator and indicator != state.indicator):
         raise StateMismatchError(f"state is for {state.subject}/{state.indicator}, not {subject}/{indicator}")
     if first_window_us is not None and state.window_start_us is not None and first_window_us <= state.window_start_us:
         raise StateMismatchError(
             f"first window {iso_utc(int(first_window_us))} is not after the state's last window "
-            f"{iso_utc(state.window_start_us)}")
+            f"{iso_utc(state.window_start_us)}"
+        )
     return copy.deepcopy(state)
 
 
@@ -337,11 +373,21 @@ def indicator_rows_from_table(table: pa.Table) -> List[IndicatorRow]:
     if table.num_rows == 0:
         return []
     starts = table.column("window_start").cast(pa.int64()).to_pylist()
-    columns = [table.column(name).to_pylist() for name in ("subject", "indicator", "value", "stderr", "unit",
-                                                            "quality")]
-    return [IndicatorRow(int(s), subj, ind, float("nan") if v is None else float(v),
-                         float("nan") if e is None else float(e), u or "", q or "ok")
-            for s, subj, ind, v, e, u, q in zip(starts, *columns)]
+    columns = [
+        table.column(name).to_pylist() for name in ("subject", "indicator", "value", "stderr", "unit", "quality")
+    ]
+    return [
+        IndicatorRow(
+            int(s),
+            subj,
+            ind,
+            float("nan") if v is None else float(v),
+            float("nan") if e is None else float(e),
+            u or "",
+            q or "ok",
+        )
+        for s, subj, ind, v, e, u, q in zip(starts, *columns)
+    ]
 
 
 def replay_states(indicators: pa.Table, config: AssetConfig) -> Tuple[pa.Table, List[Reject]]:

@@ -19,6 +19,7 @@ All file access goes through a store (:class:`corrtransforms.stages.write.LocalF
 scheme), so this module stays pure pyarrow; :mod:`corrtransforms.beam.output_tables` binds it to
 Beam's FileSystems.
 """
+
 from __future__ import annotations
 
 import datetime as _dt
@@ -56,9 +57,16 @@ def partition_files(store, output_dir: str, table: str, asset: str) -> List[tupl
     return sorted(found)
 
 
-def read_partitions(store, output_dir: str, table: str, asset: str, schema: pa.Schema,
-                    before: Optional[_dt.date] = None, columns: Optional[Sequence[str]] = None,
-                    keep: Optional[Callable[[pa.Table], pa.Table]] = None) -> pa.Table:
+def read_partitions(
+    store,
+    output_dir: str,
+    table: str,
+    asset: str,
+    schema: pa.Schema,
+    before: Optional[_dt.date] = None,
+    columns: Optional[Sequence[str]] = None,
+    keep: Optional[Callable[[pa.Table], pa.Table]] = None,
+) -> pa.Table:
     """Concatenate the table's partitions of ``asset`` (only dates before ``before`` if given).
 
     ``columns`` reads only those columns; ``keep`` reduces the rows as each file is added (it is
@@ -75,12 +83,21 @@ def _selected(schema: pa.Schema, columns: Optional[Sequence[str]]) -> pa.Schema:
 
 
 def _partitions_before(store, output_dir: str, table: str, asset: str, before: Optional[_dt.date]) -> List[tuple]:
-    return [(date, path) for date, path in partition_files(store, output_dir, table, asset)
-            if before is None or _dt.date.fromisoformat(date) < before]
+    return [
+        (date, path)
+        for date, path in partition_files(store, output_dir, table, asset)
+        if before is None or _dt.date.fromisoformat(date) < before
+    ]
 
 
-def _fold_files(store, paths: Sequence[str], schema: pa.Schema, columns: Optional[Sequence[str]],
-                keep: Optional[Callable[[pa.Table], pa.Table]], pieces: List[pa.Table]) -> pa.Table:
+def _fold_files(
+    store,
+    paths: Sequence[str],
+    schema: pa.Schema,
+    columns: Optional[Sequence[str]],
+    keep: Optional[Callable[[pa.Table], pa.Table]],
+    pieces: List[pa.Table],
+) -> pa.Table:
     """Read ``paths`` in order onto ``pieces``, reducing with ``keep`` after each file if given."""
     pieces = list(pieces)
     for path in paths:
@@ -131,20 +148,29 @@ def _load_summary(store, path: str, schema: pa.Schema):
         return None
 
 
-def _write_summary(store, folder: str, path: str, table: pa.Table, covered: Sequence[str],
-                   provenance: Mapping[str, str]) -> None:
+def _write_summary(
+    store, folder: str, path: str, table: pa.Table, covered: Sequence[str], provenance: Mapping[str, str]
+) -> None:
     store.mkdirs(folder)
     metadata = {k.encode(): v.encode() for k, v in provenance.items()}
     metadata.update({_FORMAT_KEY: _SUMMARY_FORMAT.encode(), _COVERED_KEY: json.dumps(sorted(covered)).encode()})
-    table_writer.write_parquet_in_place(store, path, table.replace_schema_metadata(metadata),
-                                        temporary=f"{path}.{uuid.uuid4().hex}.tmp")
+    table_writer.write_parquet_in_place(
+        store, path, table.replace_schema_metadata(metadata), temporary=f"{path}.{uuid.uuid4().hex}.tmp"
+    )
 
 
-def summarize_partitions(store, output_dir: str, table: str, asset: str, schema: pa.Schema,
-                         keep: Callable[[pa.Table], pa.Table], name: str,
-                         before: Optional[_dt.date] = None,
-                         columns: Optional[Sequence[str]] = None,
-                         provenance: Optional[Mapping[str, str]] = None) -> pa.Table:
+def summarize_partitions(
+    store,
+    output_dir: str,
+    table: str,
+    asset: str,
+    schema: pa.Schema,
+    keep: Callable[[pa.Table], pa.Table],
+    name: str,
+    before: Optional[_dt.date] = None,
+    columns: Optional[Sequence[str]] = None,
+    provenance: Optional[Mapping[str, str]] = None,
+) -> pa.Table:
     """:func:`read_partitions` with ``keep``, opening only the files its last summary did not cover.
 
     Parameters
@@ -221,8 +247,20 @@ LATEST_STATE = "latest_state"
 EPISODE_EVIDENCE = "episode_evidence"
 
 #: the shifts columns the episodes summary is built from
-EPISODE_COLUMNS = ("window_start", "subject", "indicator", "first_alarm", "onset", "state", "direction",
-                   "expected", "shift_size", "z", "detector", "unit")
+EPISODE_COLUMNS = (
+    "window_start",
+    "subject",
+    "indicator",
+    "first_alarm",
+    "onset",
+    "state",
+    "direction",
+    "expected",
+    "shift_size",
+    "z",
+    "detector",
+    "unit",
+)
 
 
 def episode_evidence(shifts: pa.Table) -> pa.Table:
@@ -242,15 +280,25 @@ def write_episodes(store, output_dir: str, config: AssetConfig, run_id: str) -> 
     Returns the number of episodes.
     """
     metadata = table_writer.provenance_metadata(config, run_id)
-    evidence = summarize_partitions(store, output_dir, "shifts", config.name, tables.SHIFTS, episode_evidence,
-                                    EPISODE_EVIDENCE, columns=EPISODE_COLUMNS, provenance=metadata)
+    evidence = summarize_partitions(
+        store,
+        output_dir,
+        "shifts",
+        config.name,
+        tables.SHIFTS,
+        episode_evidence,
+        EPISODE_EVIDENCE,
+        columns=EPISODE_COLUMNS,
+        provenance=metadata,
+    )
     episodes = shift_episodes(evidence)
     folder = store.join(output_dir, "episodes", f"asset={config.name}")
     store.mkdirs(folder)
     final = store.join(folder, "episodes.parquet")
     temporary = store.join(folder, f"_episodes-{run_id}.tmp")
-    episodes = episodes.replace_schema_metadata({**(episodes.schema.metadata or {}),
-                                                 **{k.encode(): v.encode() for k, v in metadata.items()}})
+    episodes = episodes.replace_schema_metadata(
+        {**(episodes.schema.metadata or {}), **{k.encode(): v.encode() for k, v in metadata.items()}}
+    )
     table_writer.write_parquet_in_place(store, final, episodes, temporary)
     return episodes.num_rows
 
@@ -332,8 +380,16 @@ def _collect_episodes(columns: Mapping[str, Any], keys: Sequence[str]):
         key = series + (first_alarm[i],)
         e = episodes.get(key)
         if e is None:
-            e = episodes[key] = {"last": start[i], "first": start[i], "n": 0, "peak": float("nan"),
-                                 "detectors": set(), "unit": unit[i], "i": i, "onset": None}
+            e = episodes[key] = {
+                "last": start[i],
+                "first": start[i],
+                "n": 0,
+                "peak": float("nan"),
+                "detectors": set(),
+                "unit": unit[i],
+                "i": i,
+                "onset": None,
+            }
         e["n"] += 1
         if onset[i] is not None and (e["onset"] is None or onset[i] < e["onset"]):
             e["onset"] = onset[i]
@@ -346,8 +402,13 @@ def _collect_episodes(columns: Mapping[str, Any], keys: Sequence[str]):
     return series_last, episodes
 
 
-def _episodes_table(schema: pa.Schema, keys: Sequence[str], columns: Mapping[str, Any],
-                    series_last: Mapping[tuple, int], episodes: Mapping[tuple, Dict[str, Any]]) -> pa.Table:
+def _episodes_table(
+    schema: pa.Schema,
+    keys: Sequence[str],
+    columns: Mapping[str, Any],
+    series_last: Mapping[tuple, int],
+    episodes: Mapping[tuple, Dict[str, Any]],
+) -> pa.Table:
     """One row per episode, sorted by series and first alarm."""
     out: Dict[str, List[Any]] = {name: [] for name in schema.names}
     for key in sorted(episodes, key=lambda k: tuple("" if v is None else v for v in k)):

@@ -17,6 +17,7 @@ Two steps, so a failed run leaves no half file and a rerun replaces exactly its 
 File access goes through a small store interface (:class:`LocalFiles` here; the Beam layer
 supplies one over ``apache_beam.io.filesystems.FileSystems``), so this module stays pure pyarrow.
 """
+
 from __future__ import annotations
 
 import glob
@@ -34,13 +35,18 @@ import pyarrow.parquet as pq
 
 import corrtransforms
 from corrtransforms import tables
-from corrtransforms.timeutil import compact_utc, local_date
 from corrtransforms.config import AssetConfig
 from corrtransforms.rejects import Reject
+from corrtransforms.timeutil import compact_utc, local_date
 
 TEMPORARY = "_temporary"
-SCHEMAS = {"correlations": tables.CORRELATIONS, "indicators": tables.INDICATORS, "rejects": tables.REJECTS,
-           "shifts": tables.SHIFTS, "state": tables.STATE}
+SCHEMAS = {
+    "correlations": tables.CORRELATIONS,
+    "indicators": tables.INDICATORS,
+    "rejects": tables.REJECTS,
+    "shifts": tables.SHIFTS,
+    "state": tables.STATE,
+}
 #: rows of one Parquet row group in output files (common practice: tens of thousands of rows)
 ROW_GROUP_ROWS = 50_000
 META_PREFIX = "corrtransforms."
@@ -77,8 +83,7 @@ class LocalFiles:
     def list_files(self, folder: str) -> List[str]:
         if not os.path.isdir(folder):
             return []
-        return sorted(os.path.join(folder, n) for n in os.listdir(folder)
-                      if os.path.isfile(os.path.join(folder, n)))
+        return sorted(os.path.join(folder, n) for n in os.listdir(folder) if os.path.isfile(os.path.join(folder, n)))
 
     def match(self, pattern: str) -> List[str]:
         return sorted(p for p in glob.glob(pattern) if os.path.isfile(p))
@@ -134,8 +139,10 @@ def reject_date(reject: Reject, timezone: str) -> str:
 
 def rejects_table(rejects: Sequence[Reject]) -> pa.Table:
     """Rejects as a table of schema :data:`corrtransforms.tables.REJECTS`."""
-    columns = {name: [getattr(r, name) for r in rejects] for name in ("stage", "source", "subject", "reason",
-                                                                      "detail", "action")}
+    columns = {
+        name: [getattr(r, name) for r in rejects]
+        for name in ("stage", "source", "subject", "reason", "detail", "action")
+    }
     columns["window_start"] = [r.window_start_us for r in rejects]
     arrays = []
     for field in tables.REJECTS:
@@ -223,8 +230,11 @@ def partition_folder(store, output_dir: str, table_name: str, asset: str, date: 
 
 def sort_columns(table: pa.Table) -> List[str]:
     """The columns rows are sorted by when written: every column that is not a list or struct."""
-    return [f.name for f in table.schema
-            if not (pa.types.is_list(f.type) or pa.types.is_large_list(f.type) or pa.types.is_struct(f.type))]
+    return [
+        f.name
+        for f in table.schema
+        if not (pa.types.is_list(f.type) or pa.types.is_large_list(f.type) or pa.types.is_struct(f.type))
+    ]
 
 
 def part_file_name(table: pa.Table) -> str:
@@ -245,8 +255,17 @@ def part_file_name(table: pa.Table) -> str:
     return f"part-{first}-{digest}.parquet"
 
 
-def write_part(store, output_dir: str, table_name: str, asset: str, date: str, table: pa.Table,
-               run_id: str, metadata: Mapping[str, str], unique: str) -> PartFile:
+def write_part(
+    store,
+    output_dir: str,
+    table_name: str,
+    asset: str,
+    date: str,
+    table: pa.Table,
+    run_id: str,
+    metadata: Mapping[str, str],
+    unique: str,
+) -> PartFile:
     """Write ``table`` (rows of one partition) to the run's temporary area.
 
     Parameters
@@ -272,20 +291,27 @@ def write_part(store, output_dir: str, table_name: str, asset: str, date: str, t
     """
     table = table.sort_by([(c, "ascending") for c in sort_columns(table)])
     name = part_file_name(table)
-    temp = store.join(output_dir, TEMPORARY, run_id, table_name, f"asset={asset}", f"date={date}",
-                      f"{name}.{unique}")
-    merged = dict((table.schema.metadata or {}))
+    temp = store.join(output_dir, TEMPORARY, run_id, table_name, f"asset={asset}", f"date={date}", f"{name}.{unique}")
+    merged = dict(table.schema.metadata or {})
     merged.update({k.encode(): v.encode() for k, v in metadata.items()})
     table = table.replace_schema_metadata(merged)
     with store.create(temp) as handle:
-        pq.write_table(table, handle, compression="zstd", use_compliant_nested_type=True,
-                       coerce_timestamps="us", allow_truncated_timestamps=False,
-                       row_group_size=ROW_GROUP_ROWS, store_schema=True)
+        pq.write_table(
+            table,
+            handle,
+            compression="zstd",
+            use_compliant_nested_type=True,
+            coerce_timestamps="us",
+            allow_truncated_timestamps=False,
+            row_group_size=ROW_GROUP_ROWS,
+            store_schema=True,
+        )
     return PartFile(table_name, asset, date, temp, name, table.num_rows)
 
 
-def commit_partition(store, output_dir: str, table_name: str, asset: str, date: str,
-                     parts: Iterable[PartFile]) -> CommitResult:
+def commit_partition(
+    store, output_dir: str, table_name: str, asset: str, date: str, parts: Iterable[PartFile]
+) -> CommitResult:
     """Move a partition's part files into place and delete the partition's other files.
 
     Notes
@@ -314,8 +340,7 @@ def commit_partition(store, output_dir: str, table_name: str, asset: str, date: 
         store.delete(stale)
     if not written and hasattr(store, "remove_empty_folder"):
         store.remove_empty_folder(folder)
-    return CommitResult(table_name, asset, date, tuple(sorted(written)), sum(written.values()),
-                        tuple(sorted(stale)))
+    return CommitResult(table_name, asset, date, tuple(sorted(written)), sum(written.values()), tuple(sorted(stale)))
 
 
 def move_into_place(store, temporary: str, destination: str) -> None:
@@ -333,7 +358,7 @@ def move_into_place(store, temporary: str, destination: str) -> None:
     """
     store.rename(temporary, destination)
     if not store.exists(destination):
-        raise IOError(f"commit of {destination} failed: the file is not there after the rename")
+        raise OSError(f"commit of {destination} failed: the file is not there after the rename")
 
 
 def write_parquet_in_place(store, path: str, table: pa.Table, temporary: str) -> None:
@@ -351,8 +376,14 @@ def remove_temporary(store, output_dir: str, run_id: str) -> None:
         store.remove_empty_folder(store.join(output_dir, TEMPORARY))
 
 
-def write_tables(output_dir: str, config: AssetConfig, run_id: str, rows: Mapping[str, Iterable[Any]],
-                 days: Optional[Iterable[str]] = None, store=None) -> List[CommitResult]:
+def write_tables(
+    output_dir: str,
+    config: AssetConfig,
+    run_id: str,
+    rows: Mapping[str, Iterable[Any]],
+    days: Optional[Iterable[str]] = None,
+    store=None,
+) -> List[CommitResult]:
     """Write and commit whole tables in one process (notebooks, tests, small jobs).
 
     Parameters
@@ -382,13 +413,15 @@ def write_tables(output_dir: str, config: AssetConfig, run_id: str, rows: Mappin
                 pieces.setdefault(date, []).append(table)
         for date, tabs in pieces.items():
             owned.add(date)
-            part = write_part(store, output_dir, table_name, config.name, date, pa.concat_tables(tabs),
-                              run_id, metadata, unique="0")
+            part = write_part(
+                store, output_dir, table_name, config.name, date, pa.concat_tables(tabs), run_id, metadata, unique="0"
+            )
             parts.setdefault((table_name, date), []).append(part)
     results = []
     for table_name in rows:
         for date in sorted(owned):
-            results.append(commit_partition(store, output_dir, table_name, config.name, date,
-                                            parts.get((table_name, date), [])))
+            results.append(
+                commit_partition(store, output_dir, table_name, config.name, date, parts.get((table_name, date), []))
+            )
     remove_temporary(store, output_dir, run_id)
     return results
