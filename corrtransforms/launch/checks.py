@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import datetime as _dt
 import sys
-from typing import Dict, List, Optional
+from typing import Any, Dict, List, Optional
 
 from corrtransforms import tables
 from corrtransforms.beam.filesystems import list_archive, open_file
@@ -78,7 +78,7 @@ def reject_examples(
     """The most frequent whole-window reject reasons of the days, each with a count and one
     example, and the sorted days those windows belong to."""
     rejects = read_partitions(output, "rejects", config.name, tables.REJECTS)
-    found: Dict[str, Dict[str, object]] = {}
+    found: Dict[str, Dict[str, Any]] = {}
     days = set()
     for row in rejects.to_pylist():
         if row["subject"] != "*" or row["action"] != "rejected" or row["window_start"] is None:

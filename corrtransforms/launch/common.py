@@ -245,7 +245,7 @@ def _show_progress() -> None:
     if not any(getattr(h, "_corrtransforms", False) for h in log.handlers):
         handler = logging.StreamHandler(sys.stderr)
         handler.setFormatter(logging.Formatter("%(asctime)s %(message)s", "%H:%M:%S"))
-        handler._corrtransforms = True
+        handler._corrtransforms = True  # type: ignore[attr-defined]  # marks the package's own handler
         log.addHandler(handler)
     log.setLevel(logging.INFO)
     log.propagate = False

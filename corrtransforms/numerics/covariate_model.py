@@ -174,7 +174,7 @@ class BaselineModel:
         """
         p = len(self.covariates)
         if p == 0 or covariates is None:
-            count = n if covariates is None else len(covariates)
+            count = int(n) if covariates is None else len(covariates)  # type: ignore[arg-type]
             return np.full(count, self.location), np.zeros(count, dtype=bool)
         x = np.asarray(covariates, dtype=float).reshape(-1, p)
         missing_cell = ~np.isfinite(x)

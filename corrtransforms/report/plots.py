@@ -288,7 +288,9 @@ def _finish(
     monitored = shifts is not None and shifts.num_rows > 0
     finite = np.isfinite(v["value"])
     ax.set_title(title, loc="left", fontsize=12, color=INK)
-    shifted_count = int((shifts.column("state").to_numpy(zero_copy_only=False) == "shifted").sum()) if monitored else 0
+    shifted_count = 0
+    if shifts is not None and monitored:
+        shifted_count = int((shifts.column("state").to_numpy(zero_copy_only=False) == "shifted").sum())
     ax.set_title(
         f"{int(finite.sum())} windows" + (f", {shifted_count} shifted" if monitored else ", not monitored"),
         loc="right",
@@ -339,7 +341,7 @@ def write_plots(output: OutputTables, report_dir: str, store) -> List[Dict]:
             pc.equal(indicators.column("indicator"), indicator),
         )
         series_shifts = None
-        if (asset, subject, indicator) in shift_keys:
+        if shifts is not None and (asset, subject, indicator) in shift_keys:
             smask = pc.and_(
                 pc.and_(pc.equal(shifts.column("asset"), asset), pc.equal(shifts.column("subject"), subject)),
                 pc.equal(shifts.column("indicator"), indicator),

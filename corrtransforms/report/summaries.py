@@ -150,7 +150,7 @@ def asset_summaries(output: OutputTables) -> List[Dict]:
     table when there are no correlations); windows rejected are the distinct window starts of
     rejects rows with subject "*" and action "rejected"; planned = computed + rejected.
     """
-    assets = set()
+    assets: set = set()
     for table in output.tables.values():
         if table is not None and "asset" in table.column_names:
             assets.update(a for a in table.column("asset").to_pylist() if a is not None)

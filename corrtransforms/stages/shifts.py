@@ -97,7 +97,7 @@ QUALITY_CODES = {
 PROVISIONAL_REFIT_GROWTH = 0.10
 
 
-def provisional_refit_point(first: int, count: int, growth: float = None) -> int:
+def provisional_refit_point(first: int, count: int, growth: Optional[float] = None) -> int:
     """Size of the baseline sample at the provisional model's last refit.
 
     Parameters
@@ -622,7 +622,7 @@ class _SeriesRun:
                 onset, size = int(times[j]), float(resid[j])
             names = [name for name, on in (("cusum", cusum_up or cusum_down), ("ewma", ewma_up or ewma_down)) if on]
             if previous == SHIFTED and direction == previous_direction:  # the episode goes on
-                onset = onset if previous_onset is None else min(onset, previous_onset)
+                onset = onset if previous_onset is None or onset is None else min(onset, previous_onset)
             else:  # a new episode: the first shifted window, or a reversal of direction
                 first_alarm = int(times[j])
             previous, previous_direction, previous_onset = SHIFTED, direction, onset
@@ -917,7 +917,8 @@ def detect_shifts_for_rows(
         unique.append(row)
     state, blocking = select_resume_state(resume_states, subject, indicator, int(unique[0].window_start_us))
     if blocking is not None:
-        stale = [r for r in unique if int(r.window_start_us) <= blocking.window_start_us]
+        blocked_at = int(blocking.window_start_us)  # type: ignore[arg-type]  # a resumable state has a window
+        stale = [r for r in unique if int(r.window_start_us) <= blocked_at]
         for r in stale:
             rejects.append(
                 Reject(
@@ -925,12 +926,12 @@ def detect_shifts_for_rows(
                     iso_utc(int(r.window_start_us)),
                     subject,
                     "window_before_state",
-                    f"{indicator}: the earliest resumable state is at {iso_utc(blocking.window_start_us)}",
+                    f"{indicator}: the earliest resumable state is at {iso_utc(blocked_at)}",
                     asset=asset,
                     window_start_us=int(r.window_start_us),
                 )
             )
-        unique = [r for r in unique if int(r.window_start_us) > blocking.window_start_us]
+        unique = [r for r in unique if int(r.window_start_us) > blocked_at]
         state = blocking
         if not unique:
             return _empty_outcome(rejects)

@@ -252,7 +252,7 @@ class ShiftState:
             shift_size=num("shift_size"),
             detector=row.get("detector"),
             first_alarm=datetime_to_us(row.get("first_alarm")),
-            sample_window_start=[datetime_to_us(v) for v in row.get("sample_window_start") or ()],
+            sample_window_start=[int(datetime_to_us(v) or 0) for v in row.get("sample_window_start") or ()],
             dependence_phi=num("dependence_phi", 0.0),
             dependence_pairs=int(row.get("dependence_pairs") or 0),
             innovation_scale=num("innovation_scale"),
@@ -303,13 +303,17 @@ def select_resume_state(
     candidates = []
     for s in states:
         s = s if isinstance(s, ShiftState) else ShiftState.from_row(s)
-        if s.subject == subject and s.indicator == indicator:
+        if s.subject == subject and s.indicator == indicator and s.window_start_us is not None:
             candidates.append(s)
-    before = [s for s in candidates if s.window_start_us < first_window_us]
+
+    def start(s: ShiftState) -> int:
+        return int(s.window_start_us)  # type: ignore[arg-type]  # not None: filtered above
+
+    before = [s for s in candidates if start(s) < first_window_us]
     if before:
-        return max(before, key=lambda s: s.window_start_us), None
+        return max(before, key=start), None
     if candidates:
-        return None, min(candidates, key=lambda s: s.window_start_us)
+        return None, min(candidates, key=start)
     return None, None
 
 
