@@ -30,11 +30,27 @@ QUALITY_CODES = {
                        "beyond max_lag (lag_s is NaN)",
     "nonfinite_correlation": "NaN lags (too few sample pairs) inside the search range were taken as 0",
     "too_few_lags": "fewer than 3 lags in the search range",
+    "spurious_lag_peak": "PHAT/SCOT weighting on a channel whose auto spectrum falls below PSD_FLOOR of its "
+                         "maximum somewhere in 0..fs/2 (the whitening divides by leakage or round-off "
+                         "there), and the weighted peak lies more than AGREEMENT_Z combined stderr from the "
+                         "unweighted peak (lag_s kept, window held out of the shift "
+                         "detectors)",
 }
 
 #: a peak is "clear" when |peak_coef| exceeds this many standard errors (common practice: about
 #: the expected largest of a few thousand correlated Gaussian lag errors)
 PEAK_Z = 4.0
+#: a PHAT/SCOT peak is suspect when either channel's smoothed auto spectrum drops below this
+#: fraction of its maximum at some frequency (common practice: a band about 27 dB down is where
+#: the whitening starts to amplify leakage; measured in benchmarks/calibration.py: 0-20 Hz band
+#: of a 0-50 Hz record at most 8e-4, broadband scenarios at least 0.08, AR(1) phi 0.9 plus
+#: 10 % white noise about 4e-3)
+PSD_FLOOR = 2e-3
+#: where the spectrum has such a band, the weighted lag must lie within this many combined
+#: standard errors ``sqrt(var_weighted + var_plain)`` of the unweighted lag (about the two-sided
+#: 95 % point of a normal law; the two estimates share the data, so their difference varies
+#: less than the sum and the test is lenient)
+AGREEMENT_Z = 2.0
 #: sinc interpolation uses this many samples on each side of the peak sample
 INTERPOLATION_HALF_WIDTH = 64
 #: fine-grid points per sample on which the interpolated peak is searched
@@ -474,6 +490,86 @@ def _variance_sums(mag_ab: np.ndarray, product: np.ndarray, kinds, n_fft: int, l
     return np.sum(w2 * psi ** 2 * excess, axis=1) * df, np.sum(w2 * psi * mag_ab, axis=1) * df
 
 
+def auto_spectrum_floor(auto) -> float:
+    """Smallest over largest value of the Blackman-Tukey auto spectrum of ``auto`` on 0..fs/2.
+
+    Parameters
+    ----------
+    auto : array_like, shape (L + 1,)
+        Auto-correlation coefficients at lags 0..L (NaN taken as 0).
+
+    Returns
+    -------
+    float
+        ``min S / max S`` with ``S`` the transform of ``auto`` tapered by a Parzen lag window of
+        half-width ``L`` (non-negative spectral window, so ``S >= 0`` up to round-off); NaN when
+        ``L < 4`` or ``max S <= 0``.
+
+    Notes
+    -----
+    Blackman-Tukey estimate (Bendat & Piersol, *Random Data*, 4th ed., Sec. 11.5, from memory);
+    a band with no power shows only the Parzen window's leakage (sidelobes falling as ``f^-4``),
+    orders of magnitude below the occupied band. PHAT and SCOT divide by these values.
+    """
+    a = np.nan_to_num(np.asarray(auto, dtype=float))
+    half = len(a) - 1
+    if a.ndim != 1 or half < 4:
+        return float("nan")
+    n_fft = scipy.fft.next_fast_len(8 * half, real=True)
+    segment = np.zeros(n_fft)
+    tapered = a * _parzen(2 * half + 1)[half:]
+    segment[:half + 1] = tapered
+    segment[n_fft - half:] = tapered[:0:-1]
+    spectrum = scipy.fft.rfft(segment).real
+    peak = spectrum.max()
+    return float(max(spectrum.min(), 0.0) / peak) if peak > 0 else float("nan")
+
+
+def _empty_band_rows(autos_a, autos_b, weightings) -> np.ndarray:
+    """Rows with a PHAT/SCOT weighting and a channel whose :func:`auto_spectrum_floor` is below
+    :data:`PSD_FLOOR` (each channel's spectrum computed once, autos reused by identity)."""
+    floors = {}
+    out = np.zeros(len(weightings), dtype=bool)
+    for row, kind in enumerate(weightings):
+        if kind == "none":
+            continue
+        for auto in (autos_a[row], autos_b[row]):
+            if auto is None:
+                continue
+            if id(auto) not in floors:
+                floors[id(auto)] = auto_spectrum_floor(auto)
+            if floors[id(auto)] < PSD_FLOOR:
+                out[row] = True
+    return out
+
+
+def _disagrees_with_plain(rho, rho_clean, idx, rows, position, variance, record, autos_a, autos_b,
+                          lag_step_s: float) -> np.ndarray:
+    """For the given weighted rows: does the weighted peak lie more than :data:`AGREEMENT_Z`
+    combined standard errors from the peak of the unweighted ``rho``?
+
+    Both estimate the same delay, so their difference has at most the variance
+    ``var_weighted + var_plain``; a whitening that divides by near-empty bins moves the peak far
+    outside it (in benchmarks/calibration.py's band-limited case to about zero lag). A row whose
+    unweighted peak is at the edge of the search range or whose variances are not finite counts
+    as disagreeing: nothing vouches for its weighted peak.
+    """
+    if len(rows) == 0:
+        return np.zeros(0, dtype=bool)
+    plain_clean = rho_clean[rows]
+    k = idx[np.argmax(np.abs(plain_clean[:, idx]), axis=1)]
+    at_edge = (k == idx[0]) | (k == idx[-1])
+    plain_position = _refine_peaks(plain_clean, rho[rows], k)
+    none = ["none"] * len(rows)
+    plain_variance = _lag_variances(plain_clean, k, np.flatnonzero(~at_edge), lag_step_s, record[rows],
+                                    [autos_a[i] for i in rows], [autos_b[i] for i in rows], none,
+                                    np.full(len(rows), np.nan))
+    gap = np.abs(position[rows] - plain_position) * lag_step_s
+    with np.errstate(invalid="ignore"):
+        agrees = gap <= AGREEMENT_Z * np.sqrt(variance[rows] + plain_variance)
+    return ~agrees | at_edge
+
+
 def _lag_rows(coefficient, stderr, record_s, weighted_coefficient, weighting: str, auto_a, auto_b):
     """The inputs of :func:`estimate_lags` checked and as arrays: ``(rho, stderr, weighted rows,
     located, autos_a, autos_b, record_s)``, ``located`` the rows whose peak is searched."""
@@ -600,6 +696,9 @@ def _finite_row_estimates(rho, s, located, idx, record, autos_a, autos_b, weight
     variance = _lag_variances(rho_clean, k, np.nonzero(~at_edge)[0], lag_step_s, record, autos_a, autos_b,
                               weightings, peak_coef)
     width = _envelope_widths(located_clean, k, lag_step_s)
+    suspect = _empty_band_rows(autos_a, autos_b, weightings)
+    suspect[suspect] = _disagrees_with_plain(rho, rho_clean, idx, np.flatnonzero(suspect), position, variance,
+                                             record, autos_a, autos_b, lag_step_s)
     out = []
     for i in range(count):
         quality = []
@@ -609,6 +708,8 @@ def _finite_row_estimates(rho, s, located, idx, record, autos_a, autos_b, weight
             quality.append("peak_at_max_lag")
         if weak[i]:
             quality.append("weak_peak")
+        if suspect[i]:
+            quality.append("spurious_lag_peak")
         edge = bool(at_edge[i])
         out.append(LagEstimate(nan if edge else float(first_lag_s + position[i] * lag_step_s),
                                nan if edge else float(np.sqrt(variance[i])),
