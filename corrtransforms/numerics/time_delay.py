@@ -20,7 +20,8 @@ import scipy.fft
 import scipy.signal
 from scipy.signal.windows import parzen
 
-from corrtransforms.numerics.correlation import WEIGHTINGS
+from corrtransforms.numerics.bartlett import bartlett_stderr
+from corrtransforms.numerics.correlation import WEIGHTINGS, even_extension
 from corrtransforms.numerics.envelope import correlation_envelope
 
 #: quality codes of this module (code -> meaning)
@@ -252,7 +253,8 @@ def estimate_lag(coefficient, stderr, first_lag_s: float, lag_step_s: float, rec
     -----
     ``k* = argmax |rho_w(k)|``, refined by :func:`refine_peak` (band-limited interpolation, no
     parabola bias); ``peak_coef = rho_ab(tau*)`` (unweighted, interpolated) with the standard
-    error interpolated linearly from ``stderr``; ``sd(lag_s)`` from :func:`lag_variance`.
+    error of Bartlett's formula at ``tau*`` itself (``_peak_coef_stderrs``; linear
+    interpolation of ``stderr`` when the autos are missing); ``sd(lag_s)`` from :func:`lag_variance`.
     ``peak_width_s`` is the full width at half maximum of the Hilbert envelope of the located
     function: how sharp the peak is (a narrow-band source gives a broad, oscillating peak; PHAT
     whitening sharpens it). A batch of one of :func:`estimate_lags`.
@@ -543,6 +545,45 @@ def _empty_band_rows(autos_a, autos_b, weightings) -> np.ndarray:
     return out
 
 
+def _shifted(values_clean: np.ndarray, delta: float) -> np.ndarray:
+    """``values(m + delta)`` at every sample ``m``: :func:`sinc_interpolate` with the samples
+    ``m +/- INTERPOLATION_HALF_WIDTH`` (zero beyond the ends), as one correlation."""
+    offsets = np.arange(-INTERPOLATION_HALF_WIDTH, INTERPOLATION_HALF_WIDTH + 1)
+    padded = np.pad(values_clean, INTERPOLATION_HALF_WIDTH)
+    return np.correlate(padded, np.sinc(delta - offsets), mode="valid")
+
+
+def _peak_coef_stderrs(rho_clean, stderr, position, at_edge, autos_a, autos_b, fallback) -> np.ndarray:
+    """Standard error of ``rho_ab`` at the fractional peak ``position`` of every row.
+
+    Bartlett's variance (:func:`~corrtransforms.numerics.bartlett.bartlett_stderr`) evaluated at
+    the peak itself: the cross-correlation is resampled on the grid shifted by the sub-sample
+    offset ``delta = position - k`` (``k`` the nearest sample), so that grid's sample ``k`` is
+    the peak, and the sums of Bartlett's formula are taken there (the sums over the integer
+    lags ``v`` of products of band-limited coefficients are the ones of the shifted grid, and
+    sums of squares do not depend on the shift). The magnitude keeps the stored stderr's pair
+    count and estimator: ``s_peak = s(k) * b_shifted(k) / b(k)``, ``b`` Bartlett's figure for one
+    sample pair. Rows without both autos, at the edge, or with ``b(k) = 0`` keep ``fallback``
+    (the linear interpolation of the stored stderr).
+    """
+    out = np.array(fallback, dtype=float)
+    count, n = rho_clean.shape
+    for row in range(count):
+        a, b = autos_a[row], autos_b[row]
+        if at_edge[row] or a is None or b is None or len(a) != len(b) or 2 * len(a) - 1 != n:
+            continue
+        k = int(np.rint(position[row]))
+        if not 0 <= k < n or not np.isfinite(stderr[row, k]):
+            continue
+        aa, bb = even_extension(a), even_extension(b)
+        one = np.ones(n)
+        plain = bartlett_stderr(rho_clean[row], aa, bb, one)[k]
+        at_peak = bartlett_stderr(_shifted(rho_clean[row], float(position[row] - k)), aa, bb, one)[k]
+        if plain > 0 and np.isfinite(at_peak):
+            out[row] = float(stderr[row, k] * at_peak / plain)
+    return out
+
+
 def _disagrees_with_plain(rho, rho_clean, idx, rows, position, variance, record, autos_a, autos_b,
                           lag_step_s: float) -> np.ndarray:
     """For the given weighted rows: does the weighted peak lie more than :data:`AGREEMENT_Z`
@@ -692,6 +733,7 @@ def _finite_row_estimates(rho, s, located, idx, record, autos_a, autos_b, weight
     frac = position - j
     line = np.arange(count)
     peak_sd = (1 - frac) * s[line, j] + frac * s[line, j + 1]
+    peak_sd = _peak_coef_stderrs(rho_clean, s, position, at_edge, autos_a, autos_b, peak_sd)
     weak = np.isfinite(peak_sd) & (np.abs(peak_coef) < peak_z * peak_sd)
     variance = _lag_variances(rho_clean, k, np.nonzero(~at_edge)[0], lag_step_s, record, autos_a, autos_b,
                               weightings, peak_coef)
