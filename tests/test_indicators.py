@@ -168,3 +168,38 @@ def test_compute_indicators_transform(window):
             lambda r: (r.stage, r.subject, r.reason, r.window_start_us, r.asset)),
             equal_to([("indicators", "deck_a:deck_b", "indicator_failed", START_US + 300 * 10 ** 6,
                        "test-bridge")]), label="One reject for the malformed pair")
+
+
+def test_spurious_lag_peak_reaches_the_pair_rows_and_holds_the_window():
+    # source and noise on 0-20 Hz of a 0-50 Hz record (benchmarks/calibration.py's band_limited
+    # case): PHAT whitens the empty band and its peak wanders; the pair rows must carry the code
+    # and records.HOLDING_CODES must hold them out of the shift detectors
+    from corrtransforms.records import holds_window, quality_codes
+    fs, n, delay = 100.0, 2000, 0.0537
+    f = np.fft.rfftfreq(4 * n, 1 / fs)
+    keep = (f > 0) & (f <= 20.0)
+    config = parse_config({"asset": {"name": "invented-tower"},
+                           "archive": {"path": "/nonexistent", "sample_rate_hz": fs},
+                           "windows": {"length_s": n / fs},
+                           "correlation": {"max_lag_s": 0.5, "weighting": "phat"}})
+    rng = np.random.default_rng(20)
+    held = 0
+    for window_index in range(4):
+        def band(delay_s=0.0, z=None):
+            z = (rng.standard_normal(len(f)) + 1j * rng.standard_normal(len(f))) * keep if z is None else z
+            return np.fft.irfft(z * np.exp(-2j * np.pi * f * delay_s), 4 * n)[:n], z
+        source, z = band()
+        delayed, _ = band(delay, z)
+        values = np.column_stack([source + 0.5 * band()[0], delayed + 0.5 * band()[0]])
+        block = WindowBlock(asset="invented-tower", window_start_us=window_index * 20 * 10 ** 6,
+                            window_length_s=n / fs, sample_rate_hz=fs, channels=("a", "b"), values=values,
+                            valid=np.ones_like(values, dtype=bool))
+        rows = _by_key(window_indicators(correlate_window(block, config), config))
+        lag, peak = rows[("a:b", "lag_s")], rows[("a:b", "peak_coef")]
+        assert lag.quality == peak.quality
+        if "spurious_lag_peak" in quality_codes(lag.quality):
+            assert holds_window(quality_codes(lag.quality))
+            held += 1
+        else:  # not flagged: the whitened peak agrees with the delay within a sample
+            assert abs(lag.value - delay) < 1 / fs
+    assert held >= 2  # 84 % of such windows in the calibration benchmark

@@ -5,7 +5,7 @@ import pytest
 
 from corrtransforms.numerics.correlation import correlate_block
 from corrtransforms.numerics.bartlett import bartlett_stderr
-from corrtransforms.numerics.time_delay import estimate_lag, refine_peak
+from corrtransforms.numerics.time_delay import PSD_FLOOR, auto_spectrum_floor, estimate_lag, refine_peak
 from tests.indicator_fixtures import simulate_sdof
 
 FS = 100.0
@@ -361,3 +361,93 @@ def test_window_indicators_use_batched_lags_equal_to_per_pair_and_isolate_a_malf
         assert (got.subject, got.indicator, got.quality) == (expected.subject, expected.indicator, expected.quality)
         np.testing.assert_allclose([got.value, got.stderr], [expected.value, expected.stderr], rtol=1e-12,
                                    equal_nan=True)
+
+
+def _truncated_band_pair(rng, n, band_hz, delay_s, snr):
+    """Source and sensor noise on 0..band_hz only, cut from a periodic sequence four times as
+    long (as benchmarks/calibration.py): the record's own edges leak into the empty band."""
+    m = 4 * n
+    f = np.fft.rfftfreq(m, 1 / FS)
+    keep = (f > 0) & (f <= band_hz)
+
+    def flat(delay=0.0):
+        z = (rng.standard_normal(len(f)) + 1j * rng.standard_normal(len(f))) * keep
+        return np.fft.irfft(z * np.exp(-2j * np.pi * f * delay), m)[:n]
+
+    z = (rng.standard_normal(len(f)) + 1j * rng.standard_normal(len(f))) * keep
+    a = np.fft.irfft(z, m)[:n] + flat() / np.sqrt(snr)
+    b = np.fft.irfft(z * np.exp(-2j * np.pi * f * delay_s), m)[:n] + flat() / np.sqrt(snr)
+    return np.column_stack([a, b])
+
+
+@pytest.mark.parametrize("weighting", ["phat", "scot"])
+def test_whitening_over_an_empty_band_flags_spurious_lag_peaks(weighting):
+    # source and noise on 0-20 Hz of a 0-50 Hz record: PHAT/SCOT divide by leakage above 20 Hz
+    # and their peak wanders (mostly to about zero lag; Knapp & Carter 1976 assume spectra with
+    # no empty band). Every weighted lag more than one sample off the true delay must carry
+    # spurious_lag_peak (it holds the window out of the shift detectors: records.HOLDING_CODES).
+    rng = np.random.default_rng(15)
+    delay, windows = 0.0537, 40
+    flagged, far = 0, 0
+    for _ in range(windows):
+        found = _lag_of(_truncated_band_pair(rng, 2000, 20.0, delay, 4.0), 0.5, weighting=weighting)
+        spurious = "spurious_lag_peak" in found.quality
+        flagged += spurious
+        if abs(found.lag_s - delay) > 1 / FS:
+            far += 1
+            assert spurious, found
+    assert far >= windows // 2  # the failure this code is for does occur here
+    assert flagged >= far
+
+
+@pytest.mark.parametrize("weighting", ["phat", "scot"])
+def test_no_spurious_lag_peak_with_a_noise_floor_or_without_weighting(weighting):
+    # white source and white noise over the whole band: no empty band, never flagged; the same
+    # band-limited records without weighting: the code is for PHAT/SCOT only
+    rng = np.random.default_rng(16)
+    for _ in range(10):
+        found = _lag_of(_flat_band_pair(rng, 2000, FS / 2, 0.0537, 4.0), 0.5, weighting=weighting)
+        assert "spurious_lag_peak" not in found.quality
+        plain = _lag_of(_truncated_band_pair(rng, 2000, 20.0, 0.0537, 4.0), 0.5)
+        assert "spurious_lag_peak" not in plain.quality
+    # a narrow-band source over a real (independent) sensor-noise floor: the spectrum spans more
+    # than PSD_FLOOR, but the whitened peak agrees with the plain one, so it is not flagged
+    n, shift = 12000, 8
+    source = simulate_sdof(5.0, 0.02, FS, n + shift, rng)
+    source /= source.std()
+    values = np.column_stack([source[shift:] + 0.1 * rng.standard_normal(n),
+                              source[:n] + 0.1 * rng.standard_normal(n)])
+    found = _lag_of(values, 2.0, weighting=weighting)
+    assert "spurious_lag_peak" not in found.quality
+
+
+def test_auto_spectrum_floor_of_white_and_band_limited_noise():
+    # Blackman-Tukey spectrum (Bendat & Piersol Sec. 11.5, from memory) of an exact white
+    # correlation (delta at lag 0) is flat: floor 1; of sinc(2 B tau) with B = fs/5 the band
+    # above B holds only the Parzen window's leakage, far below PSD_FLOOR
+    white = np.zeros(51)
+    white[0] = 1.0
+    assert auto_spectrum_floor(white) == pytest.approx(1.0)
+    band = np.sinc(0.4 * np.arange(51))
+    assert auto_spectrum_floor(band) < PSD_FLOOR
+    assert np.isnan(auto_spectrum_floor([1.0, 0.5, 0.2]))
+
+
+def test_peak_coef_stderr_at_a_fractional_peak_covers_the_truth():
+    # white source, white noise SNR 4 on both sensors, delay 5.37 samples: the true peak
+    # coefficient is SNR / (1 + SNR) = 0.8 (closed form). Bartlett's variance at the peak is
+    # (1 - rho^2)^2 / n for white records (Box, Jenkins & Reinsel Eq. (12.1.4), from memory);
+    # the samples either side of a fractional peak have a larger one, so interpolating their
+    # stderr linearly overstated it 1.7-fold (coverage 0.998). Binomial tolerance: 150 windows,
+    # sd of a 0.95 coverage sqrt(0.95 * 0.05 / 150) = 0.018, band +/- 3 sd.
+    rng = np.random.default_rng(150)
+    windows, delay, snr = 150, 0.0537, 4.0
+    found = [_lag_of(_flat_band_pair(rng, 2000, FS / 2, delay, snr), 0.5) for _ in range(windows)]
+    coef = np.array([f.peak_coef for f in found])
+    stderr = np.array([f.peak_coef_stderr for f in found])
+    truth = snr / (1 + snr)
+    coverage = np.mean(np.abs(coef - truth) <= 1.96 * stderr)
+    assert 0.95 - 3 * 0.018 <= coverage <= 0.95 + 3 * 0.018
+    assert 0.8 < np.std(coef, ddof=1) / np.median(stderr) < 1.25
+    # Bartlett's closed form for white records at the peak (the stated reference)
+    assert np.median(stderr) == pytest.approx((1 - truth ** 2) / np.sqrt(2000), rel=0.1)

@@ -20,7 +20,8 @@ import scipy.fft
 import scipy.signal
 from scipy.signal.windows import parzen
 
-from corrtransforms.numerics.correlation import WEIGHTINGS
+from corrtransforms.numerics.bartlett import bartlett_stderr
+from corrtransforms.numerics.correlation import WEIGHTINGS, even_extension
 from corrtransforms.numerics.envelope import correlation_envelope
 
 #: quality codes of this module (code -> meaning)
@@ -30,11 +31,27 @@ QUALITY_CODES = {
                        "beyond max_lag (lag_s is NaN)",
     "nonfinite_correlation": "NaN lags (too few sample pairs) inside the search range were taken as 0",
     "too_few_lags": "fewer than 3 lags in the search range",
+    "spurious_lag_peak": "PHAT/SCOT weighting on a channel whose auto spectrum falls below PSD_FLOOR of its "
+                         "maximum somewhere in 0..fs/2 (the whitening divides by leakage or round-off "
+                         "there), and the weighted peak lies more than AGREEMENT_Z combined stderr from the "
+                         "unweighted peak (lag_s kept, window held out of the shift "
+                         "detectors)",
 }
 
 #: a peak is "clear" when |peak_coef| exceeds this many standard errors (common practice: about
 #: the expected largest of a few thousand correlated Gaussian lag errors)
 PEAK_Z = 4.0
+#: a PHAT/SCOT peak is suspect when either channel's smoothed auto spectrum drops below this
+#: fraction of its maximum at some frequency (common practice: a band about 27 dB down is where
+#: the whitening starts to amplify leakage; measured in benchmarks/calibration.py: 0-20 Hz band
+#: of a 0-50 Hz record at most 8e-4, broadband scenarios at least 0.08, AR(1) phi 0.9 plus
+#: 10 % white noise about 4e-3)
+PSD_FLOOR = 2e-3
+#: where the spectrum has such a band, the weighted lag must lie within this many combined
+#: standard errors ``sqrt(var_weighted + var_plain)`` of the unweighted lag (about the two-sided
+#: 95 % point of a normal law; the two estimates share the data, so their difference varies
+#: less than the sum and the test is lenient)
+AGREEMENT_Z = 2.0
 #: sinc interpolation uses this many samples on each side of the peak sample
 INTERPOLATION_HALF_WIDTH = 64
 #: fine-grid points per sample on which the interpolated peak is searched
@@ -236,7 +253,8 @@ def estimate_lag(coefficient, stderr, first_lag_s: float, lag_step_s: float, rec
     -----
     ``k* = argmax |rho_w(k)|``, refined by :func:`refine_peak` (band-limited interpolation, no
     parabola bias); ``peak_coef = rho_ab(tau*)`` (unweighted, interpolated) with the standard
-    error interpolated linearly from ``stderr``; ``sd(lag_s)`` from :func:`lag_variance`.
+    error of Bartlett's formula at ``tau*`` itself (``_peak_coef_stderrs``; linear
+    interpolation of ``stderr`` when the autos are missing); ``sd(lag_s)`` from :func:`lag_variance`.
     ``peak_width_s`` is the full width at half maximum of the Hilbert envelope of the located
     function: how sharp the peak is (a narrow-band source gives a broad, oscillating peak; PHAT
     whitening sharpens it). A batch of one of :func:`estimate_lags`.
@@ -474,6 +492,125 @@ def _variance_sums(mag_ab: np.ndarray, product: np.ndarray, kinds, n_fft: int, l
     return np.sum(w2 * psi ** 2 * excess, axis=1) * df, np.sum(w2 * psi * mag_ab, axis=1) * df
 
 
+def auto_spectrum_floor(auto) -> float:
+    """Smallest over largest value of the Blackman-Tukey auto spectrum of ``auto`` on 0..fs/2.
+
+    Parameters
+    ----------
+    auto : array_like, shape (L + 1,)
+        Auto-correlation coefficients at lags 0..L (NaN taken as 0).
+
+    Returns
+    -------
+    float
+        ``min S / max S`` with ``S`` the transform of ``auto`` tapered by a Parzen lag window of
+        half-width ``L`` (non-negative spectral window, so ``S >= 0`` up to round-off); NaN when
+        ``L < 4`` or ``max S <= 0``.
+
+    Notes
+    -----
+    Blackman-Tukey estimate (Bendat & Piersol, *Random Data*, 4th ed., Sec. 11.5, from memory);
+    a band with no power shows only the Parzen window's leakage (sidelobes falling as ``f^-4``),
+    orders of magnitude below the occupied band. PHAT and SCOT divide by these values.
+    """
+    a = np.nan_to_num(np.asarray(auto, dtype=float))
+    half = len(a) - 1
+    if a.ndim != 1 or half < 4:
+        return float("nan")
+    n_fft = scipy.fft.next_fast_len(8 * half, real=True)
+    segment = np.zeros(n_fft)
+    tapered = a * _parzen(2 * half + 1)[half:]
+    segment[:half + 1] = tapered
+    segment[n_fft - half:] = tapered[:0:-1]
+    spectrum = scipy.fft.rfft(segment).real
+    peak = spectrum.max()
+    return float(max(spectrum.min(), 0.0) / peak) if peak > 0 else float("nan")
+
+
+def _empty_band_rows(autos_a, autos_b, weightings) -> np.ndarray:
+    """Rows with a PHAT/SCOT weighting and a channel whose :func:`auto_spectrum_floor` is below
+    :data:`PSD_FLOOR` (each channel's spectrum computed once, autos reused by identity)."""
+    floors = {}
+    out = np.zeros(len(weightings), dtype=bool)
+    for row, kind in enumerate(weightings):
+        if kind == "none":
+            continue
+        for auto in (autos_a[row], autos_b[row]):
+            if auto is None:
+                continue
+            if id(auto) not in floors:
+                floors[id(auto)] = auto_spectrum_floor(auto)
+            if floors[id(auto)] < PSD_FLOOR:
+                out[row] = True
+    return out
+
+
+def _shifted(values_clean: np.ndarray, delta: float) -> np.ndarray:
+    """``values(m + delta)`` at every sample ``m``: :func:`sinc_interpolate` with the samples
+    ``m +/- INTERPOLATION_HALF_WIDTH`` (zero beyond the ends), as one correlation."""
+    offsets = np.arange(-INTERPOLATION_HALF_WIDTH, INTERPOLATION_HALF_WIDTH + 1)
+    padded = np.pad(values_clean, INTERPOLATION_HALF_WIDTH)
+    return np.correlate(padded, np.sinc(delta - offsets), mode="valid")
+
+
+def _peak_coef_stderrs(rho_clean, stderr, position, at_edge, autos_a, autos_b, fallback) -> np.ndarray:
+    """Standard error of ``rho_ab`` at the fractional peak ``position`` of every row.
+
+    Bartlett's variance (:func:`~corrtransforms.numerics.bartlett.bartlett_stderr`) evaluated at
+    the peak itself: the cross-correlation is resampled on the grid shifted by the sub-sample
+    offset ``delta = position - k`` (``k`` the nearest sample), so that grid's sample ``k`` is
+    the peak, and the sums of Bartlett's formula are taken there (the sums over the integer
+    lags ``v`` of products of band-limited coefficients are the ones of the shifted grid, and
+    sums of squares do not depend on the shift). The magnitude keeps the stored stderr's pair
+    count and estimator: ``s_peak = s(k) * b_shifted(k) / b(k)``, ``b`` Bartlett's figure for one
+    sample pair. Rows without both autos, at the edge, or with ``b(k) = 0`` keep ``fallback``
+    (the linear interpolation of the stored stderr).
+    """
+    out = np.array(fallback, dtype=float)
+    count, n = rho_clean.shape
+    for row in range(count):
+        a, b = autos_a[row], autos_b[row]
+        if at_edge[row] or a is None or b is None or len(a) != len(b) or 2 * len(a) - 1 != n:
+            continue
+        k = int(np.rint(position[row]))
+        if not 0 <= k < n or not np.isfinite(stderr[row, k]):
+            continue
+        aa, bb = even_extension(a), even_extension(b)
+        one = np.ones(n)
+        plain = bartlett_stderr(rho_clean[row], aa, bb, one)[k]
+        at_peak = bartlett_stderr(_shifted(rho_clean[row], float(position[row] - k)), aa, bb, one)[k]
+        if plain > 0 and np.isfinite(at_peak):
+            out[row] = float(stderr[row, k] * at_peak / plain)
+    return out
+
+
+def _disagrees_with_plain(rho, rho_clean, idx, rows, position, variance, record, autos_a, autos_b,
+                          lag_step_s: float) -> np.ndarray:
+    """For the given weighted rows: does the weighted peak lie more than :data:`AGREEMENT_Z`
+    combined standard errors from the peak of the unweighted ``rho``?
+
+    Both estimate the same delay, so their difference has at most the variance
+    ``var_weighted + var_plain``; a whitening that divides by near-empty bins moves the peak far
+    outside it (in benchmarks/calibration.py's band-limited case to about zero lag). A row whose
+    unweighted peak is at the edge of the search range or whose variances are not finite counts
+    as disagreeing: nothing vouches for its weighted peak.
+    """
+    if len(rows) == 0:
+        return np.zeros(0, dtype=bool)
+    plain_clean = rho_clean[rows]
+    k = idx[np.argmax(np.abs(plain_clean[:, idx]), axis=1)]
+    at_edge = (k == idx[0]) | (k == idx[-1])
+    plain_position = _refine_peaks(plain_clean, rho[rows], k)
+    none = ["none"] * len(rows)
+    plain_variance = _lag_variances(plain_clean, k, np.flatnonzero(~at_edge), lag_step_s, record[rows],
+                                    [autos_a[i] for i in rows], [autos_b[i] for i in rows], none,
+                                    np.full(len(rows), np.nan))
+    gap = np.abs(position[rows] - plain_position) * lag_step_s
+    with np.errstate(invalid="ignore"):
+        agrees = gap <= AGREEMENT_Z * np.sqrt(variance[rows] + plain_variance)
+    return ~agrees | at_edge
+
+
 def _lag_rows(coefficient, stderr, record_s, weighted_coefficient, weighting: str, auto_a, auto_b):
     """The inputs of :func:`estimate_lags` checked and as arrays: ``(rho, stderr, weighted rows,
     located, autos_a, autos_b, record_s)``, ``located`` the rows whose peak is searched."""
@@ -596,10 +733,14 @@ def _finite_row_estimates(rho, s, located, idx, record, autos_a, autos_b, weight
     frac = position - j
     line = np.arange(count)
     peak_sd = (1 - frac) * s[line, j] + frac * s[line, j + 1]
+    peak_sd = _peak_coef_stderrs(rho_clean, s, position, at_edge, autos_a, autos_b, peak_sd)
     weak = np.isfinite(peak_sd) & (np.abs(peak_coef) < peak_z * peak_sd)
     variance = _lag_variances(rho_clean, k, np.nonzero(~at_edge)[0], lag_step_s, record, autos_a, autos_b,
                               weightings, peak_coef)
     width = _envelope_widths(located_clean, k, lag_step_s)
+    suspect = _empty_band_rows(autos_a, autos_b, weightings)
+    suspect[suspect] = _disagrees_with_plain(rho, rho_clean, idx, np.flatnonzero(suspect), position, variance,
+                                             record, autos_a, autos_b, lag_step_s)
     out = []
     for i in range(count):
         quality = []
@@ -609,6 +750,8 @@ def _finite_row_estimates(rho, s, located, idx, record, autos_a, autos_b, weight
             quality.append("peak_at_max_lag")
         if weak[i]:
             quality.append("weak_peak")
+        if suspect[i]:
+            quality.append("spurious_lag_peak")
         edge = bool(at_edge[i])
         out.append(LagEstimate(nan if edge else float(first_lag_s + position[i] * lag_step_s),
                                nan if edge else float(np.sqrt(variance[i])),
