@@ -631,8 +631,11 @@ def main(argv=None) -> None:
     parser.add_argument("--detector-seeds", type=int, default=200, help="series per detector row (default 200)")
     parser.add_argument("--monitored", type=int, default=1000, help="monitored windows per in-control series")
     parser.add_argument("--skip-detectors", action="store_true")
+    parser.add_argument("--ar1-samples", type=int, nargs="*", default=(),
+                        help="extra AR(1) scenarios ar1_nN of N samples each (phi 0.9, fs 10 Hz), "
+                             "e.g. to choose the few_effective_samples threshold")
     args = parser.parse_args(argv)
-    scenarios = build_scenarios()
+    scenarios = build_scenarios() + [ar1_scenario(f"ar1_n{n}", n) for n in args.ar1_samples]
     if args.scenarios:
         known = {s.name for s in scenarios}
         unknown = sorted(set(args.scenarios) - known)

@@ -280,3 +280,20 @@ def test_mean_square_rel_error_covers_a_lightly_damped_mode():
     assert len(z) == reps
     coverage = np.mean(np.abs(np.array(z)) < 1.96)
     assert 0.95 - 3 * 0.017 < coverage < 0.95 + 3 * 0.017, coverage
+
+
+def test_few_effective_samples_is_a_holding_code_below_the_threshold():
+    # AR(1) phi 0.9: n (1 - phi) / (1 + phi) effective samples (Box & Jenkins; the tool's
+    # T / (2 T_I) estimates it): 25 in 475 samples (below 100: coded), 500 in 9500 (not coded)
+    from corrtransforms.records import holds_window
+    from corrtransforms.stages.correlate import MIN_EFFECTIVE_SAMPLES
+
+    rng = np.random.default_rng(51)
+    fs = 10.0
+    for n, coded in ((475, True), (9500, False)):
+        e = rng.standard_normal(n + 500)
+        x = scipy.signal.lfilter([1.0], [1.0, -0.9], e)[500:, None]
+        auto = correlate_window(_block(x, fs, ["a"]), _config(fs, n / fs, max_lag_s=10.0)).pairs[0]
+        assert auto.n_effective == pytest.approx(n * 0.1 / 1.9, rel=0.5)
+        assert ("few_effective_samples" in auto.quality) == coded == (auto.n_effective < MIN_EFFECTIVE_SAMPLES)
+        assert holds_window(auto.quality) == coded

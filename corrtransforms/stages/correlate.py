@@ -29,6 +29,12 @@ from corrtransforms.records import WindowBlock
 
 #: |rho| above this in the last 10 % of lags flags "max_lag_short" (common practice)
 UNDECAYED_COEFFICIENT = 0.2
+#: a pair with fewer effective samples (n_effective = T / (2 T_I)) gets "few_effective_samples",
+#: a holding code (corrtransforms.records.HOLDING_CODES): chosen from the calibration matrix
+#: (AR(1), phi 0.9): at 100 effective samples and above the lag-0 errors cover 0.95 and the
+#: decay time 0.90; at 50 the decay time covers 0.83, at 25 the lag-0 errors 0.89 and the time
+#: scales 0.75-0.83 (docs/calibration.md)
+MIN_EFFECTIVE_SAMPLES = 100.0
 
 
 def _usable_channels(spectra, min_pairs: int) -> np.ndarray:
@@ -199,6 +205,8 @@ def _pair_correlations(spectra, est, channels: _ChannelFigures, requested, neede
             codes.append("coefficient_exceeds_one")
         if np.isfinite(t_record) and figures["record_s"][k] < t_record:
             codes.append("tone_record_short")
+        if figures["n_effective"][k] < MIN_EFFECTIVE_SAMPLES:
+            codes.append("few_effective_samples")
         sl = slice(L, None) if a == b else slice(None)
         out.append(PairCorrelation(
             channel_a=names[a], channel_b=names[b],
