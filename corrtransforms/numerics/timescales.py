@@ -164,9 +164,15 @@ def corr_time_s(coefficient, stderr, lag_step_s: float, until: str = "first_zero
     Ornstein-Uhlenbeck) ``T_int -> tau_c``; the integral to infinity of the correlation of a
     white-noise driven oscillator is ``2 zeta / omega_n`` (Bendat & Piersol [1]_, Sec. 5.2;
     Taylor's integral scale [2]_). Standard error: the integral is linear in the
-    coefficients, ``var = w^T Cov w`` with trapezoid weights ``w`` and Bartlett's lag-error
-    covariance (:func:`corrtransforms.numerics.bartlett.lag_error_covariance`); the random position of ``tau_0`` adds nothing to
-    first order because ``rho(tau_0) = 0``.
+    coefficients, ``var_w = w^T Cov w`` with trapezoid weights ``w`` and Bartlett's lag-error
+    covariance (:func:`corrtransforms.numerics.bartlett.lag_error_covariance`). The end point
+    is random too: the first-order argument that it adds nothing because ``rho(tau_0) = 0``
+    fails where the estimate crosses zero in its noise (the tail of a low-pass correlation, a
+    white channel), which the calibration matrix showed (coverage 0.80-0.90). The crossing
+    moves by ``sd(tau_0) = sd(rho(tau_0)) / |rho'(tau_0)|`` (capped at ``tau_0``) over an
+    interval whose coefficients carry the error ``sd(rho(tau_0))``, so
+    ``var = var_w + [sd(rho(tau_0)) sd(tau_0)]^2`` (a heuristic bound of the end interval's
+    contribution, common practice; no term when rho does not cross zero).
 
     References
     ----------
@@ -196,8 +202,29 @@ def corr_time_s(coefficient, stderr, lag_step_s: float, until: str = "first_zero
     weights *= lag_step_s
     lags = np.arange(len(weights))
     value = float(weights @ rho[lags])
-    err = linear_functional_stderr(weights, rho, s, lags) if np.all(np.isfinite(s[lags])) else float("nan")
+    if not np.all(np.isfinite(s[lags])):
+        return TimeScale(value, float("nan"), quality)
+    err = linear_functional_stderr(weights, rho, s, lags)
+    if crossed:
+        err = float(np.hypot(err, _end_point_stderr(rho, s, lag_step_s)))
     return TimeScale(value, err, quality)
+
+
+def _end_point_stderr(rho: np.ndarray, s: np.ndarray, lag_step_s: float) -> float:
+    """Error of the integral from the random position of its end point, the first zero.
+
+    The crossing moves by ``sd(tau_0) = sd(rho(tau_0)) / |rho'(tau_0)|`` (at most ``tau_0``
+    itself), and the end interval it adds or removes holds coefficients whose error is
+    ``sd(rho(tau_0))``: ``sd_end = sd(rho(tau_0)) * sd(tau_0)``.
+    """
+    end = _first_crossing(rho, 0.0)
+    k = min(int(np.floor(end)), len(rho) - 2)
+    frac = end - k
+    sd_rho = (1 - frac) * s[k] + frac * s[k + 1]
+    slope = abs(rho[k + 1] - rho[k]) / lag_step_s
+    tau_0 = end * lag_step_s
+    sd_tau = min(sd_rho / slope, tau_0) if slope > 0 else tau_0
+    return float(sd_rho * sd_tau)
 
 
 def decay_time_s(coefficient, stderr, lag_step_s: float, auto: bool = True,
