@@ -113,16 +113,18 @@ def integral_to_first_zero(rho, lag_step_s: float) -> float:
 def envelope_decay_time(rho, lag_step_s: float, level: float = math.exp(-1.0)) -> float:
     """The tool's definition of ``decay_time_s`` applied to an exact auto-correlation.
 
-    ``scipy.signal.hilbert`` of the even extension over ``-L..L`` (the same lag range as the
-    estimate, since the Hilbert envelope of a low-pass correlation depends on it), first linear
+    ``scipy.signal.hilbert`` of the even extension over ``-L..L``, zero-padded to 8 times its
+    length so no periodic copy of the record enters (the tool's transform is the non-circular
+    one, :func:`corrtransforms.numerics.envelope.even_hilbert_transform`), first linear
     crossing of ``level`` times the envelope at lag 0. Asymptotes: ``1.9134 t_c`` for
-    ``exp(-|tau|/t_c)`` on an infinite range (root of ``|e^-t + i H(t)| = 1/e`` with
-    ``H(t) = [e^-t Ei(t) + e^t E1(t)] / pi``, verified against a 200 t_c zero-padded
-    ``scipy.signal.hilbert``: docs/calibration.md), ``1/(zeta w_n)`` for a lightly damped mode.
+    ``exp(-|tau|/t_c)`` (root of ``|e^-t + i H(t)| = 1/e`` with
+    ``H(t) = [e^-t Ei(t) + e^t E1(t)] / pi``; within 0.1 % for ``L >= 5 t_c``),
+    ``1/(zeta w_n)`` for a lightly damped mode.
     """
     rho = np.asarray(rho, dtype=float)
     full = np.concatenate([rho[:0:-1], rho])
-    envelope = np.abs(scipy.signal.hilbert(full))[len(rho) - 1:]
+    padded = np.concatenate([full, np.zeros(7 * len(full))])
+    envelope = np.abs(scipy.signal.hilbert(padded))[len(rho) - 1:2 * len(rho) - 1]
     target = level * envelope[0]
     below = np.nonzero(envelope <= target)[0]
     if len(below) == 0:
@@ -631,8 +633,11 @@ def main(argv=None) -> None:
     parser.add_argument("--detector-seeds", type=int, default=200, help="series per detector row (default 200)")
     parser.add_argument("--monitored", type=int, default=1000, help="monitored windows per in-control series")
     parser.add_argument("--skip-detectors", action="store_true")
+    parser.add_argument("--ar1-samples", type=int, nargs="*", default=(),
+                        help="extra AR(1) scenarios ar1_nN of N samples each (phi 0.9, fs 10 Hz), "
+                             "e.g. to choose the few_effective_samples threshold")
     args = parser.parse_args(argv)
-    scenarios = build_scenarios()
+    scenarios = build_scenarios() + [ar1_scenario(f"ar1_n{n}", n) for n in args.ar1_samples]
     if args.scenarios:
         known = {s.name for s in scenarios}
         unknown = sorted(set(args.scenarios) - known)

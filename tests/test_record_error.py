@@ -415,6 +415,14 @@ def test_biased_estimate_satisfies_validity_invariants(case):
 def test_effective_samples_stay_within_one_and_n(rho_tail, dt, n):
     rho = np.concatenate([[1.0], rho_tail])
     T_I = integral_time_scale(rho, dt)
-    assert T_I >= 0
+    # reference: np.trapezoid to the last lag before the first rho <= 0, plus the triangle to
+    # the linearly interpolated zero (closed form of the trapezoid rule's last piece)
+    below = np.nonzero(rho <= 0)[0]
+    if len(below) == 0:
+        reference = np.trapezoid(rho, dx=dt)
+    else:
+        k = int(below[0])
+        reference = np.trapezoid(rho[:k], dx=dt) + 0.5 * rho[k - 1] * rho[k - 1] / (rho[k - 1] - rho[k]) * dt
+    assert T_I == pytest.approx(reference, rel=1e-9, abs=1e-12 * dt)
     value = err.effective_samples(n * dt, T_I, n)
     assert 1.0 <= value <= n

@@ -29,6 +29,12 @@ from corrtransforms.records import WindowBlock
 
 #: |rho| above this in the last 10 % of lags flags "max_lag_short" (common practice)
 UNDECAYED_COEFFICIENT = 0.2
+#: a pair with fewer effective samples (n_effective = T / (2 T_I)) gets "few_effective_samples",
+#: a holding code (corrtransforms.records.HOLDING_CODES): chosen from the calibration matrix
+#: (AR(1), phi 0.9): at 100 effective samples and above the lag-0 errors cover 0.95 and the
+#: decay time 0.90; at 50 the decay time covers 0.83, at 25 the lag-0 errors 0.89 and the time
+#: scales 0.75-0.83 (docs/calibration.md)
+MIN_EFFECTIVE_SAMPLES = 100.0
 
 
 def _usable_channels(spectra, min_pairs: int) -> np.ndarray:
@@ -72,9 +78,13 @@ def correlate_window(block: WindowBlock, config: AssetConfig,
     ``eps`` the target:
 
     - ``stderr``: Bartlett's per-lag standard error (general form) with pair counts for n;
-    - ``rel_error``: closed form, ``1/sqrt(BT)`` for an auto pair (its mean square),
-      ``[1 + rho_pk^-2]^(1/2) / sqrt(2BT)`` at the coefficient's peak for a cross pair;
-    - ``required_record_s``: the ``T`` at which ``rel_error = eps``; ``meets_target``:
+    - ``rel_error``: for an auto pair the relative error of its mean square ``R(0)`` from
+      Bartlett's general formula, ``sqrt(2 sum_{v=-L..L} rho(v)^2 / n)`` (the error the rms
+      stderr uses; it equals ``1/sqrt(BT)`` for band-limited white noise and, unlike the
+      Parzen-smoothed ``B``, does not widen a sharp resonance); for a cross pair the closed
+      form ``[1 + rho_pk^-2]^(1/2) / sqrt(2BT)`` at the coefficient's peak;
+    - ``required_record_s``: the ``T`` at which ``rel_error = eps`` (auto pair:
+      ``T (rel_error / eps)^2``, the error scaling as ``1/sqrt(T)``); ``meets_target``:
       ``rel_error <= eps``;
     - ``n_effective``: ``T / (2 T_I)`` with the larger integral time scale of a and b;
     - ``tone_required_record_s``: ``2T = 1/(eps w0)`` for the strongest sharp PSD peak of a or
@@ -144,6 +154,7 @@ class _ChannelFigures:
         # sum_v [rho(v)^2 + rho(v) rho(-v)] / N = 2 sum_v rho(v)^2 / N (correlation_random_error at 0)
         finite_auto = np.where(np.isfinite(self.rho), self.rho, 0.0)
         ms_rel = np.sqrt(2.0 * np.einsum("ij,ij->i", finite_auto, finite_auto) / count_auto[:, L])
+        self.mean_square_rel_error = ms_rel
         self.integral_scale_s = np.array([integral_time_scale(r[L:], 1.0 / fs) for r in self.rho])
         self.tone_freq_hz, _ = strongest_tone(spectra.frequencies_hz(), spectra.periodogram()[used],
                                               n_averaged=spectra.n_segments)
@@ -194,6 +205,8 @@ def _pair_correlations(spectra, est, channels: _ChannelFigures, requested, neede
             codes.append("coefficient_exceeds_one")
         if np.isfinite(t_record) and figures["record_s"][k] < t_record:
             codes.append("tone_record_short")
+        if figures["n_effective"][k] < MIN_EFFECTIVE_SAMPLES:
+            codes.append("few_effective_samples")
         sl = slice(L, None) if a == b else slice(None)
         out.append(PairCorrelation(
             channel_a=names[a], channel_b=names[b],
@@ -223,10 +236,12 @@ def _pair_error_figures(rho, counts, channels: _ChannelFigures, a_rows, b_rows, 
     record_s = counts[:, L] / fs
     abs_rho = np.where(np.isfinite(rho), np.abs(rho), -1.0)
     peak = rho[np.arange(len(rho)), np.argmax(abs_rho, axis=1)]
-    rel_error = np.where(is_auto, err.mean_square_rel_error(bandwidth, record_s),
-                         err.correlation_rel_error(peak, bandwidth, record_s))
-    required = np.where(is_auto, err.required_record_length(bandwidth, target),
-                        err.required_record_length(bandwidth, target, rho=peak))
+    # auto pair: Bartlett's mean-square error (the rms stderr's), which scales as 1/T
+    auto_rel_error = channels.mean_square_rel_error[a_rows]
+    rel_error = np.where(is_auto, auto_rel_error, err.correlation_rel_error(peak, bandwidth, record_s))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        auto_required = record_s * (auto_rel_error / target) ** 2
+    required = np.where(is_auto, auto_required, err.required_record_length(bandwidth, target, rho=peak))
     scales = np.maximum(channels.integral_scale_s[a_rows], channels.integral_scale_s[b_rows])
     return {"stderr": stderr, "bandwidth_hz": bandwidth, "record_s": record_s,
             "bandwidth_time": bandwidth * record_s, "rel_error": rel_error, "required_record_s": required,
