@@ -1,12 +1,12 @@
 # The two set-up-from-nothing commands of the README:
 #   make demo   builds .venv, generates the invented demo archive, runs backfill + report on it
-#   make test   builds .venv and runs the whole test suite
+#   make test   builds .venv, runs make lint and the whole test suite
 PYTHON ?= python3
 VENV   ?= .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 
-.PHONY: test demo bench fuzz clean venv
+.PHONY: test lint demo bench fuzz clean venv
 
 $(STAMP): setup.cfg pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -16,7 +16,13 @@ $(STAMP): setup.cfg pyproject.toml
 
 venv: $(STAMP)
 
-test: $(STAMP)
+# the house checks: ruff's linter and formatter, mypy on the package (configured in pyproject.toml)
+lint: $(STAMP)
+	$(BIN)/ruff check .
+	$(BIN)/ruff format --check .
+	$(BIN)/mypy
+
+test: lint
 	$(BIN)/python -m pytest -q -p no:cacheprovider
 
 demo: $(STAMP)
@@ -29,7 +35,7 @@ bench: $(STAMP)
 	$(BIN)/python -m benchmarks.run_all
 
 fuzz: $(STAMP)
-	CORRTRANSFORMS_FUZZ_EXAMPLES=500 $(BIN)/python -m pytest -q tests/test_reliability_fuzz.py
+	CORRTRANSFORMS_FUZZ_EXAMPLES=500 $(BIN)/python -m pytest -q tests/pipelines/test_reliability_fuzz.py
 
 clean:
 	rm -rf $(VENV) demo_output demo_data/archive benchmarks/_work

@@ -27,6 +27,7 @@ on AR(1) residual series: in-control false alarms and the delay to detect steps.
 Scenarios and truths: see :data:`SCENARIOS` and the ``truth`` functions below; every closed
 form names its source beside it. All data are invented.
 """
+
 from __future__ import annotations
 
 import argparse
@@ -63,7 +64,7 @@ def ar1_autocorrelation(phi: float, lags) -> np.ndarray:
     """``rho(k) = phi^|k|`` of a stationary AR(1) ``x_t = phi x_{t-1} + e_t``.
 
     Box, Jenkins & Reinsel, *Time Series Analysis*, 4th ed., Sec. 3.2.4 (from memory); checked
-    against ``statsmodels.tsa.stattools.acf`` in tests/test_calibration.py.
+    against ``statsmodels.tsa.stattools.acf`` in tests/numerics/test_calibration_truths.py.
     """
     return phi ** np.abs(np.asarray(lags, dtype=float))
 
@@ -79,11 +80,11 @@ def sdof_autocorrelation(tau, freq_hz: float, damping: float) -> np.ndarray:
     ``rho(tau) = exp(-zeta w_n |tau|) [cos(w_d tau) + zeta / sqrt(1 - zeta^2) sin(w_d |tau|)]``,
     ``w_d = w_n sqrt(1 - zeta^2)``: Bendat & Piersol, *Random Data*, 4th ed., Sec. 6.1 (from
     memory); here it is also exactly the first row of ``expm(F tau) P / P[0, 0]`` of the
-    simulated state-space model (checked in tests/test_calibration.py).
+    simulated state-space model (checked in tests/numerics/test_calibration_truths.py).
     """
     tau = np.abs(np.asarray(tau, dtype=float))
     wn = 2 * math.pi * freq_hz
-    root = math.sqrt(1 - damping ** 2)
+    root = math.sqrt(1 - damping**2)
     wd = wn * root
     return np.exp(-damping * wn * tau) * (np.cos(wd * tau) + damping / root * np.sin(wd * tau))
 
@@ -124,7 +125,7 @@ def envelope_decay_time(rho, lag_step_s: float, level: float = math.exp(-1.0)) -
     rho = np.asarray(rho, dtype=float)
     full = np.concatenate([rho[:0:-1], rho])
     padded = np.concatenate([full, np.zeros(7 * len(full))])
-    envelope = np.abs(scipy.signal.hilbert(padded))[len(rho) - 1:2 * len(rho) - 1]
+    envelope = np.abs(scipy.signal.hilbert(padded))[len(rho) - 1 : 2 * len(rho) - 1]
     target = level * envelope[0]
     below = np.nonzero(envelope <= target)[0]
     if len(below) == 0:
@@ -244,7 +245,7 @@ def burst_gaps(rng, n: int, missing: float = 0.2, mean_gap: int = 50) -> np.ndar
     i = int(rng.geometric(1 / mean_good))
     while i < n:
         gap = int(rng.geometric(1 / mean_gap))
-        valid[i:i + gap] = False
+        valid[i : i + gap] = False
         i += gap + int(rng.geometric(1 / mean_good))
     return valid
 
@@ -294,13 +295,20 @@ def ar1_scenario(name: str, n: int, phi: float = 0.9, fs: float = 10.0, max_lag_
         return x, np.ones_like(x, dtype=bool)
 
     n_eff = n * (1 - phi) / (1 + phi)
-    return Scenario(name, f"AR(1) phi={phi}, fs={fs:g} Hz, {n} samples ({n_eff:.0f} effective), "
-                    f"max_lag {max_lag_s:g} s", fs, n, max_lag_s, simulate,
-                    _auto_truths("a", rho, ar1_rms(1.0, phi) ** 2, 1 / fs))
+    return Scenario(
+        name,
+        f"AR(1) phi={phi}, fs={fs:g} Hz, {n} samples ({n_eff:.0f} effective), max_lag {max_lag_s:g} s",
+        fs,
+        n,
+        max_lag_s,
+        simulate,
+        _auto_truths("a", rho, ar1_rms(1.0, phi) ** 2, 1 / fs),
+    )
 
 
-def sdof_scenario(name: str, damping: float, freq_hz: float = 2.0, fs: float = 20.0,
-                  record_s: float = 600.0, max_lag_s: float = 30.0) -> Scenario:
+def sdof_scenario(
+    name: str, damping: float, freq_hz: float = 2.0, fs: float = 20.0, record_s: float = 600.0, max_lag_s: float = 30.0
+) -> Scenario:
     """White-noise driven oscillator, exact sampling; one mode fitted on [0.75, 1.25] f_n."""
     osc = Oscillator(freq_hz, damping, fs)
     n = round(record_s * fs)
@@ -315,21 +323,39 @@ def sdof_scenario(name: str, damping: float, freq_hz: float = 2.0, fs: float = 2
         return x, np.ones_like(x, dtype=bool)
 
     band = [0.75 * freq_hz, 1.25 * freq_hz]
-    return Scenario(name, f"oscillator f_n={freq_hz:g} Hz, zeta={damping:g}, fs={fs:g} Hz, "
-                    f"{record_s:g} s (1/(zeta w_n) = {1 / (damping * 2 * math.pi * freq_hz):.2f} s), "
-                    f"max_lag {max_lag_s:g} s, mode band {band}", fs, n, max_lag_s, simulate, truths,
-                    modes=({"name": "mode", "channel": "a", "band_hz": band},))
+    return Scenario(
+        name,
+        f"oscillator f_n={freq_hz:g} Hz, zeta={damping:g}, fs={fs:g} Hz, "
+        f"{record_s:g} s (1/(zeta w_n) = {1 / (damping * 2 * math.pi * freq_hz):.2f} s), "
+        f"max_lag {max_lag_s:g} s, mode band {band}",
+        fs,
+        n,
+        max_lag_s,
+        simulate,
+        truths,
+        modes=({"name": "mode", "channel": "a", "band_hz": band},),
+    )
 
 
-def delay_scenario(name: str, description: str, source_psd, noise_psd_a, noise_psd_b, delay_s: float,
-                   fs: float, n: int, max_lag_s: float, gaps: bool = False) -> Scenario:
+def delay_scenario(
+    name: str,
+    description: str,
+    source_psd,
+    noise_psd_a,
+    noise_psd_b,
+    delay_s: float,
+    fs: float,
+    n: int,
+    max_lag_s: float,
+    gaps: bool = False,
+) -> Scenario:
     """Channel b = the source delayed by ``delay_s`` (b lags a), each with independent noise."""
     acov_s = circular_autocovariance(source_psd)
     acov_a = acov_s + circular_autocovariance(noise_psd_a)
     acov_b = acov_s + circular_autocovariance(noise_psd_b)
     L = round(max_lag_s * fs)
-    truths = _auto_truths("a", acov_a[:L + 1] / acov_a[0], float(acov_a[0]), 1 / fs)
-    truths.update(_auto_truths("b", acov_b[:L + 1] / acov_b[0], float(acov_b[0]), 1 / fs))
+    truths = _auto_truths("a", acov_a[: L + 1] / acov_a[0], float(acov_a[0]), 1 / fs)
+    truths.update(_auto_truths("b", acov_b[: L + 1] / acov_b[0], float(acov_b[0]), 1 / fs))
     truths[("a:b", "lag_s")] = delay_s
     # R_ab(tau) = R_ss(tau - D): peak R_ss(0) at tau = D
     truths[("a:b", "peak_coef")] = float(acov_s[0] / math.sqrt(acov_a[0] * acov_b[0]))
@@ -344,8 +370,9 @@ def delay_scenario(name: str, description: str, source_psd, noise_psd_a, noise_p
             x = np.where(valid, x, 0.0)
         return x, valid
 
-    return Scenario(name, description, fs, n, max_lag_s, simulate, truths, channels=("a", "b"),
-                    weightings=("none", "phat", "scot"))
+    return Scenario(
+        name, description, fs, n, max_lag_s, simulate, truths, channels=("a", "b"), weightings=("none", "phat", "scot")
+    )
 
 
 def build_scenarios() -> List[Scenario]:
@@ -367,22 +394,63 @@ def build_scenarios() -> List[Scenario]:
         ar1_scenario("ar1_short", 475),
         sdof_scenario("sdof_1pct", 0.01),
         sdof_scenario("sdof_3pct", 0.03, max_lag_s=15.0),
-        delay_scenario("delay_inband", f"white source, white noise SNR 4 on both, delay {delay} s, fs 100 Hz, "
-                       f"{n} samples, max_lag 0.5 s", scaled(white, 1.0), scaled(white, 0.25),
-                       scaled(white, 0.25), delay, fs, n, 0.5),
-        delay_scenario("delay_broadband", f"source 0-10 Hz, white sensor noise 0-50 Hz (in-band SNR 4, "
-                       f"total SNR 0.8), delay {delay} s, {n} samples", scaled(low10, 1.0), broadband_noise,
-                       broadband_noise, delay, fs, n, 0.5),
-        delay_scenario("band_limited", f"source and noise (SNR 4) 0-20 Hz, 20-50 Hz empty, delay {delay} s, "
-                       f"{n} samples", scaled(low20, 1.0), scaled(low20, 0.25), scaled(low20, 0.25),
-                       delay, fs, n, 0.5),
-        delay_scenario("two_sensors", f"white source, noise variance 0.1 on a and 1.0 on b, delay {delay} s, "
-                       f"{n} samples", scaled(white, 1.0), scaled(white, 0.1), scaled(white, 1.0),
-                       delay, fs, n, 0.5),
-        delay_scenario("gappy", f"AR(1) phi 0.9 source at 10 Hz + white noise var 0.1 on both, delay 0.37 s, "
-                       f"{ar_n} samples, 20 % missing in bursts (mean 50 samples)",
-                       scaled(ar_psd, ar1_rms(1.0, phi) ** 2), scaled(ar_white, 0.1), scaled(ar_white, 0.1),
-                       0.37, ar_fs, ar_n, 10.0, gaps=True),
+        delay_scenario(
+            "delay_inband",
+            f"white source, white noise SNR 4 on both, delay {delay} s, fs 100 Hz, {n} samples, max_lag 0.5 s",
+            scaled(white, 1.0),
+            scaled(white, 0.25),
+            scaled(white, 0.25),
+            delay,
+            fs,
+            n,
+            0.5,
+        ),
+        delay_scenario(
+            "delay_broadband",
+            f"source 0-10 Hz, white sensor noise 0-50 Hz (in-band SNR 4, total SNR 0.8), delay {delay} s, {n} samples",
+            scaled(low10, 1.0),
+            broadband_noise,
+            broadband_noise,
+            delay,
+            fs,
+            n,
+            0.5,
+        ),
+        delay_scenario(
+            "band_limited",
+            f"source and noise (SNR 4) 0-20 Hz, 20-50 Hz empty, delay {delay} s, {n} samples",
+            scaled(low20, 1.0),
+            scaled(low20, 0.25),
+            scaled(low20, 0.25),
+            delay,
+            fs,
+            n,
+            0.5,
+        ),
+        delay_scenario(
+            "two_sensors",
+            f"white source, noise variance 0.1 on a and 1.0 on b, delay {delay} s, {n} samples",
+            scaled(white, 1.0),
+            scaled(white, 0.1),
+            scaled(white, 1.0),
+            delay,
+            fs,
+            n,
+            0.5,
+        ),
+        delay_scenario(
+            "gappy",
+            f"AR(1) phi 0.9 source at 10 Hz + white noise var 0.1 on both, delay 0.37 s, "
+            f"{ar_n} samples, 20 % missing in bursts (mean 50 samples)",
+            scaled(ar_psd, ar1_rms(1.0, phi) ** 2),
+            scaled(ar_white, 0.1),
+            scaled(ar_white, 0.1),
+            0.37,
+            ar_fs,
+            ar_n,
+            10.0,
+            gaps=True,
+        ),
     ]
 
 
@@ -393,10 +461,12 @@ def build_scenarios() -> List[Scenario]:
 def scenario_config(scenario: Scenario, weighting: str):
     """The asset configuration of a scenario (defaults elsewhere: screening on, biased estimator,
     mean detrend, target_rel_error 0.05)."""
-    raw = {"asset": {"name": "calibration"},
-           "archive": {"path": "unused", "sample_rate_hz": scenario.fs},
-           "windows": {"length_s": scenario.n_samples / scenario.fs},
-           "correlation": {"max_lag_s": scenario.max_lag_s, "weighting": weighting}}
+    raw = {
+        "asset": {"name": "calibration"},
+        "archive": {"path": "unused", "sample_rate_hz": scenario.fs},
+        "windows": {"length_s": scenario.n_samples / scenario.fs},
+        "correlation": {"max_lag_s": scenario.max_lag_s, "weighting": weighting},
+    }
     if scenario.modes:
         raw["modes"] = [dict(m) for m in scenario.modes]
     return parse_config(raw)
@@ -412,8 +482,9 @@ def _pair_quality(pair) -> str:
 
 def observe_window(scenario: Scenario, values, valid, configs) -> Dict[Tuple[str, str], Observation]:
     """Estimates of one window for every cell of the scenario (weighted lags per config)."""
-    block = WindowBlock("calibration", 0, scenario.n_samples / scenario.fs, scenario.fs,
-                        scenario.channels, values, valid)
+    block = WindowBlock(
+        "calibration", 0, scenario.n_samples / scenario.fs, scenario.fs, scenario.channels, values, valid
+    )
     out: Dict[Tuple[str, str], Observation] = {}
     for weighting, config in configs.items():
         wc, _ = analyse_window(block, config)
@@ -462,13 +533,16 @@ def cell_summary(truth: float, observations: List[Observation]) -> dict:
     informational = np.array([o[2] != "ok" for o in observations]) & ~is_held
     with np.errstate(invalid="ignore", divide="ignore"):
         return {
-            "truth": truth, "n": int(finite.sum()), "windows": len(observations),
+            "truth": truth,
+            "n": int(finite.sum()),
+            "windows": len(observations),
             "bias_se": float(np.mean(e - truth) / median_se) if len(e) else float("nan"),
             "scatter_se": float(np.std(e, ddof=1) / median_se) if len(e) > 1 else float("nan"),
             # normalised MAD (1.4826 MAD, the standard deviation for a normal law): outliers apart
             "mad_se": float(1.4826 * np.median(np.abs(e - np.median(e))) / median_se) if len(e) else float("nan"),
             "coverage": float(np.mean(np.abs(e - truth) <= 1.96 * s)) if len(e) else float("nan"),
-            "held": float(is_held.mean()), "info": float(informational.mean()),
+            "held": float(is_held.mean()),
+            "info": float(informational.mean()),
             "codes": ", ".join(f"{c} {n / len(observations):.2f}" for c, n in codes.most_common(3)),
         }
 
@@ -491,8 +565,7 @@ def run_scenario(scenario: Scenario, n_windows: int, seed: int) -> List[Tuple[Tu
     return out
 
 
-_ORDER = ("coef@", "R0/", "rms", "corr_time_s", "decay_time_s", "mode_freq_hz", "mode_damping", "lag_s",
-          "peak_coef")
+_ORDER = ("coef@", "R0/", "rms", "corr_time_s", "decay_time_s", "mode_freq_hz", "mode_damping", "lag_s", "peak_coef")
 
 
 def _indicator_order(indicator: str) -> Tuple[int, str]:
@@ -523,9 +596,12 @@ def print_matrix(results: List[Tuple[Scenario, list]]) -> None:
     print("| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |")
     for scenario, cells in results:
         for (subject, indicator), c in cells:
-            print(f"| {scenario.name} | {subject} {indicator} | {format_value(c['truth'])} | {c['n']} | "
-                  f"{c['bias_se']:+.2f} | {c['scatter_se']:.2f} | {c['mad_se']:.2f} | {c['coverage']:.3f} | {c['held']:.2f} | "
-                  f"{c['info']:.2f} | {c['codes']} |")
+            print(
+                f"| {scenario.name} | {subject} {indicator} | {format_value(c['truth'])} | {c['n']} | "
+                f"{c['bias_se']:+.2f} | {c['scatter_se']:.2f} | {c['mad_se']:.2f} | {c['coverage']:.3f} | "
+                f"{c['held']:.2f} | "
+                f"{c['info']:.2f} | {c['codes']} |"
+            )
 
 
 # ----------------------------------------------------------------------------------------------
@@ -534,8 +610,11 @@ def print_matrix(results: List[Tuple[Scenario, list]]) -> None:
 
 def _detect_shifts():
     """The stage's ``detect_shifts``, wherever the refactor currently keeps it."""
-    for module in ("corrtransforms.stages.shifts", "corrtransforms.stages.detect",
-                   "corrtransforms.stages.shift_detection"):
+    for module in (
+        "corrtransforms.stages.shifts",
+        "corrtransforms.stages.detect",
+        "corrtransforms.stages.shift_detection",
+    ):
         try:
             return importlib.import_module(module).detect_shifts
         except (ImportError, AttributeError):
@@ -556,18 +635,21 @@ SERIES_STDERR = 0.0
 def detector_config():
     """Default ``[shifts]`` (detector "both", CUSUM k 0.5 h 10, EWMA lambda 0.1 L 4.3) with a
     baseline of the first 120 windows."""
-    return parse_config({"asset": {"name": "calibration"},
-                         "archive": {"path": "unused", "sample_rate_hz": 1.0},
-                         "windows": {"length_s": 600.0},
-                         "baseline": {"windows": BASELINE_WINDOWS}})
+    return parse_config(
+        {
+            "asset": {"name": "calibration"},
+            "archive": {"path": "unused", "sample_rate_hz": 1.0},
+            "windows": {"length_s": 600.0},
+            "baseline": {"windows": BASELINE_WINDOWS},
+        }
+    )
 
 
 def monitored_states(detect, config, residuals: np.ndarray) -> np.ndarray:
     """True where a monitored window (after the baseline) is in state "shifted"."""
     n = len(residuals)
     times = 1_700_000_000_000_000 // WINDOW_US * WINDOW_US + WINDOW_US * np.arange(n, dtype=np.int64)
-    table, _ = detect(times, residuals, np.full(n, SERIES_STDERR), None, None, config,
-                      subject="s", indicator="rms")
+    table, _ = detect(times, residuals, np.full(n, SERIES_STDERR), None, None, config, subject="s", indicator="rms")
     states = np.array(table.column("state").to_pylist(), dtype=object)
     return states[BASELINE_WINDOWS:] == "shifted"
 
@@ -586,11 +668,14 @@ def detector_row(detect, config, phi: float, seeds: int, monitored: int, seed: i
         episodes += int(shifted[0]) + int(np.sum(shifted[1:] & ~shifted[:-1]))
         first_alarm.append(int(np.argmax(shifted)) + 1 if shifted.any() else np.inf)
     run = np.array(first_alarm, dtype=float)
-    out = {"phi": phi, "episodes_per_1000": 1000.0 * episodes / (seeds * monitored),
-           "alarm_free": float(np.mean(~np.isfinite(run))),
-           "median_run": float(np.median(run)),
-           # restricted mean: mean of min(run, monitored), a lower bound of the ARL when censored
-           "restricted_mean_run": float(np.mean(np.minimum(run, monitored)))}
+    out = {
+        "phi": phi,
+        "episodes_per_1000": 1000.0 * episodes / (seeds * monitored),
+        "alarm_free": float(np.mean(~np.isfinite(run))),
+        "median_run": float(np.median(run)),
+        # restricted mean: mean of min(run, monitored), a lower bound of the ARL when censored
+        "restricted_mean_run": float(np.mean(np.minimum(run, monitored))),
+    }
     horizon = 300
     for delta in steps:
         delays = []
@@ -605,19 +690,25 @@ def detector_row(detect, config, phi: float, seeds: int, monitored: int, seed: i
 
 
 def print_detectors(rows: List[dict], seeds: int, monitored: int) -> None:
-    print(f"\nShift detectors (defaults: detector both, CUSUM k 0.5 h 10, EWMA lambda 0.1 L 4.3), "
-          f"baseline {BASELINE_WINDOWS} windows, AR(1) residuals of unit variance, {seeds} seeds per row, "
-          f"{monitored} monitored windows each; steps start at the first monitored window, "
-          f"detected within 300 windows")
-    print("| phi | false episodes / 1000 windows | alarm-free series | median run to first false alarm | "
-          f"restricted mean run (<= {monitored}) | step 1: median delay (detected) | "
-          "step 2: median delay (detected) |")
+    print(
+        f"\nShift detectors (defaults: detector both, CUSUM k 0.5 h 10, EWMA lambda 0.1 L 4.3), "
+        f"baseline {BASELINE_WINDOWS} windows, AR(1) residuals of unit variance, {seeds} seeds per row, "
+        f"{monitored} monitored windows each; steps start at the first monitored window, "
+        f"detected within 300 windows"
+    )
+    print(
+        "| phi | false episodes / 1000 windows | alarm-free series | median run to first false alarm | "
+        f"restricted mean run (<= {monitored}) | step 1: median delay (detected) | "
+        "step 2: median delay (detected) |"
+    )
     print("| --- | --- | --- | --- | --- | --- | --- |")
     for r in rows:
         d1, d2 = r["delay_1"], r["delay_2"]
         median_run = f"> {monitored}" if not np.isfinite(r["median_run"]) else f"{r['median_run']:.0f}"
-        print(f"| {r['phi']:g} | {r['episodes_per_1000']:.2f} | {r['alarm_free']:.2f} | {median_run} | "
-              f"{r['restricted_mean_run']:.0f} | {format_delay(d1)} | {format_delay(d2)} |")
+        print(
+            f"| {r['phi']:g} | {r['episodes_per_1000']:.2f} | {r['alarm_free']:.2f} | {median_run} | "
+            f"{r['restricted_mean_run']:.0f} | {format_delay(d1)} | {format_delay(d2)} |"
+        )
 
 
 def format_delay(delay: Tuple[float, float]) -> str:
@@ -633,9 +724,14 @@ def main(argv=None) -> None:
     parser.add_argument("--detector-seeds", type=int, default=200, help="series per detector row (default 200)")
     parser.add_argument("--monitored", type=int, default=1000, help="monitored windows per in-control series")
     parser.add_argument("--skip-detectors", action="store_true")
-    parser.add_argument("--ar1-samples", type=int, nargs="*", default=(),
-                        help="extra AR(1) scenarios ar1_nN of N samples each (phi 0.9, fs 10 Hz), "
-                             "e.g. to choose the few_effective_samples threshold")
+    parser.add_argument(
+        "--ar1-samples",
+        type=int,
+        nargs="*",
+        default=(),
+        help="extra AR(1) scenarios ar1_nN of N samples each (phi 0.9, fs 10 Hz), "
+        "e.g. to choose the few_effective_samples threshold",
+    )
     args = parser.parse_args(argv)
     scenarios = build_scenarios() + [ar1_scenario(f"ar1_n{n}", n) for n in args.ar1_samples]
     if args.scenarios:
@@ -659,8 +755,10 @@ def main(argv=None) -> None:
     matrix_s = time.perf_counter() - start
     if not args.skip_detectors:
         detect, config = _detect_shifts(), detector_config()
-        rows = [detector_row(detect, config, phi, args.detector_seeds, args.monitored, args.seed)
-                for phi in (0.0, 0.5, 0.7, 0.9)]
+        rows = [
+            detector_row(detect, config, phi, args.detector_seeds, args.monitored, args.seed)
+            for phi in (0.0, 0.5, 0.7, 0.9)
+        ]
         print_detectors(rows, args.detector_seeds, args.monitored)
     print(f"\nrun time: matrix {matrix_s:.0f} s, total {time.perf_counter() - start:.0f} s")
 

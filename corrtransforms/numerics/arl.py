@@ -393,7 +393,7 @@ def baseline_error_spread(n: int):
     Notes
     -----
     Large-sample approximations (from memory); their effect on the false-alarm rate is checked
-    by simulation in tests/test_detectors.py and benchmarks/calibration.py.
+    by simulation in tests/numerics/test_detectors.py and benchmarks/calibration.py.
     """
     offset_sd = float(np.sqrt(MEDIAN_VARIANCE_FACTOR / n))
     return offset_sd, float(np.sqrt(MAD_VARIANCE_FACTOR / n))

@@ -17,9 +17,10 @@ The two lag-sum forms are kept apart on purpose: :func:`bartlett_sums` gives onl
 diagonal of a pair's variance needs, for every lag of many pairs at once; :func:`lag_sums` gives
 ``c(m)`` at every ``m = 0..2L`` of one auto-correlation, which the off-diagonal covariance needs.
 """
+
 from __future__ import annotations
 
-from typing import Sequence, Tuple
+from typing import Sequence, Tuple, Union
 
 import numpy as np
 import scipy.fft
@@ -29,6 +30,9 @@ from corrtransforms.numerics.correlation import even_extension
 
 #: above this many lags the covariance matrix is built on every k-th lag (the lag errors are
 #: smooth over the correlation time, so a linear functional changes by well under 1 %)
+#: lag indices: a sequence or an integer array
+LagIndices = Union[Sequence[int], np.ndarray]
+
 MAX_COVARIANCE_LAGS = 1024
 
 
@@ -73,8 +77,8 @@ def bartlett_sums(rho_ab, rho_aa, rho_bb):
     # index j of a full convolution of two (2L+1)-arrays is lag j - 2L
     conv_ab_ab = scipy.fft.irfft(F_ab * F_ab, n=K, axis=-1)
     conv_mixed = scipy.fft.irfft(F_ab * F_sum, n=K, axis=-1)
-    reflected = conv_ab_ab[..., 0:4 * L + 1:2]
-    mixed = conv_mixed[..., L:3 * L + 1]
+    reflected = conv_ab_ab[..., 0 : 4 * L + 1 : 2]
+    mixed = conv_mixed[..., L : 3 * L + 1]
     constant = (aa * bb).sum(axis=-1)
     square = (ab * ab + 0.5 * aa * aa + 0.5 * bb * bb).sum(axis=-1)
     return constant, reflected, mixed, square
@@ -129,7 +133,7 @@ def bartlett_stderr(rho_ab, rho_aa, rho_bb, pair_count):
     rho = np.asarray(rho_ab, dtype=float)
     constant, reflected, mixed, square = bartlett_sums(rho_ab, rho_aa, rho_bb)
     r = _finite_or_zero(rho)
-    n_var = (constant[..., None] + reflected - 2.0 * r * mixed + r * r * square[..., None])
+    n_var = constant[..., None] + reflected - 2.0 * r * mixed + r * r * square[..., None]
     count = np.asarray(pair_count, dtype=float)
     with np.errstate(invalid="ignore", divide="ignore"):
         var = np.maximum(n_var, 0.0) / count
@@ -177,10 +181,10 @@ def lag_sums(rho: np.ndarray) -> np.ndarray:
     full = even_extension(rho)
     n_fft = scipy.fft.next_fast_len(2 * len(full), real=True)
     spectrum = scipy.fft.rfft(full, n_fft)
-    return scipy.fft.irfft(spectrum * np.conj(spectrum), n_fft)[:2 * L + 1]
+    return scipy.fft.irfft(spectrum * np.conj(spectrum), n_fft)[: 2 * L + 1]
 
 
-def bartlett_kernel(coefficient, lags: Sequence[int]) -> np.ndarray:
+def bartlett_kernel(coefficient, lags: LagIndices) -> np.ndarray:
     """``n cov[r_i, r_j]`` of Bartlett's formula for an auto-correlation, at lag indices ``lags``.
 
     Parameters
@@ -228,10 +232,10 @@ def bartlett_variance(coefficient) -> np.ndarray:
     rho = np.nan_to_num(np.asarray(coefficient, dtype=float))
     c = lag_sums(rho)
     k = np.arange(len(rho))
-    return np.clip(c[0] + c[2 * k] - 4 * rho * c[k] + 2 * rho ** 2 * c[0], 0.0, None)
+    return np.clip(c[0] + c[2 * k] - 4 * rho * c[k] + 2 * rho**2 * c[0], 0.0, None)
 
 
-def lag_error_covariance(coefficient, stderr, lags: Sequence[int]) -> np.ndarray:
+def lag_error_covariance(coefficient, stderr, lags: LagIndices) -> np.ndarray:
     """Covariance of the estimation errors of an auto-correlation at chosen lags (Bartlett).
 
     Parameters
@@ -327,7 +331,7 @@ def coarsen_lags(weights, lags, n_lags: int) -> Tuple[np.ndarray, np.ndarray]:
         w = np.bincount(groups, weights=w)
     else:
         w = np.stack([np.bincount(groups, weights=w[:, m]) for m in range(w.shape[1])], axis=1)
-    nodes = np.minimum(idx[::stride][:w.shape[0]] + (stride - 1) // 2, n_lags - 1)
+    nodes = np.minimum(idx[::stride][: w.shape[0]] + (stride - 1) // 2, n_lags - 1)
     return w, nodes
 
 
@@ -350,8 +354,10 @@ def kernel_quadratic_form(model: np.ndarray, first: int, spacing: int, G: np.nda
     nodes = first + spacing * np.arange(m)
     toeplitz = c[spacing * np.abs(np.arange(-(m - 1), m))][:, None]
     hankel = c[2 * first + spacing * np.arange(2 * m - 1)][:, None]
-    KG = (scipy.signal.fftconvolve(toeplitz, G, axes=0)[m - 1:2 * m - 1]
-          + scipy.signal.fftconvolve(hankel, G[::-1], axes=0)[m - 1:2 * m - 1])
+    KG = (
+        scipy.signal.fftconvolve(toeplitz, G, axes=0)[m - 1 : 2 * m - 1]
+        + scipy.signal.fftconvolve(hankel, G[::-1], axes=0)[m - 1 : 2 * m - 1]
+    )
     g_rho = G.T @ rho[nodes]
     g_c = G.T @ c[nodes]
     meat = G.T @ KG - 2 * np.outer(g_rho, g_c) - 2 * np.outer(g_c, g_rho) + 2 * c[0] * np.outer(g_rho, g_rho)

@@ -15,6 +15,7 @@ with max_lag (1.71 / 1.85 / 1.90 tau_c at L = 5 / 10 / 20 tau_c for exp(-|tau|/t
 linear transform gives 1.915 / 1.913 / 1.913 tau_c. The circular form is kept for the modal
 fit and the lag peak, whose results do not change.
 """
+
 from __future__ import annotations
 
 import numpy as np
@@ -51,7 +52,7 @@ def analytic_correlation(coefficient, auto: bool = True) -> np.ndarray:
     """
     rho = np.asarray(coefficient, dtype=float)
     if auto:
-        return scipy.signal.hilbert(even_extension(rho), axis=-1)[..., rho.shape[-1] - 1:]
+        return scipy.signal.hilbert(even_extension(rho), axis=-1)[..., rho.shape[-1] - 1 :]
     return scipy.signal.hilbert(rho, axis=-1)
 
 
@@ -127,7 +128,7 @@ def even_hilbert_transform(coefficient) -> np.ndarray:
     extension = even_extension(rho)
     kernel = _hilbert_kernel(np.arange(-2 * L, 2 * L + 1))
     full = scipy.signal.fftconvolve(extension, kernel, mode="full")
-    return full[3 * L:4 * L + 1]
+    return full[3 * L : 4 * L + 1]
 
 
 def hilbert_row(lag: int, n_lags: int) -> np.ndarray:

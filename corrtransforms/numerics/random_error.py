@@ -22,6 +22,7 @@ random-phase tone (:func:`tone_required_half_length`) and the validity checks
 per-lag variance lives in :mod:`corrtransforms.numerics.bartlett`, the PSD and the tone finder
 in :mod:`corrtransforms.numerics.spectra`.
 """
+
 from __future__ import annotations
 
 from typing import List
@@ -39,9 +40,10 @@ QUALITY_CODES = {
     "negative_psd": "the spectrum of the biased auto-correlation (Parzen lag window) is negative somewhere",
     "few_pairs": "some lags had fewer valid sample pairs than min_pairs and are NaN",
     "max_lag_short": "the auto-correlation has not decayed within max_lag (|rho| > 0.2 in the last 10 % of lags): "
-                     "bandwidth, stderr and n_effective are then optimistic",
+    "bandwidth, stderr and n_effective are then optimistic",
     "tone_record_short": "the record is shorter than the random-phase tone bound for the strongest sharp PSD peak",
 }
+
 
 def correlation_random_error(rho_ab, rho_aa, rho_bb, pair_count):
     """Normalised random error of the correlation estimate ``R_ab`` at every lag (general form).
@@ -176,8 +178,9 @@ def correlation_rel_error(rho, bandwidth_hz, record_s):
     """
     r = np.asarray(rho, dtype=float)
     with np.errstate(invalid="ignore", divide="ignore"):
-        return np.sqrt(1.0 + 1.0 / (r * r)) / np.sqrt(2.0 * np.asarray(bandwidth_hz, dtype=float)
-                                                         * np.asarray(record_s, dtype=float))
+        return np.sqrt(1.0 + 1.0 / (r * r)) / np.sqrt(
+            2.0 * np.asarray(bandwidth_hz, dtype=float) * np.asarray(record_s, dtype=float)
+        )
 
 
 def required_record_length(bandwidth_hz, target_rel_error, rho=None):

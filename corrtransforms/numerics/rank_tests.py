@@ -10,6 +10,7 @@
 Arrays in, results out (numpy and scipy only); the screening stage runs them on segment
 statistics (:mod:`corrtransforms.numerics.segments`).
 """
+
 from __future__ import annotations
 
 import dataclasses
@@ -25,6 +26,7 @@ RUNS_METHODS = ("exact", "normal")
 
 # --------------------------------------------------------------------------------------------
 # Reverse arrangements test
+
 
 def reverse_arrangements(sequence) -> float:
     """Number of reverse arrangements (inversions) of a sequence.
@@ -120,8 +122,9 @@ PERCENTAGE_POINT_CONVENTIONS = ("nearest", "conservative")
 
 def _percentage_point(pmf: np.ndarray, alpha: float, convention: str) -> int:
     if convention not in PERCENTAGE_POINT_CONVENTIONS:
-        raise ValueError(f"convention = {convention!r}: must be one of "
-                         + ", ".join(f'"{c}"' for c in PERCENTAGE_POINT_CONVENTIONS))
+        raise ValueError(
+            f"convention = {convention!r}: must be one of " + ", ".join(f'"{c}"' for c in PERCENTAGE_POINT_CONVENTIONS)
+        )
     if not 0 < alpha < 1:
         raise ValueError(f"alpha = {alpha!r}: must be in (0, 1)")
     exceed = 1.0 - np.cumsum(pmf)  # P[X > x]
@@ -157,7 +160,7 @@ def reverse_arrangements_percentage_point(n: int, alpha: float, convention: str 
     ``alpha`` in {0.99, 0.975, 0.95, 0.05, 0.025, 0.01}; a two-sided test at level ``alpha``
     accepts stationarity when ``A_{N; 1 - alpha/2} < A <= A_{N; alpha/2}``. The entries of that
     table agree with the ``"nearest"`` points of the exact distribution within one count for
-    N <= 90 (tests/test_stationarity.py).
+    N <= 90 (tests/stages/test_screen.py).
 
     References
     ----------
@@ -212,14 +215,15 @@ def reverse_arrangements_test(sequence) -> TrendTestResult:
     pmf = reverse_arrangements_distribution(n)
     cdf = np.cumsum(pmf)
     total = len(pmf) - 1
-    lower = cdf[min(total, int(math.ceil(statistic)))]                 # P[A_0 <= A]
-    upper = cdf[min(total, int(math.ceil(total - statistic)))]         # P[A_0 >= A] by symmetry
+    lower = cdf[min(total, int(math.ceil(statistic)))]  # P[A_0 <= A]
+    upper = cdf[min(total, int(math.ceil(total - statistic)))]  # P[A_0 >= A] by symmetry
     mean, variance = reverse_arrangements_moments(n)
     return TrendTestResult(statistic, mean, variance, float(min(1.0, 2.0 * min(lower, upper))), n)
 
 
 # --------------------------------------------------------------------------------------------
 # Runs test
+
 
 def runs_about_median(sequence) -> Tuple[int, int, int]:
     """Runs of a sequence about its median.
@@ -281,8 +285,7 @@ def runs_distribution(n_above: int, n_below: int) -> np.ndarray:
     for r in range(2, n1 + n2 + 1):
         k, odd = divmod(r, 2)
         if odd:
-            count = math.comb(n1 - 1, k) * math.comb(n2 - 1, k - 1) \
-                + math.comb(n1 - 1, k - 1) * math.comb(n2 - 1, k)
+            count = math.comb(n1 - 1, k) * math.comb(n2 - 1, k - 1) + math.comb(n1 - 1, k - 1) * math.comb(n2 - 1, k)
         else:
             count = 2 * math.comb(n1 - 1, k - 1) * math.comb(n2 - 1, k - 1)
         pmf[r] = count / total
@@ -357,6 +360,7 @@ def runs_test(sequence, method: str = "exact", continuity_correction: bool = Tru
 
 # --------------------------------------------------------------------------------------------
 # Variance outlier test (bursts and drop-outs)
+
 
 @dataclasses.dataclass(frozen=True)
 class OutlierTestResult:

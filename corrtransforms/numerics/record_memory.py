@@ -7,6 +7,7 @@ sharp spectral lines removed (:func:`corrtransforms.numerics.spectra.spectral_li
 independence rule (each segment :data:`INDEPENDENCE_FACTOR` memory times long, at least
 :data:`MINIMUM_SEGMENTS` segments).
 """
+
 from __future__ import annotations
 
 import dataclasses
@@ -26,7 +27,6 @@ from corrtransforms.numerics.timescales import integral_time_scale
 INDEPENDENCE_FACTOR = 10.0
 #: fewest segments a test is run on (the smallest N of the published percentage-point tables)
 MINIMUM_SEGMENTS = 10
-
 
 
 @dataclasses.dataclass(frozen=True)
@@ -62,8 +62,9 @@ class CorrelationTimeScales:
     kurtosis: float
 
 
-def correlation_time_scales(values, valid=None, fs: float = 1.0,
-                            max_memory_s: Optional[float] = None) -> CorrelationTimeScales:
+def correlation_time_scales(
+    values, valid=None, fs: float = 1.0, max_memory_s: Optional[float] = None
+) -> CorrelationTimeScales:
     """Integral time scale and last lag with ``|rho| >= 1/e`` of a record, from one FFT auto-correlation.
 
     Parameters
@@ -121,8 +122,9 @@ def correlation_time_scales(values, valid=None, fs: float = 1.0,
     return result
 
 
-def screening_memory_limit_s(record_s: float, factor: float = INDEPENDENCE_FACTOR,
-                             minimum: int = MINIMUM_SEGMENTS) -> float:
+def screening_memory_limit_s(
+    record_s: float, factor: float = INDEPENDENCE_FACTOR, minimum: int = MINIMUM_SEGMENTS
+) -> float:
     """Longest memory time at which a record of ``record_s`` seconds can still be screened.
 
     A memory time above ``record_s / (factor * minimum)`` leaves fewer than ``minimum`` segments
@@ -141,8 +143,7 @@ def _lag_limits(n: int, fs: float, max_memory_s: Optional[float]) -> Tuple[int, 
     return _fft.next_fast_len(n + max_lag + 1), max_lag, max(1, min(n // 4, max_lag))
 
 
-def record_time_scales(x: np.ndarray, m: np.ndarray, fs: float,
-                       max_memory_s: Optional[float] = None):
+def record_time_scales(x: np.ndarray, m: np.ndarray, fs: float, max_memory_s: Optional[float] = None):
     """:func:`correlation_time_scales` of several records at once (rows of ``x``, masks ``m``).
 
     ``x`` holds the records with 0 at invalid samples (as
@@ -163,7 +164,7 @@ def record_time_scales(x: np.ndarray, m: np.ndarray, fs: float,
     size, max_lag, search = _lag_limits(n, fs, max_memory_s)
     deviation *= taper
     spectrum = _fft.rfft(deviation, size, axis=-1, workers=transform_threads())
-    power = spectrum.real ** 2 + spectrum.imag ** 2
+    power = spectrum.real**2 + spectrum.imag**2
     if same_mask and masks[0].all():
         counts = _complete_taper_counts(n, size, max_lag)  # the same for every complete record
     else:
@@ -172,15 +173,21 @@ def record_time_scales(x: np.ndarray, m: np.ndarray, fs: float,
     # rows without a line: the clean spectrum is the spectrum itself (no second transform)
     with_lines = [k for k, _ in clean_rows]
     stacked = np.concatenate([power, np.stack([row for _, row in clean_rows])]) if clean_rows else power
-    both = _fft.irfft(stacked, size, axis=-1, workers=transform_threads())[:, :max_lag + 1]
-    full = both[:len(rows)] / counts
+    both = _fft.irfft(stacked, size, axis=-1, workers=transform_threads())[:, : max_lag + 1]
+    full = both[: len(rows)] / counts
     clean_correlation = full.copy()
     if with_lines:
-        clean_correlation[with_lines] = both[len(rows):] / (counts if counts.shape[0] == 1 else counts[with_lines])
+        clean_correlation[with_lines] = both[len(rows) :] / (counts if counts.shape[0] == 1 else counts[with_lines])
     for k, i in enumerate(rows):
-        out[i] = _time_scales_from_correlation(full[k] / full[k, 0],
-                                               clean_correlation[k] / clean_correlation[k, 0],
-                                               search, max_lag, fs, int(lines[k].sum()), kurtoses[k])
+        out[i] = _time_scales_from_correlation(
+            full[k] / full[k, 0],
+            clean_correlation[k] / clean_correlation[k, 0],
+            search,
+            max_lag,
+            fs,
+            int(lines[k].sum()),
+            kurtoses[k],
+        )
     return out
 
 
@@ -207,9 +214,9 @@ def _varying_rows(x: np.ndarray, m: np.ndarray, out: list):
     second_all = squared.sum(axis=1) / count
     fourth_all = np.einsum("ij,ij->i", squared, squared) / count
     keep = []
-    for k, i in enumerate(ok):
+    for k, row in enumerate(ok):
         if not second_all[k] > 0:
-            out[i] = ValueError("the record does not vary")
+            out[row] = ValueError("the record does not vary")
         else:
             keep.append(k)
     if not keep:
@@ -246,8 +253,8 @@ def _line_free_power(power: np.ndarray, bins_per_resolution: float):
 def _taper_counts(taper: np.ndarray, size: int, max_lag: int) -> np.ndarray:
     """Lag products of the taper(s) (rows), lags 0..max_lag, floored at 1e-12 of lag 0."""
     weight_spectrum = _fft.rfft(taper, size, axis=-1)
-    counts = _fft.irfft(weight_spectrum.real ** 2 + weight_spectrum.imag ** 2, size, axis=-1)
-    return np.maximum(counts[:, :max_lag + 1], 1e-12 * counts[:, :1])
+    counts = _fft.irfft(weight_spectrum.real**2 + weight_spectrum.imag**2, size, axis=-1)
+    return np.maximum(counts[:, : max_lag + 1], 1e-12 * counts[:, :1])
 
 
 @functools.lru_cache(maxsize=4)
@@ -261,7 +268,7 @@ def _complete_taper_counts(n: int, size: int, max_lag: int) -> np.ndarray:
 
 def _time_scales_from_correlation(rho_full, rho, search, max_lag, fs, line_count, kurtosis):
     integral = integral_time_scale(rho, 1.0)  # in samples
-    magnitude = np.abs(rho[:search + 1])
+    magnitude = np.abs(rho[: search + 1])
     above = np.nonzero(magnitude >= 1.0 / math.e)[0]
     last = int(above[-1])
     if last >= search:
@@ -272,14 +279,18 @@ def _time_scales_from_correlation(rho_full, rho, search, max_lag, fs, line_count
     memory_samples = max(integral, last_above)
 
     reach = int(min(max_lag, max(1, math.ceil(3 * memory_samples))))
-    sum_rho_squared = float(rho_full[0] ** 2 + 2.0 * np.sum(rho_full[1:reach + 1] ** 2))
+    sum_rho_squared = float(rho_full[0] ** 2 + 2.0 * np.sum(rho_full[1 : reach + 1] ** 2))
     per_sample = 1.0 / sum_rho_squared
-    return CorrelationTimeScales(integral / fs, last_above / fs, memory_samples / fs, line_count,
-                                 per_sample, kurtosis)
+    return CorrelationTimeScales(integral / fs, last_above / fs, memory_samples / fs, line_count, per_sample, kurtosis)
 
 
-def segments_for_record(record_s: float, memory_s: float, requested: int,
-                        factor: float = INDEPENDENCE_FACTOR, minimum: int = MINIMUM_SEGMENTS) -> int:
+def segments_for_record(
+    record_s: float,
+    memory_s: float,
+    requested: int,
+    factor: float = INDEPENDENCE_FACTOR,
+    minimum: int = MINIMUM_SEGMENTS,
+) -> int:
     """Number of segments a window can hold under the independence rule (0 if too short).
 
     Parameters

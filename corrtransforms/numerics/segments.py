@@ -10,6 +10,7 @@ References
 ----------
 J. S. Bendat and A. G. Piersol, Random Data, 4th ed., Wiley 2010, Sect. 10.3.
 """
+
 from __future__ import annotations
 
 import dataclasses
@@ -148,13 +149,14 @@ def segment_statistics_of_rows(x: np.ndarray, m: np.ndarray, segments: int) -> l
         mean = x[:, :used].reshape(rows, segments, length).sum(axis=2) / count
         mean_square = squared.sum(axis=2) / count
         squared *= squared
-        kurtosis = squared.sum(axis=2) / count / mean_square ** 2
-    return [SegmentStatistics(length, count[r].copy(), mean[r], mean_square[r], (float(centers[r]),),
-                              kurtosis[r]) for r in range(rows)]
+        kurtosis = squared.sum(axis=2) / count / mean_square**2
+    return [
+        SegmentStatistics(length, count[r].copy(), mean[r], mean_square[r], (float(centers[r]),), kurtosis[r])
+        for r in range(rows)
+    ]
 
 
-def segment_cross_products(values_a, values_b, valid_a=None, valid_b=None,
-                           segments: int = 20) -> SegmentStatistics:
+def segment_cross_products(values_a, values_b, valid_a=None, valid_b=None, segments: int = 20) -> SegmentStatistics:
     """Segment mean cross-products of two records (joint stationarity).
 
     Parameters
@@ -206,8 +208,8 @@ class SegmentCrossProducts:
     def __init__(self, records: np.ndarray, valid: np.ndarray):
         self._records = records
         self._valid = valid
-        self._complete = valid.all(axis=1)
-        self._deviation = None
+        self._complete: np.ndarray = np.asarray(valid.all(axis=1))
+        self._deviation: Optional[np.ndarray] = None
         self._by_count: Dict[int, Tuple[int, np.ndarray, np.ndarray, np.ndarray]] = {}
 
     def statistics(self, a: int, b: int, segments: int) -> SegmentStatistics:
@@ -217,17 +219,25 @@ class SegmentCrossProducts:
         if self._deviation is None:
             self._centers = self._records.mean(axis=1)
             self._deviation = self._records - self._centers[:, None]
+        deviation = self._deviation
+        assert deviation is not None
         if segments not in self._by_count:
             n = self._records.shape[1]
             length = _segment_layout(n, segments)
             used = length * segments
-            pieces = self._deviation[:, :used].reshape(-1, segments, length).transpose(1, 0, 2)
+            pieces = deviation[:, :used].reshape(-1, segments, length).transpose(1, 0, 2)
             products = np.matmul(pieces, pieces.transpose(0, 2, 1)) / length  # (segments, c, c)
             means = self._records[:, :used].reshape(-1, segments, length).sum(axis=2) / length
             self._by_count[segments] = (length, np.full(segments, length), products, means)
         length, count, products, means = self._by_count[segments]
-        return SegmentStatistics(length, count, means[a], products[:, a, b].copy(),
-                                 (float(self._centers[a]), float(self._centers[b])), np.full(segments, np.nan))
+        return SegmentStatistics(
+            length,
+            count,
+            means[a],
+            products[:, a, b].copy(),
+            (float(self._centers[a]), float(self._centers[b])),
+            np.full(segments, np.nan),
+        )
 
     def _gappy_pair(self, ia: int, ib: int, segments: int) -> SegmentStatistics:
         a, b = self._records[ia], self._records[ib]
@@ -241,5 +251,4 @@ class SegmentCrossProducts:
         with np.errstate(invalid="ignore", divide="ignore"):
             mean = np.where(both, a, 0.0)[:used].reshape(segments, length).sum(axis=1) / count
             cross = product.sum(axis=1) / count
-        return SegmentStatistics(length, count, mean, cross, (center_a, center_b),
-                                 np.full(segments, np.nan))
+        return SegmentStatistics(length, count, mean, cross, (center_a, center_b), np.full(segments, np.nan))

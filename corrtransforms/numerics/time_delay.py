@@ -10,6 +10,7 @@ positive lag means b lags a.
 same arithmetic, so every row equals :func:`estimate_lag` of its pair, which stays the per-pair
 path a failing batch falls back to).
 """
+
 from __future__ import annotations
 
 import functools
@@ -28,14 +29,14 @@ from corrtransforms.numerics.envelope import correlation_envelope
 QUALITY_CODES = {
     "weak_peak": "|peak_coef| is below PEAK_Z standard errors: the peak is not clear of the noise",
     "peak_at_max_lag": "the largest |rho| sits at the edge of the search range; the true peak may lie "
-                       "beyond max_lag (lag_s is NaN)",
+    "beyond max_lag (lag_s is NaN)",
     "nonfinite_correlation": "NaN lags (too few sample pairs) inside the search range were taken as 0",
     "too_few_lags": "fewer than 3 lags in the search range",
     "spurious_lag_peak": "PHAT/SCOT weighting on a channel whose auto spectrum falls below PSD_FLOOR of its "
-                         "maximum somewhere in 0..fs/2 (the whitening divides by leakage or round-off "
-                         "there), and the weighted peak lies more than AGREEMENT_Z combined stderr from the "
-                         "unweighted peak (lag_s kept, window held out of the shift "
-                         "detectors)",
+    "maximum somewhere in 0..fs/2 (the whitening divides by leakage or round-off "
+    "there), and the weighted peak lies more than AGREEMENT_Z combined stderr from the "
+    "unweighted peak (lag_s kept, window held out of the shift "
+    "detectors)",
 }
 
 #: a peak is "clear" when |peak_coef| exceeds this many standard errors (common practice: about
@@ -104,8 +105,9 @@ def sinc_interpolate(values, positions, center: int, half_width: int = INTERPOLA
     return np.sinc(x[:, None] - j[None, :]) @ v[lo:hi]
 
 
-def refine_peak(values, index: int, upsample: int = UPSAMPLE,
-                half_width: int = INTERPOLATION_HALF_WIDTH) -> Tuple[float, float]:
+def refine_peak(
+    values, index: int, upsample: int = UPSAMPLE, half_width: int = INTERPOLATION_HALF_WIDTH
+) -> Tuple[float, float]:
     """Sub-sample position and height of the peak of ``|values|`` near sample ``index``.
 
     Parameters
@@ -148,8 +150,16 @@ def refine_peak(values, index: int, upsample: int = UPSAMPLE,
     return float(position), height
 
 
-def lag_variance(cross, peak_index: int, lag_step_s: float, record_s: float, auto_a=None,
-                 auto_b=None, weighting: str = "none", peak_coef: Optional[float] = None) -> float:
+def lag_variance(
+    cross,
+    peak_index: int,
+    lag_step_s: float,
+    record_s: float,
+    auto_a=None,
+    auto_b=None,
+    weighting: str = "none",
+    peak_coef: Optional[float] = None,
+) -> float:
     """Small-error variance of the cross-correlation peak lag (Knapp & Carter; Carter).
 
     Parameters
@@ -202,8 +212,19 @@ def lag_variance(cross, peak_index: int, lag_step_s: float, record_s: float, aut
     rho = np.nan_to_num(np.asarray(cross, dtype=float))[None, :]
     autos = [None if auto is None else np.nan_to_num(np.asarray(auto, dtype=float)) for auto in (auto_a, auto_b)]
     coef = np.array([float("nan") if peak_coef is None else float(peak_coef)])
-    return float(_lag_variances(rho, np.array([int(peak_index)]), [0], lag_step_s, np.array([float(record_s)]),
-                                [autos[0]], [autos[1]], [weighting], coef)[0])
+    return float(
+        _lag_variances(
+            rho,
+            np.array([int(peak_index)]),
+            [0],
+            lag_step_s,
+            np.array([float(record_s)]),
+            [autos[0]],
+            [autos[1]],
+            [weighting],
+            coef,
+        )[0]
+    )
 
 
 def envelope_width_s(values, index: int, lag_step_s: float) -> float:
@@ -213,15 +234,28 @@ def envelope_width_s(values, index: int, lag_step_s: float) -> float:
     fall to half its value at ``index`` on both sides, or is not finite.
     """
     try:
-        return float(_envelope_widths(np.nan_to_num(np.asarray(values, dtype=float))[None, :],
-                                      np.array([int(index)]), lag_step_s)[0])
+        return float(
+            _envelope_widths(
+                np.nan_to_num(np.asarray(values, dtype=float))[None, :], np.array([int(index)]), lag_step_s
+            )[0]
+        )
     except ValueError:  # a non-finite envelope
         return float("nan")
 
 
-def estimate_lag(coefficient, stderr, first_lag_s: float, lag_step_s: float, record_s: float,
-                 weighted_coefficient=None, weighting: str = "none", auto_a=None, auto_b=None,
-                 max_lag_s: Optional[float] = None, peak_z: float = PEAK_Z) -> LagEstimate:
+def estimate_lag(
+    coefficient,
+    stderr,
+    first_lag_s: float,
+    lag_step_s: float,
+    record_s: float,
+    weighted_coefficient=None,
+    weighting: str = "none",
+    auto_a=None,
+    auto_b=None,
+    max_lag_s: Optional[float] = None,
+    peak_z: float = PEAK_Z,
+) -> LagEstimate:
     """Lag of the cross-correlation peak, its standard error and the peak coefficient.
 
     Parameters
@@ -270,10 +304,19 @@ def estimate_lag(coefficient, stderr, first_lag_s: float, lag_step_s: float, rec
     s = np.asarray(stderr, dtype=float)
     if rho.shape != s.shape or rho.ndim != 1:
         raise ValueError(f"coefficient {rho.shape} and stderr {s.shape} must be 1-d of equal length")
-    return estimate_lags(rho[None, :], s[None, :], first_lag_s, lag_step_s, [record_s],
-                         weighted_coefficient=None if weighted_coefficient is None else [weighted_coefficient],
-                         weighting=weighting, auto_a=[auto_a], auto_b=[auto_b], max_lag_s=max_lag_s,
-                         peak_z=peak_z)[0]
+    return estimate_lags(
+        rho[None, :],
+        s[None, :],
+        first_lag_s,
+        lag_step_s,
+        [record_s],
+        weighted_coefficient=None if weighted_coefficient is None else [weighted_coefficient],
+        weighting=weighting,
+        auto_a=[auto_a],
+        auto_b=[auto_b],
+        max_lag_s=max_lag_s,
+        peak_z=peak_z,
+    )[0]
 
 
 # --------------------------------------------------------------------------------------------
@@ -286,8 +329,9 @@ _FINE_OFFSETS = np.linspace(-1.0, 1.0, 2 * UPSAMPLE + 1)
 #: ``sinc(grid - j)`` for the default fine grid and the default half-width, as a function of the
 #: sample offset ``j - k`` only: ``k + t`` is exact for the grid's multiples of 1/32, so these are
 #: the very numbers :func:`sinc_interpolate` computes for an interior peak sample ``k``
-_SINC_FINE = np.sinc(_FINE_OFFSETS[:, None] - np.arange(-INTERPOLATION_HALF_WIDTH,
-                                                        INTERPOLATION_HALF_WIDTH + 1)[None, :])
+_SINC_FINE = np.sinc(
+    _FINE_OFFSETS[:, None] - np.arange(-INTERPOLATION_HALF_WIDTH, INTERPOLATION_HALF_WIDTH + 1)[None, :]
+)
 _WINDOW_OFFSETS = np.arange(-INTERPOLATION_HALF_WIDTH, INTERPOLATION_HALF_WIDTH + 1)
 
 
@@ -314,7 +358,7 @@ def _row_arrays(rows, count: int, length: Optional[int], what: str, clean: bool 
     if len(rows) != count:
         raise ValueError(f"{what}: {len(rows)} entries for {count} pairs")
     converted = {}
-    out = []
+    out: list = []
     for row in rows:
         if row is None:
             out.append(None)
@@ -323,8 +367,9 @@ def _row_arrays(rows, count: int, length: Optional[int], what: str, clean: bool 
         if key not in converted:
             array = np.asarray(row, dtype=float)
             if array.ndim != 1 or (length is not None and array.shape != (length,)):
-                raise ValueError(f"{what} row {array.shape} must be 1-d"
-                                 + (f" of length {length}" if length is not None else ""))
+                raise ValueError(
+                    f"{what} row {array.shape} must be 1-d" + (f" of length {length}" if length is not None else "")
+                )
             converted[key] = (row, np.nan_to_num(array) if clean else array)  # `row` kept alive: ids stay unique
         out.append(converted[key][1])
     return out
@@ -363,8 +408,9 @@ def _refine_peaks(located_clean: np.ndarray, located: np.ndarray, peak_index: np
     return position
 
 
-def _interpolate_at(values_clean: np.ndarray, values: np.ndarray, position: np.ndarray,
-                    center: np.ndarray) -> np.ndarray:
+def _interpolate_at(
+    values_clean: np.ndarray, values: np.ndarray, position: np.ndarray, center: np.ndarray
+) -> np.ndarray:
     """:func:`sinc_interpolate` of every row at its one ``position`` around ``center``."""
     count, n = values_clean.shape
     out = np.empty(count)
@@ -404,15 +450,24 @@ def _envelope_widths(located_clean: np.ndarray, peak_index: np.ndarray, lag_step
     return np.where(bad, np.nan, width)
 
 
-def _lag_variances(rho_clean: np.ndarray, peak_index: np.ndarray, rows, lag_step_s: float,
-                   record_s: np.ndarray, autos_a, autos_b, weightings, peak_coef: np.ndarray) -> np.ndarray:
+def _lag_variances(
+    rho_clean: np.ndarray,
+    peak_index: np.ndarray,
+    rows,
+    lag_step_s: float,
+    record_s: np.ndarray,
+    autos_a,
+    autos_b,
+    weightings,
+    peak_coef: np.ndarray,
+) -> np.ndarray:
     """:func:`lag_variance` of the given rows: the real transforms of rows with the same length
     in one call, each channel's auto spectrum for a half-width once (autos reused by identity).
     ``rho_clean`` and the autos are already ``nan_to_num``-ed."""
     count, n = rho_clean.shape
     L = (n - 1) // 2
     variance = np.full(count, np.nan)
-    groups = {}
+    groups: dict = {}
     for row in rows:
         half = L - abs(int(peak_index[row]) - L)
         a, b = autos_a[row], autos_b[row]
@@ -427,13 +482,13 @@ def _lag_variances(rho_clean: np.ndarray, peak_index: np.ndarray, rows, lag_step
         groups.setdefault(scipy.fft.next_fast_len(8 * half, real=False), []).append((row, half))
     for n_fft, members in groups.items():
         segments = np.zeros((len(members), n_fft))
-        auto_slot = {}
+        auto_slot: dict = {}
         for line, (row, half) in enumerate(members):
             # the lags k-half..k+half tapered, lag k at index 0
             center = int(peak_index[row])
-            part = rho_clean[row, center - half:center + half + 1] * _parzen(2 * half + 1)
-            segments[line, :half + 1] = part[half:]
-            segments[line, n_fft - half:] = part[:half]
+            part = rho_clean[row, center - half : center + half + 1] * _parzen(2 * half + 1)
+            segments[line, : half + 1] = part[half:]
+            segments[line, n_fft - half :] = part[:half]
             if autos_a[row] is not None and autos_b[row] is not None:
                 for auto in (autos_a[row], autos_b[row]):
                     auto_slot.setdefault((id(auto), half), (auto, half))
@@ -446,9 +501,9 @@ def _lag_variances(rho_clean: np.ndarray, peak_index: np.ndarray, rows, lag_step
             auto_segments = np.zeros((len(auto_keys), n_fft))
             for line, key in enumerate(auto_keys):
                 auto, half = auto_slot[key]
-                a = auto[:half + 1] * _parzen(2 * half + 1)[half:]
-                auto_segments[line, :half + 1] = a
-                auto_segments[line, n_fft - half:] = a[:0:-1]
+                a = auto[: half + 1] * _parzen(2 * half + 1)[half:]
+                auto_segments[line, : half + 1] = a
+                auto_segments[line, n_fft - half :] = a[:0:-1]
             auto_spectra = np.clip(lag_step_s * scipy.fft.rfft(auto_segments, axis=1).real, 0, None)
             auto_line = {key: line for line, key in enumerate(auto_keys)}
         product = np.empty_like(mag_ab)
@@ -459,8 +514,9 @@ def _lag_variances(rho_clean: np.ndarray, peak_index: np.ndarray, rows, lag_step
             else:
                 gamma2 = min(float(peak_coef[row]) ** 2, 0.999)
                 product[line] = mag_ab[line] ** 2 / gamma2
-        numerator, curvature = _variance_sums(mag_ab, product, [weightings[row] for row, _ in members],
-                                              n_fft, lag_step_s)
+        numerator, curvature = _variance_sums(
+            mag_ab, product, [weightings[row] for row, _ in members], n_fft, lag_step_s
+        )
         for line, (row, _) in enumerate(members):
             if curvature[line] > 0:
                 variance[row] = float(numerator[line] / (record_s[row] * curvature[line] ** 2))
@@ -472,9 +528,9 @@ def _variance_sums(mag_ab: np.ndarray, product: np.ndarray, kinds, n_fft: int, l
     of :func:`lag_variance` for rows of one transform length (``kinds``: each row's weighting)."""
     f = scipy.fft.rfftfreq(n_fft, lag_step_s)
     w2 = (2 * np.pi * f) ** 2
-    w2[1:(n_fft + 1) // 2] *= 2.0
+    w2[1 : (n_fft + 1) // 2] *= 2.0
     df = 1.0 / (n_fft * lag_step_s)
-    excess = mag_ab ** 2  # then, in place: clip(product - |S_ab|^2, 0, None)
+    excess = mag_ab**2  # then, in place: clip(product - |S_ab|^2, 0, None)
     np.subtract(product, excess, out=excess)
     np.clip(excess, 0, None, out=excess)
     if all(kind == "none" for kind in kinds):
@@ -489,7 +545,7 @@ def _variance_sums(mag_ab: np.ndarray, product: np.ndarray, kinds, n_fft: int, l
         psi[phat] = 1.0 / np.maximum(mag_ab[phat], tiny[phat, None])
     if scot.any():
         psi[scot] = 1.0 / np.maximum(np.sqrt(product[scot]), tiny[scot, None])
-    return np.sum(w2 * psi ** 2 * excess, axis=1) * df, np.sum(w2 * psi * mag_ab, axis=1) * df
+    return np.sum(w2 * psi**2 * excess, axis=1) * df, np.sum(w2 * psi * mag_ab, axis=1) * df
 
 
 def auto_spectrum_floor(auto) -> float:
@@ -520,8 +576,8 @@ def auto_spectrum_floor(auto) -> float:
     n_fft = scipy.fft.next_fast_len(8 * half, real=True)
     segment = np.zeros(n_fft)
     tapered = a * _parzen(2 * half + 1)[half:]
-    segment[:half + 1] = tapered
-    segment[n_fft - half:] = tapered[:0:-1]
+    segment[: half + 1] = tapered
+    segment[n_fft - half :] = tapered[:0:-1]
     spectrum = scipy.fft.rfft(segment).real
     peak = spectrum.max()
     return float(max(spectrum.min(), 0.0) / peak) if peak > 0 else float("nan")
@@ -584,8 +640,9 @@ def _peak_coef_stderrs(rho_clean, stderr, position, at_edge, autos_a, autos_b, f
     return out
 
 
-def _disagrees_with_plain(rho, rho_clean, idx, rows, position, variance, record, autos_a, autos_b,
-                          lag_step_s: float) -> np.ndarray:
+def _disagrees_with_plain(
+    rho, rho_clean, idx, rows, position, variance, record, autos_a, autos_b, lag_step_s: float
+) -> np.ndarray:
     """For the given weighted rows: does the weighted peak lie more than :data:`AGREEMENT_Z`
     combined standard errors from the peak of the unweighted ``rho``?
 
@@ -602,9 +659,17 @@ def _disagrees_with_plain(rho, rho_clean, idx, rows, position, variance, record,
     at_edge = (k == idx[0]) | (k == idx[-1])
     plain_position = _refine_peaks(plain_clean, rho[rows], k)
     none = ["none"] * len(rows)
-    plain_variance = _lag_variances(plain_clean, k, np.flatnonzero(~at_edge), lag_step_s, record[rows],
-                                    [autos_a[i] for i in rows], [autos_b[i] for i in rows], none,
-                                    np.full(len(rows), np.nan))
+    plain_variance = _lag_variances(
+        plain_clean,
+        k,
+        np.flatnonzero(~at_edge),
+        lag_step_s,
+        record[rows],
+        [autos_a[i] for i in rows],
+        [autos_b[i] for i in rows],
+        none,
+        np.full(len(rows), np.nan),
+    )
     gap = np.abs(position[rows] - plain_position) * lag_step_s
     with np.errstate(invalid="ignore"):
         agrees = gap <= AGREEMENT_Z * np.sqrt(variance[rows] + plain_variance)
@@ -632,9 +697,19 @@ def _lag_rows(coefficient, stderr, record_s, weighted_coefficient, weighting: st
     return rho, s, weighted, located, autos_a, autos_b, record
 
 
-def estimate_lags(coefficient, stderr, first_lag_s: float, lag_step_s: float, record_s,
-                  weighted_coefficient=None, weighting: str = "none", auto_a=None, auto_b=None,
-                  max_lag_s: Optional[float] = None, peak_z: float = PEAK_Z) -> List[LagEstimate]:
+def estimate_lags(
+    coefficient,
+    stderr,
+    first_lag_s: float,
+    lag_step_s: float,
+    record_s,
+    weighted_coefficient=None,
+    weighting: str = "none",
+    auto_a=None,
+    auto_b=None,
+    max_lag_s: Optional[float] = None,
+    peak_z: float = PEAK_Z,
+) -> List[LagEstimate]:
     """:func:`estimate_lag` of many channel pairs on one lag grid at once (one row per pair).
 
     Parameters
@@ -685,8 +760,9 @@ def estimate_lags(coefficient, stderr, first_lag_s: float, lag_step_s: float, re
        time delay", IEEE Trans. Acoust., Speech, Signal Process. 24(4), 320-327, 1976.
     .. [2] J. S. Bendat and A. G. Piersol, *Random Data*, 4th ed., Wiley, 2010, Sec. 5.1.
     """
-    rho, s, weighted, located, autos_a, autos_b, record = _lag_rows(coefficient, stderr, record_s,
-                                                                    weighted_coefficient, weighting, auto_a, auto_b)
+    rho, s, weighted, located, autos_a, autos_b, record = _lag_rows(
+        coefficient, stderr, record_s, weighted_coefficient, weighting, auto_a, auto_b
+    )
     weightings = [("none" if w is None else weighting) for w in weighted]
     count, n = rho.shape
     nan = float("nan")
@@ -701,19 +777,30 @@ def estimate_lags(coefficient, stderr, first_lag_s: float, lag_step_s: float, re
     if infinite.any():  # no peak can be located: NaN and the code, the other rows as usual
         out = [LagEstimate(nan, nan, nan, nan, nan, ("nonfinite_correlation",))] * count
         finite_rows = np.flatnonzero(~infinite)
-        found = estimate_lags(rho[finite_rows], s[finite_rows], first_lag_s, lag_step_s, record[finite_rows],
-                              weighted_coefficient=[weighted[i] for i in finite_rows], weighting=weighting,
-                              auto_a=[autos_a[i] for i in finite_rows], auto_b=[autos_b[i] for i in finite_rows],
-                              max_lag_s=max_lag_s, peak_z=peak_z)
+        found = estimate_lags(
+            rho[finite_rows],
+            s[finite_rows],
+            first_lag_s,
+            lag_step_s,
+            record[finite_rows],
+            weighted_coefficient=[weighted[i] for i in finite_rows],
+            weighting=weighting,
+            auto_a=[autos_a[i] for i in finite_rows],
+            auto_b=[autos_b[i] for i in finite_rows],
+            max_lag_s=max_lag_s,
+            peak_z=peak_z,
+        )
         for i, estimate in zip(finite_rows, found):
             out[i] = estimate
         return out
-    return _finite_row_estimates(rho, s, located, idx, record, autos_a, autos_b, weightings, first_lag_s,
-                                 lag_step_s, peak_z)
+    return _finite_row_estimates(
+        rho, s, located, idx, record, autos_a, autos_b, weightings, first_lag_s, lag_step_s, peak_z
+    )
 
 
-def _finite_row_estimates(rho, s, located, idx, record, autos_a, autos_b, weightings, first_lag_s: float,
-                          lag_step_s: float, peak_z: float) -> List[LagEstimate]:
+def _finite_row_estimates(
+    rho, s, located, idx, record, autos_a, autos_b, weightings, first_lag_s: float, lag_step_s: float, peak_z: float
+) -> List[LagEstimate]:
     """The steps of :func:`estimate_lags` on rows without infinite values: peak sample in the
     search range ``idx``, refined position, peak coefficient and its stderr, lag variance, width."""
     count, n = rho.shape
@@ -735,12 +822,14 @@ def _finite_row_estimates(rho, s, located, idx, record, autos_a, autos_b, weight
     peak_sd = (1 - frac) * s[line, j] + frac * s[line, j + 1]
     peak_sd = _peak_coef_stderrs(rho_clean, s, position, at_edge, autos_a, autos_b, peak_sd)
     weak = np.isfinite(peak_sd) & (np.abs(peak_coef) < peak_z * peak_sd)
-    variance = _lag_variances(rho_clean, k, np.nonzero(~at_edge)[0], lag_step_s, record, autos_a, autos_b,
-                              weightings, peak_coef)
+    variance = _lag_variances(
+        rho_clean, k, np.nonzero(~at_edge)[0], lag_step_s, record, autos_a, autos_b, weightings, peak_coef
+    )
     width = _envelope_widths(located_clean, k, lag_step_s)
     suspect = _empty_band_rows(autos_a, autos_b, weightings)
-    suspect[suspect] = _disagrees_with_plain(rho, rho_clean, idx, np.flatnonzero(suspect), position, variance,
-                                             record, autos_a, autos_b, lag_step_s)
+    suspect[suspect] = _disagrees_with_plain(
+        rho, rho_clean, idx, np.flatnonzero(suspect), position, variance, record, autos_a, autos_b, lag_step_s
+    )
     out = []
     for i in range(count):
         quality = []
@@ -753,7 +842,14 @@ def _finite_row_estimates(rho, s, located, idx, record, autos_a, autos_b, weight
         if suspect[i]:
             quality.append("spurious_lag_peak")
         edge = bool(at_edge[i])
-        out.append(LagEstimate(nan if edge else float(first_lag_s + position[i] * lag_step_s),
-                               nan if edge else float(np.sqrt(variance[i])),
-                               float(peak_coef[i]), float(peak_sd[i]), float(width[i]), tuple(quality)))
+        out.append(
+            LagEstimate(
+                nan if edge else float(first_lag_s + position[i] * lag_step_s),
+                nan if edge else float(np.sqrt(variance[i])),
+                float(peak_coef[i]),
+                float(peak_sd[i]),
+                float(width[i]),
+                tuple(quality),
+            )
+        )
     return out

@@ -13,6 +13,7 @@ treating them as independent understates the error of an integral or a fit sever
 Every function returns a value, its standard error and quality codes; bad numbers give NaN and a
 code, never an exception.
 """
+
 from __future__ import annotations
 
 from typing import NamedTuple, Optional, Tuple
@@ -25,11 +26,11 @@ from corrtransforms.numerics.envelope import correlation_envelope, even_hilbert_
 #: quality codes of this module (code -> meaning)
 QUALITY_CODES = {
     "nonfinite_correlation": "the correlation holds NaN or inf at the lags needed",
-    "no_zero_crossing": "rho does not cross zero within max_lag; corr_time_s is the integral to "
-                        "max_lag, a lower bound",
+    "no_zero_crossing": "rho does not cross zero within max_lag; corr_time_s is the integral to max_lag, a lower bound",
     "no_envelope_crossing": "the envelope of rho does not fall to 1/e within max_lag",
     "too_few_lags": "fewer than 3 lags",
 }
+
 
 class TimeScale(NamedTuple):
     """A time-scale indicator: value and standard error in seconds, quality codes."""
@@ -130,7 +131,7 @@ def integral_time_scale(coefficient, lag_step_s: float) -> float:
     if len(rho) < 2:
         return 0.0
     weights, _ = integral_weights(rho)
-    return float((weights * lag_step_s) @ rho[:len(weights)])
+    return float((weights * lag_step_s) @ rho[: len(weights)])
 
 
 def corr_time_s(coefficient, stderr, lag_step_s: float, until: str = "first_zero") -> TimeScale:
@@ -218,6 +219,8 @@ def _end_point_stderr(rho: np.ndarray, s: np.ndarray, lag_step_s: float) -> floa
     ``sd(rho(tau_0))``: ``sd_end = sd(rho(tau_0)) * sd(tau_0)``.
     """
     end = _first_crossing(rho, 0.0)
+    if end is None:  # no crossing: no end point, no end term
+        return 0.0
     k = min(int(np.floor(end)), len(rho) - 2)
     frac = end - k
     sd_rho = (1 - frac) * s[k] + frac * s[k + 1]
@@ -227,8 +230,9 @@ def _end_point_stderr(rho: np.ndarray, s: np.ndarray, lag_step_s: float) -> floa
     return float(sd_rho * sd_tau)
 
 
-def decay_time_s(coefficient, stderr, lag_step_s: float, auto: bool = True,
-                 level: float = float(np.exp(-1.0))) -> TimeScale:
+def decay_time_s(
+    coefficient, stderr, lag_step_s: float, auto: bool = True, level: float = float(np.exp(-1.0))
+) -> TimeScale:
     """Lag at which the Hilbert envelope of a correlation function first falls to ``1/e``.
 
     Parameters
@@ -303,8 +307,9 @@ def decay_time_s(coefficient, stderr, lag_step_s: float, auto: bool = True,
     k = min(int(np.floor(cross)), len(rho) - 2)
     frac = cross - k
     slope = (envelope[k + 1] - envelope[k]) / lag_step_s
-    weights = ((1 - frac) * _envelope_gradient(rho, hilbert, envelope, k)
-               + frac * _envelope_gradient(rho, hilbert, envelope, k + 1))
+    weights = (1 - frac) * _envelope_gradient(rho, hilbert, envelope, k) + frac * _envelope_gradient(
+        rho, hilbert, envelope, k + 1
+    )
     lags = np.arange(len(rho))
     if np.all(np.isfinite(s)) and slope != 0:
         err = linear_functional_stderr(weights, rho, s, lags) / abs(slope)

@@ -10,6 +10,7 @@ Arrow table with exactly the :data:`corrtransforms.tables.CORRELATIONS` schema.
 Lag convention: ``R_ab(tau) = E[a(t) b(t + tau)]``; a peak at positive tau means b lags a. Auto
 pairs keep lags ``0..L``, cross pairs ``-L..L``.
 """
+
 from __future__ import annotations
 
 from typing import Dict, Iterable, List
@@ -17,15 +18,14 @@ from typing import Dict, Iterable, List
 import numpy as np
 import pyarrow as pa
 
+from corrtransforms.config import AssetConfig
 from corrtransforms.numerics import random_error as err
 from corrtransforms.numerics.bartlett import bartlett_stderr
-from corrtransforms.config import AssetConfig
 from corrtransforms.numerics.correlation import DEFAULT_MIN_PAIRS, channel_spectra, correlate_spectra, pairs_by_name
 from corrtransforms.numerics.spectra import lag_window_psd, strongest_tone
 from corrtransforms.numerics.timescales import integral_time_scale
-from corrtransforms.records import ModeCorrelation, PairCorrelation, WindowCorrelation, quality_text
+from corrtransforms.records import ModeCorrelation, PairCorrelation, WindowBlock, WindowCorrelation, quality_text
 from corrtransforms.tables import CORRELATIONS, TIMESTAMP
-from corrtransforms.records import WindowBlock
 
 #: |rho| above this in the last 10 % of lags flags "max_lag_short" (common practice)
 UNDECAYED_COEFFICIENT = 0.2
@@ -44,12 +44,11 @@ def _usable_channels(spectra, min_pairs: int) -> np.ndarray:
     record up to the round-off of its mean).
     """
     var = np.nan_to_num(spectra.variance)
-    flat = var <= 1e-20 * spectra.channel_mean ** 2
+    flat = var <= 1e-20 * spectra.channel_mean**2
     return (spectra.valid_counts >= max(min_pairs, 2)) & ~flat & (var > 0)
 
 
-def correlate_window(block: WindowBlock, config: AssetConfig,
-                     min_pairs: int = DEFAULT_MIN_PAIRS) -> WindowCorrelation:
+def correlate_window(block: WindowBlock, config: AssetConfig, min_pairs: int = DEFAULT_MIN_PAIRS) -> WindowCorrelation:
     """Correlation functions, error metadata and quality codes of one window.
 
     Parameters
@@ -114,17 +113,23 @@ def correlate_window(block: WindowBlock, config: AssetConfig,
     channels = _ChannelFigures(spectra, est, used, cc) if est is not None else None
     pairs_out: List[PairCorrelation] = []
     modes_out: List[ModeCorrelation] = []
-    if est is not None:
+    if est is not None and channels is not None:
         if requested:
-            pairs_out = _pair_correlations(spectra, est, channels, requested, needed, names, channel_codes, cc,
-                                           min_pairs)
+            pairs_out = _pair_correlations(
+                spectra, est, channels, requested, needed, names, channel_codes, cc, min_pairs
+            )
         modes_out = _mode_correlations(spectra, config, names, usable, channel_codes, min_pairs)
     return WindowCorrelation(
-        asset=block.asset, window_start_us=int(block.window_start_us), sample_rate_hz=fs,
-        n_samples=spectra.n_samples, channels=tuple(names[i] for i in used),
+        asset=block.asset,
+        window_start_us=int(block.window_start_us),
+        sample_rate_hz=fs,
+        n_samples=spectra.n_samples,
+        channels=tuple(names[i] for i in used),
         rms={} if channels is None else {names[i]: channels.rms[i] for i in used},
         rms_stderr={} if channels is None else {names[i]: channels.rms_stderr[i] for i in used},
-        pairs=tuple(pairs_out), modes=tuple(modes_out), covariates=dict(block.covariates),
+        pairs=tuple(pairs_out),
+        modes=tuple(modes_out),
+        covariates=dict(block.covariates),
         subject_quality={name: codes for name, codes in channel_codes.items() if codes},
     )
 
@@ -142,11 +147,11 @@ class _ChannelFigures:
     def __init__(self, spectra, est, used: List[int], cc):
         fs, L = spectra.sample_rate_hz, spectra.max_lag
         self.auto_row = {i: k for k, i in enumerate(used)}
-        self.rho = est.coefficient[:len(used)]
-        count_auto = est.pair_count[:len(used)]
+        self.rho = est.coefficient[: len(used)]
+        count_auto = est.pair_count[: len(used)]
         valid_counts = spectra.valid_counts[used].astype(float)
         # biased auto-correlations for the PSD and the validity checks
-        R_auto = est.R[:len(used)]
+        R_auto = est.R[: len(used)]
         R_biased = R_auto * count_auto / valid_counts[:, None] if cc.estimator == "unbiased" else R_auto
         self.frequencies_hz, self.psd = lag_window_psd(R_biased, fs)
         self.bandwidth_hz = err.statistical_bandwidth(self.frequencies_hz, self.psd)
@@ -156,14 +161,14 @@ class _ChannelFigures:
         ms_rel = np.sqrt(2.0 * np.einsum("ij,ij->i", finite_auto, finite_auto) / count_auto[:, L])
         self.mean_square_rel_error = ms_rel
         self.integral_scale_s = np.array([integral_time_scale(r[L:], 1.0 / fs) for r in self.rho])
-        self.tone_freq_hz, _ = strongest_tone(spectra.frequencies_hz(), spectra.periodogram()[used],
-                                              n_averaged=spectra.n_segments)
-        self.tone_record_s = 2.0 * err.tone_required_half_length(2 * np.pi * self.tone_freq_hz,
-                                                                 cc.target_rel_error)
+        self.tone_freq_hz, _ = strongest_tone(
+            spectra.frequencies_hz(), spectra.periodogram()[used], n_averaged=spectra.n_segments
+        )
+        self.tone_record_s = 2.0 * err.tone_required_half_length(2 * np.pi * self.tone_freq_hz, cc.target_rel_error)
         self.checks, self.rms, self.rms_stderr = {}, {}, {}
         for k, i in enumerate(used):
             codes = list(err.auto_correlation_checks(R_auto[k], spectra.mean_square[i], self.psd[k]))
-            if _undecayed(self.rho[k, L + 1:], L):
+            if _undecayed(self.rho[k, L + 1 :], L):
                 codes.append("max_lag_short")
             self.checks[i] = codes
             r = float(np.sqrt(spectra.mean_square[i]))
@@ -171,8 +176,9 @@ class _ChannelFigures:
             self.rms_stderr[i] = float(r * ms_rel[k] / 2.0)
 
 
-def _pair_correlations(spectra, est, channels: _ChannelFigures, requested, needed, names, channel_codes, cc,
-                       min_pairs: int) -> List[PairCorrelation]:
+def _pair_correlations(
+    spectra, est, channels: _ChannelFigures, requested, needed, names, channel_codes, cc, min_pairs: int
+) -> List[PairCorrelation]:
     """One :class:`PairCorrelation` per requested pair, with its error metadata and quality."""
     fs, L, n = spectra.sample_rate_hz, spectra.max_lag, spectra.n_samples
     target = cc.target_rel_error
@@ -182,19 +188,21 @@ def _pair_correlations(spectra, est, channels: _ChannelFigures, requested, neede
     b_rows = np.array([channels.auto_row[b] for _, b in requested])
     rho = est.coefficient[rows]
     counts = est.pair_count[rows]
-    figures = _pair_error_figures(rho, counts, channels, a_rows, b_rows,
-                                  np.array([a == b for a, b in requested]), fs, L, target)
+    figures = _pair_error_figures(
+        rho, counts, channels, a_rows, b_rows, np.array([a == b for a, b in requested]), fs, L, target
+    )
     weighted = {}
     cross = [p for p in requested if p[0] != p[1]]
     if cc.weighting != "none" and cross:
-        west = correlate_spectra(spectra, cross, estimator=cc.estimator, weighting=cc.weighting,
-                                 min_pairs=min_pairs)
+        west = correlate_spectra(spectra, cross, estimator=cc.estimator, weighting=cc.weighting, min_pairs=min_pairs)
         weighted = {p: west.coefficient[k] for k, p in enumerate(cross)}
     out = []
     for k, (a, b) in enumerate(requested):
         ka, kb = a_rows[k], b_rows[k]
-        tones = [(channels.tone_record_s[ka], channels.tone_freq_hz[ka]),
-                 (channels.tone_record_s[kb], channels.tone_freq_hz[kb])]
+        tones = [
+            (channels.tone_record_s[ka], channels.tone_freq_hz[ka]),
+            (channels.tone_record_s[kb], channels.tone_freq_hz[kb]),
+        ]
         tones = [t for t in tones if np.isfinite(t[0])]
         t_record, t_freq = max(tones) if tones else (np.nan, np.nan)
         codes = list(channel_codes[names[a]]) + list(channel_codes[names[b]])
@@ -208,31 +216,44 @@ def _pair_correlations(spectra, est, channels: _ChannelFigures, requested, neede
         if figures["n_effective"][k] < MIN_EFFECTIVE_SAMPLES:
             codes.append("few_effective_samples")
         sl = slice(L, None) if a == b else slice(None)
-        out.append(PairCorrelation(
-            channel_a=names[a], channel_b=names[b],
-            first_lag_s=0.0 if a == b else -L / fs, lag_step_s=1.0 / fs,
-            coefficient=rho[k, sl].copy(), stderr=figures["stderr"][k, sl].copy(),
-            pair_count=counts[k, sl].copy(), scale=float(est.scale[rows[k]]),
-            coverage=float(counts[k, L] / n) if n else 0.0,
-            bandwidth_hz=float(figures["bandwidth_hz"][k]), record_s=float(figures["record_s"][k]),
-            rel_error=float(figures["rel_error"][k]), required_record_s=float(figures["required_record_s"][k]),
-            meets_target=bool(figures["rel_error"][k] <= target),
-            bandwidth_time=float(figures["bandwidth_time"][k]), n_effective=float(figures["n_effective"][k]),
-            tone_freq_hz=float(t_freq), tone_required_record_s=float(t_record),
-            quality=tuple(sorted(set(codes))),
-            weighted_coefficient=weighted.get((a, b)),
-        ))
+        out.append(
+            PairCorrelation(
+                channel_a=names[a],
+                channel_b=names[b],
+                first_lag_s=0.0 if a == b else -L / fs,
+                lag_step_s=1.0 / fs,
+                coefficient=rho[k, sl].copy(),
+                stderr=figures["stderr"][k, sl].copy(),
+                pair_count=counts[k, sl].copy(),
+                scale=float(est.scale[rows[k]]),
+                coverage=float(counts[k, L] / n) if n else 0.0,
+                bandwidth_hz=float(figures["bandwidth_hz"][k]),
+                record_s=float(figures["record_s"][k]),
+                rel_error=float(figures["rel_error"][k]),
+                required_record_s=float(figures["required_record_s"][k]),
+                meets_target=bool(figures["rel_error"][k] <= target),
+                bandwidth_time=float(figures["bandwidth_time"][k]),
+                n_effective=float(figures["n_effective"][k]),
+                tone_freq_hz=float(t_freq),
+                tone_required_record_s=float(t_record),
+                quality=tuple(sorted(set(codes))),
+                weighted_coefficient=weighted.get((a, b)),
+            )
+        )
     return out
 
 
-def _pair_error_figures(rho, counts, channels: _ChannelFigures, a_rows, b_rows, is_auto, fs: float, L: int,
-                        target: float) -> Dict[str, np.ndarray]:
+def _pair_error_figures(
+    rho, counts, channels: _ChannelFigures, a_rows, b_rows, is_auto, fs: float, L: int, target: float
+) -> Dict[str, np.ndarray]:
     """Record-length error metadata of the requested pairs (rows): per-lag stderr, bandwidth,
     record length, BT, closed-form relative error, required record length, N_eff."""
     stderr = bartlett_stderr(rho, channels.rho[a_rows], channels.rho[b_rows], counts)
-    bandwidth = np.where(is_auto, channels.bandwidth_hz[a_rows],
-                         err.statistical_bandwidth(channels.frequencies_hz, channels.psd[a_rows],
-                                                   channels.psd[b_rows]))
+    bandwidth = np.where(
+        is_auto,
+        channels.bandwidth_hz[a_rows],
+        err.statistical_bandwidth(channels.frequencies_hz, channels.psd[a_rows], channels.psd[b_rows]),
+    )
     record_s = counts[:, L] / fs
     abs_rho = np.where(np.isfinite(rho), np.abs(rho), -1.0)
     peak = rho[np.arange(len(rho)), np.argmax(abs_rho, axis=1)]
@@ -243,13 +264,20 @@ def _pair_error_figures(rho, counts, channels: _ChannelFigures, a_rows, b_rows, 
         auto_required = record_s * (auto_rel_error / target) ** 2
     required = np.where(is_auto, auto_required, err.required_record_length(bandwidth, target, rho=peak))
     scales = np.maximum(channels.integral_scale_s[a_rows], channels.integral_scale_s[b_rows])
-    return {"stderr": stderr, "bandwidth_hz": bandwidth, "record_s": record_s,
-            "bandwidth_time": bandwidth * record_s, "rel_error": rel_error, "required_record_s": required,
-            "n_effective": err.effective_samples(record_s, scales, counts[:, L])}
+    return {
+        "stderr": stderr,
+        "bandwidth_hz": bandwidth,
+        "record_s": record_s,
+        "bandwidth_time": bandwidth * record_s,
+        "rel_error": rel_error,
+        "required_record_s": required,
+        "n_effective": err.effective_samples(record_s, scales, counts[:, L]),
+    }
 
 
-def _mode_correlations(spectra, config: AssetConfig, names, usable, channel_codes,
-                       min_pairs: int) -> List[ModeCorrelation]:
+def _mode_correlations(
+    spectra, config: AssetConfig, names, usable, channel_codes, min_pairs: int
+) -> List[ModeCorrelation]:
     """The band-limited auto-correlation of every configured single-channel mode."""
     cc = config.correlation
     fs, L = spectra.sample_rate_hz, spectra.max_lag
@@ -258,19 +286,26 @@ def _mode_correlations(spectra, config: AssetConfig, names, usable, channel_code
         if mode.channel not in names or not usable[names.index(mode.channel)]:
             continue  # the reader has emitted a reject for this channel
         c = names.index(mode.channel)
-        mest = correlate_spectra(spectra, [(c, c)], estimator=cc.estimator, band_hz=mode.band_hz,
-                                 min_pairs=min_pairs)
+        mest = correlate_spectra(spectra, [(c, c)], estimator=cc.estimator, band_hz=mode.band_hz, min_pairs=min_pairs)
         rho_m = mest.coefficient[0]
         se_m = bartlett_stderr(rho_m, rho_m, rho_m, mest.pair_count[0])
         codes = list(channel_codes[mode.channel])
         if not np.all(np.isfinite(rho_m)):
             codes.append("few_pairs")
-        if _undecayed(rho_m[L + 1:], L):
+        if _undecayed(rho_m[L + 1 :], L):
             codes.append("max_lag_short")
-        out.append(ModeCorrelation(
-            mode=mode.name, channel=mode.channel, band_hz=tuple(mode.band_hz), lag_step_s=1.0 / fs,
-            coefficient=rho_m[L:].copy(), stderr=se_m[L:].copy(),
-            record_s=float(spectra.valid_counts[c] / fs), quality=tuple(sorted(set(codes)))))
+        out.append(
+            ModeCorrelation(
+                mode=mode.name,
+                channel=mode.channel,
+                band_hz=(float(mode.band_hz[0]), float(mode.band_hz[1])),
+                lag_step_s=1.0 / fs,
+                coefficient=rho_m[L:].copy(),
+                stderr=se_m[L:].copy(),
+                record_s=float(spectra.valid_counts[c] / fs),
+                quality=tuple(sorted(set(codes))),
+            )
+        )
     return out
 
 
@@ -327,8 +362,7 @@ def correlation_table(window_correlations: Iterable[WindowCorrelation]) -> pa.Ta
         "record_s": pa.array(floats("record_s")),
         "rel_error": pa.array(floats("rel_error")),
         "required_record_s": pa.array(floats("required_record_s")),
-        "meets_target": pa.array(np.fromiter((bool(p.meets_target) for p in pairs), dtype=bool,
-                                             count=len(pairs))),
+        "meets_target": pa.array(np.fromiter((bool(p.meets_target) for p in pairs), dtype=bool, count=len(pairs))),
         "quality": pa.array([quality_text(p.quality) for p in pairs], type=pa.string()),
         "bandwidth_time": pa.array(floats("bandwidth_time")),
         "n_effective": pa.array(floats("n_effective")),

@@ -21,8 +21,10 @@ the codes of the computation, the pair's own codes, ``wc.subject_quality`` of th
 ``"*"``, codes for the whole window) and ``record_too_short`` when the pair behind the indicator
 does not meet ``target_rel_error``. Bad numbers give NaN and a code, never an exception.
 """
+
 from __future__ import annotations
 
+import functools
 from typing import Callable, Iterable, List, Optional, Tuple
 
 import numpy as np
@@ -31,9 +33,9 @@ import pyarrow as pa
 from corrtransforms import tables
 from corrtransforms.config import AssetConfig
 from corrtransforms.numerics.modal_fit import fit_mode
-from corrtransforms.records import IndicatorRow, ModeCorrelation, PairCorrelation, WindowCorrelation, quality_text
 from corrtransforms.numerics.time_delay import LagEstimate, estimate_lag, estimate_lags
 from corrtransforms.numerics.timescales import corr_time_s, decay_time_s
+from corrtransforms.records import IndicatorRow, ModeCorrelation, PairCorrelation, WindowCorrelation, quality_text
 
 #: quality codes added here (code -> meaning); the computations add their own
 QUALITY_CODES = {
@@ -72,17 +74,49 @@ def _channel_rows(wc: WindowCorrelation, config: AssetConfig, channel: str, comm
     rms_sd = float(wc.rms_stderr.get(channel, NAN))
     rms_codes = base + (("nonfinite_rms",) if not (np.isfinite(rms) and np.isfinite(rms_sd)) else ())
     start = wc.window_start_us
-    rows = [IndicatorRow(start, channel, "rms", _finite_or_nan(rms), _finite_or_nan(rms_sd),
-                         config.channels.unit(channel), quality_text(rms_codes))]
+    rows = [
+        IndicatorRow(
+            start,
+            channel,
+            "rms",
+            _finite_or_nan(rms),
+            _finite_or_nan(rms_sd),
+            config.channels.unit(channel),
+            quality_text(rms_codes),
+        )
+    ]
     if auto is None:
         return rows
     ct = corr_time_s(auto.coefficient, auto.stderr, auto.lag_step_s)
     dt = decay_time_s(auto.coefficient, auto.stderr, auto.lag_step_s, auto=True)
-    rows.append(IndicatorRow(start, channel, "corr_time_s", _finite_or_nan(ct.value), _finite_or_nan(ct.stderr),
-                             "s", quality_text(base + ct.quality)))
-    rows.append(IndicatorRow(start, channel, "decay_time_s", _finite_or_nan(dt.value), _finite_or_nan(dt.stderr),
-                             "s", quality_text(base + dt.quality)))
+    rows.append(
+        IndicatorRow(
+            start,
+            channel,
+            "corr_time_s",
+            _finite_or_nan(ct.value),
+            _finite_or_nan(ct.stderr),
+            "s",
+            quality_text(base + ct.quality),
+        )
+    )
+    rows.append(
+        IndicatorRow(
+            start,
+            channel,
+            "decay_time_s",
+            _finite_or_nan(dt.value),
+            _finite_or_nan(dt.stderr),
+            "s",
+            quality_text(base + dt.quality),
+        )
+    )
     return rows
+
+
+def _band(band_hz) -> Tuple[float, float]:
+    """A configured or recorded band as the (low, high) pair the modal fit takes."""
+    return float(band_hz[0]), float(band_hz[1])
 
 
 def _mode_rows(wc: WindowCorrelation, mode_name: str, channel: str, band_hz, common) -> List[IndicatorRow]:
@@ -91,26 +125,43 @@ def _mode_rows(wc: WindowCorrelation, mode_name: str, channel: str, band_hz, com
     start = wc.window_start_us
     if found is None:
         codes = quality_text(base + ("no_mode_correlation",))
-        return [IndicatorRow(start, mode_name, "mode_freq_hz", NAN, NAN, "Hz", codes),
-                IndicatorRow(start, mode_name, "mode_damping", NAN, NAN, "", codes)]
-    fit = fit_mode(found.coefficient, found.stderr, found.lag_step_s, tuple(found.band_hz or band_hz))
+        return [
+            IndicatorRow(start, mode_name, "mode_freq_hz", NAN, NAN, "Hz", codes),
+            IndicatorRow(start, mode_name, "mode_damping", NAN, NAN, "", codes),
+        ]
+    fit = fit_mode(found.coefficient, found.stderr, found.lag_step_s, _band(found.band_hz or band_hz))
     codes = quality_text(base + tuple(found.quality) + fit.quality)
-    return [IndicatorRow(start, mode_name, "mode_freq_hz", _finite_or_nan(fit.freq_hz),
-                         _finite_or_nan(fit.freq_stderr_hz), "Hz", codes),
-            IndicatorRow(start, mode_name, "mode_damping", _finite_or_nan(fit.damping),
-                         _finite_or_nan(fit.damping_stderr), "", codes)]
+    return [
+        IndicatorRow(
+            start,
+            mode_name,
+            "mode_freq_hz",
+            _finite_or_nan(fit.freq_hz),
+            _finite_or_nan(fit.freq_stderr_hz),
+            "Hz",
+            codes,
+        ),
+        IndicatorRow(
+            start, mode_name, "mode_damping", _finite_or_nan(fit.damping), _finite_or_nan(fit.damping_stderr), "", codes
+        ),
+    ]
 
 
 def _lag_inputs(wc: WindowCorrelation, config: AssetConfig, pair: PairCorrelation):
     """The pair's located function, weighting and the two channels' auto coefficients."""
     auto_a, auto_b = wc.auto(pair.channel_a), wc.auto(pair.channel_b)
     weighted = pair.weighted_coefficient
-    return (weighted, config.correlation.weighting if weighted is not None else "none",
-            None if auto_a is None else auto_a.coefficient, None if auto_b is None else auto_b.coefficient)
+    return (
+        weighted,
+        config.correlation.weighting if weighted is not None else "none",
+        None if auto_a is None else auto_a.coefficient,
+        None if auto_b is None else auto_b.coefficient,
+    )
 
 
-def _batched_lag_estimates(wc: WindowCorrelation, config: AssetConfig,
-                           pairs: List[PairCorrelation]) -> List[Optional[LagEstimate]]:
+def _batched_lag_estimates(
+    wc: WindowCorrelation, config: AssetConfig, pairs: List[PairCorrelation]
+) -> List[Optional[LagEstimate]]:
     """:func:`estimate_lags` of the cross pairs, batched over pairs on the same lag grid.
 
     A group whose batched call raises (malformed arrays, non-finite numbers) gives None for its
@@ -118,7 +169,7 @@ def _batched_lag_estimates(wc: WindowCorrelation, config: AssetConfig,
     subject. Each batched estimate equals the per-pair one.
     """
     out: List[Optional[LagEstimate]] = [None] * len(pairs)
-    groups = {}
+    groups: dict = {}
     for i, pair in enumerate(pairs):
         try:
             key = (len(pair.coefficient), float(pair.first_lag_s), float(pair.lag_step_s))
@@ -134,11 +185,15 @@ def _batched_lag_estimates(wc: WindowCorrelation, config: AssetConfig,
             estimates = estimate_lags(
                 np.array([pairs[i].coefficient for i in members], dtype=float),
                 np.array([pairs[i].stderr for i in members], dtype=float),
-                first_lag_s, lag_step_s, [pairs[i].record_s for i in members],
+                first_lag_s,
+                lag_step_s,
+                [pairs[i].record_s for i in members],
                 weighted_coefficient=[w for w, _, _, _ in inputs],
                 weighting=weightings.pop() if weightings else "none",
-                auto_a=[a for _, _, a, _ in inputs], auto_b=[b for _, _, _, b in inputs],
-                max_lag_s=config.correlation.max_lag_s)
+                auto_a=[a for _, _, a, _ in inputs],
+                auto_b=[b for _, _, _, b in inputs],
+                max_lag_s=config.correlation.max_lag_s,
+            )
         except Exception:  # noqa: BLE001 - the per-pair path isolates and reports the failure
             continue
         for i, estimate in zip(members, estimates):
@@ -146,25 +201,45 @@ def _batched_lag_estimates(wc: WindowCorrelation, config: AssetConfig,
     return out
 
 
-def _pair_rows(wc: WindowCorrelation, config: AssetConfig, pair: PairCorrelation, common,
-               estimate: Optional[LagEstimate] = None) -> List[IndicatorRow]:
+def _pair_rows(
+    wc: WindowCorrelation, config: AssetConfig, pair: PairCorrelation, common, estimate: Optional[LagEstimate] = None
+) -> List[IndicatorRow]:
     subject = pair.subject
     if estimate is None:  # the per-pair path
         weighted, weighting, auto_a, auto_b = _lag_inputs(wc, config, pair)
         estimate = estimate_lag(
-            pair.coefficient, pair.stderr, pair.first_lag_s, pair.lag_step_s, pair.record_s,
-            weighted_coefficient=weighted, weighting=weighting, auto_a=auto_a, auto_b=auto_b,
-            max_lag_s=config.correlation.max_lag_s)
+            pair.coefficient,
+            pair.stderr,
+            pair.first_lag_s,
+            pair.lag_step_s,
+            pair.record_s,
+            weighted_coefficient=weighted,
+            weighting=weighting,
+            auto_a=auto_a,
+            auto_b=auto_b,
+            max_lag_s=config.correlation.max_lag_s,
+        )
     codes = quality_text(_pair_codes(pair) + common(subject) + estimate.quality)
     start = wc.window_start_us
-    return [IndicatorRow(start, subject, "lag_s", _finite_or_nan(estimate.lag_s),
-                         _finite_or_nan(estimate.lag_stderr_s), "s", codes),
-            IndicatorRow(start, subject, "peak_coef", _finite_or_nan(estimate.peak_coef),
-                         _finite_or_nan(estimate.peak_coef_stderr), "", codes)]
+    return [
+        IndicatorRow(
+            start, subject, "lag_s", _finite_or_nan(estimate.lag_s), _finite_or_nan(estimate.lag_stderr_s), "s", codes
+        ),
+        IndicatorRow(
+            start,
+            subject,
+            "peak_coef",
+            _finite_or_nan(estimate.peak_coef),
+            _finite_or_nan(estimate.peak_coef_stderr),
+            "",
+            codes,
+        ),
+    ]
 
 
-def window_indicators_and_failures(wc: WindowCorrelation, config: AssetConfig
-                                   ) -> Tuple[List[IndicatorRow], List[Tuple[str, str]]]:
+def window_indicators_and_failures(
+    wc: WindowCorrelation, config: AssetConfig
+) -> Tuple[List[IndicatorRow], List[Tuple[str, str]]]:
     """Indicator rows of one window, isolating failures per subject.
 
     Parameters
@@ -195,18 +270,21 @@ def window_indicators_and_failures(wc: WindowCorrelation, config: AssetConfig
             failures.append((subject, f"{type(err).__name__}: {err}"))
 
     for channel in wc.channels:
-        attempt(channel, lambda c=channel: _channel_rows(wc, config, c, common))
+        attempt(channel, functools.partial(_channel_rows, wc, config, channel, common))
     for mode in config.modes:
-        attempt(mode.name, lambda m=mode: _mode_rows(wc, m.name, m.channel, m.band_hz, common))
+        attempt(mode.name, functools.partial(_mode_rows, wc, mode.name, mode.channel, mode.band_hz, common))
     cross = [pair for pair in wc.pairs if not pair.is_auto]
     batched = _batched_lag_estimates(wc, config, cross)
     for pair, estimate in zip(cross, batched):
-        attempt(pair.subject, lambda p=pair, e=estimate: _pair_rows(wc, config, p, common, e))
+        attempt(pair.subject, functools.partial(_pair_rows, wc, config, pair, common, estimate))
     for name, value in sorted(wc.covariates.items()):
         v = _finite_or_nan(value)
         codes = common(name) + (() if np.isfinite(v) else ("no_covariate_samples",))
-        rows.append(IndicatorRow(wc.window_start_us, name, "covariate_mean", v, NAN,
-                                 config.channels.unit(name), quality_text(codes)))
+        rows.append(
+            IndicatorRow(
+                wc.window_start_us, name, "covariate_mean", v, NAN, config.channels.unit(name), quality_text(codes)
+            )
+        )
     rows.extend(wc.extra_indicators)
     return rows, failures
 

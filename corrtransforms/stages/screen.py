@@ -27,8 +27,9 @@ false-flag rate under stationarity stays at or below ``alpha`` too (it was the u
 tests at ``alpha`` each, 6-14 % of stationary pair rows).
 
 Segments must be roughly independent: each segment is made at least
-:data:`~corrtransforms.numerics.record_memory.INDEPENDENCE_FACTOR` times longer than the record's memory time (the larger of the integral time scale and the
-last lag at which ``|rho|`` of its auto-correlation reaches ``1/e``, with sharp spectral lines removed). When the window
+:data:`~corrtransforms.numerics.record_memory.INDEPENDENCE_FACTOR` times longer than the
+record's memory time (the larger of the integral time scale and the last lag at which ``|rho|``
+of its auto-correlation reaches ``1/e``, with sharp spectral lines removed). When the window
 is too short for the configured number of segments, fewer are used, down to
 :data:`MINIMUM_SEGMENTS`; below that the subject gets the quality code
 ``"window_too_short_for_screening"`` and no flag.
@@ -40,6 +41,7 @@ the tests in :mod:`corrtransforms.numerics.rank_tests`, the segment statistics i
 :mod:`corrtransforms.numerics.record_memory`. The Beam layer wires :func:`screen_window` into
 the correlate stage.
 """
+
 from __future__ import annotations
 
 import dataclasses
@@ -49,13 +51,27 @@ from typing import Dict, Mapping, Optional, Tuple
 import numpy as np
 
 from corrtransforms.numerics.correlation import pairs_by_name
-from corrtransforms.numerics.rank_tests import (OutlierTestResult, reverse_arrangements_test, runs_test,
-                                                variance_outlier_test)
-from corrtransforms.numerics.record_memory import (MINIMUM_SEGMENTS, CorrelationTimeScales,
-                                                   correlation_time_scales, record_time_scales,
-                                                   screening_memory_limit_s, segments_for_record)
-from corrtransforms.numerics.segments import (SegmentCrossProducts, SegmentStatistics, clean_record,
-                                              segment_cross_products, segment_statistics_of_rows)
+from corrtransforms.numerics.rank_tests import (
+    OutlierTestResult,
+    reverse_arrangements_test,
+    runs_test,
+    variance_outlier_test,
+)
+from corrtransforms.numerics.record_memory import (
+    MINIMUM_SEGMENTS,
+    CorrelationTimeScales,
+    correlation_time_scales,
+    record_time_scales,
+    screening_memory_limit_s,
+    segments_for_record,
+)
+from corrtransforms.numerics.segments import (
+    SegmentCrossProducts,
+    SegmentStatistics,
+    clean_record,
+    segment_cross_products,
+    segment_statistics_of_rows,
+)
 from corrtransforms.records import IndicatorRow, quality_text
 from corrtransforms.rejects import WHOLE_WINDOW, Reject, iso_utc
 
@@ -74,9 +90,9 @@ PAIR_TESTS = 2
 INDICATOR = "stationarity_p"
 
 
-
 # --------------------------------------------------------------------------------------------
 # Screening one window
+
 
 @dataclasses.dataclass(frozen=True)
 class SubjectScreening:
@@ -135,16 +151,18 @@ class WindowScreening:
 
 
 def _usable(statistics: SegmentStatistics) -> np.ndarray:
-    return (statistics.valid_count >= MIN_SEGMENT_COVERAGE * statistics.segment_length) \
-        & np.isfinite(statistics.mean_product)
+    return (statistics.valid_count >= MIN_SEGMENT_COVERAGE * statistics.segment_length) & np.isfinite(
+        statistics.mean_product
+    )
 
 
 def _not_screened(subject, code, memory_s=float("nan")) -> SubjectScreening:
     return SubjectScreening(subject, 0, float("nan"), memory_s, float("nan"), False, (code,))
 
 
-def screen_channel(values, valid, sample_rate_hz: float, segments: int = 20, alpha: float = 0.05,
-                   subject: str = "") -> SubjectScreening:
+def screen_channel(
+    values, valid, sample_rate_hz: float, segments: int = 20, alpha: float = 0.05, subject: str = ""
+) -> SubjectScreening:
     """Screen one record for stationarity (four tests, Bonferroni-combined).
 
     Parameters
@@ -182,8 +200,7 @@ def screen_channel(values, valid, sample_rate_hz: float, segments: int = 20, alp
     if not _enough_to_screen(m):
         return _not_screened(subject, QUALITY_NOT_SCREENED)
     try:
-        scales = correlation_time_scales(x, m, sample_rate_hz,
-                                         screening_memory_limit_s(len(x) / float(sample_rate_hz)))
+        scales = correlation_time_scales(x, m, sample_rate_hz, screening_memory_limit_s(len(x) / float(sample_rate_hz)))
     except ValueError:
         return _not_screened(subject, QUALITY_NOT_SCREENED)
     return _screen_record(x, m, sample_rate_hz, segments, alpha, subject, scales)
@@ -193,8 +210,16 @@ def _enough_to_screen(m: np.ndarray) -> bool:
     return int(m.sum()) >= max(8, 2 * MINIMUM_SEGMENTS)
 
 
-def _screen_record(x, m, sample_rate_hz: float, segments: int, alpha: float, subject: str,
-                   scales: CorrelationTimeScales, stats: Optional[SegmentStatistics] = None) -> SubjectScreening:
+def _screen_record(
+    x,
+    m,
+    sample_rate_hz: float,
+    segments: int,
+    alpha: float,
+    subject: str,
+    scales: CorrelationTimeScales,
+    stats: Optional[SegmentStatistics] = None,
+) -> SubjectScreening:
     """The tests of :func:`screen_channel` on a cleaned record whose time scales are known
     (``stats``: its segment statistics for the segment count the independence rule gives, when
     already computed)."""
@@ -212,9 +237,8 @@ def _screen_record(x, m, sample_rate_hz: float, segments: int, alpha: float, sub
     # chi-square degrees of freedom of each segment mean square: Gaussian value, lowered by
     # 2 / (kurtosis - 1) for a heavy-tailed record (exact for independent samples); the median
     # of the segment kurtoses is not moved by a burst in one or two segments
-    kurtosis = float(np.median(stats.kurtosis[usable]))
-    dof = stats.valid_count[usable] * scales.degrees_of_freedom_per_sample \
-        * 2.0 / (max(kurtosis, 3.0) - 1.0)
+    kurtosis = float(np.median(np.asarray(stats.kurtosis)[usable]))
+    dof = stats.valid_count[usable] * scales.degrees_of_freedom_per_sample * 2.0 / (max(kurtosis, 3.0) - 1.0)
     ra_ms = reverse_arrangements_test(mean_square)
     runs_ms = runs_test(mean_square)
     ra_mean = reverse_arrangements_test(means)
@@ -236,13 +260,30 @@ def _screen_record(x, m, sample_rate_hz: float, segments: int, alpha: float, sub
     }
     p_value = min(1.0, CHANNEL_TESTS * min(p_values.values()))
     flagged = p_value <= alpha
-    return SubjectScreening(subject, int(usable.sum()), stats.segment_length / float(sample_rate_hz),
-                            scales.memory_s, p_value, flagged,
-                            (QUALITY_NONSTATIONARY,) if flagged else (), p_values, statistics)
+    return SubjectScreening(
+        subject,
+        int(usable.sum()),
+        stats.segment_length / float(sample_rate_hz),
+        scales.memory_s,
+        p_value,
+        flagged,
+        (QUALITY_NONSTATIONARY,) if flagged else (),
+        p_values,
+        statistics,
+    )
 
 
-def screen_pair(values_a, valid_a, values_b, valid_b, sample_rate_hz: float, segments: int,
-                alpha: float = 0.05, subject: str = "", memory_s: float = 0.0) -> SubjectScreening:
+def screen_pair(
+    values_a,
+    valid_a,
+    values_b,
+    valid_b,
+    sample_rate_hz: float,
+    segments: int,
+    alpha: float = 0.05,
+    subject: str = "",
+    memory_s: float = 0.0,
+) -> SubjectScreening:
     """Joint stationarity test of a pair on its segment mean cross-products.
 
     Parameters
@@ -275,8 +316,9 @@ def screen_pair(values_a, valid_a, values_b, valid_b, sample_rate_hz: float, seg
     return _screen_cross_products(stats, sample_rate_hz, alpha, subject, memory_s)
 
 
-def _screen_cross_products(stats: SegmentStatistics, sample_rate_hz: float, alpha: float, subject: str,
-                           memory_s: float) -> SubjectScreening:
+def _screen_cross_products(
+    stats: SegmentStatistics, sample_rate_hz: float, alpha: float, subject: str, memory_s: float
+) -> SubjectScreening:
     """The tests of :func:`screen_pair` on the pair's segment cross-products."""
     usable = _usable(stats)
     if usable.sum() < MINIMUM_SEGMENTS:
@@ -287,11 +329,17 @@ def _screen_cross_products(stats: SegmentStatistics, sample_rate_hz: float, alph
     p_values = {"reverse_arrangements_cross_product": ra.p_value, "runs_cross_product": runs.p_value}
     p_value = min(1.0, PAIR_TESTS * min(p_values.values()))
     flagged = p_value <= alpha
-    return SubjectScreening(subject, int(usable.sum()), stats.segment_length / float(sample_rate_hz),
-                            memory_s, p_value, flagged, (QUALITY_NONSTATIONARY,) if flagged else (),
-                            p_values,
-                            {"reverse_arrangements_cross_product": ra.statistic,
-                             "runs_cross_product": runs.statistic})
+    return SubjectScreening(
+        subject,
+        int(usable.sum()),
+        stats.segment_length / float(sample_rate_hz),
+        memory_s,
+        p_value,
+        flagged,
+        (QUALITY_NONSTATIONARY,) if flagged else (),
+        p_values,
+        {"reverse_arrangements_cross_product": ra.statistic, "runs_cross_product": runs.statistic},
+    )
 
 
 def _pairs_of(block, pairs) -> Tuple[Tuple[str, ...], Tuple[Tuple[str, str], ...]]:
@@ -347,8 +395,9 @@ def screen_window(block, screening_config, pairs=None) -> WindowScreening:
     results = _screen_channels(block, records, valid_rows, channels, index, screening_config.segments, alpha)
     cross_products = SegmentCrossProducts(records, valid_rows)
     for a, b in cross:
-        results[f"{a}:{b}"] = _screen_cross_pair(block, cross_products, index, a, b, results[a], results[b],
-                                                 screening_config.segments, alpha)
+        results[f"{a}:{b}"] = _screen_cross_pair(
+            block, cross_products, index, a, b, results[a], results[b], screening_config.segments, alpha
+        )
     return _window_result(block, results, screening_config.action, alpha)
 
 
@@ -364,8 +413,9 @@ def _clean_rows(block):
     return np.where(valid_rows, values_rows, 0.0), valid_rows
 
 
-def _screen_channels(block, records, valid_rows, channels, index, segments: int,
-                     alpha: float) -> Dict[str, SubjectScreening]:
+def _screen_channels(
+    block, records, valid_rows, channels, index, segments: int, alpha: float
+) -> Dict[str, SubjectScreening]:
     """:func:`screen_channel` of every channel: the time scales of all channels in one batch, the
     segment statistics of the complete channels batched by segment count."""
     fs = float(block.sample_rate_hz)
@@ -391,18 +441,31 @@ def _screen_channels(block, records, valid_rows, channels, index, segments: int,
         if found is None or isinstance(found, ValueError):
             results[name] = _not_screened(name, QUALITY_NOT_SCREENED)
         else:
-            results[name] = _screen_record(records[i], valid_rows[i], fs, segments, alpha, name, found,
-                                           segment_stats.get(name))
+            results[name] = _screen_record(
+                records[i], valid_rows[i], fs, segments, alpha, name, found, segment_stats.get(name)
+            )
     return results
 
 
-def _screen_cross_pair(block, cross_products: SegmentCrossProducts, index, a: str, b: str,
-                       ra: SubjectScreening, rb: SubjectScreening, segments: int, alpha: float) -> SubjectScreening:
+def _screen_cross_pair(
+    block,
+    cross_products: SegmentCrossProducts,
+    index,
+    a: str,
+    b: str,
+    ra: SubjectScreening,
+    rb: SubjectScreening,
+    segments: int,
+    alpha: float,
+) -> SubjectScreening:
     """The joint test of pair ``a:b`` with the flags of its two channels propagated."""
     fs = float(block.sample_rate_hz)
     subject = f"{a}:{b}"
-    memory = float(np.nanmax([ra.memory_s, rb.memory_s])) if not (
-        math.isnan(ra.memory_s) and math.isnan(rb.memory_s)) else float("nan")
+    memory = (
+        float(np.nanmax([ra.memory_s, rb.memory_s]))
+        if not (math.isnan(ra.memory_s) and math.isnan(rb.memory_s))
+        else float("nan")
+    )
     if ra.segments == 0 or rb.segments == 0:
         code = QUALITY_NOT_SCREENED if QUALITY_NOT_SCREENED in ra.quality + rb.quality else QUALITY_TOO_SHORT
         joint = _not_screened(subject, code, memory)
@@ -428,8 +491,9 @@ def sidak_family_p(p_values) -> float:
     return 1.0 - (1.0 - min(finite)) ** len(finite)
 
 
-def _pair_row_family(joint: SubjectScreening, ra: SubjectScreening, rb: SubjectScreening,
-                     alpha: float) -> SubjectScreening:
+def _pair_row_family(
+    joint: SubjectScreening, ra: SubjectScreening, rb: SubjectScreening, alpha: float
+) -> SubjectScreening:
     """A pair row's flag: Sidak family test over its joint test and its two channels' tests."""
     family_p = sidak_family_p((joint.p_value, ra.p_value, rb.p_value))
     flagged = bool(family_p <= alpha)
@@ -437,25 +501,34 @@ def _pair_row_family(joint: SubjectScreening, ra: SubjectScreening, rb: SubjectS
     if flagged:
         quality = quality + (QUALITY_NONSTATIONARY,)
     p_values = dict(joint.test_p_values, joint_cross_product=joint.p_value)
-    return dataclasses.replace(joint, p_value=family_p, flagged=flagged, quality=quality,
-                               test_p_values=p_values)
+    return dataclasses.replace(joint, p_value=family_p, flagged=flagged, quality=quality, test_p_values=p_values)
 
 
 def _window_result(block, results: Dict[str, SubjectScreening], action: str, alpha: float) -> WindowScreening:
     """The window's ``stationarity_p`` rows, quality codes, and its reject when excluded."""
     start = int(block.window_start_us)
-    rows = tuple(IndicatorRow(start, s, INDICATOR, float(r.p_value), float("nan"), "", quality_text(r.quality))
-                 for s, r in results.items())
+    rows = tuple(
+        IndicatorRow(start, s, INDICATOR, float(r.p_value), float("nan"), "", quality_text(r.quality))
+        for s, r in results.items()
+    )
     subject_quality = {s: tuple(r.quality) for s, r in results.items()}
     flagged_subjects = [s for s, r in results.items() if r.flagged]
     excluded = action == "exclude" and bool(flagged_subjects)
     rejects: Tuple[Reject, ...] = ()
     if excluded:
         detail = "; ".join(
-            f"{s}: p={results[s].p_value:.3g} over {results[s].segments} segments of "
-            f"{results[s].segment_s:.4g} s" for s in flagged_subjects)
-        rejects = (Reject(stage="screen", source=iso_utc(start), subject=WHOLE_WINDOW,
-                          reason="nonstationary_window",
-                          detail=f"alpha={alpha:g}; flagged {detail}",
-                          asset=block.asset, window_start_us=start),)
+            f"{s}: p={results[s].p_value:.3g} over {results[s].segments} segments of {results[s].segment_s:.4g} s"
+            for s in flagged_subjects
+        )
+        rejects = (
+            Reject(
+                stage="screen",
+                source=iso_utc(start),
+                subject=WHOLE_WINDOW,
+                reason="nonstationary_window",
+                detail=f"alpha={alpha:g}; flagged {detail}",
+                asset=block.asset,
+                window_start_us=start,
+            ),
+        )
     return WindowScreening(start, results, rows, subject_quality, excluded, rejects)

@@ -862,6 +862,54 @@ def covariates_for_window(
     return means, rejects
 
 
+def _unique_rows(rows: List[IndicatorRow], asset: str, indicator: str) -> Tuple[List[IndicatorRow], List[Reject]]:
+    """One row per window, in time order (a deterministic choice among duplicates), and a
+    ``duplicate_indicator_rows`` finding for each row left out."""
+    rows = sorted(
+        rows, key=lambda r: (int(r.window_start_us), repr(float(r.value)), repr(float(r.stderr)), str(r.quality))
+    )
+    unique: List[IndicatorRow] = []
+    rejects: List[Reject] = []
+    for row in rows:
+        if unique and int(row.window_start_us) == int(unique[-1].window_start_us):
+            kept = unique[-1]
+            rejects.append(
+                Reject.for_window(
+                    asset,
+                    int(row.window_start_us),
+                    STAGE,
+                    "duplicate_indicator_rows",
+                    f"{indicator}: value {row.value!r} stderr {row.stderr!r} not used; "
+                    f"kept value {kept.value!r} stderr {kept.stderr!r}",
+                    subject=row.subject,
+                )
+            )
+            continue
+        unique.append(row)
+    return unique, rejects
+
+
+def _rows_after_state(
+    unique: List[IndicatorRow], blocking: ShiftState, asset: str, indicator: str
+) -> Tuple[List[IndicatorRow], List[Reject]]:
+    """The rows after the earliest resumable state, and a ``window_before_state`` finding for
+    each row at or before it (such a window cannot be replayed into that state)."""
+    blocked_at = int(blocking.window_start_us)  # type: ignore[arg-type]  # a resumable state has a window
+    late = [
+        Reject.for_window(
+            asset,
+            int(r.window_start_us),
+            STAGE,
+            "window_before_state",
+            f"{indicator}: the earliest resumable state is at {iso_utc(blocked_at)}",
+            subject=r.subject,
+        )
+        for r in unique
+        if int(r.window_start_us) <= blocked_at
+    ]
+    return [r for r in unique if int(r.window_start_us) > blocked_at], late
+
+
 def detect_shifts_for_rows(
     rows: Iterable[IndicatorRow],
     covariates_by_window: Mapping[int, Mapping[str, float]],
@@ -895,43 +943,11 @@ def detect_shifts_for_rows(
         return _empty_outcome([])
     asset = config.name
     subject, indicator = rows[0].subject, rows[0].indicator
-    rejects: List[Reject] = []
-    rows.sort(key=lambda r: (int(r.window_start_us), repr(float(r.value)), repr(float(r.stderr)), str(r.quality)))
-    unique: List[IndicatorRow] = []
-    for row in rows:
-        if unique and int(row.window_start_us) == int(unique[-1].window_start_us):
-            kept = unique[-1]
-            rejects.append(
-                Reject(
-                    STAGE,
-                    iso_utc(int(row.window_start_us)),
-                    subject,
-                    "duplicate_indicator_rows",
-                    f"{indicator}: value {row.value!r} stderr {row.stderr!r} not used; "
-                    f"kept value {kept.value!r} stderr {kept.stderr!r}",
-                    asset=asset,
-                    window_start_us=int(row.window_start_us),
-                )
-            )
-            continue
-        unique.append(row)
+    unique, rejects = _unique_rows(rows, asset, indicator)
     state, blocking = select_resume_state(resume_states, subject, indicator, int(unique[0].window_start_us))
     if blocking is not None:
-        blocked_at = int(blocking.window_start_us)  # type: ignore[arg-type]  # a resumable state has a window
-        stale = [r for r in unique if int(r.window_start_us) <= blocked_at]
-        for r in stale:
-            rejects.append(
-                Reject(
-                    STAGE,
-                    iso_utc(int(r.window_start_us)),
-                    subject,
-                    "window_before_state",
-                    f"{indicator}: the earliest resumable state is at {iso_utc(blocked_at)}",
-                    asset=asset,
-                    window_start_us=int(r.window_start_us),
-                )
-            )
-        unique = [r for r in unique if int(r.window_start_us) > blocked_at]
+        unique, late = _rows_after_state(unique, blocking, asset, indicator)
+        rejects += late
         state = blocking
         if not unique:
             return _empty_outcome(rejects)

@@ -1,0 +1,46 @@
+"""Fixtures shared by several test files.
+
+``demo_run``: what ``make demo`` runs (the generator and the backfill) on the full invented
+footbridge archive, once per session in a temporary folder; the end-to-end demo test and the
+doc-example test (README and docs code run on its output) both read it.
+"""
+
+import contextlib
+import dataclasses
+import io
+import os
+import shutil
+
+import pytest
+
+REPO = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+DEMO_DIR = os.path.join(REPO, "demo_data")
+
+
+@dataclasses.dataclass(frozen=True)
+class DemoRun:
+    root: object  # pathlib.Path: archive/, footbridge.toml, output/
+    output: object  # pathlib.Path of the backfill's output
+    counters: dict
+    expected: dict  # demo_data.generate.expected_changes()
+    printed: str  # what the backfill printed (its run summary)
+
+    def __iter__(self):  # unpacks as (root, output, counters, expected), as the tests do
+        return iter((self.root, self.output, self.counters, self.expected))
+
+
+@pytest.fixture(scope="session")
+def demo_run(tmp_path_factory):
+    from demo_data import generate
+    from pipelines import backfill
+
+    root = tmp_path_factory.mktemp("demo")
+    generate.write_archive(str(root / "archive"))
+    shutil.copy(os.path.join(DEMO_DIR, "footbridge.toml"), root / "footbridge.toml")
+    output = root / "output"
+    printed = io.StringIO()
+    with contextlib.redirect_stdout(printed):
+        counters = backfill.main(
+            ["--config", str(root / "footbridge.toml"), "--output", str(output), "--run_id", "demo"]
+        )
+    return DemoRun(root, output, counters, generate.expected_changes(), printed.getvalue())
