@@ -16,7 +16,7 @@ import pytest
 from corrtransforms.beam.filesystems import BeamFiles
 from corrtransforms.config import ConfigError
 from pipelines import backfill, nightly
-from tests import demo_fixtures, memory_filesystem
+from tests.support import demo_fixtures, memory_filesystem
 from tests.support.demo_fixtures import BACKFILL_END, NIGHT, TABLES
 
 SITE = "memfs://site"

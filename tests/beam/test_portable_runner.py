@@ -27,7 +27,7 @@ import pyarrow.parquet as pq
 import pytest
 
 from pipelines import backfill, nightly
-from tests import demo_fixtures
+from tests.support import demo_fixtures
 from tests.support.demo_fixtures import BACKFILL_END, NIGHT, TABLES
 
 REPO = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))

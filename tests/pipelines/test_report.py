@@ -23,7 +23,7 @@ from corrtransforms import tables
 from corrtransforms.report import episodes_from_shifts, write_report
 from corrtransforms.report.files import ReportFiles
 from pipelines import report
-from tests import memory_filesystem
+from tests.support import memory_filesystem
 
 UTC = dt.timezone.utc
 START = dt.datetime(2025, 5, 1, tzinfo=UTC)
