@@ -30,6 +30,15 @@ INDICATOR_BATCH = 20_000
 PROGRESS_LOGGER = "corrtransforms.progress"
 
 
+def _duration(seconds: float) -> str:
+    """A time left as the progress line shows it: "40 s", "12 min", "3.5 h"."""
+    if seconds < 90:
+        return f"{seconds:.0f} s"
+    if seconds < 5400:
+        return f"{seconds / 60:.0f} min"
+    return f"{seconds / 3600:.1f} h"
+
+
 class _ProgressFn(beam.DoFn):
     """Passes read tasks through unchanged and logs windows done / planned and the rate.
 
@@ -59,7 +68,12 @@ class _ProgressFn(beam.DoFn):
         if force or now - self._last >= self._interval_s:
             self._last = now
             rate = self._done / max(now - self._started, 1e-9)
-            self._log.info("%s: windows done %d / %d planned (%.1f windows/s)", self._asset, self._done, planned, rate)
+            left = (
+                f", about {_duration((planned - self._done) / rate)} left" if rate > 0 and planned > self._done else ""
+            )
+            self._log.info(
+                "%s: windows done %d / %d planned (%.1f windows/s%s)", self._asset, self._done, planned, rate, left
+            )
 
     def process(self, task, planned):
         self._done += self._pending

@@ -13,6 +13,7 @@ import pyarrow.dataset as ds
 import pytest
 
 from corrtransforms.config import load_config
+from corrtransforms.records import quality_codes, quality_text
 from corrtransforms.stages.analyse import analyse_window
 from corrtransforms.stages.correlate import correlation_table
 from corrtransforms.stages.plan import list_local_archive, plan_archive
@@ -136,7 +137,10 @@ def test_backfill_accounts_for_every_window_and_equals_the_core(bad_run, caplog,
             clipped.column("quality").to_pylist(),
         )
     }
-    assert quality == {("a", "a"): "clipped", ("a", "b"): "clipped", ("b", "b"): "ok"}
+    # these short test records also carry few_effective_samples on every pair alike; only the
+    # clipping code is under test here
+    clip = {k: quality_text(c for c in quality_codes(q) if c != "few_effective_samples") for k, q in quality.items()}
+    assert clip == {("a", "a"): "clipped", ("a", "b"): "clipped", ("b", "b"): "ok"}
 
 
 def test_multi_processing_gives_the_same_rows(bad_run):
