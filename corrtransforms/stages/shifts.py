@@ -194,6 +194,31 @@ class _Columns:
         for name in self.NAMES:
             self.parts[name].append(columns[name])
 
+    def add_without_detectors(self, state, window_start, value, stderr, expected, resid_scale, z, quality):
+        """Rows whose windows do not run the detectors (baseline windows, or a series whose
+        baseline is too short): NaN statistics, no onset, direction, size or alarm."""
+        n = len(window_start)
+        nan = np.full(n, np.nan)
+        self.add(
+            window_start=window_start,
+            value=value,
+            stderr=stderr,
+            expected=expected,
+            resid_scale=resid_scale,
+            z=z,
+            cusum_pos=nan,
+            cusum_neg=nan,
+            ewma=nan,
+            ewma_limit=nan,
+            state=[state] * n,
+            onset=[None] * n,
+            direction=np.zeros(n, np.int8),
+            shift_size=nan,
+            detector=[None] * n,
+            first_alarm=[None] * n,
+            quality=quality,
+        )
+
     def joined(self, name, dtype=None):
         parts = self.parts[name]
         if not parts:
@@ -471,25 +496,15 @@ class _SeriesRun:
         if base_rows:
             expected, resid_scale, z, quality = (list(c) for c in zip(*base_rows))
             m = len(base_rows)
-            nan = np.full(m, np.nan)
-            self.columns.add(
-                window_start=t[:m],
-                value=v[:m],
-                stderr=se[:m],
-                expected=np.asarray(expected, float),
-                resid_scale=np.asarray(resid_scale, float),
-                z=np.asarray(z, float),
-                cusum_pos=nan,
-                cusum_neg=nan,
-                ewma=nan,
-                ewma_limit=nan,
-                state=[BASELINE] * m,
-                onset=[None] * m,
-                direction=np.zeros(m, np.int8),
-                shift_size=nan,
-                detector=[None] * m,
-                first_alarm=[None] * m,
-                quality=quality,
+            self.columns.add_without_detectors(
+                BASELINE,
+                t[:m],
+                v[:m],
+                se[:m],
+                np.asarray(expected, float),
+                np.asarray(resid_scale, float),
+                np.asarray(z, float),
+                quality,
             )
         if i < n:
             self._fitted_windows(t[i:], v[i:], se[i:], codes[i:], None if x is None else x[i:])
@@ -516,27 +531,8 @@ class _SeriesRun:
         quality = _fitted_quality(model, v, se, codes, covariate_missing, usable, stage_codes)
         resid_scale = np.full(n, model.resid_scale)
         if model.too_short:
-            nan = np.full(n, np.nan)
             st.state = NORMAL
-            self.columns.add(
-                window_start=t,
-                value=v,
-                stderr=se,
-                expected=expected,
-                resid_scale=resid_scale,
-                z=z,
-                cusum_pos=nan,
-                cusum_neg=nan,
-                ewma=nan,
-                ewma_limit=nan,
-                state=[NORMAL] * n,
-                onset=[None] * n,
-                direction=np.zeros(n, np.int8),
-                shift_size=nan,
-                detector=[None] * n,
-                first_alarm=[None] * n,
-                quality=quality,
-            )
+            self.columns.add_without_detectors(NORMAL, t, v, se, expected, resid_scale, z, quality)
             return
         errors = self._prediction_errors(resid[usable], se[usable], t[usable])
         paths = self._detector_paths(errors, resid[usable])
