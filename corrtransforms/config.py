@@ -28,6 +28,7 @@ else:  # pragma: no cover
     import tomli as tomllib
 
 from corrtransforms.numerics.correlation import DETRENDS, ESTIMATORS, WEIGHTINGS
+from corrtransforms.storage_precision import STORAGES
 
 _LOG = logging.getLogger(__name__)
 
@@ -110,6 +111,9 @@ class CorrelationConfig:
     detrend: str = "mean"
     weighting: str = "none"
     target_rel_error: float = 0.05
+    #: how the correlations table stores its lag lists: "compact" (rounded, see
+    #: corrtransforms.storage_precision) or "float32" (every bit)
+    storage: str = "compact"
 
 
 @dataclasses.dataclass(frozen=True)
@@ -223,7 +227,7 @@ _KNOWN = {
     "archive": {"path", "layout", "time_column", "channel_column", "value_column", "sample_rate_hz", "timezone"},
     "channels": {"names", "covariates", "units"},
     "windows": {"length_s", "hop_s", "min_coverage", "align", "offset_s", "record_gap_s"},
-    "correlation": {"max_lag_s", "pairs", "estimator", "detrend", "weighting", "target_rel_error"},
+    "correlation": {"max_lag_s", "pairs", "estimator", "detrend", "weighting", "target_rel_error", "storage"},
     "modes": {"name", "channel", "band_hz"},
     "baseline": {"start", "end", "windows", "min_windows"},
     "screening": {"enabled", "segments", "alpha", "action"},
@@ -497,6 +501,7 @@ def _parse_correlation(raw: Mapping[str, Any], windows: WindowsConfig, channels:
             low_open=True,
             high_open=True,
         ),
+        storage=_choice("[correlation] storage", cor.get("storage", "compact"), STORAGES),
     )
 
 

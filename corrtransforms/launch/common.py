@@ -11,6 +11,7 @@ import argparse
 import datetime as _dt
 import difflib
 import logging
+import os
 import posixpath
 import sys
 import uuid
@@ -421,6 +422,31 @@ def summary(counters: Dict[str, int]) -> str:
 
 def entry_point(main) -> None:
     """Run a launcher's ``main`` as a command: exit status 0 when it returns (any SystemExit it
-    raises carries its own status or message)."""
-    main()
-    sys.exit(DONE)
+    raises carries its own status or message).
+
+    The process ends with ``os._exit`` once the outputs are committed and the streams flushed:
+    after a pipeline, native threads of the runner's libraries can still be winding down when
+    the interpreter finalises, and a thread destroyed at that moment aborts the process
+    ("terminate called without an active exception", status 134) although every file was
+    written. The status the command chose is the one the shell sees.
+    """
+    try:
+        main()
+        status = DONE
+    except SystemExit as stop:
+        status = exit_status_of(stop)
+    sys.stdout.flush()
+    sys.stderr.flush()
+    logging.shutdown()
+    os._exit(status)
+
+
+def exit_status_of(stop: SystemExit) -> int:
+    """The status Python would exit with for ``stop`` (a message goes to stderr, status 1)."""
+    code = stop.code
+    if code is None:
+        return DONE
+    if isinstance(code, int):
+        return code
+    print(code, file=sys.stderr)
+    return 1

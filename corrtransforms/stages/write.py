@@ -34,7 +34,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 import corrtransforms
-from corrtransforms import tables
+from corrtransforms import storage_precision, tables
 from corrtransforms.config import AssetConfig
 from corrtransforms.rejects import Reject
 from corrtransforms.timeutil import compact_utc, local_date
@@ -198,6 +198,8 @@ def to_partitions(table_name: str, element: Any, config: AssetConfig) -> List[Tu
     schema = SCHEMAS.get(table_name)
     if schema is not None:
         element = conform(element, schema)
+    if table_name == "correlations" and config.correlation.storage == "compact":
+        element = storage_precision.compact_correlations(element)
     return sorted(split_by_date(element, tz).items())
 
 
@@ -255,6 +257,19 @@ def part_file_name(table: pa.Table) -> str:
     return f"part-{first}-{digest}.parquet"
 
 
+def _encodings(table_name: str) -> Dict[str, Any]:
+    """Per-table Parquet encodings: BYTE_STREAM_SPLIT for the correlations' float lists.
+
+    The split encoding stores each byte of the float32 values in its own stream, so the trailing
+    zero bits of the compact storage (:mod:`corrtransforms.storage_precision`) compress well; it
+    is lossless and read by every Parquet reader of the format's version 2.8 and later.
+    """
+    if table_name != "correlations":
+        return {}
+    others = [f.name for f in tables.CORRELATIONS if f.name not in storage_precision.LIST_COLUMNS]
+    return {"use_dictionary": others, "use_byte_stream_split": storage_precision.parquet_column_paths()}
+
+
 def write_part(
     store,
     output_dir: str,
@@ -305,6 +320,7 @@ def write_part(
             allow_truncated_timestamps=False,
             row_group_size=ROW_GROUP_ROWS,
             store_schema=True,
+            **_encodings(table_name),
         )
     return PartFile(table_name, asset, date, temp, name, table.num_rows)
 

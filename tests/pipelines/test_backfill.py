@@ -18,6 +18,7 @@ from corrtransforms.stages.analyse import analyse_window
 from corrtransforms.stages.correlate import correlation_table
 from corrtransforms.stages.plan import list_local_archive, plan_archive
 from corrtransforms.stages.read import read_task
+from corrtransforms.storage_precision import compact_correlations
 from pipelines import backfill
 from tests.support.archive_data import T0, US, bad_wide_archive, long_table, samples, wide_table, write_files
 
@@ -49,7 +50,7 @@ def _write_config(path, archive, layout="wide", names='["a", "b"]', timezone="UT
 
 def _in_memory(config):
     """The same computation without Beam: plan, read, analyse_window (screening + correlate_window),
-    correlation_table."""
+    correlation_table, and the storage rounding of the correlations table's lists."""
     plan = plan_archive(list_local_archive(config.archive.path), config)
     results, whole = [], []
     for task in plan.tasks:
@@ -59,7 +60,10 @@ def _in_memory(config):
         whole += [r for _, found in analysed for r in found if r.rejects_whole_window]
         results += [result for result, _ in analysed if result is not None]
     results = [r for r in results if r.pairs]
-    return plan, correlation_table(results), whole
+    table = correlation_table(results)
+    if config.correlation.storage == "compact":
+        table = compact_correlations(table)
+    return plan, table, whole
 
 
 def _read(output, table):
