@@ -24,6 +24,7 @@ from scipy.signal.windows import parzen
 from corrtransforms.numerics.bartlett import bartlett_stderr
 from corrtransforms.numerics.correlation import WEIGHTINGS, even_extension
 from corrtransforms.numerics.envelope import correlation_envelope
+from corrtransforms.numerics.phase_noise import phase_moments
 
 #: quality codes of this module (code -> meaning)
 QUALITY_CODES = {
@@ -53,6 +54,10 @@ PSD_FLOOR = 2e-3
 #: 95 % point of a normal law; the two estimates share the data, so their difference varies
 #: less than the sum and the test is lenient)
 AGREEMENT_Z = 2.0
+#: a frequency enters the lag's curvature when its estimated coherence exceeds what zero
+#: coherence gives with this probability (common practice: the 1 % significance level; 5 % let enough noise bins in to make the
+#: stderr vary by a factor 4 between windows, measured on the broadband-noise test case)
+COHERENCE_ALPHA = 0.01
 #: sinc interpolation uses this many samples on each side of the peak sample
 INTERPOLATION_HALF_WIDTH = 64
 #: fine-grid points per sample on which the interpolated peak is searched
@@ -460,10 +465,12 @@ def _lag_variances(
     autos_b,
     weightings,
     peak_coef: np.ndarray,
+    offset: Optional[np.ndarray] = None,
 ) -> np.ndarray:
     """:func:`lag_variance` of the given rows: the real transforms of rows with the same length
     in one call, each channel's auto spectrum for a half-width once (autos reused by identity).
-    ``rho_clean`` and the autos are already ``nan_to_num``-ed."""
+    ``rho_clean`` and the autos are already ``nan_to_num``-ed; ``offset`` (samples, default 0)
+    is each row's refined peak position minus ``peak_index``."""
     count, n = rho_clean.shape
     L = (n - 1) // 2
     variance = np.full(count, np.nan)
@@ -495,6 +502,7 @@ def _lag_variances(
         S_ab = scipy.fft.rfft(segments, axis=1)
         S_ab *= lag_step_s  # in place: the same products as lag_step_s * S_ab
         mag_ab = np.abs(S_ab)
+        aligned = _peak_aligned_real_part(S_ab, rho_clean, peak_index, offset, members, n_fft)
         del S_ab
         auto_keys = list(auto_slot)
         if auto_keys:
@@ -514,8 +522,9 @@ def _lag_variances(
             else:
                 gamma2 = min(float(peak_coef[row]) ** 2, 0.999)
                 product[line] = mag_ab[line] ** 2 / gamma2
+            aligned[line] *= _coherent_bins(mag_ab[line], product[line], half, record_s[row] / lag_step_s)
         numerator, curvature = _variance_sums(
-            mag_ab, product, [weightings[row] for row, _ in members], n_fft, lag_step_s
+            mag_ab, aligned, product, [weightings[row] for row, _ in members], n_fft, lag_step_s
         )
         for line, (row, _) in enumerate(members):
             if curvature[line] > 0:
@@ -523,9 +532,53 @@ def _lag_variances(
     return variance
 
 
-def _variance_sums(mag_ab: np.ndarray, product: np.ndarray, kinds, n_fft: int, lag_step_s: float):
-    """Numerator ``int w^2 psi^2 [S_aa S_bb - |S_ab|^2] df`` and curvature ``int w^2 psi |S_ab| df``
-    of :func:`lag_variance` for rows of one transform length (``kinds``: each row's weighting)."""
+def _coherent_bins(mag_ab: np.ndarray, product: np.ndarray, half: int, samples: float) -> np.ndarray:
+    """Bins whose estimated coherence ``|S_ab|^2 / (S_aa S_bb)`` exceeds what noise alone reaches
+    with probability :data:`COHERENCE_ALPHA`.
+
+    The curvature sums the aligned real part over these bins only. Outside the source's band
+    that real part is noise of mean zero, but ``w^2`` weights it most, so summing it over the
+    whole band left the curvature, hence the stderr, noisy from window to window (and now and
+    then of the wrong sign). The selection does not bias the sum: for circular noise the
+    estimate's magnitude, which selects, is independent of its phase, which sets the real part.
+    Under zero coherence the smoothed estimate is ``Beta(1, nu/2 - 1)`` distributed (Carter
+    1987, from memory): the threshold is ``1 - (alpha / M)^(1 / (nu/2 - 1))``, Bonferroni over
+    the about ``M`` (the half-width) resolution cells of 0..fs/2, since a single selected noise
+    cell near Nyquist, weighted by ``w^2``, can outweigh the whole signal band; ``nu = 2 N /
+    sum_k w_k^2`` the degrees of freedom of a Blackman-Tukey estimate with lag window ``w``
+    (Priestley, *Spectral Analysis and Time Series*, 1981, Sec. 6.2, from memory; 3.71 N / M
+    for the Parzen window)."""
+    nu = 2.0 * samples / float(np.sum(_parzen(2 * half + 1) ** 2))
+    if nu <= 4:
+        return np.ones(len(mag_ab), dtype=bool)
+    threshold = 1.0 - (COHERENCE_ALPHA / half) ** (1.0 / (nu / 2.0 - 1.0))
+    return mag_ab**2 > threshold * product
+
+
+def _peak_aligned_real_part(S_ab, rho_clean, peak_index, offset, members, n_fft: int) -> np.ndarray:
+    """``Re(S_ab exp(i w delta)) * sign(rho at the peak)`` of each member row: the cross spectrum
+    of the segment centred on the peak sample, turned so that the refined peak (``delta`` samples
+    from the centre) is at zero lag, signed so that the peak is positive.
+
+    Its integral against ``w^2 psi`` is the curvature of the (weighted) cross-correlation at its
+    peak. The magnitude ``|S_ab|`` overstates it: where the coherence is small (sensor noise
+    outside the source's band) the estimated ``|S_ab|`` is about ``sqrt(S_aa S_bb / nu)`` of pure
+    noise, always positive, and ``w^2`` weights those bands most, so the lag's variance came out
+    2-5x too small at long ``max_lag`` (benchmarks/calibration.py, scenario delay_broadband_long).
+    The real part of the aligned spectrum is the signal's ``|S_ab|`` plus noise of mean zero."""
+    f = scipy.fft.rfftfreq(n_fft)  # cycles per sample
+    out = np.empty(S_ab.shape)
+    for line, (row, _) in enumerate(members):
+        delta = 0.0 if offset is None else float(offset[row])
+        sign = -1.0 if rho_clean[row, int(peak_index[row])] < 0 else 1.0
+        out[line] = sign * (S_ab[line] * np.exp(2j * np.pi * f * delta)).real
+    return out
+
+
+def _variance_sums(mag_ab: np.ndarray, aligned: np.ndarray, product: np.ndarray, kinds, n_fft: int, lag_step_s: float):
+    """Numerator ``int w^2 psi^2 [S_aa S_bb - |S_ab|^2] df`` and curvature
+    ``int w^2 psi Re(S_ab e^{i w delta}) df`` (``aligned``, :func:`_peak_aligned_real_part`) of
+    :func:`lag_variance` for rows of one transform length (``kinds``: each row's weighting)."""
     f = scipy.fft.rfftfreq(n_fft, lag_step_s)
     w2 = (2 * np.pi * f) ** 2
     w2[1 : (n_fft + 1) // 2] *= 2.0
@@ -536,16 +589,33 @@ def _variance_sums(mag_ab: np.ndarray, product: np.ndarray, kinds, n_fft: int, l
     if all(kind == "none" for kind in kinds):
         # psi = 1: w2 * psi**2 and w2 * psi are w2 exactly
         excess *= w2
-        return np.sum(excess, axis=1) * df, np.sum(w2 * mag_ab, axis=1) * df
+        return np.sum(excess, axis=1) * df, np.sum(w2 * aligned, axis=1) * df
     tiny = 1e-9 * (mag_ab.max(axis=1) + 1e-300)
     psi = np.ones_like(mag_ab)
     kind = np.array(kinds)
     phat, scot = kind == "phat", kind == "scot"
-    if phat.any():
-        psi[phat] = 1.0 / np.maximum(mag_ab[phat], tiny[phat, None])
     if scot.any():
         psi[scot] = 1.0 / np.maximum(np.sqrt(product[scot]), tiny[scot, None])
-    return np.sum(w2 * psi**2 * excess, axis=1) * df, np.sum(w2 * psi * mag_ab, axis=1) * df
+    numerator = np.sum(w2 * psi**2 * excess, axis=1) * df
+    curvature = np.sum(w2 * psi * aligned, axis=1) * df
+    if phat.any():
+        numerator[phat], curvature[phat] = _phase_only_sums(aligned[phat], product[phat], w2, df)
+    return numerator, curvature
+
+
+def _phase_only_sums(aligned: np.ndarray, product: np.ndarray, w2: np.ndarray, df: float):
+    """Numerator and curvature of a PHAT row: the weighted correlation keeps one phase per raw
+    bin, so a bin of coherence ``gamma`` adds ``w^2 2 E[sin^2 theta]`` to the numerator and
+    ``w^2 E[cos theta]`` to the curvature (:mod:`corrtransforms.numerics.phase_noise`); both
+    tend to Knapp & Carter's ``w^2 (1 - gamma^2) / gamma^2`` and ``w^2`` where the coherence is
+    high, and stay bounded where it is zero. ``gamma`` is estimated by the aligned real part over
+    ``sqrt(S_aa S_bb)``: of mean zero in a band of pure noise, where ``|S_ab| / sqrt(S_aa S_bb)``
+    is about ``sqrt(1 / nu)`` of noise."""
+    root = np.sqrt(product)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        coherence = np.where(root > 0, aligned / np.where(root > 0, root, 1.0), 0.0)
+    mean_cos, mean_sin2 = phase_moments(coherence)
+    return np.sum(w2 * 2.0 * mean_sin2, axis=1) * df, np.sum(w2 * mean_cos, axis=1) * df
 
 
 def auto_spectrum_floor(auto) -> float:
@@ -669,6 +739,7 @@ def _disagrees_with_plain(
         [autos_b[i] for i in rows],
         none,
         np.full(len(rows), np.nan),
+        plain_position - k,
     )
     gap = np.abs(position[rows] - plain_position) * lag_step_s
     with np.errstate(invalid="ignore"):
@@ -823,7 +894,7 @@ def _finite_row_estimates(
     peak_sd = _peak_coef_stderrs(rho_clean, s, position, at_edge, autos_a, autos_b, peak_sd)
     weak = np.isfinite(peak_sd) & (np.abs(peak_coef) < peak_z * peak_sd)
     variance = _lag_variances(
-        rho_clean, k, np.nonzero(~at_edge)[0], lag_step_s, record, autos_a, autos_b, weightings, peak_coef
+        rho_clean, k, np.nonzero(~at_edge)[0], lag_step_s, record, autos_a, autos_b, weightings, peak_coef, position - k
     )
     width = _envelope_widths(located_clean, k, lag_step_s)
     suspect = _empty_band_rows(autos_a, autos_b, weightings)
