@@ -55,7 +55,8 @@ PSD_FLOOR = 2e-3
 #: less than the sum and the test is lenient)
 AGREEMENT_Z = 2.0
 #: a frequency enters the lag's curvature when its estimated coherence exceeds what zero
-#: coherence gives with this probability (common practice: the 1 % significance level; 5 % let enough noise bins in to make the
+#: coherence gives with this probability, Bonferroni over the resolution cells (common
+#: practice: the 1 % level; 5 % without the correction let enough noise bins in to make the
 #: stderr vary by a factor 4 between windows, measured on the broadband-noise test case)
 COHERENCE_ALPHA = 0.01
 #: sinc interpolation uses this many samples on each side of the peak sample

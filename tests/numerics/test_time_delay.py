@@ -192,8 +192,9 @@ def _lag_variance_full_spectrum(rho, peak_index, dt, record_s, auto_a, auto_b, w
     """Knapp & Carter (1976) Eq. (16) summed over every bin of numpy's complex FFT (reference),
     with the curvature from the real part of the peak-centred cross spectrum (signed by the peak)
     and, for PHAT, the single-look phase moments of each bin (phase_noise, checked on its own)."""
-    from corrtransforms.numerics.phase_noise import phase_moments
     from scipy.signal.windows import parzen
+
+    from corrtransforms.numerics.phase_noise import phase_moments
 
     L = (len(rho) - 1) // 2
     half = min(L - abs(peak_index - L), len(auto_a) - 1, len(auto_b) - 1)
