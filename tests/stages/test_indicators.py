@@ -243,3 +243,57 @@ def test_spurious_lag_peak_reaches_the_pair_rows_and_holds_the_window():
         else:  # not flagged: the whitened peak agrees with the delay within a sample
             assert abs(lag.value - delay) < 1 / fs
     assert held >= 2  # 84 % of such windows in the calibration benchmark
+
+
+def _gappy_delayed_block(rng, n=9500, fs=10.0, phi=0.9, delay=4, noise_var=0.1):
+    """AR(1) source (phi 0.9) seen by two sensors, b lagging a by ``delay`` samples, white noise
+    of variance ``noise_var`` on each, 20 % of samples missing in bursts (mean 50 samples)."""
+    import scipy.signal
+
+    drive = rng.standard_normal(n + delay + 500)
+    source = scipy.signal.lfilter([1.0], [1.0, -phi], drive)[500:]
+    a = source[delay:] + np.sqrt(noise_var) * rng.standard_normal(n)
+    b = source[:n] + np.sqrt(noise_var) * rng.standard_normal(n)
+    valid = np.ones(n, dtype=bool)
+    t = int(rng.integers(0, 200))
+    while t < n:  # alternating runs: valid of mean 200, missing of mean 50
+        gap = int(rng.geometric(1 / 50))
+        valid[t : t + gap] = False
+        t += gap + int(rng.geometric(1 / 200))
+    values = np.column_stack([np.where(valid, a, 0.0), np.where(valid, b, 0.0)])
+    mask = np.column_stack([valid, valid])
+    return WindowBlock("gappy", START_US, n / fs, fs, ("a", "b"), values, mask)
+
+
+def test_lag_and_peak_coef_unbiased_on_records_with_gaps():
+    # the biased estimator divides every lag by sqrt(N_a N_b) whatever its pair count, which
+    # tilted the peak towards lag 0 by 2.5 stderr and shrank peak_coef by 9 stderr on such records
+    config = parse_config(
+        {
+            "asset": {"name": "gappy"},
+            "archive": {"path": "/nonexistent", "sample_rate_hz": 10.0},
+            "windows": {"length_s": 950.0},
+            "correlation": {"max_lag_s": 10.0},
+        }
+    )
+    rng = np.random.default_rng(31)
+    lags, lag_se, peaks, peak_se = [], [], [], []
+    for _ in range(60):
+        rows = _by_key(window_indicators(correlate_window(_gappy_delayed_block(rng), config), config))
+        lags.append(rows[("a:b", "lag_s")].value)
+        lag_se.append(rows[("a:b", "lag_s")].stderr)
+        peaks.append(rows[("a:b", "peak_coef")].value)
+        peak_se.append(rows[("a:b", "peak_coef")].stderr)
+    # truths in closed form: the AR(1) autocovariance 1 / (1 - phi^2) phi^|k| (Box & Jenkins,
+    # Time Series Analysis, Sec. 3.2) peaks at the delay, 0.4 s; its coefficient is
+    # var_s / (var_s + 0.1)
+    var_s = 1 / (1 - 0.9**2)
+    truth_peak = var_s / (var_s + 0.1)
+    lags, lag_se, peaks, peak_se = map(np.array, (lags, lag_se, peaks, peak_se))
+    assert abs(np.mean(lags) - 0.4) < 0.5 * np.median(lag_se)
+    assert abs(np.mean(peaks) - truth_peak) < 0.5 * np.median(peak_se)
+    assert np.mean(np.abs(lags - 0.4) <= 1.96 * lag_se) >= 0.88
+    # peak_coef's stderr is still too small here (coverage 0.75, 0.86 on the calibration
+    # matrix's gappy record; it was 0.00 before the count correction): Bartlett's variance near
+    # |rho| = 1 with missing bursts, left open in docs/calibration.md
+    assert np.mean(np.abs(peaks - truth_peak) <= 1.96 * peak_se) >= 0.7
