@@ -417,6 +417,18 @@ def build_scenarios() -> List[Scenario]:
             0.5,
         ),
         delay_scenario(
+            "delay_broadband_long",
+            "source 0-10 Hz, white sensor noise 0-25 Hz (in-band SNR 4), delay 0.0537 s, fs 50 Hz, "
+            "6000 samples (2 min), max_lag 10 s",
+            scaled(flat_psd(6000, 50.0, (0.0, 10.0)), 1.0),
+            scaled(flat_psd(6000, 50.0, (0.0, 25.0)), 1.25),
+            scaled(flat_psd(6000, 50.0, (0.0, 25.0)), 1.25),
+            delay,
+            50.0,
+            6000,
+            10.0,
+        ),
+        delay_scenario(
             "band_limited",
             f"source and noise (SNR 4) 0-20 Hz, 20-50 Hz empty, delay {delay} s, {n} samples",
             scaled(low20, 1.0),

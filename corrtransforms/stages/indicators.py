@@ -240,8 +240,10 @@ def _pair_rows(
     subject = pair.subject
     if estimate is None:  # the per-pair path
         weighted, weighting, auto_a, auto_b = _lag_inputs(wc, config, pair)
+        coefficient, stderr = _located_coefficient(wc, config, pair)
         estimate = estimate_lag(
-            *_located_coefficient(wc, config, pair),
+            coefficient,
+            stderr,
             pair.first_lag_s,
             pair.lag_step_s,
             pair.record_s,
