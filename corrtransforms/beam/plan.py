@@ -20,6 +20,7 @@ from corrtransforms.stages.footer_index import (
     write_footer_index,
 )
 from corrtransforms.stages.plan import FileFooter
+from corrtransforms.stages.write import provenance_metadata
 
 
 class _ChooseFilesFn(beam.DoFn):
@@ -30,7 +31,7 @@ class _ChooseFilesFn(beam.DoFn):
         self._config, self._start, self._end, self._output = config, start, end, output_dir
 
     def setup(self):
-        self._listed = counter("files_listed")
+        self._listed = counter("files_in_archive")
         self._by_name = counter("files_skipped_by_name")
         self._by_index = counter("files_skipped_by_index")
 
@@ -52,10 +53,12 @@ class _ReadFooterFn(beam.DoFn):
 
     def setup(self):
         self._opened = counter("footers_opened")
+        self._files = counter("files_listed")
         self._unusable = counter("files_rejected")
 
     def process(self, listed: ListedFile):
         self._opened.inc()
+        self._files.inc()
         footer, findings = archive_plan.read_footer(listed.path, self._config, open_file)
         if footer is None:
             self._unusable.inc()
@@ -69,8 +72,9 @@ class _ReadFooterFn(beam.DoFn):
         yield from findings
 
 
-def _write_index(entries: List[IndexEntry], output_dir: str, config: AssetConfig) -> bool:
-    written = write_footer_index(BeamFiles(), output_dir, config, entries)
+def _write_index(entries: List[IndexEntry], output_dir: str, config: AssetConfig, run_id: str) -> bool:
+    provenance = provenance_metadata(config, run_id)
+    written = write_footer_index(BeamFiles(), output_dir, config, entries, provenance)
     if written:
         counter("footer_index_written").inc()
     return written
@@ -113,13 +117,16 @@ class PlanReads(beam.PTransform):
         The output root: the footer index (:mod:`corrtransforms.stages.footer_index`) is read from
         and written to ``output_dir/_summaries/asset=NAME/footer_index.parquet``, so a run for a
         few days opens only the footers of files whose range can hold them. None: no index.
+    run_id : str
+        The run's id in the index's provenance metadata.
 
     Notes
     -----
     Files not opened (:func:`corrtransforms.stages.plan.choose_files`): ``date=`` folders more
     than a day outside the days, names whose ``[archive] file_time_pattern`` start lies outside
     them, and indexed files of unchanged size and modification time whose range lies outside
-    them. Counters: ``files_listed``, ``footers_opened``, ``files_skipped_by_name``,
+    them. Counters: ``files_in_archive`` (listed), ``footers_opened`` (``files_listed`` counts
+    the same, its name kept from before the skipping), ``files_skipped_by_name``,
     ``files_skipped_by_index``, ``footer_index_written``.
 
     Returns
@@ -136,11 +143,12 @@ class PlanReads(beam.PTransform):
         end: Optional[_dt.date] = None,
         pattern: Optional[str] = None,
         output_dir: Optional[str] = None,
+        run_id: str = "",
     ):
         super().__init__()
         self._config, self._start, self._end = config, start, end
         self._pattern = pattern or config.archive.path
-        self._output = output_dir
+        self._output, self._run_id = output_dir, run_id
 
     def expand(self, pbegin):
         start, end = self._start, self._end
@@ -160,7 +168,7 @@ class PlanReads(beam.PTransform):
                 (chosen.indexed, footers.indexed)
                 | "Index entries" >> beam.Flatten()
                 | "Collect index entries" >> beam.combiners.ToList()
-                | "Write footer index" >> beam.Map(_write_index, self._output, self._config)
+                | "Write footer index" >> beam.Map(_write_index, self._output, self._config, self._run_id)
             )
         planned = (
             footers.footers

@@ -20,7 +20,7 @@ from __future__ import annotations
 import dataclasses
 import json
 import uuid
-from typing import Dict, Iterable, Optional
+from typing import Dict, Iterable, Mapping, Optional
 
 import pyarrow as pa
 import pyarrow.parquet as pq
@@ -123,9 +123,16 @@ def load_footer_index(store, output_dir: str, config: AssetConfig) -> Dict[str, 
     return {entry.path: entry for entry in entries}
 
 
-def write_footer_index(store, output_dir: str, config: AssetConfig, entries: Iterable[IndexEntry]) -> bool:
+def write_footer_index(
+    store,
+    output_dir: str,
+    config: AssetConfig,
+    entries: Iterable[IndexEntry],
+    provenance: Optional[Mapping[str, str]] = None,
+) -> bool:
     """Replace the asset's index with ``entries`` (one per path; files no longer listed drop
-    out), unless it already holds exactly these. Written to a temporary name, then renamed.
+    out), unless it already holds exactly these. Written to a temporary name, then renamed, with
+    ``provenance`` (:func:`corrtransforms.stages.write.provenance_metadata`) in its file metadata.
 
     Returns
     -------
@@ -137,9 +144,9 @@ def write_footer_index(store, output_dir: str, config: AssetConfig, entries: Ite
         return False
     ordered = [by_path[p] for p in sorted(by_path)]
     columns = {name: [getattr(e, name) for e in ordered] for name in SCHEMA.names}
-    table = pa.Table.from_pydict(columns, schema=SCHEMA).replace_schema_metadata(
-        {_FORMAT_KEY: _FORMAT.encode(), _READING_KEY: _reading(config)}
-    )
+    metadata = {k.encode(): v.encode() for k, v in (provenance or {}).items()}
+    metadata.update({_FORMAT_KEY: _FORMAT.encode(), _READING_KEY: _reading(config)})
+    table = pa.Table.from_pydict(columns, schema=SCHEMA).replace_schema_metadata(metadata)
     path = index_path(store, output_dir, config)
     store.mkdirs(summaries.summary_folder(store, output_dir, config.name))
     table_writer.write_parquet_in_place(store, path, table, temporary=f"{path}.{uuid.uuid4().hex}.tmp")
