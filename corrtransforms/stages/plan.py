@@ -634,12 +634,11 @@ def plan_reads(
     A window is in exactly one task, with every row group of every file it overlaps.
     """
     tz = config.timezone
-    length_us = window_grid(config)[0]
     channels = resolve_channels(footers, config)
     covariates = tuple(config.channels.covariates)
     lo_us = day_start_us(start, tz) if start else None
     hi_us = day_start_us(end + _dt.timedelta(days=1), tz) if end else None
-    usable, rejects = _usable_files(footers, config, channels + covariates, lo_us, hi_us, length_us)
+    usable, rejects = _usable_files(footers, config, channels + covariates, reading_span(config, start, end))
     record_starts = (
         record_window_starts(find_records(footers, config), config) if config.windows.align == "records" else None
     )
@@ -662,19 +661,16 @@ def _usable_files(
     footers: Sequence[FileFooter],
     config: AssetConfig,
     names: Tuple[str, ...],
-    lo_us: Optional[int],
-    hi_us: Optional[int],
-    length_us: int,
+    span: Tuple[Optional[int], Optional[int]],
 ) -> Tuple[List[_UsableFile], List[Reject]]:
-    """The files (sorted by path) whose span reaches into [lo_us, hi_us) by less than a window,
-    with their columns, and the findings of configured channels a file lacks (wide layout)."""
+    """The files (sorted by path) whose samples reach ``span`` (:func:`reading_span`: the days
+    and a window length on each side), with their columns, and the findings of configured
+    channels a file lacks (wide layout)."""
     archive = config.archive
     rejects: List[Reject] = []
     usable: List[_UsableFile] = []
     for footer in sorted(footers, key=lambda f: f.path):
-        in_range = (hi_us is None or footer.start_us - length_us < hi_us) and (
-            lo_us is None or footer.end_us + length_us >= lo_us
-        )
+        in_range = span_may_hold(footer.start_us, footer.end_us, span)
         if archive.layout == "wide":
             absent = tuple(name for name in names if name not in footer.numeric_columns)
             if in_range:
@@ -866,28 +862,23 @@ def in_day_range(path: str, start: Optional[_dt.date], end: Optional[_dt.date]) 
 # Which files a run opens: date= folders, the start times in the names, the footer index
 
 
-def needed_sample_span(
+def reading_span(
     config: AssetConfig, start: Optional[_dt.date], end: Optional[_dt.date]
 ) -> Tuple[Optional[int], Optional[int]]:
-    """``[first, stop)``: the UTC microseconds of every sample a window starting on the days
-    ``start``..``end`` (asset time zone, inclusive) can hold; None for an open end.
+    """``[first, stop)``: UTC microseconds a file must reach for :func:`plan_reads` to use it
+    for windows starting on the days ``start``..``end`` (asset time zone, inclusive); None for an
+    open end.
 
-    A window starting at ``s`` holds the samples ``s - T/2 <= t < s + length - T/2``
-    (:func:`plan_reads`). With ``align = "epoch"`` the first and last window starts of the days
-    are on the grid, so a window ending at midnight needs nothing of the next day; with
-    ``align = "records"`` a window may start anywhere in the days.
+    The days run from local midnight ``lo`` to local midnight ``hi``; a file is used when its
+    samples reach ``[lo - length, hi + length)`` (one window length on each side: a window that
+    starts before midnight and a window that crosses it). This is the one rule both for the
+    files planning uses and for the files a run may leave unopened (:func:`choose_files`), so
+    not opening a file changes neither the tasks nor the file findings of the plan.
     """
-    length_us, hop_us, _, period_us = window_grid(config)
-    half = period_us / 2
+    length_us = window_grid(config)[0]
     lo_us = day_start_us(start, config.timezone) if start else None
     hi_us = day_start_us(end + _dt.timedelta(days=1), config.timezone) if end else None
-    if config.windows.align == "epoch":
-        offset_us = int(round(config.windows.offset_s * US_PER_S))
-        lo_us = None if lo_us is None else offset_us + math.ceil((lo_us - offset_us) / hop_us) * hop_us
-        hi_us = None if hi_us is None else offset_us + (math.ceil((hi_us - offset_us) / hop_us) - 1) * hop_us + 1
-    first = None if lo_us is None else math.floor(lo_us - half)
-    stop = None if hi_us is None else math.ceil(hi_us - 1 + length_us - half)
-    return first, stop
+    return (None if lo_us is None else lo_us - length_us), (None if hi_us is None else hi_us + length_us)
 
 
 def span_may_hold(first_us: int, last_us: int, needed: Tuple[Optional[int], Optional[int]]) -> bool:
@@ -918,14 +909,14 @@ def may_hold_days(path: str, config: AssetConfig, start: Optional[_dt.date], end
     """False when the path alone shows the file holds no sample of the days: its Hive ``date=``
     folder lies more than a day outside them (:func:`in_day_range`), or the start its name gives
     (``[archive] file_time_pattern``) plus ``[archive] file_span_h`` lies outside
-    :func:`needed_sample_span`. A name that does not match the pattern says nothing: True."""
+    :func:`reading_span`. A name that does not match the pattern says nothing: True."""
     if not in_day_range(path, start, end):
         return False
     named = named_start_us(path, config)
     if named is None or (start is None and end is None):
         return True
     span_us = int(round(config.archive.file_span_h * 3600 * US_PER_S))
-    return span_may_hold(named, named + span_us, needed_sample_span(config, start, end))
+    return span_may_hold(named, named + span_us, reading_span(config, start, end))
 
 
 @dataclasses.dataclass
@@ -950,12 +941,12 @@ def choose_files(
 
     A file is not opened when its path shows it holds no sample of the days (:func:`may_hold_days`:
     ``date=`` folder, or the start time in its name), or when the footer index has an entry of the
-    same size and modification time whose time range lies outside :func:`needed_sample_span`.
+    same size and modification time whose time range lies outside :func:`reading_span`.
     Every other file is opened: new and changed files, names that do not match the pattern,
     files the index does not know. Without ``start`` and ``end`` every file is opened.
     """
     index = index or {}
-    needed = needed_sample_span(config, start, end)
+    needed = reading_span(config, start, end)
     choice = FileChoice(open=[], carried=[])
     for listed in files:
         entry = index.get(listed.path)

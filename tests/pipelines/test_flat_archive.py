@@ -84,12 +84,16 @@ def test_a_pattern_opens_two_days_of_files_and_gives_the_tables_of_date_folders(
     assert hive["footers_opened"] == 3 * FILES_PER_DAY  # date= folders: the day and one on each side
     pattern = _backfill(site, "pattern", site / "out-pattern", DAY5)
     assert pattern["files_in_archive"] == 10 * FILES_PER_DAY
-    # file_span_h = 24 (the default): the day's files and those named in the 24 h before it
-    assert pattern["footers_opened"] == 2 * FILES_PER_DAY
+    # file_span_h = 24 (the default): the day's files, those named in the 24 h before it, and the
+    # next day's first file (a window's length after midnight belongs to the day's planning)
+    assert pattern["footers_opened"] == 2 * FILES_PER_DAY + 1
     assert pattern["windows_planned"] == hive["windows_planned"] == 2 * FILES_PER_DAY
     assert_same_tables(reference, site / "out-pattern")
     night = _nightly(site, "pattern", site / "out-pattern", DAY6)
-    assert night["footers_opened"] <= 2 * FILES_PER_DAY and night["windows_computed"] == 2 * FILES_PER_DAY
+    # the next night: the files the first run opened are in the footer index now, so of the
+    # pattern's 49 only the day's 24 and the next day's first are opened
+    assert night["footers_opened"] == FILES_PER_DAY + 1 and night["files_skipped_by_index"] == FILES_PER_DAY
+    assert night["windows_computed"] == 2 * FILES_PER_DAY
 
 
 def test_without_a_pattern_the_index_lets_later_nights_open_one_day_of_files(site, hive_day):
@@ -102,9 +106,10 @@ def test_without_a_pattern_the_index_lets_later_nights_open_one_day_of_files(sit
     assert_same_tables(hive_day[0], output)
 
     second = _nightly(site, "flat", output, DAY6)
-    # the day's files; every other file is known from the index (its minute cannot reach the day)
-    assert second["footers_opened"] == FILES_PER_DAY <= 2 * FILES_PER_DAY
-    assert second["files_skipped_by_index"] == 9 * FILES_PER_DAY
+    # the day's files and the next day's first; every other file is known from the index (its
+    # minute cannot reach the day or a window length around it)
+    assert second["footers_opened"] == FILES_PER_DAY + 1 <= 2 * FILES_PER_DAY
+    assert second["files_skipped_by_index"] == 9 * FILES_PER_DAY - 1
     assert second.get("footer_index_written", 0) == 0  # nothing changed: the index is not rewritten
 
     # a file of day 2 rewritten with new content, now holding a minute of day 7 at 12:30
@@ -112,7 +117,7 @@ def test_without_a_pattern_the_index_lets_later_nights_open_one_day_of_files(sit
     moved_us = T0 + (6 * 24 + 12.5) * 3600 * US
     pq.write_table(wide_table(samples(60.0, 4.0, seed=1234, start_us=int(moved_us))), changed)
     third = _nightly(site, "flat", output, DAY7)
-    assert third["footers_opened"] == FILES_PER_DAY + 1 and third["footer_index_written"] == 1
+    assert third["footers_opened"] == FILES_PER_DAY + 2 and third["footer_index_written"] == 1
     assert third["windows_computed"] == 2 * FILES_PER_DAY + 2  # its two windows are read too
     indexed = load_footer_index(LocalFiles(), str(output), config)[changed]
     assert indexed.start_us == int(moved_us) and indexed.size == os.path.getsize(changed)

@@ -19,10 +19,10 @@ from corrtransforms.stages.plan import (
     file_time_finding,
     list_local_archive,
     may_hold_days,
-    needed_sample_span,
     open_local_file,
     plan_archive,
     read_footer,
+    reading_span,
 )
 from corrtransforms.stages.write import LocalFiles
 from corrtransforms.timeutil import compile_file_time_pattern, file_name_time_us
@@ -85,19 +85,14 @@ def test_names_that_do_not_match_or_name_no_real_time_give_none(path):
     assert file_name_time_us(compile_file_time_pattern("site_%Y%m%d_%H%M.parquet"), path, "UTC") is None
 
 
-def test_needed_span_of_a_day_on_the_epoch_grid_and_with_records():
-    # 60-s windows at 10 Hz (T/2 = 50 ms): the day's windows start at 00:00 ... 23:59 and hold
-    # samples from 00:00 - T/2 to before 24:00 - T/2
+def test_reading_span_is_the_days_and_a_window_on_each_side():
     config = make_config("x", rate=10.0, length_s=60.0)
     lo, hi = _utc_us(2024, 3, 8), _utc_us(2024, 3, 9)
-    assert needed_sample_span(config, DAY, DAY) == (lo - 50_000, hi - 50_000)
-    # overlapping windows (hop 30 s) and an offset reach into the next day
-    config = make_config("x", rate=10.0, length_s=60.0, hop_s=30.0, offset_s=10.0)
-    assert needed_sample_span(config, DAY, DAY) == (lo + 10 * US - 50_000, hi - 20 * US + 60 * US - 50_000)
-    # records: a window may start at any instant of the day
-    config = make_config("x", rate=10.0, length_s=60.0, align="records")
-    assert needed_sample_span(config, DAY, DAY) == (lo - 50_000, hi - 1 + 60 * US - 50_000)
-    assert needed_sample_span(config, None, None) == (None, None)
+    assert reading_span(config, DAY, DAY) == (lo - 60 * US, hi + 60 * US)
+    # days in the asset's time zone (zoneinfo: Vienna is UTC+1 in March before the change)
+    vienna = make_config("x", rate=10.0, length_s=60.0, extra={"asset": {"timezone": "Europe/Vienna"}})
+    assert reading_span(vienna, DAY, DAY) == (lo - 3600 * US - 60 * US, hi - 3600 * US + 60 * US)
+    assert reading_span(config, None, None) == (None, None)
 
 
 def test_pattern_opens_two_days_of_a_flat_archive_and_plans_as_the_full_listing(tmp_path):
@@ -108,7 +103,7 @@ def test_pattern_opens_two_days_of_a_flat_archive_and_plans_as_the_full_listing(
     everything = CountingOpener()
     full = plan_archive(paths, base, everything, DAY, DAY)
     assert len(everything.opened) == 240
-    for span_h, expected in ((24, 48), (1, 25)):
+    for span_h, expected in ((24, 49), (1, 26)):
         config = make_config(
             folder,
             rate=2.0,
@@ -118,7 +113,8 @@ def test_pattern_opens_two_days_of_a_flat_archive_and_plans_as_the_full_listing(
         )
         opener = CountingOpener()
         plan = plan_archive(paths, config, opener, DAY, DAY)
-        # the day's 24 files, and every file named in the file_span_h before midnight
+        # the day's 24 files, every file named in the file_span_h (and a window) before midnight,
+        # and the next day's first file (it may hold samples of a window that crosses midnight)
         assert len(opener.opened) == expected
         assert plan.tasks == full.tasks and plan.days == full.days
         assert sorted(plan.rejects, key=repr) == sorted(full.rejects, key=repr)
@@ -170,14 +166,15 @@ def test_the_index_skips_unchanged_files_outside_the_days_and_reopens_changed_on
     index = load_footer_index(store, output, config)
     assert os.path.exists(os.path.join(output, "_summaries", "asset=test-asset", "footer_index.parquet"))
     choice = choose_files(listed, config, DAY, DAY, index)
-    # the files named 00:00 to 23:00 of the day: their 120-s records are the only ones that reach it
-    assert [item.path for item in choice.open] == paths[4 * 24 : 5 * 24]
-    assert choice.skipped_by_index == 216 and len(choice.carried) == 216
+    # the files named 00:00 to 23:00 of the day and 00:00 of the next: the only 120-s records
+    # that reach the day or the window length after it
+    assert [item.path for item in choice.open] == paths[4 * 24 : 5 * 24 + 1]
+    assert choice.skipped_by_index == 215 and len(choice.carried) == 215
     # a file of another day rewritten with new content is opened again
     changed = paths[30]
     pq.write_table(wide_table(samples(120.0, 2.0, seed=99, start_us=T0 + 30 * 3600 * US)), changed)
     again = choose_files(_listed(paths), config, DAY, DAY, index)
-    assert changed in [item.path for item in again.open] and len(again.open) == 25
+    assert changed in [item.path for item in again.open] and len(again.open) == 26
     # an index made with another archive time zone is not used
     other = make_config(folder, rate=2.0, length_s=60.0, max_lag_s=5.0, timezone="Europe/Vienna")
     assert load_footer_index(store, output, other) == {}
@@ -213,5 +210,6 @@ def test_hive_names_with_a_two_part_pattern(tmp_path):
     )
     day = dt.date(2024, 3, 5)
     kept = [p for p in list_local_archive(folder) if may_hold_days(p, config, day, day)]
-    # 23:00 of the day before (its hour may reach midnight) and the day's 24 files
-    assert len(kept) == 25 and kept[0].endswith(os.path.join("date=2024-03-04", "2300.parquet"))
+    # 23:00 of the day before (its hour may reach midnight), the day's 24 files, 00:00 after it
+    assert len(kept) == 26 and kept[0].endswith(os.path.join("date=2024-03-04", "2300.parquet"))
+    assert kept[-1].endswith(os.path.join("date=2024-03-06", "0000.parquet"))
