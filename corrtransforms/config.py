@@ -29,6 +29,7 @@ else:  # pragma: no cover
 
 from corrtransforms.numerics.correlation import DETRENDS, ESTIMATORS, WEIGHTINGS
 from corrtransforms.storage_precision import STORAGES
+from corrtransforms.timeutil import FILE_TIME_FIELDS, compile_file_time_pattern
 
 _LOG = logging.getLogger(__name__)
 
@@ -74,6 +75,11 @@ class ArchiveConfig:
     channel_column: str = "channel"
     value_column: str = "value"
     timezone: str = "UTC"
+    #: strftime-like pattern of the start time in the files' names (None: names carry no time);
+    #: matched against the last path parts (see corrtransforms.timeutil.compile_file_time_pattern)
+    file_time_pattern: Optional[str] = None
+    #: with file_time_pattern: a file holds no sample later than this many hours after its named start
+    file_span_h: float = 24.0
 
 
 @dataclasses.dataclass(frozen=True)
@@ -224,7 +230,17 @@ class AssetConfig:
 
 _KNOWN = {
     "asset": {"name", "timezone"},
-    "archive": {"path", "layout", "time_column", "channel_column", "value_column", "sample_rate_hz", "timezone"},
+    "archive": {
+        "path",
+        "layout",
+        "time_column",
+        "channel_column",
+        "value_column",
+        "sample_rate_hz",
+        "timezone",
+        "file_time_pattern",
+        "file_span_h",
+    },
     "channels": {"names", "covariates", "units"},
     "windows": {"length_s", "hop_s", "min_coverage", "align", "offset_s", "record_gap_s"},
     "correlation": {"max_lag_s", "pairs", "estimator", "detrend", "weighting", "target_rel_error", "storage"},
@@ -419,7 +435,42 @@ def _parse_archive(raw: Mapping[str, Any], base_dir: str) -> ArchiveConfig:
         value_column=_string("[archive] value_column", arch.get("value_column", "value")),
         sample_rate_hz=_number("[archive] sample_rate_hz", arch["sample_rate_hz"], low=0, low_open=True),
         timezone=_timezone("[archive] timezone", arch.get("timezone", "UTC")),
+        file_time_pattern=_file_time_pattern(arch),
+        file_span_h=_file_span_h(arch),
     )
+
+
+def _file_time_pattern(arch: Mapping[str, Any]) -> Optional[str]:
+    """``[archive] file_time_pattern``: None, or a pattern :func:`compile_file_time_pattern` accepts."""
+    if "file_time_pattern" not in arch:
+        return None
+    text = arch["file_time_pattern"]
+    if not isinstance(text, str):
+        raise ConfigError("[archive] file_time_pattern", text, f"must be a string such as {_PATTERN_EXAMPLE}")
+    try:
+        compile_file_time_pattern(text)
+    except ValueError as err:
+        raise ConfigError(
+            "[archive] file_time_pattern",
+            text,
+            f"{err}; fields {' '.join('%' + f for f in FILE_TIME_FIELDS)}, * (any characters but /), %% "
+            f"and literal characters, e.g. {_PATTERN_EXAMPLE}",
+        ) from None
+    return text
+
+
+_PATTERN_EXAMPLE = '"site_%Y%m%d_%H%M.parquet" or "%Y-%m-%d/%H.parquet"'
+
+
+def _file_span_h(arch: Mapping[str, Any]) -> float:
+    """``[archive] file_span_h`` (hours, > 0; only with ``file_time_pattern``)."""
+    if "file_span_h" not in arch:
+        return 24.0
+    if "file_time_pattern" not in arch:
+        raise ConfigError(
+            "[archive] file_span_h", arch["file_span_h"], "is used only with [archive] file_time_pattern; give both"
+        )
+    return _number("[archive] file_span_h", arch["file_span_h"], low=0, low_open=True)
 
 
 def _parse_channels(raw: Mapping[str, Any]) -> ChannelsConfig:

@@ -37,6 +37,11 @@ REASONS = {
     "missing_channel_column": ("rejected", "a configured channel is absent from the file"),
     "non_numeric_channel": ("rejected", "a channel column holds non-numeric values"),
     "statistics_missing": ("repaired", "row-group time statistics are absent; the time column was read to plan"),
+    "file_time_mismatch": (
+        "flagged",
+        "the file holds samples before the start its name gives, or more than [archive] file_span_h after it; "
+        "runs of other days may not open it",
+    ),
     "sample_rate_mismatch": ("rejected", "the sample interval in the data differs from the nominal sample rate"),
     "overlapping_files": ("repaired", "two files hold samples of the same span; identical samples were kept once"),
     "decode_failed": ("rejected", "a row group could not be decoded while reading the window"),

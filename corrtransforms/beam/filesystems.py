@@ -2,18 +2,20 @@
 
 - :func:`open_file`: binary reading, the ``open_file`` callable the read stage takes;
 - :class:`BeamFiles`: the store interface of :mod:`corrtransforms.stages.write`;
-- :func:`list_archive`: the archive's files for a folder, a glob or a URL.
+- :func:`list_archive`: the archive's files for a folder, a glob or a URL
+  (:func:`list_archive_files`: with their sizes and modification times).
 """
 
 from __future__ import annotations
 
-from typing import List, Sequence
+from typing import List, Optional, Sequence
 
 from apache_beam.io.filesystem import CompressionTypes
 from apache_beam.io.filesystems import FileSystems
 
 from corrtransforms.stages import plan as archive_plan
 from corrtransforms.stages import write as table_writer
+from corrtransforms.stages.footer_index import ListedFile
 
 
 def open_file(path: str):
@@ -87,10 +89,28 @@ class BeamFiles:
 def list_archive(pattern: str) -> List[str]:
     """Files of the archive: ``pattern`` as a glob, a folder as everything below it (hidden
     ``.``/``_`` names skipped), sorted. No match is an error (a wrong path must not pass quietly)."""
+    return [listed.path for listed in list_archive_files(pattern)]
+
+
+def list_archive_files(pattern: str) -> List[ListedFile]:
+    """:func:`list_archive` with each file's size and modification time, as the filesystem's
+    listing reports them (no file is opened; the time is None where a filesystem gives none)."""
     expanded = archive_plan.expand_archive_path(pattern)
     root = pattern.rstrip("/") + "/" if expanded != pattern else ""
     result = FileSystems.match([expanded])[0]
-    paths = sorted(m.path for m in result.metadata_list if not archive_plan.is_hidden(m.path, root))
-    if not paths:
+    found = sorted(
+        (
+            ListedFile(m.path, int(m.size_in_bytes), _modified_s(m))
+            for m in result.metadata_list
+            if not archive_plan.is_hidden(m.path, root)
+        ),
+        key=lambda listed: listed.path,
+    )
+    if not found:
         raise FileNotFoundError(f"[archive] path = {pattern!r}: no files match {expanded!r}")
-    return paths
+    return found
+
+
+def _modified_s(metadata) -> Optional[float]:
+    updated = getattr(metadata, "last_updated_in_seconds", None)
+    return float(updated) if updated else None

@@ -138,7 +138,9 @@ class MonitorAsset(beam.PTransform):
 
     def expand(self, pbegin):
         config = self._config
-        plan = pbegin | "Plan reads" >> PlanReads(config, self._start, self._end)
+        plan = pbegin | "Plan reads" >> PlanReads(
+            config, self._start, self._end, output_dir=self._output, run_id=self._run_id
+        )
         planned = (
             plan["tasks"]
             | "Windows per task" >> beam.Map(lambda task: len(task.window_starts_us))

@@ -7,12 +7,44 @@ from typing import List, Optional, Union
 
 import apache_beam as beam
 
-from corrtransforms.beam.filesystems import list_archive, open_file
+from corrtransforms.beam.filesystems import BeamFiles, list_archive_files, open_file
 from corrtransforms.beam.metrics import counter
 from corrtransforms.config import AssetConfig
 from corrtransforms.rejects import Reject
 from corrtransforms.stages import plan as archive_plan
+from corrtransforms.stages.footer_index import (
+    IndexEntry,
+    ListedFile,
+    entry_for,
+    load_footer_index,
+    write_footer_index,
+)
 from corrtransforms.stages.plan import FileFooter
+from corrtransforms.stages.write import provenance_metadata
+
+
+class _ChooseFilesFn(beam.DoFn):
+    """The archive pattern -> the files whose footers this run opens, and (tagged ``indexed``)
+    the footer-index entries of the files known without opening them."""
+
+    def __init__(self, config: AssetConfig, start, end, output_dir: Optional[str]):
+        self._config, self._start, self._end, self._output = config, start, end, output_dir
+
+    def setup(self):
+        self._listed = counter("files_in_archive")
+        self._by_name = counter("files_skipped_by_name")
+        self._by_index = counter("files_skipped_by_index")
+
+    def process(self, pattern: str):
+        listed = list_archive_files(pattern)
+        index = load_footer_index(BeamFiles(), self._output, self._config) if self._output else {}
+        choice = archive_plan.choose_files(listed, self._config, self._start, self._end, index)
+        self._listed.inc(len(listed))
+        self._by_name.inc(choice.skipped_by_name)
+        self._by_index.inc(choice.skipped_by_index)
+        yield from choice.open
+        for entry in choice.carried:
+            yield beam.pvalue.TaggedOutput("indexed", entry)
 
 
 class _ReadFooterFn(beam.DoFn):
@@ -20,17 +52,32 @@ class _ReadFooterFn(beam.DoFn):
         self._config = config
 
     def setup(self):
+        self._opened = counter("footers_opened")
         self._files = counter("files_listed")
         self._unusable = counter("files_rejected")
 
-    def process(self, path: str):
+    def process(self, listed: ListedFile):
+        self._opened.inc()
         self._files.inc()
-        footer, findings = archive_plan.read_footer(path, self._config, open_file)
+        footer, findings = archive_plan.read_footer(listed.path, self._config, open_file)
         if footer is None:
             self._unusable.inc()
         else:
             yield footer
+            mismatch = archive_plan.file_time_finding(footer, self._config)
+            findings = findings + ([mismatch] if mismatch else [])
+            entry = entry_for(listed, footer.start_us, footer.end_us)
+            if entry is not None:
+                yield beam.pvalue.TaggedOutput("indexed", entry)
         yield from findings
+
+
+def _write_index(entries: List[IndexEntry], output_dir: str, config: AssetConfig, run_id: str) -> bool:
+    provenance = provenance_metadata(config, run_id)
+    written = write_footer_index(BeamFiles(), output_dir, config, entries, provenance)
+    if written:
+        counter("footer_index_written").inc()
+    return written
 
 
 class _PlanFn(beam.DoFn):
@@ -66,6 +113,21 @@ class PlanReads(beam.PTransform):
         Only windows starting on these calendar days (inclusive, asset time zone).
     pattern : str, optional
         Files to list instead of ``[archive] path``.
+    output_dir : str, optional
+        The output root: the footer index (:mod:`corrtransforms.stages.footer_index`) is read from
+        and written to ``output_dir/_summaries/asset=NAME/footer_index.parquet``, so a run for a
+        few days opens only the footers of files whose range can hold them. None: no index.
+    run_id : str
+        The run's id in the index's provenance metadata.
+
+    Notes
+    -----
+    Files not opened (:func:`corrtransforms.stages.plan.choose_files`): ``date=`` folders more
+    than a day outside the days, names whose ``[archive] file_time_pattern`` start lies outside
+    them, and indexed files of unchanged size and modification time whose range lies outside
+    them. Counters: ``files_in_archive`` (listed), ``footers_opened`` (``files_listed`` counts
+    the same, its name kept from before the skipping), ``files_skipped_by_name``,
+    ``files_skipped_by_index``, ``footer_index_written``.
 
     Returns
     -------
@@ -80,23 +142,36 @@ class PlanReads(beam.PTransform):
         start: Optional[_dt.date] = None,
         end: Optional[_dt.date] = None,
         pattern: Optional[str] = None,
+        output_dir: Optional[str] = None,
+        run_id: str = "",
     ):
         super().__init__()
         self._config, self._start, self._end = config, start, end
         self._pattern = pattern or config.archive.path
+        self._output, self._run_id = output_dir, run_id
 
     def expand(self, pbegin):
         start, end = self._start, self._end
-        paths = (
+        chosen = (
             pbegin
             | "Archive pattern" >> beam.Create([self._pattern])
-            | "List files" >> beam.FlatMap(list_archive)
-            | "Skip days outside the range" >> beam.Filter(archive_plan.in_day_range, start, end)
-            | "Spread files" >> beam.Reshuffle()
+            | "List files and skip days outside the range"
+            >> beam.ParDo(_ChooseFilesFn(self._config, start, end, self._output)).with_outputs("indexed", main="open")
         )
-        footers = paths | "Read footers" >> beam.ParDo(_ReadFooterFn(self._config))
+        footers = (
+            chosen.open
+            | "Spread files" >> beam.Reshuffle()
+            | "Read footers" >> beam.ParDo(_ReadFooterFn(self._config)).with_outputs("indexed", main="footers")
+        )
+        if self._output:
+            _ = (
+                (chosen.indexed, footers.indexed)
+                | "Index entries" >> beam.Flatten()
+                | "Collect index entries" >> beam.combiners.ToList()
+                | "Write footer index" >> beam.Map(_write_index, self._output, self._config, self._run_id)
+            )
         planned = (
-            footers
+            footers.footers
             | "Collect footers" >> beam.combiners.ToList()
             | "Plan windows and tasks"
             >> beam.ParDo(_PlanFn(self._config, start, end)).with_outputs("rejects", "days", main="tasks")

@@ -32,7 +32,7 @@ def check_channels(config: AssetConfig, start: Optional[_dt.date], end: Optional
     wanted = list(config.channels.names)
     seen: List[str] = []
     try:
-        paths = [p for p in list_archive(config.archive.path) if archive_plan.in_day_range(p, start, end)]
+        paths = [p for p in list_archive(config.archive.path) if archive_plan.may_hold_days(p, config, start, end)]
     except (FileNotFoundError, OSError):
         return  # check_archive names a path without files
     for path in paths:

@@ -457,7 +457,9 @@ def summary(counters: Dict[str, int]) -> str:
     if findings:
         lines.append("findings: " + ", ".join(f"{k} {v}" for k, v in findings))
     lines.append(
-        f"files listed {counters.get('files_listed', 0)}, unusable {counters.get('files_rejected', 0)}; "
+        f"files in the archive {counters.get('files_in_archive', 0)}, footers opened "
+        f"{counters.get('footers_opened', 0)}, "
+        f"unusable {counters.get('files_rejected', 0)}; "
         f"rows written: "
         + ", ".join(
             f"{t} {counters.get('rows_written_' + t, 0)}"

@@ -28,15 +28,26 @@ import json
 import math
 import os
 import re
-from typing import Any, Callable, Dict, Iterable, List, Optional, Sequence, Set, Tuple
+from typing import Any, Callable, Dict, Iterable, List, Mapping, Optional, Sequence, Set, Tuple
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
 from corrtransforms.config import RECORD_GAP_PERIODS, AssetConfig
-from corrtransforms.rejects import WHOLE_FILE, Reject
-from corrtransforms.timeutil import US_PER_S, compact_utc, day_start_us, local_date, local_to_utc_us, timestamp_to_us
+from corrtransforms.rejects import WHOLE_FILE, Reject, iso_utc
+from corrtransforms.stages.footer_index import IndexEntry, ListedFile
+from corrtransforms.timeutil import (
+    US_PER_S,
+    FileTimePattern,
+    compact_utc,
+    compile_file_time_pattern,
+    day_start_us,
+    file_name_time_us,
+    local_date,
+    local_to_utc_us,
+    timestamp_to_us,
+)
 
 _PARQUET_UNITS = {"milliseconds": "ms", "microseconds": "us", "nanoseconds": "ns"}
 _HIVE_DATE = re.compile(r"(?:^|/)date=(\d{4}-\d{2}-\d{2})(?:/|$)")
@@ -623,12 +634,11 @@ def plan_reads(
     A window is in exactly one task, with every row group of every file it overlaps.
     """
     tz = config.timezone
-    length_us = window_grid(config)[0]
     channels = resolve_channels(footers, config)
     covariates = tuple(config.channels.covariates)
     lo_us = day_start_us(start, tz) if start else None
     hi_us = day_start_us(end + _dt.timedelta(days=1), tz) if end else None
-    usable, rejects = _usable_files(footers, config, channels + covariates, lo_us, hi_us, length_us)
+    usable, rejects = _usable_files(footers, config, channels + covariates, reading_span(config, start, end))
     record_starts = (
         record_window_starts(find_records(footers, config), config) if config.windows.align == "records" else None
     )
@@ -651,19 +661,16 @@ def _usable_files(
     footers: Sequence[FileFooter],
     config: AssetConfig,
     names: Tuple[str, ...],
-    lo_us: Optional[int],
-    hi_us: Optional[int],
-    length_us: int,
+    span: Tuple[Optional[int], Optional[int]],
 ) -> Tuple[List[_UsableFile], List[Reject]]:
-    """The files (sorted by path) whose span reaches into [lo_us, hi_us) by less than a window,
-    with their columns, and the findings of configured channels a file lacks (wide layout)."""
+    """The files (sorted by path) whose samples reach ``span`` (:func:`reading_span`: the days
+    and a window length on each side), with their columns, and the findings of configured
+    channels a file lacks (wide layout)."""
     archive = config.archive
     rejects: List[Reject] = []
     usable: List[_UsableFile] = []
     for footer in sorted(footers, key=lambda f: f.path):
-        in_range = (hi_us is None or footer.start_us - length_us < hi_us) and (
-            lo_us is None or footer.end_us + length_us >= lo_us
-        )
+        in_range = span_may_hold(footer.start_us, footer.end_us, span)
         if archive.layout == "wide":
             absent = tuple(name for name in names if name not in footer.numeric_columns)
             if in_range:
@@ -851,6 +858,131 @@ def in_day_range(path: str, start: Optional[_dt.date], end: Optional[_dt.date]) 
     return True if not hive else _near_range(hive.group(1), start, end)
 
 
+# --------------------------------------------------------------------------------------------
+# Which files a run opens: date= folders, the start times in the names, the footer index
+
+
+def reading_span(
+    config: AssetConfig, start: Optional[_dt.date], end: Optional[_dt.date]
+) -> Tuple[Optional[int], Optional[int]]:
+    """``[first, stop)``: UTC microseconds a file must reach for :func:`plan_reads` to use it
+    for windows starting on the days ``start``..``end`` (asset time zone, inclusive); None for an
+    open end.
+
+    The days run from local midnight ``lo`` to local midnight ``hi``; a file is used when its
+    samples reach ``[lo - length, hi + length)`` (one window length on each side: a window that
+    starts before midnight and a window that crosses it). This is the one rule both for the
+    files planning uses and for the files a run may leave unopened (:func:`choose_files`), so
+    not opening a file changes neither the tasks nor the file findings of the plan.
+    """
+    length_us = window_grid(config)[0]
+    lo_us = day_start_us(start, config.timezone) if start else None
+    hi_us = day_start_us(end + _dt.timedelta(days=1), config.timezone) if end else None
+    return (None if lo_us is None else lo_us - length_us), (None if hi_us is None else hi_us + length_us)
+
+
+def span_may_hold(first_us: int, last_us: int, needed: Tuple[Optional[int], Optional[int]]) -> bool:
+    """True when samples in ``[first_us, last_us]`` can lie in the span ``needed`` (``[first, stop)``)."""
+    first, stop = needed
+    return (stop is None or first_us < stop) and (first is None or last_us >= first)
+
+
+def named_start_us(path: str, config: AssetConfig) -> Optional[int]:
+    """The start time (UTC us) ``[archive] file_time_pattern`` reads from ``path``; None without a
+    pattern or when the path does not match it."""
+    text = config.archive.file_time_pattern
+    if text is None:
+        return None
+    return file_name_time_us(_compiled_pattern(text), path, config.archive.timezone)
+
+
+_PATTERNS: Dict[str, FileTimePattern] = {}
+
+
+def _compiled_pattern(text: str) -> FileTimePattern:
+    if text not in _PATTERNS:
+        _PATTERNS[text] = compile_file_time_pattern(text)
+    return _PATTERNS[text]
+
+
+def may_hold_days(path: str, config: AssetConfig, start: Optional[_dt.date], end: Optional[_dt.date]) -> bool:
+    """False when the path alone shows the file holds no sample of the days: its Hive ``date=``
+    folder lies more than a day outside them (:func:`in_day_range`), or the start its name gives
+    (``[archive] file_time_pattern``) plus ``[archive] file_span_h`` lies outside
+    :func:`reading_span`. A name that does not match the pattern says nothing: True."""
+    if not in_day_range(path, start, end):
+        return False
+    named = named_start_us(path, config)
+    if named is None or (start is None and end is None):
+        return True
+    span_us = int(round(config.archive.file_span_h * 3600 * US_PER_S))
+    return span_may_hold(named, named + span_us, reading_span(config, start, end))
+
+
+@dataclasses.dataclass
+class FileChoice:
+    """Result of :func:`choose_files`: the files to open, the index entries of files known
+    without opening them (kept in the next index), and counts of the files not opened."""
+
+    open: List[ListedFile]
+    carried: List[IndexEntry]
+    skipped_by_name: int = 0
+    skipped_by_index: int = 0
+
+
+def choose_files(
+    files: Sequence[ListedFile],
+    config: AssetConfig,
+    start: Optional[_dt.date],
+    end: Optional[_dt.date],
+    index: Optional[Mapping[str, IndexEntry]] = None,
+) -> FileChoice:
+    """The listed files whose footers this run must open.
+
+    A file is not opened when its path shows it holds no sample of the days (:func:`may_hold_days`:
+    ``date=`` folder, or the start time in its name), or when the footer index has an entry of the
+    same size and modification time whose time range lies outside :func:`reading_span`.
+    Every other file is opened: new and changed files, names that do not match the pattern,
+    files the index does not know. Without ``start`` and ``end`` every file is opened.
+    """
+    index = index or {}
+    needed = reading_span(config, start, end)
+    choice = FileChoice(open=[], carried=[])
+    for listed in files:
+        entry = index.get(listed.path)
+        known = entry if entry is not None and entry.describes(listed) else None
+        if not may_hold_days(listed.path, config, start, end):
+            choice.skipped_by_name += 1
+        elif known is not None and not span_may_hold(known.start_us, known.end_us, needed):
+            choice.skipped_by_index += 1
+        else:
+            choice.open.append(listed)
+            continue
+        if known is not None:
+            choice.carried.append(known)
+    return choice
+
+
+def file_time_finding(footer: FileFooter, config: AssetConfig) -> Optional[Reject]:
+    """``file_time_mismatch`` when a file's samples break what its name promises (none before
+    the start its name gives, none more than ``[archive] file_span_h`` after it), else None."""
+    named = named_start_us(footer.path, config)
+    if named is None:
+        return None
+    span_us = int(round(config.archive.file_span_h * 3600 * US_PER_S))
+    if named <= footer.start_us and footer.end_us <= named + span_us:
+        return None
+    return _file_reject(
+        config,
+        footer.path,
+        "file_time_mismatch",
+        f"samples {iso_utc(footer.start_us)} to {iso_utc(footer.end_us)}; the name gives the start "
+        f"{iso_utc(named)} and [archive] file_span_h = {config.archive.file_span_h:g} allows samples until "
+        f"{iso_utc(named + span_us)}: runs of other days may not open this file",
+        date=local_date(footer.start_us, config.timezone),
+    )
+
+
 def plan_archive(
     paths: Iterable[str],
     config: AssetConfig,
@@ -861,12 +993,14 @@ def plan_archive(
     """Read every footer and plan (the whole planning stage in one call, without Beam)."""
     footers, findings = [], []
     for path in paths:
-        if not in_day_range(path, start, end):
+        if not may_hold_days(path, config, start, end):
             continue
         footer, found = read_footer(path, config, open_file)
         findings.extend(found)
         if footer is not None:
             footers.append(footer)
+            mismatch = file_time_finding(footer, config)
+            findings.extend([mismatch] if mismatch else [])
     return plan_reads(footers, findings, config, start, end)
 
 

@@ -92,7 +92,15 @@ def test_backfill_and_nightly_read_and_write_only_through_filesystems(tmp_path, 
         == demo_fixtures.partitions([r for r in local_files if r.startswith("rejects/")]).keys()
     )
     local_root = str(reference_archive / "archive")
+    # the footer index names each archive file by its path and modification time in that store
+    index_rel = "_summaries/asset=footbridge/footer_index.parquet"
+    remote_index = pq.read_table(io.BytesIO(memory_filesystem.get(f"{SITE}/out/{index_rel}")))
+    indexed = remote_index.column("path").to_pylist()
+    assert indexed and set(indexed) <= set(archive_objects)
+    assert index_rel in remote_files and index_rel in local_files
     for remote_rel, local_rel in zip(remote_files, local_files):
+        if remote_rel == index_rel:
+            continue
         remote = pq.read_table(io.BytesIO(memory_filesystem.get(f"{SITE}/out/{remote_rel}")))
         local = pq.read_table(str(local_out / local_rel))
         # provenance differs (the configuration names another archive path); the rows must not

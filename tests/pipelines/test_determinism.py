@@ -73,7 +73,8 @@ def test_two_runs_write_the_same_files_byte_for_byte_but_the_run_id(runs):
     assert not any("_temporary" in n or n.endswith(".tmp") for n in names)
     # the read-back summaries (derived data): only the episode evidence, no state was read back
     summaries = [n for n in names if n.startswith("_summaries")]
-    assert [os.path.basename(n) for n in summaries] == ["episode_evidence.parquet"]
+    # and the footer index of the archive (tests/pipelines/test_flat_archive.py)
+    assert [os.path.basename(n) for n in summaries] == ["episode_evidence.parquet", "footer_index.parquet"]
     run_ids = set()
     for name in names:
         a, b = os.path.join(first, name), os.path.join(second, name)

@@ -35,6 +35,13 @@ BAD_VALUES = [
     ("archive", "sample_rate_hz", "fast", "[archive] sample_rate_hz"),
     ("archive", "sample_rate_hz", True, "[archive] sample_rate_hz"),
     ("archive", "timezone", "Mars/Olympus", "[archive] timezone"),
+    ("archive", "file_time_pattern", "site_%H.parquet", "[archive] file_time_pattern"),
+    ("archive", "file_time_pattern", "site_%Y%q.parquet", "[archive] file_time_pattern"),
+    ("archive", "file_time_pattern", "%Y%m%j", "[archive] file_time_pattern"),
+    ("archive", "file_time_pattern", "%Y/%M.parquet", "[archive] file_time_pattern"),
+    ("archive", "file_time_pattern", "/%Y.parquet", "[archive] file_time_pattern"),
+    ("archive", "file_time_pattern", 2024, "[archive] file_time_pattern"),
+    ("archive", "file_span_h", 12, "[archive] file_span_h"),
     ("asset", "timezone", "Mars/Olympus", "[asset] timezone"),
     ("asset", "timezone", 1, "[asset] timezone"),
     ("channels", "names", "a", "[channels] names"),
@@ -203,3 +210,15 @@ def test_asset_and_archive_time_zones_are_separate_keys_and_the_old_single_key_s
     assert config.notes[0] in caplog.text
     # notes are not part of the configuration's digest
     assert "notes" not in config.as_dict() and config.as_dict()["timezone"] == "Europe/Vienna"
+
+
+def test_file_span_h_needs_a_pattern_and_is_positive():
+    raw = copy.deepcopy(MINIMAL)
+    raw["archive"]["file_time_pattern"] = "site_%Y%m%d_%H%M.parquet"
+    assert parse_config(raw).archive.file_span_h == 24.0
+    raw["archive"]["file_span_h"] = 1
+    assert parse_config(raw).archive.file_span_h == 1.0
+    for bad in (0, -1, "1h", float("inf")):
+        raw["archive"]["file_span_h"] = bad
+        with pytest.raises(ConfigError, match=r"\[archive\] file_span_h"):
+            parse_config(raw)

@@ -316,3 +316,30 @@ def write_duty_cycled_archive(
         pq.write_table(table, path, row_group_size=row_group_size)
         paths.append(path)
     return paths
+
+
+#: the names of the hourly files of :func:`write_hourly_archive`: flat, and in Hive date= folders
+FLAT_NAME = "site_%Y%m%d_%H%M.parquet"
+HIVE_NAME = "date=%Y-%m-%d/%H%M.parquet"
+
+
+def write_hourly_archive(
+    folder: str,
+    days: int,
+    name: str = FLAT_NAME,
+    seconds: float = 60.0,
+    rate: float = 4.0,
+    start_us: int = T0,
+) -> list:
+    """One file per hour for ``days`` days from ``start_us``, each holding ``seconds`` of samples
+    from the top of its hour (seeded by the hour, so a flat and a Hive copy hold the same data);
+    ``name`` is a strftime pattern of the file's path below ``folder``. Returns the paths."""
+    paths = []
+    for hour in range(days * 24):
+        begin = start_us + hour * 3600 * US
+        stamp = dt.datetime(1970, 1, 1) + dt.timedelta(microseconds=begin)
+        path = os.path.join(folder, stamp.strftime(name))
+        os.makedirs(os.path.dirname(path), exist_ok=True)
+        pq.write_table(wide_table(samples(seconds, rate, seed=hour, start_us=begin)), path)
+        paths.append(path)
+    return paths
