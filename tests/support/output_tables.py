@@ -4,12 +4,13 @@ import os
 
 import pyarrow.dataset as ds
 
-TABLES = ("correlations", "indicators", "shifts", "state", "rejects")
+TABLES = ("correlations", "indicators", "shifts", "state", "baseline_sample", "rejects")
 SORT_KEYS = {
     "correlations": ["window_start", "channel_a", "channel_b"],
     "indicators": ["window_start", "subject", "indicator"],
     "shifts": ["window_start", "subject", "indicator"],
     "state": ["window_start", "subject", "indicator"],
+    "baseline_sample": ["window_start", "subject", "indicator"],
     "rejects": ["stage", "source", "subject", "reason", "detail"],
 }
 
