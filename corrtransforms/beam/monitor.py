@@ -12,7 +12,7 @@ from __future__ import annotations
 import datetime as _dt
 import logging
 import time
-from typing import Any, Dict, Optional
+from typing import Any, Dict, Optional, Tuple
 
 import apache_beam as beam
 
@@ -112,6 +112,9 @@ class MonitorAsset(beam.PTransform):
         tables before ``start``, read inside the pipeline), or a STATE table; None starts fresh.
     progress_interval_s : float
         Seconds between progress log lines (logger ``corrtransforms.progress``, level INFO).
+    report_edges : (bool, bool)
+        :class:`~corrtransforms.beam.plan.PlanReads`: whether file findings dated before
+        ``start`` / after ``end`` are this run's to report (False for a backfill's inner chunks).
 
     Returns
     -------
@@ -130,16 +133,23 @@ class MonitorAsset(beam.PTransform):
         end: Optional[_dt.date] = None,
         initial_states: Any = None,
         progress_interval_s: float = 15.0,
+        report_edges: Tuple[bool, bool] = (True, True),
     ):
         super().__init__()
         self._config, self._output, self._run_id = config, output_dir, run_id
         self._start, self._end, self._initial_states = start, end, initial_states
         self._progress_interval_s = progress_interval_s
+        self._report_edges = tuple(report_edges)
 
     def expand(self, pbegin):
         config = self._config
         plan = pbegin | "Plan reads" >> PlanReads(
-            config, self._start, self._end, output_dir=self._output, run_id=self._run_id
+            config,
+            self._start,
+            self._end,
+            output_dir=self._output,
+            run_id=self._run_id,
+            report_edges=self._report_edges,
         )
         planned = (
             plan["tasks"]

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import datetime as _dt
-from typing import List, Optional, Union
+from typing import List, Optional, Tuple, Union
 
 import apache_beam as beam
 
@@ -81,8 +81,9 @@ def _write_index(entries: List[IndexEntry], output_dir: str, config: AssetConfig
 
 
 class _PlanFn(beam.DoFn):
-    def __init__(self, config: AssetConfig, start, end):
+    def __init__(self, config: AssetConfig, start, end, report_edges=(True, True)):
         self._config, self._start, self._end = config, start, end
+        self._report_edges = tuple(report_edges)
 
     def setup(self):
         self._windows = counter("windows_planned")
@@ -91,7 +92,7 @@ class _PlanFn(beam.DoFn):
     def process(self, items: List[Union[FileFooter, Reject]]):
         footers = [i for i in items if isinstance(i, FileFooter)]
         findings = [i for i in items if isinstance(i, Reject)]
-        plan = archive_plan.plan_reads(footers, findings, self._config, self._start, self._end)
+        plan = archive_plan.plan_reads(footers, findings, self._config, self._start, self._end, self._report_edges)
         for task in plan.tasks:
             self._tasks.inc()
             self._windows.inc(len(task.window_starts_us))
@@ -119,6 +120,10 @@ class PlanReads(beam.PTransform):
         few days opens only the footers of files whose range can hold them. None: no index.
     run_id : str
         The run's id in the index's provenance metadata.
+    report_edges : (bool, bool)
+        Whether file findings dated before ``start`` (or undated) / after ``end`` are reported by
+        this run, moved onto its first / last day (the default); a backfill's inner day chunks
+        leave them to the neighbouring chunk, so each finding is written once.
 
     Notes
     -----
@@ -144,11 +149,13 @@ class PlanReads(beam.PTransform):
         pattern: Optional[str] = None,
         output_dir: Optional[str] = None,
         run_id: str = "",
+        report_edges: Tuple[bool, bool] = (True, True),
     ):
         super().__init__()
         self._config, self._start, self._end = config, start, end
         self._pattern = pattern or config.archive.path
         self._output, self._run_id = output_dir, run_id
+        self._report_edges = tuple(report_edges)
 
     def expand(self, pbegin):
         start, end = self._start, self._end
@@ -174,7 +181,9 @@ class PlanReads(beam.PTransform):
             footers.footers
             | "Collect footers" >> beam.combiners.ToList()
             | "Plan windows and tasks"
-            >> beam.ParDo(_PlanFn(self._config, start, end)).with_outputs("rejects", "days", main="tasks")
+            >> beam.ParDo(_PlanFn(self._config, start, end, self._report_edges)).with_outputs(
+                "rejects", "days", main="tasks"
+            )
         )
         tasks = planned.tasks | "Spread tasks" >> beam.Reshuffle()
         return {"tasks": tasks, "rejects": planned.rejects, "days": planned.days}

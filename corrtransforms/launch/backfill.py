@@ -30,21 +30,24 @@ PROGRESS = "backfill.json"
 
 def days_to_process(config: AssetConfig, start: Optional[_dt.date], end: Optional[_dt.date]) -> List[_dt.date]:
     """The days a backfill owns, in order: every day from ``start`` to ``end`` when both are
-    given; otherwise the days with planned windows, from the archive's footers (read once here,
-    then each chunk's pipeline reads only its own days' files)."""
+    given; otherwise the days one run over the archive would write: those with planned windows
+    and those with dated file findings (an unreadable file on a day without other data), from
+    the archive's footers (read once here; each chunk's pipeline then reads its own days' files)."""
     if start is not None and end is not None:
         return [start + _dt.timedelta(days=i) for i in range((end - start).days + 1)]
     try:
         paths = [p for p in list_archive(config.archive.path) if archive_plan.in_day_range(p, start, end)]
     except (FileNotFoundError, OSError):
         return []
-    footers = []
+    footers, findings = [], []
     for path in paths:
-        footer, _ = archive_plan.read_footer(path, config, open_file)
+        footer, found = archive_plan.read_footer(path, config, open_file)
+        findings.extend(found)
         if footer is not None:
             footers.append(footer)
-    plan = archive_plan.plan_reads(footers, [], config, start, end)
-    return [_dt.date.fromisoformat(d) for d in plan.days]
+    plan = archive_plan.plan_reads(footers, findings, config, start, end)
+    dated = {r.date for r in plan.rejects if r.date is not None}
+    return sorted(_dt.date.fromisoformat(d) for d in set(plan.days) | dated)
 
 
 def chunks(days: Sequence[_dt.date], size: int) -> List[List[_dt.date]]:
@@ -137,7 +140,8 @@ def main(argv: Optional[List[str]] = None) -> Dict[str, int]:
         span = str(first) if first == last else f"{first} to {last}"
         print(f"backfill {config.name}: chunk {number}/{len(pieces)}: {span}")
         resume = common.stored_state(args.output, config, first, run_id)
-        _add(total, common.run_pipeline(options, config, args.output, first, last, run_id, resume))
+        edges = (number == 1, number == len(pieces))  # file findings outside a chunk: its neighbour's
+        _add(total, common.run_pipeline(options, config, args.output, first, last, run_id, resume, edges))
         record = {"request": request, "run_id": run_id, "committed_through": last.isoformat(), "counters": total}
         write_progress(store, args.output, config, record)
     # every chunk is committed: the backfill is no longer interrupted, whatever finish decides

@@ -15,7 +15,7 @@ import os
 import posixpath
 import sys
 import uuid
-from typing import Any, Dict, List, Optional
+from typing import Any, Dict, List, Optional, Tuple
 
 import apache_beam as beam
 from apache_beam.io.filesystem import CompressionTypes
@@ -226,10 +226,13 @@ def build_pipeline(
     end: Optional[_dt.date] = None,
     run_id: Optional[str] = None,
     initial_states: Any = None,
+    report_edges: Tuple[bool, bool] = (True, True),
 ) -> Dict[str, beam.PCollection]:
     """Add the whole job's steps to ``p`` (see :class:`corrtransforms.beam.MonitorAsset`)."""
     run_id = run_id or new_run_id()
-    return p | "Monitor asset" >> MonitorAsset(config, output, run_id, start, end, initial_states)
+    return p | "Monitor asset" >> MonitorAsset(
+        config, output, run_id, start, end, initial_states, report_edges=report_edges
+    )
 
 
 def earlier_states(output: str, config: AssetConfig, start: Optional[_dt.date], run_id: str = ""):
@@ -314,10 +317,11 @@ def run_pipeline(
     end: Optional[_dt.date],
     run_id: str,
     initial_states: Any,
+    report_edges: Tuple[bool, bool] = (True, True),
 ) -> Dict[str, int]:
     """Build and run one pipeline over the days; its counters (every partition committed)."""
     p = beam.Pipeline(options=options)
-    build_pipeline(p, config, output, start, end, run_id, initial_states)
+    build_pipeline(p, config, output, start, end, run_id, initial_states, report_edges)
     result = p.run()
     result.wait_until_finish()
     return window_accounting(result.metrics())

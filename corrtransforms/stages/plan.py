@@ -601,6 +601,7 @@ def plan_reads(
     config: AssetConfig,
     start: Optional[_dt.date] = None,
     end: Optional[_dt.date] = None,
+    report_edges: Tuple[bool, bool] = (True, True),
 ) -> ArchivePlan:
     """Cut the archive's time axis into windows and group them into bounded read tasks.
 
@@ -653,7 +654,9 @@ def plan_reads(
     else:
         days = tuple(sorted({d for t in tasks for d in t.dates}))
     out_of_range = {footer.path for footer in footers} - {file.footer.path for file in usable}
-    final = _dated_findings(list(footer_rejects) + rejects, out_of_range, start, end, days[0] if days else None)
+    final = _dated_findings(
+        list(footer_rejects) + rejects, out_of_range, start, end, days[0] if days else None, report_edges
+    )
     return ArchivePlan(tasks=tasks, rejects=final, channels=channels, covariates=covariates, days=days)
 
 
@@ -811,14 +814,26 @@ def _dated_findings(
     start: Optional[_dt.date],
     end: Optional[_dt.date],
     first_day: Optional[str],
+    report_edges: Tuple[bool, bool] = (True, True),
 ) -> List[Reject]:
-    """File-level findings of the files this run reads, each dated inside the run's days."""
+    """File-level findings of the files this run reads, each dated inside the run's days.
+
+    A finding dated before ``start`` (after ``end``), or without a date, is moved onto the run's
+    first (last) day. ``report_edges`` = (False, ...) / (..., False) leaves those to the chunk
+    before / after this one (a backfill's day chunks): each finding is then written by exactly
+    one chunk, as one run over all the days writes it once.
+    """
+    before_ok, after_ok = report_edges
     final: List[Reject] = []
     for finding in findings:
         if finding.source in out_of_range:
             continue  # a file this run does not read: its findings belong to another run
         date = finding.date
         if date is not None and not _near_range(date, start, end):
+            continue
+        if not before_ok and (date is None or (start is not None and date < start.isoformat())):
+            continue  # an earlier chunk of the same backfill reports it
+        if not after_ok and date is not None and end is not None and date > end.isoformat():
             continue
         if date is None:
             date = start.isoformat() if start else (first_day or "1970-01-01")

@@ -125,8 +125,8 @@ def _assert_accounting(first, second):
     assert second["files_listed"] == 2 and second["files_rejected"] == 1
     assert second["windows_planned"] == second["windows_computed"] == 1
     for counters in (first, second):
-        for table in TABLES:
-            assert counters[f"rows_written_{table}"] > 0, table
+        for table in TABLES:  # a night after the baseline adds nothing to the baseline sample
+            assert counters.get(f"rows_written_{table}", 0) > 0 or table == "baseline_sample", table
 
 
 def test_in_process_run_is_a_meaningful_reference(in_process):

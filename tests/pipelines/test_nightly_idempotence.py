@@ -147,7 +147,8 @@ def test_two_nights_at_once_do_not_clobber_each_other(started):
         assert p.returncode == 0, err[-2000:]
     for table in TABLES:
         got, want = read_table(output, table), read_table(reference, table)
-        assert got.num_rows == want.num_rows > 0 or table == "rejects", table
+        # baseline_sample: these nights come after the baseline, nothing enters it
+        assert got.num_rows == want.num_rows > 0 or table in ("rejects", "baseline_sample"), table
         assert sorted(map(repr, got.to_pylist())) == sorted(map(repr, want.to_pylist())), table
     assert not os.path.exists(os.path.join(output, "_temporary"))
 

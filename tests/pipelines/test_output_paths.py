@@ -62,6 +62,8 @@ def _assert_inside(tmp_path, output, archive_files):
             "indicators",
             "shifts",
             "state",
+            "baseline_sample",
+            "mode_shapes",
             "rejects",
             "episodes",
             "_summaries",
