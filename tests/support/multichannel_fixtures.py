@@ -102,3 +102,15 @@ def window_lag_sums(record, fs, max_lag_s, n_segments):
     pairs = resolve_pairs("all", record.shape[1])
     sums, counts = block_lag_sums(spectra, pairs)
     return pairs, sums, counts
+
+
+def exact_sequence(A, B, fs, n_lags, n_outputs):
+    """``Lambda_k = E[y(t + k dt) y(t)^T] = C Ad^k P C^T`` of the sampled process (exact)."""
+    Ad, _, P = exact_discretisation(A, B, fs)
+    C = np.eye(A.shape[0])[:n_outputs]
+    out = np.empty((n_lags, n_outputs, n_outputs))
+    power = np.eye(A.shape[0])
+    for k in range(n_lags):
+        out[k] = C @ power @ P @ C.T
+        power = Ad @ power
+    return out
