@@ -21,13 +21,15 @@ then the eigenvalues ``mu`` of ``A`` are the discrete poles: ``lambda = ln(mu) /
 ``f = |lambda| / 2 pi``, ``zeta = -Re(lambda) / |lambda|``, and ``C psi`` (``psi`` the
 eigenvectors) the complex mode shapes at the channels.
 
-Method choice (measured by ``benchmarks/bench_multichannel_modes.py`` on a six-channel chain,
-two modes in band, 40 windows of 1200 s at 20 Hz): both methods start from the same Hankel
-matrix and SVD and gave the same frequencies and shapes (median |f_ssi - f_era| / f below 1e-5,
-MACs above 0.9999); ERA's damping was not better; the SVD dominates the time, so they cost the
-same. The default is "ssi-cov" because its least-squares shift uses the whole observability
-matrix, which is what [3]_ analyses, and the first-order uncertainty of [4]_ is written for it
-(a later replacement of the jackknife can reuse it); "era" stays available as ``method``.
+Method choice (measured by ``benchmarks/bench_multichannel_modes.py`` with OPENBLAS_NUM_THREADS=1:
+a six-mass chain, six channels, modes at 0.77 and 2.26 Hz in one band, 40 windows of 1200 s at
+20 Hz): both found both modes in 40/40 windows; median |df/f| 9.5e-4 / 8.4e-4 (ssi-cov) against
+9.7e-4 / 8.3e-4 (era); rms relative damping error 0.180 / 0.103 against 0.188 / 0.103; smallest
+MAC 1.0000 / 0.9999 for both; 25.8 against 23.6 ms per window. Accuracy is the same within the
+Monte Carlo's noise and the SVD they share dominates the time. The default is "ssi-cov": its
+least-squares shift uses the whole observability matrix, which is what [3]_ analyses, and the
+first-order uncertainty of [4]_ is written for it (a later replacement of the jackknife can
+reuse it); "era" stays available as ``method``.
 
 Physical poles are chosen without a user in the loop (:func:`select_modes`): a pole is *stable*
 when the previous model order has a pole within :data:`FREQUENCY_TOLERANCE` in frequency,
@@ -39,9 +41,14 @@ stable poles at :data:`MIN_STABLE_FRACTION` of the orders or more is a mode, rep
 pole of lowest model order from ``2 n_channels`` up (a real pole at one order, so the jackknife of
 :mod:`~corrtransforms.numerics.mode_uncertainty` can repeat it at that order).
 
-Time per window (``benchmarks/bench_multichannel_modes.py``, 8 channels, 2 modes, 600 s at 50 Hz):
-see that script's printed table and docs/performance.md; the Hankel SVD at the default size is
-a few ms to tens of ms, the jackknife repeats one SVD per sub-record.
+Time per window (same script, 8 channels, 2 modes in band, 600 s at 50 Hz, lags on a stride of
+2, 75 block rows, one busy 2-core machine, OPENBLAS_NUM_THREADS=1): the correlation stage's
+``correlate_block`` 7 ms; the 32 sub-record lag sums 29 ms; :func:`identify_modes` 96 ms with a
+square Hankel matrix (600 x 600) and 16 ms with 6 block columns (600 x 48); the jackknife
+(:mod:`~corrtransforms.numerics.mode_uncertainty`, 32 SVDs per model order used) 7.0 s square
+and 82 ms with 6 block columns. The square default is kept until the narrow matrix's accuracy
+and coverage are measured (both modes were found with it, frequencies within 1 stderr). With a
+multithreaded BLAS on a busy machine the small SVDs were up to 16 times slower.
 
 References
 ----------
@@ -125,7 +132,7 @@ class IdentifiedModes:
         Model order of the representative pole.
     n_stable : ndarray of int, shape (n_modes,)
         Stable poles in the mode's group.
-    block_rows, lag_stride : int
+    block_rows, block_columns, lag_stride : int
         Hankel size and lag stride used (the jackknife repeats them).
     method : str
     """
@@ -138,6 +145,7 @@ class IdentifiedModes:
     block_rows: int
     lag_stride: int
     method: str
+    block_columns: int = 0  # 0: as many as block_rows
 
     @property
     def n_modes(self) -> int:
@@ -200,13 +208,14 @@ def block_hankel(sequence, block_rows: int, block_columns: int, first_lag: int =
 class _Factorisation:
     """SVD of the block Hankel matrix and the per-order state matrices of one method."""
 
-    def __init__(self, sequence, block_rows: int, method: str):
+    def __init__(self, sequence, block_rows: int, method: str, block_columns: int = 0):
         self.n_out = sequence.shape[1]
-        H = block_hankel(sequence, block_rows, block_rows)
+        block_columns = block_columns or block_rows
+        H = block_hankel(sequence, block_rows, block_columns)
         self.U, self.s, Vt = scipy.linalg.svd(H, full_matrices=False, lapack_driver="gesdd")
         self.method = method
         if method == "era":
-            H1 = block_hankel(sequence, block_rows, block_rows, first_lag=2)
+            H1 = block_hankel(sequence, block_rows, block_columns, first_lag=2)
             self.shifted = self.U.T @ H1 @ Vt.T
 
     def max_order(self) -> int:
@@ -252,6 +261,7 @@ def identify_poles(
     method: str = "ssi-cov",
     lag_stride: int = 1,
     low_hz: Optional[float] = None,
+    block_columns: int = 0,
 ) -> Tuple[Poles, int]:
     """Poles and complex shapes of every model order from output correlation matrices.
 
@@ -273,6 +283,9 @@ def identify_poles(
         above ``fs / (2 lag_stride)`` then aliases into the band). Default 1.
     low_hz : float, optional
         Lowest frequency searched, for the default ``block_rows``.
+    block_columns : int
+        Block columns; 0 (the default) means as many as ``block_rows``. Fewer columns (at least
+        ``max(orders) / n_references``) make the SVD much cheaper; see the benchmark.
 
     Returns
     -------
@@ -297,7 +310,7 @@ def identify_poles(
             raise ValueError("block_rows=None needs low_hz (the lowest frequency searched)")
         block_rows = default_block_rows(fs, low_hz, lam.shape[2], max(wanted), lag_stride)
         block_rows = min(block_rows, (lam.shape[0] - 1) // 2)
-    factorisation = _Factorisation(lam, int(block_rows), method)
+    factorisation = _Factorisation(lam, int(block_rows), method, int(block_columns))
     usable = [n for n in wanted if 0 < n <= factorisation.max_order()]
     dt = lag_stride / fs
     parts = [_poles_of_system(*factorisation.system(n), dt) + (n,) for n in usable]
@@ -311,10 +324,19 @@ def identify_poles(
     return poles, int(block_rows)
 
 
-def poles_at_order(sequence, fs: float, order: int, block_rows: int, method: str = "ssi-cov", lag_stride: int = 1):
+def poles_at_order(
+    sequence,
+    fs: float,
+    order: int,
+    block_rows: int,
+    method: str = "ssi-cov",
+    lag_stride: int = 1,
+    block_columns: int = 0,
+):
     """``(freq_hz, damping, shapes)`` of one model order (the jackknife's repeated identification)."""
     lam = np.asarray(sequence, dtype=float)[:: int(lag_stride)]
-    return _poles_of_system(*_Factorisation(lam, int(block_rows), method).system(int(order)), lag_stride / fs)
+    system = _Factorisation(lam, int(block_rows), method, int(block_columns)).system(int(order))
+    return _poles_of_system(*system, lag_stride / fs)
 
 
 def stability_flags(
@@ -440,6 +462,7 @@ def identify_modes(
     lag_stride: int = 1,
     margin: float = BAND_MARGIN,
     damping_range: Tuple[float, float] = DAMPING_RANGE,
+    block_columns: int = 0,
 ) -> IdentifiedModes:
     """Physical modes in a band from output correlation matrices: :func:`identify_poles`, then
     :func:`select_modes`.
@@ -453,7 +476,7 @@ def identify_modes(
     band_hz : (float, float)
         The band searched (widened by ``margin``): one band around the modes of interest; the
         modes of several ``[[modes]]`` entries may share one band.
-    orders, block_rows, method, lag_stride
+    orders, block_rows, method, lag_stride, block_columns
         As in :func:`identify_poles`.
     margin, damping_range
         As in :func:`select_modes`.
@@ -476,7 +499,7 @@ def identify_modes(
     (2.0, 0.02)
     """
     low, _ = search_band(band_hz, margin)
-    poles, rows_used = identify_poles(sequence, fs, orders, block_rows, method, lag_stride, low_hz=low)
+    poles, rows_used = identify_poles(sequence, fs, orders, block_rows, method, lag_stride, low, block_columns)
     chosen, n_stable = select_modes(poles, band_hz, margin=margin, damping_range=damping_range)
     return IdentifiedModes(
         freq_hz=poles.freq_hz[chosen],
@@ -487,4 +510,5 @@ def identify_modes(
         block_rows=rows_used,
         lag_stride=int(lag_stride),
         method=method,
+        block_columns=int(block_columns),
     )
