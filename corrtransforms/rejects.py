@@ -76,6 +76,11 @@ REASONS = {
         "rejected",
         "the resumed shift state was computed with other [baseline]/[shifts] settings; run a backfill",
     ),
+    "baseline_sample_incomplete": (
+        "rejected",
+        "the resumed series is still in its baseline and the baseline_sample table lacks some of its "
+        "windows (a lost partition); nightly --rebuild_state or a backfill restores it",
+    ),
     "shift_detection_failed": ("rejected", "shift detection raised an error for the series; detail holds it"),
 }
 

@@ -98,7 +98,7 @@ REJECTS = pa.schema(
     ]
 )
 
-ALL_TABLES = ("correlations", "indicators", "shifts", "rejects", "state")
+ALL_TABLES = ("correlations", "indicators", "shifts", "rejects", "state", "baseline_sample")
 
 # Shift detection (corrtransforms.stages.shifts): one SHIFTS row per monitored indicator row,
 # one STATE row per (subject, indicator) and local day, EPISODES summarises alarm episodes.
@@ -152,11 +152,14 @@ STATE = pa.schema(
         ),
         _f("phase", pa.string(), "", "accumulating (baseline sample still growing) or fitted", nullable=False),
         _f("windows_seen", pa.int64(), "", "windows of this series processed so far", nullable=False),
-        _f("sample_value", pa.list_(pa.float64()), "see unit column", "baseline sample values (while accumulating)"),
-        _f("sample_stderr", pa.list_(pa.float64()), "see unit column", "baseline sample standard errors"),
         _f(
-            "sample_covariates", pa.list_(pa.float64()), "", "baseline sample covariates, row-major n x len(covariates)"
+            "sample_value",
+            pa.list_(pa.float64()),
+            "see unit column",
+            "empty: the baseline sample is in the baseline_sample table (filled only by states written before it)",
         ),
+        _f("sample_stderr", pa.list_(pa.float64()), "see unit column", "empty (see sample_value)"),
+        _f("sample_covariates", pa.list_(pa.float64()), "", "empty (see sample_value)"),
         _f("covariates", pa.list_(pa.string()), "", "compensated covariates, in model order"),
         _f("model_order", pa.int8(), "", "polynomial order of the covariate model"),
         _f("model_n", pa.int64(), "", "baseline windows used by the fit"),
@@ -195,12 +198,7 @@ STATE = pa.schema(
         _f("detector", pa.string(), "", "detector(s) currently signalling"),
         _f("first_alarm", TIMESTAMP, "", "first alarm of the current episode"),
         _f("ewma_limit", pa.float64(), "", "last EWMA limit"),
-        _f(
-            "sample_window_start",
-            pa.list_(TIMESTAMP),
-            "",
-            "window starts of the baseline sample (while accumulating; lag-1 pairs)",
-        ),
+        _f("sample_window_start", pa.list_(TIMESTAMP), "", "empty (see sample_value)"),
         _f(
             "dependence_phi",
             pa.float64(),
@@ -243,6 +241,31 @@ STATE = pa.schema(
             "s",
             "median spacing of the baseline windows: one prediction step (null: [windows] hop_s)",
         ),
+        _f(
+            "sample_count",
+            pa.int64(),
+            "",
+            "windows in the baseline sample so far (their rows: baseline_sample table, days up to this one)",
+        ),
+    ]
+)
+
+#: columns added to a schema after files were first written with it: read back as nulls from
+#: older files (corrtransforms.stages.write.conform)
+ADDED_COLUMNS = {"sample_count"}
+
+# The baseline sample of each series while its baseline accumulates: one row per window that
+# entered the sample, written on that window's own day, so no state row ever carries the sample
+# (a state row's size does not depend on the baseline's length).
+BASELINE_SAMPLE = pa.schema(
+    [
+        _f("window_start", TIMESTAMP, "", "window start", nullable=False),
+        _f("subject", pa.string(), "", "channel, 'a:b' pair or mode name", nullable=False),
+        _f("indicator", pa.string(), "", "monitored indicator name", nullable=False),
+        _f("value", pa.float64(), "see unit column", "indicator value"),
+        _f("stderr", pa.float64(), "see unit column", "standard error of value"),
+        _f("covariates", pa.list_(pa.float64()), "", "window means of the compensated covariates, in model order"),
+        _f("unit", pa.string(), "", "unit of value and stderr"),
     ]
 )
 

@@ -1,7 +1,7 @@
-"""Backfill: an asset's Parquet archive (or some of its days) -> all five output tables.
+"""Backfill: an asset's Parquet archive (or some of its days) -> the output tables, day by day.
 
     python -m pipelines.backfill --config FILE --output DIR [--start YYYY-MM-DD] [--end YYYY-MM-DD]
-                                 [any Beam flag, e.g. --runner, --direct_num_workers]
+                                 [--commit_days N] [any Beam flag, e.g. --runner, --direct_num_workers]
 
 The checkout's spelling of the installed command ``corrtransforms-backfill``
 (:mod:`corrtransforms.launch.backfill`).

@@ -2,8 +2,9 @@
 
 ``pipeline | MonitorAsset(config, output_dir, run_id, start, end, initial_states)`` plans reads
 from the archive's footers, reads every window once, screens and correlates it, computes the
-indicators, runs the shift detectors and writes the five tables (correlations, indicators,
-shifts, state, rejects) into their partitions. The launchers in ``pipelines/`` are thin on top.
+indicators, runs the shift detectors and writes the tables (correlations, indicators, shifts,
+state, baseline_sample, rejects) into their partitions. The launchers in ``pipelines/`` are thin
+on top.
 """
 
 from __future__ import annotations
@@ -93,7 +94,7 @@ def _indicator_table(rows):
 
 
 class MonitorAsset(beam.PTransform):
-    """Archive -> correlations, indicators, shifts, state and rejects tables of one asset.
+    """Archive -> correlations, indicators, shifts, state, baseline_sample and rejects tables of one asset.
 
     Parameters
     ----------
@@ -105,8 +106,10 @@ class MonitorAsset(beam.PTransform):
     start, end : datetime.date, optional
         Calendar days (asset time zone, inclusive) to process; None means the whole archive.
         The partitions of those days are replaced in every table.
-    initial_states : pyarrow.Table, optional
-        Detector states to resume from (the state table before ``start``); None starts fresh.
+    initial_states : StoredState or pyarrow.Table, optional
+        Detector states to resume from: a
+        :class:`~corrtransforms.beam.stored_state.StoredState` (the state and baseline sample
+        tables before ``start``, read inside the pipeline), or a STATE table; None starts fresh.
     progress_interval_s : float
         Seconds between progress log lines (logger ``corrtransforms.progress``, level INFO).
 
@@ -165,6 +168,7 @@ class MonitorAsset(beam.PTransform):
             "indicators": indicator_tables,
             "shifts": shifts["shifts"],
             "state": shifts["state"],
+            "baseline_sample": shifts["baseline_sample"],
             "rejects": rejects,
         }
         commits = tables | "Write tables" >> WriteTables(self._output, config, self._run_id, days=plan["days"])

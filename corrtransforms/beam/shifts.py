@@ -1,9 +1,11 @@
 """Beam glue of shift detection: :class:`DetectShifts` (no numerics here).
 
-``indicator rows | DetectShifts(config, initial_states)`` -> ``{"shifts", "state", "rejects"}``:
+``indicator rows | DetectShifts(config, initial_states)`` -> ``{"shifts", "state", "baseline_sample", "rejects"}``:
 
 - ``"shifts"``: one ``pyarrow.Table`` (SHIFTS schema) per (subject, indicator) series,
 - ``"state"``: one ``pyarrow.Table`` (STATE schema) per series, a row per local day processed,
+- ``"baseline_sample"``: one ``pyarrow.Table`` (BASELINE_SAMPLE schema) per series still in
+  its baseline: the windows that entered its baseline sample,
 - ``"rejects"``: :class:`~corrtransforms.rejects.Reject` records,
 
 ready for :class:`corrtransforms.beam.write.WriteTables` (tables ``shifts``, ``state``,
@@ -18,6 +20,7 @@ import apache_beam as beam
 import pyarrow as pa
 
 from corrtransforms.beam.metrics import counter as _counter
+from corrtransforms.beam.stored_state import ReadBaselineSample, ReadLatestStates, StoredState
 from corrtransforms.config import AssetConfig
 from corrtransforms.records import IndicatorRow
 from corrtransforms.stages import shifts as shift_series
@@ -65,10 +68,13 @@ class _DetectSeriesFn(beam.DoFn):
         self._shifted = _counter("shift_windows_shifted")
         self._rejects = _counter("shift_rejects")
 
-    def process(self, keyed, covariates, states):
-        (_asset, subject, indicator), rows = keyed
+    def process(self, keyed, covariates):
+        _key, grouped = keyed
+        rows = list(grouped["rows"])
+        if not rows:  # a series with a state but no windows in this run: nothing to do
+            return
         outcome = shift_series.detect_shifts_for_rows(
-            rows, covariates, self._config, states[(subject, indicator)], self._order
+            rows, covariates, self._config, list(grouped["states"]), self._order, list(grouped["sample"])
         )
         self._series.inc()
         self._windows.inc(outcome.shifts.num_rows)
@@ -78,6 +84,8 @@ class _DetectSeriesFn(beam.DoFn):
             yield beam.pvalue.TaggedOutput("rejects", reject)
         if outcome.states.num_rows:
             yield beam.pvalue.TaggedOutput("state", outcome.states)
+        if outcome.baseline_sample.num_rows:
+            yield beam.pvalue.TaggedOutput("baseline_sample", outcome.baseline_sample)
         if outcome.shifts.num_rows:
             yield outcome.shifts
 
@@ -90,7 +98,7 @@ def _state_rows(initial_states) -> list:
     return [s.to_row() if isinstance(s, ShiftState) else dict(s) for s in initial_states]
 
 
-def _split_state_table(element) -> Iterable[Any]:
+def _split_table(element) -> Iterable[Any]:
     if isinstance(element, pa.Table):
         return element.to_pylist()
     if isinstance(element, ShiftState):
@@ -106,12 +114,17 @@ class DetectShifts(beam.PTransform):
     config : AssetConfig
         ``[baseline]``, ``[shifts]`` (detector, cusum_k, cusum_h, ewma_lambda, ewma_L,
         compensate, indicators), ``[channels] covariates`` and ``[archive] timezone``.
-    initial_states : pyarrow.Table, iterable of STATE rows / ShiftState, or PCollection, optional
+    initial_states : StoredState, pyarrow.Table, iterable of STATE rows / ShiftState, or PCollection, optional
         States of earlier runs (for a nightly run: the state table up to the day before). Per
         series the latest state before the run's first window is resumed; None starts every
-        series fresh (a backfill from the first day).
+        series fresh (a backfill from the first day). A
+        :class:`~corrtransforms.beam.stored_state.StoredState` reads them (and the baseline
+        sample) inside the pipeline, so the submitted job does not grow with the history.
     order : {1, 2}
         Covariate model order.
+    baseline_sample : pyarrow.Table, iterable of BASELINE_SAMPLE rows, or PCollection, optional
+        The baseline sample of series whose resumed state still accumulates its baseline (read
+        from the output when ``initial_states`` is a StoredState).
 
     Input
     -----
@@ -123,23 +136,33 @@ class DetectShifts(beam.PTransform):
     Returns
     -------
     dict of PCollection
-        ``"shifts"`` and ``"state"``: one ``pyarrow.Table`` per series (SHIFTS / STATE schema);
-        ``"rejects"``: Reject records (stage "shifts").
+        ``"shifts"``, ``"state"`` and ``"baseline_sample"``: ``pyarrow.Table`` elements per
+        series (SHIFTS / STATE / BASELINE_SAMPLE schema); ``"rejects"``: Reject records (stage
+        "shifts").
 
     Notes
     -----
-    Grouping is per (asset, subject, indicator): a series is a few rows per window, small next
-    to the samples, and the detectors need it in time order, which the core sorts.
+    Grouping is per (asset, subject, indicator), with the series' resumed states and baseline
+    sample joined by the same key (CoGroupByKey, so no worker holds every series' state): a
+    series is a few rows per window, small next to the samples, and the detectors need it in
+    time order, which the core sorts.
     """
 
     def __init__(
         self,
         config: AssetConfig,
-        initial_states: Union[None, pa.Table, Iterable[Any], beam.PCollection] = None,
+        initial_states: Union[None, StoredState, pa.Table, Iterable[Any], beam.PCollection] = None,
         order: int = 1,
+        baseline_sample: Union[None, pa.Table, Iterable[Any], beam.PCollection] = None,
     ):
         super().__init__()
         self._config, self._initial_states, self._order = config, initial_states, order
+        self._baseline_sample = baseline_sample
+
+    def _rows_of(self, pipeline, given, label: str):
+        if isinstance(given, beam.PCollection):
+            return given | f"{label} rows" >> beam.FlatMap(_split_table)
+        return pipeline | label >> beam.Create(_state_rows(given))
 
     def expand(self, indicator_rows):
         config = self._config
@@ -154,21 +177,33 @@ class DetectShifts(beam.PTransform):
             | "Group covariates by window" >> beam.GroupByKey()
             | "Covariate means per window" >> beam.ParDo(_CovariateMeansFn(asset)).with_outputs("rejects", main="means")
         )
-        if isinstance(self._initial_states, beam.PCollection):
-            states = self._initial_states | "Initial state rows" >> beam.FlatMap(_split_state_table)
+        if isinstance(self._initial_states, StoredState):
+            states = pipeline | "Read resumed states" >> ReadLatestStates(self._initial_states)
+            sample = pipeline | "Read baseline sample" >> ReadBaselineSample(self._initial_states, states)
         else:
-            states = pipeline | "Initial states" >> beam.Create(_state_rows(self._initial_states))
-        keyed_states = states | "Key states by series" >> beam.Map(lambda s: ((s["subject"], s["indicator"]), s))
+            states = self._rows_of(pipeline, self._initial_states, "Initial states")
+            sample = self._rows_of(pipeline, self._baseline_sample, "Initial baseline sample")
+
+        def key(row):
+            return (asset, row["subject"], row["indicator"])
+
         detected = (
-            split.monitored
-            | "Key by series" >> beam.Map(lambda r: ((asset, r.subject, r.indicator), r))
-            | "Group by series" >> beam.GroupByKey()
+            {
+                "rows": split.monitored | "Key by series" >> beam.Map(lambda r: ((asset, r.subject, r.indicator), r)),
+                "states": states | "Key states by series" >> beam.Map(lambda s: (key(s), s)),
+                "sample": sample | "Key sample by series" >> beam.Map(lambda s: (key(s), s)),
+            }
+            | "Group by series" >> beam.CoGroupByKey()
             | "Detect shifts"
             >> beam.ParDo(
                 _DetectSeriesFn(config, self._order),
                 covariates=beam.pvalue.AsDict(covariates.means),
-                states=beam.pvalue.AsMultiMap(keyed_states),
-            ).with_outputs("state", "rejects", main="shifts")
+            ).with_outputs("state", "baseline_sample", "rejects", main="shifts")
         )
         rejects = (covariates.rejects, detected.rejects) | "Collect shift rejects" >> beam.Flatten()
-        return {"shifts": detected.shifts, "state": detected.state, "rejects": rejects}
+        return {
+            "shifts": detected.shifts,
+            "state": detected.state,
+            "baseline_sample": detected.baseline_sample,
+            "rejects": rejects,
+        }

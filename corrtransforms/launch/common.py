@@ -34,6 +34,7 @@ from corrtransforms.beam.output_tables import (
     summarize_partitions,
     write_episodes,
 )
+from corrtransforms.beam.stored_state import StoredState
 from corrtransforms.config import AssetConfig, ConfigError, load_config, parse_config
 from corrtransforms.launch import checks, run_summary
 from corrtransforms.stages import plan as archive_plan
@@ -73,6 +74,12 @@ class JobOptions(PipelineOptions):
         parser.add_argument("--end", type=_date, default=None, help="last day (YYYY-MM-DD, inclusive)")
         parser.add_argument("--run_id", default=None, help="id of this run (default: UTC time + random)")
         parser.add_argument(
+            "--commit_days",
+            type=int,
+            default=1,
+            help="backfill: days per pipeline; each chunk is committed before the next starts",
+        )
+        parser.add_argument(
             "--date",
             type=_date,
             default=None,
@@ -103,6 +110,8 @@ COMMAND_FLAGS = {
         "--output": "DIR    output root folder or filesystem URL (required)",
         "--start": "DAY    first day to process, YYYY-MM-DD in the asset's time zone (default: the first data)",
         "--end": "DAY    last day to process, inclusive (default: the last data)",
+        "--commit_days": "N      days per pipeline, committed before the next chunk starts (1); a rerun "
+        "after a crash continues after the last committed chunk",
         "--run_id": "ID     id of this run in provenance and temporary names (default: UTC time + random)",
         "--stale_temporary_hours": "H      delete other runs' temporary files not written for H hours (24; 0 keeps)",
     },
@@ -240,6 +249,20 @@ def earlier_states(output: str, config: AssetConfig, start: Optional[_dt.date], 
     return states if states.num_rows else None
 
 
+def stored_state(
+    output: str, config: AssetConfig, start: Optional[_dt.date], run_id: str = ""
+) -> Optional[StoredState]:
+    """Where a run starting on ``start`` resumes from (None: no earlier state, start fresh).
+
+    Only this description goes into the job: the states and the baseline sample are read inside
+    the pipeline (:mod:`corrtransforms.beam.stored_state`), so the submitted job's size does not
+    grow with the history. The read-back summary of the latest states is refreshed here.
+    """
+    if earlier_states(output, config, start, run_id) is None or start is None:
+        return None
+    return StoredState(output, config.name, start, tuple(sorted(provenance_metadata(config, run_id).items())))
+
+
 def _show_progress() -> None:
     """Progress lines of the local run on stderr (the runner's own logging stays as it is)."""
     log = logging.getLogger(PROGRESS_LOGGER)
@@ -262,6 +285,12 @@ def remove_stale(options: PipelineOptions, output: str, run_id: str) -> None:
         )
 
 
+def prepare(options: PipelineOptions, output: str, run_id: str) -> None:
+    """Before a run's pipelines: progress lines on stderr, other dead runs' temporary files removed."""
+    _show_progress()
+    remove_stale(options, output, run_id)
+
+
 def run(
     options: PipelineOptions,
     config: AssetConfig,
@@ -272,13 +301,38 @@ def run(
     initial_states: Any,
 ) -> Dict[str, int]:
     """Build, run and summarise one job; rewrites the episodes summary afterwards."""
-    _show_progress()
-    remove_stale(options, output, run_id)
+    prepare(options, output, run_id)
+    counters = run_pipeline(options, config, output, start, end, run_id, initial_states)
+    return finish(counters, config, output, start, end, run_id)
+
+
+def run_pipeline(
+    options: PipelineOptions,
+    config: AssetConfig,
+    output: str,
+    start: Optional[_dt.date],
+    end: Optional[_dt.date],
+    run_id: str,
+    initial_states: Any,
+) -> Dict[str, int]:
+    """Build and run one pipeline over the days; its counters (every partition committed)."""
     p = beam.Pipeline(options=options)
     build_pipeline(p, config, output, start, end, run_id, initial_states)
     result = p.run()
     result.wait_until_finish()
-    counters = window_accounting(result.metrics())
+    return window_accounting(result.metrics())
+
+
+def finish(
+    counters: Dict[str, int],
+    config: AssetConfig,
+    output: str,
+    start: Optional[_dt.date],
+    end: Optional[_dt.date],
+    run_id: str,
+) -> Dict[str, int]:
+    """After the pipelines of a run: the episodes summary, the console and JSON run summaries,
+    and the nothing-usable check (exit status 3)."""
     counters["episodes"] = write_episodes(output, config, run_id)
     print(summary(counters))
     checks.check_usable(counters, config, output, start, end)
@@ -407,7 +461,7 @@ def summary(counters: Dict[str, int]) -> str:
         f"rows written: "
         + ", ".join(
             f"{t} {counters.get('rows_written_' + t, 0)}"
-            for t in ("correlations", "indicators", "shifts", "state", "rejects")
+            for t in ("correlations", "indicators", "shifts", "state", "baseline_sample", "rejects")
         )
         + "; "
         f"files committed {counters.get('files_committed', 0)}, stale removed {counters.get('stale_files_removed', 0)}"

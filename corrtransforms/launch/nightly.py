@@ -20,10 +20,12 @@ import zoneinfo
 from typing import Dict, List, Optional
 
 from corrtransforms import tables
+from corrtransforms.beam.filesystems import BeamFiles
 from corrtransforms.beam.output_tables import partition_files, read_partitions
 from corrtransforms.config import AssetConfig
 from corrtransforms.launch import common
-from corrtransforms.stages.state import replay_states
+from corrtransforms.stages.state import replay_tables
+from corrtransforms.stages.write import write_tables
 
 MISSING_STATE = common.MISSING_STATE
 
@@ -69,12 +71,21 @@ def previous_states(output: str, config: AssetConfig, day: _dt.date, rebuild: bo
         )
         raise SystemExit(MISSING_STATE)
     indicators = read_partitions(output, "indicators", config.name, tables.INDICATORS, before=day)
-    rebuilt, _ = replay_states(indicators, config)
-    print(
-        f"nightly {config.name} {day}: rebuilt the state of {rebuilt.num_rows} series from "
-        f"{indicators.num_rows} indicator rows of {len(earlier_indicators)} earlier days"
+    rebuilt = replay_tables(indicators, config)
+    # written where a backfill would have written them, so the run reads them like any state
+    write_tables(
+        output,
+        config,
+        run_id,
+        {"state": [rebuilt.states], "baseline_sample": [rebuilt.baseline_sample]},
+        store=BeamFiles(),
     )
-    return rebuilt if rebuilt.num_rows else None
+    print(
+        f"nightly {config.name} {day}: rebuilt the state of {rebuilt.latest.num_rows} series from "
+        f"{indicators.num_rows} indicator rows of {len(earlier_indicators)} earlier days "
+        f"(state and baseline_sample partitions of those days rewritten)"
+    )
+    return common.earlier_states(output, config, day, run_id)
 
 
 def main(argv: Optional[List[str]] = None) -> Dict[str, int]:
@@ -84,7 +95,8 @@ def main(argv: Optional[List[str]] = None) -> Dict[str, int]:
     run_id = args.run_id or common.new_run_id()
     initial = previous_states(args.output, config, day, args.rebuild_state, run_id)
     print(f"nightly {config.name}: processing {day}")
-    return common.run(options, config, args.output, day, day, run_id, initial)
+    resume = None if initial is None else common.stored_state(args.output, config, day, run_id)
+    return common.run(options, config, args.output, day, day, run_id, resume)
 
 
 def cli() -> None:

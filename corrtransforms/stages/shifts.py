@@ -35,7 +35,6 @@ live in :mod:`corrtransforms.stages.state`; the episodes summary of a shifts tab
 
 from __future__ import annotations
 
-import copy
 import dataclasses
 import math
 from typing import Any, Dict, Iterable, List, Mapping, NamedTuple, Optional, Sequence, Tuple
@@ -63,8 +62,10 @@ from corrtransforms.stages.state import (
     FITTED,
     NORMAL,
     SHIFTED,
+    IncompleteSampleError,
     ShiftState,
     StateMismatchError,
+    attach_sample,
     resume_or_start,
     select_resume_state,
     settings_digest,
@@ -351,6 +352,8 @@ class _SeriesRun:
         # on the schedule of provisional_refit_point, from the prefix of the carried sample
         self.provisional: Optional[Tuple[int, BaselineModel]] = None
         self.provisional_fits = 0
+        # windows that entered the baseline sample in this run: the baseline_sample rows
+        self.new_sample: List[Tuple[int, float, float, Tuple[float, ...]]] = []
 
     # -- baseline -----------------------------------------------------------------------------
     def _sample_arrays(self):
@@ -471,6 +474,7 @@ class _SeriesRun:
                 st.sample_window_start.append(int(t))
                 if self.p:
                     st.sample_covariates.extend(float(c) for c in x)
+                self.new_sample.append((int(t), float(v), float(se), tuple(float(c) for c in x) if self.p else ()))
             else:
                 extra.append("not_in_baseline_sample")
         st.windows_seen += 1
@@ -512,7 +516,7 @@ class _SeriesRun:
             self._finalize()
         st.window_start_us = int(t[-1])
         st.local_day = int(day)
-        self.day_states.append(copy.deepcopy(st))
+        self.day_states.append(st.snapshot())
 
     def _fitted_windows(self, t, v, se, codes, x):
         """Windows after the baseline: ``expected``, ``z``, the detectors and the state per window.
@@ -640,6 +644,22 @@ class _SeriesRun:
         st.first_alarm = decisions.first_alarm[last]
 
     # -- output ---------------------------------------------------------------------------------
+    def sample_table(self, subject, indicator, unit) -> pa.Table:
+        """BASELINE_SAMPLE rows of the windows that entered the baseline sample in this run."""
+        rows = self.new_sample
+        return pa.Table.from_arrays(
+            [
+                pa.array([r[0] for r in rows], pa.int64()).cast(tables.TIMESTAMP),
+                pa.array([subject] * len(rows), pa.string()),
+                pa.array([indicator] * len(rows), pa.string()),
+                pa.array([r[1] for r in rows], pa.float64()),
+                pa.array([r[2] for r in rows], pa.float64()),
+                pa.array([list(r[3]) for r in rows], pa.list_(pa.float64())),
+                pa.array([unit] * len(rows), pa.string()),
+            ],
+            schema=tables.BASELINE_SAMPLE,
+        )
+
     def table(self, subject, indicator, unit) -> pa.Table:
         c = self.columns
         window_start = c.joined("window_start", np.int64)
@@ -771,13 +791,74 @@ def detect_shifts(
     ----------
     Page (1954); Roberts (1959); Montgomery (2009) Sections 9.1-9.2.
     """
+    result = detect_shifts_with_sample(
+        times_us,
+        values,
+        stderr,
+        quality,
+        covariates,
+        config,
+        state,
+        subject=subject,
+        indicator=indicator,
+        unit=unit,
+        order=order,
+    )
+    return result.shifts, result.day_states
+
+
+class SeriesResult(NamedTuple):
+    """What :func:`detect_shifts_with_sample` returns."""
+
+    #: SHIFTS rows, one per window
+    shifts: pa.Table
+    #: state after the last window of each local day (rows carry the sample's count only)
+    day_states: List[ShiftState]
+    #: BASELINE_SAMPLE rows of the windows that entered the baseline sample in this run
+    baseline_sample: pa.Table
+
+
+def detect_shifts_with_sample(
+    times_us,
+    values,
+    stderr,
+    quality,
+    covariates,
+    config,
+    state: Optional[ShiftState] = None,
+    *,
+    baseline_sample: Any = (),
+    subject: str = "",
+    indicator: str = "",
+    unit: str = "",
+    order: int = 1,
+) -> SeriesResult:
+    """:func:`detect_shifts`, also returning the baseline sample rows this run added, and
+    accepting those of earlier runs (``baseline_sample``: BASELINE_SAMPLE rows or table) for a
+    ``state`` read back from the state table while its baseline accumulates."""
+    state = _with_sample(state, baseline_sample, config, order)
+    run = _run_series(times_us, values, stderr, quality, covariates, config, state, subject, indicator, order)
+    subject, indicator = run.state.subject, run.state.indicator
+    return SeriesResult(run.table(subject, indicator, unit), run.day_states, run.sample_table(subject, indicator, unit))
+
+
+def _with_sample(state: Optional[ShiftState], baseline_sample: Any, config, order: int) -> Optional[ShiftState]:
+    """``state`` with its baseline sample attached from ``baseline_sample`` when it needs it (a
+    state of other settings is left as it is: :func:`resume_or_start` reports that first)."""
+    if state is None or not state.needs_sample or state.settings != settings_digest(config, order):
+        return state
+    rows = baseline_sample.to_pylist() if isinstance(baseline_sample, pa.Table) else baseline_sample
+    return attach_sample(state, rows)
+
+
+def _run_series(times_us, values, stderr, quality, covariates, config, state, subject, indicator, order) -> _SeriesRun:
+    """The engine of :func:`detect_shifts`: the finished :class:`_SeriesRun` (rows, day states
+    and the windows that entered the baseline sample)."""
     t, v, se, codes = _checked_series(times_us, values, stderr, quality)
     n = t.size
     names = tuple(config.compensated_covariates())
     digest = settings_digest(config, order)
     state = resume_or_start(state, digest, names, order, subject, indicator, int(t[0]) if n else None)
-    subject = subject or state.subject
-    indicator = indicator or state.indicator
     x = _covariate_matrix(covariates, names, n)
     run = _SeriesRun(config, state)
     if n:
@@ -785,7 +866,7 @@ def detect_shifts(
         edges = np.concatenate(([0], np.flatnonzero(np.diff(days)) + 1, [n]))
         for a, b in zip(edges[:-1], edges[1:]):
             run.process_day(t[a:b], v[a:b], se[a:b], codes[a:b], None if x is None else x[a:b], int(days[a]))
-    return run.table(subject, indicator, unit), run.day_states
+    return run
 
 
 # --------------------------------------------------------------------------------------------
@@ -801,6 +882,8 @@ class SeriesOutcome:
     #: STATE rows, one per local day processed
     states: pa.Table
     rejects: List[Reject]
+    #: BASELINE_SAMPLE rows of the windows that entered the baseline sample in this run
+    baseline_sample: pa.Table = dataclasses.field(default_factory=tables.BASELINE_SAMPLE.empty_table)
 
     @property
     def shifted_windows(self) -> int:
@@ -912,6 +995,7 @@ def detect_shifts_for_rows(
     config,
     resume_states: Iterable[Any] = (),
     order: int = 1,
+    baseline_sample: Any = (),
 ) -> SeriesOutcome:
     """:func:`detect_shifts` on the indicator rows of one (subject, indicator) series.
 
@@ -927,12 +1011,16 @@ def detect_shifts_for_rows(
         window is resumed (:func:`select_resume_state`).
     order : {1, 2}
         Covariate model order.
+    baseline_sample : pyarrow.Table or iterable of BASELINE_SAMPLE rows
+        The baseline sample written by earlier runs (needed when the resumed state is still
+        accumulating its baseline; rows of other series are ignored).
 
     Returns
     -------
     SeriesOutcome
-        SHIFTS and STATE tables of the series and the rejects (duplicates, windows not after
-        the state, state mismatch, failures). Nothing is dropped without a Reject.
+        SHIFTS, STATE and BASELINE_SAMPLE tables of the series and the rejects (duplicates,
+        windows not after the state, state mismatch or an incomplete baseline sample,
+        failures). Nothing is dropped without a Reject.
     """
     rows = list(rows)
     if not rows:
@@ -953,8 +1041,10 @@ def detect_shifts_for_rows(
         name: np.array([float(covariates_by_window.get(int(ti), {}).get(name, float("nan"))) for ti in times])
         for name in names
     }
+    unit = unique[0].unit
     try:
-        table, day_states = detect_shifts(
+        state = _with_sample(state, baseline_sample, config, order)
+        run = _run_series(
             times,
             [float(r.value) for r in unique],
             [float(r.stderr) for r in unique],
@@ -962,10 +1052,9 @@ def detect_shifts_for_rows(
             covariates,
             config,
             state,
-            subject=subject,
-            indicator=indicator,
-            unit=unique[0].unit,
-            order=order,
+            subject,
+            indicator,
+            order,
         )
     except StateMismatchError as err:
         rejects.append(
@@ -973,7 +1062,7 @@ def detect_shifts_for_rows(
                 STAGE,
                 "state",
                 subject,
-                "state_mismatch",
+                "baseline_sample_incomplete" if isinstance(err, IncompleteSampleError) else "state_mismatch",
                 f"{indicator}: {err}",
                 asset=asset,
                 date=day_date(int(local_days(times[:1], config.timezone)[0])).isoformat(),
@@ -993,4 +1082,9 @@ def detect_shifts_for_rows(
             )
         )
         return _empty_outcome(rejects)
-    return SeriesOutcome(table, states_table(day_states), rejects)
+    return SeriesOutcome(
+        run.table(subject, indicator, unit),
+        states_table(run.day_states),
+        rejects,
+        run.sample_table(subject, indicator, unit),
+    )

@@ -7,7 +7,7 @@ and its rebuild from an indicators table.
 - :func:`settings_digest`: the settings a state was computed with, checked on resume.
 - :func:`select_resume_state` and :func:`resume_or_start`: which state a run continues from, and
   the checks that it fits the run (:class:`StateMismatchError` otherwise).
-- :func:`replay_states`: when the state of a nightly run is missing (a lost partition, a changed
+- :func:`replay_states` / :func:`replay_tables`: when the state of a nightly run is missing (a lost partition, a changed
   output folder), the detectors are replayed over the indicators already written: shift
   detection depends only on the indicator rows and the configuration, so the replayed state
   equals the state a backfill would have written.
@@ -20,7 +20,7 @@ import dataclasses
 import datetime as _dt
 import hashlib
 import json
-from typing import Any, Dict, Iterable, List, Mapping, Optional, Tuple
+from typing import Any, Dict, Iterable, List, Mapping, NamedTuple, Optional, Tuple
 
 import pyarrow as pa
 
@@ -39,6 +39,10 @@ ACCUMULATING, FITTED = "accumulating", "fitted"
 
 class StateMismatchError(ValueError):
     """A resumed state does not fit this run (other settings, other series, or later windows)."""
+
+
+class IncompleteSampleError(StateMismatchError):
+    """An accumulating state's baseline sample rows are not all in the baseline_sample table."""
 
 
 # --------------------------------------------------------------------------------------------
@@ -86,10 +90,17 @@ def settings_digest(config, order: int = 1) -> str:
 class ShiftState:
     """Everything needed to continue one series after its last processed window.
 
-    While ``phase == "accumulating"`` the baseline sample is carried (values, stderr and
-    covariates of the usable baseline windows); once ``"fitted"``, the baseline model and the
-    detector statistics. :meth:`to_row` / :meth:`from_row` convert to and from a row of
-    :data:`corrtransforms.tables.STATE` exactly (float64 throughout).
+    While ``phase == "accumulating"`` the baseline sample grows (values, stderr, covariates and
+    window starts of the usable baseline windows); once ``"fitted"``, the baseline model and
+    the detector statistics. :meth:`to_row` / :meth:`from_row` convert to and from a row of
+    :data:`corrtransforms.tables.STATE` exactly (float64 throughout), except the sample: a row
+    carries only ``sample_count``, and the sample's rows live in the ``baseline_sample`` table
+    (one row per window, written on its own day; :func:`sample_table`, :func:`attach_sample`),
+    so a state row's size does not depend on the baseline's length.
+
+    In memory, the sample lists may be longer than ``sample_count`` (the day snapshots of one
+    run share one list, see :meth:`snapshot`): the first ``sample_count`` entries are this
+    state's sample.
     """
 
     subject: str
@@ -119,6 +130,7 @@ class ShiftState:
     predictor_var: Optional[float] = None
     predictor_window_start: Optional[int] = None
     window_spacing_s: Optional[float] = None
+    sample_count: int = 0
     cusum_pos: float = 0.0
     cusum_neg: float = 0.0
     run_start_pos: Optional[int] = None
@@ -137,6 +149,33 @@ class ShiftState:
     detector: Optional[str] = None
     first_alarm: Optional[int] = None
 
+    def snapshot(self) -> ShiftState:
+        """This state as it stands, sharing the sample lists (no copy: O(1) per day).
+
+        The runner appends to the lists afterwards, so the snapshot's own sample is the first
+        ``sample_count`` entries (see :meth:`own_sample`). Everything else is a scalar or an
+        immutable value (the baseline model is a frozen dataclass).
+        """
+        return dataclasses.replace(self, sample_count=len(self.sample_value))
+
+    def own_sample(self) -> ShiftState:
+        """A copy whose sample lists hold exactly its first ``sample_count`` entries."""
+        n = self.sample_count
+        p = len(self.covariates)
+        return dataclasses.replace(
+            self,
+            sample_value=list(self.sample_value[:n]),
+            sample_stderr=list(self.sample_stderr[:n]),
+            sample_covariates=list(self.sample_covariates[: n * p]),
+            sample_window_start=list(self.sample_window_start[:n]),
+        )
+
+    @property
+    def needs_sample(self) -> bool:
+        """True when the state is accumulating and its sample rows must be attached
+        (:func:`attach_sample`) before a run can continue it."""
+        return self.phase == ACCUMULATING and len(self.sample_value) < self.sample_count
+
     # -- serialisation ------------------------------------------------------------------------
     def to_row(self) -> Dict[str, Any]:
         """One row of the STATE table (timestamps as UTC datetimes, as pyarrow returns them)."""
@@ -149,9 +188,9 @@ class ShiftState:
             "settings": self.settings,
             "phase": self.phase,
             "windows_seen": int(self.windows_seen),
-            "sample_value": [float(v) for v in self.sample_value],
-            "sample_stderr": [float(v) for v in self.sample_stderr],
-            "sample_covariates": [float(v) for v in self.sample_covariates],
+            "sample_value": [],
+            "sample_stderr": [],
+            "sample_covariates": [],
             "covariates": list(self.covariates),
             "model_order": int(self.order),
             "model_n": None if m is None else int(m.n),
@@ -180,7 +219,7 @@ class ShiftState:
             "detector": self.detector,
             "first_alarm": us_to_datetime(self.first_alarm),
             "ewma_limit": self.ewma_limit,
-            "sample_window_start": [us_to_datetime(int(v)) for v in self.sample_window_start],
+            "sample_window_start": [],
             "dependence_phi": self.dependence_phi,
             "dependence_pairs": int(self.dependence_pairs),
             "innovation_scale": self.innovation_scale,
@@ -191,6 +230,7 @@ class ShiftState:
             "predictor_var": self.predictor_var,
             "predictor_window_start": us_to_datetime(self.predictor_window_start),
             "window_spacing_s": self.window_spacing_s,
+            "sample_count": int(self.sample_count),
         }
 
     @classmethod
@@ -221,6 +261,8 @@ class ShiftState:
         local_date = row.get("local_date")
         if isinstance(local_date, _dt.date):
             local_date = day_number(local_date)
+        inline = row.get("sample_value") or ()  # states written before the baseline_sample table
+        count = row.get("sample_count")
         return cls(
             subject=row["subject"],
             indicator=row["indicator"],
@@ -263,7 +305,76 @@ class ShiftState:
             predictor_var=row.get("predictor_var"),
             predictor_window_start=datetime_to_us(row.get("predictor_window_start")),
             window_spacing_s=row.get("window_spacing_s"),
+            sample_count=len(inline) if count is None else int(count),
         )
+
+
+def sample_rows(state: ShiftState, first: int = 0) -> List[Dict[str, Any]]:
+    """BASELINE_SAMPLE rows of the sample entries ``first .. sample_count - 1`` of ``state``
+    (without ``unit``, which the caller adds)."""
+    p = len(state.covariates)
+    rows = []
+    for i in range(first, min(state.sample_count, len(state.sample_value))):
+        rows.append(
+            {
+                "window_start": us_to_datetime(int(state.sample_window_start[i])),
+                "subject": state.subject,
+                "indicator": state.indicator,
+                "value": float(state.sample_value[i]),
+                "stderr": float(state.sample_stderr[i]),
+                "covariates": [float(c) for c in state.sample_covariates[i * p : (i + 1) * p]],
+            }
+        )
+    return rows
+
+
+def sample_table(rows: Iterable[Mapping[str, Any]], unit: str = "") -> pa.Table:
+    """BASELINE_SAMPLE table of rows from :func:`sample_rows`."""
+    rows = [dict(r, unit=r.get("unit", unit)) for r in rows]
+    return pa.Table.from_pylist(rows, schema=tables.BASELINE_SAMPLE)
+
+
+def attach_sample(state: ShiftState, rows: Iterable[Mapping[str, Any]]) -> ShiftState:
+    """A copy of an accumulating ``state`` with its baseline sample read back from
+    BASELINE_SAMPLE rows (any series, any days: those of this series up to the state's last
+    window are used, in time order; duplicates of one window, from a partition written twice,
+    count once).
+
+    Raises
+    ------
+    IncompleteSampleError
+        The rows do not hold the ``sample_count`` windows the state counts (a lost or partly
+        deleted ``baseline_sample`` partition): the run cannot continue the baseline.
+    """
+    if not state.needs_sample:
+        return state
+    last = int(state.window_start_us) if state.window_start_us is not None else None
+    found: Dict[int, Mapping[str, Any]] = {}
+    for r in rows:
+        if r["subject"] != state.subject or r["indicator"] != state.indicator:
+            continue
+        start = datetime_to_us(r["window_start"])
+        if start is not None and (last is None or start <= last):
+            found.setdefault(int(start), r)
+    if len(found) != state.sample_count:
+        raise IncompleteSampleError(
+            f"the baseline_sample table holds {len(found)} windows of this series up to "
+            f"{iso_utc(last) if last is not None else 'its state'}, the state counts {state.sample_count}: "
+            "a baseline_sample partition is missing; run with --rebuild_state or rerun the backfill"
+        )
+    starts = sorted(found)
+    p = len(state.covariates)
+    covariates: List[float] = []
+    for t in starts:
+        values = list(found[t].get("covariates") or ())
+        covariates.extend(float(c) for c in (values if len(values) == p else [float("nan")] * p))
+    return dataclasses.replace(
+        state,
+        sample_value=[float(found[t]["value"]) for t in starts],
+        sample_stderr=[float(found[t]["stderr"]) for t in starts],
+        sample_covariates=covariates,
+        sample_window_start=starts,
+    )
 
 
 def states_table(states: Iterable[ShiftState]) -> pa.Table:
@@ -365,7 +476,12 @@ def resume_or_start(
             f"first window {iso_utc(int(first_window_us))} is not after the state's last window "
             f"{iso_utc(state.window_start_us)}"
         )
-    return copy.deepcopy(state)
+    if state.needs_sample:
+        raise StateMismatchError(
+            f"the state counts {state.sample_count} baseline windows but carries none: attach its "
+            "baseline_sample rows first (attach_sample)"
+        )
+    return copy.deepcopy(state.own_sample())
 
 
 # --------------------------------------------------------------------------------------------
@@ -395,7 +511,28 @@ def indicator_rows_from_table(table: pa.Table) -> List[IndicatorRow]:
 
 
 def replay_states(indicators: pa.Table, config: AssetConfig) -> Tuple[pa.Table, List[Reject]]:
-    """Run the detectors over an indicators table; return the latest state of every series.
+    """Run the detectors over an indicators table; return the latest state of every series
+    (:func:`replay_tables` for every day's state and the baseline sample)."""
+    replayed = replay_tables(indicators, config)
+    return replayed.latest, replayed.rejects
+
+
+class Replay(NamedTuple):
+    """What :func:`replay_tables` returns."""
+
+    #: STATE rows, the last one of each monitored series
+    latest: pa.Table
+    #: STATE rows of every series and day (what a backfill writes into the state table)
+    states: pa.Table
+    #: BASELINE_SAMPLE rows of every series (what a backfill writes into that table)
+    baseline_sample: pa.Table
+    #: findings of the replay (duplicates, failures), as the shifts stage would report them
+    rejects: List[Reject]
+
+
+def replay_tables(indicators: pa.Table, config: AssetConfig) -> Replay:
+    """Run the detectors over an indicators table: the state and baseline-sample rows a backfill
+    would have written, and the latest state of every series.
 
     Parameters
     ----------
@@ -426,13 +563,22 @@ def replay_states(indicators: pa.Table, config: AssetConfig) -> Tuple[pa.Table, 
     for start, found in by_window.items():
         covariates[start], found_rejects = shift_series.covariates_for_window(start, found, config.name)
         rejects.extend(found_rejects)
-    last = []
+    last, every, samples = [], [], []
     for key in sorted(series):
         outcome = shift_series.detect_shifts_for_rows(series[key], covariates, config)
         rejects.extend(outcome.rejects)
+        samples.append(outcome.baseline_sample)
         if outcome.states.num_rows:
             ordered = outcome.states.sort_by([("window_start", "ascending")])
+            every.append(ordered)
             last.append(ordered.slice(ordered.num_rows - 1))
-    if not last:
-        return tables.STATE.empty_table(), rejects
-    return pa.concat_tables(last), rejects
+
+    def joined(pieces, schema):
+        return pa.concat_tables(pieces) if pieces else schema.empty_table()
+
+    return Replay(
+        joined(last, tables.STATE),
+        joined(every, tables.STATE),
+        joined(samples, tables.BASELINE_SAMPLE),
+        rejects,
+    )

@@ -78,6 +78,17 @@ def read_partitions(
     return _fold_files(store, paths, schema, columns, keep, [])
 
 
+def read_file(store, path: str, schema: pa.Schema) -> pa.Table:
+    """One committed partition file, conformed to ``schema`` (columns added to the schema since
+    the file was written come back as nulls, :data:`corrtransforms.tables.ADDED_COLUMNS`)."""
+    return _fold_files(store, [path], schema, None, None, [])
+
+
+def partition_files_before(store, output_dir: str, table: str, asset: str, before: Optional[_dt.date]) -> List[str]:
+    """Paths of the table's committed files of ``asset`` dated before ``before`` (all if None)."""
+    return [path for _, path in _partitions_before(store, output_dir, table, asset, before)]
+
+
 def _selected(schema: pa.Schema, columns: Optional[Sequence[str]]) -> pa.Schema:
     return schema if columns is None else pa.schema([schema.field(name) for name in columns])
 

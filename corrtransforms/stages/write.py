@@ -46,6 +46,7 @@ SCHEMAS = {
     "rejects": tables.REJECTS,
     "shifts": tables.SHIFTS,
     "state": tables.STATE,
+    "baseline_sample": tables.BASELINE_SAMPLE,
 }
 #: rows of one Parquet row group in output files (common practice: tens of thousands of rows)
 ROW_GROUP_ROWS = 50_000
@@ -205,10 +206,14 @@ def to_partitions(table_name: str, element: Any, config: AssetConfig) -> List[Tu
 
 def conform(table: pa.Table, schema: pa.Schema) -> pa.Table:
     """Select and cast ``table``'s columns to ``schema`` (field metadata from the schema)."""
-    missing = [f.name for f in schema if f.name not in table.column_names]
+    missing = [f.name for f in schema if f.name not in table.column_names and f.name not in tables.ADDED_COLUMNS]
     if missing:
         raise ValueError(f"table lacks columns {missing}")
-    return pa.Table.from_arrays([table.column(f.name).cast(f.type) for f in schema], schema=schema)
+    columns = [
+        table.column(f.name).cast(f.type) if f.name in table.column_names else pa.nulls(table.num_rows, f.type)
+        for f in schema
+    ]
+    return pa.Table.from_arrays(columns, schema=schema)
 
 
 # --------------------------------------------------------------------------------------------

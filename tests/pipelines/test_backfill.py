@@ -263,7 +263,16 @@ def test_flags_are_checked_and_help_lists_them(tmp_path):
     status, out, err = _command("pipelines.backfill", "--help")
     assert status == 0 and "apitools" not in err
     flags = [line.split()[0] for line in out.splitlines() if line.startswith("  --")]
-    assert flags == ["--config", "--output", "--start", "--end", "--run_id", "--stale_temporary_hours", "--help"]
+    assert flags == [
+        "--config",
+        "--output",
+        "--start",
+        "--end",
+        "--commit_days",
+        "--run_id",
+        "--stale_temporary_hours",
+        "--help",
+    ]
     assert "exit statuses" in out and "3  nothing to do or nothing usable" in out and "beam.apache.org" in out
     # an unknown flag: status 1 and the nearest known flag (difflib)
     status, _, err = _command("pipelines.backfill", "--config", "x.toml", "--outptu", str(tmp_path))

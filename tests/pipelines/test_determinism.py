@@ -20,7 +20,7 @@ from tests.support.archive_data import bad_wide_archive
 from tests.support.reliability_data import canonical, write_config
 
 RUN_ID = (META_PREFIX + "run_id").encode()
-TABLES = ("correlations", "indicators", "shifts", "state", "rejects")
+TABLES = ("correlations", "indicators", "shifts", "state", "baseline_sample", "rejects")
 
 
 def _files(output):

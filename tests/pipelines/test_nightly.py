@@ -16,12 +16,13 @@ from demo_data import generate
 from pipelines import backfill, nightly
 
 DEMO_DIR = os.path.join(os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__)))), "demo_data")
-TABLES = ("correlations", "indicators", "shifts", "state", "rejects")
+TABLES = ("correlations", "indicators", "shifts", "state", "baseline_sample", "rejects")
 SORT_KEYS = {
     "correlations": ["window_start", "channel_a", "channel_b"],
     "indicators": ["window_start", "subject", "indicator"],
     "shifts": ["window_start", "subject", "indicator"],
     "state": ["window_start", "subject", "indicator"],
+    "baseline_sample": ["window_start", "subject", "indicator"],
     "rejects": ["stage", "source", "subject", "reason", "detail"],
 }
 

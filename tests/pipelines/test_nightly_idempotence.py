@@ -19,7 +19,7 @@ from tests.support.archive_data import T0, US, samples, wide_table, write_files
 from tests.support.reliability_data import CORRELATION_KEY, per_window, read_table, rows_by_key, write_config
 
 DAY = 24 * 3600 * US
-TABLES = ("correlations", "indicators", "shifts", "state", "rejects")
+TABLES = ("correlations", "indicators", "shifts", "state", "baseline_sample", "rejects")
 ROOT = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
 

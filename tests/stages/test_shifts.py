@@ -279,10 +279,10 @@ def test_too_short_baseline_is_a_quality_code_not_an_alarm():
 def _nightly(times, values, stderr, temperature, config, tmp_path):
     """Day by day, each night resuming from the previous night's state read back from Parquet."""
     days = local_days(times, TIMEZONE)
-    state, parts = None, []
+    state, parts, samples = None, [], []
     for number, day in enumerate(np.unique(days)):
         mask = days == day
-        table, day_states = shift_series.detect_shifts(
+        table, day_states, sample = shift_series.detect_shifts_with_sample(
             times[mask],
             values[mask],
             stderr[mask],
@@ -290,6 +290,9 @@ def _nightly(times, values, stderr, temperature, config, tmp_path):
             {"temperature": temperature[mask]},
             config,
             state,
+            baseline_sample=pa.concat_tables(
+                [pq.read_table(p) for p in samples] or [tables.BASELINE_SAMPLE.empty_table()]
+            ),
             subject="deck",
             indicator="mode_freq_hz",
             unit="Hz",
@@ -297,6 +300,11 @@ def _nightly(times, values, stderr, temperature, config, tmp_path):
         path = tmp_path / f"state-{number}.parquet"
         pq.write_table(shift_state.states_table(day_states), path)
         (state,) = shift_state.states_from_table(pq.read_table(path))
+        # the state row stays the same size while the baseline grows: the sample is in its own table
+        sampled = sum(pq.read_metadata(p).num_rows for p in samples) + sample.num_rows
+        assert not state.sample_value and state.sample_count == (sampled if state.phase == "accumulating" else 0)
+        samples.append(tmp_path / f"sample-{number}.parquet")
+        pq.write_table(sample, samples[-1])
         parts.append(table)
     return pa.concat_tables(parts), state
 
@@ -353,11 +361,18 @@ def test_state_round_trip_through_parquet_while_accumulating_and_fitted(tmp_path
     back = shift_state.states_from_table(read)
     for original, restored in zip(states, back):
         assert same(original.to_row(), restored.to_row())
-        assert same(dataclass_tuple(original), dataclass_tuple(restored))
-    assert back[3].sample_value == states[3].sample_value and len(back[3].sample_value) == 4 * 12
+        assert same(dataclass_tuple(original, sample=False), dataclass_tuple(restored, sample=False))
+    # the row carries the count only; the windows come back from the baseline_sample table
+    assert back[3].sample_count == 4 * 12 and not back[3].sample_value and back[3].needs_sample
+    rows = shift_state.sample_rows(states[3])
+    pq.write_table(shift_state.sample_table(rows, "Hz"), tmp_path / "sample.parquet")
+    attached = shift_state.attach_sample(back[3], pq.read_table(tmp_path / "sample.parquet").to_pylist())
+    assert same(dataclass_tuple(attached), dataclass_tuple(states[3].own_sample()))
+    with pytest.raises(shift_state.StateMismatchError, match="baseline_sample"):
+        shift_state.attach_sample(back[3], rows[:-1])
 
 
-def dataclass_tuple(state):
+def dataclass_tuple(state, sample=True):
     import dataclasses
 
     return [
@@ -365,6 +380,7 @@ def dataclass_tuple(state):
         if f.name != "model"
         else (None if state.model is None else list(dataclasses.astuple(state.model)))
         for f in dataclasses.fields(state)
+        if sample or not f.name.startswith("sample_") or f.name == "sample_count"
     ]
 
 
@@ -405,7 +421,13 @@ def test_rows_interface_rejects_duplicates_and_windows_before_the_state():
     again = shift_series.detect_shifts_for_rows(rows[:12], covariates, config, first_day.states.to_pylist())
     assert again.shifts.num_rows == 0
     assert {r.reason for r in again.rejects} == {"window_before_state"} and len(again.rejects) == 12
-    resumed = shift_series.detect_shifts_for_rows(rows[12:], covariates, config, first_day.states)
+    # the baseline still accumulates after day 1: its sample comes from the baseline_sample rows
+    assert first_day.baseline_sample.num_rows == 12 and first_day.states.column("sample_count").to_pylist() == [12]
+    lost = shift_series.detect_shifts_for_rows(rows[12:], covariates, config, first_day.states)
+    assert lost.shifts.num_rows == 0 and [r.reason for r in lost.rejects] == ["baseline_sample_incomplete"]
+    resumed = shift_series.detect_shifts_for_rows(
+        rows[12:], covariates, config, first_day.states, baseline_sample=first_day.baseline_sample
+    )
     full = shift_series.detect_shifts_for_rows(rows, covariates, config)
     assert_tables_identical(resumed.shifts, full.shifts.slice(12))
     mismatch = shift_series.detect_shifts_for_rows(rows[12:], covariates, make_config("none"), first_day.states)
