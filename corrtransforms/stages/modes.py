@@ -30,7 +30,8 @@ future work (docs/modes.md).
 
 Settings chosen here (measured by ``benchmarks/bench_multichannel_modes.py --stage``):
 ``block_columns = ceil(MAX_ORDER / n_references) + 1`` (the fewest that hold every model order
-of the default range, plus one) and a lag stride that keeps the strided grid's Nyquist frequency
+of the default range, plus one), block rows spanning a period of the band's low edge, capped by
+the lags (:func:`mode_block_rows`), and a lag stride that keeps the strided grid's Nyquist frequency
 at least :data:`NYQUIST_FACTOR` times the band's top.
 """
 
@@ -56,6 +57,7 @@ from corrtransforms.numerics.multichannel_modes import (
     MAX_ORDER,
     IdentifiedModes,
     correlation_sequence,
+    default_block_rows,
     identify_modes,
     search_band,
 )
@@ -72,6 +74,7 @@ NYQUIST_FACTOR = 5.0
 QUALITY_CODES = {
     "mode_channel_unusable": "a channel of the mode is missing, flat or too sparse in this window",
     "mode_identification_failed": "the identification raised on this window's correlations (too few lags, singular)",
+    "mode_max_lag_short": "[correlation] max_lag_s holds too few lags for the Hankel matrix of this band",
     "no_reference_shape": "the entry has no reference_shape, so mode_mac is NaN",
 }
 
@@ -84,6 +87,14 @@ def mode_lag_stride(fs: float, high_hz: float) -> int:
 def mode_block_columns(n_references: int) -> int:
     """Block columns of the Hankel matrix: ``ceil(MAX_ORDER / n_references) + 1``."""
     return int(np.ceil(MAX_ORDER / max(n_references, 1))) + 1
+
+
+def mode_block_rows(fs: float, low_hz: float, n_references: int, stride: int, columns: int, n_lags: int) -> int:
+    """Block rows: :func:`~corrtransforms.numerics.multichannel_modes.default_block_rows` (a period
+    of the band's low edge, room for the orders), capped by the lags ``[correlation] max_lag_s``
+    gives (``rows + columns`` strided lags after lag 0)."""
+    wanted = default_block_rows(fs, low_hz, n_references, MAX_ORDER, stride)
+    return max(2, min(wanted, (n_lags - 1) // stride - columns))
 
 
 def _groups(config: AssetConfig) -> Dict[Tuple[Tuple[str, ...], Tuple[str, ...]], List[ModeConfig]]:
@@ -163,10 +174,11 @@ def _group_modes(block, config, channels, references, entries: List[ModeConfig])
     if not np.all(np.isfinite(sequence)):
         return [_empty(e, ["nonfinite_correlation"]) for e in entries]
     union = (min(e.band_hz[0] for e in entries), max(e.band_hz[1] for e in entries))
-    found = identify_modes(
-        sequence, fs, union, lag_stride=mode_lag_stride(fs, search_band(union)[1]),
-        block_columns=mode_block_columns(len(references)),
-    )  # fmt: skip
+    stride, columns = mode_lag_stride(fs, search_band(union)[1]), mode_block_columns(len(references))
+    if (sequence.shape[0] - 1) // stride < columns + 2:
+        return [_empty(e, ["mode_max_lag_short"]) for e in entries]
+    rows = mode_block_rows(fs, search_band(union)[0], len(references), stride, columns, sequence.shape[0])
+    found = identify_modes(sequence, fs, union, block_rows=rows, lag_stride=stride, block_columns=columns)
     bands = np.array([search_band(e.band_hz) for e in entries])
     centres = np.array([0.5 * (e.band_hz[0] + e.band_hz[1]) for e in entries])
     reference_shapes = _reference_shapes(entries, found, bands, centres)
