@@ -2,6 +2,7 @@
 
     python -m benchmarks.bench_multichannel_modes                # --compare and --timing
     python -m benchmarks.bench_multichannel_modes --coverage     # 400 windows, a few minutes
+    python -m benchmarks.bench_multichannel_modes --stage        # the correlate stage without / with a mode
 
 Prints tables; asserts nothing. Small dense SVDs are slow under a multithreaded BLAS on a busy
 machine: run with ``OPENBLAS_NUM_THREADS=1`` (workers parallelise over windows anyway).
@@ -156,15 +157,72 @@ def coverage(n_windows: int, seed: int) -> None:
         print(f"{name:16s} {inside:8.3f} {np.mean(z_arr[:, k]):8.2f} {np.std(z_arr[:, k]):6.2f} {rms:10.2f}")
 
 
+def _stage_config(channels, fs, max_lag_s, band, modes):
+    from corrtransforms.config import parse_config
+
+    entries = [{"name": "m", "channels": list(channels), "band_hz": list(band)}] if modes else []
+    return parse_config(
+        {
+            "asset": {"name": "bench"},
+            "archive": {"path": "unused", "sample_rate_hz": fs},
+            "channels": {"names": list(channels)},
+            "windows": {"length_s": 600.0},
+            "correlation": {"max_lag_s": max_lag_s},
+            "modes": entries,
+        }
+    )
+
+
+def stage_cost(repeats: int, seed: int) -> None:
+    """The correlate stage (analyse_window: screening, all pairs) of one window without and with
+    one multi-channel [[modes]] entry over every channel: the settings of stages/modes."""
+    from corrtransforms.records import WindowBlock
+    from corrtransforms.stages.analyse import analyse_window
+
+    cases = [
+        ("3 channels, 20 Hz, 300 s, max_lag 2 s, band 1.7-3.3 Hz", 3, 20.0, 300, 2.0, (1.7, 3.3)),
+        ("5 channels, 25 Hz, 600 s, max_lag 30 s, band 2.0-2.9 Hz", 5, 25.0, 600, 30.0, (2.0, 2.9)),
+        ("8 channels, 50 Hz, 600 s, max_lag 6 s, band 0.45-1.9 Hz", 8, 50.0, 600, 6.0, (0.45, 1.9)),
+    ]
+    print("\nCorrelate stage per window without / with one multi-channel mode (ms, median of", repeats, ")")
+    print(f"{'case':58s} {'without':>8s} {'with':>8s} {'ratio':>6s}  mode found (Hz)")
+    for label, c, fs, seconds, max_lag_s, band in cases:
+        A, B = chain_system([1.0] * c, [400.0] * c, [2.0] + [0.6] * (c - 2) + [1.2])
+        record = simulate_records(A, B, fs, int(seconds * fs), np.random.default_rng(seed), 1, c)[0]
+        names = tuple(f"ch{k}" for k in range(c))
+        block = WindowBlock("bench", 0, float(seconds), fs, names, record, np.ones(record.shape, bool), {}, {})
+        times, found = [], None
+        for modes in (False, True):
+            config = _stage_config(names, fs, max_lag_s, band, modes)
+            runs = []
+            for _ in range(repeats):
+                start = time.perf_counter()
+                result, _ = analyse_window(block, config)
+                runs.append(time.perf_counter() - start)
+            times.append(np.median(runs))
+            if modes and result is not None:
+                found = result.multichannel_modes[0].freq_hz
+        truth = true_modes(A).freq_hz
+        inside = truth[(truth > band[0]) & (truth < band[1])].round(3)
+        print(
+            f"{label:58s} {1e3 * times[0]:8.1f} {1e3 * times[1]:8.1f} {times[1] / times[0]:6.2f}"
+            f"  {found:.3f} (true in band {inside})"
+        )
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--coverage", action="store_true", help="run the Monte Carlo calibration only")
+    parser.add_argument("--stage", action="store_true", help="the correlate stage without / with a mode only")
     parser.add_argument("--windows", type=int, default=None)
     parser.add_argument("--repeats", type=int, default=5)
     parser.add_argument("--seed", type=int, default=1)
     args = parser.parse_args()
     if args.coverage:
         coverage(args.windows or 400, args.seed)
+        return
+    if args.stage:
+        stage_cost(args.repeats, args.seed)
         return
     compare_methods(args.windows or 40, args.seed)
     timing(args.repeats, args.seed)

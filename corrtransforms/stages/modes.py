@@ -14,8 +14,9 @@ correlations table (a mode needs its pairs whether or not the user wants to stor
 them would change the correlations table behind the user's back). The sub-records are the
 overlap-save blocks of :func:`~corrtransforms.numerics.correlation.channel_spectra` with
 ``segment_length = ceil(n / SUB_RECORDS)``; the window's own matrix is the count-corrected
-``sum S / sum N`` (:func:`~corrtransforms.numerics.mode_uncertainty.window_sequence`), lags up to
-``[correlation] max_lag_s``.
+``sum S / sum N`` (:func:`~corrtransforms.numerics.mode_uncertainty.window_sequence`), at the lags
+the Hankel matrix uses only (``(1 + rows + columns) * stride``, at most ``[correlation]
+max_lag_s``).
 
 Tracking (the rule of this version; no state across windows). Entries with the same channels
 and reference channels share one identification over the union of their bands. Each entry's
@@ -144,7 +145,7 @@ def window_multichannel_modes(block: WindowBlock, config: AssetConfig, usable=No
     return [results[m.name] for m in config.modes if m.is_multichannel]
 
 
-def _lag_arrays(block: WindowBlock, config: AssetConfig, channels, references):
+def _lag_arrays(block: WindowBlock, config: AssetConfig, channels, references, max_lag: int):
     """Per sub-record lag sums and pair counts as ``(K, n_lags, n_outputs, n_references)``."""
     names = tuple(block.channels)
     columns = [names.index(c) for c in channels]
@@ -153,7 +154,7 @@ def _lag_arrays(block: WindowBlock, config: AssetConfig, channels, references):
     n = values.shape[0]
     cc = config.correlation
     spectra = channel_spectra(
-        values, block.sample_rate_hz, cc.max_lag_s, valid=valid, detrend=cc.detrend,
+        values, block.sample_rate_hz, max_lag / block.sample_rate_hz, valid=valid, detrend=cc.detrend,
         segment_length=-(-n // SUB_RECORDS),
     )  # fmt: skip
     pairs = resolve_pairs("all", len(channels))
@@ -169,15 +170,17 @@ def _lag_arrays(block: WindowBlock, config: AssetConfig, channels, references):
 def _group_modes(block, config, channels, references, entries: List[ModeConfig]) -> List[MultichannelMode]:
     """Identify once for entries sharing channels, assign poles, attach jackknife stderrs."""
     fs = float(block.sample_rate_hz)
-    S, N = _lag_arrays(block, config, channels, references)
+    union = (min(e.band_hz[0] for e in entries), max(e.band_hz[1] for e in entries))
+    stride, columns = mode_lag_stride(fs, search_band(union)[1]), mode_block_columns(len(references))
+    configured_lags = int(round(config.correlation.max_lag_s * fs))
+    if configured_lags // stride < columns + 2:
+        return [_empty(e, ["mode_max_lag_short"]) for e in entries]
+    rows = mode_block_rows(fs, search_band(union)[0], len(references), stride, columns, configured_lags + 1)
+    # only the lags the Hankel matrix uses: (1 + rows + columns) strided lags, within max_lag_s
+    S, N = _lag_arrays(block, config, channels, references, min(configured_lags, (1 + rows + columns) * stride))
     sequence = window_sequence(S, N)
     if not np.all(np.isfinite(sequence)):
         return [_empty(e, ["nonfinite_correlation"]) for e in entries]
-    union = (min(e.band_hz[0] for e in entries), max(e.band_hz[1] for e in entries))
-    stride, columns = mode_lag_stride(fs, search_band(union)[1]), mode_block_columns(len(references))
-    if (sequence.shape[0] - 1) // stride < columns + 2:
-        return [_empty(e, ["mode_max_lag_short"]) for e in entries]
-    rows = mode_block_rows(fs, search_band(union)[0], len(references), stride, columns, sequence.shape[0])
     found = identify_modes(sequence, fs, union, block_rows=rows, lag_stride=stride, block_columns=columns)
     bands = np.array([search_band(e.band_hz) for e in entries])
     centres = np.array([0.5 * (e.band_hz[0] + e.band_hz[1]) for e in entries])
