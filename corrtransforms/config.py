@@ -17,6 +17,7 @@ import datetime as _dt
 import hashlib
 import json
 import logging
+import math
 import os
 import re
 import sys
@@ -47,6 +48,7 @@ INDICATOR_NAMES = (
     "decay_time_s",
     "mode_freq_hz",
     "mode_damping",
+    "mode_mac",
     "lag_s",
     "peak_coef",
     "stationarity_p",
@@ -124,9 +126,23 @@ class CorrelationConfig:
 
 @dataclasses.dataclass(frozen=True)
 class ModeConfig:
+    """One ``[[modes]]`` entry: a single-channel mode (``channel``) or a multi-channel one
+    (``channels``, identified from their correlation matrix; ``channel`` is then "")."""
+
     name: str
     channel: str
     band_hz: Tuple[float, float]
+    #: two or more channels of a multi-channel mode (empty for a single-channel mode)
+    channels: Tuple[str, ...] = ()
+    #: the reference channels of the identification (default: all of ``channels``)
+    reference_channels: Tuple[str, ...] = ()
+    #: the reference shape that mode_mac compares with, one real component per channel
+    #: (empty: mode_mac is NaN with the quality code "no_reference_shape")
+    reference_shape: Tuple[float, ...] = ()
+
+    @property
+    def is_multichannel(self) -> bool:
+        return bool(self.channels)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -244,7 +260,7 @@ _KNOWN = {
     "channels": {"names", "covariates", "units"},
     "windows": {"length_s", "hop_s", "min_coverage", "align", "offset_s", "record_gap_s"},
     "correlation": {"max_lag_s", "pairs", "estimator", "detrend", "weighting", "target_rel_error", "storage"},
-    "modes": {"name", "channel", "band_hz"},
+    "modes": {"name", "channel", "channels", "reference_channels", "reference_shape", "band_hz"},
     "baseline": {"start", "end", "windows", "min_windows"},
     "screening": {"enabled", "segments", "alpha", "action"},
     "shifts": {"detector", "cusum_k", "cusum_h", "ewma_lambda", "ewma_L", "compensate", "indicators"},
@@ -601,10 +617,24 @@ def _parse_mode(i: int, m: Any, archive: ArchiveConfig, channels: ChannelsConfig
             "is not a known key; known keys: " + ", ".join(sorted(_KNOWN["modes"])),
         )
     mname = _string(f"{where} name", m.get("name"), CHANNEL_NAME_PATTERN, "a name (no ':')")
-    mchan = _string(f"{where} channel", m.get("channel"), CHANNEL_NAME_PATTERN, "a channel name")
-    if channels.names is not None and mchan not in channels.names:
-        raise ConfigError(f"{where} channel", mchan, "must be one of [channels] names")
-    band = m.get("band_hz")
+    band = _mode_band(where, m.get("band_hz"), archive)
+    if ("channel" in m) == ("channels" in m):
+        raise ConfigError(
+            f"{where} channel / channels",
+            {k: m[k] for k in ("channel", "channels") if k in m},
+            "give exactly one: channel (one channel) or channels (a list of two or more)",
+        )
+    if "channel" in m:
+        for key in ("reference_channels", "reference_shape"):
+            if key in m:
+                raise ConfigError(f"{where} {key}", m[key], "is allowed only with channels = [...], not with channel")
+        mchan = _string(f"{where} channel", m.get("channel"), CHANNEL_NAME_PATTERN, "a channel name")
+        _configured_channel(f"{where} channel", mchan, channels)
+        return ModeConfig(mname, mchan, band)
+    return _multichannel_mode(where, mname, band, m, channels)
+
+
+def _mode_band(where: str, band: Any, archive: ArchiveConfig) -> Tuple[float, float]:
     if (
         not isinstance(band, list)
         or len(band) != 2
@@ -615,7 +645,47 @@ def _parse_mode(i: int, m: Any, archive: ArchiveConfig, channels: ChannelsConfig
     nyquist = archive.sample_rate_hz / 2
     if band[1] >= nyquist:
         raise ConfigError(f"{where} band_hz", band, f"must lie below the Nyquist frequency ({nyquist} Hz)")
-    return ModeConfig(mname, mchan, (float(band[0]), float(band[1])))
+    return float(band[0]), float(band[1])
+
+
+def _configured_channel(key: str, name: str, channels: ChannelsConfig) -> None:
+    if channels.names is not None and name not in channels.names:
+        raise ConfigError(key, name, "must be one of [channels] names: " + ", ".join(channels.names))
+
+
+def _multichannel_mode(where: str, mname: str, band, m: Mapping[str, Any], channels: ChannelsConfig) -> ModeConfig:
+    """``channels`` (two or more), ``reference_channels`` (a subset) and ``reference_shape``."""
+    listed = _string_list(f"{where} channels", m["channels"])
+    if len(listed) < 2:
+        raise ConfigError(f"{where} channels", m["channels"], "must list two or more channels (one: use channel)")
+    for name in listed:
+        _configured_channel(f"{where} channels", name, channels)
+    references = listed
+    if "reference_channels" in m:
+        references = _string_list(f"{where} reference_channels", m["reference_channels"])
+        outside = [r for r in references if r not in listed]
+        if not references or outside:
+            raise ConfigError(
+                f"{where} reference_channels",
+                m["reference_channels"],
+                "must be a non-empty subset of the entry's channels: " + ", ".join(listed),
+            )
+    shape: Tuple[float, ...] = ()
+    if "reference_shape" in m:
+        raw = m["reference_shape"]
+        if (
+            not isinstance(raw, list)
+            or len(raw) != len(listed)
+            or not all(isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v) for v in raw)
+            or not any(v != 0 for v in raw)
+        ):
+            raise ConfigError(
+                f"{where} reference_shape",
+                raw,
+                f"must be {len(listed)} finite real numbers (one per channel, in the order of channels), not all 0",
+            )
+        shape = tuple(float(v) for v in raw)
+    return ModeConfig(mname, "", band, channels=listed, reference_channels=references, reference_shape=shape)
 
 
 def _parse_baseline(raw: Mapping[str, Any]) -> BaselineConfig:

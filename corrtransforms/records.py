@@ -159,6 +159,30 @@ class ModeCorrelation:
 
 
 @dataclasses.dataclass
+class MultichannelMode:
+    """A multi-channel mode identified in one window (:mod:`corrtransforms.stages.modes`).
+
+    ``shape`` is normalised so component ``reference_index`` is ``1 + 0j`` (the largest component
+    of the configured reference shape, or of the window's shape without one); ``mac`` compares it
+    with the configured reference shape (NaN without one). Values are NaN when no pole was found.
+    """
+
+    mode: str
+    channels: Tuple[str, ...]
+    freq_hz: float
+    freq_stderr_hz: float
+    damping: float
+    damping_stderr: float
+    mac: float
+    mac_stderr: float
+    shape: np.ndarray
+    shape_stderr_real: np.ndarray
+    shape_stderr_imag: np.ndarray
+    reference_index: int
+    quality: Tuple[str, ...] = ()
+
+
+@dataclasses.dataclass
 class WindowCorrelation:
     """All correlation results of one window, plus what indicators and screening need."""
 
@@ -173,6 +197,8 @@ class WindowCorrelation:
     rms_stderr: Mapping[str, float]
     pairs: Tuple[PairCorrelation, ...]
     modes: Tuple[ModeCorrelation, ...] = ()
+    #: multi-channel modes identified in the window (one per such [[modes]] entry)
+    multichannel_modes: Tuple[MultichannelMode, ...] = ()
     covariates: Mapping[str, float] = dataclasses.field(default_factory=dict)
     #: quality codes per subject (channel, "a:b" pair or mode name) added by later stages,
     #: e.g. screening's "nonstationary"

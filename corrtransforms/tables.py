@@ -76,7 +76,8 @@ INDICATORS = pa.schema(
             "indicator",
             pa.string(),
             "",
-            "rms, corr_time_s, decay_time_s, mode_freq_hz, mode_damping, lag_s, peak_coef, stationarity_p, ...",
+            "rms, corr_time_s, decay_time_s, mode_freq_hz, mode_damping, mode_mac, lag_s, peak_coef, "
+            "stationarity_p, ...",
             nullable=False,
         ),
         _f("value", pa.float64(), "see unit column", "indicator value"),
@@ -98,7 +99,24 @@ REJECTS = pa.schema(
     ]
 )
 
-ALL_TABLES = ("correlations", "indicators", "shifts", "rejects", "state", "baseline_sample")
+MODE_SHAPES = pa.schema(
+    [
+        _f("window_start", TIMESTAMP, "", "window start", nullable=False),
+        _f("mode", pa.string(), "", "name of the multi-channel [[modes]] entry", nullable=False),
+        _f("channel", pa.string(), "", "channel of the shape component", nullable=False),
+        _f("shape_real", pa.float64(), "", "real part of the component; 1 at the reference component"),
+        _f("shape_imag", pa.float64(), "", "imaginary part of the component; 0 at the reference component"),
+        _f(
+            "stderr",
+            pa.float64(),
+            "",
+            "jackknife standard error of the complex component: sqrt(se_real^2 + se_imag^2)",
+        ),
+        _f("quality", pa.string(), "", "'ok' or ';'-separated quality codes of the mode in this window"),
+    ]
+)
+
+ALL_TABLES = ("correlations", "indicators", "shifts", "rejects", "state", "baseline_sample", "mode_shapes")
 
 # Shift detection (corrtransforms.stages.shifts): one SHIFTS row per monitored indicator row,
 # one STATE row per (subject, indicator) and local day, EPISODES summarises alarm episodes.

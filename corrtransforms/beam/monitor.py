@@ -3,7 +3,8 @@
 ``pipeline | MonitorAsset(config, output_dir, run_id, start, end, initial_states)`` plans reads
 from the archive's footers, reads every window once, screens and correlates it, computes the
 indicators, runs the shift detectors and writes the tables (correlations, indicators, shifts,
-state, baseline_sample, rejects) into their partitions. The launchers in ``pipelines/`` are thin
+state, baseline_sample, mode_shapes, rejects) into their partitions. The launchers in
+``pipelines/`` are thin
 on top.
 """
 
@@ -87,6 +88,12 @@ class _ProgressFn(beam.DoFn):
         self._pending = 0
 
 
+def _mode_shape_table(wc):
+    from corrtransforms.stages.modes import mode_shape_table
+
+    return mode_shape_table([wc])
+
+
 def _indicator_table(rows):
     from corrtransforms.stages.indicators import indicator_table
 
@@ -121,7 +128,7 @@ class MonitorAsset(beam.PTransform):
     dict of PCollection
         ``"commits"`` (the commit results), and the intermediate collections ``"tasks"``,
         ``"blocks"``, ``"correlations"``, ``"indicators"``, ``"shifts"``, ``"state"``,
-        ``"rejects"`` for callers that add their own steps.
+        ``"mode_shapes"`` (pyarrow tables), ``"rejects"`` for callers that add their own steps.
     """
 
     def __init__(
@@ -168,6 +175,11 @@ class MonitorAsset(beam.PTransform):
             | "Batch indicator rows" >> beam.BatchElements(min_batch_size=1000, max_batch_size=INDICATOR_BATCH)
             | "Indicator tables" >> beam.Map(_indicator_table)
         )
+        mode_shapes = (
+            correlated["correlations"]
+            | "Windows with multi-channel modes" >> beam.Filter(lambda wc: bool(wc.multichannel_modes))
+            | "Mode shape tables" >> beam.Map(_mode_shape_table)
+        )
         rejects = (
             plan["rejects"],
             read["rejects"],
@@ -181,6 +193,7 @@ class MonitorAsset(beam.PTransform):
             "shifts": shifts["shifts"],
             "state": shifts["state"],
             "baseline_sample": shifts["baseline_sample"],
+            "mode_shapes": mode_shapes,
             "rejects": rejects,
         }
         commits = tables | "Write tables" >> WriteTables(self._output, config, self._run_id, days=plan["days"])
@@ -192,5 +205,6 @@ class MonitorAsset(beam.PTransform):
             "indicators": indicators["indicators"],
             "shifts": shifts["shifts"],
             "state": shifts["state"],
+            "mode_shapes": mode_shapes,
             "rejects": rejects,
         }

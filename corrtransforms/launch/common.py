@@ -467,7 +467,7 @@ def summary(counters: Dict[str, int]) -> str:
         f"rows written: "
         + ", ".join(
             f"{t} {counters.get('rows_written_' + t, 0)}"
-            for t in ("correlations", "indicators", "shifts", "state", "baseline_sample", "rejects")
+            for t in ("correlations", "indicators", "shifts", "state", "baseline_sample", "mode_shapes", "rejects")
         )
         + "; "
         f"files committed {counters.get('files_committed', 0)}, stale removed {counters.get('stale_files_removed', 0)}"

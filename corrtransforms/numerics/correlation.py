@@ -805,3 +805,51 @@ def correlate_block(
     return correlate_spectra(
         spectra, pairs, estimator=estimator, band_hz=band_hz, weighting=weighting, min_pairs=min_pairs
     )
+
+
+def block_lag_sums(spectra: ChannelSpectra, pairs: PairSpec = "all") -> Tuple[np.ndarray, np.ndarray]:
+    """Lag sums and pair counts of every overlap-save block separately (the window's sub-records).
+
+    Parameters
+    ----------
+    spectra : ChannelSpectra
+        From :func:`channel_spectra`; its ``segment_length`` sets the sub-records (blocks
+        ``[iS, iS + S)``).
+    pairs : {"all", "auto"} or sequence of (int, int)
+        See :func:`resolve_pairs`.
+
+    Returns
+    -------
+    sums : ndarray, shape (n_pairs, n_segments, 2L + 1)
+        ``S_ab,i(k) = sum_{t in block i} x_a(t) x_b(t + k)`` for ``k = -L..L``; ``t + k`` may
+        leave the block (the extended block supplies it), so the blocks' sums add up to the
+        window's lag sums exactly.
+    counts : ndarray of int, same shape
+        Valid sample pairs ``(a(t), b(t + k))`` with ``t`` in block i.
+
+    Notes
+    -----
+    The per-block terms of the overlap-save identity of :func:`channel_spectra`,
+    ``IDFT(conj(U_a,i) V_b,i)[k + L]``, before they are summed over ``i``. Sub-record estimates
+    of this kind feed resampling variance estimates (the delete-one-block jackknife of a
+    window's modal parameters).
+    """
+    pair_list = resolve_pairs(pairs, spectra.n_channels)
+    L, Q, S, n = spectra.max_lag, spectra.segment_fft_length, spectra.segment_length, spectra.n_samples
+    K = spectra.n_segments
+    sums = np.empty((len(pair_list), K, 2 * L + 1))
+    counts = np.empty((len(pair_list), K, 2 * L + 1), dtype=np.int64)
+    lags = np.arange(-L, L + 1)
+    start = np.arange(K)[:, None] * S
+    stop = np.minimum(start + S, n)
+    complete_counts = np.maximum(0, np.minimum(stop, n - lags) - np.maximum(start, -lags))
+    for p, (a, b) in enumerate(pair_list):
+        products = np.conj(spectra.segment_spectra[a]) * spectra.extended_spectra[b]
+        sums[p] = scipy.fft.irfft(products, n=Q, axis=-1)[:, : 2 * L + 1]
+        if spectra.complete:
+            counts[p] = complete_counts
+        else:
+            assert spectra.mask_segment_spectra is not None and spectra.mask_extended_spectra is not None
+            mask_products = np.conj(spectra.mask_segment_spectra[a]) * spectra.mask_extended_spectra[b]
+            counts[p] = np.maximum(np.rint(scipy.fft.irfft(mask_products, n=Q, axis=-1)[:, : 2 * L + 1]), 0)
+    return sums, counts

@@ -8,7 +8,8 @@ merges the screening's findings into the result:
   "not screened" codes); an auto pair takes its channel's codes, a cross pair ``"a:b"`` the pair's
   (which already include either channel's flag);
 - ``subject_quality`` carries the same codes for the indicators stage, and every mode takes the
-  codes of its channel, so a mode fitted on a flagged record is flagged too;
+  codes of its channel (each of its channels for a multi-channel mode), so a mode fitted on a
+  flagged record is flagged too;
 - the ``stationarity_p`` rows become ``extra_indicators``.
 
 With ``[screening] action = "exclude"`` a flagged window yields no result, only its
@@ -60,8 +61,9 @@ def analyse_window(block: WindowBlock, config: AssetConfig) -> Tuple[Optional[Wi
     for subject, found in codes.items():
         subject_quality[subject] = subject_quality.get(subject, ()) + found
     for mode in config.modes:
-        if codes.get(mode.channel):
-            subject_quality[mode.name] = subject_quality.get(mode.name, ()) + codes[mode.channel]
+        for channel in mode.channels or (mode.channel,):
+            if codes.get(channel):
+                subject_quality[mode.name] = subject_quality.get(mode.name, ()) + codes[channel]
     return dataclasses.replace(
         result,
         pairs=pairs,

@@ -2,7 +2,8 @@
 :class:`~corrtransforms.records.WindowCorrelation` out, and the correlations table.
 
 :func:`correlate_window` transforms each channel once, then forms every configured pair, every
-configured mode's band-limited auto-correlation and (for cross pairs, when configured) the
+configured single-channel mode's band-limited auto-correlation, the multi-channel modes
+(:mod:`corrtransforms.stages.modes`, from their own sub-record lag sums) and (for cross pairs, when configured) the
 weighted generalised cross-correlation, and attaches the record-length error metadata of
 :mod:`corrtransforms.numerics.random_error`. :func:`correlation_table` turns a batch of results into an
 Arrow table with exactly the :data:`corrtransforms.tables.CORRELATIONS` schema.
@@ -25,6 +26,7 @@ from corrtransforms.numerics.correlation import DEFAULT_MIN_PAIRS, channel_spect
 from corrtransforms.numerics.spectra import lag_window_psd, strongest_tone
 from corrtransforms.numerics.timescales import integral_time_scale
 from corrtransforms.records import ModeCorrelation, PairCorrelation, WindowBlock, WindowCorrelation, quality_text
+from corrtransforms.stages.modes import window_multichannel_modes
 from corrtransforms.tables import CORRELATIONS, TIMESTAMP
 
 #: |rho| above this in the last 10 % of lags flags "max_lag_short" (common practice)
@@ -119,6 +121,7 @@ def correlate_window(block: WindowBlock, config: AssetConfig, min_pairs: int = D
                 spectra, est, channels, requested, needed, names, channel_codes, cc, min_pairs
             )
         modes_out = _mode_correlations(spectra, config, names, usable, channel_codes, min_pairs)
+    multichannel = window_multichannel_modes(block, config, usable)
     return WindowCorrelation(
         asset=block.asset,
         window_start_us=int(block.window_start_us),
@@ -129,6 +132,7 @@ def correlate_window(block: WindowBlock, config: AssetConfig, min_pairs: int = D
         rms_stderr={} if channels is None else {names[i]: channels.rms_stderr[i] for i in used},
         pairs=tuple(pairs_out),
         modes=tuple(modes_out),
+        multichannel_modes=tuple(multichannel),
         covariates=dict(block.covariates),
         subject_quality={name: codes for name, codes in channel_codes.items() if codes},
     )
@@ -283,6 +287,8 @@ def _mode_correlations(
     fs, L = spectra.sample_rate_hz, spectra.max_lag
     out = []
     for mode in config.modes:
+        if mode.is_multichannel:
+            continue  # identified by corrtransforms.stages.modes
         if mode.channel not in names or not usable[names.index(mode.channel)]:
             continue  # the reader has emitted a reject for this channel
         c = names.index(mode.channel)

@@ -11,6 +11,9 @@ indicator                 subject     from
 ``decay_time_s``          channel     :func:`~corrtransforms.numerics.timescales.decay_time_s`
 ``mode_freq_hz``          mode name   :func:`~corrtransforms.numerics.modal_fit.fit_mode`
 ``mode_damping``          mode name   :func:`~corrtransforms.numerics.modal_fit.fit_mode`
+``mode_freq_hz``,         mode name   ``wc.multichannel_modes`` (multi-channel entries,
+``mode_damping``,                     :mod:`corrtransforms.stages.modes`)
+``mode_mac``
 ``lag_s``                 ``a:b``     :func:`~corrtransforms.numerics.time_delay.estimate_lags`
 ``peak_coef``             ``a:b``     :func:`~corrtransforms.numerics.time_delay.estimate_lags`
 ``covariate_mean``        covariate   ``wc.covariates`` (stderr NaN)
@@ -35,7 +38,14 @@ from corrtransforms.config import AssetConfig
 from corrtransforms.numerics.modal_fit import fit_mode
 from corrtransforms.numerics.time_delay import LagEstimate, estimate_lag, estimate_lags
 from corrtransforms.numerics.timescales import corr_time_s, decay_time_s
-from corrtransforms.records import IndicatorRow, ModeCorrelation, PairCorrelation, WindowCorrelation, quality_text
+from corrtransforms.records import (
+    IndicatorRow,
+    ModeCorrelation,
+    MultichannelMode,
+    PairCorrelation,
+    WindowCorrelation,
+    quality_text,
+)
 
 #: quality codes added here (code -> meaning); the computations add their own
 QUALITY_CODES = {
@@ -144,6 +154,21 @@ def _mode_rows(wc: WindowCorrelation, mode_name: str, channel: str, band_hz, com
         IndicatorRow(
             start, mode_name, "mode_damping", _finite_or_nan(fit.damping), _finite_or_nan(fit.damping_stderr), "", codes
         ),
+    ]
+
+
+def _multichannel_rows(wc: WindowCorrelation, found: MultichannelMode, common) -> List[IndicatorRow]:
+    """mode_freq_hz, mode_damping and mode_mac of one multi-channel mode."""
+    codes = quality_text(tuple(found.quality) + common(found.mode))
+    start = wc.window_start_us
+    values = (
+        ("mode_freq_hz", found.freq_hz, found.freq_stderr_hz, "Hz"),
+        ("mode_damping", found.damping, found.damping_stderr, ""),
+        ("mode_mac", found.mac, found.mac_stderr, ""),
+    )
+    return [
+        IndicatorRow(start, found.mode, name, _finite_or_nan(v), _finite_or_nan(se), unit, codes)
+        for name, v, se, unit in values
     ]
 
 
@@ -306,7 +331,10 @@ def window_indicators_and_failures(
     for channel in wc.channels:
         attempt(channel, functools.partial(_channel_rows, wc, config, channel, common))
     for mode in config.modes:
-        attempt(mode.name, functools.partial(_mode_rows, wc, mode.name, mode.channel, mode.band_hz, common))
+        if not mode.is_multichannel:
+            attempt(mode.name, functools.partial(_mode_rows, wc, mode.name, mode.channel, mode.band_hz, common))
+    for found in wc.multichannel_modes:
+        attempt(found.mode, functools.partial(_multichannel_rows, wc, found, common))
     cross = [pair for pair in wc.pairs if not pair.is_auto]
     batched = _batched_lag_estimates(wc, config, cross)
     for pair, estimate in zip(cross, batched):

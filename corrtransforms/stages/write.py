@@ -47,6 +47,7 @@ SCHEMAS = {
     "shifts": tables.SHIFTS,
     "state": tables.STATE,
     "baseline_sample": tables.BASELINE_SAMPLE,
+    "mode_shapes": tables.MODE_SHAPES,
 }
 #: rows of one Parquet row group in output files (common practice: tens of thousands of rows)
 ROW_GROUP_ROWS = 50_000

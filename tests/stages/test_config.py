@@ -222,3 +222,53 @@ def test_file_span_h_needs_a_pattern_and_is_positive():
         raw["archive"]["file_span_h"] = bad
         with pytest.raises(ConfigError, match=r"\[archive\] file_span_h"):
             parse_config(raw)
+
+
+THREE_CHANNELS = {"names": ["a", "b", "c"], "covariates": ["temp"]}
+BAD_MULTICHANNEL_MODES = [
+    ({"name": "m1", "band_hz": [1.0, 2.0]}, "channel / channels"),  # neither
+    ({"name": "m1", "channel": "a", "channels": ["a", "b"], "band_hz": [1.0, 2.0]}, "channel / channels"),  # both
+    ({"name": "m1", "channels": ["a"], "band_hz": [1.0, 2.0]}, "channels"),  # one channel
+    ({"name": "m1", "channels": ["a", "a"], "band_hz": [1.0, 2.0]}, "channels"),  # repeated
+    ({"name": "m1", "channels": ["a", "nope"], "band_hz": [1.0, 2.0]}, "channels"),  # not configured
+    ({"name": "m1", "channels": "a,b", "band_hz": [1.0, 2.0]}, "channels"),
+    ({"name": "m1", "channels": ["a", "b"], "reference_channels": ["c"], "band_hz": [1.0, 2.0]}, "reference_channels"),
+    ({"name": "m1", "channels": ["a", "b"], "reference_channels": [], "band_hz": [1.0, 2.0]}, "reference_channels"),
+    ({"name": "m1", "channels": ["a", "b"], "reference_shape": [1.0], "band_hz": [1.0, 2.0]}, "reference_shape"),
+    ({"name": "m1", "channels": ["a", "b"], "reference_shape": [0, 0], "band_hz": [1.0, 2.0]}, "reference_shape"),
+    ({"name": "m1", "channels": ["a", "b"], "reference_shape": ["x", 1], "band_hz": [1.0, 2.0]}, "reference_shape"),
+    ({"name": "m1", "channel": "a", "reference_channels": ["a"], "band_hz": [1.0, 2.0]}, "reference_channels"),
+    ({"name": "m1", "channels": ["a", "b"], "band_hz": [1.0, 12.0]}, "band_hz"),  # above Nyquist at 20 Hz
+]
+
+
+@pytest.mark.parametrize("mode,key", BAD_MULTICHANNEL_MODES)
+def test_invalid_multichannel_mode_names_its_key_value_and_what_is_allowed(mode, key):
+    raw = copy.deepcopy(MINIMAL)
+    raw["channels"] = dict(THREE_CHANNELS)
+    raw["modes"] = [mode]
+    with pytest.raises(ConfigError) as info:
+        parse_config(raw)
+    assert info.value.key == f"[[modes]] #1 {key}"
+    assert info.value.allowed and str(info.value).startswith(f"[[modes]] #1 {key} = ")
+
+
+def test_multichannel_mode_entry_and_single_channel_entry_side_by_side():
+    raw = copy.deepcopy(MINIMAL)
+    raw["channels"] = dict(THREE_CHANNELS)
+    raw["modes"] = [
+        {"name": "single", "channel": "a", "band_hz": [1.0, 2.0]},
+        {"name": "first_bending", "channels": ["a", "b", "c"], "reference_channels": ["a", "c"], "band_hz": [1, 3]},
+        {"name": "second", "channels": ["b", "c"], "reference_shape": [1.0, -0.5], "band_hz": [3.0, 4.0]},
+    ]
+    single, multi, shaped = parse_config(raw).modes
+    assert (single.channel, single.channels, single.is_multichannel) == ("a", (), False)
+    assert (multi.channel, multi.channels, multi.reference_channels) == ("", ("a", "b", "c"), ("a", "c"))
+    assert multi.band_hz == (1.0, 3.0) and multi.reference_shape == () and multi.is_multichannel
+    assert shaped.reference_channels == ("b", "c") and shaped.reference_shape == (1.0, -0.5)
+
+
+def test_mode_mac_is_a_monitorable_indicator():
+    raw = copy.deepcopy(MINIMAL)
+    raw["shifts"] = {"indicators": ["mode_freq_hz", "mode_mac"]}
+    assert parse_config(raw).shifts.indicators == ("mode_freq_hz", "mode_mac")

@@ -52,8 +52,12 @@ def modal_state_space(freqs_hz, dampings, rotation_rad=0.0):
     return A, B
 
 
-def simulate_state_space(A, B, fs, n_samples, rng, n_outputs=None):
-    """Exact discretisation (Van Loan) of dx = A x dt + B dW; returns the first n_outputs states."""
+def exact_discretisation(A, B, fs):
+    """``(Ad, Qd, P)`` of dx = A x dt + B dW sampled at ``fs`` (Van Loan 1978, Theorem 1).
+
+    ``Ad = expm(A dt)``, ``Qd`` the covariance of the state noise over one step and ``P`` the
+    stationary state covariance (``P = Ad P Ad^T + Qd``).
+    """
     dt = 1.0 / fs
     m = A.shape[0]
     big = np.zeros((2 * m, 2 * m))
@@ -65,6 +69,13 @@ def simulate_state_space(A, B, fs, n_samples, rng, n_outputs=None):
     Qd = Ad @ E[:m, m:]
     Qd = 0.5 * (Qd + Qd.T)
     P = scipy.linalg.solve_discrete_lyapunov(Ad, Qd)  # stationary covariance: no start transient
+    return Ad, Qd, P
+
+
+def simulate_state_space(A, B, fs, n_samples, rng, n_outputs=None):
+    """Exact discretisation (Van Loan) of dx = A x dt + B dW; returns the first n_outputs states."""
+    m = A.shape[0]
+    Ad, Qd, P = exact_discretisation(A, B, fs)
     chol_q = np.linalg.cholesky(Qd + 1e-15 * np.eye(m) * np.trace(Qd))
     x = np.linalg.cholesky(P) @ rng.standard_normal(m)
     noise = rng.standard_normal((n_samples, m)) @ chol_q.T

@@ -1,0 +1,292 @@
+"""Multi-channel modes of one window (part of the correlate step) and the mode_shapes table.
+
+:func:`window_multichannel_modes` runs, for the ``[[modes]]`` entries given with
+``channels = [...]``, the identification of :mod:`corrtransforms.numerics.multichannel_modes`
+on the window's correlation matrix of those channels, assigns one pole to each entry
+(:mod:`corrtransforms.numerics.mode_tracking`) and attaches jackknife standard errors
+(:mod:`corrtransforms.numerics.mode_uncertainty`). :func:`mode_shape_table` turns the results
+into rows of :data:`corrtransforms.tables.MODE_SHAPES`.
+
+Correlations used. The identification needs every auto and cross pair of the entry's channels
+(outputs) with its reference channels, per sub-record (the jackknife). They are computed here,
+from the window's samples, whatever ``[correlation] pairs`` lists, and are not written to the
+correlations table (a mode needs its pairs whether or not the user wants to store them; storing
+them would change the correlations table behind the user's back). The sub-records are the
+overlap-save blocks of :func:`~corrtransforms.numerics.correlation.channel_spectra` with
+``segment_length = ceil(n / SUB_RECORDS)``; the window's own matrix is the count-corrected
+``sum S / sum N`` (:func:`~corrtransforms.numerics.mode_uncertainty.window_sequence`), at the lags
+the Hankel matrix uses only (``(1 + rows + columns) * stride``, at most ``[correlation]
+max_lag_s``).
+
+Tracking (the rule of this version; no state across windows). Entries with the same channels
+and reference channels share one identification over the union of their bands. Each entry's
+reference frequency is its band centre. Its reference shape is ``reference_shape`` when
+configured; otherwise the shape of the candidate pole in the entry's (widened) band nearest the
+centre. Poles are assigned by :func:`~corrtransforms.numerics.mode_tracking.track_modes`
+(Hungarian, cost ``|df| / f + (1 - MAC)``, admissible within the widened band and MAC >= 0.8).
+``mode_mac`` is the MAC of the window's shape to the configured ``reference_shape`` and is NaN
+with ``no_reference_shape`` without one (a reference taken from the window itself would make it
+1 by construction). A reference from the baseline windows carried in the detector state is
+future work (docs/modes.md).
+
+Settings chosen here (measured by ``benchmarks/bench_multichannel_modes.py --stage``):
+``block_columns = ceil(MAX_ORDER / n_references) + 1`` (the fewest that hold every model order
+of the default range, plus one), block rows spanning a period of the band's low edge, capped by
+the lags (:func:`mode_block_rows`), and a lag stride that keeps the strided grid's Nyquist frequency
+at least :data:`NYQUIST_FACTOR` times the band's top.
+"""
+
+from __future__ import annotations
+
+from typing import Dict, Iterable, List, Optional, Sequence, Tuple
+
+import numpy as np
+import pyarrow as pa
+
+from corrtransforms import tables
+from corrtransforms.config import AssetConfig, ModeConfig
+from corrtransforms.numerics.correlation import block_lag_sums, channel_spectra, resolve_pairs
+from corrtransforms.numerics.mode_shapes import largest_component, modal_assurance_criterion, normalise_shape
+from corrtransforms.numerics.mode_tracking import track_modes
+from corrtransforms.numerics.mode_uncertainty import (
+    DEFAULT_SEGMENTS,
+    mac_stderr,
+    mode_uncertainty,
+    window_sequence,
+)
+from corrtransforms.numerics.multichannel_modes import (
+    MAX_ORDER,
+    IdentifiedModes,
+    correlation_sequence,
+    default_block_rows,
+    identify_modes,
+    search_band,
+)
+from corrtransforms.records import MultichannelMode, WindowBlock, WindowCorrelation, quality_text
+
+#: sub-records of the window for the jackknife (numerics.mode_uncertainty.DEFAULT_SEGMENTS)
+SUB_RECORDS = DEFAULT_SEGMENTS
+#: the strided lag grid keeps its Nyquist frequency at least this many times the band's top
+#: (common practice: content above the strided Nyquist aliases into the band)
+NYQUIST_FACTOR = 5.0
+
+#: quality codes of this module (the numerics add mode_not_found, mode_pole_shared,
+#: mode_low_mac, jackknife_unmatched, too_few_segments, nonfinite_correlation)
+QUALITY_CODES = {
+    "mode_channel_unusable": "a channel of the mode is missing, flat or too sparse in this window",
+    "mode_identification_failed": "the identification raised on this window's correlations (too few lags, singular)",
+    "mode_max_lag_short": "[correlation] max_lag_s holds too few lags for the Hankel matrix of this band",
+    "no_reference_shape": "the entry has no reference_shape, so mode_mac is NaN",
+}
+
+
+def mode_lag_stride(fs: float, high_hz: float) -> int:
+    """Lag stride: the largest with ``fs / (2 stride) >= NYQUIST_FACTOR * high_hz`` (at least 1)."""
+    return max(1, int(np.floor(fs / (2.0 * NYQUIST_FACTOR * high_hz))))
+
+
+def mode_block_columns(n_references: int) -> int:
+    """Block columns of the Hankel matrix: ``ceil(MAX_ORDER / n_references) + 1``."""
+    return int(np.ceil(MAX_ORDER / max(n_references, 1))) + 1
+
+
+def mode_block_rows(fs: float, low_hz: float, n_references: int, stride: int, columns: int, n_lags: int) -> int:
+    """Block rows: :func:`~corrtransforms.numerics.multichannel_modes.default_block_rows` (a period
+    of the band's low edge, room for the orders), capped by the lags ``[correlation] max_lag_s``
+    gives (``rows + columns`` strided lags after lag 0)."""
+    wanted = default_block_rows(fs, low_hz, n_references, MAX_ORDER, stride)
+    return max(2, min(wanted, (n_lags - 1) // stride - columns))
+
+
+def _groups(config: AssetConfig) -> Dict[Tuple[Tuple[str, ...], Tuple[str, ...]], List[ModeConfig]]:
+    groups: Dict[Tuple[Tuple[str, ...], Tuple[str, ...]], List[ModeConfig]] = {}
+    for mode in config.modes:
+        if mode.is_multichannel:
+            groups.setdefault((mode.channels, mode.reference_channels), []).append(mode)
+    return groups
+
+
+def _empty(mode: ModeConfig, codes: Sequence[str]) -> MultichannelMode:
+    nan = np.full(len(mode.channels), np.nan)
+    return MultichannelMode(
+        mode.name, mode.channels, np.nan, np.nan, np.nan, np.nan, np.nan, np.nan,
+        nan + 0j, nan, nan, -1, tuple(sorted(set(codes))),
+    )  # fmt: skip
+
+
+def window_multichannel_modes(block: WindowBlock, config: AssetConfig, usable=None) -> List[MultichannelMode]:
+    """One :class:`~corrtransforms.records.MultichannelMode` per multi-channel ``[[modes]]`` entry.
+
+    Parameters
+    ----------
+    block : WindowBlock
+    config : AssetConfig
+        ``[[modes]]`` (entries with ``channels``) and ``[correlation]`` max_lag_s, detrend.
+    usable : array_like of bool, optional
+        Per block channel, whether the correlate stage could use it; None means all.
+
+    Returns
+    -------
+    list of MultichannelMode
+        In configuration order. An entry whose mode is not found has NaN values and its codes;
+        a failure of the identification gives ``mode_identification_failed``, never an exception.
+    """
+    names = tuple(block.channels)
+    ok = np.ones(len(names), bool) if usable is None else np.asarray(usable, bool)
+    results: Dict[str, MultichannelMode] = {}
+    for (channels, references), entries in _groups(config).items():
+        if not all(c in names and ok[names.index(c)] for c in channels):
+            results.update({e.name: _empty(e, ["mode_channel_unusable"]) for e in entries})
+            continue
+        try:
+            results.update({m.mode: m for m in _group_modes(block, config, channels, references, entries)})
+        except (ValueError, np.linalg.LinAlgError):  # ill-conditioned or too short: a code, not a crash
+            results.update({e.name: _empty(e, ["mode_identification_failed"]) for e in entries})
+    return [results[m.name] for m in config.modes if m.is_multichannel]
+
+
+def _lag_arrays(block: WindowBlock, config: AssetConfig, channels, references, max_lag: int):
+    """Per sub-record lag sums and pair counts as ``(K, n_lags, n_outputs, n_references)``."""
+    names = tuple(block.channels)
+    columns = [names.index(c) for c in channels]
+    values = np.asarray(block.values)[:, columns]
+    valid = None if block.valid is None else np.asarray(block.valid)[:, columns]
+    n = values.shape[0]
+    cc = config.correlation
+    spectra = channel_spectra(
+        values, block.sample_rate_hz, max_lag / block.sample_rate_hz, valid=valid, detrend=cc.detrend,
+        segment_length=-(-n // SUB_RECORDS),
+    )  # fmt: skip
+    pairs = resolve_pairs("all", len(channels))
+    sums, counts = block_lag_sums(spectra, pairs)
+    outputs, refs = range(len(channels)), [channels.index(r) for r in references]
+    n_lags = spectra.max_lag + 1
+    return (
+        correlation_sequence(sums, pairs, outputs, refs, n_lags),
+        correlation_sequence(counts, pairs, outputs, refs, n_lags),
+    )
+
+
+def _group_modes(block, config, channels, references, entries: List[ModeConfig]) -> List[MultichannelMode]:
+    """Identify once for entries sharing channels, assign poles, attach jackknife stderrs."""
+    fs = float(block.sample_rate_hz)
+    union = (min(e.band_hz[0] for e in entries), max(e.band_hz[1] for e in entries))
+    stride, columns = mode_lag_stride(fs, search_band(union)[1]), mode_block_columns(len(references))
+    configured_lags = int(round(config.correlation.max_lag_s * fs))
+    if configured_lags // stride < columns + 2:
+        return [_empty(e, ["mode_max_lag_short"]) for e in entries]
+    rows = mode_block_rows(fs, search_band(union)[0], len(references), stride, columns, configured_lags + 1)
+    # only the lags the Hankel matrix uses: (1 + rows + columns) strided lags, within max_lag_s
+    S, N = _lag_arrays(block, config, channels, references, min(configured_lags, (1 + rows + columns) * stride))
+    sequence = window_sequence(S, N)
+    if not np.all(np.isfinite(sequence)):
+        return [_empty(e, ["nonfinite_correlation"]) for e in entries]
+    found = identify_modes(sequence, fs, union, block_rows=rows, lag_stride=stride, block_columns=columns)
+    bands = np.array([search_band(e.band_hz) for e in entries])
+    centres = np.array([0.5 * (e.band_hz[0] + e.band_hz[1]) for e in entries])
+    reference_shapes = _reference_shapes(entries, found, bands, centres)
+    if found.n_modes == 0 or reference_shapes is None:
+        return [_empty(e, ["mode_not_found"]) for e in entries]
+    assignment = track_modes(centres, reference_shapes, found.freq_hz, found.shapes, bands_hz=bands)
+    out = []
+    for k, entry in enumerate(entries):
+        chosen = int(assignment.candidate[k])
+        if chosen < 0:
+            out.append(_empty(entry, assignment.quality[k]))
+            continue
+        out.append(_assigned(entry, found, chosen, S, N, fs, assignment.quality[k]))
+    return out
+
+
+def _reference_shapes(entries, found: IdentifiedModes, bands, centres) -> Optional[np.ndarray]:
+    """Configured reference shapes; else the in-band candidate nearest the centre (None if no
+    candidate at all)."""
+    if found.n_modes == 0:
+        return None
+    shapes = np.empty((len(entries), found.shapes.shape[1]), complex)
+    for k, entry in enumerate(entries):
+        if entry.reference_shape:
+            shapes[k] = np.asarray(entry.reference_shape, float)
+            continue
+        in_band = (found.freq_hz >= bands[k, 0]) & (found.freq_hz <= bands[k, 1])
+        distance = np.where(in_band, np.abs(found.freq_hz - centres[k]), np.inf)
+        shapes[k] = found.shapes[int(np.argmin(distance))]
+    return shapes
+
+
+def _subset(found: IdentifiedModes, row: int) -> IdentifiedModes:
+    rows = np.array([row])
+    return IdentifiedModes(
+        found.freq_hz[rows], found.damping[rows], found.shapes[rows], found.order[rows], found.n_stable[rows],
+        found.block_rows, found.lag_stride, found.method, found.block_columns,
+    )  # fmt: skip
+
+
+def _assigned(entry: ModeConfig, found: IdentifiedModes, row: int, S, N, fs: float, codes) -> MultichannelMode:
+    """The assigned pole's values with jackknife stderrs and the MAC to the reference shape."""
+    reference = np.asarray(entry.reference_shape, float) if entry.reference_shape else None
+    index = largest_component(reference) if reference is not None else largest_component(found.shapes[row])
+    mode = _subset(found, row)
+    u = mode_uncertainty(S, N, fs, mode, reference_index=[index])
+    quality = list(codes) + list(u.quality[0])
+    if reference is None:
+        mac, mac_se = np.nan, np.nan
+        quality.append("no_reference_shape")
+    else:
+        mac = float(modal_assurance_criterion(found.shapes[row], reference))
+        mac_se = mac_stderr(u.replicate_shapes[:, 0], reference)
+    return MultichannelMode(
+        mode=entry.name,
+        channels=entry.channels,
+        freq_hz=float(found.freq_hz[row]),
+        freq_stderr_hz=float(u.freq_stderr_hz[0]),
+        damping=float(found.damping[row]),
+        damping_stderr=float(u.damping_stderr[0]),
+        mac=mac,
+        mac_stderr=mac_se,
+        shape=normalise_shape(found.shapes[row], index),
+        shape_stderr_real=u.shape_stderr_real[0],
+        shape_stderr_imag=u.shape_stderr_imag[0],
+        reference_index=int(index),
+        quality=tuple(sorted(set(quality))),
+    )
+
+
+def mode_shape_table(window_correlations: Iterable[WindowCorrelation]) -> pa.Table:
+    """Rows of :data:`corrtransforms.tables.MODE_SHAPES`: one per window, found mode and channel.
+
+    ``stderr`` is ``sqrt(se_real^2 + se_imag^2)`` of the normalised component (0 at the
+    reference component); modes not found in a window have no rows (their indicator rows carry
+    the reason).
+    """
+    starts: List[int] = []
+    modes: List[str] = []
+    channel_names: List[str] = []
+    real: List[float] = []
+    imag: List[float] = []
+    stderr: List[float] = []
+    quality: List[str] = []
+    for wc in window_correlations:
+        for m in wc.multichannel_modes:
+            if not np.isfinite(m.freq_hz):
+                continue
+            se = np.hypot(m.shape_stderr_real, m.shape_stderr_imag)
+            for c, name in enumerate(m.channels):
+                starts.append(wc.window_start_us)
+                modes.append(m.mode)
+                channel_names.append(name)
+                real.append(float(m.shape[c].real))
+                imag.append(float(m.shape[c].imag))
+                stderr.append(float(se[c]))
+                quality.append(quality_text(m.quality))
+    schema = tables.MODE_SHAPES
+    columns = [
+        pa.array(starts, type=pa.int64()).cast(tables.TIMESTAMP),
+        pa.array(modes, type=pa.string()),
+        pa.array(channel_names, type=pa.string()),
+        pa.array(real, type=pa.float64()),
+        pa.array(imag, type=pa.float64()),
+        pa.array(stderr, type=pa.float64()),
+        pa.array(quality, type=pa.string()),
+    ]
+    return pa.Table.from_arrays(columns, schema=schema)
