@@ -92,8 +92,9 @@ def sdof_autocorrelation(tau, freq_hz: float, damping: float) -> np.ndarray:
 def integral_to_first_zero(rho, lag_step_s: float) -> float:
     """The tool's definition of ``corr_time_s`` applied to an exact correlation.
 
-    Trapezoid rule on the lag grid from lag 0 to the linearly interpolated first zero crossing,
-    or to the last lag when ``rho`` stays positive (the definition in
+    Trapezoid rule on the lag grid from lag 0 to the linearly interpolated first zero crossing
+    or to five times the first (interpolated) 1/e lag, whichever comes first, or to the last
+    lag when ``rho`` stays positive (the definition in
     :func:`corrtransforms.numerics.timescales.corr_time_s`, re-implemented here independently).
     For ``rho = phi^k`` and a long lag range this tends to ``dt (1 + phi) / (2 (1 - phi))``
     (geometric series), which is within 1 % of the continuous ``t_c = -dt / ln(phi)`` at
@@ -101,6 +102,15 @@ def integral_to_first_zero(rho, lag_step_s: float) -> float:
     """
     rho = np.asarray(rho, dtype=float)
     below = np.nonzero(rho <= 0)[0]
+    # the first 1/e lag, linearly interpolated; the integral stops at 5 of them if that is first
+    e_k = int(np.nonzero(rho <= math.exp(-1.0))[0][0])
+    e_lag = (e_k - 1) + (rho[e_k - 1] - math.exp(-1.0)) / (rho[e_k - 1] - rho[e_k])
+    limit = 5.0 * e_lag
+    if limit < (below[0] - 1 if len(below) else len(rho) - 1):
+        j = int(np.floor(limit))
+        g = limit - j
+        at_limit = (1 - g) * rho[j] + g * rho[j + 1]
+        return float(np.trapezoid(rho[: j + 1], dx=lag_step_s)) + 0.5 * (rho[j] + at_limit) * g * lag_step_s
     if len(below) == 0:
         return float(np.trapezoid(rho, dx=lag_step_s))
     k = int(below[0])

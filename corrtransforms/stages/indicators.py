@@ -97,8 +97,11 @@ def _channel_rows(wc: WindowCorrelation, config: AssetConfig, channel: str, comm
     ]
     if auto is None:
         return rows
-    ct = corr_time_s(auto.coefficient, auto.stderr, auto.lag_step_s)
-    dt = decay_time_s(auto.coefficient, auto.stderr, auto.lag_step_s, auto=True)
+    # on the count-corrected coefficient: with gaps the biased estimator's lags are low by
+    # C(k) / C(0) (calibration matrix, gappy record: corr_time_s bias -0.34 stderr)
+    coefficient, stderr = _located_coefficient(wc, config, auto)
+    ct = corr_time_s(coefficient, stderr, auto.lag_step_s)
+    dt = decay_time_s(coefficient, stderr, auto.lag_step_s, auto=True)
     rows.append(
         IndicatorRow(
             start,
@@ -185,7 +188,8 @@ def _lag_inputs(wc: WindowCorrelation, config: AssetConfig, pair: PairCorrelatio
 
 
 def _located_coefficient(wc: WindowCorrelation, config: AssetConfig, pair: PairCorrelation):
-    """The cross pair's coefficient and stderr on which its peak is located and read.
+    """The pair's coefficient and stderr on which its peak is located and read (a cross pair) or
+    its time scales are computed (an auto pair).
 
     With the biased estimator each lag's sum is divided by ``sqrt(N_a N_b)`` whatever the number
     of sample pairs ``C_ab(k)`` behind it, so ``E[rho] = rho_true(k) C_ab(k) / sqrt(N_a N_b)``: a

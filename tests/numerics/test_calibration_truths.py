@@ -64,11 +64,20 @@ def test_envelope_decay_time_of_an_exponential_is_the_hilbert_root():
 
 
 def test_integral_to_first_zero_matches_closed_forms():
-    # reference: geometric series, trapezoid of phi^k over 0..L = dt [(1 - phi^(L+1))/(1 - phi) - (1 + phi^L)/2]
+    # reference: geometric series, trapezoid of phi^k over 0..J = dt [(1 - phi^(J+1))/(1 - phi) - (1 + phi^J)/2],
+    # J = floor(5 tau_e), tau_e the interpolated first lag with phi^k <= 1/e (k_e = ceil(-1/ln phi)),
+    # plus the partial trapezoid from J to 5 tau_e under linear interpolation
     phi, dt, L = 0.9, 0.1, 100
     rho = phi ** np.arange(L + 1)
-    expected = dt * ((1 - phi ** (L + 1)) / (1 - phi) - 0.5 * (1 + phi**L))
+    k_e = math.ceil(-1 / math.log(phi))
+    tau_e = (k_e - 1) + (phi ** (k_e - 1) - math.exp(-1)) / (phi ** (k_e - 1) - phi**k_e)
+    limit = 5 * tau_e
+    J, g = math.floor(limit), limit - math.floor(limit)
+    at_limit = (1 - g) * phi**J + g * phi ** (J + 1)
+    expected = dt * ((1 - phi ** (J + 1)) / (1 - phi) - 0.5 * (1 + phi**J)) + dt * 0.5 * g * (phi**J + at_limit)
     assert math.isclose(cal.integral_to_first_zero(rho, dt), expected, rel_tol=1e-12)
+    # and within 1 % of the continuous t_c (1 - e^-5), t_c = -dt / ln(phi)
+    assert math.isclose(expected, -dt / math.log(phi) * (1 - math.exp(-5)), rel_tol=0.01)
     # reference: linear rho = 1 - tau/2 crosses zero at tau = 2 exactly: integral 1
     tau = np.arange(0, 3.05, 0.1)
     assert math.isclose(cal.integral_to_first_zero(1 - tau / 2, 0.1), 1.0, rel_tol=1e-9)

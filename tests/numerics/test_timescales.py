@@ -26,14 +26,19 @@ def _sdof_integral(t, fn, zeta):
 
 
 def test_ou_exact_integral_matches_closed_form():
-    # exp(-tau/tau_c) integrated to L: tau_c (1 - exp(-L/tau_c)) (closed form); trapezoid error
-    # is (dt^2/12) [f'(L) - f'(0)] = O(1e-5) relative at dt = tau_c / 100
+    # exp(-tau/tau_c) never crosses zero: the integral stops at 5 tau_e = 5 tau_c, where it is
+    # tau_c (1 - exp(-5)) (closed form); trapezoid error (dt^2/12) [f'(5 tau_c) - f'(0)] = O(1e-5)
+    # relative at dt = tau_c / 100
     tau_c, dt = 0.5, 0.005
     lags = np.arange(2001) * dt
     rho = np.exp(-lags / tau_c)
     result = corr_time_s(rho, np.full_like(rho, 0.01), dt)
-    assert result.quality == ("no_zero_crossing",)  # exact OU never crosses zero: lower bound
-    assert result.value == pytest.approx(tau_c * (1 - np.exp(-lags[-1] / tau_c)), rel=1e-4)
+    assert result.quality == ()
+    assert result.value == pytest.approx(tau_c * (1 - np.exp(-5.0)), rel=1e-4)
+    # a lag range shorter than 5 tau_c: the integral to max_lag, a lower bound, with its code
+    short = corr_time_s(rho[:401], np.full(401, 0.01), dt)
+    assert short.quality == ("no_zero_crossing",)
+    assert short.value == pytest.approx(tau_c * (1 - np.exp(-lags[400] / tau_c)), rel=1e-4)
 
 
 def test_sdof_exact_integral_to_first_zero_and_to_infinity():
