@@ -6,6 +6,7 @@ Archives: the reliability tests' clean archive (10 minutes at 10 Hz, 10 windows 
 different seed per asset.
 """
 
+import html.parser
 import json
 import os
 import textwrap
@@ -15,7 +16,7 @@ import pytest
 
 from corrtransforms.config import ConfigError, merge_defaults
 from corrtransforms.launch import fleet as fleet_launch
-from pipelines import backfill
+from pipelines import backfill, report
 from tests.support.output_tables import SORT_KEYS, _nan_equal
 from tests.support.reliability_data import RATE, clean_columns, write_clean_archive
 
@@ -38,6 +39,10 @@ min_windows = 2
 [reading]
 task_bytes = 65536
 """
+
+
+#: south's own keys: a longer baseline and a false-alarm budget (h and L chosen from it)
+SOUTH_EXTRA = "[baseline]\nwindows = 5\n[shifts]\nfalse_alarms_per_year = 1.0\n"
 
 
 def _asset_text(name, archive, extra=""):
@@ -81,10 +86,13 @@ def sites(tmp_path_factory):
     (fleet / "_defaults.toml").write_text(DEFAULTS)
     (fleet / "north.toml").write_text(_asset_text("north", "../archives/north"))
     # asset keys win, tables merge: south's own [baseline] windows over the defaults' min_windows
-    (fleet / "south.toml").write_text(_asset_text("south", "../archives/south", "[baseline]\nwindows = 5\n"))
+    (fleet / "south.toml").write_text(_asset_text("south", "../archives/south", SOUTH_EXTRA))
     singles = root / "singles"
     singles.mkdir()
-    for name, extra in (("north", ""), ("south", "[baseline]\nwindows = 5\nmin_windows = 2\n")):
+    for name, extra in (
+        ("north", ""),
+        ("south", SOUTH_EXTRA.replace("windows = 5\n", "windows = 5\nmin_windows = 2\n")),
+    ):
         text = DEFAULTS.replace("[baseline]\nwindows = 4\nmin_windows = 2\n", "") if extra else DEFAULTS
         (singles / f"{name}.toml").write_text(
             _asset_text(name, f"../archives/{name}") + text.replace("[archive]\n", "") + extra
@@ -92,9 +100,15 @@ def sites(tmp_path_factory):
     return root
 
 
-def test_fleet_run_equals_the_single_runs_asset_by_asset(sites):
+@pytest.fixture(scope="module")
+def fleet_run(sites):
     fleet_output = str(sites / "out_fleet")
     found = backfill.main(["--config", str(sites / "fleet"), "--output", fleet_output, "--run_id", "fleet"])
+    return fleet_output, found
+
+
+def test_fleet_run_equals_the_single_runs_asset_by_asset(sites, fleet_run):
+    fleet_output, found = fleet_run
     assert sorted(found) == ["north", "south"]
     assert all(found[a]["windows_planned"] == 10 and found[a]["windows_computed"] == 10 for a in found)
     for name in ("north", "south"):
@@ -110,9 +124,16 @@ def test_fleet_run_equals_the_single_runs_asset_by_asset(sites):
     assert summary["status"] == 0
     assert [(a["asset"], a["outcome"]) for a in summary["assets"]] == [("north", "done"), ("south", "done")]
     assert not os.path.exists(os.path.join(fleet_output, "_temporary", "fleet"))
+    # south's limits come from its budget: written into its states and its run summary
+    with open(os.path.join(fleet_output, "_runs", "asset=south", "fleet.json")) as handle:
+        limits = json.load(handle)["detector_limits"]
+    states = _asset_table(fleet_output, "state", "south")
+    assert limits["false_alarms_per_year"] == 1.0
+    used = [v for v in states["cusum_h_used"] if v is not None]
+    assert limits["cusum_h_used"] == ([min(used), max(used)] if used else None)
 
 
-def test_broken_assets_are_reported_and_the_others_written(sites):
+def test_broken_assets_are_reported_and_the_others_written(sites, fleet_run):
     broken = sites / "broken"
     broken.mkdir()
     (broken / "_defaults.toml").write_text(DEFAULTS)
@@ -175,3 +196,56 @@ def test_a_folder_without_assets_is_a_configuration_error(tmp_path):
     (tmp_path / "_defaults.toml").write_text(DEFAULTS)
     with pytest.raises(ConfigError, match="gives no asset file"):
         fleet_launch.member_files([str(tmp_path)])
+
+
+class _Links(html.parser.HTMLParser):
+    def __init__(self):
+        super().__init__()
+        self.links, self.rows, self.cells = [], [], None
+
+    def handle_starttag(self, tag, attrs):
+        attrs = dict(attrs)
+        if tag in ("a", "img") and (attrs.get("href") or attrs.get("src")):
+            self.links.append(attrs.get("href") or attrs.get("src"))
+        if tag == "tr":
+            self.cells = []
+        if tag == "td" and self.cells is not None:
+            self.cells.append("")
+
+    def handle_data(self, data):
+        if self.cells:
+            self.cells[-1] += data
+
+    def handle_endtag(self, tag):
+        if tag == "tr" and self.cells:
+            self.rows.append(self.cells)
+        if tag == "tr":
+            self.cells = None
+
+
+def _page(path):
+    parser = _Links()
+    with open(path, encoding="utf-8") as handle:
+        parser.feed(handle.read())
+    return parser
+
+
+def test_report_of_a_fleet_starts_with_an_overview_linking_each_asset(fleet_run):
+    pytest.importorskip("matplotlib")
+    fleet_output, found = fleet_run
+    assert report.main(["--output", fleet_output]) == 0
+    folder = os.path.join(fleet_output, "report")
+    overview = _page(os.path.join(folder, "index.html"))
+    assert [row[0] for row in overview.rows] == ["north", "south"]
+    for row in overview.rows:
+        # the last day's windows: all 10 of the archive's single day; every series fitted
+        assert row[2] == "10", row
+        assert row[4].startswith("0 of ") and int(row[4].split(" of ")[1]) > 0, row
+    assert overview.links == ["asset-north.html", "asset-south.html"]
+    for link in overview.links:
+        page = _page(os.path.join(folder, link))
+        assert page.links, link
+        for target in page.links:
+            if "://" in target or target.startswith("#"):
+                continue
+            assert os.path.exists(os.path.join(folder, target)), (link, target)
