@@ -178,6 +178,11 @@ class ShiftsConfig:
     compensate: Optional[Tuple[str, ...]] = None
     #: indicators the detectors run on (the others are still written to the indicators table)
     indicators: Tuple[str, ...] = DEFAULT_MONITORED
+    #: false alarms per asset and year the detectors may raise on healthy series: CUSUM h and
+    #: EWMA L are chosen from it per series (None: the configured h and L)
+    false_alarms_per_year: Optional[float] = None
+    #: which of "cusum_h" and "ewma_L" the file gives explicitly (they win over the budget)
+    explicit_limits: Tuple[str, ...] = ()
 
 
 @dataclasses.dataclass(frozen=True)
@@ -263,7 +268,16 @@ _KNOWN = {
     "modes": {"name", "channel", "channels", "reference_channels", "reference_shape", "band_hz"},
     "baseline": {"start", "end", "windows", "min_windows"},
     "screening": {"enabled", "segments", "alpha", "action"},
-    "shifts": {"detector", "cusum_k", "cusum_h", "ewma_lambda", "ewma_L", "compensate", "indicators"},
+    "shifts": {
+        "detector",
+        "cusum_k",
+        "cusum_h",
+        "ewma_lambda",
+        "ewma_L",
+        "compensate",
+        "indicators",
+        "false_alarms_per_year",
+    },
     "reading": {"task_bytes", "grid_tolerance", "clip_fraction"},
 }
 
@@ -749,6 +763,12 @@ def _parse_shifts(raw: Mapping[str, Any], channels: ChannelsConfig) -> ShiftsCon
         ewma_lambda=_number("[shifts] ewma_lambda", sh.get("ewma_lambda", 0.1), low=0, high=1, low_open=True),
         ewma_L=_number("[shifts] ewma_L", sh.get("ewma_L", 4.3), low=0, low_open=True),
         compensate=compensate,
+        false_alarms_per_year=(
+            _number("[shifts] false_alarms_per_year", sh["false_alarms_per_year"], low=0, low_open=True)
+            if "false_alarms_per_year" in sh
+            else None
+        ),
+        explicit_limits=tuple(key for key in ("cusum_h", "ewma_L") if key in sh),
     )
 
 
@@ -790,3 +810,56 @@ def load_config(path: str) -> AssetConfig:
     except tomllib.TOMLDecodeError as err:
         raise ConfigError("--config", path, f"is not valid TOML ({err})") from None
     return parse_config(raw, base_dir=os.path.dirname(os.path.abspath(path)), source=path)
+
+
+# --------------------------------------------------------------------------------------------
+# Fleets: several assets from a folder or a glob, with shared defaults
+
+#: the file of a fleet folder merged under each asset's keys (never an asset itself)
+FLEET_DEFAULTS = "_defaults.toml"
+
+
+def merge_defaults(defaults: Mapping[str, Any], asset: Mapping[str, Any]) -> Dict[str, Any]:
+    """``asset`` over ``defaults``: the asset's keys win; tables are merged recursively; arrays
+    (``[[modes]]``, ``pairs``, ``names`` ...) and every other value are replaced, not merged."""
+    merged: Dict[str, Any] = dict(defaults)
+    for key, value in asset.items():
+        below = merged.get(key)
+        if isinstance(value, Mapping) and isinstance(below, Mapping):
+            merged[key] = merge_defaults(below, value)
+        else:
+            merged[key] = value
+    return merged
+
+
+def is_fleet_member(path: str) -> bool:
+    """Whether a listed file is one asset of a fleet: a ``*.toml`` whose name does not start
+    with ``_`` (``_defaults.toml`` and any other ``_*.toml`` are not assets)."""
+    name = path.replace("\\", "/").rstrip("/").rsplit("/", 1)[-1]
+    return name.endswith(".toml") and not name.startswith("_")
+
+
+def parse_fleet_member(
+    raw: Mapping[str, Any], defaults: Optional[Mapping[str, Any]], base_dir: str, source: str
+) -> AssetConfig:
+    """One asset of a fleet: its TOML mapping merged over the folder's ``_defaults.toml``
+    (:func:`merge_defaults`), then validated as a file of its own (:func:`parse_config`).
+
+    Relative paths, the asset's and those of the defaults alike, resolve against the asset
+    file's folder (``base_dir``): the defaults file lies in that same folder, so both readings
+    agree, and a merged value means the same wherever it came from.
+    """
+    return parse_config(merge_defaults(defaults or {}, raw), base_dir=base_dir, source=source)
+
+
+def duplicate_asset_names(configs: Sequence[AssetConfig]) -> Optional[str]:
+    """A message naming both files of the first asset name given twice, or None."""
+    seen: Dict[str, str] = {}
+    for config in configs:
+        if config.name in seen:
+            return (
+                f"[asset] name = {config.name!r} is given by two files: {seen[config.name]} and "
+                f"{config.source}; asset names must be unique in a fleet (they name the output partitions)"
+            )
+        seen[config.name] = config.source
+    return None

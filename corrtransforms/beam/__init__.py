@@ -4,7 +4,8 @@
   (:mod:`~corrtransforms.beam.read`), :class:`CorrelateWindows` (:mod:`~corrtransforms.beam.correlate`),
   :class:`ComputeIndicators` (:mod:`~corrtransforms.beam.indicators`), :class:`DetectShifts`
   (:mod:`~corrtransforms.beam.shifts`), :class:`WriteTables` (:mod:`~corrtransforms.beam.write`);
-- the whole job of one asset: :class:`MonitorAsset` (:mod:`~corrtransforms.beam.monitor`);
+- the whole job of one asset: :class:`MonitorAsset`, of several in one pipeline: :class:`MonitorFleet`
+  (:mod:`~corrtransforms.beam.monitor`);
 - file access through Beam's FileSystems (:mod:`~corrtransforms.beam.filesystems`) and the
   package's metrics namespace (:mod:`~corrtransforms.beam.metrics`).
 """
@@ -12,7 +13,7 @@
 from corrtransforms.beam.correlate import CorrelateWindows
 from corrtransforms.beam.indicators import ComputeIndicators
 from corrtransforms.beam.metrics import NAMESPACE, window_accounting
-from corrtransforms.beam.monitor import MonitorAsset
+from corrtransforms.beam.monitor import FleetMember, MonitorAsset, MonitorFleet
 from corrtransforms.beam.plan import PlanReads
 from corrtransforms.beam.read import ReadWindows
 from corrtransforms.beam.shifts import DetectShifts
@@ -32,5 +33,7 @@ __all__ = [
     "DetectShifts",
     "WriteTables",
     "MonitorAsset",
+    "MonitorFleet",
+    "FleetMember",
     "window_accounting",
 ]

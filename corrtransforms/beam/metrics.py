@@ -7,7 +7,7 @@ rejected.
 
 from __future__ import annotations
 
-from typing import Dict
+from typing import Dict, Optional
 
 from apache_beam.metrics import Metrics
 
@@ -41,13 +41,16 @@ def count_reject(finding: Reject) -> None:
         counter(f"windows_rejected_{finding.reason}").inc()
 
 
-def window_accounting(metrics_result) -> Dict[str, int]:
-    """Counters of the "corrtransforms" namespace from a finished pipeline's metrics."""
+def window_accounting(metrics_result, step: Optional[str] = None) -> Dict[str, int]:
+    """Counters of the "corrtransforms" namespace from a finished pipeline's metrics; with
+    ``step``, only those of the steps below that label (one asset of a fleet pipeline)."""
     from apache_beam.metrics.metric import MetricsFilter
 
     found = metrics_result.query(MetricsFilter().with_namespace(NAMESPACE))
     out: Dict[str, int] = {}
     for item in found["counters"]:
+        if step is not None and not (item.key.step or "").startswith(step + "/"):
+            continue
         value = item.committed if item.committed is not None else item.attempted
         out[item.key.metric.name] = out.get(item.key.metric.name, 0) + int(value or 0)
     return out

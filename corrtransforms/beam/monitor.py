@@ -13,7 +13,7 @@ from __future__ import annotations
 import datetime as _dt
 import logging
 import time
-from typing import Any, Dict, Optional, Tuple
+from typing import Any, Dict, NamedTuple, Optional, Sequence, Tuple
 
 import apache_beam as beam
 
@@ -22,7 +22,7 @@ from corrtransforms.beam.indicators import ComputeIndicators
 from corrtransforms.beam.plan import PlanReads
 from corrtransforms.beam.read import ReadWindows
 from corrtransforms.beam.shifts import DetectShifts
-from corrtransforms.beam.write import WriteTables
+from corrtransforms.beam.write import WriteTables, remove_run_temporary
 from corrtransforms.config import AssetConfig
 
 #: indicator rows per written batch (they are small: a few tens of bytes each)
@@ -122,6 +122,9 @@ class MonitorAsset(beam.PTransform):
     report_edges : (bool, bool)
         :class:`~corrtransforms.beam.plan.PlanReads`: whether file findings dated before
         ``start`` / after ``end`` are this run's to report (False for a backfill's inner chunks).
+    remove_temporary : bool
+        :class:`~corrtransforms.beam.write.WriteTables`: delete the run's temporary folder after
+        the commits (False inside :class:`MonitorFleet`, which deletes it once for all assets).
 
     Returns
     -------
@@ -141,9 +144,11 @@ class MonitorAsset(beam.PTransform):
         initial_states: Any = None,
         progress_interval_s: float = 15.0,
         report_edges: Tuple[bool, bool] = (True, True),
+        remove_temporary: bool = True,
     ):
         super().__init__()
         self._config, self._output, self._run_id = config, output_dir, run_id
+        self._remove_temporary = remove_temporary
         self._start, self._end, self._initial_states = start, end, initial_states
         self._progress_interval_s = progress_interval_s
         self._report_edges = tuple(report_edges)
@@ -196,7 +201,9 @@ class MonitorAsset(beam.PTransform):
             "mode_shapes": mode_shapes,
             "rejects": rejects,
         }
-        commits = tables | "Write tables" >> WriteTables(self._output, config, self._run_id, days=plan["days"])
+        commits = tables | "Write tables" >> WriteTables(
+            self._output, config, self._run_id, days=plan["days"], remove_temporary=self._remove_temporary
+        )
         return {
             "commits": commits,
             "tasks": plan["tasks"],
@@ -208,3 +215,71 @@ class MonitorAsset(beam.PTransform):
             "mode_shapes": mode_shapes,
             "rejects": rejects,
         }
+
+
+class FleetMember(NamedTuple):
+    """One asset of a fleet run: what :class:`MonitorAsset` takes besides the output and run id."""
+
+    config: AssetConfig
+    start: Optional[_dt.date] = None
+    end: Optional[_dt.date] = None
+    initial_states: Any = None
+    report_edges: Tuple[bool, bool] = (True, True)
+
+
+def fleet_step(asset: str) -> str:
+    """The label of an asset's steps in a fleet pipeline (its counters are read back by it)."""
+    return f"Asset {asset}"
+
+
+class MonitorFleet(beam.PTransform):
+    """Several assets in one pipeline: one :class:`MonitorAsset` branch per asset, labelled
+    ``Asset NAME`` (:func:`fleet_step`), so the job starts once and every row stays with its
+    asset (each branch writes its own ``asset=NAME/`` partitions exactly as a run of that asset
+    alone). The shared temporary folder of the run is removed once every asset is committed.
+
+    Parameters
+    ----------
+    members : sequence of FleetMember
+        The assets (names unique) with their days, resumed states and edge rules.
+    output_dir, run_id, progress_interval_s
+        As :class:`MonitorAsset`.
+
+    Returns
+    -------
+    dict of PCollection
+        asset name -> that asset's commit results; ``"*"`` (no asset's name) -> every asset's
+        commit results once the temporary folder is gone.
+    """
+
+    def __init__(self, members: Sequence[FleetMember], output_dir: str, run_id: str, progress_interval_s: float = 15.0):
+        super().__init__()
+        names = [m.config.name for m in members]
+        if len(set(names)) != len(names):
+            raise ValueError(f"asset names must be unique in a fleet: {names}")
+        self._members, self._output, self._run_id = tuple(members), output_dir, run_id
+        self._progress_interval_s = progress_interval_s
+
+    def expand(self, pbegin):
+        branches: Dict[str, Any] = {}
+        for m in self._members:
+            outputs = pbegin | fleet_step(m.config.name) >> MonitorAsset(
+                m.config,
+                self._output,
+                self._run_id,
+                m.start,
+                m.end,
+                m.initial_states,
+                self._progress_interval_s,
+                report_edges=m.report_edges,
+                remove_temporary=False,
+            )
+            branches[m.config.name] = outputs["commits"]
+        commits = (
+            list(branches.values())
+            | "Commits of every asset" >> beam.Flatten()
+            | "Concatenate commits" >> beam.FlatMap(lambda results: results)
+            | "Collect fleet commits" >> beam.combiners.ToList()
+            | "Remove temporary files" >> beam.Map(remove_run_temporary, self._output, self._run_id)
+        )
+        return {**branches, "*": commits}

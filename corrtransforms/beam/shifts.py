@@ -68,13 +68,14 @@ class _DetectSeriesFn(beam.DoFn):
         self._shifted = _counter("shift_windows_shifted")
         self._rejects = _counter("shift_rejects")
 
-    def process(self, keyed, covariates):
+    def process(self, keyed, covariates, series):
         _key, grouped = keyed
         rows = list(grouped["rows"])
         if not rows:  # a series with a state but no windows in this run: nothing to do
             return
+        config = shift_series.with_budget_limits(self._config, series)  # the same config without a budget
         outcome = shift_series.detect_shifts_for_rows(
-            rows, covariates, self._config, list(grouped["states"]), self._order, list(grouped["sample"])
+            rows, covariates, config, list(grouped["states"]), self._order, list(grouped["sample"])
         )
         self._series.inc()
         self._windows.inc(outcome.shifts.num_rows)
@@ -187,19 +188,18 @@ class DetectShifts(beam.PTransform):
         def key(row):
             return (asset, row["subject"], row["indicator"])
 
-        detected = (
-            {
-                "rows": split.monitored | "Key by series" >> beam.Map(lambda r: ((asset, r.subject, r.indicator), r)),
-                "states": states | "Key states by series" >> beam.Map(lambda s: (key(s), s)),
-                "sample": sample | "Key sample by series" >> beam.Map(lambda s: (key(s), s)),
-            }
-            | "Group by series" >> beam.CoGroupByKey()
-            | "Detect shifts"
-            >> beam.ParDo(
-                _DetectSeriesFn(config, self._order),
-                covariates=beam.pvalue.AsDict(covariates.means),
-            ).with_outputs("state", "baseline_sample", "rejects", main="shifts")
-        )
+        grouped = {
+            "rows": split.monitored | "Key by series" >> beam.Map(lambda r: ((asset, r.subject, r.indicator), r)),
+            "states": states | "Key states by series" >> beam.Map(lambda s: (key(s), s)),
+            "sample": sample | "Key sample by series" >> beam.Map(lambda s: (key(s), s)),
+        } | "Group by series" >> beam.CoGroupByKey()
+        # the asset's monitored series (with windows or a state): [shifts] false_alarms_per_year is divided over them
+        series = grouped | "Series of the asset" >> beam.combiners.Count.Globally()
+        detected = grouped | "Detect shifts" >> beam.ParDo(
+            _DetectSeriesFn(config, self._order),
+            covariates=beam.pvalue.AsDict(covariates.means),
+            series=beam.pvalue.AsSingleton(series),
+        ).with_outputs("state", "baseline_sample", "rejects", main="shifts")
         rejects = (covariates.rejects, detected.rejects) | "Collect shift rejects" >> beam.Flatten()
         return {
             "shifts": detected.shifts,

@@ -94,7 +94,8 @@ class _CommitFn(beam.DoFn):
             yield result
 
 
-def _remove_temporary(results, output_dir: str, run_id: str):
+def remove_run_temporary(results, output_dir: str, run_id: str):
+    """Delete the run's temporary folder once ``results`` (every commit) are in; returns them sorted."""
     table_writer.remove_temporary(BeamFiles(), output_dir, run_id)
     return sorted(results)
 
@@ -118,6 +119,10 @@ class WriteTables(beam.PTransform):
         the run has no rows for them. Dates that receive rows are always owned.
     flush_bytes : int
         Buffered bytes per table and partition after which a part file is written.
+    remove_temporary : bool
+        Delete the run's temporary folder after the commits (the default). False leaves that to
+        the caller: in a fleet every asset writes under the same run id, and the folder goes
+        once all of them are committed (:class:`~corrtransforms.beam.monitor.MonitorFleet`).
 
     Returns
     -------
@@ -139,10 +144,12 @@ class WriteTables(beam.PTransform):
         run_id: str,
         days: Union[None, Sequence[str], beam.PCollection] = None,
         flush_bytes: int = FLUSH_BYTES,
+        remove_temporary: bool = True,
     ):
         super().__init__()
         self._output, self._config, self._run_id = output_dir, config, run_id
         self._days, self._flush_bytes = days, flush_bytes
+        self._remove_temporary = remove_temporary
 
     def expand(self, tables: Dict[str, beam.PCollection]):
         names = sorted(tables)
@@ -167,8 +174,7 @@ class WriteTables(beam.PTransform):
             | "Group by partition" >> beam.GroupByKey()
             | "Commit partitions" >> beam.ParDo(_CommitFn(names, self._output))
         )
-        return (
-            results
-            | "Collect commits" >> beam.combiners.ToList()
-            | "Remove temporary files" >> beam.Map(_remove_temporary, self._output, self._run_id)
-        )
+        collected = results | "Collect commits" >> beam.combiners.ToList()
+        if not self._remove_temporary:
+            return collected | "Sort commits" >> beam.Map(sorted)
+        return collected | "Remove temporary files" >> beam.Map(remove_run_temporary, self._output, self._run_id)

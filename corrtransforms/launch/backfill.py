@@ -16,7 +16,7 @@ from __future__ import annotations
 
 import datetime as _dt
 import json
-from typing import Dict, List, Optional, Sequence
+from typing import Any, Dict, List, Optional, Sequence
 
 from corrtransforms.beam.filesystems import BeamFiles, list_archive, open_file
 from corrtransforms.config import AssetConfig
@@ -102,9 +102,17 @@ def _add(total: Dict[str, int], counters: Dict[str, int]) -> None:
         total[name] = total.get(name, 0) + int(value)
 
 
-def main(argv: Optional[List[str]] = None) -> Dict[str, int]:
+def main(argv: Optional[List[str]] = None) -> Dict[str, Any]:
     """Run the backfill chunk by chunk; returns the counters summed over the chunks (also
     printed as a summary)."""
+    from corrtransforms.launch import fleet
+
+    fleet_options = common.pipeline_options(argv, "backfill")
+    fleet_args = fleet_options.view_as(common.JobOptions)
+    if fleet.is_fleet(common.config_specs(fleet_args)):
+        if not fleet_args.output:
+            raise SystemExit("--output is required")
+        return fleet.backfill(fleet_options, fleet_args)
     options, args, config = common.parse_options(argv, "backfill")
     start, end = common.as_date(args.start), common.as_date(args.end)
     if start and end and end < start:

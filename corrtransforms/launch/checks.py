@@ -98,9 +98,20 @@ def check_usable(
     counters: Dict[str, int], config: AssetConfig, output: str, start: Optional[_dt.date], end: Optional[_dt.date]
 ) -> None:
     """SystemExit (status 3) after a run that planned no window or had every window rejected."""
+    message = nothing_usable(counters, config, output, start, end)
+    if message is None:
+        return
+    print(message, file=sys.stderr, flush=True)
+    raise SystemExit(NOTHING_USABLE)
+
+
+def nothing_usable(
+    counters: Dict[str, int], config: AssetConfig, output: str, start: Optional[_dt.date], end: Optional[_dt.date]
+) -> Optional[str]:
+    """Why a run is one of nothing usable (no window planned, or every one rejected), or None."""
     planned, computed = counters.get("windows_planned", 0), counters.get("windows_computed", 0)
     if planned and computed:
-        return
+        return None
     if not planned:
         message = (
             f"nothing to do: {config.name}: no data in {_days(start, end)} under "
@@ -114,5 +125,4 @@ def check_usable(
             f"nothing usable: {config.name}: all {planned} planned windows ({shown or _days(start, end)}) "
             f"were rejected; top reasons: {reasons or 'see the rejects table'}"
         )
-    print(message, file=sys.stderr, flush=True)
-    raise SystemExit(NOTHING_USABLE)
+    return message

@@ -41,8 +41,8 @@ from corrtransforms.stages import plan as archive_plan
 from corrtransforms.stages.write import provenance_metadata
 
 #: exit statuses (README "Commands"): done; configuration or runtime error; missing previous
-#: state; nothing to do or nothing usable
-DONE, ERROR, MISSING_STATE, NOTHING_USABLE = 0, 1, 2, checks.NOTHING_USABLE
+#: state; nothing to do or nothing usable; some assets of a fleet failed, the others done
+DONE, ERROR, MISSING_STATE, NOTHING_USABLE, SOME_ASSETS_FAILED = 0, 1, 2, checks.NOTHING_USABLE, 4
 
 
 def _date(text: str) -> str:
@@ -68,7 +68,12 @@ class JobOptions(PipelineOptions):
 
     @classmethod
     def _add_argparse_args(cls, parser):
-        parser.add_argument("--config", default=None, help="the asset's TOML configuration file (required)")
+        parser.add_argument(
+            "--config",
+            action="append",
+            default=None,
+            help="an asset's TOML file, a fleet folder or a glob (required; may be repeated)",
+        )
         parser.add_argument("--output", default=None, help="output root folder or filesystem URL (required)")
         parser.add_argument("--start", type=_date, default=None, help="first day (YYYY-MM-DD, asset time zone)")
         parser.add_argument("--end", type=_date, default=None, help="last day (YYYY-MM-DD, inclusive)")
@@ -106,7 +111,8 @@ class JobOptions(PipelineOptions):
 #: command and is an error)
 COMMAND_FLAGS = {
     "backfill": {
-        "--config": "FILE   the asset's TOML configuration (a path or filesystem URL; required)",
+        "--config": "CONFIG the asset's TOML file (a path or filesystem URL; required), or a fleet: a folder (each "
+        "*.toml not starting with _ is an asset; _defaults.toml merged under each), a glob, or --config repeated",
         "--output": "DIR    output root folder or filesystem URL (required)",
         "--start": "DAY    first day to process, YYYY-MM-DD in the asset's time zone (default: the first data)",
         "--end": "DAY    last day to process, inclusive (default: the last data)",
@@ -116,7 +122,8 @@ COMMAND_FLAGS = {
         "--stale_temporary_hours": "H      delete other runs' temporary files not written for H hours (24; 0 keeps)",
     },
     "nightly": {
-        "--config": "FILE   the asset's TOML configuration (a path or filesystem URL; required)",
+        "--config": "CONFIG the asset's TOML file (a path or filesystem URL; required), or a fleet: a folder (each "
+        "*.toml not starting with _ is an asset; _defaults.toml merged under each), a glob, or --config repeated",
         "--output": "DIR    output root folder or filesystem URL (required)",
         "--date": "DAY    the day to process, YYYY-MM-DD (default: yesterday in the asset's time zone)",
         "--rebuild_state": "       rebuild a missing previous state from the indicators table",
@@ -138,7 +145,9 @@ EXIT_STATUSES = """exit statuses:
   1  configuration or runtime error (a bad flag, key or path, a channel no file has, a failed run)
   2  missing previous state (nightly without an earlier state; see --rebuild_state)
   3  nothing to do or nothing usable: the requested days hold no data, or every planned window
-     was rejected"""
+     was rejected
+  4  a fleet (several assets): some assets failed (1, 2 or 3 above), the others are done; the
+     fleet summary (OUTPUT/_runs/fleet/RUN_ID.json) names each asset's outcome and reason"""
 BEAM_FLAGS_NOTE = (
     "Beam's pipeline flags pass to Beam (--runner, --direct_num_workers, --temp_location, "
     "filesystem credentials ...):\n  see "
@@ -363,6 +372,11 @@ def load_job_config(path: str) -> AssetConfig:
         raw = config_module.tomllib.loads(text)
     except config_module.tomllib.TOMLDecodeError as err:
         raise ConfigError("--config", path, f"is not valid TOML ({err})") from None
+    return parse_config(with_url_archive_path(raw, path), base_dir="", source=path)
+
+
+def with_url_archive_path(raw: Dict[str, Any], path: str) -> Dict[str, Any]:
+    """``raw`` with a relative ``[archive] path`` resolved against the folder of the URL ``path``."""
     archive = raw.get("archive")
     if isinstance(archive, dict) and isinstance(archive.get("path"), str):
         relative = archive["path"]
@@ -373,7 +387,7 @@ def load_job_config(path: str) -> AssetConfig:
                 **raw,
                 "archive": {**archive, "path": f"{scheme}://{posixpath.normpath(posixpath.join(folder, relative))}"},
             }
-    return parse_config(raw, base_dir="", source=path)
+    return raw
 
 
 def _own_flags() -> List[str]:
@@ -418,7 +432,7 @@ def parse_options(argv: Optional[List[str]], command: str):
         if not getattr(args, flag):
             raise SystemExit(f"--{flag} is required")
     try:
-        config = load_job_config(args.config)
+        config = load_job_config(single_config(args))
     except ConfigError as err:
         raise SystemExit(f"configuration error: {err}") from None
     check_archive(config)
@@ -428,6 +442,20 @@ def parse_options(argv: Optional[List[str]], command: str):
         as_date(args.end if command == "backfill" else args.date),
     )
     return options, args, config
+
+
+def config_specs(args) -> List[str]:
+    """The ``--config`` values in order (the flag may be repeated)."""
+    given = args.config
+    return [given] if isinstance(given, str) else list(given or [])
+
+
+def single_config(args) -> str:
+    """The one ``--config`` of a single-asset run."""
+    specs = config_specs(args)
+    if len(specs) != 1:
+        raise SystemExit(f"--config: one asset's file expected here, got {specs}")
+    return specs[0]
 
 
 def check_archive(config: AssetConfig) -> None:

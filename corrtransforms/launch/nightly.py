@@ -17,7 +17,7 @@ from __future__ import annotations
 import datetime as _dt
 import sys
 import zoneinfo
-from typing import Dict, List, Optional
+from typing import Any, Dict, List, Optional
 
 from corrtransforms import tables
 from corrtransforms.beam.filesystems import BeamFiles
@@ -88,8 +88,16 @@ def previous_states(output: str, config: AssetConfig, day: _dt.date, rebuild: bo
     return common.earlier_states(output, config, day, run_id)
 
 
-def main(argv: Optional[List[str]] = None) -> Dict[str, int]:
+def main(argv: Optional[List[str]] = None) -> Dict[str, Any]:
     """Run one night; returns the counters (also printed as a summary)."""
+    from corrtransforms.launch import fleet
+
+    fleet_options = common.pipeline_options(argv, "nightly")
+    fleet_args = fleet_options.view_as(common.JobOptions)
+    if fleet.is_fleet(common.config_specs(fleet_args)):
+        if not fleet_args.output:
+            raise SystemExit("--output is required")
+        return fleet.nightly(fleet_options, fleet_args)
     options, args, config = common.parse_options(argv, "nightly")
     day = common.as_date(args.date) or yesterday(config)
     run_id = args.run_id or common.new_run_id()

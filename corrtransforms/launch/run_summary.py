@@ -129,12 +129,23 @@ def build(
             "windows_needed": config.baseline.windows,
             "until": None if config.baseline.end is None else config.baseline.end.isoformat(),
         },
+        "detector_limits": detector_limits(states, config),
         "new_episodes": [_episode_entry(e, levels) for e in episodes if _in_days(e["first_alarm"], config, start, end)],
         "open_episodes": [_episode_entry(e, levels) for e in episodes if e["status"] == "open"],
         "next": (
             f"corrtransforms-report --output {output}   (from a checkout: python -m pipelines.report --output {output})"
         ),
     }
+
+
+def detector_limits(states, config: AssetConfig) -> Dict[str, Any]:
+    """The CUSUM h and EWMA L in use (range over the series' latest states; the configured or
+    budget value where a series has not fitted its baseline yet) and the false-alarm budget."""
+    found: Dict[str, Any] = {"false_alarms_per_year": config.shifts.false_alarms_per_year}
+    for column in ("cusum_h_used", "ewma_L_used"):
+        values = [v for v in states.column(column).to_pylist() if v is not None] if states.num_rows else []
+        found[column] = [min(values), max(values)] if values else None
+    return found
 
 
 def _baseline_line(b: Dict[str, Any]) -> str:
@@ -168,6 +179,19 @@ def text(summary: Dict[str, Any]) -> str:
         + "".join(f"; {reason} {n}" for reason, n in w["rejected_by_reason"].items()),
         _baseline_line(summary["baseline"]),
     ]
+    limits = summary.get("detector_limits") or {}
+    if limits.get("cusum_h_used") or limits.get("ewma_L_used"):
+        budget = limits.get("false_alarms_per_year")
+        lines.append(
+            "detector limits in use: "
+            + ", ".join(
+                f"{name} {lo:.4g}" + ("" if hi == lo else f" to {hi:.4g}")
+                for name, pair in (("CUSUM h", limits.get("cusum_h_used")), ("EWMA L", limits.get("ewma_L_used")))
+                if pair
+                for lo, hi in [pair]
+            )
+            + (f" (from false_alarms_per_year = {budget:g})" if budget else "")
+        )
     for key, title in (("new_episodes", "new shift episodes"), ("open_episodes", "open shift episodes")):
         lines.append(f"{title}: {len(summary[key])}" + (":" if summary[key] else ""))
         lines += [_episode_line(e) for e in summary[key]]

@@ -497,3 +497,74 @@ def _limit_for_estimated_parameters(chart, limit, n, k, smoothing) -> float:
     if excess(3.0 * limit) > 0:
         return 3.0 * limit
     return round(float(_optimize.brentq(excess, limit, 3.0 * limit, xtol=1e-4)), 4)
+
+
+# --------------------------------------------------------------------------------------------
+# Limits from a false-alarm budget
+
+SECONDS_PER_YEAR = 365.25 * 86400.0
+
+
+def limit_for_run_length(chart: str, arl0: float, k: float = 0.5, smoothing: float = 0.1) -> float:
+    """CUSUM h or EWMA L whose zero-start in-control ARL (known parameters, N(0, 1) data) is ``arl0``.
+
+    Parameters
+    ----------
+    chart : {"cusum", "ewma"}
+    arl0 : float
+        Wanted in-control average run length in windows (> 1).
+    k, smoothing : float
+        CUSUM reference value; EWMA lambda.
+
+    Returns
+    -------
+    float
+        ``h`` (two-sided tabular CUSUM, :func:`cusum_arl_integral_equation`) or ``L`` (two-sided
+        EWMA with asymptotic limits, :func:`ewma_arl_integral_equation`), to 4 decimals.
+
+    Notes
+    -----
+    The ARL increases monotonically with the limit, so the root of ``log ARL(limit) - log arl0``
+    is bracketed from ``[0.05, 1]`` upwards (the upper end grown by a quarter until the ARL exceeds
+    ``arl0``) and found by Brent's method.
+    """
+    return _limit_for_run_length(chart, float(arl0), float(k), float(smoothing))
+
+
+@functools.lru_cache(maxsize=256)
+def _limit_for_run_length(chart, arl0, k, smoothing) -> float:
+    if chart not in CHARTS:
+        raise ValueError(f"chart = {chart!r}: must be one of {CHARTS}")
+    if not arl0 > 1.0:
+        raise ValueError(f"arl0 = {arl0!r}: must exceed 1 window")
+
+    def excess(limit):
+        if chart == "cusum":
+            arl = cusum_arl_integral_equation(k, limit, nodes=40)
+        else:
+            arl = ewma_arl_integral_equation(smoothing, limit, nodes=64)
+        if not (np.isfinite(arl) and arl > 0):  # beyond the solver's range: far above arl0
+            return 50.0
+        return float(np.log(arl) - np.log(arl0))
+
+    low, high = 0.05, 1.0
+    while excess(high) < 0:
+        low, high = high, 1.25 * high
+        if high > 100.0:
+            raise ValueError(f"arl0 = {arl0!r}: no {chart} limit up to 100 reaches it")
+    return round(float(_optimize.brentq(excess, low, high, xtol=1e-5)), 4)
+
+
+def run_length_for_budget(false_alarms_per_year: float, series: int, windows_per_year: float, charts: int) -> float:
+    """In-control ARL each chart of each series needs so that an asset of ``series`` monitored
+    series, each charted by ``charts`` detectors, raises ``false_alarms_per_year`` on average.
+
+    The budget is split evenly: each of the ``series * charts`` charts may raise
+    ``false_alarms_per_year / (series * charts)`` alarms a year, one every
+    ``windows_per_year * series * charts / false_alarms_per_year`` windows. Alarms of
+    independent charts add (the union's rate is at most the sum, so the split is conservative
+    where charts of one series alarm together).
+    """
+    if not false_alarms_per_year > 0 or series < 1 or charts < 1 or not windows_per_year > 0:
+        raise ValueError("false_alarms_per_year, windows_per_year must be > 0 and series, charts >= 1")
+    return float(windows_per_year) * int(series) * int(charts) / float(false_alarms_per_year)

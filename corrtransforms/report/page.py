@@ -23,6 +23,7 @@ from corrtransforms.report.summaries import (
     OutputTables,
     _text_time,
     asset_summaries,
+    fleet_overview,
     read_output,
     reject_counts,
     report_episodes,
@@ -302,6 +303,42 @@ def render_index(
     return "\n".join(parts) + "\n"
 
 
+def asset_page_name(asset: str) -> str:
+    """The file of an asset's page beside the fleet overview (asset names are folder-safe)."""
+    return f"asset-{asset}.html"
+
+
+def render_overview(output: OutputTables, rows: List[Dict], generated: str) -> str:
+    """The overview page of a fleet: one row per asset, linking to the asset's page."""
+    parts = _page_head(output, generated)
+    parts.append('<h2 id="overview">Assets</h2>')
+    parts.append(
+        "<table><tr><th>asset</th><th>last day</th><th>windows that day</th><th>open episodes</th>"
+        "<th>series in baseline</th><th>last window (UTC)</th></tr>"
+    )
+    for r in rows:
+        flag = ' class="open"' if r["open_episodes"] else ""
+        parts.append(
+            f'<tr{flag}><td><a href="{_e(asset_page_name(r["asset"]))}">{_e(r["asset"])}</a></td>'
+            f'<td>{_e(r["last_day"])}</td><td class="num">{r["windows_last_day"]}</td>'
+            f'<td class="num">{r["open_episodes"]}</td>'
+            f'<td class="num">{r["series_in_baseline"]} of {r["series"]}</td><td>{_e(r["last_window"])}</td></tr>'
+        )
+    parts.append("</table>")
+    parts.append(
+        "<p>Windows that day: windows with correlation rows on the asset's last day with any. "
+        "Series in baseline: monitored series still accumulating their baseline sample (no "
+        "alarms yet), of all series with a detector state.</p>"
+    )
+    parts.append(f'<p class="caution">{_e(CAUTION)}</p>')
+    parts.append("</body></html>")
+    return "\n".join(parts) + "\n"
+
+
+def _of_asset(items: List[Dict], asset: str) -> List[Dict]:
+    return [i for i in items if i.get("asset") == asset]
+
+
 def _shown_folder(folder: str) -> str:
     """The output folder as the page names it: a URL as given, a local path made absolute."""
     return folder if "://" in folder else os.path.abspath(folder)
@@ -340,7 +377,15 @@ def write_report(output_dir: str, report_dir: Optional[str] = None, store=None) 
                 else found["status"]
             )
     generated = _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
-    page = render_index(output, assets, rejects, episodes, source, plots, generated)
+    if len(assets) > 1:  # a fleet: the overview first, one page per asset beside it
+        for a in assets:
+            name = a["asset"]
+            mine = (_of_asset(rejects, name), _of_asset(episodes, name), source, _of_asset(plots, name))
+            with store.create(store.join(report_dir, asset_page_name(name))) as handle:
+                handle.write(render_index(output, [a], *mine, generated).encode("utf-8"))
+        page = render_overview(output, fleet_overview(output, episodes, baselines), generated)
+    else:
+        page = render_index(output, assets, rejects, episodes, source, plots, generated)
     index = store.join(report_dir, "index.html")
     with store.create(index) as handle:
         handle.write(page.encode("utf-8"))

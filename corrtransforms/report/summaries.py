@@ -13,7 +13,7 @@ import dataclasses
 import datetime as _dt
 import posixpath
 import re
-from typing import Dict, List, Optional, Sequence, Tuple
+from typing import Any, Dict, List, Optional, Sequence, Tuple
 
 import numpy as np
 import pyarrow as pa
@@ -356,3 +356,30 @@ def shift_percent(shift_size, level) -> Optional[float]:
     if shift_size is None or level is None or not np.isfinite(shift_size) or level == 0:
         return None
     return 100.0 * float(shift_size) / abs(level)
+
+
+def fleet_overview(
+    output: OutputTables, episodes: List[Dict], baselines: Dict[Tuple[str, str, str], Dict]
+) -> List[Dict]:
+    """One row per asset for the overview page of a fleet: the last day with windows and the
+    windows computed on it (correlations table), the open episodes, the series still
+    accumulating their baseline (latest state rows) and the last window's start (UTC)."""
+    windows = output.get("correlations")
+    rows = []
+    for asset in sorted({a["asset"] for a in asset_summaries(output)}):
+        row: Dict[str, Any] = {"asset": asset, "last_day": "", "windows_last_day": 0, "last_window": ""}
+        if windows is not None and _has_asset(windows, asset):
+            mine = _for_asset(windows, asset)
+            dates = mine.column("date").to_pylist()
+            starts = _us(mine.column("window_start"))
+            last_day = max(d for d in dates if d)
+            row["last_day"] = last_day
+            row["windows_last_day"] = len({t for d, t in zip(dates, starts) if d == last_day})
+            row["last_window"] = _text_time(int(starts.max()))
+        row["open_episodes"] = sum(1 for e in episodes if e["asset"] == asset and e["status"] == "open")
+        row["series_in_baseline"] = sum(
+            1 for k, b in baselines.items() if k[0] == asset and b["status"] == "accumulating"
+        )
+        row["series"] = sum(1 for k in baselines if k[0] == asset)
+        rows.append(row)
+    return rows

@@ -43,7 +43,12 @@ import numpy as np
 import pyarrow as pa
 
 from corrtransforms import tables
-from corrtransforms.numerics.arl import limit_for_estimated_parameters
+from corrtransforms.numerics.arl import (
+    SECONDS_PER_YEAR,
+    limit_for_estimated_parameters,
+    limit_for_run_length,
+    run_length_for_budget,
+)
 from corrtransforms.numerics.covariate_model import BaselineModel, fit_baseline_model
 from corrtransforms.numerics.detectors import cusum_path, cusum_run_lengths, cusum_run_sums, ewma_limits, ewma_path
 from corrtransforms.numerics.robust import robust_location_scale
@@ -893,6 +898,45 @@ class SeriesOutcome:
 
 def _empty_outcome(rejects) -> SeriesOutcome:
     return SeriesOutcome(tables.SHIFTS.empty_table(), tables.STATE.empty_table(), rejects)
+
+
+def budget_limits(config, series: int) -> Dict[str, float]:
+    """CUSUM h and EWMA L from ``[shifts] false_alarms_per_year`` for an asset of ``series``
+    monitored series (the charts in use only; explicit ``cusum_h`` / ``ewma_L`` win: left out).
+
+    The budget is divided over the series and their charts
+    (:func:`~corrtransforms.numerics.arl.run_length_for_budget`), with ``[windows] hop_s`` giving
+    the windows per year, and each limit is the one whose in-control ARL is that many windows
+    (:func:`~corrtransforms.numerics.arl.limit_for_run_length`). The detectors chart
+    standardised one-step AR(1) prediction errors, independent N(0, 1) when in control, so the
+    ARL of independent data applies to serially correlated indicators too. Empty without a
+    budget. These are the known-parameter limits; the fit widens them for the baseline's
+    estimation error as it widens configured ones (:func:`limit_for_estimated_parameters`).
+    """
+    s = config.shifts
+    if s.false_alarms_per_year is None:
+        return {}
+    charts = [c for c in ("cusum", "ewma") if s.detector in (c, "both")]
+    windows_per_year = SECONDS_PER_YEAR / config.windows.hop_s
+    arl0 = run_length_for_budget(s.false_alarms_per_year, max(int(series), 1), windows_per_year, len(charts))
+    found: Dict[str, float] = {}
+    if "cusum" in charts and "cusum_h" not in s.explicit_limits:
+        found["cusum_h"] = limit_for_run_length("cusum", arl0, k=s.cusum_k)
+    if "ewma" in charts and "ewma_L" not in s.explicit_limits:
+        found["ewma_L"] = limit_for_run_length("ewma", arl0, smoothing=s.ewma_lambda)
+    return found
+
+
+def with_budget_limits(config, series: int):
+    """``config`` with ``[shifts] cusum_h`` / ``ewma_L`` replaced by :func:`budget_limits` (the
+    same object without a budget). The state's settings digest names the budget, not these
+    values (:func:`corrtransforms.stages.state.settings_digest`), so a later run with another
+    series count still resumes; the limits a series uses are those stored at its baseline fit
+    (``cusum_h_used`` / ``ewma_L_used``)."""
+    limits = budget_limits(config, series)
+    if not limits:
+        return config
+    return dataclasses.replace(config, shifts=dataclasses.replace(config.shifts, **limits))
 
 
 def row_role(row: IndicatorRow, config) -> Optional[str]:

@@ -78,6 +78,16 @@ def settings_digest(config, order: int = 1) -> str:
         "order": order,
         "format": 1,
     }
+    if s.false_alarms_per_year is not None:
+        # h and L follow from the budget (and the series count), unless given: the budget is the setting
+        plain["shifts"] = [
+            s.detector,
+            s.cusum_k,
+            s.cusum_h if "cusum_h" in s.explicit_limits else "budget",
+            s.ewma_lambda,
+            s.ewma_L if "ewma_L" in s.explicit_limits else "budget",
+        ]
+        plain["false_alarms_per_year"] = s.false_alarms_per_year
     text = json.dumps(plain, sort_keys=True, separators=(",", ":"))
     return hashlib.sha256(text.encode("utf-8")).hexdigest()[:16]
 
@@ -564,6 +574,7 @@ def replay_tables(indicators: pa.Table, config: AssetConfig) -> Replay:
         covariates[start], found_rejects = shift_series.covariates_for_window(start, found, config.name)
         rejects.extend(found_rejects)
     last, every, samples = [], [], []
+    config = shift_series.with_budget_limits(config, len(series))
     for key in sorted(series):
         outcome = shift_series.detect_shifts_for_rows(series[key], covariates, config)
         rejects.extend(outcome.rejects)
