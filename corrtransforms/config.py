@@ -29,6 +29,7 @@ else:  # pragma: no cover
     import tomli as tomllib
 
 from corrtransforms.numerics.correlation import DETRENDS, ESTIMATORS, WEIGHTINGS
+from corrtransforms.numerics.covariate_model import MODELS as COVARIATE_MODELS
 from corrtransforms.storage_precision import STORAGES
 from corrtransforms.timeutil import FILE_TIME_FIELDS, compile_file_time_pattern
 
@@ -178,6 +179,8 @@ class ShiftsConfig:
     compensate: Optional[Tuple[str, ...]] = None
     #: indicators the detectors run on (the others are still written to the indicators table)
     indicators: Tuple[str, ...] = DEFAULT_MONITORED
+    #: covariate model: "linear", "quadratic" or "hinge" (a knee in the first compensated covariate)
+    model: str = "linear"
 
 
 @dataclasses.dataclass(frozen=True)
@@ -263,7 +266,7 @@ _KNOWN = {
     "modes": {"name", "channel", "channels", "reference_channels", "reference_shape", "band_hz"},
     "baseline": {"start", "end", "windows", "min_windows"},
     "screening": {"enabled", "segments", "alpha", "action"},
-    "shifts": {"detector", "cusum_k", "cusum_h", "ewma_lambda", "ewma_L", "compensate", "indicators"},
+    "shifts": {"detector", "cusum_k", "cusum_h", "ewma_lambda", "ewma_L", "compensate", "indicators", "model"},
     "reading": {"task_bytes", "grid_tolerance", "clip_fraction"},
 }
 
@@ -749,6 +752,7 @@ def _parse_shifts(raw: Mapping[str, Any], channels: ChannelsConfig) -> ShiftsCon
         ewma_lambda=_number("[shifts] ewma_lambda", sh.get("ewma_lambda", 0.1), low=0, high=1, low_open=True),
         ewma_L=_number("[shifts] ewma_L", sh.get("ewma_L", 4.3), low=0, low_open=True),
         compensate=compensate,
+        model=_choice("[shifts] model", sh.get("model", "linear"), tuple(COVARIATE_MODELS)),
     )
 
 

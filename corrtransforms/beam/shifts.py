@@ -14,7 +14,7 @@ ready for :class:`corrtransforms.beam.write.WriteTables` (tables ``shifts``, ``s
 
 from __future__ import annotations
 
-from typing import Any, Iterable, Union
+from typing import Any, Iterable, Optional, Union
 
 import apache_beam as beam
 import pyarrow as pa
@@ -59,7 +59,7 @@ class _CovariateMeansFn(beam.DoFn):
 
 
 class _DetectSeriesFn(beam.DoFn):
-    def __init__(self, config: AssetConfig, order: int):
+    def __init__(self, config: AssetConfig, order: Optional[int]):
         self._config, self._order = config, order
 
     def setup(self):
@@ -120,8 +120,8 @@ class DetectShifts(beam.PTransform):
         series fresh (a backfill from the first day). A
         :class:`~corrtransforms.beam.stored_state.StoredState` reads them (and the baseline
         sample) inside the pipeline, so the submitted job does not grow with the history.
-    order : {1, 2}
-        Covariate model order.
+    order : {1, 2}, optional
+        Covariate model order (None: ``[shifts] model`` of the configuration).
     baseline_sample : pyarrow.Table, iterable of BASELINE_SAMPLE rows, or PCollection, optional
         The baseline sample of series whose resumed state still accumulates its baseline (read
         from the output when ``initial_states`` is a StoredState).
@@ -152,7 +152,7 @@ class DetectShifts(beam.PTransform):
         self,
         config: AssetConfig,
         initial_states: Union[None, StoredState, pa.Table, Iterable[Any], beam.PCollection] = None,
-        order: int = 1,
+        order: Optional[int] = None,
         baseline_sample: Union[None, pa.Table, Iterable[Any], beam.PCollection] = None,
     ):
         super().__init__()
