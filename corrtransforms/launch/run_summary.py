@@ -44,6 +44,9 @@ def run_states(output: str, config: AssetConfig, start: Optional[_dt.date], end:
 def baseline_status(states) -> Dict[str, Any]:
     """Series of the latest state rows by phase; the accumulating ones' fewest windows so far and
     the windows their baseline needs (``model_n`` is unknown until the fit: the configured count)."""
+    # the smoothers' rows of smoothed covariates (phase "smoother") are no monitored series
+    kept = [i for i, p in enumerate(states.column("phase").to_pylist()) if p != "smoother"]
+    states = states.take(kept)
     phases = states.column("phase").to_pylist()
     seen = [n for n, p in zip(states.column("windows_seen").to_pylist(), phases) if p == "accumulating"]
     return {"series": len(phases), "accumulating": len(seen), "fewest_windows_seen": min(seen) if seen else None}

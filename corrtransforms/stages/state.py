@@ -73,7 +73,7 @@ def settings_digest(config, order: Optional[int] = None) -> str:
         settings of ``[shifts]``, the compensated covariates, the time zone, the order and,
         for the hinge model only, ``"model": "hinge"`` (so the digests of linear and quadratic
         models, which the order already tells apart, stay those of states written before
-        ``[shifts] model`` existed).
+        ``[shifts] model`` existed), and the covariates' ``smoothing_h`` when any is set.
     """
     order, hinge = covariate_model_of(config, order)
     b, s = config.baseline, config.shifts
@@ -92,6 +92,9 @@ def settings_digest(config, order: Optional[int] = None) -> str:
     }
     if hinge:
         plain["model"] = "hinge"
+    smoothing = config.covariate_smoothing_h()
+    if smoothing:  # only when set, so that earlier digests stay valid
+        plain["smoothing_h"] = smoothing
     text = json.dumps(plain, sort_keys=True, separators=(",", ":"))
     return hashlib.sha256(text.encode("utf-8")).hexdigest()[:16]
 
@@ -574,6 +577,8 @@ def replay_tables(indicators: pa.Table, config: AssetConfig) -> Replay:
         Findings of the replay (duplicates, failures), as the shifts stage would report them.
     """
     from corrtransforms.stages import shifts as shift_series  # the engine imports this module
+    from corrtransforms.stages.covariate_smoothing import smooth_covariate_means
+    from corrtransforms.stages.summaries import latest_states as summaries_latest
 
     by_window: Dict[int, List[IndicatorRow]] = {}
     series: Dict[Tuple[str, str], List[IndicatorRow]] = {}
@@ -588,7 +593,13 @@ def replay_tables(indicators: pa.Table, config: AssetConfig) -> Replay:
     for start, found in by_window.items():
         covariates[start], found_rejects = shift_series.covariates_for_window(start, found, config.name)
         rejects.extend(found_rejects)
+    covariates, smoother_states, smoother_rejects = smooth_covariate_means(covariates, config)
+    rejects.extend(smoother_rejects)
     last, every, samples = [], [], []
+    if smoother_states:
+        smoothers = states_table(smoother_states)
+        every.append(smoothers)
+        last.append(summaries_latest(smoothers))
     for key in sorted(series):
         outcome = shift_series.detect_shifts_for_rows(series[key], covariates, config)
         rejects.extend(outcome.rejects)

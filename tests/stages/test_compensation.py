@@ -112,3 +112,23 @@ def test_the_run_summary_lists_the_knee_and_both_slopes():
     assert entry["covariate"] == "temperature" and entry["quality"] == "ok"
     line = run_summary._hinge_line(entry)
     assert line.startswith("hinge model of deck mode_freq_hz in temperature: knee ")
+
+
+def test_smoothing_h_names_a_covariate_and_a_positive_time_constant():
+    from corrtransforms.config import parse_config
+
+    def config(smoothing):
+        raw = {
+            "asset": {"name": "invented-bridge"},
+            "archive": {"path": "unused", "sample_rate_hz": 50.0},
+            "channels": {"covariates": ["temperature"], "smoothing_h": smoothing},
+        }
+        return parse_config(raw)
+
+    assert config({"temperature": 6}).covariate_smoothing_h() == {"temperature": 6.0}
+    with pytest.raises(ConfigError, match=r"smoothing_h.wind = 2: names no covariate"):
+        config({"wind": 2})
+    with pytest.raises(ConfigError, match=r"smoothing_h.temperature = 0: must be a number in \(0, inf\]"):
+        config({"temperature": 0})
+    assert shift_state.settings_digest(config({"temperature": 6})) != shift_state.settings_digest(config({}))
+    assert shift_state.settings_digest(config({})) == shift_state.settings_digest(config({}))
