@@ -29,6 +29,7 @@ else:  # pragma: no cover
     import tomli as tomllib
 
 from corrtransforms.numerics.correlation import DETRENDS, ESTIMATORS, WEIGHTINGS
+from corrtransforms.numerics.covariate_model import MODELS as COVARIATE_MODELS
 from corrtransforms.storage_precision import STORAGES
 from corrtransforms.timeutil import FILE_TIME_FIELDS, compile_file_time_pattern
 
@@ -90,6 +91,8 @@ class ChannelsConfig:
     names: Optional[Tuple[str, ...]] = None
     covariates: Tuple[str, ...] = ()
     units: Mapping[str, str] = dataclasses.field(default_factory=dict)
+    #: covariate name -> time constant in hours of its trailing exponential mean (thermal inertia)
+    smoothing_h: Mapping[str, float] = dataclasses.field(default_factory=dict)
 
     def unit(self, name: str) -> str:
         return self.units.get(name, "")
@@ -183,6 +186,8 @@ class ShiftsConfig:
     false_alarms_per_year: Optional[float] = None
     #: which of "cusum_h" and "ewma_L" the file gives explicitly (they win over the budget)
     explicit_limits: Tuple[str, ...] = ()
+    #: covariate model: "linear", "quadratic" or "hinge" (a knee in the first compensated covariate)
+    model: str = "linear"
 
 
 @dataclasses.dataclass(frozen=True)
@@ -214,6 +219,10 @@ class AssetConfig:
     source: str = ""
     #: messages about the configuration that are not errors (deprecated forms still accepted)
     notes: Tuple[str, ...] = ()
+
+    def covariate_smoothing_h(self) -> Dict[str, float]:
+        """Time constant (hours) of each smoothed covariate (``[channels] smoothing_h``)."""
+        return dict(sorted(self.channels.smoothing_h.items()))
 
     def compensated_covariates(self) -> Tuple[str, ...]:
         if self.shifts.compensate is None:
@@ -262,7 +271,7 @@ _KNOWN = {
         "file_time_pattern",
         "file_span_h",
     },
-    "channels": {"names", "covariates", "units"},
+    "channels": {"names", "covariates", "units", "smoothing_h"},
     "windows": {"length_s", "hop_s", "min_coverage", "align", "offset_s", "record_gap_s"},
     "correlation": {"max_lag_s", "pairs", "estimator", "detrend", "weighting", "target_rel_error", "storage"},
     "modes": {"name", "channel", "channels", "reference_channels", "reference_shape", "band_hz"},
@@ -277,6 +286,7 @@ _KNOWN = {
         "compensate",
         "indicators",
         "false_alarms_per_year",
+        "model",
     },
     "reading": {"task_bytes", "grid_tolerance", "clip_fraction"},
 }
@@ -521,7 +531,18 @@ def _parse_channels(raw: Mapping[str, Any]) -> ChannelsConfig:
             )
     if not names and names is not None:
         raise ConfigError("[channels] names", [], "must list at least one channel, or be omitted for all")
-    return ChannelsConfig(names=names, covariates=covariates, units=dict(units))
+    smoothing = _smoothing_h("[channels] smoothing_h", ch.get("smoothing_h", {}), covariates)
+    return ChannelsConfig(names=names, covariates=covariates, units=dict(units), smoothing_h=smoothing)
+
+
+def _smoothing_h(key: str, value: Any, covariates: Tuple[str, ...]) -> Dict[str, float]:
+    """``smoothing_h = {covariate = hours}``: a table of covariate names to time constants > 0."""
+    if not isinstance(value, Mapping):
+        raise ConfigError(key, value, "must be a table {covariate name = time constant in hours}")
+    for name in value:
+        if name not in covariates:
+            raise ConfigError(f"{key}.{name}", value[name], f"names no covariate; covariates: {list(covariates)}")
+    return {name: _number(f"{key}.{name}", hours, low=0, low_open=True) for name, hours in sorted(value.items())}
 
 
 def _parse_windows(raw: Mapping[str, Any], archive: ArchiveConfig) -> WindowsConfig:
@@ -769,6 +790,7 @@ def _parse_shifts(raw: Mapping[str, Any], channels: ChannelsConfig) -> ShiftsCon
             else None
         ),
         explicit_limits=tuple(key for key in ("cusum_h", "ewma_L") if key in sh),
+        model=_choice("[shifts] model", sh.get("model", "linear"), tuple(COVARIATE_MODELS)),
     )
 
 

@@ -187,7 +187,12 @@ STATE = pa.schema(
             "see unit column",
             "median (no covariates) or regression intercept at the covariate centres",
         ),
-        _f("model_coefficients", pa.list_(pa.float64()), "", "regression coefficients, linear terms then squares"),
+        _f(
+            "model_coefficients",
+            pa.list_(pa.float64()),
+            "",
+            "regression coefficients, linear terms then squares (quadratic) or the slope change above model_knee",
+        ),
         _f(
             "model_covariate_center",
             pa.list_(pa.float64()),
@@ -265,12 +270,20 @@ STATE = pa.schema(
             "",
             "windows in the baseline sample so far (their rows: baseline_sample table, days up to this one)",
         ),
+        _f("model_form", pa.string(), "", "configured covariate model: linear, quadratic or hinge ([shifts] model)"),
+        _f(
+            "model_knee",
+            pa.float64(),
+            "",
+            "hinge model: knee in units of the first covariate, model_coefficients ending with the slope change "
+            "above it (null: no knee, also a hinge fallen back to linear, quality knee_not_in_baseline)",
+        ),
     ]
 )
 
 #: columns added to a schema after files were first written with it: read back as nulls from
 #: older files (corrtransforms.stages.write.conform)
-ADDED_COLUMNS = {"sample_count"}
+ADDED_COLUMNS = {"sample_count", "model_form", "model_knee"}
 
 # The baseline sample of each series while its baseline accumulates: one row per window that
 # entered the sample, written on that window's own day, so no state row ever carries the sample

@@ -14,7 +14,7 @@ ready for :class:`corrtransforms.beam.write.WriteTables` (tables ``shifts``, ``s
 
 from __future__ import annotations
 
-from typing import Any, Iterable, Union
+from typing import Any, Iterable, Optional, Union
 
 import apache_beam as beam
 import pyarrow as pa
@@ -24,7 +24,8 @@ from corrtransforms.beam.stored_state import ReadBaselineSample, ReadLatestState
 from corrtransforms.config import AssetConfig
 from corrtransforms.records import IndicatorRow
 from corrtransforms.stages import shifts as shift_series
-from corrtransforms.stages.state import ShiftState
+from corrtransforms.stages.covariate_smoothing import SMOOTHER_INDICATOR, smooth_covariate_means
+from corrtransforms.stages.state import ShiftState, states_table
 
 
 class _SplitRowsFn(beam.DoFn):
@@ -58,8 +59,25 @@ class _CovariateMeansFn(beam.DoFn):
         yield window_start_us, means
 
 
+class _SmoothCovariatesFn(beam.DoFn):
+    """All ``(window, means)`` pairs of the run (one list) -> smoothed pairs, the smoothers' day
+    states (``"state"``) and findings (``"rejects"``)."""
+
+    def __init__(self, config: AssetConfig):
+        self._config = config
+
+    def process(self, pairs, resume_rows):
+        smoothers = [r for r in resume_rows if r["indicator"] == SMOOTHER_INDICATOR]
+        means, states, rejects = smooth_covariate_means(dict(pairs), self._config, smoothers)
+        for reject in rejects:
+            yield beam.pvalue.TaggedOutput("rejects", reject)
+        if states:
+            yield beam.pvalue.TaggedOutput("state", states_table(states))
+        yield from means.items()
+
+
 class _DetectSeriesFn(beam.DoFn):
-    def __init__(self, config: AssetConfig, order: int):
+    def __init__(self, config: AssetConfig, order: Optional[int]):
         self._config, self._order = config, order
 
     def setup(self):
@@ -121,8 +139,8 @@ class DetectShifts(beam.PTransform):
         series fresh (a backfill from the first day). A
         :class:`~corrtransforms.beam.stored_state.StoredState` reads them (and the baseline
         sample) inside the pipeline, so the submitted job does not grow with the history.
-    order : {1, 2}
-        Covariate model order.
+    order : {1, 2}, optional
+        Covariate model order (None: ``[shifts] model`` of the configuration).
     baseline_sample : pyarrow.Table, iterable of BASELINE_SAMPLE rows, or PCollection, optional
         The baseline sample of series whose resumed state still accumulates its baseline (read
         from the output when ``initial_states`` is a StoredState).
@@ -153,7 +171,7 @@ class DetectShifts(beam.PTransform):
         self,
         config: AssetConfig,
         initial_states: Union[None, StoredState, pa.Table, Iterable[Any], beam.PCollection] = None,
-        order: int = 1,
+        order: Optional[int] = None,
         baseline_sample: Union[None, pa.Table, Iterable[Any], beam.PCollection] = None,
     ):
         super().__init__()
@@ -185,6 +203,18 @@ class DetectShifts(beam.PTransform):
             states = self._rows_of(pipeline, self._initial_states, "Initial states")
             sample = self._rows_of(pipeline, self._baseline_sample, "Initial baseline sample")
 
+        means, smoother_outputs = covariates.means, []
+        if config.covariate_smoothing_h():
+            smoothed = (
+                covariates.means
+                | "All covariate means of the run" >> beam.combiners.ToList()
+                | "Smooth covariates in time order"
+                >> beam.ParDo(_SmoothCovariatesFn(config), beam.pvalue.AsList(states)).with_outputs(
+                    "state", "rejects", main="means"
+                )
+            )
+            means, smoother_outputs = smoothed.means, [smoothed]
+
         def key(row):
             return (asset, row["subject"], row["indicator"])
 
@@ -197,13 +227,14 @@ class DetectShifts(beam.PTransform):
         series = grouped | "Series of the asset" >> beam.combiners.Count.Globally()
         detected = grouped | "Detect shifts" >> beam.ParDo(
             _DetectSeriesFn(config, self._order),
-            covariates=beam.pvalue.AsDict(covariates.means),
+            covariates=beam.pvalue.AsDict(means),
             series=beam.pvalue.AsSingleton(series),
         ).with_outputs("state", "baseline_sample", "rejects", main="shifts")
-        rejects = (covariates.rejects, detected.rejects) | "Collect shift rejects" >> beam.Flatten()
+        rejects = [covariates.rejects, detected.rejects] + [o.rejects for o in smoother_outputs]
+        state = [detected.state] + [o.state for o in smoother_outputs]
         return {
             "shifts": detected.shifts,
-            "state": detected.state,
+            "state": tuple(state) | "Collect states" >> beam.Flatten(),
             "baseline_sample": detected.baseline_sample,
-            "rejects": rejects,
+            "rejects": tuple(rejects) | "Collect shift rejects" >> beam.Flatten(),
         }

@@ -44,6 +44,9 @@ def run_states(output: str, config: AssetConfig, start: Optional[_dt.date], end:
 def baseline_status(states) -> Dict[str, Any]:
     """Series of the latest state rows by phase; the accumulating ones' fewest windows so far and
     the windows their baseline needs (``model_n`` is unknown until the fit: the configured count)."""
+    # the smoothers' rows of smoothed covariates (phase "smoother") are no monitored series
+    kept = [i for i, p in enumerate(states.column("phase").to_pylist()) if p != "smoother"]
+    states = states.take(kept)
     phases = states.column("phase").to_pylist()
     seen = [n for n, p in zip(states.column("windows_seen").to_pylist(), phases) if p == "accumulating"]
     return {"series": len(phases), "accumulating": len(seen), "fewest_windows_seen": min(seen) if seen else None}
@@ -59,6 +62,34 @@ def _baseline_levels(states) -> Dict[tuple, float]:
         )
         if loc is not None
     }
+
+
+def hinge_models(states) -> List[Dict[str, Any]]:
+    """The fitted hinge models of the latest state rows: per series its knee (in units of the
+    first compensated covariate), the slopes below and above it and the fit's quality (a knee
+    of None: the fit fell back to linear, ``knee_not_in_baseline``)."""
+    from corrtransforms.stages.state import ShiftState
+
+    found = []
+    for row in states.to_pylist():
+        if row.get("model_form") != "hinge" or row.get("model_n") is None:
+            continue
+        model = ShiftState.from_row(row).model
+        if model is None or not model.covariates:
+            continue
+        below, above = model.hinge_slopes
+        found.append(
+            {
+                "subject": row["subject"],
+                "indicator": row["indicator"],
+                "covariate": model.covariates[0],
+                "knee": model.knee,
+                "slope_below": below,
+                "slope_above": above,
+                "quality": row.get("model_quality") or "ok",
+            }
+        )
+    return found
 
 
 def read_episodes(output: str, config: AssetConfig) -> List[Dict[str, Any]]:
@@ -130,6 +161,7 @@ def build(
             "until": None if config.baseline.end is None else config.baseline.end.isoformat(),
         },
         "detector_limits": detector_limits(states, config),
+        "hinge_models": hinge_models(states),
         "new_episodes": [_episode_entry(e, levels) for e in episodes if _in_days(e["first_alarm"], config, start, end)],
         "open_episodes": [_episode_entry(e, levels) for e in episodes if e["status"] == "open"],
         "next": (
@@ -170,6 +202,13 @@ def _episode_line(e: Dict[str, Any]) -> str:
     return f"  {e['subject']} {e['indicator']} {e['direction']}, onset {e['onset']}, size {size}{percent}{z}"
 
 
+def _hinge_line(h: Dict[str, Any]) -> str:
+    where = f"hinge model of {h['subject']} {h['indicator']} in {h['covariate']}"
+    if h["knee"] is None:
+        return f"{where}: no knee in the baseline, linear (slope {h['slope_below']:.4g})"
+    return f"{where}: knee {h['knee']:.3g}, slopes {h['slope_below']:.4g} below and {h['slope_above']:.4g} above"
+
+
 def text(summary: Dict[str, Any]) -> str:
     """The console form of the summary."""
     w = summary["windows"]
@@ -192,6 +231,7 @@ def text(summary: Dict[str, Any]) -> str:
             )
             + (f" (from false_alarms_per_year = {budget:g})" if budget else "")
         )
+    lines += [_hinge_line(h) for h in summary.get("hinge_models", ())]
     for key, title in (("new_episodes", "new shift episodes"), ("open_episodes", "open shift episodes")):
         lines.append(f"{title}: {len(summary[key])}" + (":" if summary[key] else ""))
         lines += [_episode_line(e) for e in summary[key]]

@@ -71,6 +71,7 @@ from corrtransforms.stages.state import (
     ShiftState,
     StateMismatchError,
     attach_sample,
+    covariate_model_of,
     resume_or_start,
     select_resume_state,
     settings_digest,
@@ -92,6 +93,10 @@ QUALITY_CODES = {
     "baseline_too_short": "fewer baseline windows than [baseline] min_windows; no alarms",
     "covariate_constant": "a covariate did not vary over the baseline; it was left out of the model",
     "covariate_model_unfitted": "too few baseline windows with all covariates; the median model was used",
+    "knee_not_in_baseline": (
+        "[shifts] model = hinge: the baseline shows no knee (too few windows on one side of it, or "
+        "no significant bend); the linear model was used"
+    ),
     "dependence_not_estimated": (
         f"fewer than {MIN_PAIRS} adjacent baseline windows (or a state from before "
         "the dependence was fitted): the residuals are taken as independent (phi 0)"
@@ -369,7 +374,13 @@ class _SeriesRun:
     def _fit(self) -> BaselineModel:
         values, stderr, x = self._sample_arrays()
         return fit_baseline_model(
-            values, stderr, x, self.state.covariates, self.config.baseline.min_windows, self.state.order
+            values,
+            stderr,
+            x,
+            self.state.covariates,
+            self.config.baseline.min_windows,
+            self.state.order,
+            self.state.hinge,
         )
 
     def _limits_from_state(self):
@@ -442,7 +453,7 @@ class _SeriesRun:
         extra = []
         expected = resid_scale = z = float("nan")
         count = len(st.sample_value)
-        needed = 3 + self.p * st.order if self.p else 3
+        needed = 3 + self.p * st.order + int(st.hinge) if self.p else 3
         if position == "inside" and count >= needed:
             point = provisional_refit_point(needed, count)
             if self.provisional is None or self.provisional[0] != point:
@@ -454,6 +465,7 @@ class _SeriesRun:
                     st.covariates,
                     self.config.baseline.min_windows,
                     st.order,
+                    st.hinge,
                 )
                 self.provisional = (point, fitted)
                 self.provisional_fits += 1
@@ -740,7 +752,7 @@ def detect_shifts(
     subject: str = "",
     indicator: str = "",
     unit: str = "",
-    order: int = 1,
+    order: Optional[int] = None,
 ) -> Tuple[pa.Table, List[ShiftState]]:
     """Baseline, covariate compensation, error-aware z and CUSUM/EWMA detection of one series.
 
@@ -762,8 +774,8 @@ def detect_shifts(
         State after the previous run (None: a fresh series, starting with its baseline).
     subject, indicator, unit : str
         Written into the rows (taken from ``state`` when empty).
-    order : {1, 2}
-        Covariate model order.
+    order : {1, 2}, optional
+        Covariate model order (None: ``[shifts] model``).
 
     Returns
     -------
@@ -836,7 +848,7 @@ def detect_shifts_with_sample(
     subject: str = "",
     indicator: str = "",
     unit: str = "",
-    order: int = 1,
+    order: Optional[int] = None,
 ) -> SeriesResult:
     """:func:`detect_shifts`, also returning the baseline sample rows this run added, and
     accepting those of earlier runs (``baseline_sample``: BASELINE_SAMPLE rows or table) for a
@@ -847,7 +859,9 @@ def detect_shifts_with_sample(
     return SeriesResult(run.table(subject, indicator, unit), run.day_states, run.sample_table(subject, indicator, unit))
 
 
-def _with_sample(state: Optional[ShiftState], baseline_sample: Any, config, order: int) -> Optional[ShiftState]:
+def _with_sample(
+    state: Optional[ShiftState], baseline_sample: Any, config, order: Optional[int]
+) -> Optional[ShiftState]:
     """``state`` with its baseline sample attached from ``baseline_sample`` when it needs it (a
     state of other settings is left as it is: :func:`resume_or_start` reports that first)."""
     if state is None or not state.needs_sample or state.settings != settings_digest(config, order):
@@ -863,7 +877,8 @@ def _run_series(times_us, values, stderr, quality, covariates, config, state, su
     n = t.size
     names = tuple(config.compensated_covariates())
     digest = settings_digest(config, order)
-    state = resume_or_start(state, digest, names, order, subject, indicator, int(t[0]) if n else None)
+    polynomial, hinge = covariate_model_of(config, order)
+    state = resume_or_start(state, digest, names, polynomial, subject, indicator, int(t[0]) if n else None, hinge)
     x = _covariate_matrix(covariates, names, n)
     run = _SeriesRun(config, state)
     if n:
@@ -1038,7 +1053,7 @@ def detect_shifts_for_rows(
     covariates_by_window: Mapping[int, Mapping[str, float]],
     config,
     resume_states: Iterable[Any] = (),
-    order: int = 1,
+    order: Optional[int] = None,
     baseline_sample: Any = (),
 ) -> SeriesOutcome:
     """:func:`detect_shifts` on the indicator rows of one (subject, indicator) series.
@@ -1053,8 +1068,8 @@ def detect_shifts_for_rows(
     resume_states : pyarrow.Table or iterable of ShiftState or STATE rows
         Earlier states (any series, any days); the latest state of this series before the first
         window is resumed (:func:`select_resume_state`).
-    order : {1, 2}
-        Covariate model order.
+    order : {1, 2}, optional
+        Covariate model order (None: ``[shifts] model``).
     baseline_sample : pyarrow.Table or iterable of BASELINE_SAMPLE rows
         The baseline sample written by earlier runs (needed when the resumed state is still
         accumulating its baseline; rows of other series are ignored).

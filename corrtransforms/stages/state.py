@@ -26,7 +26,7 @@ import pyarrow as pa
 
 from corrtransforms import tables
 from corrtransforms.config import AssetConfig
-from corrtransforms.numerics.covariate_model import BaselineModel
+from corrtransforms.numerics.covariate_model import MODELS, BaselineModel
 from corrtransforms.records import IndicatorRow, quality_text
 from corrtransforms.rejects import Reject, iso_utc
 from corrtransforms.timeutil import datetime_to_us, day_date, day_number, us_to_datetime
@@ -49,21 +49,33 @@ class IncompleteSampleError(StateMismatchError):
 # Settings
 
 
-def settings_digest(config, order: int = 1) -> str:
+def covariate_model_of(config, order: Optional[int] = None) -> Tuple[int, bool]:
+    """``(order, hinge)`` of the covariate model: ``[shifts] model`` when ``order`` is None,
+    else the polynomial of that order (the explicit argument of the stage functions)."""
+    if order is None:
+        return MODELS[config.shifts.model]
+    return int(order), False
+
+
+def settings_digest(config, order: Optional[int] = None) -> str:
     """Digest of every setting that changes shift rows; stored in the state and checked on resume.
 
     Parameters
     ----------
     config : corrtransforms.config.AssetConfig
-    order : int
-        Covariate model order.
+    order : int, optional
+        Covariate model order (None: from ``[shifts] model``, :func:`covariate_model_of`).
 
     Returns
     -------
     str
         First 16 hex digits of the SHA-256 of the canonical JSON of ``[baseline]``, the detector
-        settings of ``[shifts]``, the compensated covariates, the time zone and the order.
+        settings of ``[shifts]``, the compensated covariates, the time zone, the order and,
+        for the hinge model only, ``"model": "hinge"`` (so the digests of linear and quadratic
+        models, which the order already tells apart, stay those of states written before
+        ``[shifts] model`` existed), and the covariates' ``smoothing_h`` when any is set.
     """
+    order, hinge = covariate_model_of(config, order)
     b, s = config.baseline, config.shifts
     plain = {
         "baseline": [
@@ -88,6 +100,11 @@ def settings_digest(config, order: int = 1) -> str:
             s.ewma_L if "ewma_L" in s.explicit_limits else "budget",
         ]
         plain["false_alarms_per_year"] = s.false_alarms_per_year
+    if hinge:
+        plain["model"] = "hinge"
+    smoothing = config.covariate_smoothing_h()
+    if smoothing:  # only when set, so that earlier digests stay valid
+        plain["smoothing_h"] = smoothing
     text = json.dumps(plain, sort_keys=True, separators=(",", ":"))
     return hashlib.sha256(text.encode("utf-8")).hexdigest()[:16]
 
@@ -118,6 +135,8 @@ class ShiftState:
     settings: str
     covariates: Tuple[str, ...] = ()
     order: int = 1
+    #: the configured model is the hinge (its fit may have fallen back to a line)
+    hinge: bool = False
     window_start_us: Optional[int] = None
     local_day: Optional[int] = None
     phase: str = ACCUMULATING
@@ -241,6 +260,8 @@ class ShiftState:
             "predictor_window_start": us_to_datetime(self.predictor_window_start),
             "window_spacing_s": self.window_spacing_s,
             "sample_count": int(self.sample_count),
+            "model_form": "hinge" if self.hinge else ("quadratic" if self.order == 2 else "linear"),
+            "model_knee": None if m is None else m.knee,
         }
 
     @classmethod
@@ -267,6 +288,7 @@ class ShiftState:
                 r_squared=num("r_squared"),
                 n=int(row["model_n"]),
                 quality=() if quality == "ok" else tuple(quality.split(";")),
+                knee=None if row.get("model_knee") is None else float(row["model_knee"]),
             )
         local_date = row.get("local_date")
         if isinstance(local_date, _dt.date):
@@ -279,6 +301,7 @@ class ShiftState:
             settings=row["settings"],
             covariates=covariates,
             order=int(row.get("model_order") or 1),
+            hinge=row.get("model_form") == "hinge",
             window_start_us=datetime_to_us(row.get("window_start")),
             local_day=None if local_date is None else int(local_date),
             phase=row["phase"],
@@ -446,6 +469,7 @@ def resume_or_start(
     subject: str,
     indicator: str,
     first_window_us: Optional[int],
+    hinge: bool = False,
 ) -> ShiftState:
     """The state a run of one series starts from: a fresh one, or a checked copy of ``state``.
 
@@ -459,6 +483,8 @@ def resume_or_start(
         Compensated covariates (for a fresh state).
     order : int
         Covariate model order (for a fresh state).
+    hinge : bool
+        The configured model is the hinge (for a fresh state).
     subject, indicator : str
         The series ("" accepts the state's).
     first_window_us : int or None
@@ -476,7 +502,9 @@ def resume_or_start(
         window is not after it.
     """
     if state is None:
-        return ShiftState(subject=subject, indicator=indicator, settings=digest, covariates=covariates, order=order)
+        return ShiftState(
+            subject=subject, indicator=indicator, settings=digest, covariates=covariates, order=order, hinge=hinge
+        )
     if state.settings != digest:
         raise StateMismatchError(f"state settings {state.settings} differ from this configuration's {digest}")
     if (subject and subject != state.subject) or (indicator and indicator != state.indicator):
@@ -559,6 +587,8 @@ def replay_tables(indicators: pa.Table, config: AssetConfig) -> Replay:
         Findings of the replay (duplicates, failures), as the shifts stage would report them.
     """
     from corrtransforms.stages import shifts as shift_series  # the engine imports this module
+    from corrtransforms.stages.covariate_smoothing import smooth_covariate_means
+    from corrtransforms.stages.summaries import latest_states as summaries_latest
 
     by_window: Dict[int, List[IndicatorRow]] = {}
     series: Dict[Tuple[str, str], List[IndicatorRow]] = {}
@@ -573,8 +603,14 @@ def replay_tables(indicators: pa.Table, config: AssetConfig) -> Replay:
     for start, found in by_window.items():
         covariates[start], found_rejects = shift_series.covariates_for_window(start, found, config.name)
         rejects.extend(found_rejects)
+    covariates, smoother_states, smoother_rejects = smooth_covariate_means(covariates, config)
+    rejects.extend(smoother_rejects)
     last, every, samples = [], [], []
     config = shift_series.with_budget_limits(config, len(series))
+    if smoother_states:
+        smoothers = states_table(smoother_states)
+        every.append(smoothers)
+        last.append(summaries_latest(smoothers))
     for key in sorted(series):
         outcome = shift_series.detect_shifts_for_rows(series[key], covariates, config)
         rejects.extend(outcome.rejects)

@@ -145,3 +145,52 @@ def residual_chart_errors(values: np.ndarray, baseline: int) -> np.ndarray:
         np.abs(errors[:, :baseline] - np.median(errors[:, :baseline], axis=1, keepdims=True)), axis=1
     )
     return errors[:, baseline:] / ratio[:, None]
+
+
+def nightly_run(times, values, stderr, covariates, config, tmp_path, subject="deck", indicator="mode_freq_hz"):
+    """Day by day, each night resuming from the previous night's state and baseline-sample rows
+    read back from Parquet; returns the joined SHIFTS rows and the last state.
+
+    ``covariates`` maps a name to an array over all windows (each night gets its own days).
+    """
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from corrtransforms import tables
+    from corrtransforms.stages import shifts as shift_series
+    from corrtransforms.stages import state as shift_state
+    from corrtransforms.timeutil import local_days
+
+    days = local_days(times, config.timezone)
+    state, parts, samples = None, [], []
+    for number, day in enumerate(np.unique(days)):
+        mask = days == day
+        table, day_states, sample = shift_series.detect_shifts_with_sample(
+            times[mask],
+            values[mask],
+            stderr[mask],
+            None,
+            {name: column[mask] for name, column in covariates.items()},
+            config,
+            state,
+            baseline_sample=pa.concat_tables(samples or [tables.BASELINE_SAMPLE.empty_table()]),
+            subject=subject,
+            indicator=indicator,
+            unit="Hz",
+        )
+        path = tmp_path / f"state-{number}.parquet"
+        pq.write_table(shift_state.states_table(day_states), path)
+        (state,) = shift_state.states_from_table(pq.read_table(path))
+        sample_path = tmp_path / f"sample-{number}.parquet"
+        pq.write_table(sample, sample_path)
+        samples.append(pq.read_table(sample_path))
+        parts.append(table)
+    return pa.concat_tables(parts), state
+
+
+def hinge_series(seed: int, knee: float = 2.0, below: float = -0.02, above: float = -0.002, **kwargs):
+    """:func:`seasonal_series` whose frequency follows a bilinear relation in temperature: slope
+    ``below`` Hz/degC under ``knee`` (an invented stiffening in frost), ``above`` over it."""
+    times, values, stderr, temperature, step_us = seasonal_series(seed, swing=0.0, **kwargs)
+    values = values + np.where(temperature < knee, below, above) * (temperature - knee)
+    return times, values, stderr, temperature, step_us
