@@ -46,7 +46,7 @@ def baseline_status(states) -> Dict[str, Any]:
     the windows their baseline needs (``model_n`` is unknown until the fit: the configured count)."""
     # the smoothers' rows of smoothed covariates (phase "smoother") are no monitored series
     kept = [i for i, p in enumerate(states.column("phase").to_pylist()) if p != "smoother"]
-    states = states.take(kept)
+    states = states.take(pa.array(kept, pa.int64()))  # typed: an empty list would be a null array
     phases = states.column("phase").to_pylist()
     seen = [n for n, p in zip(states.column("windows_seen").to_pylist(), phases) if p == "accumulating"]
     return {"series": len(phases), "accumulating": len(seen), "fewest_windows_seen": min(seen) if seen else None}

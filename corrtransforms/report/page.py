@@ -283,15 +283,18 @@ def render_index(
     episode_source: str,
     plots: List[Dict],
     generated: str,
+    overview: Optional[List[Dict]] = None,
 ) -> str:
-    """The index page as an HTML string (open episodes first, then assets, rejects, closed
-    episodes, pictures, and the tables found)."""
+    """The index page as an HTML string (open episodes first, then for a fleet the overview of
+    its assets with links to their pages, then assets, rejects, closed episodes, pictures, and
+    the tables found)."""
     plot_index = {(p["asset"], p["subject"], p["indicator"]): p["path"] for p in plots}
     open_episodes = [e for e in episodes if e["status"] == "open"]
     closed = [e for e in episodes if e["status"] != "open"]
     parts = (
         _page_head(output, generated)
         + _open_section(output, open_episodes, plot_index)
+        + (_overview_section(overview) if overview is not None else [])
         + _assets_section(assets)
         + _rejects_section(output, rejects)
         + _closed_section(closed, episode_source, plot_index)
@@ -309,9 +312,16 @@ def asset_page_name(asset: str) -> str:
 
 
 def render_overview(output: OutputTables, rows: List[Dict], generated: str) -> str:
-    """The overview page of a fleet: one row per asset, linking to the asset's page."""
-    parts = _page_head(output, generated)
-    parts.append('<h2 id="overview">Assets</h2>')
+    """The overview of a fleet alone as a page: one row per asset, linking to the asset's page."""
+    parts = _page_head(output, generated) + _overview_section(rows)
+    parts.append(f'<p class="caution">{_e(CAUTION)}</p>')
+    parts.append("</body></html>")
+    return "\n".join(parts) + "\n"
+
+
+def _overview_section(rows: List[Dict]) -> List[str]:
+    """The fleet overview: one row per asset, linking to the asset's page."""
+    parts = ['<h2 id="overview">Fleet overview</h2>']
     parts.append(
         "<table><tr><th>asset</th><th>last day</th><th>windows that day</th><th>open episodes</th>"
         "<th>series in baseline</th><th>last window (UTC)</th></tr>"
@@ -330,9 +340,7 @@ def render_overview(output: OutputTables, rows: List[Dict], generated: str) -> s
         "Series in baseline: monitored series still accumulating their baseline sample (no "
         "alarms yet), of all series with a detector state.</p>"
     )
-    parts.append(f'<p class="caution">{_e(CAUTION)}</p>')
-    parts.append("</body></html>")
-    return "\n".join(parts) + "\n"
+    return parts
 
 
 def _of_asset(items: List[Dict], asset: str) -> List[Dict]:
@@ -383,7 +391,8 @@ def write_report(output_dir: str, report_dir: Optional[str] = None, store=None) 
             mine = (_of_asset(rejects, name), _of_asset(episodes, name), source, _of_asset(plots, name))
             with store.create(store.join(report_dir, asset_page_name(name))) as handle:
                 handle.write(render_index(output, [a], *mine, generated).encode("utf-8"))
-        page = render_overview(output, fleet_overview(output, episodes, baselines), generated)
+        overview = fleet_overview(output, episodes, baselines)
+        page = render_index(output, assets, rejects, episodes, source, plots, generated, overview=overview)
     else:
         page = render_index(output, assets, rejects, episodes, source, plots, generated)
     index = store.join(report_dir, "index.html")

@@ -19,7 +19,6 @@ from __future__ import annotations
 
 import dataclasses
 import json
-import uuid
 from typing import Dict, Iterable, Mapping, Optional
 
 import pyarrow as pa
@@ -149,5 +148,7 @@ def write_footer_index(
     table = pa.Table.from_pydict(columns, schema=SCHEMA).replace_schema_metadata(metadata)
     path = index_path(store, output_dir, config)
     store.mkdirs(summaries.summary_folder(store, output_dir, config.name))
-    table_writer.write_parquet_in_place(store, path, table, temporary=f"{path}.{uuid.uuid4().hex}.tmp")
+    run_id = (provenance or {}).get(table_writer.META_PREFIX + "run_id", "")
+    temporary = table_writer.temporary_path(store, output_dir, run_id, "footer_index.parquet")
+    table_writer.write_parquet_in_place(store, path, table, temporary)
     return True

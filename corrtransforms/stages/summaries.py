@@ -25,8 +25,8 @@ from __future__ import annotations
 import datetime as _dt
 import json
 import math
+import posixpath
 import re
-import uuid
 from typing import Any, Callable, Dict, List, Mapping, Optional, Sequence, Tuple
 
 import numpy as np
@@ -160,14 +160,20 @@ def _load_summary(store, path: str, schema: pa.Schema):
 
 
 def _write_summary(
-    store, folder: str, path: str, table: pa.Table, covered: Sequence[str], provenance: Mapping[str, str]
+    store,
+    output_dir: str,
+    folder: str,
+    path: str,
+    table: pa.Table,
+    covered: Sequence[str],
+    provenance: Mapping[str, str],
 ) -> None:
     store.mkdirs(folder)
     metadata = {k.encode(): v.encode() for k, v in provenance.items()}
     metadata.update({_FORMAT_KEY: _SUMMARY_FORMAT.encode(), _COVERED_KEY: json.dumps(sorted(covered)).encode()})
-    table_writer.write_parquet_in_place(
-        store, path, table.replace_schema_metadata(metadata), temporary=f"{path}.{uuid.uuid4().hex}.tmp"
-    )
+    run_id = provenance.get(table_writer.META_PREFIX + "run_id", "")
+    temporary = table_writer.temporary_path(store, output_dir, run_id, posixpath.basename(path.replace("\\", "/")))
+    table_writer.write_parquet_in_place(store, path, table.replace_schema_metadata(metadata), temporary)
 
 
 def summarize_partitions(
@@ -229,7 +235,9 @@ def summarize_partitions(
     result = _fold_files(store, [keys[k] for k in sorted(todo)], schema, columns, keep, pieces)
     result = result.sort_by([(c, "ascending") for c in table_writer.sort_columns(result)])
     if todo or loaded is None or loaded[1] != keys.keys():
-        _write_summary(store, summary_folder(store, output_dir, asset), path, result, list(keys), provenance or {})
+        _write_summary(
+            store, output_dir, summary_folder(store, output_dir, asset), path, result, list(keys), provenance or {}
+        )
     return result
 
 
@@ -306,7 +314,7 @@ def write_episodes(store, output_dir: str, config: AssetConfig, run_id: str) -> 
     folder = store.join(output_dir, "episodes", f"asset={config.name}")
     store.mkdirs(folder)
     final = store.join(folder, "episodes.parquet")
-    temporary = store.join(folder, f"_episodes-{run_id}.tmp")
+    temporary = table_writer.temporary_path(store, output_dir, run_id, f"episodes-{config.name}")
     episodes = episodes.replace_schema_metadata(
         {**(episodes.schema.metadata or {}), **{k.encode(): v.encode() for k, v in metadata.items()}}
     )

@@ -27,6 +27,7 @@ import json
 import os
 import posixpath
 import shutil
+import uuid
 from typing import Any, Dict, Iterable, List, Mapping, NamedTuple, Optional, Sequence, Tuple
 
 import numpy as np
@@ -383,12 +384,26 @@ def move_into_place(store, temporary: str, destination: str) -> None:
         raise OSError(f"commit of {destination} failed: the file is not there after the rename")
 
 
+def temporary_path(store, output_dir: str, run_id: str, name: str) -> str:
+    """A temporary file name for a derived file that is then moved into place: under the run's
+    own ``DIR/_temporary/<run id>/`` (never beside the final file), so a run killed while writing
+    leaves nothing in the tables or summaries; the run's cleanup (or the stale-run cleanup of a
+    later run) removes it."""
+    return store.join(output_dir, TEMPORARY, run_id or "unnamed-run", f"{name}.{uuid.uuid4().hex}.tmp")
+
+
 def write_parquet_in_place(store, path: str, table: pa.Table, temporary: str) -> None:
     """Write ``table`` as one Parquet file (zstd, compliant nested names) to ``temporary``, then
     :func:`move_into_place` onto ``path`` (derived files that replace their previous version)."""
     with store.create(temporary) as handle:
         pq.write_table(table, handle, compression="zstd", use_compliant_nested_type=True)
     move_into_place(store, temporary, path)
+    # a temporary_path() name: its run folder and _temporary go again when empty
+    parts = temporary.replace("\\", "/").split("/")
+    if hasattr(store, "remove_empty_folder") and TEMPORARY in parts[:-1]:
+        run_folder = posixpath.dirname(temporary.replace("\\", "/"))
+        store.remove_empty_folder(run_folder)
+        store.remove_empty_folder(posixpath.dirname(run_folder))
 
 
 def remove_temporary(store, output_dir: str, run_id: str) -> None:

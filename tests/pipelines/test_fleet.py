@@ -223,10 +223,16 @@ class _Links(html.parser.HTMLParser):
             self.cells = None
 
 
-def _page(path):
+def _page(path, section=None):
+    """Links and table rows of a page, or of one of its sections (from its h2 id to the next h2)."""
     parser = _Links()
     with open(path, encoding="utf-8") as handle:
-        parser.feed(handle.read())
+        text = handle.read()
+    if section is not None:
+        start = text.index(f'<h2 id="{section}">')
+        end = text.find("<h2", start + 1)
+        text = text[start : end if end > 0 else len(text)]
+    parser.feed(text)
     return parser
 
 
@@ -235,7 +241,10 @@ def test_report_of_a_fleet_starts_with_an_overview_linking_each_asset(fleet_run)
     fleet_output, found = fleet_run
     assert report.main(["--output", fleet_output]) == 0
     folder = os.path.join(fleet_output, "report")
-    overview = _page(os.path.join(folder, "index.html"))
+    # the fleet's page: open episodes first, then the overview of its assets
+    text = open(os.path.join(folder, "index.html"), encoding="utf-8").read()
+    assert text.index("Open shift episodes") < text.index('<h2 id="overview">Fleet overview</h2>')
+    overview = _page(os.path.join(folder, "index.html"), section="overview")
     assert [row[0] for row in overview.rows] == ["north", "south"]
     for row in overview.rows:
         # the last day's windows: all 10 of the archive's single day; every series fitted
