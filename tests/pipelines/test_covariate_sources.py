@@ -166,3 +166,13 @@ def test_nights_with_a_source_and_smoothing_equal_one_backfill(site):
     assert_same_tables(full, stepwise)
     state = _rows(full, "state")
     assert any(s["subject"] == "air_temp" and s["indicator"] == "covariate_smoother" for s in state)
+
+
+def test_a_source_path_without_files_stops_before_the_pipeline(site, tmp_path):
+    root, _, _, _ = site
+    config = root / "nowhere.toml"
+    config.write_text(_config_text().replace('path = "weather"', 'path = "no-such-station"'), encoding="utf-8")
+    with pytest.raises(SystemExit) as stop:
+        backfill.main(["--config", str(config), "--output", str(tmp_path / "out")])
+    assert "[[covariate_sources]] #1 path" in str(stop.value) and "no files match" in str(stop.value)
+    assert not (tmp_path / "out" / "indicators").exists()
