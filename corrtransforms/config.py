@@ -191,6 +191,30 @@ class ShiftsConfig:
 
 
 @dataclasses.dataclass(frozen=True)
+class CovariateSourceConfig:
+    """One ``[[covariate_sources]]`` entry: covariates kept in another archive (a weather
+    station, a control system), each sampled on its own clock and joined to every window as the
+    time-weighted mean of its piecewise-linear signal
+    (:func:`corrtransforms.numerics.covariate_join.time_weighted_window_means`)."""
+
+    path: str
+    #: the covariates it provides (wide: column names; long: values of channel_column)
+    names: Tuple[str, ...]
+    layout: str = "wide"
+    time_column: str = "time"
+    channel_column: str = "channel"
+    value_column: str = "value"
+    #: how naive (zone-less) timestamps are read
+    timezone: str = "UTC"
+    #: covariate name -> time constant in hours of its trailing exponential mean
+    smoothing_h: Mapping[str, float] = dataclasses.field(default_factory=dict)
+    #: longest interval between two samples that is interpolated; a longer one is a gap
+    max_gap_s: float = 900.0
+    #: smallest covered fraction of a window for a mean (else NaN: covariate_missing)
+    min_coverage: float = 0.5
+
+
+@dataclasses.dataclass(frozen=True)
 class ReadingConfig:
     #: target size of one read task in bytes of decoded samples
     task_bytes: int = 32 * 2**20
@@ -215,18 +239,29 @@ class AssetConfig:
     #: ``[asset] timezone``: the calendar day a window belongs to (partitions, --date, baselines);
     #: naive timestamps are read in ``archive.timezone``
     timezone: str = "UTC"
+    #: ``[[covariate_sources]]``: covariates read from other archives
+    covariate_sources: Tuple[CovariateSourceConfig, ...] = ()
     #: the file the configuration was read from ("" when built in code)
     source: str = ""
     #: messages about the configuration that are not errors (deprecated forms still accepted)
     notes: Tuple[str, ...] = ()
 
     def covariate_smoothing_h(self) -> Dict[str, float]:
-        """Time constant (hours) of each smoothed covariate (``[channels] smoothing_h``)."""
-        return dict(sorted(self.channels.smoothing_h.items()))
+        """Time constant (hours) of each smoothed covariate (``[channels] smoothing_h`` and the
+        ``smoothing_h`` of every ``[[covariate_sources]]`` entry; the names never overlap)."""
+        merged = dict(self.channels.smoothing_h)
+        for source in self.covariate_sources:
+            merged.update(source.smoothing_h)
+        return dict(sorted(merged.items()))
+
+    def covariate_names(self) -> Tuple[str, ...]:
+        """Every covariate of the asset: ``[channels] covariates`` (in the archive), then the
+        names of each ``[[covariate_sources]]`` entry in file order."""
+        return tuple(self.channels.covariates) + tuple(n for s in self.covariate_sources for n in s.names)
 
     def compensated_covariates(self) -> Tuple[str, ...]:
         if self.shifts.compensate is None:
-            return tuple(self.channels.covariates)
+            return self.covariate_names()
         return tuple(self.shifts.compensate)
 
     def as_dict(self) -> Dict[str, Any]:
@@ -238,6 +273,8 @@ class AssetConfig:
                     f.name: plain(getattr(value, f.name))
                     for f in dataclasses.fields(value)
                     if f.name not in ("source", "notes")
+                    # no sources: the digest of every configuration written before the section existed
+                    and not (f.name == "covariate_sources" and not getattr(value, f.name))
                 }
             if isinstance(value, (list, tuple)):
                 return [plain(v) for v in value]
@@ -289,6 +326,18 @@ _KNOWN = {
         "model",
     },
     "reading": {"task_bytes", "grid_tolerance", "clip_fraction"},
+    "covariate_sources": {
+        "path",
+        "layout",
+        "time_column",
+        "channel_column",
+        "value_column",
+        "timezone",
+        "names",
+        "smoothing_h",
+        "max_gap_s",
+        "min_coverage",
+    },
 }
 
 
@@ -394,8 +443,8 @@ def parse_config(raw: Mapping[str, Any], base_dir: str = "", source: str = "") -
     ------
     ConfigError
         On the first invalid key, naming the key, the value and what is allowed. Sections are
-        checked in the order asset, archive, channels, windows, correlation, modes, baseline,
-        screening, shifts, reading (one parser per section).
+        checked in the order asset, archive, channels, windows, correlation, modes,
+        covariate_sources, baseline, screening, shifts, reading (one parser per section).
     """
     unknown = sorted(set(raw) - set(_KNOWN))
     if unknown:
@@ -409,6 +458,7 @@ def parse_config(raw: Mapping[str, Any], base_dir: str = "", source: str = "") -
     windows = _parse_windows(raw, archive)
     correlation = _parse_correlation(raw, windows, channels)
     modes = _parse_modes(raw, archive, channels)
+    sources = _parse_covariate_sources(raw, base_dir, channels, modes)
     return AssetConfig(
         name=name,
         archive=archive,
@@ -418,8 +468,9 @@ def parse_config(raw: Mapping[str, Any], base_dir: str = "", source: str = "") -
         modes=modes,
         baseline=_parse_baseline(raw),
         screening=_parse_screening(raw),
-        shifts=_parse_shifts(raw, channels),
+        shifts=_parse_shifts(raw, channels, sources),
         reading=_parse_reading(raw),
+        covariate_sources=sources,
         timezone=timezone,
         source=source,
         notes=notes,
@@ -761,10 +812,13 @@ def _parse_screening(raw: Mapping[str, Any]) -> ScreeningConfig:
     )
 
 
-def _parse_shifts(raw: Mapping[str, Any], channels: ChannelsConfig) -> ShiftsConfig:
+def _parse_shifts(
+    raw: Mapping[str, Any], channels: ChannelsConfig, sources: Tuple[CovariateSourceConfig, ...] = ()
+) -> ShiftsConfig:
     """``[shifts]``: detectors, their parameters, compensated covariates, monitored indicators."""
     sh = _section(raw, "shifts")
-    compensate = _parse_compensate(sh.get("compensate", None), channels.covariates)
+    covariates = tuple(channels.covariates) + tuple(n for s in sources for n in s.names)
+    compensate = _parse_compensate(sh.get("compensate", None), covariates)
     monitored = sh.get("indicators", list(DEFAULT_MONITORED))
     if (
         not isinstance(monitored, list)
@@ -804,10 +858,72 @@ def _parse_compensate(comp: Any, covariates: Tuple[str, ...]) -> Optional[Tuple[
         missing = [c for c in comp if c not in set(covariates)]
         if missing:
             raise ConfigError(
-                "[shifts] compensate", comp, f"names {missing[0]!r}, which is not in [channels] covariates"
+                "[shifts] compensate",
+                comp,
+                f"names {missing[0]!r}, which is neither in [channels] covariates nor a [[covariate_sources]] name",
             )
         return tuple(comp)
     raise ConfigError("[shifts] compensate", comp, 'must be "all", "none" or a list of covariate names')
+
+
+def _parse_covariate_sources(
+    raw: Mapping[str, Any], base_dir: str, channels: ChannelsConfig, modes: Tuple[ModeConfig, ...]
+) -> Tuple[CovariateSourceConfig, ...]:
+    """``[[covariate_sources]]``: other archives' covariates; names unique across the entries
+    and distinct from every channel, covariate and mode of the asset."""
+    entries = raw.get("covariate_sources", [])
+    if not isinstance(entries, list):
+        raise ConfigError("[[covariate_sources]]", entries, "must be an array of tables ([[covariate_sources]])")
+    taken = {name: "[channels] covariates" for name in channels.covariates}
+    taken.update({name: "[channels] names" for name in channels.names or ()})
+    taken.update({mode.name: "[[modes]] name" for mode in modes})
+    sources = []
+    for i, entry in enumerate(entries):
+        source = _parse_covariate_source(i, entry, base_dir)
+        for name in source.names:
+            if name in taken:
+                raise ConfigError(
+                    f"[[covariate_sources]] #{i + 1} names", list(source.names), f"{name!r} is already in {taken[name]}"
+                )
+            taken[name] = f"[[covariate_sources]] #{i + 1} names"
+        sources.append(source)
+    return tuple(sources)
+
+
+def _parse_covariate_source(i: int, entry: Any, base_dir: str) -> CovariateSourceConfig:
+    """One ``[[covariate_sources]]`` table (``i`` counts from 0; messages count from 1)."""
+    where = f"[[covariate_sources]] #{i + 1}"
+    if not isinstance(entry, Mapping):
+        raise ConfigError(where, entry, "must be a table")
+    unknown = sorted(set(entry) - _KNOWN["covariate_sources"])
+    if unknown:
+        raise ConfigError(
+            f"{where} {unknown[0]}",
+            entry[unknown[0]],
+            "is not a known key; known keys: " + ", ".join(sorted(_KNOWN["covariate_sources"])),
+        )
+    if "path" not in entry:
+        raise ConfigError(f"{where} path", None, "is required: a folder, a glob or a Beam filesystem URL")
+    if "names" not in entry:
+        raise ConfigError(f"{where} names", None, "is required: the covariates this archive provides")
+    names = _string_list(f"{where} names", entry["names"])
+    if not names:
+        raise ConfigError(f"{where} names", [], "must list at least one covariate")
+    time_column = _string(f"{where} time_column", entry.get("time_column", "time"))
+    if time_column in names:
+        raise ConfigError(f"{where} names", list(names), f"must not name the time column {time_column!r}")
+    return CovariateSourceConfig(
+        path=_resolve_path(_string(f"{where} path", entry["path"]), base_dir),
+        names=names,
+        layout=_choice(f"{where} layout", entry.get("layout", "wide"), LAYOUTS),
+        time_column=time_column,
+        channel_column=_string(f"{where} channel_column", entry.get("channel_column", "channel")),
+        value_column=_string(f"{where} value_column", entry.get("value_column", "value")),
+        timezone=_timezone(f"{where} timezone", entry.get("timezone", "UTC")),
+        smoothing_h=_smoothing_h(f"{where} smoothing_h", entry.get("smoothing_h", {}), names),
+        max_gap_s=_number(f"{where} max_gap_s", entry.get("max_gap_s", 900.0), low=0, low_open=True),
+        min_coverage=_number(f"{where} min_coverage", entry.get("min_coverage", 0.5), low=0, high=1, low_open=True),
+    )
 
 
 def _parse_reading(raw: Mapping[str, Any]) -> ReadingConfig:

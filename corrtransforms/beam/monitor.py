@@ -18,6 +18,7 @@ from typing import Any, Dict, NamedTuple, Optional, Sequence, Tuple
 import apache_beam as beam
 
 from corrtransforms.beam.correlate import CorrelateWindows
+from corrtransforms.beam.covariate_sources import JoinCovariateSources
 from corrtransforms.beam.indicators import ComputeIndicators
 from corrtransforms.beam.plan import PlanReads
 from corrtransforms.beam.read import ReadWindows
@@ -174,9 +175,16 @@ class MonitorAsset(beam.PTransform):
         read = tasks | "Read windows" >> ReadWindows(config)
         correlated = read["blocks"] | "Screen and correlate windows" >> CorrelateWindows(config)
         indicators = correlated["correlations"] | "Compute indicators" >> ComputeIndicators(config)
-        shifts = indicators["indicators"] | "Detect shifts" >> DetectShifts(config, self._initial_states)
+        indicator_rows, source_rejects = indicators["indicators"], []
+        if config.covariate_sources:
+            joined = correlated["correlations"] | "Join covariate sources" >> JoinCovariateSources(
+                config, self._start, self._end, self._report_edges
+            )
+            indicator_rows = (indicator_rows, joined["indicators"]) | "With source covariates" >> beam.Flatten()
+            source_rejects = [joined["rejects"]]
+        shifts = indicator_rows | "Detect shifts" >> DetectShifts(config, self._initial_states)
         indicator_tables = (
-            indicators["indicators"]
+            indicator_rows
             | "Batch indicator rows" >> beam.BatchElements(min_batch_size=1000, max_batch_size=INDICATOR_BATCH)
             | "Indicator tables" >> beam.Map(_indicator_table)
         )
@@ -191,6 +199,7 @@ class MonitorAsset(beam.PTransform):
             correlated["rejects"],
             indicators["rejects"],
             shifts["rejects"],
+            *source_rejects,
         ) | "All rejects" >> beam.Flatten()
         tables: Dict[str, beam.PCollection] = {
             "correlations": correlated["correlations"],
@@ -209,7 +218,7 @@ class MonitorAsset(beam.PTransform):
             "tasks": plan["tasks"],
             "blocks": read["blocks"],
             "correlations": correlated["correlations"],
-            "indicators": indicators["indicators"],
+            "indicators": indicator_rows,
             "shifts": shifts["shifts"],
             "state": shifts["state"],
             "mode_shapes": mode_shapes,

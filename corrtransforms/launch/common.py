@@ -459,18 +459,23 @@ def single_config(args) -> str:
 
 
 def check_archive(config: AssetConfig) -> None:
-    """Stop before the pipeline starts when ``[archive] path`` matches no file (a wrong path must
-    not surface as an error deep inside the running job)."""
-    pattern = archive_plan.expand_archive_path(config.archive.path)
+    """Stop before the pipeline starts when ``[archive] path`` (or a ``[[covariate_sources]]``
+    path) matches no file (a wrong path must not surface as an error deep inside the running job)."""
+    _check_path("[archive] path", config.archive.path)
+    for i, source in enumerate(config.covariate_sources):
+        _check_path(f"[[covariate_sources]] #{i + 1} path", source.path)
+
+
+def _check_path(key: str, path: str) -> None:
+    pattern = archive_plan.expand_archive_path(path)
     try:
         found = FileSystems.match([pattern], limits=[1])[0].metadata_list
     except Exception as err:  # noqa: BLE001 - an unreachable or malformed location
         raise SystemExit(
-            f"configuration error: [archive] path = {config.archive.path!r}: "
-            f"cannot be listed ({type(err).__name__}: {err})"
+            f"configuration error: {key} = {path!r}: cannot be listed ({type(err).__name__}: {err})"
         ) from None
     if not found:
-        raise SystemExit(f"configuration error: [archive] path = {config.archive.path!r}: no files match {pattern!r}")
+        raise SystemExit(f"configuration error: {key} = {path!r}: no files match {pattern!r}")
 
 
 def summary(counters: Dict[str, int]) -> str:

@@ -654,7 +654,7 @@ def plan_reads(
     else:
         days = tuple(sorted({d for t in tasks for d in t.dates}))
     out_of_range = {footer.path for footer in footers} - {file.footer.path for file in usable}
-    final = _dated_findings(
+    final = dated_findings(
         list(footer_rejects) + rejects, out_of_range, start, end, days[0] if days else None, report_edges
     )
     return ArchivePlan(tasks=tasks, rejects=final, channels=channels, covariates=covariates, days=days)
@@ -808,7 +808,7 @@ def _read_task(
     )
 
 
-def _dated_findings(
+def dated_findings(
     findings: Sequence[Reject],
     out_of_range: set,
     start: Optional[_dt.date],
