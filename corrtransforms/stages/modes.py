@@ -51,7 +51,6 @@ from corrtransforms.numerics.correlation import block_lag_sums, channel_spectra,
 from corrtransforms.numerics.mode_shapes import largest_component, modal_assurance_criterion, normalise_shape
 from corrtransforms.numerics.mode_tracking import track_modes
 from corrtransforms.numerics.mode_uncertainty import (
-    DEFAULT_SEGMENTS,
     mac_stderr,
     mode_uncertainty,
     window_sequence,
@@ -67,8 +66,11 @@ from corrtransforms.numerics.multichannel_modes import (
 from corrtransforms.records import MultichannelMode, WindowBlock, WindowCorrelation, quality_text
 from corrtransforms.stages.mode_reference import ModeReference
 
-#: sub-records of the window for the jackknife (numerics.mode_uncertainty.DEFAULT_SEGMENTS)
-SUB_RECORDS = DEFAULT_SEGMENTS
+#: sub-records of the window for the jackknife: 16, half of numerics.mode_uncertainty's
+#: DEFAULT_SEGMENTS, halves its cost; measured through this stage (benchmarks/bench_multichannel_modes.py
+#: --coverage --stage-settings, 400 windows) the coverage is as good as with 32 (docs/modes.md);
+#: with 15 degrees of freedom a correct stderr covers P(|t_15| < 1.96) = 0.931 (Student's t)
+SUB_RECORDS = 16
 #: the strided lag grid keeps its Nyquist frequency at least this many times the band's top
 #: (common practice: content above the strided Nyquist aliases into the band)
 NYQUIST_FACTOR = 5.0
@@ -122,6 +124,7 @@ def window_multichannel_modes(
     config: AssetConfig,
     usable=None,
     references: Optional[Mapping[str, ModeReference]] = None,
+    sub_records: int = SUB_RECORDS,
 ) -> List[MultichannelMode]:
     """One :class:`~corrtransforms.records.MultichannelMode` per multi-channel ``[[modes]]`` entry.
 
@@ -135,6 +138,8 @@ def window_multichannel_modes(
     references : mapping, optional
         Entry name -> its baseline :class:`~corrtransforms.stages.mode_reference.ModeReference`
         (entries without one use the band-centre rule); None means none.
+    sub_records : int
+        Sub-records of the jackknife, default :data:`SUB_RECORDS` (the benchmark varies it).
 
     Returns
     -------
@@ -151,14 +156,14 @@ def window_multichannel_modes(
             results.update({e.name: _empty(e, ["mode_channel_unusable"]) for e in entries})
             continue
         try:
-            found = _group_modes(block, config, channels, reference_channels, entries, baseline or {})
+            found = _group_modes(block, config, channels, reference_channels, entries, baseline or {}, sub_records)
             results.update({m.mode: m for m in found})
         except (ValueError, np.linalg.LinAlgError):  # ill-conditioned or too short: a code, not a crash
             results.update({e.name: _empty(e, ["mode_identification_failed"]) for e in entries})
     return [results[m.name] for m in config.modes if m.is_multichannel]
 
 
-def _lag_arrays(block: WindowBlock, config: AssetConfig, channels, references, max_lag: int):
+def _lag_arrays(block: WindowBlock, config: AssetConfig, channels, references, max_lag: int, sub_records: int):
     """Per sub-record lag sums and pair counts as ``(K, n_lags, n_outputs, n_references)``."""
     names = tuple(block.channels)
     columns = [names.index(c) for c in channels]
@@ -168,7 +173,7 @@ def _lag_arrays(block: WindowBlock, config: AssetConfig, channels, references, m
     cc = config.correlation
     spectra = channel_spectra(
         values, block.sample_rate_hz, max_lag / block.sample_rate_hz, valid=valid, detrend=cc.detrend,
-        segment_length=-(-n // SUB_RECORDS),
+        segment_length=-(-n // sub_records),
     )  # fmt: skip
     pairs = resolve_pairs("all", len(channels))
     sums, counts = block_lag_sums(spectra, pairs)
@@ -181,7 +186,13 @@ def _lag_arrays(block: WindowBlock, config: AssetConfig, channels, references, m
 
 
 def _group_modes(
-    block, config, channels, references, entries: List[ModeConfig], baseline: Mapping[str, ModeReference]
+    block,
+    config,
+    channels,
+    references,
+    entries: List[ModeConfig],
+    baseline: Mapping[str, ModeReference],
+    sub_records: int = SUB_RECORDS,
 ) -> List[MultichannelMode]:
     """Identify once for entries sharing channels, assign poles, attach jackknife stderrs."""
     fs = float(block.sample_rate_hz)
@@ -192,7 +203,8 @@ def _group_modes(
         return [_empty(e, ["mode_max_lag_short"]) for e in entries]
     rows = mode_block_rows(fs, search_band(union)[0], len(references), stride, columns, configured_lags + 1)
     # only the lags the Hankel matrix uses: (1 + rows + columns) strided lags, within max_lag_s
-    S, N = _lag_arrays(block, config, channels, references, min(configured_lags, (1 + rows + columns) * stride))
+    used_lags = min(configured_lags, (1 + rows + columns) * stride)
+    S, N = _lag_arrays(block, config, channels, references, used_lags, sub_records)
     sequence = window_sequence(S, N)
     if not np.all(np.isfinite(sequence)):
         return [_empty(e, ["nonfinite_correlation"]) for e in entries]
