@@ -39,6 +39,7 @@ from typing import Dict, Mapping, Optional
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
+import pyarrow.parquet as pq
 
 from corrtransforms import tables
 from corrtransforms.config import AssetConfig
@@ -133,7 +134,7 @@ def references_from_rows(rows: pa.Table, config: AssetConfig, before: _dt.date) 
         return out
     modes = np.asarray(rows.column("mode").to_pylist(), dtype=object)
     for entry in _multichannel(config):
-        reference = _reference(rows.filter(pa.array(modes == entry.name)), entry.name, entry.channels)
+        reference = median_reference(rows.filter(pa.array(modes == entry.name)), entry.name, entry.channels)
         if reference is None:
             continue
         if not base.by_dates and reference.n_windows < int(base.windows or 0):
@@ -142,8 +143,11 @@ def references_from_rows(rows: pa.Table, config: AssetConfig, before: _dt.date) 
     return out
 
 
-def _reference(rows: pa.Table, name: str, channels) -> Optional[ModeReference]:
-    """The median frequency and shape of one entry's baseline rows (None: too few windows)."""
+def median_reference(rows: pa.Table, name: str, channels) -> Optional[ModeReference]:
+    """The median frequency and shape of one entry's baseline rows (None: too few windows).
+
+    ``rows`` are mode_shapes rows (at least :data:`COLUMNS`) of one entry; ``channels`` orders the
+    shape's components."""
     starts = rows.column("window_start").cast(pa.int64()).to_numpy(zero_copy_only=False)
     windows = np.unique(starts)
     if len(windows) < MIN_REFERENCE_WINDOWS:
@@ -164,6 +168,19 @@ def _reference(rows: pa.Table, name: str, channels) -> Optional[ModeReference]:
         return None
     median = np.median(shapes[good].real, axis=0) + 1j * np.median(shapes[good].imag, axis=0)
     return ModeReference(name, float(np.median(freq[good])), normalise_shape(median, index), index, int(good.sum()))
+
+
+def stored_baseline_rows(store, output_dir: str, asset: str) -> Optional[pa.Table]:
+    """The baseline rows the last run kept (the summary file), or None when there is none (the
+    report draws the reference from them)."""
+    path = summaries.summary_path(store, output_dir, asset, SUMMARY)
+    try:
+        if not store.exists(path):
+            return None
+        with store.open(path) as handle:
+            return pq.read_table(handle)
+    except Exception:  # noqa: BLE001 - a damaged summary: no reference drawn
+        return None
 
 
 def read_references(

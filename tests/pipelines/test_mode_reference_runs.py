@@ -23,6 +23,7 @@ from tests.support.multichannel_fixtures import modal_system, simulate_records
 
 FS = 20.0
 CHANNELS = ("north", "mid", "south")
+CHANNELS_SORTED = tuple(sorted(CHANNELS))  # the order of the written (sorted) rows
 SHAPES = np.linalg.qr(np.array([[1.0, 1.0, 1.0], [1.0, 0.2, -1.0], [1.0, -1.2, 0.6]]).T)[0]
 CONFIG = """
 [asset]
@@ -130,3 +131,33 @@ def test_mode_mac_waits_for_the_baseline_reference_then_compares_with_it(site):
     assert reference.freq_hz == pytest.approx(np.median([shapes["freq_hz"][i] for i in day1]))
     assert modal_assurance_criterion(reference.shape, SHAPES[:, 0]) > 0.995
     assert os.path.exists(os.path.join(whole, "_summaries", "asset=test-asset", f"{SUMMARY}.parquet"))
+
+
+def test_report_draws_the_shape_beside_the_modes_trends(site, tmp_path):
+    import matplotlib.image
+
+    from corrtransforms.report.page import write_report
+    from corrtransforms.report.plots import draw_mode_shape
+    from corrtransforms.stages.mode_reference import median_reference, stored_baseline_rows
+
+    config, whole, _, _ = site
+    index = write_report(whole, str(tmp_path / "report"))
+    page = open(index, encoding="utf-8").read()
+    shape_at = page.index("plots/test-asset/first__mode_shape.png")
+    trends = [page.index(f"plots/test-asset/first__{name}.png") for name in ("mode_damping", "mode_freq_hz")]
+    assert shape_at < min(trends) and page[shape_at : min(trends)].count("<figure") == 1  # right beside them
+    picture = matplotlib.image.imread(str(tmp_path / "report" / "plots" / "test-asset" / "first__mode_shape.png"))
+    assert picture.ndim == 3 and picture.shape[1] >= 700
+    # the drawn reference is the median of the kept baseline rows; the latest window as written
+    shapes = ds.dataset(os.path.join(whole, "mode_shapes"), partitioning="hive").to_table()
+    latest = shapes.filter(ds.field("window_start") == max(shapes.column("window_start").to_pylist())).sort_by(
+        "channel"
+    )
+    reference = median_reference(stored_baseline_rows(LocalFiles(), whole, "test-asset"), "first", CHANNELS_SORTED)
+    figure = draw_mode_shape("test-asset", "first", latest, reference, (0.99, 0.001))
+    lines = {line.get_label(): line.get_ydata() for line in figure.axes[0].lines}
+    parts = zip(latest.column("shape_real").to_pylist(), latest.column("shape_imag").to_pylist())
+    at_one = [k for k, part in enumerate(parts) if part == (1.0, 0.0)][0]
+    expected = reference.shape / reference.shape[at_one]
+    np.testing.assert_allclose(lines["baseline reference, real (4 windows)"], expected.real)
+    np.testing.assert_allclose(lines["latest window, imaginary"], latest.column("shape_imag").to_numpy())
