@@ -3,6 +3,8 @@
     python -m benchmarks.bench_multichannel_modes                # --compare and --timing
     python -m benchmarks.bench_multichannel_modes --coverage     # 400 windows, a few minutes
     python -m benchmarks.bench_multichannel_modes --stage        # the correlate stage without / with a mode
+    python -m benchmarks.bench_multichannel_modes --coverage --stage-settings [--sub-records 16]
+                                                                 # coverage through stages.modes itself
 
 Prints tables; asserts nothing. Small dense SVDs are slow under a multithreaded BLAS on a busy
 machine: run with ``OPENBLAS_NUM_THREADS=1`` (workers parallelise over windows anyway).
@@ -157,6 +159,81 @@ def coverage(n_windows: int, seed: int) -> None:
         print(f"{name:16s} {inside:8.3f} {np.mean(z_arr[:, k]):8.2f} {np.std(z_arr[:, k]):6.2f} {rms:10.2f}")
 
 
+def _truth_entries(truth, band, names, keep):
+    """[[modes]] entries (one per true mode in ``keep``, all with ``band``) and their references
+    from the truth, so the stage's tracking picks the true modes."""
+    from corrtransforms.numerics.mode_shapes import largest_component, normalise_shape
+    from corrtransforms.stages.mode_reference import ModeReference
+
+    entries, references = [], {}
+    for k in keep:
+        name = f"mode{k}"
+        entries.append({"name": name, "channels": list(names), "band_hz": list(band)})
+        index = largest_component(truth.shapes[k])
+        shape = normalise_shape(truth.shapes[k], index)
+        references[name] = ModeReference(name, float(truth.freq_hz[k]), shape, index, 0)
+    return entries, references
+
+
+def stage_coverage(n_windows: int, seed: int, sub_records: int) -> None:
+    """Coverage through ``stages.modes.window_multichannel_modes`` (its Hankel size, stride,
+    lags, sub-records), entries referenced to the true modes."""
+    from corrtransforms.config import parse_config
+    from corrtransforms.records import WindowBlock
+    from corrtransforms.stages.modes import window_multichannel_modes
+
+    shapes3 = np.linalg.qr(np.array([[1.0, 1.0, 1.0], [1.0, 0.2, -1.0], [1.0, -1.2, 0.6]]).T)[0]
+    cases = [
+        ("3 ch, 20 Hz, 300 s, max_lag 2 s", modal_system([2.0, 3.0, 4.5], [0.02, 0.015, 0.02], shapes3), 3, 20.0,
+         300, 2.0, (1.7, 3.3)),
+        ("8 ch chain, 50 Hz, 600 s, max_lag 6 s", chain_system([1.0] * 8, [400.0] * 8, [2.0] + [0.6] * 6 + [1.2]), 8,
+         50.0, 600, 6.0, (0.45, 1.9)),
+    ]  # fmt: skip
+    print(f"\nCoverage of +/-1.96 stderr through the stage, K = {sub_records} sub-records")
+    print("case                                   mode      windows  freq cov  damp cov  rms err/se f  rms err/se d")
+    for label, (A, B), c, fs, seconds, max_lag_s, band in cases:
+        truth = true_modes(A)
+        keep = [k for k in range(len(truth.freq_hz)) if band[0] < truth.freq_hz[k] < band[1]]
+        names = tuple(f"ch{k}" for k in range(c))
+        entries, references = _truth_entries(truth, band, names, keep)
+        config = parse_config(
+            {
+                "asset": {"name": "bench"},
+                "archive": {"path": "unused", "sample_rate_hz": fs},
+                "channels": {"names": list(names)},
+                "windows": {"length_s": float(seconds)},
+                "correlation": {"max_lag_s": max_lag_s, "pairs": "auto"},
+                "modes": entries,
+            }
+        )
+        errors = {k: [] for k in keep}
+        for start in range(0, n_windows, 50):
+            count = min(50, n_windows - start)
+            records = simulate_records(A, B, fs, int(seconds * fs), np.random.default_rng(seed + start), count, c)
+            for record in records:
+                block = WindowBlock("b", 0, float(seconds), fs, names, record, np.ones(record.shape, bool), {}, {})
+                found = window_multichannel_modes(block, config, references=references, sub_records=sub_records)
+                for k, m in zip(keep, found):
+                    if np.isfinite(m.freq_stderr_hz) and np.isfinite(m.damping_stderr):
+                        errors[k].append(
+                            (
+                                m.freq_hz - truth.freq_hz[k],
+                                m.freq_stderr_hz,
+                                m.damping - truth.damping[k],
+                                m.damping_stderr,
+                            )
+                        )
+        for k in keep:
+            e = np.array(errors[k])
+            cov_f, cov_d = np.mean(np.abs(e[:, 0] / e[:, 1]) < 1.96), np.mean(np.abs(e[:, 2] / e[:, 3]) < 1.96)
+            rms_f = np.sqrt(np.mean(e[:, 0] ** 2) / np.mean(e[:, 1] ** 2))
+            rms_d = np.sqrt(np.mean(e[:, 2] ** 2) / np.mean(e[:, 3] ** 2))
+            print(
+                f"{label:38s} {truth.freq_hz[k]:5.3f} Hz {len(e):5d}    {cov_f:6.3f}    {cov_d:6.3f}"
+                f"     {rms_f:8.2f}      {rms_d:8.2f}"
+            )
+
+
 def _stage_config(channels, fs, max_lag_s, band, modes):
     from corrtransforms.config import parse_config
 
@@ -217,7 +294,12 @@ def main() -> None:
     parser.add_argument("--windows", type=int, default=None)
     parser.add_argument("--repeats", type=int, default=5)
     parser.add_argument("--seed", type=int, default=1)
+    parser.add_argument("--stage-settings", action="store_true", help="--coverage through stages.modes")
+    parser.add_argument("--sub-records", type=int, default=32, help="sub-records K of --stage-settings")
     args = parser.parse_args()
+    if args.coverage and args.stage_settings:
+        stage_coverage(args.windows or 400, args.seed, args.sub_records)
+        return
     if args.coverage:
         coverage(args.windows or 400, args.seed)
         return

@@ -140,7 +140,7 @@ class ModeConfig:
     #: the reference channels of the identification (default: all of ``channels``)
     reference_channels: Tuple[str, ...] = ()
     #: the reference shape that mode_mac compares with, one real component per channel
-    #: (empty: mode_mac is NaN with the quality code "no_reference_shape")
+    #: (empty: the baseline reference shape, corrtransforms.stages.mode_reference)
     reference_shape: Tuple[float, ...] = ()
 
     @property

@@ -163,8 +163,9 @@ class MultichannelMode:
     """A multi-channel mode identified in one window (:mod:`corrtransforms.stages.modes`).
 
     ``shape`` is normalised so component ``reference_index`` is ``1 + 0j`` (the largest component
-    of the configured reference shape, or of the window's shape without one); ``mac`` compares it
-    with the configured reference shape (NaN without one). Values are NaN when no pole was found.
+    of the configured reference shape, else the baseline reference's channel, else the window
+    shape's largest); ``mac`` compares it with the configured reference shape, else the baseline
+    reference shape (NaN while neither exists). Values are NaN when no pole was found.
     """
 
     mode: str

@@ -113,6 +113,12 @@ MODE_SHAPES = pa.schema(
             "jackknife standard error of the complex component: sqrt(se_real^2 + se_imag^2)",
         ),
         _f("quality", pa.string(), "", "'ok' or ';'-separated quality codes of the mode in this window"),
+        _f(
+            "freq_hz",
+            pa.float64(),
+            "Hz",
+            "the mode's frequency in this window (what its baseline reference is built from)",
+        ),
     ]
 )
 
@@ -283,7 +289,7 @@ STATE = pa.schema(
 
 #: columns added to a schema after files were first written with it: read back as nulls from
 #: older files (corrtransforms.stages.write.conform)
-ADDED_COLUMNS = {"sample_count", "model_form", "model_knee"}
+ADDED_COLUMNS = {"sample_count", "model_form", "model_knee", "freq_hz"}
 
 # The baseline sample of each series while its baseline accumulates: one row per window that
 # entered the sample, written on that window's own day, so no state row ever carries the sample

@@ -19,9 +19,9 @@ class _CorrelateFn(beam.DoFn):
         self._analyse = analyse_window
         self._computed = counter("windows_computed")
 
-    def process(self, block: WindowBlock):
+    def process(self, block: WindowBlock, mode_references=None):
         try:
-            result, findings = self._analyse(block, self._config)
+            result, findings = self._analyse(block, self._config, mode_references)
         except Exception as err:  # noqa: BLE001 - routed to rejects with the error text
             finding = whole_window_reject(
                 self._config, block.window_start_us, "correlate", "correlation_failed", f"{type(err).__name__}: {err}"
@@ -55,14 +55,18 @@ class CorrelateWindows(beam.PTransform):
 
     Returns ``{"correlations": ..., "rejects": ...}``; a window whose estimator fails or has no
     usable pair becomes a whole-window reject (``correlation_failed`` / ``no_valid_pairs``).
+    ``mode_references``, optional, is a PCollection of one element: the multi-channel modes'
+    baseline references (:class:`~corrtransforms.beam.stored_state.ReadModeReferences`), a
+    side input of every window.
     """
 
-    def __init__(self, config: AssetConfig):
+    def __init__(self, config: AssetConfig, mode_references=None):
         super().__init__()
-        self._config = config
+        self._config, self._references = config, mode_references
 
     def expand(self, blocks):
-        out = blocks | "Correlate each window" >> beam.ParDo(_CorrelateFn(self._config)).with_outputs(
+        side = {} if self._references is None else {"mode_references": beam.pvalue.AsSingleton(self._references)}
+        out = blocks | "Correlate each window" >> beam.ParDo(_CorrelateFn(self._config), **side).with_outputs(
             "rejects", main="correlations"
         )
         return {"correlations": out.correlations, "rejects": out.rejects}

@@ -23,6 +23,7 @@ from corrtransforms.beam.indicators import ComputeIndicators
 from corrtransforms.beam.plan import PlanReads
 from corrtransforms.beam.read import ReadWindows
 from corrtransforms.beam.shifts import DetectShifts
+from corrtransforms.beam.stored_state import ReadModeReferences, StoredState
 from corrtransforms.beam.write import WriteTables, remove_run_temporary
 from corrtransforms.config import AssetConfig
 
@@ -173,7 +174,10 @@ class MonitorAsset(beam.PTransform):
             _ProgressFn(config.name, self._progress_interval_s), planned=beam.pvalue.AsSingleton(planned)
         )
         read = tasks | "Read windows" >> ReadWindows(config)
-        correlated = read["blocks"] | "Screen and correlate windows" >> CorrelateWindows(config)
+        references = None
+        if isinstance(self._initial_states, StoredState) and any(m.is_multichannel for m in config.modes):
+            references = pbegin | "Read mode references" >> ReadModeReferences(self._initial_states, config)
+        correlated = read["blocks"] | "Screen and correlate windows" >> CorrelateWindows(config, references)
         indicators = correlated["correlations"] | "Compute indicators" >> ComputeIndicators(config)
         indicator_rows, source_rejects = indicators["indicators"], []
         if config.covariate_sources:

@@ -10,7 +10,9 @@ pipeline fetch what is needed:
   summary ``_summaries/asset=NAME/latest_state.parquet`` plus the files it does not cover,
   :func:`corrtransforms.stages.summaries.summarize_partitions`);
 - :class:`ReadBaselineSample`: the BASELINE_SAMPLE rows of earlier days, only when some series
-  is still accumulating its baseline (one element per file, so the files are read in parallel).
+  is still accumulating its baseline (one element per file, so the files are read in parallel);
+- :class:`ReadModeReferences`: the multi-channel modes' baseline references
+  (:mod:`corrtransforms.stages.mode_reference`), one small element.
 
 File access goes through :class:`corrtransforms.beam.filesystems.BeamFiles`.
 """
@@ -26,7 +28,7 @@ import apache_beam as beam
 from corrtransforms import tables
 from corrtransforms.beam.filesystems import BeamFiles
 from corrtransforms.beam.metrics import counter
-from corrtransforms.stages import summaries
+from corrtransforms.stages import mode_reference, summaries
 from corrtransforms.stages.state import ACCUMULATING
 
 
@@ -109,4 +111,27 @@ class ReadBaselineSample(beam.PTransform):
             | "List sample files" >> beam.FlatMap(_sample_files, accumulating=beam.pvalue.AsList(accumulating))
             | "Spread sample files" >> beam.Reshuffle()
             | "Read sample files" >> beam.ParDo(_ReadSampleFileFn())
+        )
+
+
+def _mode_references(stored: StoredState, config) -> dict:
+    return mode_reference.read_references(
+        BeamFiles(), stored.output_dir, config, stored.before, provenance=dict(stored.provenance or ())
+    )
+
+
+class ReadModeReferences(beam.PTransform):
+    """``pipeline | ReadModeReferences(stored, config)`` -> one element: entry name ->
+    :class:`~corrtransforms.stages.mode_reference.ModeReference` of the entries whose baseline
+    completed before ``stored.before`` (empty when none has)."""
+
+    def __init__(self, stored: StoredState, config):
+        super().__init__()
+        self._stored, self._config = stored, config
+
+    def expand(self, pbegin):
+        return (
+            pbegin
+            | "Where the mode shapes are" >> beam.Create([self._stored])
+            | "Baseline references" >> beam.Map(_mode_references, config=self._config)
         )

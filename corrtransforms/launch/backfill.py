@@ -10,6 +10,11 @@ worth whatever the backfill's length. While it runs, ``DIR/_summaries/asset=NAME
 records the days committed; when a backfill stops part way (a crash, a killed process), the same
 command again continues after the last committed chunk with the same run id, and the output is
 byte for byte what an uninterrupted run writes. The record is removed when the backfill ends.
+
+An asset with multi-channel modes runs one day per pipeline until every entry's baseline
+reference is complete (:mod:`corrtransforms.stages.mode_reference`): a day's windows use the
+reference of the days before it, as the nightly runs do, so a chunk must not hold both the day a
+baseline completes and the days after it.
 """
 
 from __future__ import annotations
@@ -21,6 +26,7 @@ from typing import Any, Dict, List, Optional, Sequence
 from corrtransforms.beam.filesystems import BeamFiles, list_archive, open_file
 from corrtransforms.config import AssetConfig
 from corrtransforms.launch import common
+from corrtransforms.stages import mode_reference
 from corrtransforms.stages import plan as archive_plan
 from corrtransforms.stages.summaries import summary_folder
 
@@ -60,6 +66,22 @@ def chunks(days: Sequence[_dt.date], size: int) -> List[List[_dt.date]]:
         else:
             out.append([day])
     return out
+
+
+def reference_pending(store, output: str, config: AssetConfig, day: _dt.date) -> bool:
+    """Whether a run starting on ``day`` lacks some multi-channel entry's baseline reference."""
+    if not any(m.is_multichannel for m in config.modes):
+        return False
+    found = mode_reference.read_references(store, output, config, day)
+    return not mode_reference.references_complete(found, config)
+
+
+def split_for_references(store, output: str, config: AssetConfig, chunk: List[_dt.date]) -> List[_dt.date]:
+    """The days of ``chunk`` to run now: all of them, or only the first while a multi-channel
+    entry's baseline reference is pending (the rest then follows as the next chunk)."""
+    if len(chunk) > 1 and reference_pending(store, output, config, chunk[0]):
+        return chunk[:1]
+    return chunk
 
 
 def _progress_path(store, output: str, config: AssetConfig) -> str:
@@ -141,17 +163,20 @@ def main(argv: Optional[List[str]] = None) -> Dict[str, Any]:
     if progress is not None and progress.get("request") == request:
         total = {k: int(v) for k, v in progress.get("counters", {}).items()}
     pieces = chunks(days, size)
-    for number, chunk in enumerate(pieces, 1):
-        first, last = chunk[0], chunk[-1]
-        if done is not None and last <= done:
-            continue
-        span = str(first) if first == last else f"{first} to {last}"
-        print(f"backfill {config.name}: chunk {number}/{len(pieces)}: {span}")
-        resume = common.stored_state(args.output, config, first, run_id)
-        edges = (number == 1, number == len(pieces))  # file findings outside a chunk: its neighbour's
-        _add(total, common.run_pipeline(options, config, args.output, first, last, run_id, resume, edges))
-        record = {"request": request, "run_id": run_id, "committed_through": last.isoformat(), "counters": total}
-        write_progress(store, args.output, config, record)
+    for number, whole in enumerate(pieces, 1):
+        left = [d for d in whole if done is None or d > done]
+        while left:
+            chunk = split_for_references(store, args.output, config, left)
+            left = left[len(chunk) :]
+            first, last = chunk[0], chunk[-1]
+            span = str(first) if first == last else f"{first} to {last}"
+            print(f"backfill {config.name}: chunk {number}/{len(pieces)}: {span}")
+            resume = common.stored_state(args.output, config, first, run_id)
+            # file findings outside a chunk: its neighbour's
+            edges = (number == 1 and first == whole[0], number == len(pieces) and last == whole[-1])
+            _add(total, common.run_pipeline(options, config, args.output, first, last, run_id, resume, edges))
+            record = {"request": request, "run_id": run_id, "committed_through": last.isoformat(), "counters": total}
+            write_progress(store, args.output, config, record)
     # every chunk is committed: the backfill is no longer interrupted, whatever finish decides
     if store.exists(_progress_path(store, args.output, config)):
         store.delete([_progress_path(store, args.output, config)])

@@ -347,6 +347,8 @@ def backfill(options, args) -> Dict[str, Dict[str, int]]:
     run_id = args.run_id or resumed_run or common.new_run_id()
     common.prepare(options, args.output, run_id)
     own_days = {c.name: single.days_to_process(c, start, end) for c in fleet.configs}
+    if any(m.is_multichannel for c in fleet.configs for m in c.modes):
+        size = 1  # a day's windows use the mode references of the days before it (launch.backfill)
     pieces = single.chunks(sorted({d for days in own_days.values() for d in days}), size)
     for number, chunk in enumerate(pieces, 1):
         members = []

@@ -17,7 +17,7 @@ from typing import Dict, List, Optional, Tuple
 import numpy as np
 
 from corrtransforms.report import files
-from corrtransforms.report.plots import write_plots
+from corrtransforms.report.plots import write_plots, write_shape_plots
 from corrtransforms.report.summaries import (
     TABLES,
     OutputTables,
@@ -217,6 +217,19 @@ def _closed_section(closed: List[Dict], episode_source: str, plot_index: Dict) -
     return parts
 
 
+def _shapes_beside_trends(plots: List[Dict]) -> List[Dict]:
+    """Each multi-channel mode's shape picture just before the first trend of that mode."""
+    shapes = {p["subject"]: p for p in plots if p["indicator"] == "mode_shape"}
+    ordered: List[Dict] = []
+    for p in plots:
+        if p["indicator"] == "mode_shape":
+            continue
+        if p["subject"] in shapes:
+            ordered.append(shapes.pop(p["subject"]))
+        ordered.append(p)
+    return ordered + list(shapes.values())
+
+
 def _trends_section(output: OutputTables, plots: List[Dict]) -> List[str]:
     """The pictures, per asset, monitored series first."""
     parts: List[str] = []
@@ -242,9 +255,17 @@ def _trends_section(output: OutputTables, plots: List[Dict]) -> List[str]:
         for asset in sorted({p["asset"] for p in plots}):
             mine = [p for p in plots if p["asset"] == asset]
             mine.sort(key=lambda p: (not p["monitored"], p["subject"], p["indicator"]))
+            mine = _shapes_beside_trends(mine)
             parts.append(f"<h3>{_e(asset)}</h3>")
             parts.append('<div class="grid">')
             for p in mine:
+                if p["indicator"] == "mode_shape":
+                    label = f"{p['subject']} \u2014 mode shape: baseline reference and latest window"
+                    parts.append(
+                        f'<figure><a href="{_e(p["path"])}"><img src="{_e(p["path"])}" alt="{_e(label)}" '
+                        f'loading="lazy"></a><figcaption>{_e(label)}</figcaption></figure>'
+                    )
+                    continue
                 label = f"{p['subject']} \u2014 {p['indicator']}" + (
                     f" (baseline {p['baseline']})"
                     if p.get("baseline")
@@ -375,7 +396,7 @@ def write_report(output_dir: str, report_dir: Optional[str] = None, store=None) 
     for e in episodes:
         level = baselines.get((e["asset"], e["subject"], e["indicator"]), {}).get("level")
         e["shift_percent"] = shift_percent(e.get("shift_size"), level)
-    plots = write_plots(output, report_dir, store)
+    plots = write_plots(output, report_dir, store) + write_shape_plots(output, report_dir, store)
     for p in plots:
         found = baselines.get((p["asset"], p["subject"], p["indicator"]))
         if found:

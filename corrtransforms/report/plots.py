@@ -17,7 +17,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from corrtransforms.records import holds_window
-from corrtransforms.report.summaries import OutputTables, _column, _us
+from corrtransforms.report.summaries import OutputTables, _column, _text_time, _us
 
 #: width of the healthy band drawn around the expectation, in residual scales (common practice:
 #: the Shewhart three-sigma limits)
@@ -361,4 +361,134 @@ def write_plots(output: OutputTables, report_dir: str, store) -> List[Dict]:
                 "monitored": series_shifts is not None,
             }
         )
+    return entries
+
+
+# ----------------------------------------------------------------------------------------------
+# Mode shapes of multi-channel modes
+
+
+def shape_plot_file_name(mode: str) -> str:
+    """File name of a multi-channel mode's shape picture."""
+    return plot_file_name(mode, "mode_shape")
+
+
+def _latest_window(rows: pa.Table) -> pa.Table:
+    starts = _us(rows.column("window_start"))
+    return rows.filter(pa.array(starts == starts.max())).sort_by("channel")
+
+
+def draw_mode_shape(asset: str, mode: str, latest: pa.Table, reference=None, mac: Optional[tuple] = None):
+    """The shape picture of one multi-channel mode: real and imaginary part of each component
+    against the channel, the baseline reference beside the latest window (with +/- stderr).
+
+    Parameters
+    ----------
+    asset, mode : str
+    latest : pyarrow.Table
+        The mode_shapes rows of the latest window (one per channel, sorted by channel).
+    reference : ModeReference, optional
+        The baseline reference (components in the order of ``latest``), None when not complete.
+    mac : (float, float), optional
+        The latest window's mode_mac and its stderr, for the title.
+    """
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from corrtransforms.numerics.mode_shapes import normalise_shape
+
+    channels = _column(latest, "channel", "")
+    shape = np.asarray(_column(latest, "shape_real", np.nan), float) + 1j * np.asarray(
+        _column(latest, "shape_imag", np.nan), float
+    )
+    stderr = np.asarray(_column(latest, "stderr", np.nan), float)
+    x = np.arange(len(channels))
+    fig, ax = plt.subplots(1, 1, figsize=(7.5, 4.6), layout="constrained")
+    ax.axhline(0.0, color="#bbbbbb", linewidth=0.8)
+    if reference is not None:
+        at_one = np.nonzero(shape == 1.0 + 0j)[0]  # the latest window's normalisation channel
+        ref = normalise_shape(reference.shape, int(at_one[0])) if len(at_one) else reference.shape
+        ax.plot(
+            x - 0.06,
+            ref.real,
+            "o-",
+            color=EXPECTED_COLOUR,
+            label=f"baseline reference, real ({reference.n_windows} windows)",
+        )
+        ax.plot(x - 0.06, ref.imag, "o--", color=EXPECTED_COLOUR, mfc="white", label="baseline reference, imaginary")
+    when = _text_time(int(_us(latest.column("window_start"))[0]))
+    ax.errorbar(
+        x + 0.06,
+        shape.real,
+        yerr=stderr,
+        fmt="s-",
+        color=SHIFTED_COLOUR,
+        capsize=3,
+        label="latest window, real (\u00b1 stderr)",
+    )
+    ax.plot(x + 0.06, shape.imag, "s--", color=SHIFTED_COLOUR, mfc="white", label="latest window, imaginary")
+    ax.set_xticks(x, channels)
+    ax.set_ylabel("shape component (1 at the reference channel)")
+    subtitle = f"latest window {when} UTC"
+    if mac is not None and np.isfinite(mac[0]):
+        subtitle += f", MAC to the reference {mac[0]:.4f} \u00b1 {mac[1]:.4f}"
+    elif reference is None:
+        subtitle += ", no baseline reference yet"
+    ax.set_title(f"{asset} \u2014 {mode} \u2014 mode shape", loc="left", fontsize=12, color=INK, pad=18)
+    ax.text(0.0, 1.01, subtitle, transform=ax.transAxes, fontsize=9, color="#555555", va="bottom")
+    ax.grid(True, color="#dddddd", linewidth=0.5)
+    for side in ("top", "right"):
+        ax.spines[side].set_visible(False)
+    fig.legend(loc="outside lower center", fontsize=8, frameon=False, ncol=2)
+    return fig
+
+
+def _latest_mac(indicators: Optional[pa.Table], asset: str, mode: str, start_us: int) -> Optional[tuple]:
+    if indicators is None:
+        return None
+    rows = indicators.filter(
+        pc.and_(
+            pc.and_(pc.equal(indicators.column("asset"), asset), pc.equal(indicators.column("subject"), mode)),
+            pc.equal(indicators.column("indicator"), "mode_mac"),
+        )
+    )
+    hit = _us(rows.column("window_start")) == start_us
+    if not hit.any():
+        return None
+    i = int(np.nonzero(hit)[0][0])
+    return float(rows.column("value")[i].as_py() or np.nan), float(rows.column("stderr")[i].as_py() or np.nan)
+
+
+def write_shape_plots(output: OutputTables, report_dir: str, store) -> List[Dict]:
+    """One PNG per asset and multi-channel mode of the mode_shapes table (latest window against
+    the baseline reference); returns entries like :func:`write_plots` (indicator "mode_shape")."""
+    from corrtransforms.stages.mode_reference import median_reference, stored_baseline_rows
+
+    shapes = output.get("mode_shapes")
+    if shapes is None:
+        return []
+    entries = []
+    for asset, mode in sorted(set(zip(_column(shapes, "asset", ""), _column(shapes, "mode", "")))):
+        rows = shapes.filter(pc.and_(pc.equal(shapes.column("asset"), asset), pc.equal(shapes.column("mode"), mode)))
+        latest = _latest_window(rows)
+        channels = tuple(_column(latest, "channel", ""))
+        baseline = stored_baseline_rows(store, output.folder, asset)
+        reference = None
+        if baseline is not None:
+            mine = baseline.filter(pc.equal(baseline.column("mode"), mode))
+            reference = median_reference(mine, mode, channels) if mine.num_rows else None
+        mac = _latest_mac(output.get("indicators"), asset, mode, int(_us(latest.column("window_start"))[0]))
+        figure = draw_mode_shape(asset, mode, latest, reference, mac)
+        picture = io.BytesIO()
+        figure.savefig(picture, format="png", dpi=100)
+        import matplotlib.pyplot as plt
+
+        plt.close(figure)
+        folder = re.sub(r"[^A-Za-z0-9_.-]", "_", asset)
+        path = f"plots/{folder}/{shape_plot_file_name(mode)}"
+        with store.create(store.join(report_dir, path)) as handle:
+            handle.write(picture.getvalue())
+        entries.append({"asset": asset, "subject": mode, "indicator": "mode_shape", "path": path, "monitored": False})
     return entries

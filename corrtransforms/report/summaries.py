@@ -22,7 +22,7 @@ import pyarrow.parquet as pq
 
 from corrtransforms.stages import summaries as stage_summaries
 
-TABLES = ("correlations", "indicators", "shifts", "rejects", "state", "episodes")
+TABLES = ("correlations", "indicators", "shifts", "rejects", "state", "episodes", "mode_shapes")
 _PARTITION = re.compile(r"/asset=([^/]+)/date=([^/]+)/[^/]+$")
 
 

@@ -29,7 +29,9 @@ from corrtransforms.stages.correlate import correlate_window
 from corrtransforms.stages.screen import screen_window
 
 
-def analyse_window(block: WindowBlock, config: AssetConfig) -> Tuple[Optional[WindowCorrelation], List[Reject]]:
+def analyse_window(
+    block: WindowBlock, config: AssetConfig, mode_references=None
+) -> Tuple[Optional[WindowCorrelation], List[Reject]]:
     """Screen and correlate one window.
 
     Parameters
@@ -38,6 +40,8 @@ def analyse_window(block: WindowBlock, config: AssetConfig) -> Tuple[Optional[Wi
         The window's samples and validity mask.
     config : AssetConfig
         ``[screening]``, ``[correlation]`` and ``[[modes]]``.
+    mode_references : mapping, optional
+        Baseline references of the multi-channel modes (:mod:`corrtransforms.stages.mode_reference`).
 
     Returns
     -------
@@ -51,7 +55,7 @@ def analyse_window(block: WindowBlock, config: AssetConfig) -> Tuple[Optional[Wi
     screening = screen_window(block, config.screening, screened)
     if screening.excluded:
         return None, list(screening.rejects)
-    result = correlate_window(block, config)
+    result = correlate_window(block, config, mode_references=mode_references)
     codes: Dict[str, Tuple[str, ...]] = {s: tuple(q) for s, q in screening.subject_quality.items()}
     pairs = tuple(
         dataclasses.replace(p, quality=tuple(p.quality) + codes.get(p.subject, ())) if codes.get(p.subject) else p

@@ -50,7 +50,9 @@ def _usable_channels(spectra, min_pairs: int) -> np.ndarray:
     return (spectra.valid_counts >= max(min_pairs, 2)) & ~flat & (var > 0)
 
 
-def correlate_window(block: WindowBlock, config: AssetConfig, min_pairs: int = DEFAULT_MIN_PAIRS) -> WindowCorrelation:
+def correlate_window(
+    block: WindowBlock, config: AssetConfig, min_pairs: int = DEFAULT_MIN_PAIRS, mode_references=None
+) -> WindowCorrelation:
     """Correlation functions, error metadata and quality codes of one window.
 
     Parameters
@@ -62,6 +64,9 @@ def correlate_window(block: WindowBlock, config: AssetConfig, min_pairs: int = D
         target_rel_error) and ``[[modes]]``.
     min_pairs : int
         Lags with fewer valid sample pairs are NaN (and the pair gets "few_pairs").
+    mode_references : mapping, optional
+        The multi-channel entries' baseline references
+        (:func:`corrtransforms.stages.mode_reference.read_references`); None means none yet.
 
     Returns
     -------
@@ -121,7 +126,7 @@ def correlate_window(block: WindowBlock, config: AssetConfig, min_pairs: int = D
                 spectra, est, channels, requested, needed, names, channel_codes, cc, min_pairs
             )
         modes_out = _mode_correlations(spectra, config, names, usable, channel_codes, min_pairs)
-    multichannel = window_multichannel_modes(block, config, usable)
+    multichannel = window_multichannel_modes(block, config, usable, mode_references)
     return WindowCorrelation(
         asset=block.asset,
         window_start_us=int(block.window_start_us),

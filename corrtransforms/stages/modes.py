@@ -18,16 +18,18 @@ overlap-save blocks of :func:`~corrtransforms.numerics.correlation.channel_spect
 the Hankel matrix uses only (``(1 + rows + columns) * stride``, at most ``[correlation]
 max_lag_s``).
 
-Tracking (the rule of this version; no state across windows). Entries with the same channels
-and reference channels share one identification over the union of their bands. Each entry's
-reference frequency is its band centre. Its reference shape is ``reference_shape`` when
-configured; otherwise the shape of the candidate pole in the entry's (widened) band nearest the
-centre. Poles are assigned by :func:`~corrtransforms.numerics.mode_tracking.track_modes`
-(Hungarian, cost ``|df| / f + (1 - MAC)``, admissible within the widened band and MAC >= 0.8).
-``mode_mac`` is the MAC of the window's shape to the configured ``reference_shape`` and is NaN
-with ``no_reference_shape`` without one (a reference taken from the window itself would make it
-1 by construction). A reference from the baseline windows carried in the detector state is
-future work (docs/modes.md).
+Tracking. Entries with the same channels and reference channels share one identification over
+the union of their bands. With the entry's baseline reference
+(:mod:`corrtransforms.stages.mode_reference`: median frequency and shape of its baseline
+windows, handed in as ``references``) the reference frequency and shape are those; before it
+exists the frequency is the band centre and the shape ``reference_shape`` or the shape of the
+candidate pole in the entry's (widened) band nearest the centre. A configured ``reference_shape``
+is always the shape tracked and compared with (the user fixed it). Poles are assigned by
+:func:`~corrtransforms.numerics.mode_tracking.track_modes` (Hungarian, cost
+``|df| / f + (1 - MAC)``, admissible within the widened band and MAC >= 0.8). ``mode_mac`` is the
+MAC of the window's shape to ``reference_shape``, else to the baseline reference shape, and NaN
+with ``mode_reference_pending`` while neither exists (a reference taken from the window itself
+would make it 1 by construction).
 
 Settings chosen here (measured by ``benchmarks/bench_multichannel_modes.py --stage``):
 ``block_columns = ceil(MAX_ORDER / n_references) + 1`` (the fewest that hold every model order
@@ -38,7 +40,7 @@ at least :data:`NYQUIST_FACTOR` times the band's top.
 
 from __future__ import annotations
 
-from typing import Dict, Iterable, List, Optional, Sequence, Tuple
+from typing import Dict, Iterable, List, Mapping, Optional, Sequence, Tuple
 
 import numpy as np
 import pyarrow as pa
@@ -49,7 +51,6 @@ from corrtransforms.numerics.correlation import block_lag_sums, channel_spectra,
 from corrtransforms.numerics.mode_shapes import largest_component, modal_assurance_criterion, normalise_shape
 from corrtransforms.numerics.mode_tracking import track_modes
 from corrtransforms.numerics.mode_uncertainty import (
-    DEFAULT_SEGMENTS,
     mac_stderr,
     mode_uncertainty,
     window_sequence,
@@ -63,9 +64,13 @@ from corrtransforms.numerics.multichannel_modes import (
     search_band,
 )
 from corrtransforms.records import MultichannelMode, WindowBlock, WindowCorrelation, quality_text
+from corrtransforms.stages.mode_reference import ModeReference
 
-#: sub-records of the window for the jackknife (numerics.mode_uncertainty.DEFAULT_SEGMENTS)
-SUB_RECORDS = DEFAULT_SEGMENTS
+#: sub-records of the window for the jackknife: 16, half of numerics.mode_uncertainty's
+#: DEFAULT_SEGMENTS, halves its cost; measured through this stage (benchmarks/bench_multichannel_modes.py
+#: --coverage --stage-settings, 400 windows) the coverage is as good as with 32 (docs/modes.md);
+#: with 15 degrees of freedom a correct stderr covers P(|t_15| < 1.96) = 0.931 (Student's t)
+SUB_RECORDS = 16
 #: the strided lag grid keeps its Nyquist frequency at least this many times the band's top
 #: (common practice: content above the strided Nyquist aliases into the band)
 NYQUIST_FACTOR = 5.0
@@ -76,7 +81,7 @@ QUALITY_CODES = {
     "mode_channel_unusable": "a channel of the mode is missing, flat or too sparse in this window",
     "mode_identification_failed": "the identification raised on this window's correlations (too few lags, singular)",
     "mode_max_lag_short": "[correlation] max_lag_s holds too few lags for the Hankel matrix of this band",
-    "no_reference_shape": "the entry has no reference_shape, so mode_mac is NaN",
+    "mode_reference_pending": "no reference_shape and the baseline reference is not complete yet, so mode_mac is NaN",
 }
 
 
@@ -114,7 +119,13 @@ def _empty(mode: ModeConfig, codes: Sequence[str]) -> MultichannelMode:
     )  # fmt: skip
 
 
-def window_multichannel_modes(block: WindowBlock, config: AssetConfig, usable=None) -> List[MultichannelMode]:
+def window_multichannel_modes(
+    block: WindowBlock,
+    config: AssetConfig,
+    usable=None,
+    references: Optional[Mapping[str, ModeReference]] = None,
+    sub_records: int = SUB_RECORDS,
+) -> List[MultichannelMode]:
     """One :class:`~corrtransforms.records.MultichannelMode` per multi-channel ``[[modes]]`` entry.
 
     Parameters
@@ -124,6 +135,11 @@ def window_multichannel_modes(block: WindowBlock, config: AssetConfig, usable=No
         ``[[modes]]`` (entries with ``channels``) and ``[correlation]`` max_lag_s, detrend.
     usable : array_like of bool, optional
         Per block channel, whether the correlate stage could use it; None means all.
+    references : mapping, optional
+        Entry name -> its baseline :class:`~corrtransforms.stages.mode_reference.ModeReference`
+        (entries without one use the band-centre rule); None means none.
+    sub_records : int
+        Sub-records of the jackknife, default :data:`SUB_RECORDS` (the benchmark varies it).
 
     Returns
     -------
@@ -132,20 +148,22 @@ def window_multichannel_modes(block: WindowBlock, config: AssetConfig, usable=No
         a failure of the identification gives ``mode_identification_failed``, never an exception.
     """
     names = tuple(block.channels)
+    baseline = references
     ok = np.ones(len(names), bool) if usable is None else np.asarray(usable, bool)
     results: Dict[str, MultichannelMode] = {}
-    for (channels, references), entries in _groups(config).items():
+    for (channels, reference_channels), entries in _groups(config).items():
         if not all(c in names and ok[names.index(c)] for c in channels):
             results.update({e.name: _empty(e, ["mode_channel_unusable"]) for e in entries})
             continue
         try:
-            results.update({m.mode: m for m in _group_modes(block, config, channels, references, entries)})
+            found = _group_modes(block, config, channels, reference_channels, entries, baseline or {}, sub_records)
+            results.update({m.mode: m for m in found})
         except (ValueError, np.linalg.LinAlgError):  # ill-conditioned or too short: a code, not a crash
             results.update({e.name: _empty(e, ["mode_identification_failed"]) for e in entries})
     return [results[m.name] for m in config.modes if m.is_multichannel]
 
 
-def _lag_arrays(block: WindowBlock, config: AssetConfig, channels, references, max_lag: int):
+def _lag_arrays(block: WindowBlock, config: AssetConfig, channels, references, max_lag: int, sub_records: int):
     """Per sub-record lag sums and pair counts as ``(K, n_lags, n_outputs, n_references)``."""
     names = tuple(block.channels)
     columns = [names.index(c) for c in channels]
@@ -155,7 +173,7 @@ def _lag_arrays(block: WindowBlock, config: AssetConfig, channels, references, m
     cc = config.correlation
     spectra = channel_spectra(
         values, block.sample_rate_hz, max_lag / block.sample_rate_hz, valid=valid, detrend=cc.detrend,
-        segment_length=-(-n // SUB_RECORDS),
+        segment_length=-(-n // sub_records),
     )  # fmt: skip
     pairs = resolve_pairs("all", len(channels))
     sums, counts = block_lag_sums(spectra, pairs)
@@ -167,7 +185,15 @@ def _lag_arrays(block: WindowBlock, config: AssetConfig, channels, references, m
     )
 
 
-def _group_modes(block, config, channels, references, entries: List[ModeConfig]) -> List[MultichannelMode]:
+def _group_modes(
+    block,
+    config,
+    channels,
+    references,
+    entries: List[ModeConfig],
+    baseline: Mapping[str, ModeReference],
+    sub_records: int = SUB_RECORDS,
+) -> List[MultichannelMode]:
     """Identify once for entries sharing channels, assign poles, attach jackknife stderrs."""
     fs = float(block.sample_rate_hz)
     union = (min(e.band_hz[0] for e in entries), max(e.band_hz[1] for e in entries))
@@ -177,14 +203,17 @@ def _group_modes(block, config, channels, references, entries: List[ModeConfig])
         return [_empty(e, ["mode_max_lag_short"]) for e in entries]
     rows = mode_block_rows(fs, search_band(union)[0], len(references), stride, columns, configured_lags + 1)
     # only the lags the Hankel matrix uses: (1 + rows + columns) strided lags, within max_lag_s
-    S, N = _lag_arrays(block, config, channels, references, min(configured_lags, (1 + rows + columns) * stride))
+    used_lags = min(configured_lags, (1 + rows + columns) * stride)
+    S, N = _lag_arrays(block, config, channels, references, used_lags, sub_records)
     sequence = window_sequence(S, N)
     if not np.all(np.isfinite(sequence)):
         return [_empty(e, ["nonfinite_correlation"]) for e in entries]
     found = identify_modes(sequence, fs, union, block_rows=rows, lag_stride=stride, block_columns=columns)
     bands = np.array([search_band(e.band_hz) for e in entries])
-    centres = np.array([0.5 * (e.band_hz[0] + e.band_hz[1]) for e in entries])
-    reference_shapes = _reference_shapes(entries, found, bands, centres)
+    centres = np.array(
+        [baseline[e.name].freq_hz if e.name in baseline else 0.5 * (e.band_hz[0] + e.band_hz[1]) for e in entries]
+    )
+    reference_shapes = _reference_shapes(entries, found, bands, centres, baseline)
     if found.n_modes == 0 or reference_shapes is None:
         return [_empty(e, ["mode_not_found"]) for e in entries]
     assignment = track_modes(centres, reference_shapes, found.freq_hz, found.shapes, bands_hz=bands)
@@ -194,19 +223,22 @@ def _group_modes(block, config, channels, references, entries: List[ModeConfig])
         if chosen < 0:
             out.append(_empty(entry, assignment.quality[k]))
             continue
-        out.append(_assigned(entry, found, chosen, S, N, fs, assignment.quality[k]))
+        out.append(_assigned(entry, found, chosen, S, N, fs, assignment.quality[k], baseline.get(entry.name)))
     return out
 
 
-def _reference_shapes(entries, found: IdentifiedModes, bands, centres) -> Optional[np.ndarray]:
-    """Configured reference shapes; else the in-band candidate nearest the centre (None if no
-    candidate at all)."""
+def _reference_shapes(entries, found: IdentifiedModes, bands, centres, baseline) -> Optional[np.ndarray]:
+    """Configured reference shapes; else the baseline reference's; else the in-band candidate
+    nearest the centre (None if no candidate at all)."""
     if found.n_modes == 0:
         return None
     shapes = np.empty((len(entries), found.shapes.shape[1]), complex)
     for k, entry in enumerate(entries):
         if entry.reference_shape:
             shapes[k] = np.asarray(entry.reference_shape, float)
+            continue
+        if entry.name in baseline:
+            shapes[k] = baseline[entry.name].shape
             continue
         in_band = (found.freq_hz >= bands[k, 0]) & (found.freq_hz <= bands[k, 1])
         distance = np.where(in_band, np.abs(found.freq_hz - centres[k]), np.inf)
@@ -222,16 +254,30 @@ def _subset(found: IdentifiedModes, row: int) -> IdentifiedModes:
     )  # fmt: skip
 
 
-def _assigned(entry: ModeConfig, found: IdentifiedModes, row: int, S, N, fs: float, codes) -> MultichannelMode:
+def _compared_shape(entry: ModeConfig, baseline: Optional[ModeReference]) -> Tuple[Optional[np.ndarray], int]:
+    """The shape mode_mac compares with (configured, else baseline, else None) and the
+    component normalised to 1 (-1: the window shape's own largest)."""
+    if entry.reference_shape:
+        reference = np.asarray(entry.reference_shape, float)
+        return reference, largest_component(reference)
+    if baseline is not None:
+        return baseline.shape, baseline.reference_index
+    return None, -1
+
+
+def _assigned(
+    entry: ModeConfig, found: IdentifiedModes, row: int, S, N, fs: float, codes, baseline: Optional[ModeReference]
+) -> MultichannelMode:
     """The assigned pole's values with jackknife stderrs and the MAC to the reference shape."""
-    reference = np.asarray(entry.reference_shape, float) if entry.reference_shape else None
-    index = largest_component(reference) if reference is not None else largest_component(found.shapes[row])
+    reference, index = _compared_shape(entry, baseline)
+    if index < 0:
+        index = largest_component(found.shapes[row])
     mode = _subset(found, row)
     u = mode_uncertainty(S, N, fs, mode, reference_index=[index])
     quality = list(codes) + list(u.quality[0])
     if reference is None:
         mac, mac_se = np.nan, np.nan
-        quality.append("no_reference_shape")
+        quality.append("mode_reference_pending")
     else:
         mac = float(modal_assurance_criterion(found.shapes[row], reference))
         mac_se = mac_stderr(u.replicate_shapes[:, 0], reference)
@@ -266,6 +312,7 @@ def mode_shape_table(window_correlations: Iterable[WindowCorrelation]) -> pa.Tab
     imag: List[float] = []
     stderr: List[float] = []
     quality: List[str] = []
+    freq: List[float] = []
     for wc in window_correlations:
         for m in wc.multichannel_modes:
             if not np.isfinite(m.freq_hz):
@@ -279,6 +326,7 @@ def mode_shape_table(window_correlations: Iterable[WindowCorrelation]) -> pa.Tab
                 imag.append(float(m.shape[c].imag))
                 stderr.append(float(se[c]))
                 quality.append(quality_text(m.quality))
+                freq.append(float(m.freq_hz))
     schema = tables.MODE_SHAPES
     columns = [
         pa.array(starts, type=pa.int64()).cast(tables.TIMESTAMP),
@@ -288,5 +336,6 @@ def mode_shape_table(window_correlations: Iterable[WindowCorrelation]) -> pa.Tab
         pa.array(imag, type=pa.float64()),
         pa.array(stderr, type=pa.float64()),
         pa.array(quality, type=pa.string()),
+        pa.array(freq, type=pa.float64()),
     ]
     return pa.Table.from_arrays(columns, schema=schema)

@@ -232,8 +232,12 @@ def test_committed_expected_changes_match_the_generator():
     with open(os.path.join(DEMO_DIR, "expected_changes.json"), encoding="utf-8") as handle:
         committed = json.load(handle)
     assert committed == gen.expected_changes()
-    assert [c["date"] for c in committed["shifts"]] == ["2025-05-16", "2025-05-21", "2025-05-26"]
+    # the stiffness loss is seen by bending_1 and by the multi-channel bending_1_deck
+    assert [c["date"] for c in committed["shifts"]] == ["2025-05-16", "2025-05-16", "2025-05-21", "2025-05-26"]
     # a shorter archive lists only the changes it contains
     short = gen.expected_changes(days=18)
-    assert [c["indicator"] for c in short["shifts"]] == ["mode_freq_hz"]
+    assert [(c["subject"], c["indicator"]) for c in short["shifts"]] == [
+        ("bending_1", "mode_freq_hz"),
+        ("bending_1_deck", "mode_freq_hz"),
+    ]
     assert {r["reason"] for r in short["rejects"]} == {"flat_channel"}

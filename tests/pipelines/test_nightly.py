@@ -16,7 +16,7 @@ from demo_data import generate
 from pipelines import backfill, nightly
 
 DEMO_DIR = os.path.join(os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__)))), "demo_data")
-TABLES = ("correlations", "indicators", "shifts", "state", "baseline_sample", "rejects")
+TABLES = ("correlations", "indicators", "shifts", "state", "baseline_sample", "rejects", "mode_shapes")
 SORT_KEYS = {
     "correlations": ["window_start", "channel_a", "channel_b"],
     "indicators": ["window_start", "subject", "indicator"],
@@ -24,6 +24,7 @@ SORT_KEYS = {
     "state": ["window_start", "subject", "indicator"],
     "baseline_sample": ["window_start", "subject", "indicator"],
     "rejects": ["stage", "source", "subject", "reason", "detail"],
+    "mode_shapes": ["window_start", "mode", "channel"],
 }
 
 

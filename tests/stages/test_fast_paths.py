@@ -21,6 +21,7 @@ import dataclasses
 import numpy as np
 import pyarrow.parquet as pq
 import pytest
+import scipy.linalg
 import scipy.signal
 
 from corrtransforms.config import ScreeningConfig
@@ -321,3 +322,49 @@ def test_screening_a_one_channel_window_leaves_the_block_as_it_was():
     st.screen_window(block, ScreeningConfig(), None)
     np.testing.assert_array_equal(block.valid, valid_before)
     assert np.isnan(block.values[100, 0])
+
+
+def _noisy_hankel(rows=80, columns=16, n_out=4, seed=0):
+    """A block Hankel matrix of a decaying two-mode correlation sequence plus noise."""
+    from corrtransforms.numerics.multichannel_modes import block_hankel
+
+    rng = np.random.default_rng(seed)
+    k = np.arange(rows + columns + 1)[:, None, None] / 20.0
+    shapes = rng.standard_normal((2, n_out))
+    decay = [np.exp(-0.25 * k) * np.cos(2 * np.pi * 2.0 * k), np.exp(-0.3 * k) * np.cos(2 * np.pi * 3.1 * k)]
+    lam = sum(d * np.outer(s, s)[None] for d, s in zip(decay, shapes))
+    lam = lam + 1e-3 * rng.standard_normal(lam.shape)
+    return block_hankel(lam, rows, columns // n_out), lam
+
+
+def test_leading_subspace_from_the_gram_matrix_equals_the_svd():
+    from corrtransforms.numerics.multichannel_modes import leading_subspace
+
+    H, _ = _noisy_hankel()
+    U, s, _ = scipy.linalg.svd(H, full_matrices=False)  # reference: LAPACK's SVD
+    for order in (2, 4, 8):
+        got = leading_subspace(H, order)
+        assert got is not None
+        np.testing.assert_allclose(got[1], s[:order], rtol=1e-10)
+        # the same subspace: projector onto the columns (signs of singular vectors are arbitrary)
+        np.testing.assert_allclose(got[0] @ got[0].T, U[:, :order] @ U[:, :order].T, atol=1e-7)
+    assert leading_subspace(np.outer(np.ones(6), [1.0, 1e-9, 0.0]), 2) is None  # too ill conditioned: SVD
+
+
+def test_shift_from_two_products_equals_the_least_squares_shift():
+    from corrtransforms.numerics.multichannel_modes import _Factorisation
+
+    _, lam = _noisy_hankel()
+    f = _Factorisation(lam, 20, "ssi-cov", block_columns=4)
+    U, s, _ = scipy.linalg.svd(
+        np.vstack([np.hstack([lam[1 + p + q] for q in range(4)]) for p in range(20)]), full_matrices=False
+    )
+    for order in (2, 4, 8, 12):
+        observability = U[:, :order] * np.sqrt(s[:order])
+        # A = pinv(O_up) O_down by numpy's lstsq
+        expected = np.linalg.lstsq(observability[:-4], observability[4:], rcond=None)[0]
+        A, C = f.system(order)
+        # eigenvalues are invariant to the sign/similarity of the basis
+        np.testing.assert_allclose(
+            np.sort_complex(np.linalg.eigvals(A)), np.sort_complex(np.linalg.eigvals(expected)), rtol=1e-9
+        )

@@ -21,7 +21,7 @@ EVERY_HOURS = 12
 #: the backfill covers the days up to this one; the nightly run then processes NIGHT
 BACKFILL_END = dt.date(2025, 5, 13)
 NIGHT = dt.date(2025, 5, 19)
-TABLES = ("correlations", "indicators", "shifts", "state", "baseline_sample", "rejects")
+TABLES = ("correlations", "indicators", "shifts", "state", "baseline_sample", "rejects", "mode_shapes")
 DEMO_CONFIG = os.path.join(os.path.dirname(generate.__file__), "footbridge.toml")
 
 
