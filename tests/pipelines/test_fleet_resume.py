@@ -2,8 +2,9 @@
 stopping only its asset (status 4) unless --rebuild_state, a killed fleet backfill continued to
 the same files, and the false-alarm budget's limits in the states of a fitted baseline.
 
-Archive: the fleet tests' two assets (tests/support/fleet_data.py) over three days, 10 windows
-of 60 s a day; north's baseline is 4 windows, south's 5 with a budget of one false alarm a year.
+Archive: the fleet tests' two assets (tests/support/fleet_data.py) over three days, 5 windows
+of 120 s a day; north's baseline is 4 windows, south's 5 (all of day one) with a budget of one
+false alarm a year.
 """
 
 import datetime as dt
@@ -18,6 +19,7 @@ import time
 
 import pytest
 
+from corrtransforms.config import ShiftsConfig
 from corrtransforms.numerics.arl import (
     SECONDS_PER_YEAR,
     cusum_arl_markov_chain,
@@ -27,21 +29,23 @@ from corrtransforms.numerics.arl import (
     run_length_for_budget,
 )
 from pipelines import backfill, nightly
-from tests.support.fleet_data import FIRST_DAY, asset_table, assert_same_asset, write_fleet
+from tests.support.fleet_data import FIRST_DAY, assert_same_asset, asset_table, write_fleet
 
 REPO = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 DAYS = [(FIRST_DAY + dt.timedelta(days=i)).isoformat() for i in range(3)]
 ASSETS = ("north", "south")
+#: 120-s windows: 5 a day, enough effective samples for the baselines to fit (fleet_data.write_fleet)
+WINDOW_S = 120.0
 RESUMED_TABLES = ("correlations", "indicators", "shifts", "state", "baseline_sample")
 
 
 @pytest.fixture(scope="module")
 def site(tmp_path_factory):
     root = tmp_path_factory.mktemp("fleet_resume")
-    fleet = write_fleet(str(root), days=3)
+    fleet = write_fleet(str(root), days=3, length_s=WINDOW_S)
     full = str(root / "full")
     found = backfill.main(["--config", fleet, "--output", full, "--run_id", "full"])
-    assert all(found[a]["windows_computed"] == 30 for a in ASSETS), found
+    assert all(found[a]["windows_computed"] == 15 for a in ASSETS), found
     return root, fleet, full
 
 
@@ -56,7 +60,7 @@ def test_fleet_nights_resume_each_asset_from_its_own_state(site):
     backfill.main(["--config", fleet, "--output", output, "--end", DAYS[0]])
     for day in DAYS[1:]:
         found = nightly.main(["--config", fleet, "--output", output, "--date", day])
-        assert all(found[a]["windows_computed"] == 10 for a in ASSETS), (day, found)
+        assert all(found[a]["windows_computed"] == 5 for a in ASSETS), (day, found)
     for asset in ASSETS:
         assert_same_asset(output, full, asset, tables=RESUMED_TABLES)
     # both assets fitted on day one and carried on: the nights resumed them, not a fresh start
@@ -89,14 +93,14 @@ def test_a_missing_state_stops_only_its_asset_unless_rebuilt(site):
         nightly.main(["--config", fleet, "--output", output, "--date", DAYS[2], "--run_id", "night"])
     assert stop.value.code == 4
     outcomes = _summary(output, "night")
-    assert outcomes["north"]["outcome"] == "done" and outcomes["north"]["windows"]["computed"] == 10
+    assert outcomes["north"]["outcome"] == "done" and outcomes["north"]["windows"]["computed"] == 5
     assert outcomes["south"]["status"] == 2 and "--rebuild_state" in outcomes["south"]["reason"]
     assert_same_asset(output, full, "north", tables=RESUMED_TABLES)
     for table in RESUMED_TABLES:
         assert not os.path.exists(os.path.join(output, table, "asset=south", f"date={DAYS[2]}")), table
     # with --rebuild_state south replays its indicators (no samples read again) and runs the night
     found = nightly.main(["--config", fleet, "--output", output, "--date", DAYS[2], "--rebuild_state"])
-    assert found["south"]["windows_computed"] == found["north"]["windows_computed"] == 10
+    assert found["south"]["windows_computed"] == found["north"]["windows_computed"] == 5
     for asset in ASSETS:
         assert_same_asset(output, full, asset, tables=RESUMED_TABLES)
 
@@ -156,9 +160,9 @@ def test_the_budget_gives_the_limits_of_the_fitted_states(site):
     series = {(s["subject"], s["indicator"]) for s in states}
     fitted = [s for s in states if s["phase"] == "fitted" and (s["model_n"] or 0) > 0]
     assert len({(s["subject"], s["indicator"]) for s in fitted}) == len(series) > 0
-    # the budget of one false episode a year over south's series and its two charts (60-s windows)
-    arl0 = run_length_for_budget(1.0, len(series), SECONDS_PER_YEAR / 60.0, 2)
-    assert arl0 == pytest.approx(SECONDS_PER_YEAR / 60.0 * len(series) * 2)
+    # the budget of one false episode a year over south's series and its two charts (120-s windows, hop = length)
+    arl0 = run_length_for_budget(1.0, len(series), SECONDS_PER_YEAR / WINDOW_S, 2)
+    assert arl0 == pytest.approx(SECONDS_PER_YEAR / WINDOW_S * len(series) * 2)
     h = limit_for_run_length("cusum", arl0, k=0.5)
     width = limit_for_run_length("ewma", arl0, smoothing=0.1)
     # a second method: Brook & Evans (1972) and Lucas & Saccucci (1990) Markov chains
@@ -169,7 +173,12 @@ def test_the_budget_gives_the_limits_of_the_fitted_states(site):
         assert s["cusum_h_used"] == limit_for_estimated_parameters("cusum", h, s["model_n"], k=0.5), s
         assert s["ewma_L_used"] == limit_for_estimated_parameters("ewma", width, s["model_n"], smoothing=0.1), s
         assert s["cusum_h_used"] > h and s["ewma_L_used"] > width  # widened for 5 baseline windows
-    # north has no budget: the configured limits, widened the same way
-    for s in _rows(full, "state", "north"):
-        if s["phase"] == "fitted" and s["model_n"]:
-            assert s["cusum_h_used"] == limit_for_estimated_parameters("cusum", 5.0, s["model_n"], k=0.5), s
+    # north has no budget: the default limits, widened the same way for its baseline windows
+    # (4, fewer where a window was held: nonstationary)
+    north = [s for s in _rows(full, "state", "north") if s["phase"] == "fitted" and s["model_n"]]
+    assert north and all(2 <= s["model_n"] <= 4 for s in north)
+    default = ShiftsConfig()
+    for s in north:
+        n = s["model_n"]
+        assert s["cusum_h_used"] == limit_for_estimated_parameters("cusum", default.cusum_h, n, k=0.5), s
+        assert s["ewma_L_used"] == limit_for_estimated_parameters("ewma", default.ewma_L, n, smoothing=0.1), s

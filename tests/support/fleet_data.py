@@ -66,13 +66,19 @@ def write_days(folder: str, seed: int, days: int) -> None:
         write_files(folder, wide_table(columns), FILE_SECONDS, ROW_GROUP, prefix=f"day{day}")
 
 
-def write_fleet(root: str, days: int = 1, extra: Optional[Dict[str, str]] = None) -> str:
-    """Archives under ``root/archives/NAME`` and the fleet folder ``root/fleet``; returns the folder."""
+def write_fleet(root: str, days: int = 1, extra: Optional[Dict[str, str]] = None, length_s: float = 60.0) -> str:
+    """Archives under ``root/archives/NAME`` and the fleet folder ``root/fleet``; returns the folder.
+
+    ``length_s`` is the defaults' ``[windows] length_s``. At 60 s every window of this archive
+    has fewer than 100 effective samples (AR(1) with phi = 0.8 at 10 Hz: T_I = 0.45 s, so
+    T / (2 T_I) = 67), a holding code: no window enters a baseline sample and no series fits
+    (model_n = 0). 120-s windows (133 effective samples) let the baselines fit.
+    """
     extra = {"south": SOUTH_EXTRA, **(extra or {})}
     fleet = os.path.join(root, "fleet")
     os.makedirs(fleet, exist_ok=True)
     with open(os.path.join(fleet, "_defaults.toml"), "w") as handle:
-        handle.write(DEFAULTS)
+        handle.write(DEFAULTS.replace("length_s = 60.0", f"length_s = {float(length_s)}"))
     for name, seed in SEEDS.items():
         write_days(os.path.join(root, "archives", name), seed, days)
         with open(os.path.join(fleet, f"{name}.toml"), "w") as handle:
