@@ -11,11 +11,13 @@ and Dataflow runners do; it works offline. Two worker environments:
 
 Each environment runs the backfill (days up to 2025-05-13) and the nightly job (2025-05-19) on a
 few days of the demo archive with broken inputs; every output file (tables, partitions, part-file
-names, rows, schemas and metadata, and the episodes summary) must equal the in-process run's.
+names, rows, schemas and metadata, and the episodes summary) must equal the in-process run's. A
+two-asset fleet backfill (one pipeline, tests/support/fleet_data.py) runs on the worker pool too.
 """
 
 from __future__ import annotations
 
+import json
 import os
 import re
 import signal
@@ -27,7 +29,7 @@ import pyarrow.parquet as pq
 import pytest
 
 from pipelines import backfill, nightly
-from tests.support import demo_fixtures
+from tests.support import demo_fixtures, fleet_data
 from tests.support.demo_fixtures import BACKFILL_END, NIGHT, TABLES
 
 REPO = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
@@ -159,3 +161,41 @@ def test_portable_runner_separate_worker_process_equals_in_process(site, in_proc
     assert first == first_ref and second == second_ref
     # the work ran in worker processes that the pool started (one per job: backfill, nightly)
     assert log_path.read_text().count("Starting worker with command") >= 2
+
+
+@pytest.fixture(scope="module")
+def fleet_site(tmp_path_factory):
+    """The fleet tests' two assets (tests/support/fleet_data.py), one day of 10 windows each, and
+    their in-process fleet backfill."""
+    root = tmp_path_factory.mktemp("fleet-site")
+    folder = fleet_data.write_fleet(str(root))
+    output = str(root / "in-process")
+    found = backfill.main(["--config", folder, "--output", output, "--run_id", RUN_ID])
+    return folder, output, found
+
+
+def test_fleet_backfill_in_a_separate_worker_process_equals_in_process(fleet_site, worker_pool, tmp_path):
+    folder, reference, found_ref = fleet_site
+    address, log_path = worker_pool
+    started = log_path.read_text().count("Starting worker with command")
+    output = str(tmp_path / "out")
+    flags = PORTABLE + ["--environment_type=EXTERNAL", f"--environment_config={address}"]
+    found = backfill.main(["--config", folder, "--output", output, "--run_id", RUN_ID] + flags)
+    assert sorted(found) == ["north", "south"]
+    assert all(found_ref[a]["windows_computed"] == 10 for a in found_ref)
+    assert found == found_ref  # each asset's counters, read back from its own steps through the job service
+    files = demo_fixtures.partition_files(reference)
+    assert demo_fixtures.partition_files(output) == files
+    assert {rel.split("/")[1] for rel in files if rel.split("/")[0] in TABLES} == {"asset=north", "asset=south"}
+    for rel in files:
+        if rel.endswith(".parquet"):
+            a, b = pq.read_table(os.path.join(output, rel)), pq.read_table(os.path.join(reference, rel))
+            assert a.schema.equals(b.schema, check_metadata=True), rel  # provenance metadata included
+            assert demo_fixtures.table_bytes(a) == demo_fixtures.table_bytes(b), rel  # bit-equal values
+        else:
+            with open(os.path.join(output, rel), "rb") as x, open(os.path.join(reference, rel), "rb") as y:
+                assert x.read() == y.read(), rel
+    with open(os.path.join(output, "_runs", "fleet", f"{RUN_ID}.json")) as handle:
+        assert json.load(handle)["status"] == 0
+    # the fleet's one pipeline ran in a worker process that the pool started
+    assert log_path.read_text().count("Starting worker with command") > started
