@@ -173,6 +173,11 @@ def test_the_budget_gives_the_limits_of_the_fitted_states(site):
         assert s["cusum_h_used"] == limit_for_estimated_parameters("cusum", h, s["model_n"], k=0.5), s
         assert s["ewma_L_used"] == limit_for_estimated_parameters("ewma", width, s["model_n"], smoothing=0.1), s
         assert s["cusum_h_used"] > h and s["ewma_L_used"] > width  # widened for 5 baseline windows
+    # the run summary names the range of the limits in use
+    with open(os.path.join(full, "_runs", "asset=south", "full.json")) as handle:
+        limits = json.load(handle)["detector_limits"]
+    used = [s["cusum_h_used"] for s in fitted]
+    assert limits["false_alarms_per_year"] == 1.0 and limits["cusum_h_used"] == [min(used), max(used)]
     # north has no budget: the default limits, widened the same way for its baseline windows
     # (4, fewer where a window was held: nonstationary)
     north = [s for s in _rows(full, "state", "north") if s["phase"] == "fitted" and s["model_n"]]
