@@ -119,7 +119,7 @@ def part_state(days: int) -> dict:
             after = [b for d, b in by_day.items() if d > end]
             row[table] = (float(np.mean(during)) if during else 0.0, float(np.mean(after)) if after else 0.0)
         results[baseline] = row
-    print(f"\nstate: {days} days, a 10-minute record every 6 hours, 7 monitored series (bytes per day, mean)")
+    print(f"\nstate: {days} days, a 10-minute record every 6 hours (bytes per day, mean)")
     print(
         f"{'table':<16} {'10-d during':>12} {'60-d during':>12} {'ratio':>6} "
         f"{'10-d after':>11} {'60-d after':>11} {'ratio':>6}"
