@@ -293,8 +293,37 @@ def linear_functional_stderr(weights, coefficient, stderr, lags) -> float:
     if len(idx) == 0:
         return float("nan")
     w, idx = coarsen_lags(w, idx, len(coefficient))
-    cov = lag_error_covariance(coefficient, stderr, idx)
-    return float(np.sqrt(max(w @ cov @ w, 0.0)))
+    quadratic = _fast_functional_variance(w, coefficient, stderr, idx)
+    if quadratic is None:
+        cov = lag_error_covariance(coefficient, stderr, idx)
+        quadratic = float(w @ cov @ w)
+    return float(np.sqrt(max(quadratic, 0.0)))
+
+
+def _fast_functional_variance(weights: np.ndarray, coefficient, stderr, lags: np.ndarray):
+    """``w^T Cov w`` of :func:`linear_functional_stderr` without forming ``Cov``, or None when
+    :func:`lag_error_covariance` would zero some off-diagonal entries (lags of nearly zero
+    Bartlett variance, other than exactly zero) and the matrix is needed.
+
+    ``Cov = D_s K' D_s`` with ``K'_ij = K_ij / (d_i d_j)`` and ``d_i = sqrt(K_ii)``, so
+    ``w^T Cov w = u^T K u`` with ``u_i = w_i s_i / d_i`` (0 where ``d_i = 0``, whose rows of
+    ``Cov`` are 0). Scattered onto the full lag grid ``0..L``, ``u^T K u`` is
+    :func:`kernel_quadratic_form` on equally spaced lags: O(L log L) instead of the O(m^2)
+    matrix (at 1 001 lags about 100 times faster), the same number to rounding
+    (tests/stages/test_fast_paths.py).
+    """
+    rho = np.nan_to_num(np.asarray(coefficient, dtype=float))
+    s = np.nan_to_num(np.asarray(stderr, dtype=float))
+    d = np.sqrt(bartlett_variance(rho)[lags])
+    positive = d > 0
+    if not positive.any():
+        return 0.0
+    tiny = 1e-12 * max(float(d.max()) ** 2, 1e-300)
+    if float(d[positive].min()) ** 2 <= tiny:
+        return None
+    u = np.where(positive, weights * s[lags] / np.where(positive, d, 1.0), 0.0)
+    grid = np.bincount(lags, weights=u, minlength=len(rho))
+    return float(kernel_quadratic_form(rho, 0, 1, grid[:, None])[0, 0])
 
 
 def coarsen_lags(weights, lags, n_lags: int) -> Tuple[np.ndarray, np.ndarray]:

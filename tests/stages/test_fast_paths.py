@@ -321,3 +321,23 @@ def test_screening_a_one_channel_window_leaves_the_block_as_it_was():
     st.screen_window(block, ScreeningConfig(), None)
     np.testing.assert_array_equal(block.valid, valid_before)
     assert np.isnan(block.values[100, 0])
+
+
+@pytest.mark.parametrize("n_lags", [40, 1001, 1500])
+def test_linear_functional_stderr_equals_the_covariance_matrix_form(n_lags):
+    """The O(L log L) form of ``sqrt(w^T Cov w)`` (bartlett._fast_functional_variance) equals the
+    quadratic form with the matrix of ``lag_error_covariance`` to rounding, on short, unit-spaced
+    and coarsened (above MAX_COVARIANCE_LAGS) lag ranges, and for dense and one-sided weights."""
+    from corrtransforms.numerics import bartlett
+
+    rng = np.random.default_rng(n_lags)
+    k = np.arange(n_lags)
+    # an oscillating, decaying coefficient with estimation noise (lag 0 exactly 1, zero error)
+    rho = 0.97**k * np.cos(2 * np.pi * 0.03 * k) + 0.01 * rng.standard_normal(n_lags)
+    rho[0] = 1.0
+    s = 0.02 + 0.01 * rng.random(n_lags)
+    s[0] = 0.0
+    for weights in (rng.standard_normal(n_lags), np.where(k < n_lags // 3, 1.0, 0.0)):
+        w, nodes = bartlett.coarsen_lags(weights, k, n_lags)
+        matrix = float(np.sqrt(w @ bartlett.lag_error_covariance(rho, s, nodes) @ w))
+        assert bartlett.linear_functional_stderr(weights, rho, s, k) == pytest.approx(matrix, rel=1e-12)
