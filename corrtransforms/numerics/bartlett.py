@@ -140,6 +140,46 @@ def bartlett_stderr(rho_ab, rho_aa, rho_bb, pair_count):
     return np.where(np.isfinite(rho) & (count > 0), np.sqrt(var), np.nan)
 
 
+def bartlett_stderr_at(rho_ab, rho_aa, rho_bb, index: int) -> float:
+    """:func:`bartlett_stderr` of one pair at one lag index, for one sample pair (``n = 1``).
+
+    Parameters
+    ----------
+    rho_ab, rho_aa, rho_bb : array_like, shape (2L + 1,)
+        As in :func:`bartlett_stderr` (NaN counts as 0 in the sums).
+    index : int
+        Index into the lags ``-L..L`` (lag ``index - L``).
+
+    Returns
+    -------
+    float
+        ``sqrt(max(n var r_ab(k), 0))`` at that lag; NaN where ``rho_ab`` is not finite there.
+
+    Notes
+    -----
+    The same sums as :func:`bartlett_sums` at one lag, as direct dot products:
+    ``B(k) = sum_i ab_i ab_{2k - i}`` and ``C(k) = sum_i ab_i (aa + bb)_{k + L - i}`` (array
+    indices); O(L) instead of four transforms of length ``4L + 1``, equal to rounding
+    (tests/stages/test_fast_paths.py).
+    """
+    ab = _finite_or_zero(np.asarray(rho_ab, dtype=float))
+    aa = _finite_or_zero(np.asarray(rho_aa, dtype=float))
+    bb = _finite_or_zero(np.asarray(rho_bb, dtype=float))
+    if not np.isfinite(float(np.asarray(rho_ab, dtype=float)[index])):
+        return float("nan")
+    width = len(ab)
+    L = (width - 1) // 2
+    k = int(index)
+    i = np.arange(max(0, 2 * k - (width - 1)), min(width - 1, 2 * k) + 1)
+    reflected = float(ab[i] @ ab[2 * k - i])
+    j = np.arange(max(0, k - L), min(width - 1, k + L) + 1)
+    mixed = float(ab[j] @ (aa + bb)[k + L - j])
+    constant = float(aa @ bb)
+    square = float(ab @ ab + 0.5 * (aa @ aa) + 0.5 * (bb @ bb))
+    r = ab[k]
+    return float(np.sqrt(max(constant + reflected - 2.0 * r * mixed + r * r * square, 0.0)))
+
+
 def large_lag_stderr(rho, n):
     """Bartlett's large-lag standard error of auto-correlation coefficients at lags ``0..L``.
 

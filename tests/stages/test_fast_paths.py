@@ -341,3 +341,21 @@ def test_linear_functional_stderr_equals_the_covariance_matrix_form(n_lags):
         w, nodes = bartlett.coarsen_lags(weights, k, n_lags)
         matrix = float(np.sqrt(w @ bartlett.lag_error_covariance(rho, s, nodes) @ w))
         assert bartlett.linear_functional_stderr(weights, rho, s, k) == pytest.approx(matrix, rel=1e-12)
+
+
+def test_bartlett_stderr_at_one_lag_equals_the_transform_form():
+    """bartlett_stderr_at (direct dot products at one lag, used at each cross pair's peak) equals
+    bartlett_stderr (FFT convolutions at every lag) to rounding, at the ends and inside."""
+    from corrtransforms.numerics import bartlett
+    from corrtransforms.numerics.correlation import even_extension
+
+    rng = np.random.default_rng(4)
+    L = 300
+    k = np.arange(L + 1)
+    aa = even_extension(0.95**k * np.cos(0.2 * k))
+    bb = even_extension(0.9**k)
+    lags = np.arange(-L, L + 1)
+    ab = 0.6 * 0.93 ** np.abs(lags - 17) * np.cos(0.2 * (lags - 17)) + 0.01 * rng.standard_normal(2 * L + 1)
+    every = bartlett.bartlett_stderr(ab, aa, bb, np.ones(2 * L + 1))
+    for index in (0, 1, L - 5, L, L + 17, 2 * L - 1, 2 * L):
+        assert bartlett.bartlett_stderr_at(ab, aa, bb, index) == pytest.approx(every[index], rel=1e-10)
