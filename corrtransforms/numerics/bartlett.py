@@ -342,7 +342,7 @@ def linear_functional_stderr(weights, coefficient, stderr, lags) -> float:
 
 def _fast_functional_variance(weights: np.ndarray, coefficient, stderr, lags: np.ndarray):
     """``w^T Cov w`` of :func:`linear_functional_stderr` without forming ``Cov``, or None when
-    :func:`lag_error_covariance` would zero some off-diagonal entries (lags of nearly zero
+    :func:`lag_error_covariance` would zero some off-diagonal entry (two lags of nearly zero
     Bartlett variance, other than exactly zero) and the matrix is needed.
 
     ``Cov = D_s K' D_s`` with ``K'_ij = K_ij / (d_i d_j)`` and ``d_i = sqrt(K_ii)``, so
@@ -359,8 +359,9 @@ def _fast_functional_variance(weights: np.ndarray, coefficient, stderr, lags: np
     if not positive.any():
         return 0.0
     tiny = 1e-12 * max(float(d.max()) ** 2, 1e-300)
-    if float(d[positive].min()) ** 2 <= tiny:
-        return None
+    smallest = np.partition(d[positive], 1)[:2] if positive.sum() > 1 else None
+    if smallest is not None and float(smallest[0]) * float(smallest[1]) <= tiny:
+        return None  # an off-diagonal entry the matrix form sets to 0 (its diagonal is 1 anyway)
     u = np.where(positive, weights * s[lags] / np.where(positive, d, 1.0), 0.0)
     grid = np.bincount(lags, weights=u, minlength=len(rho))
     return float(kernel_quadratic_form(rho, 0, 1, grid[:, None])[0, 0])

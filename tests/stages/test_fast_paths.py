@@ -334,13 +334,16 @@ def test_linear_functional_stderr_equals_the_covariance_matrix_form(n_lags):
     k = np.arange(n_lags)
     # an oscillating, decaying coefficient with estimation noise (lag 0 exactly 1, zero error)
     rho = 0.97**k * np.cos(2 * np.pi * 0.03 * k) + 0.01 * rng.standard_normal(n_lags)
-    rho[0] = 1.0
     s = 0.02 + 0.01 * rng.random(n_lags)
     s[0] = 0.0
-    for weights in (rng.standard_normal(n_lags), np.where(k < n_lags // 3, 1.0, 0.0)):
-        w, nodes = bartlett.coarsen_lags(weights, k, n_lags)
-        matrix = float(np.sqrt(w @ bartlett.lag_error_covariance(rho, s, nodes) @ w))
-        assert bartlett.linear_functional_stderr(weights, rho, s, k) == pytest.approx(matrix, rel=1e-12)
+    # lag 0 exactly 1 (zero Bartlett variance), and 1 to float32 rounding (a tiny one, as stored
+    # coefficients have)
+    for rho_0 in (1.0, float(np.float32(1.0 - 3e-8))):
+        rho[0] = rho_0
+        for weights in (rng.standard_normal(n_lags), np.where(k < n_lags // 3, 1.0, 0.0)):
+            w, nodes = bartlett.coarsen_lags(weights, k, n_lags)
+            matrix = float(np.sqrt(w @ bartlett.lag_error_covariance(rho, s, nodes) @ w))
+            assert bartlett.linear_functional_stderr(weights, rho, s, k) == pytest.approx(matrix, rel=1e-12)
 
 
 def test_bartlett_stderr_at_one_lag_equals_the_transform_form():
