@@ -130,8 +130,62 @@ def bartlett_stderr(rho_ab, rho_aa, rho_bb, pair_count):
     .. [2] G. E. P. Box, G. M. Jenkins and G. C. Reinsel, *Time Series Analysis: Forecasting
        and Control*, 4th ed., Wiley, 2008, Eqs. (2.1.13) and (12.1.4) (from memory).
     """
-    rho = np.asarray(rho_ab, dtype=float)
     constant, reflected, mixed, square = bartlett_sums(rho_ab, rho_aa, rho_bb)
+    return _stderr_from_sums(np.asarray(rho_ab, dtype=float), constant, reflected, mixed, square, pair_count)
+
+
+def bartlett_stderr_of_pairs(rho_pairs, rho_autos, a_rows, b_rows, pair_count) -> np.ndarray:
+    """:func:`bartlett_stderr` of many pairs of one window, each channel's transform done once.
+
+    Parameters
+    ----------
+    rho_pairs : array_like, shape (P, 2L + 1)
+        The pairs' coefficients at lags ``-L..L``.
+    rho_autos : array_like, shape (C, 2L + 1)
+        The window's auto-correlation coefficients, one row per channel.
+    a_rows, b_rows : array_like of int, shape (P,)
+        Row of ``rho_autos`` of each pair's channels a and b.
+    pair_count : array_like, shape (P, 2L + 1)
+        As in :func:`bartlett_stderr`.
+
+    Returns
+    -------
+    ndarray, shape (P, 2L + 1)
+        Equal to ``bartlett_stderr(rho_pairs, rho_autos[a_rows], rho_autos[b_rows], pair_count)``
+        to rounding (tests/stages/test_fast_paths.py).
+
+    Notes
+    -----
+    :func:`bartlett_sums` transforms ``rho_aa + rho_bb`` of every pair; by linearity that is
+    ``F_aa + F_bb`` of the channels' own transforms, done once per channel here, and an auto
+    pair (its coefficient equal to its channel's row) reuses its channel's transform as ``F_ab``:
+    of the 2P forward transforms of the pairwise form, ``C`` plus one per cross pair remain.
+    """
+    ab = _finite_or_zero(np.asarray(rho_pairs, dtype=float))
+    autos = _finite_or_zero(np.asarray(rho_autos, dtype=float))
+    a_rows, b_rows = np.asarray(a_rows, dtype=int), np.asarray(b_rows, dtype=int)
+    width = ab.shape[-1]
+    L = (width - 1) // 2
+    K = scipy.fft.next_fast_len(2 * width - 1, real=True)
+    F_auto = scipy.fft.rfft(autos, n=K, axis=-1)
+    own = np.array([a == b and np.array_equal(ab[k], autos[a]) for k, (a, b) in enumerate(zip(a_rows, b_rows))])
+    F_ab = np.empty((len(ab), F_auto.shape[-1]), dtype=complex)
+    if own.any():
+        F_ab[own] = F_auto[a_rows[own]]
+    if (~own).any():
+        F_ab[~own] = scipy.fft.rfft(ab[~own], n=K, axis=-1)
+    conv_ab_ab = scipy.fft.irfft(F_ab * F_ab, n=K, axis=-1)
+    conv_mixed = scipy.fft.irfft(F_ab * (F_auto[a_rows] + F_auto[b_rows]), n=K, axis=-1)
+    reflected = conv_ab_ab[:, 0 : 4 * L + 1 : 2]
+    mixed = conv_mixed[:, L : 3 * L + 1]
+    products = autos @ autos.T  # sum_v rho_aa(v) rho_bb(v) of every channel pair
+    constant = products[a_rows, b_rows]
+    square = (ab * ab).sum(axis=-1) + 0.5 * np.diag(products)[a_rows] + 0.5 * np.diag(products)[b_rows]
+    return _stderr_from_sums(np.asarray(rho_pairs, dtype=float), constant, reflected, mixed, square, pair_count)
+
+
+def _stderr_from_sums(rho, constant, reflected, mixed, square, pair_count) -> np.ndarray:
+    """Bartlett's standard error from the sums of :func:`bartlett_sums`."""
     r = _finite_or_zero(rho)
     n_var = constant[..., None] + reflected - 2.0 * r * mixed + r * r * square[..., None]
     count = np.asarray(pair_count, dtype=float)

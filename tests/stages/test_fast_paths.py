@@ -362,3 +362,23 @@ def test_bartlett_stderr_at_one_lag_equals_the_transform_form():
     every = bartlett.bartlett_stderr(ab, aa, bb, np.ones(2 * L + 1))
     for index in (0, 1, L - 5, L, L + 17, 2 * L - 1, 2 * L):
         assert bartlett.bartlett_stderr_at(ab, aa, bb, index) == pytest.approx(every[index], rel=1e-10)
+
+
+def test_bartlett_stderr_of_pairs_equals_the_pairwise_form():
+    """bartlett_stderr_of_pairs (each channel's transform once per window, an auto pair reusing
+    its channel's) equals bartlett_stderr on the pairs' own rows to rounding: relative 1e-10
+    where the error is not itself a rounding residue (an auto pair's lag 0, whose variance is 0)."""
+    from corrtransforms.numerics import bartlett
+    from corrtransforms.numerics.correlation import channel_spectra, correlate_spectra
+
+    rng = np.random.default_rng(6)
+    x = scipy.signal.lfilter([1.0], [1.0, -0.9], rng.standard_normal((3000, 3)), axis=0)
+    x[:, 2] += np.roll(x[:, 0], 7)
+    spectra = channel_spectra(x, FS, 2.0)
+    pairs = [(0, 0), (1, 1), (2, 2), (0, 1), (0, 2), (1, 2)]
+    est = correlate_spectra(spectra, pairs)
+    a_rows, b_rows = np.array([a for a, _ in pairs]), np.array([b for _, b in pairs])
+    autos = est.coefficient[:3]
+    plain = bartlett.bartlett_stderr(est.coefficient, autos[a_rows], autos[b_rows], est.pair_count)
+    shared = bartlett.bartlett_stderr_of_pairs(est.coefficient, autos, a_rows, b_rows, est.pair_count)
+    np.testing.assert_allclose(shared, plain, rtol=1e-10, atol=1e-7 * np.nanmax(plain))
