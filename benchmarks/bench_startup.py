@@ -12,7 +12,9 @@ with timers around the backfill's steps (the same code; the timers only wrap fun
   graph, ``build_pipeline``), ``run`` (the runner: start-up and the work) and after the last
   chunk ``finish`` (episodes and run summaries);
 - ``empty pipeline``: a one-element Beam pipeline on the same runner, as the runner's own
-  fixed cost per pipeline.
+  fixed cost per pipeline;
+- ``CPU``: CPU seconds of the process and its worker processes (less noisy than wall time on a
+  shared machine).
 
 It prints the seconds of each and the fixed cost per chunk (everything but the data work: a
 chunk's run time minus its share of the per-window work estimated from the 4-day run), and the
@@ -24,6 +26,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import resource
 import shutil
 import statistics
 import subprocess
@@ -71,6 +74,8 @@ def _inner(config: str, output: str, commit_days: int, extra) -> None:
         _ = p | beam.Create([1]) | beam.Map(lambda x: x + 1)
     timings["empty pipeline"] = time.perf_counter() - t
     timings["total"] = time.perf_counter() - started
+    own, children = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
+    timings["cpu"] = own.ru_utime + own.ru_stime + children.ru_utime + children.ru_stime
     print("TIMINGS " + json.dumps(timings))
 
 
@@ -116,7 +121,7 @@ def main(argv=None) -> None:
     print(f"load average {os.getloadavg()[0]:.2f} at start; extra flags: {' '.join(extra) or 'none'}")
     print(
         f"{'days':>4} {'commit':>6} {'chunks':>6} | {'wall':>6} {'imports':>7} {'plan':>5} {'state':>5} "
-        f"{'build':>5} {'run':>6} {'finish':>6} {'empty':>5} | per chunk: build+state, runs [s]"
+        f"{'build':>5} {'run':>6} {'finish':>6} {'empty':>5} {'CPU':>6} | per chunk: build+state, runs [s]"
     )
     for days in args.days:
         for commit in args.commit_days:
@@ -132,7 +137,7 @@ def main(argv=None) -> None:
             print(
                 f"{days:4d} {commit:6d} {len(chunks):6d} | {statistics.median(r['wall'] for r in runs):6.1f} "
                 f"{t['imports']:7.1f} {t.get('plan', 0):5.1f} {state:5.1f} {build:5.1f} {run:6.1f} "
-                f"{t.get('finish', 0):6.1f} {t['empty pipeline']:5.1f} | "
+                f"{t.get('finish', 0):6.1f} {t['empty pipeline']:5.1f} {t.get('cpu', float('nan')):6.1f} | "
                 f"{(build + state) / max(len(chunks), 1):.2f}, {per_chunk}",
                 flush=True,
             )
