@@ -21,7 +21,7 @@ import scipy.fft
 import scipy.signal
 from scipy.signal.windows import parzen
 
-from corrtransforms.numerics.bartlett import bartlett_stderr
+from corrtransforms.numerics.bartlett import bartlett_stderr_at
 from corrtransforms.numerics.correlation import WEIGHTINGS, even_extension
 from corrtransforms.numerics.envelope import correlation_envelope
 from corrtransforms.numerics.phase_noise import phase_moments
@@ -703,9 +703,8 @@ def _peak_coef_stderrs(rho_clean, stderr, position, at_edge, autos_a, autos_b, f
         if not 0 <= k < n or not np.isfinite(stderr[row, k]):
             continue
         aa, bb = even_extension(a), even_extension(b)
-        one = np.ones(n)
-        plain = bartlett_stderr(rho_clean[row], aa, bb, one)[k]
-        at_peak = bartlett_stderr(_shifted(rho_clean[row], float(position[row] - k)), aa, bb, one)[k]
+        plain = bartlett_stderr_at(rho_clean[row], aa, bb, k)
+        at_peak = bartlett_stderr_at(_shifted(rho_clean[row], float(position[row] - k)), aa, bb, k)
         if plain > 0 and np.isfinite(at_peak):
             out[row] = float(stderr[row, k] * at_peak / plain)
     return out

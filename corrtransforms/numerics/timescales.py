@@ -20,7 +20,7 @@ from typing import NamedTuple, Optional, Tuple
 
 import numpy as np
 
-from corrtransforms.numerics.bartlett import linear_functional_stderr
+from corrtransforms.numerics.bartlett import LagErrors, linear_functional_stderr
 from corrtransforms.numerics.envelope import correlation_envelope, even_hilbert_transform, hilbert_row
 
 #: quality codes of this module (code -> meaning)
@@ -148,7 +148,9 @@ def integral_time_scale(coefficient, lag_step_s: float) -> float:
     return float((weights * lag_step_s) @ rho[: len(weights)])
 
 
-def corr_time_s(coefficient, stderr, lag_step_s: float, until: str = "first_zero") -> TimeScale:
+def corr_time_s(
+    coefficient, stderr, lag_step_s: float, until: str = "first_zero", errors: Optional[LagErrors] = None
+) -> TimeScale:
     """Integral time scale of an auto-correlation: integral of rho from 0 to its first zero.
 
     Parameters
@@ -161,6 +163,9 @@ def corr_time_s(coefficient, stderr, lag_step_s: float, until: str = "first_zero
         Lag spacing (the sample period).
     until : {"first_zero", "max_lag"}
         Upper limit: the first zero crossing (the indicator ``corr_time_s``) or lag L.
+    errors : LagErrors, optional
+        ``LagErrors.of(coefficient, stderr)`` when the caller has it (shared with
+        :func:`decay_time_s` of the same estimate); None computes it.
 
     Returns
     -------
@@ -219,7 +224,7 @@ def corr_time_s(coefficient, stderr, lag_step_s: float, until: str = "first_zero
     value = float(weights @ rho[lags])
     if not np.all(np.isfinite(s[lags])):
         return TimeScale(value, float("nan"), quality)
-    err = linear_functional_stderr(weights, rho, s, lags)
+    err = linear_functional_stderr(weights, rho, s, lags, errors)
     if crossed:
         err = float(np.hypot(err, _end_point_stderr(rho, s, lag_step_s, CORR_TIME_EFOLDS)))
     return TimeScale(value, err, quality)
@@ -261,7 +266,12 @@ def _end_point_stderr(rho: np.ndarray, s: np.ndarray, lag_step_s: float, efolds:
 
 
 def decay_time_s(
-    coefficient, stderr, lag_step_s: float, auto: bool = True, level: float = float(np.exp(-1.0))
+    coefficient,
+    stderr,
+    lag_step_s: float,
+    auto: bool = True,
+    level: float = float(np.exp(-1.0)),
+    errors: Optional[LagErrors] = None,
 ) -> TimeScale:
     """Lag at which the Hilbert envelope of a correlation function first falls to ``1/e``.
 
@@ -278,6 +288,8 @@ def decay_time_s(
         True for an auto-correlation (even extension); False uses the lags as given.
     level : float
         Envelope level, default ``1/e``.
+    errors : LagErrors, optional
+        As in :func:`corr_time_s`.
 
     Returns
     -------
@@ -343,7 +355,7 @@ def decay_time_s(
     )
     lags = np.arange(len(rho))
     if np.all(np.isfinite(s)) and slope != 0:
-        err = linear_functional_stderr(weights, rho, s, lags) / abs(slope)
+        err = linear_functional_stderr(weights, rho, s, lags, errors) / abs(slope)
     else:
         err = float("inf") if slope == 0 else float("nan")
     return TimeScale(float(cross * lag_step_s), float(err), ())

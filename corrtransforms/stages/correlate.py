@@ -21,7 +21,7 @@ import pyarrow as pa
 
 from corrtransforms.config import AssetConfig
 from corrtransforms.numerics import random_error as err
-from corrtransforms.numerics.bartlett import bartlett_stderr
+from corrtransforms.numerics.bartlett import bartlett_stderr, bartlett_stderr_of_pairs
 from corrtransforms.numerics.correlation import DEFAULT_MIN_PAIRS, channel_spectra, correlate_spectra, pairs_by_name
 from corrtransforms.numerics.spectra import lag_window_psd, strongest_tone
 from corrtransforms.numerics.timescales import integral_time_scale
@@ -257,7 +257,7 @@ def _pair_error_figures(
 ) -> Dict[str, np.ndarray]:
     """Record-length error metadata of the requested pairs (rows): per-lag stderr, bandwidth,
     record length, BT, closed-form relative error, required record length, N_eff."""
-    stderr = bartlett_stderr(rho, channels.rho[a_rows], channels.rho[b_rows], counts)
+    stderr = bartlett_stderr_of_pairs(rho, channels.rho, a_rows, b_rows, counts)
     bandwidth = np.where(
         is_auto,
         channels.bandwidth_hz[a_rows],

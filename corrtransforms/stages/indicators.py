@@ -35,6 +35,7 @@ import pyarrow as pa
 
 from corrtransforms import tables
 from corrtransforms.config import AssetConfig
+from corrtransforms.numerics.bartlett import LagErrors
 from corrtransforms.numerics.modal_fit import fit_mode
 from corrtransforms.numerics.time_delay import LagEstimate, estimate_lag, estimate_lags
 from corrtransforms.numerics.timescales import corr_time_s, decay_time_s
@@ -100,8 +101,9 @@ def _channel_rows(wc: WindowCorrelation, config: AssetConfig, channel: str, comm
     # on the count-corrected coefficient: with gaps the biased estimator's lags are low by
     # C(k) / C(0) (calibration matrix, gappy record: corr_time_s bias -0.34 stderr)
     coefficient, stderr = _located_coefficient(wc, config, auto)
-    ct = corr_time_s(coefficient, stderr, auto.lag_step_s)
-    dt = decay_time_s(coefficient, stderr, auto.lag_step_s, auto=True)
+    errors = LagErrors.of(coefficient, stderr)  # one lag-error structure for both time scales
+    ct = corr_time_s(coefficient, stderr, auto.lag_step_s, errors=errors)
+    dt = decay_time_s(coefficient, stderr, auto.lag_step_s, auto=True, errors=errors)
     rows.append(
         IndicatorRow(
             start,

@@ -368,3 +368,64 @@ def test_shift_from_two_products_equals_the_least_squares_shift():
         np.testing.assert_allclose(
             np.sort_complex(np.linalg.eigvals(A)), np.sort_complex(np.linalg.eigvals(expected)), rtol=1e-9
         )
+
+
+@pytest.mark.parametrize("n_lags", [40, 1001, 1500])
+def test_linear_functional_stderr_equals_the_covariance_matrix_form(n_lags):
+    """The O(L log L) form of ``sqrt(w^T Cov w)`` (bartlett._fast_functional_variance) equals the
+    quadratic form with the matrix of ``lag_error_covariance`` to rounding, on short, unit-spaced
+    and coarsened (above MAX_COVARIANCE_LAGS) lag ranges, and for dense and one-sided weights."""
+    from corrtransforms.numerics import bartlett
+
+    rng = np.random.default_rng(n_lags)
+    k = np.arange(n_lags)
+    # an oscillating, decaying coefficient with estimation noise (lag 0 exactly 1, zero error)
+    rho = 0.97**k * np.cos(2 * np.pi * 0.03 * k) + 0.01 * rng.standard_normal(n_lags)
+    s = 0.02 + 0.01 * rng.random(n_lags)
+    s[0] = 0.0
+    # lag 0 exactly 1 (zero Bartlett variance), and 1 to float32 rounding (a tiny one, as stored
+    # coefficients have)
+    for rho_0 in (1.0, float(np.float32(1.0 - 3e-8))):
+        rho[0] = rho_0
+        for weights in (rng.standard_normal(n_lags), np.where(k < n_lags // 3, 1.0, 0.0)):
+            w, nodes = bartlett.coarsen_lags(weights, k, n_lags)
+            matrix = float(np.sqrt(w @ bartlett.lag_error_covariance(rho, s, nodes) @ w))
+            assert bartlett.linear_functional_stderr(weights, rho, s, k) == pytest.approx(matrix, rel=1e-12)
+
+
+def test_bartlett_stderr_at_one_lag_equals_the_transform_form():
+    """bartlett_stderr_at (direct dot products at one lag, used at each cross pair's peak) equals
+    bartlett_stderr (FFT convolutions at every lag) to rounding, at the ends and inside."""
+    from corrtransforms.numerics import bartlett
+    from corrtransforms.numerics.correlation import even_extension
+
+    rng = np.random.default_rng(4)
+    L = 300
+    k = np.arange(L + 1)
+    aa = even_extension(0.95**k * np.cos(0.2 * k))
+    bb = even_extension(0.9**k)
+    lags = np.arange(-L, L + 1)
+    ab = 0.6 * 0.93 ** np.abs(lags - 17) * np.cos(0.2 * (lags - 17)) + 0.01 * rng.standard_normal(2 * L + 1)
+    every = bartlett.bartlett_stderr(ab, aa, bb, np.ones(2 * L + 1))
+    for index in (0, 1, L - 5, L, L + 17, 2 * L - 1, 2 * L):
+        assert bartlett.bartlett_stderr_at(ab, aa, bb, index) == pytest.approx(every[index], rel=1e-10)
+
+
+def test_bartlett_stderr_of_pairs_equals_the_pairwise_form():
+    """bartlett_stderr_of_pairs (each channel's transform once per window, an auto pair reusing
+    its channel's) equals bartlett_stderr on the pairs' own rows to rounding: relative 1e-10
+    where the error is not itself a rounding residue (an auto pair's lag 0, whose variance is 0)."""
+    from corrtransforms.numerics import bartlett
+    from corrtransforms.numerics.correlation import channel_spectra, correlate_spectra
+
+    rng = np.random.default_rng(6)
+    x = scipy.signal.lfilter([1.0], [1.0, -0.9], rng.standard_normal((3000, 3)), axis=0)
+    x[:, 2] += np.roll(x[:, 0], 7)
+    spectra = channel_spectra(x, FS, 2.0)
+    pairs = [(0, 0), (1, 1), (2, 2), (0, 1), (0, 2), (1, 2)]
+    est = correlate_spectra(spectra, pairs)
+    a_rows, b_rows = np.array([a for a, _ in pairs]), np.array([b for _, b in pairs])
+    autos = est.coefficient[:3]
+    plain = bartlett.bartlett_stderr(est.coefficient, autos[a_rows], autos[b_rows], est.pair_count)
+    shared = bartlett.bartlett_stderr_of_pairs(est.coefficient, autos, a_rows, b_rows, est.pair_count)
+    np.testing.assert_allclose(shared, plain, rtol=1e-10, atol=1e-7 * np.nanmax(plain))
