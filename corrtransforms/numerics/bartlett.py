@@ -179,9 +179,13 @@ def bartlett_stderr_of_pairs(rho_pairs, rho_autos, a_rows, b_rows, pair_count) -
     conv_mixed = scipy.fft.irfft(F_ab * (F_auto[a_rows] + F_auto[b_rows]), n=K, axis=-1)
     reflected = conv_ab_ab[:, 0 : 4 * L + 1 : 2]
     mixed = conv_mixed[:, L : 3 * L + 1]
-    products = autos @ autos.T  # sum_v rho_aa(v) rho_bb(v) of every channel pair
-    constant = products[a_rows, b_rows]
-    square = (ab * ab).sum(axis=-1) + 0.5 * np.diag(products)[a_rows] + 0.5 * np.diag(products)[b_rows]
+    # sum_v rho_aa(v) rho_bb(v) per pair, row by row: a matrix product (BLAS) rounds differently
+    # with the number of channels, and a window's rows must not depend on which other channels
+    # it has (tests/pipelines/test_reliability_matrix.py: a missing channel leaves the others'
+    # rows bit-identical)
+    constant = (autos[a_rows] * autos[b_rows]).sum(axis=-1)
+    own_square = (autos * autos).sum(axis=-1)
+    square = (ab * ab).sum(axis=-1) + 0.5 * own_square[a_rows] + 0.5 * own_square[b_rows]
     return _stderr_from_sums(np.asarray(rho_pairs, dtype=float), constant, reflected, mixed, square, pair_count)
 
 
