@@ -272,6 +272,12 @@ def stored_state(
     """
     if earlier_states(output, config, start, run_id) is None or start is None:
         return None
+    return resume_point(output, config, start, run_id)
+
+
+def resume_point(output: str, config: AssetConfig, start: _dt.date, run_id: str = "") -> StoredState:
+    """The :class:`StoredState` description of a run starting on ``start``, for a caller that has
+    already read the earlier states (no read here)."""
     return StoredState(output, config.name, start, tuple(sorted(provenance_metadata(config, run_id).items())))
 
 

@@ -403,7 +403,7 @@ def nightly(options, args) -> Dict[str, Dict[str, int]]:
             reason = f"no detector state before {day} (run the backfill first, or pass --rebuild_state)"
             fleet.fail(config.name, common.exit_status_of(stop), reason)
             continue
-        resume = None if initial is None else common.stored_state(args.output, config, day, run_id)
+        resume = None if initial is None else common.resume_point(args.output, config, day, run_id)
         members.append(FleetMember(config, day, day, resume))
     print(f"nightly fleet: {len(members)} assets")
     for name, counters in run_isolated(options, members, args.output, run_id, fleet).items():

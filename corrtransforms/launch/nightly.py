@@ -103,7 +103,7 @@ def main(argv: Optional[List[str]] = None) -> Dict[str, Any]:
     run_id = args.run_id or common.new_run_id()
     initial = previous_states(args.output, config, day, args.rebuild_state, run_id)
     print(f"nightly {config.name}: processing {day}")
-    resume = None if initial is None else common.stored_state(args.output, config, day, run_id)
+    resume = None if initial is None else common.resume_point(args.output, config, day, run_id)
     return common.run(options, config, args.output, day, day, run_id, resume)
 
 

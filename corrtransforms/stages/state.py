@@ -122,7 +122,7 @@ class ShiftState:
     the detector statistics. :meth:`to_row` / :meth:`from_row` convert to and from a row of
     :data:`corrtransforms.tables.STATE` exactly (float64 throughout), except the sample: a row
     carries only ``sample_count``, and the sample's rows live in the ``baseline_sample`` table
-    (one row per window, written on its own day; :func:`sample_table`, :func:`attach_sample`),
+    (one row per window, written on its own day; :func:`attach_sample` reads it back),
     so a state row's size does not depend on the baseline's length.
 
     In memory, the sample lists may be longer than ``sample_count`` (the day snapshots of one
@@ -340,31 +340,6 @@ class ShiftState:
             window_spacing_s=row.get("window_spacing_s"),
             sample_count=len(inline) if count is None else int(count),
         )
-
-
-def sample_rows(state: ShiftState, first: int = 0) -> List[Dict[str, Any]]:
-    """BASELINE_SAMPLE rows of the sample entries ``first .. sample_count - 1`` of ``state``
-    (without ``unit``, which the caller adds)."""
-    p = len(state.covariates)
-    rows = []
-    for i in range(first, min(state.sample_count, len(state.sample_value))):
-        rows.append(
-            {
-                "window_start": us_to_datetime(int(state.sample_window_start[i])),
-                "subject": state.subject,
-                "indicator": state.indicator,
-                "value": float(state.sample_value[i]),
-                "stderr": float(state.sample_stderr[i]),
-                "covariates": [float(c) for c in state.sample_covariates[i * p : (i + 1) * p]],
-            }
-        )
-    return rows
-
-
-def sample_table(rows: Iterable[Mapping[str, Any]], unit: str = "") -> pa.Table:
-    """BASELINE_SAMPLE table of rows from :func:`sample_rows`."""
-    rows = [dict(r, unit=r.get("unit", unit)) for r in rows]
-    return pa.Table.from_pylist(rows, schema=tables.BASELINE_SAMPLE)
 
 
 def attach_sample(state: ShiftState, rows: Iterable[Mapping[str, Any]]) -> ShiftState:

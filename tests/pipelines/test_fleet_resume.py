@@ -8,7 +8,6 @@ false alarm a year.
 """
 
 import datetime as dt
-import hashlib
 import json
 import os
 import shutil
@@ -30,6 +29,7 @@ from corrtransforms.numerics.arl import (
 )
 from pipelines import backfill, nightly
 from tests.support.fleet_data import FIRST_DAY, assert_same_asset, asset_table, write_fleet
+from tests.support.output_tables import files_by_path
 
 REPO = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 DAYS = [(FIRST_DAY + dt.timedelta(days=i)).isoformat() for i in range(3)]
@@ -112,20 +112,6 @@ def _progress(output, asset):
             return json.load(handle)
     except (OSError, ValueError):
         return None
-
-
-def files_by_path(root, skip=("_runs",)):
-    """sha256 of every file below ``root`` except the run summaries (they name the output folder)."""
-    found = {}
-    for folder, _, names in os.walk(root):
-        for name in names:
-            path = os.path.join(folder, name)
-            relative = os.path.relpath(path, root)
-            if relative.split(os.sep)[0] in skip:
-                continue
-            with open(path, "rb") as handle:
-                found[relative] = hashlib.sha256(handle.read()).hexdigest()
-    return found
 
 
 def test_a_killed_fleet_backfill_run_again_continues_and_writes_the_same_files(site):

@@ -7,7 +7,6 @@ accumulating their baseline sample.
 """
 
 import datetime as dt
-import hashlib
 import json
 import os
 import re
@@ -23,6 +22,7 @@ import pytest
 
 from demo_data import generate
 from pipelines import backfill, nightly
+from tests.support.output_tables import files_by_path
 
 REPO = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 TABLES = ("correlations", "indicators", "shifts", "state", "baseline_sample", "rejects")
@@ -45,20 +45,6 @@ def site(tmp_path_factory):
     full = str(root / "full")
     backfill.main(["--config", config, "--output", full, "--run_id", "same-run"])
     return root, config, full
-
-
-def files_by_path(root, skip=("_runs",)):
-    """sha256 of every file below ``root`` except the run summaries (they name the output folder)."""
-    found = {}
-    for folder, _, names in os.walk(root):
-        for name in names:
-            path = os.path.join(folder, name)
-            relative = os.path.relpath(path, root)
-            if relative.split(os.sep)[0] in skip:
-                continue
-            with open(path, "rb") as handle:
-                found[relative] = hashlib.sha256(handle.read()).hexdigest()
-    return found
 
 
 def read(output, name):

@@ -14,51 +14,9 @@ import pytest
 
 from demo_data import generate
 from pipelines import backfill, nightly
+from tests.support.output_tables import _nan_equal, assert_same_tables, read_table
 
 DEMO_DIR = os.path.join(os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__)))), "demo_data")
-TABLES = ("correlations", "indicators", "shifts", "state", "baseline_sample", "rejects", "mode_shapes")
-SORT_KEYS = {
-    "correlations": ["window_start", "channel_a", "channel_b"],
-    "indicators": ["window_start", "subject", "indicator"],
-    "shifts": ["window_start", "subject", "indicator"],
-    "state": ["window_start", "subject", "indicator"],
-    "baseline_sample": ["window_start", "subject", "indicator"],
-    "rejects": ["stage", "source", "subject", "reason", "detail"],
-    "mode_shapes": ["window_start", "mode", "channel"],
-}
-
-
-def read_table(output, name):
-    folder = os.path.join(output, name)
-    if not os.path.isdir(folder):
-        return None
-    table = ds.dataset(folder, format="parquet", partitioning="hive").to_table()
-    return table.sort_by([(k, "ascending") for k in SORT_KEYS[name]]).to_pydict()
-
-
-def assert_same_tables(left, right):
-    for name in TABLES:
-        a, b = read_table(left, name), read_table(right, name)
-        assert (a is None) == (b is None), name
-        if a is None:
-            continue
-        assert a.keys() == b.keys(), name
-        for column in a:
-            assert a[column] == b[column] or _nan_equal(a[column], b[column]), (name, column)
-
-
-def _nan_equal(xs, ys):
-    if len(xs) != len(ys):
-        return False
-    for x, y in zip(xs, ys):
-        if x == y:
-            continue
-        if isinstance(x, float) and isinstance(y, float) and x != x and y != y:
-            continue
-        if isinstance(x, list) and isinstance(y, list) and _nan_equal(x, y):
-            continue
-        return False
-    return True
 
 
 @pytest.fixture(scope="module")

@@ -341,7 +341,7 @@ def test_state_round_trip_through_parquet_while_accumulating_and_fitted(tmp_path
     times, values, stderr, temperature, _ = seasonal_series(6, days=16)
     temperature[5] = np.nan
     config = make_config("all", **SCENARIO)
-    _, states = shift_series.detect_shifts(
+    _, states, sample = shift_series.detect_shifts_with_sample(
         times,
         values,
         stderr,
@@ -364,12 +364,13 @@ def test_state_round_trip_through_parquet_while_accumulating_and_fitted(tmp_path
         assert same(dataclass_tuple(original, sample=False), dataclass_tuple(restored, sample=False))
     # the row carries the count only; the windows come back from the baseline_sample table
     assert back[3].sample_count == 4 * 12 and not back[3].sample_value and back[3].needs_sample
-    rows = shift_state.sample_rows(states[3])
-    pq.write_table(shift_state.sample_table(rows, "Hz"), tmp_path / "sample.parquet")
-    attached = shift_state.attach_sample(back[3], pq.read_table(tmp_path / "sample.parquet").to_pylist())
+    # the run's own baseline_sample rows (all of them: attach_sample keeps those up to the state)
+    pq.write_table(sample, tmp_path / "sample.parquet")
+    rows = pq.read_table(tmp_path / "sample.parquet").to_pylist()
+    attached = shift_state.attach_sample(back[3], rows)
     assert same(dataclass_tuple(attached), dataclass_tuple(states[3].own_sample()))
     with pytest.raises(shift_state.StateMismatchError, match="baseline_sample"):
-        shift_state.attach_sample(back[3], rows[:-1])
+        shift_state.attach_sample(back[3], rows[1:])
 
 
 def dataclass_tuple(state, sample=True):

@@ -1,10 +1,11 @@
 """Output tables read back as a user would (pyarrow.dataset over the Hive folders) and compared."""
 
+import hashlib
 import os
 
 import pyarrow.dataset as ds
 
-TABLES = ("correlations", "indicators", "shifts", "state", "baseline_sample", "rejects")
+TABLES = ("correlations", "indicators", "shifts", "state", "baseline_sample", "rejects", "mode_shapes")
 SORT_KEYS = {
     "correlations": ["window_start", "channel_a", "channel_b"],
     "indicators": ["window_start", "subject", "indicator"],
@@ -12,6 +13,7 @@ SORT_KEYS = {
     "state": ["window_start", "subject", "indicator"],
     "baseline_sample": ["window_start", "subject", "indicator"],
     "rejects": ["stage", "source", "subject", "reason", "detail"],
+    "mode_shapes": ["window_start", "mode", "channel"],
 }
 
 
@@ -49,3 +51,17 @@ def _nan_equal(xs, ys):
             continue
         return False
     return True
+
+
+def files_by_path(root, skip=("_runs",)):
+    """sha256 of every file below ``root`` except the run summaries (they name the output folder)."""
+    found = {}
+    for folder, _, names in os.walk(root):
+        for name in names:
+            path = os.path.join(folder, name)
+            relative = os.path.relpath(path, root)
+            if relative.split(os.sep)[0] in skip:
+                continue
+            with open(path, "rb") as handle:
+                found[relative] = hashlib.sha256(handle.read()).hexdigest()
+    return found
