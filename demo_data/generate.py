@@ -2,6 +2,9 @@
 temperature sensor, with documented changes injected at known dates.
 
 Run ``python -m demo_data.generate --out demo_data/archive [--days N] [--every-hours H]``.
+The deck temperature is logged separately, one value a minute around the clock, in a weather
+archive beside the vibration archive (``--weather-out``, default the folder ``weather`` next to
+``--out``), which the demo configuration reads as a ``[[covariate_sources]]`` entry.
 
 The scenario (see docs/demo.md) is invented: no real site, product or person. It is built from
 physical models, not from curve drawing:
@@ -19,9 +22,11 @@ physical models, not from curve drawing:
 
 Records are duty-cycled (one 600 s record every ``--every-hours`` hours, aligned to the hour) at
 25 Hz, one wide Parquet file per record in ``date=YYYY-MM-DD/`` folders, float32 channels and a
-``time`` column of type ``timestamp[us, tz=UTC]``. Every record's random numbers come from a
-generator seeded with the fixed seed and the record's start time, so a rerun writes identical files
-and a shorter run (``--days``) writes the same records as the start of a longer one.
+``time`` column of type ``timestamp[us, tz=UTC]``. The weather archive has one file per day
+(``date=YYYY-MM-DD/weather_YYYYMMDD.parquet``: ``time`` and ``deck_temp``, 1,440 rows).
+Every record's random numbers come from a generator seeded with the fixed seed and the record's
+start time (a weather day's with the day's start), so a rerun writes identical files and a
+shorter run (``--days``) writes the same records as the start of a longer one.
 
 :func:`expected_changes` returns the injected changes (what the demo should find) as plain data; the
 default scenario's list is committed as ``demo_data/expected_changes.json``.
@@ -107,8 +112,10 @@ MULTICHANNEL_BENDING = "bending_1_deck"
 FORCE_CORNER_HZ = 8.0
 #: accelerometer noise floor (white, standard deviation per sample), m/s^2
 SENSOR_NOISE_RMS = 1.5e-4
-#: temperature sensor noise (white, per sample), degC
+#: temperature sensor noise (white, per logged value), degC
 TEMPERATURE_NOISE_RMS = 0.03
+#: the weather logger's interval (one deck temperature value a minute), s
+WEATHER_STEP_S = 60
 #: ground-borne traffic vibration: band (Butterworth band-pass, order 4) and rms at the north footing
 GROUND_BAND_HZ = (1.5, 9.0)
 GROUND_RMS = 0.004
@@ -394,14 +401,13 @@ def simulate_record(
     Returns
     -------
     dict
-        Channel name -> float64 samples (accelerations in m/s^2, temperature in degC).
+        Vibration channel name -> float64 samples in m/s^2 (the deck temperature is in the
+        weather archive: :func:`weather_table`).
     """
     rng = np.random.default_rng([seed, int(start.timestamp())])
     n = int(round(record_s * sample_rate_hz))
     step = 1.0 / sample_rate_hz
     offset = (start - START).total_seconds()
-    times = offset + step * np.arange(n)
-    temperature = deck_temperature_c(times)
     record_temperature = float(deck_temperature_c(offset + record_s / 2))
     deck_level, traffic_level = _excitation_levels(start, rng)
 
@@ -431,7 +437,6 @@ def simulate_record(
 
     for name in VIBRATION_CHANNELS:
         channels[name] += SENSOR_NOISE_RMS * rng.standard_normal(n)
-    channels[TEMPERATURE_CHANNEL] = temperature + TEMPERATURE_NOISE_RMS * rng.standard_normal(n)
     return channels
 
 
@@ -575,7 +580,6 @@ def _schema(time_column: str = TIME_COLUMN) -> pa.Schema:
     fields = [pa.field(time_column, pa.timestamp("us", tz="UTC"), nullable=False)]
     for name in VIBRATION_CHANNELS:
         fields.append(pa.field(name, pa.float32(), metadata={"unit": ACCELERATION_UNIT}))
-    fields.append(pa.field(TEMPERATURE_CHANNEL, pa.float32(), metadata={"unit": TEMPERATURE_UNIT}))
     return pa.schema(
         fields, metadata={"source": "corrtransforms demo generator (invented data)", "asset": ASSET, "seed": str(SEED)}
     )
@@ -586,19 +590,51 @@ def record_table(start: _dt.datetime, time_column: str = TIME_COLUMN, dead_chann
     channels = simulate_record(start)
     if dead_channel is not None:
         channels[dead_channel] = np.full_like(channels[dead_channel], STUCK_VALUE)
-    n = len(channels[TEMPERATURE_CHANNEL])
+    n = len(channels[VIBRATION_CHANNELS[0]])
     step_us = int(round(1e6 / SAMPLE_RATE_HZ))
     start_us = int(start.timestamp()) * 1_000_000
     times = pa.array(start_us + step_us * np.arange(n, dtype=np.int64), type=pa.timestamp("us", tz="UTC"))
     columns = [times] + [pa.array(channels[c].astype(np.float32)) for c in VIBRATION_CHANNELS]
-    columns.append(pa.array(channels[TEMPERATURE_CHANNEL].astype(np.float32)))
     return pa.Table.from_arrays(columns, schema=_schema(time_column))
 
 
 _OWN_FILE = re.compile(r"^" + ASSET + r"_\d{8}T\d{6}Z\.parquet$")
+_OWN_WEATHER_FILE = re.compile(r"^weather_\d{8}\.parquet$")
 
 
-def _clear_previous(out_dir: str) -> int:
+def weather_relative_path(day: _dt.date) -> str:
+    """Path of a day's file inside the weather archive folder."""
+    return f"date={day.isoformat()}/weather_{day.strftime('%Y%m%d')}.parquet"
+
+
+def weather_table(day: _dt.date, seed: int = SEED) -> pa.Table:
+    """The weather logger's day: the deck temperature once a minute from 00:00 UTC (1,440 rows;
+    ``time`` as in the vibration files, ``deck_temp`` float32 with a ``unit`` field metadata).
+    Its own generator (seed, day start in epoch seconds, 1): a rerun writes the same values."""
+    first = _dt.datetime(day.year, day.month, day.day, tzinfo=UTC)
+    rng = np.random.default_rng([seed, int(first.timestamp()), 1])
+    n = 24 * 3600 // WEATHER_STEP_S
+    seconds = (first - START).total_seconds() + WEATHER_STEP_S * np.arange(n)
+    values = deck_temperature_c(seconds) + TEMPERATURE_NOISE_RMS * rng.standard_normal(n)
+    start_us = int(first.timestamp()) * 1_000_000
+    times = pa.array(start_us + WEATHER_STEP_S * 1_000_000 * np.arange(n, dtype=np.int64), pa.timestamp("us", tz="UTC"))
+    schema = pa.schema(
+        [
+            pa.field(TIME_COLUMN, pa.timestamp("us", tz="UTC"), nullable=False),
+            pa.field(TEMPERATURE_CHANNEL, pa.float32(), metadata={"unit": TEMPERATURE_UNIT}),
+        ],
+        metadata={"source": "corrtransforms demo generator (invented data)", "asset": ASSET, "seed": str(SEED)},
+    )
+    return pa.Table.from_arrays([times, pa.array(values.astype(np.float32))], schema=schema)
+
+
+def default_weather_dir(out_dir: str) -> str:
+    """The weather archive's folder when none is given: ``weather`` beside the vibration archive
+    (where the demo configuration's ``[[covariate_sources]] path`` looks)."""
+    return os.path.join(os.path.dirname(os.path.abspath(out_dir)), "weather")
+
+
+def _clear_previous(out_dir: str, own=_OWN_FILE) -> int:
     """Remove files this generator wrote before (and then empty date folders); nothing else."""
     removed = 0
     if not os.path.isdir(out_dir):
@@ -608,7 +644,7 @@ def _clear_previous(out_dir: str) -> int:
         if not (entry.startswith("date=") and os.path.isdir(folder)):
             continue
         for name in os.listdir(folder):
-            if _OWN_FILE.match(name):
+            if own.match(name):
                 os.remove(os.path.join(folder, name))
                 removed += 1
         if not os.listdir(folder):
@@ -622,15 +658,20 @@ def write_archive(
     every_hours: int = DEFAULT_EVERY_HOURS,
     progress=None,
     dates: Optional[Sequence[_dt.date]] = None,
+    weather_dir: Optional[str] = None,
 ) -> Dict:
-    """Write the demo archive under ``out_dir`` and return :func:`expected_changes`.
+    """Write the demo archive under ``out_dir`` and the weather archive under ``weather_dir``
+    (default :func:`default_weather_dir`), and return :func:`expected_changes`.
 
-    Files this generator wrote earlier under ``out_dir`` are removed first, so a shorter rerun
+    Files this generator wrote earlier under either folder are removed first, so a shorter rerun
     leaves no stale records behind. ``dates`` restricts writing to those days (the records are
-    the same as in a full run); the returned expectations describe the full run.
+    the same as in a full run); the returned expectations describe the full run. The weather
+    archive covers every day that has a record (and only ``dates`` when given).
     """
     starts = record_starts(days, every_hours)
     _clear_previous(out_dir)
+    weather = default_weather_dir(out_dir) if weather_dir is None else weather_dir
+    _clear_previous(weather, _OWN_WEATHER_FILE)
     wanted = None if dates is None else set(dates)
     corrupt = _first_record_at_or_after(starts, CORRUPT_FILE_AT)
     renamed = _first_record_at_or_after(starts, RENAMED_TIME_COLUMN_AT)
@@ -654,6 +695,12 @@ def write_archive(
                 handle.write(data[: int(len(data) * CORRUPT_KEEP_FRACTION)])
         if progress is not None and (i + 1) % 50 == 0:
             progress(f"{i + 1}/{len(starts)} records written")
+    for day in sorted({s.date() for s in starts}):
+        if wanted is not None and day not in wanted:
+            continue
+        path = os.path.join(weather, weather_relative_path(day))
+        os.makedirs(os.path.dirname(path), exist_ok=True)
+        pq.write_table(weather_table(day), path, compression="zstd", use_dictionary=False, write_statistics=True)
     return expected_changes(days, every_hours)
 
 
@@ -661,25 +708,30 @@ def write_archive(
 CONFIG_TEMPLATE = "footbridge.toml"
 
 
-def write_config(config_path: str, archive_dir: str) -> str:
-    """Write the demo configuration to ``config_path`` with ``[archive] path`` naming ``archive_dir``.
+def write_config(config_path: str, archive_dir: str, weather_dir: Optional[str] = None) -> str:
+    """Write the demo configuration to ``config_path`` with ``[archive] path`` naming
+    ``archive_dir`` and the weather source's ``path`` naming ``weather_dir`` (default
+    :func:`default_weather_dir` of ``archive_dir``).
 
-    The packaged ``footbridge.toml`` names ``archive`` beside itself; a copy elsewhere (e.g. from
-    an installed wheel) must name the archive actually written. The path is written relative to
-    the configuration's folder when both are on the same drive. Returns ``config_path``.
+    The packaged ``footbridge.toml`` names ``archive`` and ``weather`` beside itself; a copy
+    elsewhere (e.g. from an installed wheel) must name the folders actually written. The paths are
+    written relative to the configuration's folder when on the same drive. Returns ``config_path``.
     """
     import importlib.resources
 
     template = importlib.resources.files("demo_data").joinpath(CONFIG_TEMPLATE).read_text(encoding="utf-8")
     folder = os.path.dirname(os.path.abspath(config_path))
-    try:
-        archive = os.path.relpath(os.path.abspath(archive_dir), folder)
-    except ValueError:  # another drive (Windows)
-        archive = os.path.abspath(archive_dir)
-    line = f"path = {json.dumps(archive.replace(os.sep, '/'))}  # written by python -m demo_data.generate"
-    text, count = re.subn(r'(?m)^path = "archive".*$', lambda _: line, template)
-    if count != 1:
-        raise ValueError(f"demo_data/{CONFIG_TEMPLATE}: no single [archive] path line to replace")
+    weather = default_weather_dir(archive_dir) if weather_dir is None else weather_dir
+    text = template
+    for name, target in (("archive", archive_dir), ("weather", weather)):
+        try:
+            relative = os.path.relpath(os.path.abspath(target), folder)
+        except ValueError:  # another drive (Windows)
+            relative = os.path.abspath(target)
+        line = f"path = {json.dumps(relative.replace(os.sep, '/'))}  # written by python -m demo_data.generate"
+        text, count = re.subn(rf'(?m)^path = "{name}".*$', lambda _, line=line: line, text)
+        if count != 1:
+            raise ValueError(f"demo_data/{CONFIG_TEMPLATE}: no single path = {name!r} line to replace")
     os.makedirs(folder, exist_ok=True)
     with open(config_path, "w", encoding="utf-8") as handle:
         handle.write(text)
@@ -694,6 +746,11 @@ def main(argv: Optional[Sequence[str]] = None) -> int:
         "--out",
         default=os.path.join(os.path.dirname(os.path.abspath(__file__)), "archive"),
         help="archive folder to write (default: demo_data/archive)",
+    )
+    parser.add_argument(
+        "--weather-out",
+        default=None,
+        help="weather archive folder to write (default: the folder 'weather' beside --out)",
     )
     parser.add_argument(
         "--days", type=int, default=DEFAULT_DAYS, help=f"days of records from {START.date()} (default {DEFAULT_DAYS})"
@@ -719,17 +776,21 @@ def main(argv: Optional[Sequence[str]] = None) -> int:
         record_starts(args.days, args.every_hours)
     except ValueError as err:
         parser.error(str(err))
-    expected = write_archive(args.out, args.days, args.every_hours, progress=lambda text: print(text, file=sys.stderr))
+    weather = default_weather_dir(args.out) if args.weather_out is None else args.weather_out
+    expected = write_archive(
+        args.out, args.days, args.every_hours, progress=lambda text: print(text, file=sys.stderr), weather_dir=weather
+    )
     if args.expected_out:
         with open(args.expected_out, "w", encoding="utf-8") as handle:
             json.dump(expected, handle, indent=2)
             handle.write("\n")
     if args.config_out:
-        write_config(args.config_out, args.out)
+        write_config(args.config_out, args.out, weather)
         print(f"wrote the configuration {args.config_out}")
     print(
         f"wrote {expected['records']} records ({expected['first_record']} .. {expected['last_record']}) "
-        f"to {args.out}; injected: {len(expected['shifts'])} shifts, {len(expected['rejects'])} broken inputs"
+        f"to {args.out}, the deck temperature to {weather}; injected: {len(expected['shifts'])} shifts, "
+        f"{len(expected['rejects'])} broken inputs"
     )
     return 0
 

@@ -49,12 +49,13 @@ EXAMPLES = _examples()
 @pytest.fixture(scope="module")
 def example_folder(tmp_path_factory, demo_run):
     """A folder laid out as a checkout after ``make demo``: demo_output/ and demo_data/ with the
-    configuration and its archive (links to the session's demo run, copied output)."""
+    configuration and its archives (links to the session's demo run, copied output)."""
     folder = tmp_path_factory.mktemp("examples")
     shutil.copytree(demo_run.output, folder / "demo_output")
     (folder / "demo_data").mkdir()
     shutil.copy(demo_run.root / "footbridge.toml", folder / "demo_data" / "footbridge.toml")
     os.symlink(demo_run.root / "archive", folder / "demo_data" / "archive")
+    os.symlink(demo_run.root / "weather", folder / "demo_data" / "weather")
     return folder
 
 

@@ -382,17 +382,24 @@ def load_job_config(path: str) -> AssetConfig:
 
 
 def with_url_archive_path(raw: Dict[str, Any], path: str) -> Dict[str, Any]:
-    """``raw`` with a relative ``[archive] path`` resolved against the folder of the URL ``path``."""
-    archive = raw.get("archive")
-    if isinstance(archive, dict) and isinstance(archive.get("path"), str):
-        relative = archive["path"]
-        if "://" not in relative and not relative.startswith("/"):
-            scheme, rest = path.split("://", 1)
-            folder = posixpath.dirname(rest)
-            raw = {
-                **raw,
-                "archive": {**archive, "path": f"{scheme}://{posixpath.normpath(posixpath.join(folder, relative))}"},
-            }
+    """``raw`` with a relative ``[archive] path`` and every relative ``[[covariate_sources]] path``
+    resolved against the folder of the URL ``path`` (as a local file's folder resolves them)."""
+    scheme, rest = path.split("://", 1)
+    folder = posixpath.dirname(rest)
+
+    def resolved(entry: Any) -> Any:
+        if not (isinstance(entry, dict) and isinstance(entry.get("path"), str)):
+            return entry
+        relative = entry["path"]
+        if "://" in relative or relative.startswith("/"):
+            return entry
+        return {**entry, "path": f"{scheme}://{posixpath.normpath(posixpath.join(folder, relative))}"}
+
+    raw = {**raw}
+    if "archive" in raw:
+        raw["archive"] = resolved(raw["archive"])
+    if isinstance(raw.get("covariate_sources"), list):
+        raw["covariate_sources"] = [resolved(entry) for entry in raw["covariate_sources"]]
     return raw
 
 

@@ -43,10 +43,11 @@ def test_backfill_and_nightly_read_and_write_only_through_filesystems(tmp_path, 
     staging = tmp_path / "staging"
     demo_fixtures.write_small_archive(str(staging / "archive"))
     archive_objects = []
-    for rel in demo_fixtures.partition_files(str(staging / "archive")):
-        path = f"{SITE}/archive/{rel}"
-        memory_filesystem.put(path, (staging / "archive" / rel).read_bytes())
-        archive_objects.append(path)
+    for folder in ("archive", "weather"):  # the vibration records and the weather logger's days
+        for rel in demo_fixtures.partition_files(str(staging / folder)):
+            path = f"{SITE}/{folder}/{rel}"
+            memory_filesystem.put(path, (staging / folder / rel).read_bytes())
+            archive_objects.append(path)
     memory_filesystem.put(f"{SITE}/footbridge.toml", demo_fixtures.small_config_text("archive").encode())
     reference_archive = tmp_path / "reference"
     shutil.move(str(staging), str(reference_archive))
@@ -136,6 +137,7 @@ def test_configuration_from_a_filesystem_url():
     memory_filesystem.put(f"{SITE}/sites/a.toml", demo_fixtures.small_config_text("../archive").encode())
     config = backfill.load_job_config(f"{SITE}/sites/a.toml")
     assert config.archive.path == f"{SITE}/archive"  # relative to the file's folder, as for a local file
+    assert config.covariate_sources[0].path == f"{SITE}/sites/weather"  # the weather source too
     memory_filesystem.put(f"{SITE}/sites/b.toml", demo_fixtures.small_config_text("memfs://other/x").encode())
     assert backfill.load_job_config(f"{SITE}/sites/b.toml").archive.path == "memfs://other/x"
     with pytest.raises(ConfigError, match="cannot be read"):

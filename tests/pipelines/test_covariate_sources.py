@@ -86,8 +86,9 @@ def _config_text() -> str:
         (r"(?m)^end = 2025-05-10", "end = 2025-05-02"),
         (r"(?m)^min_windows = 30", "min_windows = 3"),
         (r'(?m)^compensate = \["deck_temp"\]', 'compensate = ["air_temp"]'),
-        (r"(?m)^covariates = \[\"deck_temp\"\]", "covariates = []"),
-        (r'(?m)^deck_temp = "degC"', 'air_temp = "degC"'),
+        (r'(?m)^deck_temp = "degC".*$', 'air_temp = "degC"'),
+        # the demo's own source (the deck temperature logger) is replaced by the station below
+        (r"(?ms)^\[\[covariate_sources\]\]\n.*?(?=^\[windows\])", ""),
     ]:
         text, count = re.subn(pattern, new, text)
         assert count == 1, pattern
@@ -97,7 +98,7 @@ def _config_text() -> str:
 @pytest.fixture(scope="module")
 def site(tmp_path_factory):
     root = tmp_path_factory.mktemp("sources")
-    generate.write_archive(str(root / "archive"), days=DAYS, every_hours=EVERY_HOURS)
+    generate.write_archive(str(root / "archive"), days=DAYS, every_hours=EVERY_HOURS, weather_dir=str(root / "deck"))
     days = [dt.date(2025, 5, 1) + dt.timedelta(days=i) for i in range(DAYS + 1)]
     weather = write_weather(str(root / "weather"), [dt.date(2025, 4, 30)] + days)
     config = root / "footbridge.toml"

@@ -158,7 +158,8 @@ def test_ordinary_file_layout(fault_days):
     parquet = pq.ParquetFile(path)
     schema = parquet.schema_arrow
     assert schema.field("time").type == pa.timestamp("us", tz="UTC")
-    for name in gen.VIBRATION_CHANNELS + (gen.TEMPERATURE_CHANNEL,):
+    assert schema.names == ["time", *gen.VIBRATION_CHANNELS]  # the temperature is in the weather archive
+    for name in gen.VIBRATION_CHANNELS:
         assert schema.field(name).type == pa.float32()
     assert parquet.metadata.num_rows == 15000 and parquet.metadata.num_row_groups == 2
     table = parquet.read()
@@ -166,6 +167,31 @@ def test_ordinary_file_layout(fault_days):
     start_us = int(dt.datetime(2025, 5, 3, 12, tzinfo=gen.UTC).timestamp()) * 10**6
     np.testing.assert_array_equal(times, start_us + 40_000 * np.arange(15000))
     assert all(np.std(table.column(c).to_numpy()) > 0 for c in gen.VIBRATION_CHANNELS)
+
+
+def test_weather_archive_holds_the_deck_temperature_once_a_minute(fault_days):
+    out, _ = fault_days
+    weather = out.parent / "weather"  # the default: beside the vibration archive
+    day = dt.date(2025, 5, 3)
+    files = sorted(p.relative_to(weather).as_posix() for p in weather.rglob("*.parquet"))
+    # one file per day written (the four days asked for), none for other days
+    assert files == sorted(
+        gen.weather_relative_path(d)
+        for d in [gen.DEAD_DAY, gen.CORRUPT_FILE_AT.date(), gen.RENAMED_TIME_COLUMN_AT.date(), day]
+    )
+    table = pq.read_table(weather / gen.weather_relative_path(day))
+    assert table.schema.names == ["time", gen.TEMPERATURE_CHANNEL]
+    assert table.schema.field(gen.TEMPERATURE_CHANNEL).metadata == {b"unit": b"degC"}
+    times = table.column("time").cast(pa.int64()).to_numpy()
+    first_us = int(dt.datetime(2025, 5, 3, tzinfo=gen.UTC).timestamp()) * 10**6
+    np.testing.assert_array_equal(times, first_us + 60_000_000 * np.arange(1440))
+    # the values are the closed-form deck temperature plus the logger's white noise (0.03 degC):
+    # mean residual within 4 standard errors of 0, its spread within 10 % of 0.03 (chi-square,
+    # 1,439 degrees of freedom: the 1e-4 quantiles are within 7 %)
+    seconds = (times - int(gen.START.timestamp()) * 10**6) / 1e6
+    residual = table.column(gen.TEMPERATURE_CHANNEL).to_numpy().astype(float) - gen.deck_temperature_c(seconds)
+    assert abs(residual.mean()) < 4 * gen.TEMPERATURE_NOISE_RMS / np.sqrt(1440)
+    assert residual.std(ddof=1) == pytest.approx(gen.TEMPERATURE_NOISE_RMS, rel=0.1)
 
 
 def test_injected_broken_files_are_really_broken(fault_days):
@@ -197,6 +223,15 @@ def test_rerun_writes_identical_files(tmp_path):
     assert len(names) == 2
     for name in names:
         assert (first / name).read_bytes() == (second / name).read_bytes() == (third / name).read_bytes()
+    # the weather archives (default folders beside each: a/.. is tmp_path for all three, so
+    # name them apart)
+    weathers = []
+    for index, folder in enumerate((first, second)):
+        weathers.append(tmp_path / f"weather{index}")
+        gen.write_archive(str(folder), days=1, every_hours=12, weather_dir=str(weathers[-1]))
+    days = sorted(p.relative_to(weathers[0]) for p in weathers[0].rglob("*.parquet"))
+    assert [d.as_posix() for d in days] == [gen.weather_relative_path(dt.date(2025, 5, 1))]
+    assert (weathers[0] / days[0]).read_bytes() == (weathers[1] / days[0]).read_bytes()
 
 
 def test_configuration_is_valid_and_covers_the_scenario():
@@ -205,7 +240,12 @@ def test_configuration_is_valid_and_covers_the_scenario():
     assert config.archive.path == os.path.join(DEMO_DIR, "archive")
     assert config.archive.sample_rate_hz == gen.SAMPLE_RATE_HZ
     assert config.channels.names == gen.VIBRATION_CHANNELS
-    assert config.channels.covariates == (gen.TEMPERATURE_CHANNEL,)
+    assert config.channels.covariates == ()
+    # the deck temperature comes from the weather archive beside the vibration archive
+    (source,) = config.covariate_sources
+    assert source.names == (gen.TEMPERATURE_CHANNEL,)
+    assert source.path == os.path.join(DEMO_DIR, "weather")
+    assert config.compensated_covariates() == (gen.TEMPERATURE_CHANNEL,)
     assert config.windows.length_s == gen.RECORD_S
     assert (config.baseline.start, config.baseline.end) == (gen.BASELINE_START, gen.BASELINE_END)
     configured = {m.name: m for m in config.modes}

@@ -221,6 +221,9 @@ print(corrtransforms.__version__)
 
     config = load_config(str(tmp_path / "site" / "footbridge.toml"))
     assert config.archive.path == str(tmp_path / "site" / "archive")
+    # and the weather logger's day beside it, named by the configuration's covariate source
+    assert len(list((tmp_path / "site" / "weather").rglob("*.parquet"))) == 1
+    assert config.covariate_sources[0].path == str(tmp_path / "site" / "weather")
 
 
 def test_the_installed_commands_run_in_a_clean_environment(built, tmp_path):
