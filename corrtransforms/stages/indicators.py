@@ -228,7 +228,7 @@ def _with_subset_mismatch(wc: WindowCorrelation, pair: PairCorrelation, estimate
     The peak's lag product sum runs over the ``C_ab(k)`` pairs with both samples valid while the
     normalisation takes every valid sample; on records with gaps in bursts that mismatch adds
     :func:`~corrtransforms.numerics.bartlett.subset_mismatch_variance` to Bartlett's variance
-    (the calibration matrix's gappy record, peak 0.98: scatter 1.31x the Bartlett stderr before).
+    (the calibration matrix's gappy record, peak 0.98: coverage 0.860 with Bartlett's alone, 0.978 with it).
     Rows without pair counts, autos, or a finite lag and stderr are returned unchanged.
     """
     auto_a, auto_b = wc.auto(pair.channel_a), wc.auto(pair.channel_b)
