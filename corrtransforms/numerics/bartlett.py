@@ -536,3 +536,58 @@ def kernel_quadratic_form(model: np.ndarray, first: int, spacing: int, G: np.nda
     g_c = G.T @ c[nodes]
     meat = G.T @ KG - 2 * np.outer(g_rho, g_c) - 2 * np.outer(g_c, g_rho) + 2 * c[0] * np.outer(g_rho, g_rho)
     return 0.5 * (meat + meat.T)
+
+
+def subset_mismatch_variance(
+    peak_coef: float, lag_samples: float, pair_count: float, n_a: float, n_b: float, rho_aa, rho_bb
+) -> float:
+    """Variance that a coefficient at a non-zero lag gets from its numerator's sample subset.
+
+    Parameters
+    ----------
+    peak_coef : float
+        The (count-corrected) coefficient ``rho_ab`` at the lag.
+    lag_samples : float
+        The lag in samples (rounded to the nearest integer ``m``; 0 gives 0).
+    pair_count : float
+        Sample pairs ``C_ab`` behind the lag product sum.
+    n_a, n_b : float
+        Valid samples of channels a and b (the pair counts at lag 0 of their auto pairs).
+    rho_aa, rho_bb : array_like, shape (L + 1,)
+        Auto-correlation coefficients at lags 0..L.
+
+    Returns
+    -------
+    float
+        ``rho^2 G (Q_a + Q_b) / (2 N^2)``; 0 when ``m = 0`` or no pair is lost.
+
+    Notes
+    -----
+    The coefficient is ``sum_{S_m} a_t b_{t+m} / C`` over the pairs ``S_m`` with both samples
+    valid, divided by ``sqrt(s_a^2 s_b^2)`` taken over *all* ``N`` valid samples. Bartlett's
+    formula (:func:`bartlett_stderr`) holds for a coefficient whose numerator and denominator
+    use the same samples; here the ``D = N - C`` samples missing from the numerator sit in
+    runs of ``m`` at the ``G = D / m`` gap edges (the last ``m`` valid samples of ``a`` before
+    each gap, the first ``m`` of ``b`` after it). Writing the coefficient as the one on ``S_m``
+    times ``sqrt(s_a^2(S_m) s_b^2(S_m) / (s_a^2 s_b^2))`` and expanding the variance ratio to
+    first order (``s^2(S_m) - s^2 = (D/N)(s^2 - s^2(edges))``, with ``var s^2(edges) / sigma^4
+    = 2 sum_{t,t' in edges} rho^2(t - t') / D^2`` for Gaussian data, Bartlett 1946 / Bendat &
+    Piersol, *Random Data*, 4th ed., Sec. 8.2.2, from memory) gives the extra variance above,
+    with ``Q = sum_{i,j < m} rho(i - j)^2`` one run's sum and the runs of a and b taken as
+    independent of each other and of the coefficient's own error (gaps longer than the
+    correlation time; an approximation, measured on the calibration matrix's gappy record:
+    docs/calibration.md). Near ``|rho| = 1`` Bartlett's variance, ``(1 - rho^2)^2``-like, is small
+    and this term is what remains; without gaps ``G = 1`` and the term is ``O(m^2 / N^2)``.
+    """
+    m = int(round(abs(float(lag_samples))))
+    n = float(np.sqrt(float(n_a) * float(n_b)))
+    lost = n - float(pair_count)
+    if m == 0 or not np.isfinite(lost) or lost <= 0 or n <= 0 or not np.isfinite(peak_coef):
+        return 0.0
+    runs = lost / m
+    q = 0.0
+    for rho in (rho_aa, rho_bb):
+        r = _finite_or_zero(np.asarray(rho, dtype=float))[: min(m, len(rho))]
+        d = np.arange(len(r))
+        q += float(m + 2.0 * np.sum((m - d[1:]) * r[1:] ** 2))
+    return float(peak_coef) ** 2 * runs * q / (2.0 * n * n)

@@ -35,7 +35,7 @@ import pyarrow as pa
 
 from corrtransforms import tables
 from corrtransforms.config import AssetConfig
-from corrtransforms.numerics.bartlett import LagErrors
+from corrtransforms.numerics.bartlett import LagErrors, subset_mismatch_variance
 from corrtransforms.numerics.modal_fit import fit_mode
 from corrtransforms.numerics.time_delay import LagEstimate, estimate_lag, estimate_lags
 from corrtransforms.numerics.timescales import corr_time_s, decay_time_s
@@ -222,6 +222,46 @@ def _located_coefficient(wc: WindowCorrelation, config: AssetConfig, pair: PairC
     return coefficient * factor, stderr * factor
 
 
+def _with_subset_mismatch(wc: WindowCorrelation, pair: PairCorrelation, estimate: LagEstimate) -> LagEstimate:
+    """``estimate`` with the peak coefficient's stderr widened by the numerator-subset term.
+
+    The peak's lag product sum runs over the ``C_ab(k)`` pairs with both samples valid while the
+    normalisation takes every valid sample; on records with gaps in bursts that mismatch adds
+    :func:`~corrtransforms.numerics.bartlett.subset_mismatch_variance` to Bartlett's variance
+    (the calibration matrix's gappy record, peak 0.98: coverage 0.860 with Bartlett's alone, 0.978 with it).
+    Rows without pair counts, autos, or a finite lag and stderr are returned unchanged.
+    """
+    auto_a, auto_b = wc.auto(pair.channel_a), wc.auto(pair.channel_b)
+    if (
+        pair.pair_count is None
+        or auto_a is None
+        or auto_b is None
+        or auto_a.pair_count is None
+        or auto_b.pair_count is None
+        or not np.isfinite(estimate.lag_s)
+        or not np.isfinite(estimate.peak_coef_stderr)
+        or not pair.lag_step_s > 0
+    ):
+        return estimate
+    counts = np.asarray(pair.pair_count, dtype=float)
+    position = (estimate.lag_s - pair.first_lag_s) / pair.lag_step_s
+    if counts.ndim != 1 or not 0 <= position <= len(counts) - 1:
+        return estimate
+    count = float(np.interp(position, np.arange(len(counts)), counts))
+    extra = subset_mismatch_variance(
+        estimate.peak_coef,
+        estimate.lag_s / pair.lag_step_s,
+        count,
+        float(auto_a.pair_count[0]),
+        float(auto_b.pair_count[0]),
+        auto_a.coefficient,
+        auto_b.coefficient,
+    )
+    if extra <= 0:
+        return estimate
+    return estimate._replace(peak_coef_stderr=float(np.sqrt(estimate.peak_coef_stderr**2 + extra)))
+
+
 def _batched_lag_estimates(
     wc: WindowCorrelation, config: AssetConfig, pairs: List[PairCorrelation]
 ) -> List[Optional[LagEstimate]]:
@@ -284,6 +324,7 @@ def _pair_rows(
             auto_b=auto_b,
             max_lag_s=config.correlation.max_lag_s,
         )
+    estimate = _with_subset_mismatch(wc, pair, estimate)
     codes = quality_text(_pair_codes(pair) + common(subject) + estimate.quality)
     start = wc.window_start_us
     return [
