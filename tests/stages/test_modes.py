@@ -135,4 +135,5 @@ def test_mode_shape_table_contract(records):
 
 def test_settings():
     assert mode_block_columns(3) == 15 and mode_block_columns(8) == 6  # ceil(40 / r) + 1
+    assert mode_block_columns(3, 18) == 7  # ceil(18 / 3) + 1
     assert mode_lag_stride(20.0, 3.3) == 1 and mode_lag_stride(50.0, 2.0) == 2 and mode_lag_stride(200.0, 2.0) == 10
