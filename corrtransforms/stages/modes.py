@@ -90,7 +90,7 @@ MIN_DECAY_TIMES = 3.0
 NARROW_ORDERS = True
 #: orders above 2 n_channels per entry of the group, and for noise / out-of-band modes (common practice)
 ORDERS_PER_ENTRY = 4
-ORDER_MARGIN = 8
+ORDER_MARGIN = 20
 
 #: quality codes of this module (the numerics add mode_not_found, mode_pole_shared,
 #: mode_low_mac, jackknife_unmatched, too_few_segments, nonfinite_correlation)

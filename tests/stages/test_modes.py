@@ -93,7 +93,7 @@ def test_no_mode_in_the_band_and_an_unusable_channel_give_codes_not_errors(recor
         [
             {"name": "empty_band", "channels": list(CHANNELS), "band_hz": [4.8, 5.5]},  # modes 2, 3, 4.5 Hz
             {"name": "mode", "channels": list(CHANNELS), "band_hz": [1.7, 2.4]},
-            {"name": "low_band", "channels": ["north", "south"], "band_hz": [0.5, 0.9]},  # lags of 2 s: short
+            {"name": "low_band", "channels": ["north", "south"], "band_hz": [0.2, 0.4]},  # lags of 2 s: short
         ]
     )
     record = records[0].copy()
