@@ -32,10 +32,15 @@ with ``mode_reference_pending`` while neither exists (a reference taken from the
 would make it 1 by construction).
 
 Settings chosen here (measured by ``benchmarks/bench_multichannel_modes.py --stage``):
-``block_columns = ceil(MAX_ORDER / n_references) + 1`` (the fewest that hold every model order
-of the default range, plus one), block rows spanning a period of the band's low edge, capped by
+model orders ``2, 4, ..., mode_max_order(n_channels, n_entries)`` (:func:`mode_max_order`),
+``block_columns = ceil(max_order / n_references) + 1`` (the fewest that hold every model order,
+plus one), block rows spanning a period of the band's low edge, capped by
 the lags (:func:`mode_block_rows`), and a lag stride that keeps the strided grid's Nyquist frequency
 at least :data:`NYQUIST_FACTOR` times the band's top.
+
+A mode whose decay time is long against the jackknife's sub-records gets
+``jackknife_records_short`` on its damping only (:func:`jackknife_records_short`,
+:data:`MIN_DECAY_TIMES`; ``MultichannelMode.damping_quality``), a holding code.
 """
 
 from __future__ import annotations

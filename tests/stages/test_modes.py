@@ -155,7 +155,8 @@ def test_slow_light_mode_of_the_8_mass_chain_holds_its_damping_row_only():
     # 0.775 (rms error 1.64 x rms stderr) with 37.5 s sub-records (0.6 decay times); its
     # mode_damping rows must carry the holding code, its frequency rows and the 1.742 Hz mode not.
     # Monte Carlo check (fixed seed, 8 windows): the 1.742 Hz damping stderr covers its truth in
-    # at least 6 of 8 windows (P(X <= 5) = 0.006 for X ~ Binomial(8, 0.93); 0.93 = P(|t_15| < 1.96))
+    # at least 6 of 8 windows (P(X <= 5) = 0.015 for X ~ Binomial(8, 0.93), scipy.stats.binom;
+    # 0.93 = P(|t_15| < 1.96), Student's t)
     from corrtransforms.numerics.mode_shapes import largest_component, normalise_shape
     from corrtransforms.records import holds_window
     from corrtransforms.stages.mode_reference import ModeReference
