@@ -27,8 +27,9 @@ OK = "ok"
 #: Quality codes that hold a window out of the shift detectors (the row is written, but neither
 #: the baseline nor the detectors take it): the record is not stationary, or the value's standard
 #: error cannot be trusted (a lag peak that the weighting made up, too few independent samples for
-#: the error formulas). A code matches when it starts with one of these prefixes.
-HOLDING_CODES = ("nonstationary", "spurious_lag_peak", "few_effective_samples")
+#: the error formulas, jackknife sub-records short against a mode's decay time). A code matches
+#: when it starts with one of these prefixes.
+HOLDING_CODES = ("nonstationary", "spurious_lag_peak", "few_effective_samples", "jackknife_records_short")
 
 
 def holds_window(codes) -> bool:
@@ -181,6 +182,9 @@ class MultichannelMode:
     shape_stderr_imag: np.ndarray
     reference_index: int
     quality: Tuple[str, ...] = ()
+    #: codes of the damping value only (its mode_damping row adds them to ``quality``):
+    #: ``jackknife_records_short`` (:mod:`corrtransforms.stages.modes`)
+    damping_quality: Tuple[str, ...] = ()
 
 
 @dataclasses.dataclass

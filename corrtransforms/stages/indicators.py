@@ -166,14 +166,15 @@ def _multichannel_rows(wc: WindowCorrelation, found: MultichannelMode, common) -
     """mode_freq_hz, mode_damping and mode_mac of one multi-channel mode."""
     codes = quality_text(tuple(found.quality) + common(found.mode))
     start = wc.window_start_us
+    damping_codes = quality_text(tuple(found.quality) + tuple(found.damping_quality) + common(found.mode))
     values = (
-        ("mode_freq_hz", found.freq_hz, found.freq_stderr_hz, "Hz"),
-        ("mode_damping", found.damping, found.damping_stderr, ""),
-        ("mode_mac", found.mac, found.mac_stderr, ""),
+        ("mode_freq_hz", found.freq_hz, found.freq_stderr_hz, "Hz", codes),
+        ("mode_damping", found.damping, found.damping_stderr, "", damping_codes),
+        ("mode_mac", found.mac, found.mac_stderr, "", codes),
     )
     return [
-        IndicatorRow(start, found.mode, name, _finite_or_nan(v), _finite_or_nan(se), unit, codes)
-        for name, v, se, unit in values
+        IndicatorRow(start, found.mode, name, _finite_or_nan(v), _finite_or_nan(se), unit, row_codes)
+        for name, v, se, unit, row_codes in values
     ]
 
 

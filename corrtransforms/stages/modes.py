@@ -32,14 +32,20 @@ with ``mode_reference_pending`` while neither exists (a reference taken from the
 would make it 1 by construction).
 
 Settings chosen here (measured by ``benchmarks/bench_multichannel_modes.py --stage``):
-``block_columns = ceil(MAX_ORDER / n_references) + 1`` (the fewest that hold every model order
-of the default range, plus one), block rows spanning a period of the band's low edge, capped by
+model orders ``2, 4, ..., mode_max_order(n_channels, n_entries)`` (:func:`mode_max_order`),
+``block_columns = ceil(max_order / n_references) + 1`` (the fewest that hold every model order,
+plus one), block rows spanning a period of the band's low edge, capped by
 the lags (:func:`mode_block_rows`), and a lag stride that keeps the strided grid's Nyquist frequency
 at least :data:`NYQUIST_FACTOR` times the band's top.
+
+A mode whose decay time is long against the jackknife's sub-records gets
+``jackknife_records_short`` on its damping only (:func:`jackknife_records_short`,
+:data:`MIN_DECAY_TIMES`; ``MultichannelMode.damping_quality``), a holding code.
 """
 
 from __future__ import annotations
 
+import dataclasses
 from typing import Dict, Iterable, List, Mapping, Optional, Sequence, Tuple
 
 import numpy as np
@@ -74,6 +80,22 @@ SUB_RECORDS = 16
 #: the strided lag grid keeps its Nyquist frequency at least this many times the band's top
 #: (common practice: content above the strided Nyquist aliases into the band)
 NYQUIST_FACTOR = 5.0
+#: the jackknife's sub-records must last at least this many decay times ``1 / (2 pi f zeta)`` of
+#: the mode for its damping stderr to be trusted, else ``jackknife_records_short`` (a holding code).
+#: The delete-one-block jackknife assumes blocks much longer than the dependence of the data
+#: (Kuensch 1989, Ann. Statist. 17(3), 1217-1241; Efron & Tibshirani 1993, *An Introduction to the
+#: Bootstrap*, Sec. 8.6 on blocks; both from memory): a lightly damped mode's response, and so the
+#: lag sums of neighbouring sub-records, stay correlated for about its decay time. Value chosen
+#: from the Monte Carlo of benchmarks/bench_multichannel_modes.py (docs/modes.md, "Uncertainty"):
+#: rms damping error / rms stderr 1.67 at 0.6 decay times per sub-record, 1.39 at 1.2, 1.10 at 2.4,
+#: 0.93-1.05 at 4.7-5.4
+MIN_DECAY_TIMES = 3.0
+#: model orders of a group: 2, 4, ..., mode_max_order(channels, entries) instead of up to MAX_ORDER
+#: (measured: docs/modes.md, "Cost"); False restores the full range (the benchmark compares both)
+NARROW_ORDERS = True
+#: orders above 2 n_channels per entry of the group, and for noise / out-of-band modes (common practice)
+ORDERS_PER_ENTRY = 4
+ORDER_MARGIN = 20
 
 #: quality codes of this module (the numerics add mode_not_found, mode_pole_shared,
 #: mode_low_mac, jackknife_unmatched, too_few_segments, nonfinite_correlation)
@@ -82,7 +104,19 @@ QUALITY_CODES = {
     "mode_identification_failed": "the identification raised on this window's correlations (too few lags, singular)",
     "mode_max_lag_short": "[correlation] max_lag_s holds too few lags for the Hankel matrix of this band",
     "mode_reference_pending": "no reference_shape and the baseline reference is not complete yet, so mode_mac is NaN",
+    "jackknife_records_short": "mode_damping only: the jackknife's sub-records last fewer than MIN_DECAY_TIMES decay "
+    "times of the mode, so its damping stderr is too small; held out of the shift detectors",
 }
+
+
+def jackknife_records_short(record_s: float, sub_records: int, freq_hz: float, damping: float) -> bool:
+    """True when a sub-record (``record_s / sub_records``) lasts fewer than :data:`MIN_DECAY_TIMES`
+    decay times ``1 / (2 pi f zeta)`` of the mode (non-finite or non-positive values: False, the
+    stderr is NaN anyway)."""
+    if not (np.isfinite(freq_hz) and np.isfinite(damping) and freq_hz > 0 and damping > 0):
+        return False
+    decay_time_s = 1.0 / (2.0 * np.pi * freq_hz * damping)
+    return bool(record_s / sub_records < MIN_DECAY_TIMES * decay_time_s)
 
 
 def mode_lag_stride(fs: float, high_hz: float) -> int:
@@ -90,16 +124,33 @@ def mode_lag_stride(fs: float, high_hz: float) -> int:
     return max(1, int(np.floor(fs / (2.0 * NYQUIST_FACTOR * high_hz))))
 
 
-def mode_block_columns(n_references: int) -> int:
-    """Block columns of the Hankel matrix: ``ceil(MAX_ORDER / n_references) + 1``."""
-    return int(np.ceil(MAX_ORDER / max(n_references, 1))) + 1
+def mode_max_order(n_channels: int, n_entries: int) -> int:
+    """Largest model order of a group: ``min(MAX_ORDER, 2 n_channels + ORDERS_PER_ENTRY n_entries
+    + ORDER_MARGIN)`` (orders 2, 4, ... up to it), or MAX_ORDER when :data:`NARROW_ORDERS` is off.
+
+    ``2 n_channels`` is the order from which a pole represents its mode (the state can hold as
+    many modes as channels; :func:`~corrtransforms.numerics.multichannel_modes.select_modes`); the
+    orders above it give each entry's mode room to stabilise. Fewer orders mean fewer and
+    smaller eigenvalue problems and a narrower Hankel matrix (its columns hold the largest order).
+    """
+    if not NARROW_ORDERS:
+        return MAX_ORDER
+    wanted = 2 * n_channels + ORDERS_PER_ENTRY * n_entries + ORDER_MARGIN
+    return int(min(MAX_ORDER, wanted + wanted % 2))
 
 
-def mode_block_rows(fs: float, low_hz: float, n_references: int, stride: int, columns: int, n_lags: int) -> int:
+def mode_block_columns(n_references: int, max_order: int = MAX_ORDER) -> int:
+    """Block columns of the Hankel matrix: ``ceil(max_order / n_references) + 1``."""
+    return int(np.ceil(max_order / max(n_references, 1))) + 1
+
+
+def mode_block_rows(
+    fs: float, low_hz: float, n_references: int, stride: int, columns: int, n_lags: int, max_order: int = MAX_ORDER
+) -> int:
     """Block rows: :func:`~corrtransforms.numerics.multichannel_modes.default_block_rows` (a period
     of the band's low edge, room for the orders), capped by the lags ``[correlation] max_lag_s``
     gives (``rows + columns`` strided lags after lag 0)."""
-    wanted = default_block_rows(fs, low_hz, n_references, MAX_ORDER, stride)
+    wanted = default_block_rows(fs, low_hz, n_references, max_order, stride)
     return max(2, min(wanted, (n_lags - 1) // stride - columns))
 
 
@@ -197,18 +248,20 @@ def _group_modes(
     """Identify once for entries sharing channels, assign poles, attach jackknife stderrs."""
     fs = float(block.sample_rate_hz)
     union = (min(e.band_hz[0] for e in entries), max(e.band_hz[1] for e in entries))
-    stride, columns = mode_lag_stride(fs, search_band(union)[1]), mode_block_columns(len(references))
+    max_order = mode_max_order(len(channels), len(entries))
+    stride, columns = mode_lag_stride(fs, search_band(union)[1]), mode_block_columns(len(references), max_order)
     configured_lags = int(round(config.correlation.max_lag_s * fs))
     if configured_lags // stride < columns + 2:
         return [_empty(e, ["mode_max_lag_short"]) for e in entries]
-    rows = mode_block_rows(fs, search_band(union)[0], len(references), stride, columns, configured_lags + 1)
+    rows = mode_block_rows(fs, search_band(union)[0], len(references), stride, columns, configured_lags + 1, max_order)
     # only the lags the Hankel matrix uses: (1 + rows + columns) strided lags, within max_lag_s
     used_lags = min(configured_lags, (1 + rows + columns) * stride)
     S, N = _lag_arrays(block, config, channels, references, used_lags, sub_records)
     sequence = window_sequence(S, N)
     if not np.all(np.isfinite(sequence)):
         return [_empty(e, ["nonfinite_correlation"]) for e in entries]
-    found = identify_modes(sequence, fs, union, block_rows=rows, lag_stride=stride, block_columns=columns)
+    orders = range(2, max_order + 1, 2)
+    found = identify_modes(sequence, fs, union, orders, block_rows=rows, lag_stride=stride, block_columns=columns)
     bands = np.array([search_band(e.band_hz) for e in entries])
     centres = np.array(
         [baseline[e.name].freq_hz if e.name in baseline else 0.5 * (e.band_hz[0] + e.band_hz[1]) for e in entries]
@@ -223,7 +276,10 @@ def _group_modes(
         if chosen < 0:
             out.append(_empty(entry, assignment.quality[k]))
             continue
-        out.append(_assigned(entry, found, chosen, S, N, fs, assignment.quality[k], baseline.get(entry.name)))
+        mode = _assigned(entry, found, chosen, S, N, fs, assignment.quality[k], baseline.get(entry.name))
+        if jackknife_records_short(np.asarray(block.values).shape[0] / fs, S.shape[0], mode.freq_hz, mode.damping):
+            mode = dataclasses.replace(mode, damping_quality=("jackknife_records_short",))
+        out.append(mode)
     return out
 
 
