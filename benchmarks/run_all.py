@@ -1,13 +1,16 @@
 """Scale benchmark: the backfill against the plain script and the floor, for 1, 2 and 4 days.
 
-    python -m benchmarks.run_all [--days 1 2 4] [--variants pipeline workers2 script floor lean]
+    python -m benchmarks.run_all [--days 1 2 4] [--variants pipeline default workers2 script floor lean]
                                  [--repeats 1] [--offline] [--trace-network]
 
 On the same invented archives (benchmarks/scale_archive.py: wide, float32, hourly files, 15-minute
 row groups, 8 channels at 100 Hz; 10-minute windows, all 36 pairs, max lag 10 s, two modes,
 screening and shift detection on: the whole job) it runs, each in its own subprocess:
 
-1. ``pipeline``: ``python -m pipelines.backfill`` on the default in-process local runner;
+1. ``pipeline``: ``python -m pipelines.backfill --direct_num_workers=1``: the local runner in
+   one process;
+1b. ``default``: ``python -m pipelines.backfill`` as it is: the default, one worker process per
+   core (:func:`corrtransforms.launch.common.use_every_core`);
 2. ``workers2``: the same with ``--direct_running_mode=multi_processing --direct_num_workers=2``;
 3. ``script``: the plain script a practitioner would write (benchmarks/scale_script.py);
 4. ``floor``: decoding the same columns and row groups, one rFFT per channel per window and one
@@ -49,9 +52,10 @@ from benchmarks import scale_archive
 HERE = os.path.dirname(os.path.abspath(__file__))
 ROOT = os.path.dirname(HERE)
 WORK = os.path.join(HERE, "_work")
-VARIANTS = ("pipeline", "workers2", "script", "floor", "lean")
+VARIANTS = ("pipeline", "default", "workers2", "script", "floor", "lean")
 LABELS = {
-    "pipeline": "1 pipeline, in-process runner",
+    "pipeline": "1 pipeline, 1 worker (in process)",
+    "default": "1b pipeline, default (every core)",
     "workers2": "2 pipeline, 2 worker processes",
     "script": "3 plain script (scipy per pair)",
     "floor": "4 floor (decode + FFTs)",
@@ -132,7 +136,7 @@ def _quote(text: str) -> str:
     return "'" + text.replace("'", "'\\''") + "'"
 
 
-PIPELINE_VARIANTS = ("pipeline", "workers2", "lean")
+PIPELINE_VARIANTS = ("pipeline", "default", "workers2", "lean")
 
 
 def command_for(variant: str, archive: str, config: str, folder: str) -> List[str]:
@@ -145,6 +149,8 @@ def command_for(variant: str, archive: str, config: str, folder: str) -> List[st
         command = [python, "-m", "pipelines.backfill", "--config", config, "--output", output]
         if variant == "workers2":
             command += ["--direct_running_mode=multi_processing", "--direct_num_workers=2"]
+        elif variant in ("pipeline", "lean"):
+            command += ["--direct_num_workers=1"]
         return command
     if variant == "script":
         output = os.path.join(folder, "out_script")
@@ -271,7 +277,8 @@ def report(results: Dict[int, Dict[str, dict]], args) -> str:
     lines += [
         "",
         f"{'days':>4}  {'1/4 pipeline/floor':>19} {'efficiency 4/1':>15} {'3/1 speed-up':>13} "
-        f"{'1/2 worker scaling':>19} {'5/4 lean/floor':>15} {'3/5 script/lean':>16}",
+        f"{'1/2 worker scaling':>19} {'1/1b default speed-up':>22} {'1b/4 default/floor':>19} "
+        f"{'5/4 lean/floor':>15} {'3/5 script/lean':>16}",
     ]
 
     def ratio(days, top, bottom):
@@ -284,6 +291,7 @@ def report(results: Dict[int, Dict[str, dict]], args) -> str:
         lines.append(
             f"{days:>4}  {ratio(days, 'pipeline', 'floor'):>19} {ratio(days, 'floor', 'pipeline'):>15} "
             f"{ratio(days, 'script', 'pipeline'):>13} {ratio(days, 'pipeline', 'workers2'):>19} "
+            f"{ratio(days, 'pipeline', 'default'):>22} {ratio(days, 'default', 'floor'):>19} "
             f"{ratio(days, 'lean', 'floor'):>15} {ratio(days, 'script', 'lean'):>16}"
         )
     first = min(results)

@@ -1,13 +1,16 @@
 """WriteTables: rows of every table -> committed Hive partitions (the last step of every run).
 
 Part files are written where the rows are made (no shuffle of big rows) and each partition is
-committed after a GroupByKey of the small part-file records.
+committed after a GroupByKey of the small part-file records; the commit merges a partition's part
+files into files that depend on its rows only (one per partition, or one per hour slot of a large
+partition: :func:`corrtransforms.stages.write.commit_partition`), so the output does not depend on
+bundling or on the number of workers.
 """
 
 from __future__ import annotations
 
 import uuid
-from typing import Dict, Sequence, Union
+from typing import Dict, Sequence, Tuple, Union
 
 import apache_beam as beam
 from apache_beam.transforms.window import GlobalWindows
@@ -22,7 +25,8 @@ FLUSH_BYTES = 32 * 2**20
 
 
 class _WritePartsFn(beam.DoFn):
-    """Buffer one table's rows per partition within a bundle; write part files to the temporary area."""
+    """Buffer one table's rows per partition and hour slot within a bundle; write part files to the
+    temporary area."""
 
     def __init__(self, table_name: str, output_dir: str, config: AssetConfig, run_id: str, flush_bytes: int):
         self._table, self._output, self._config, self._run_id = table_name, output_dir, config, run_id
@@ -34,16 +38,17 @@ class _WritePartsFn(beam.DoFn):
         self._rows = counter(f"rows_written_{self._table}")
 
     def start_bundle(self):
-        self._buffers: Dict[str, list] = {}
-        self._sizes: Dict[str, int] = {}
+        self._buffers: Dict[Tuple[str, str], list] = {}
+        self._sizes: Dict[Tuple[str, str], int] = {}
 
-    def _flush(self, date: str):
+    def _flush(self, key: Tuple[str, str]):
         import pyarrow as pa
 
-        tables = self._buffers.pop(date, [])
-        self._sizes.pop(date, None)
+        tables = self._buffers.pop(key, [])
+        self._sizes.pop(key, None)
         if not tables:
             return None
+        date, slot = key
         table = pa.concat_tables(tables)
         part = table_writer.write_part(
             self._store,
@@ -55,20 +60,23 @@ class _WritePartsFn(beam.DoFn):
             self._run_id,
             self._metadata,
             unique=uuid.uuid4().hex,
+            slot=slot,
         )
         self._rows.inc(part.rows)
         return part
 
     def process(self, element):
-        for date, table in table_writer.to_partitions(self._table, element, self._config):
-            self._buffers.setdefault(date, []).append(table)
-            self._sizes[date] = self._sizes.get(date, 0) + table.nbytes
-            if self._sizes[date] >= self._flush_bytes:
-                yield self._flush(date)
+        for date, rows in table_writer.to_partitions(self._table, element, self._config):
+            for slot, table in table_writer.split_by_slot(rows):
+                key = (date, slot)
+                self._buffers.setdefault(key, []).append(table)
+                self._sizes[key] = self._sizes.get(key, 0) + table.nbytes
+                if self._sizes[key] >= self._flush_bytes:
+                    yield self._flush(key)
 
     def finish_bundle(self):
-        for date in sorted(self._buffers):
-            part = self._flush(date)
+        for key in sorted(self._buffers):
+            part = self._flush(key)
             if part is not None:
                 yield GlobalWindows.windowed_value(part)
 
@@ -118,7 +126,8 @@ class WriteTables(beam.PTransform):
         Dates the run owns: their partitions of every table in the dict are replaced even when
         the run has no rows for them. Dates that receive rows are always owned.
     flush_bytes : int
-        Buffered bytes per table and partition after which a part file is written.
+        Buffered bytes per table, partition and hour slot after which a part file is written
+        (bounds a writer's memory; the committed files do not depend on it).
     remove_temporary : bool
         Delete the run's temporary folder after the commits (the default). False leaves that to
         the caller: in a fleet every asset writes under the same run id, and the folder goes
@@ -134,7 +143,11 @@ class WriteTables(beam.PTransform):
     Part files are written where the rows are made (no shuffle of correlation rows); only the
     small part-file records go through the GroupByKey per (asset, date) that commits a partition.
     A retried bundle writes new temporary files under a fresh token; only files reported by
-    successful bundles are committed, the rest go with the temporary folder.
+    successful bundles are committed, the rest go with the temporary folder. The commit merges
+    a partition's part files (:func:`corrtransforms.stages.write.commit_partition`): a partition
+    of at most ``FILE_CELLS`` cells becomes one file, a larger one one file per hour of
+    ``window_start``, each with its rows sorted and named by their digest, so the committed
+    files are the same bytes whatever the bundles, the flush size or the number of workers.
     """
 
     def __init__(

@@ -20,7 +20,7 @@ from typing import Any, Dict, List, Optional, Tuple
 import apache_beam as beam
 from apache_beam.io.filesystem import CompressionTypes
 from apache_beam.io.filesystems import FileSystems
-from apache_beam.options.pipeline_options import PipelineOptions, StandardOptions
+from apache_beam.options.pipeline_options import DirectOptions, PipelineOptions, StandardOptions
 
 from corrtransforms import config as config_module
 from corrtransforms import tables
@@ -432,8 +432,44 @@ def pipeline_options(argv: Optional[List[str]], command: str) -> PipelineOptions
     standard = options.view_as(StandardOptions)
     if not standard.runner:
         standard.runner = LOCAL_RUNNER
+    use_every_core(options, argv)
     FileSystems.set_options(options)
     return options
+
+
+#: the local runners whose worker count and mode this package chooses when the user does not
+LOCAL_RUNNERS = (LOCAL_RUNNER, "DirectRunner", "BundleBasedDirectRunner", "SwitchingDirectRunner")
+WORKER_FLAGS = ("--direct_num_workers", "--direct_running_mode")
+
+
+def usable_cores() -> int:
+    """The cores this process may run on (its CPU affinity; ``os.cpu_count`` where that is unknown)."""
+    try:
+        return len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):
+        return os.cpu_count() or 1
+
+
+def use_every_core(options: PipelineOptions, argv: List[str]) -> None:
+    """The default local run uses every core: Beam's multi-process local mode with one worker
+    process per usable core, unless the command line names ``--direct_num_workers`` or
+    ``--direct_running_mode`` or a runner other than the local one, or one core is all there is.
+
+    ``--direct_num_workers=1`` is the way back to one process. The worker processes are local
+    Python subprocesses of the same interpreter (no runner or container is downloaded); the
+    files written do not depend on the number of workers (:mod:`corrtransforms.beam.write`), and
+    the counters the launchers read are gathered from every worker by the runner.
+    """
+    if any(token.split("=", 1)[0] in WORKER_FLAGS for token in argv):
+        return
+    if options.view_as(StandardOptions).runner not in LOCAL_RUNNERS:
+        return
+    cores = usable_cores()
+    if cores < 2:
+        return
+    direct = options.view_as(DirectOptions)
+    direct.direct_running_mode = "multi_processing"
+    direct.direct_num_workers = cores
 
 
 def parse_options(argv: Optional[List[str]], command: str):

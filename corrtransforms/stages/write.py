@@ -11,8 +11,15 @@ Two steps, so a failed run leaves no half file and a rerun replaces exactly its 
 1. :func:`write_part` writes rows into ``DIR/_temporary/<run id>/...`` (invisible to readers:
    pyarrow.dataset skips names starting with ``_``; the folder is outside every table's folder).
    The final file name is a digest of the rows' key columns: deterministic for given rows.
-2. :func:`commit_partition` moves one partition's part files into place, checks each one arrived,
-   and deletes every other file of that partition (stale shards of earlier runs).
+2. :func:`commit_partition` merges one partition's part files into the partition's files (see
+   below), moves them into place, checks each one arrived, and deletes every other file of that
+   partition (stale shards of earlier runs).
+
+The files of a partition are a function of its rows alone, never of how the runner split the
+work into bundles or workers: a partition of at most :data:`FILE_CELLS` cells (rows plus list
+elements) is one file; a larger one is one file per hour of ``window_start`` (the rows' *slot*,
+:func:`split_by_slot`). Writers keep their part files per (date, slot), so the commit holds one
+file's rows at a time: one partition when it is small, one hour of it when it is large.
 
 File access goes through a small store interface (:class:`LocalFiles` here; the Beam layer
 supplies one over ``apache_beam.io.filesystems.FileSystems``), so this module stays pure pyarrow.
@@ -52,6 +59,12 @@ SCHEMAS = {
 }
 #: rows of one Parquet row group in output files (common practice: tens of thousands of rows)
 ROW_GROUP_ROWS = 50_000
+#: cells (rows + list elements; about 4 bytes each in memory for the float32 lists) up to which a
+#: partition is one file; above, one file per hour slot (8 Mi cells: about 32 MiB of list values;
+#: common practice: files of tens of MiB)
+FILE_CELLS = 8 * 2**20
+#: length of the slot a large partition is split by (microseconds of ``window_start``)
+SLOT_US = 3600 * 10**6
 META_PREFIX = "corrtransforms."
 
 
@@ -114,6 +127,10 @@ class PartFile(NamedTuple):
     temp_path: str
     name: str
     rows: int
+    #: the hour slot of the rows (:func:`split_by_slot`); "" for rows without a window
+    slot: str = ""
+    #: rows plus list elements: the size the commit decides one file or one per slot by
+    cells: int = 0
 
 
 class CommitResult(NamedTuple):
@@ -171,6 +188,35 @@ def split_by_date(table: pa.Table, timezone: str) -> Dict[str, pa.Table]:
     for date in sorted(set(dates.tolist())):
         out[date] = table.filter(pa.array(dates == date))
     return out
+
+
+def split_by_slot(table: pa.Table) -> List[Tuple[str, pa.Table]]:
+    """Rows grouped by their hour slot: ``window_start`` // :data:`SLOT_US` (zero-padded), "" for
+    rows without a window start (file-level rejects) or tables without the column."""
+    if table.num_rows == 0 or "window_start" not in table.column_names:
+        return [("", table)]
+    starts = table.column("window_start").cast(pa.int64()).fill_null(-1).to_numpy(zero_copy_only=False)
+    slots = np.where(starts < 0, -1, starts // SLOT_US)
+    unique = np.unique(slots)
+
+    def name(slot: int) -> str:
+        return "" if slot < 0 else f"{int(slot):08d}"
+
+    if len(unique) == 1:
+        return [(name(int(unique[0])), table)]
+    return [(name(int(u)), table.filter(pa.array(slots == u))) for u in unique]
+
+
+def cells(table: pa.Table) -> int:
+    """Rows plus the elements of every list column (a deterministic size of the rows)."""
+    import pyarrow.compute as pc
+
+    total = table.num_rows
+    for field in table.schema:
+        if pa.types.is_list(field.type) or pa.types.is_large_list(field.type):
+            counted = pc.sum(pc.list_value_length(table.column(field.name))).as_py()
+            total += int(counted or 0)
+    return total
 
 
 def to_partitions(table_name: str, element: Any, config: AssetConfig) -> List[Tuple[str, pa.Table]]:
@@ -287,6 +333,7 @@ def write_part(
     run_id: str,
     metadata: Mapping[str, str],
     unique: str,
+    slot: str = "",
 ) -> PartFile:
     """Write ``table`` (rows of one partition) to the run's temporary area.
 
@@ -306,14 +353,32 @@ def write_part(
         File key-value metadata (see :func:`provenance_metadata`).
     unique : str
         A token unique to this write attempt (retried attempts must not share temporary files).
+    slot : str
+        The rows' hour slot (:func:`split_by_slot`), kept for the commit.
 
     Returns
     -------
     PartFile
     """
-    table = table.sort_by([(c, "ascending") for c in sort_columns(table)])
+    temp_folder = store.join(output_dir, TEMPORARY, run_id, table_name, f"asset={asset}", f"date={date}")
+    return _write_sorted(store, temp_folder, table_name, asset, date, table, metadata, unique, slot)
+
+
+def _write_sorted(
+    store,
+    temp_folder: str,
+    table_name: str,
+    asset: str,
+    date: str,
+    table: pa.Table,
+    metadata: Mapping[str, str],
+    unique: str,
+    slot: str,
+) -> PartFile:
+    """Sort ``table`` by its scalar columns and write it as ``temp_folder/<part name>.<unique>``."""
+    table = table.sort_by([(c, "ascending") for c in sort_columns(table)]).combine_chunks()
     name = part_file_name(table)
-    temp = store.join(output_dir, TEMPORARY, run_id, table_name, f"asset={asset}", f"date={date}", f"{name}.{unique}")
+    temp = store.join(temp_folder, f"{name}.{unique}")
     merged = dict(table.schema.metadata or {})
     merged.update({k.encode(): v.encode() for k, v in metadata.items()})
     table = table.replace_schema_metadata(merged)
@@ -329,32 +394,102 @@ def write_part(
             store_schema=True,
             **_encodings(table_name),
         )
-    return PartFile(table_name, asset, date, temp, name, table.num_rows)
+    return PartFile(table_name, asset, date, temp, name, table.num_rows, slot, cells(table))
+
+
+def merge_parts(store, parts: Sequence[PartFile]) -> PartFile:
+    """One part file holding the rows of ``parts`` (distinct files of one partition), sorted.
+
+    The result is the file :func:`write_part` writes for all those rows at once, byte for byte
+    (the same sort, name, metadata and writer settings), so it does not depend on how the rows
+    were split into parts. One part is returned as it is. The merged file goes beside the first
+    part in the run's temporary area; the inputs stay there (a retried commit finds them) and go
+    with the run's temporary folder.
+    """
+    parts = sorted(parts, key=lambda p: (p.name, p.temp_path))
+    if len(parts) == 1:
+        return parts[0]
+    first = parts[0]
+    pieces = []
+    metadata: Dict[str, str] = {}
+    for part in parts:
+        with store.open(part.temp_path) as handle:
+            piece = pq.read_table(handle)
+        kept = {}
+        for key, value in (piece.schema.metadata or {}).items():
+            if key.startswith(META_PREFIX.encode()):
+                metadata[key.decode()] = value.decode()
+            elif key != b"ARROW:schema":
+                kept[key] = value
+        pieces.append(_arrow_list_names(piece).replace_schema_metadata(kept or None))
+    table = pa.concat_tables(pieces)
+    cut = max(first.temp_path.rfind("/"), first.temp_path.rfind("\\"))  # the folder of the temporary file
+    folder = first.temp_path[:cut]
+    return _write_sorted(store, folder, first.table, first.asset, first.date, table, metadata, "merged", first.slot)
+
+
+def _arrow_list_names(table: pa.Table) -> pa.Table:
+    """``table`` with its list columns' element fields named ``item`` again (Arrow's name, which
+    the rows had before writing; the file stores Parquet's compliant name ``element``)."""
+    fields = []
+    for field in table.schema:
+        if pa.types.is_list(field.type) and field.type.value_field.name != "item":
+            field = field.with_type(pa.list_(field.type.value_field.with_name("item")))
+        fields.append(field)
+    schema = pa.schema(fields, metadata=table.schema.metadata)
+    return table if schema.equals(table.schema, check_metadata=True) else table.cast(schema)
+
+
+def partition_files_of(parts: Sequence[PartFile], max_cells: int = FILE_CELLS) -> List[List[PartFile]]:
+    """The parts of one partition grouped by the file they go into: all in one when the
+    partition holds at most ``max_cells`` cells, else one group per hour slot. A function of the
+    rows (their total cells and slots), not of how they were split into parts."""
+    if not parts:
+        return []
+    if sum(p.cells for p in parts) <= max_cells:
+        return [list(parts)]
+    by_slot: Dict[str, List[PartFile]] = {}
+    for part in parts:
+        by_slot.setdefault(part.slot, []).append(part)
+    return [by_slot[s] for s in sorted(by_slot)]
 
 
 def commit_partition(
-    store, output_dir: str, table_name: str, asset: str, date: str, parts: Iterable[PartFile]
+    store,
+    output_dir: str,
+    table_name: str,
+    asset: str,
+    date: str,
+    parts: Iterable[PartFile],
+    max_cells: int = FILE_CELLS,
 ) -> CommitResult:
-    """Move a partition's part files into place and delete the partition's other files.
+    """Merge a partition's part files into its files, move them into place and delete the
+    partition's other files.
 
     Notes
     -----
+    The part files are merged by :func:`partition_files_of` and :func:`merge_parts`: the files
+    that appear depend on the rows only (one file, or one per hour slot above ``max_cells``).
     Each file appears atomically (a rename on local disks); new files are moved in before stale
     ones are deleted, so a reader during the commit may briefly see both, never neither. Every
     moved file is checked to exist afterwards: a rename that silently did nothing raises.
     """
     parts = sorted(parts, key=lambda p: (p.name, p.temp_path))
+    for part in parts:
+        if part.table != table_name or part.asset != asset or part.date != date:
+            raise ValueError(f"part {part} does not belong to {table_name}/{asset}/{date}")
+    distinct: Dict[str, PartFile] = {}
+    for part in parts:  # the same rows written twice (the name is their digest): keep one copy
+        distinct.setdefault(part.name, part)
+    parts = [merge_parts(store, group) for group in partition_files_of(list(distinct.values()), max_cells)]
     folder = partition_folder(store, output_dir, table_name, asset, date)
     existing = store.list_files(folder)
     written: Dict[str, int] = {}
     if parts:
         store.mkdirs(folder)
     for part in parts:
-        if part.table != table_name or part.asset != asset or part.date != date:
-            raise ValueError(f"part {part} does not belong to {table_name}/{asset}/{date}")
         destination = store.join(folder, part.name)
-        if part.name in written:
-            store.delete([part.temp_path])  # the same rows written twice: keep one copy
+        if part.name in written:  # two slots' files with the same rows cannot happen; keep one
             continue
         move_into_place(store, part.temp_path, destination)
         written[part.name] = part.rows
@@ -444,14 +579,24 @@ def write_tables(
     parts: Dict[Tuple[str, str], List[PartFile]] = {}
     owned = set(days or ())
     for table_name, elements in rows.items():
-        pieces: Dict[str, List[pa.Table]] = {}
+        pieces: Dict[Tuple[str, str], List[pa.Table]] = {}
         for element in elements:
             for date, table in to_partitions(table_name, element, config):
-                pieces.setdefault(date, []).append(table)
-        for date, tabs in pieces.items():
+                for slot, piece in split_by_slot(table):
+                    pieces.setdefault((date, slot), []).append(piece)
+        for (date, slot), tabs in sorted(pieces.items()):
             owned.add(date)
             part = write_part(
-                store, output_dir, table_name, config.name, date, pa.concat_tables(tabs), run_id, metadata, unique="0"
+                store,
+                output_dir,
+                table_name,
+                config.name,
+                date,
+                pa.concat_tables(tabs),
+                run_id,
+                metadata,
+                unique="0",
+                slot=slot,
             )
             parts.setdefault((table_name, date), []).append(part)
     results = []

@@ -97,7 +97,10 @@ def test_a_killed_night_leaves_the_previous_output_and_the_rerun_completes(start
     killed = False
     deadline = time.monotonic() + 120
     while process.poll() is None and time.monotonic() < deadline:
-        if any(files for _, _, files in os.walk(temporary)):  # the first part file is being written
+        # the first part file is being written (part files sit under <table>/asset=NAME/date=...;
+        # the launcher's own temporary files before the pipeline, e.g. the footer index summary,
+        # sit in the run folder itself and are moved into place at once)
+        if any(files for folder, _, files in os.walk(temporary) if "asset=" in folder):
             process.send_signal(signal.SIGKILL)
             killed = True
             break

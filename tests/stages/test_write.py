@@ -14,11 +14,14 @@ import corrtransforms
 from corrtransforms import tables
 from corrtransforms.rejects import Reject
 from corrtransforms.stages.write import (
+    FILE_CELLS,
     LocalFiles,
+    cells,
     commit_partition,
     part_file_name,
     provenance_metadata,
     rejects_table,
+    split_by_slot,
     write_part,
     write_tables,
 )
@@ -121,10 +124,13 @@ def test_rerun_with_fewer_shards_leaves_no_stale_files_and_other_days_alone(tmp_
     meta = provenance_metadata(config, "first")
     day_rows = [_correlation_rows([T0 + i * HOUR]) for i in range(3)]
     parts = [
-        write_part(store, root, "correlations", config.name, "2024-03-04", t, "first", meta, str(i))
+        write_part(
+            store, root, "correlations", config.name, "2024-03-04", t, "first", meta, str(i), split_by_slot(t)[0][0]
+        )
         for i, t in enumerate(day_rows)
     ]
-    commit_partition(store, root, "correlations", config.name, "2024-03-04", parts)
+    # max_cells=0: a "large" partition, one file per hour slot (three files for three hours)
+    commit_partition(store, root, "correlations", config.name, "2024-03-04", parts, max_cells=0)
     other = write_part(
         store, root, "correlations", config.name, "2024-03-05", _correlation_rows([T0 + 25 * HOUR]), "first", meta, "x"
     )
@@ -228,3 +234,77 @@ def test_rejects_table_dates_and_actions(tmp_path):
         "2024-03-02": ["empty_file"],
         "2024-03-04": ["clipped_channel", "insufficient_coverage"],
     }
+
+
+def _committed_bytes(root):
+    found = {}
+    for path in _files(root):
+        with open(path, "rb") as handle:
+            found[os.path.relpath(path, root)] = handle.read()
+    return found
+
+
+@pytest.mark.parametrize("max_cells", [FILE_CELLS, 0])  # one file per partition; one per hour slot
+def test_committed_files_do_not_depend_on_how_the_rows_were_split_into_parts(tmp_path, max_cells):
+    # what two workers do: the same rows reach the commit in other part files (other splits,
+    # other order, a slot's rows in several parts); the committed files must be the same bytes
+    config = make_config("/nowhere")
+    starts = [T0 + i * HOUR // 2 for i in range(8)]  # four hour slots, two windows each
+    rows = _correlation_rows(starts)
+    meta = provenance_metadata(config, "same-run")
+    splits = {
+        "one": [list(range(8))],
+        "per_slot": [[0, 1], [2, 3], [4, 5], [6, 7]],
+        "interleaved": [[7, 0, 3], [5], [1, 6, 2, 4]],
+    }
+    outputs = {}
+    for label, groups in splits.items():
+        store, root = LocalFiles(), str(tmp_path / label)
+        parts = []
+        for number, group in enumerate(groups):
+            for slot, piece in split_by_slot(rows.take(group)):
+                parts.append(
+                    write_part(
+                        store,
+                        root,
+                        "correlations",
+                        config.name,
+                        "2024-03-04",
+                        piece,
+                        "same-run",
+                        meta,
+                        str(number),
+                        slot,
+                    )
+                )
+        commit_partition(store, root, "correlations", config.name, "2024-03-04", parts[::-1], max_cells=max_cells)
+        outputs[label] = _committed_bytes(root)
+    assert outputs["one"] == outputs["per_slot"] == outputs["interleaved"]
+    assert len(outputs["one"]) == (1 if max_cells else 4)
+    whole = pa.concat_tables([pq.read_table(os.path.join(tmp_path, "one", n)) for n in sorted(outputs["one"])])
+    assert whole.num_rows == 8
+    assert sorted(whole.column("window_start").cast(pa.int64()).to_pylist()) == starts
+    # the merged file is the file write_part makes of all the rows at once
+    if max_cells:
+        alone = write_part(
+            LocalFiles(),
+            str(tmp_path / "alone"),
+            "correlations",
+            config.name,
+            "2024-03-04",
+            rows,
+            "same-run",
+            meta,
+            "0",
+        )
+        with open(alone.temp_path, "rb") as handle:
+            assert list(outputs["one"].values()) == [handle.read()]
+
+
+def test_slots_and_cells():
+    rows = _correlation_rows([T0, T0 + HOUR // 2, T0 + HOUR], lags=5)
+    slots = split_by_slot(rows)
+    assert [(s, t.num_rows) for s, t in slots] == [(f"{T0 // HOUR:08d}", 2), (f"{T0 // HOUR + 1:08d}", 1)]
+    assert cells(rows) == 3 + 3 * 5 * 2  # rows + the elements of coefficient and stderr
+    finding = Reject("plan", "/x", "*", "empty_file", "0 bytes", "a", date="2024-03-04")
+    assert [s for s, _ in split_by_slot(rejects_table([finding]))] == [""]  # no window: no slot
