@@ -10,7 +10,7 @@ its own although the step is shared.
 
 from __future__ import annotations
 
-from typing import Any, Dict, Iterable, Optional, Tuple
+from typing import Any, Dict, Iterable, Optional, Sequence, Tuple
 
 import apache_beam as beam
 
@@ -34,14 +34,17 @@ class ByAssetFn(beam.DoFn):
     ----------
     dofns : dict
         Asset name -> its DoFn (whose ``finish_bundle`` yields nothing).
-    side_name : str, optional
-        The keyword under which the inner DoFns take a side input. The step's one side input,
-        ``side`` (a dict by asset, e.g. ``beam.pvalue.AsDict``), gives each asset its own value
-        (None when the asset has none).
+    sides : sequence of (str, default)
+        The keywords under which the inner DoFns take their side inputs, with the value for an
+        asset that has none. The step's side inputs, given to the ParDo in the same order, are
+        dicts by asset (e.g. ``beam.pvalue.AsDict``): each asset gets its own value.
+    series_keyed : bool
+        The elements are ``((asset, ...), value)`` pairs (keyed by series) given whole to the
+        inner DoFn, instead of ``(asset, element)`` pairs whose element alone is.
     """
 
-    def __init__(self, dofns: Dict[str, beam.DoFn], side_name: Optional[str] = None):
-        self._dofns, self._side_name = dict(dofns), side_name
+    def __init__(self, dofns: Dict[str, beam.DoFn], sides: Sequence[Tuple[str, Any]] = (), series_keyed: bool = False):
+        self._dofns, self._sides, self._series_keyed = dict(dofns), tuple(sides), series_keyed
 
     def setup(self):
         for asset, dofn in self._dofns.items():
@@ -53,9 +56,12 @@ class ByAssetFn(beam.DoFn):
             with counting_for(asset):
                 dofn.start_bundle()
 
-    def process(self, keyed: Tuple[str, Any], side=None):
-        asset, element = keyed
-        kwargs = {} if self._side_name is None else {self._side_name: (side or {}).get(asset)}
+    def process(self, keyed: Tuple[Any, Any], *sides):
+        if self._series_keyed:
+            asset, element = keyed[0][0], keyed
+        else:
+            asset, element = keyed
+        kwargs = {name: side.get(asset, default) for (name, default), side in zip(self._sides, sides)}
         with counting_for(asset):
             outputs = iter(self._dofns[asset].process(element, **kwargs) or ())
         while True:  # the asset's namespace while its DoFn runs, not while later steps take the output

@@ -24,7 +24,7 @@ from corrtransforms.beam.indicators import ComputeIndicators, _IndicatorsFn
 from corrtransforms.beam.metrics import counting_for
 from corrtransforms.beam.plan import PlanReads, _ChooseFilesFn, _PlanFn, _ReadFooterFn, _write_index
 from corrtransforms.beam.read import ReadWindows, _ReadWindowsFn
-from corrtransforms.beam.shifts import DetectShifts
+from corrtransforms.beam.shifts import DetectFleetShifts, DetectShifts
 from corrtransforms.beam.stored_state import ReadModeReferences, StoredState
 from corrtransforms.beam.write import WriteTables, remove_run_temporary
 from corrtransforms.config import AssetConfig
@@ -181,46 +181,59 @@ class MonitorAsset(beam.PTransform):
             references = pbegin | "Read mode references" >> ReadModeReferences(self._initial_states, config)
         correlated = read["blocks"] | "Screen and correlate windows" >> CorrelateWindows(config, references)
         indicators = correlated["correlations"] | "Compute indicators" >> ComputeIndicators(config)
-        outputs = _asset_tail(
+        indicator_rows, source_rejects = indicators["indicators"], []
+        if config.covariate_sources:
+            joined = correlated["correlations"] | "Join covariate sources" >> JoinCovariateSources(
+                config, self._start, self._end, self._report_edges
+            )
+            indicator_rows = (indicator_rows, joined["indicators"]) | "With source covariates" >> beam.Flatten()
+            source_rejects = [joined["rejects"]]
+        shifts = indicator_rows | "Detect shifts" >> DetectShifts(config, self._initial_states)
+        rejects = (
+            plan["rejects"],
+            read["rejects"],
+            correlated["rejects"],
+            indicators["rejects"],
+            shifts["rejects"],
+            *source_rejects,
+        ) | "All rejects" >> beam.Flatten()
+        commits, tables = _write_asset(
             config,
             self._output,
             self._run_id,
-            self._start,
-            self._end,
-            self._initial_states,
-            self._report_edges,
             self._remove_temporary,
             correlations=correlated["correlations"],
-            indicator_rows=indicators["indicators"],
+            indicator_rows=indicator_rows,
+            shifts=shifts,
+            rejects=rejects,
             days=plan["days"],
-            early_rejects=(plan["rejects"], read["rejects"], correlated["rejects"], indicators["rejects"]),
         )
-        return {**outputs, "tasks": plan["tasks"], "blocks": read["blocks"]}
+        return {
+            "commits": commits,
+            "tasks": plan["tasks"],
+            "blocks": read["blocks"],
+            "correlations": correlated["correlations"],
+            "indicators": indicator_rows,
+            "shifts": shifts["shifts"],
+            "state": shifts["state"],
+            "mode_shapes": tables["mode_shapes"],
+            "rejects": rejects,
+        }
 
 
-def _asset_tail(
+def _write_asset(
     config: AssetConfig,
     output_dir: str,
     run_id: str,
-    start: Optional[_dt.date],
-    end: Optional[_dt.date],
-    initial_states: Any,
-    report_edges: Tuple[bool, bool],
     remove_temporary: bool,
     correlations,
     indicator_rows,
+    shifts: Dict[str, beam.PCollection],
+    rejects,
     days,
-    early_rejects: Sequence[beam.PCollection],
-) -> Dict[str, beam.PCollection]:
-    """One asset's steps after its indicators: covariate sources, shift detection, the table
-    batches and the writes (applied in the caller's scope: :class:`MonitorAsset`'s own, or an
-    asset's :class:`_AssetTail` in a fleet)."""
-    source_rejects = []
-    if config.covariate_sources:
-        joined = correlations | "Join covariate sources" >> JoinCovariateSources(config, start, end, report_edges)
-        indicator_rows = (indicator_rows, joined["indicators"]) | "With source covariates" >> beam.Flatten()
-        source_rejects = [joined["rejects"]]
-    shifts = indicator_rows | "Detect shifts" >> DetectShifts(config, initial_states)
+) -> Tuple[beam.PCollection, Dict[str, beam.PCollection]]:
+    """One asset's table batches and writes (applied in the caller's scope: :class:`MonitorAsset`'s
+    own, or an asset's :class:`_WriteAsset` in a fleet); the commits and the tables."""
     indicator_tables = (
         indicator_rows
         | "Batch indicator rows" >> beam.BatchElements(min_batch_size=1000, max_batch_size=INDICATOR_BATCH)
@@ -231,7 +244,6 @@ def _asset_tail(
         | "Windows with multi-channel modes" >> beam.Filter(lambda wc: bool(wc.multichannel_modes))
         | "Mode shape tables" >> beam.Map(_mode_shape_table)
     )
-    rejects = (*early_rejects, shifts["rejects"], *source_rejects) | "All rejects" >> beam.Flatten()
     tables: Dict[str, beam.PCollection] = {
         "correlations": correlations,
         "indicators": indicator_tables,
@@ -244,15 +256,7 @@ def _asset_tail(
     commits = tables | "Write tables" >> WriteTables(
         output_dir, config, run_id, days=days, remove_temporary=remove_temporary
     )
-    return {
-        "commits": commits,
-        "correlations": correlations,
-        "indicators": indicator_rows,
-        "shifts": shifts["shifts"],
-        "state": shifts["state"],
-        "mode_shapes": mode_shapes,
-        "rejects": rejects,
-    }
+    return commits, tables
 
 
 class FleetMember(NamedTuple):
@@ -274,30 +278,31 @@ def _values(keyed: Tuple[str, Any]) -> Any:
     return keyed[1]
 
 
-class _AssetTail(beam.PTransform):
-    """One asset's part of a fleet after the shared steps: its keyed elements -> :func:`_asset_tail`."""
+def _key_by(value: Any, asset: str) -> Tuple[str, Any]:
+    return asset, value
 
-    def __init__(self, member: FleetMember, output_dir: str, run_id: str):
+
+class _WriteAsset(beam.PTransform):
+    """One asset's part of a fleet after the shared steps: its keyed elements -> :func:`_write_asset`."""
+
+    def __init__(self, config: AssetConfig, output_dir: str, run_id: str):
         super().__init__()
-        self._member, self._output, self._run_id = member, output_dir, run_id
+        self._config, self._output, self._run_id = config, output_dir, run_id
 
     def expand(self, keyed: Dict[str, beam.PCollection]):
-        m = self._member
         mine = {name: pc | f"{name.capitalize()} of the asset" >> beam.Map(_values) for name, pc in keyed.items()}
-        return _asset_tail(
-            m.config,
+        commits, _ = _write_asset(
+            self._config,
             self._output,
             self._run_id,
-            m.start,
-            m.end,
-            m.initial_states,
-            m.report_edges,
             False,
             correlations=mine["correlations"],
             indicator_rows=mine["indicators"],
+            shifts={k: mine[k] for k in ("shifts", "state", "baseline_sample")},
+            rejects=mine["rejects"],
             days=mine["days"],
-            early_rejects=(mine["rejects"],),
         )
+        return commits
 
 
 def _write_fleet_index(keyed, output_dir: str, configs: Dict[str, AssetConfig], run_id: str) -> bool:
@@ -401,8 +406,10 @@ class MonitorFleet(beam.PTransform):
             | "Spread tasks of every asset" >> beam.Reshuffle()
             | "Log progress"
             >> beam.ParDo(
-                ByAssetFn({name: _ProgressFn(name, self._progress_interval_s) for name in names}, side_name="planned"),
-                side=beam.pvalue.AsDict(windows_planned),
+                ByAssetFn(
+                    {name: _ProgressFn(name, self._progress_interval_s) for name in names}, sides=[("planned", 0)]
+                ),
+                beam.pvalue.AsDict(windows_planned),
             )
         )
         read = tasks | "Read windows" >> beam.ParDo(each(lambda m: _ReadWindowsFn(m.config))).with_outputs(
@@ -416,22 +423,52 @@ class MonitorFleet(beam.PTransform):
             if isinstance(m.initial_states, StoredState) and any(mode.is_multichannel for mode in m.config.modes)
         ]
         correlate = each(lambda m: _CorrelateFn(m.config))
-        side = {}
+        side = []
         if references:
-            correlate = ByAssetFn(correlate._dofns, side_name="mode_references")
-            side = {"side": beam.pvalue.AsDict(references | "Mode references" >> beam.Flatten())}
-        correlated = read.blocks | "Screen and correlate windows" >> beam.ParDo(correlate, **side).with_outputs(
+            correlate = ByAssetFn(correlate._dofns, sides=[("mode_references", None)])
+            side = [beam.pvalue.AsDict(references | "Mode references" >> beam.Flatten())]
+        correlated = read.blocks | "Screen and correlate windows" >> beam.ParDo(correlate, *side).with_outputs(
             "rejects", main="correlations"
         )
         indicators = correlated.correlations | "Compute indicators" >> beam.ParDo(
             each(lambda m: _IndicatorsFn(m.config))
         ).with_outputs("rejects", main="indicators")
+        correlations = correlated.correlations | "Split correlations by asset" >> beam.Partition(
+            _ByAssetIndex(names), len(names)
+        )
+        source_rows, source_rejects = [], []
+        for i, (name, m) in enumerate(members.items()):
+            if not m.config.covariate_sources:
+                continue
+            joined = (
+                correlations[i]
+                | f"Correlations of {name}" >> beam.Map(_values)
+                | f"{fleet_step(name)}/Join covariate sources"
+                >> JoinCovariateSources(m.config, m.start, m.end, m.report_edges)
+            )
+            source_rows.append(joined["indicators"] | f"Key source covariates of {name}" >> beam.Map(_key_by, name))
+            source_rejects.append(joined["rejects"] | f"Key source rejects of {name}" >> beam.Map(_key_by, name))
+        indicator_rows = indicators.indicators
+        if source_rows:
+            indicator_rows = (indicator_rows, *source_rows) | "With source covariates" >> beam.Flatten()
+        shifts = indicator_rows | "Detect shifts" >> DetectFleetShifts(
+            {name: (m.config, m.initial_states) for name, m in members.items()}
+        )
         keyed = {
-            "correlations": correlated.correlations,
-            "indicators": indicators.indicators,
+            "indicators": indicator_rows,
+            "shifts": shifts["shifts"],
+            "state": shifts["state"],
+            "baseline_sample": shifts["baseline_sample"],
             "days": planned.days,
-            "rejects": (planned.rejects, read.rejects, correlated.rejects, indicators.rejects)
-            | "Rejects of the shared steps" >> beam.Flatten(),
+            "rejects": (
+                planned.rejects,
+                read.rejects,
+                correlated.rejects,
+                indicators.rejects,
+                shifts["rejects"],
+                *source_rejects,
+            )
+            | "All rejects" >> beam.Flatten(),
         }
         by_asset = {
             name: pc | f"Split {name} by asset" >> beam.Partition(_ByAssetIndex(names), len(names))
@@ -440,8 +477,8 @@ class MonitorFleet(beam.PTransform):
         branches: Dict[str, Any] = {}
         for i, name in enumerate(names):
             mine = {table: parts[i] for table, parts in by_asset.items()}
-            outputs = mine | fleet_step(name) >> _AssetTail(members[name], self._output, self._run_id)
-            branches[name] = outputs["commits"]
+            mine["correlations"] = correlations[i]
+            branches[name] = mine | fleet_step(name) >> _WriteAsset(members[name].config, self._output, self._run_id)
         commits = (
             list(branches.values())
             | "Commits of every asset" >> beam.Flatten()
