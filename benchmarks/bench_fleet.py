@@ -1,11 +1,16 @@
-"""12 small assets as one fleet run against 12 single runs in sequence: wall time and peak RSS.
+"""A fleet run against one single run per asset in sequence: wall time and peak RSS.
 
-    python -m benchmarks.bench_fleet [--assets 12]
+    python -m benchmarks.bench_fleet [--assets 12] [--hours 24] [--workers 0|2] [--rate 5]
+                                     [--skip-singles]
 
-Each asset is the reliability tests' clean archive (10 minutes at 10 Hz, 2 channels, 10 windows
-of 60 s) with its own seed. Each run is its own process (``python -m pipelines.backfill``), so
-the peak RSS is that process's (``resource.getrusage(RUSAGE_CHILDREN)`` after it ends). Prints
-a table; asserts nothing.
+Asset i has 4 + (i mod 5) channels (4 to 8; invented data: an AR(1) channel, a delayed noisy
+copy of it, independent noise channels and a slow temperature covariate, own seed per asset) in
+hourly Parquet files over ``--hours`` (default one day), windows of 600 s at ``--rate`` Hz
+(144 windows per day). ``--workers 2`` adds ``--direct_running_mode multi_processing
+--direct_num_workers 2`` to every run. Each run is its own process (``python -m
+pipelines.backfill``), so the peak RSS is that process's tree (``ru_maxrss`` of the children:
+with workers it is the largest single process, the launcher or a worker). Prints a table;
+asserts nothing.
 """
 
 from __future__ import annotations
@@ -15,9 +20,10 @@ import os
 import shutil
 import subprocess
 import sys
+import textwrap
 import time
 
-from tests.support.reliability_data import clean_columns, write_clean_archive, write_config
+from tests.support.archive_data import samples, wide_table, write_files
 
 WORK = os.path.join(os.path.dirname(os.path.abspath(__file__)), "_work", "fleet")
 
@@ -35,33 +41,73 @@ def _peak_rss_of(args):
     return time.perf_counter() - started, int(out.strip()) / 1024.0
 
 
+def channel_names(i: int):
+    return ["a", "b"] + [f"n{k}" for k in range(2 + i % 5)]
+
+
+def write_asset(work: str, fleet: str, i: int, hours: int, rate: float) -> None:
+    name = f"asset-{i:02d}"
+    names = channel_names(i)
+    columns = samples(hours * 3600, rate, seed=100 + i, channels=names)
+    write_files(os.path.join(work, "archives", name), wide_table(columns), 3600, 6000)
+    text = f"""
+    [asset]
+    name = "{name}"
+    [archive]
+    path = "../archives/{name}"
+    layout = "wide"
+    sample_rate_hz = {rate}
+    [channels]
+    names = {names!r}
+    covariates = ["temperature"]
+    [windows]
+    length_s = 600.0
+    [correlation]
+    max_lag_s = 10.0
+    [baseline]
+    windows = 24
+    min_windows = 12
+    """
+    with open(os.path.join(fleet, f"{name}.toml"), "w") as handle:
+        handle.write(textwrap.dedent(text).replace("'", '"'))
+
+
 def main(argv=None):
     parser = argparse.ArgumentParser()
     parser.add_argument("--assets", type=int, default=12)
-    n = parser.parse_args(argv).assets
+    parser.add_argument("--hours", type=int, default=24)
+    parser.add_argument("--rate", type=float, default=5.0)
+    parser.add_argument("--workers", type=int, default=0, help="0: in-process runner; N: N worker processes")
+    parser.add_argument("--skip-singles", action="store_true", help="only the fleet run")
+    args = parser.parse_args(argv)
+    n = args.assets
     shutil.rmtree(WORK, ignore_errors=True)
     fleet = os.path.join(WORK, "fleet")
     os.makedirs(fleet)
     for i in range(n):
-        name = f"asset-{i:02d}"
-        write_clean_archive(os.path.join(WORK, "archives", name), columns=clean_columns(seed=100 + i))
-        write_config(os.path.join(fleet, f"{name}.toml"), f"../archives/{name}", name=name)
-    singles = []
-    for i in range(n):
-        config = os.path.join(fleet, f"asset-{i:02d}.toml")
-        singles.append(
-            _peak_rss_of(["--config", config, "--output", os.path.join(WORK, "out_single"), "--run_id", "s"])
-        )
-    fleet_wall, fleet_rss = _peak_rss_of(
-        ["--config", fleet, "--output", os.path.join(WORK, "out_fleet"), "--run_id", "f"]
+        write_asset(WORK, fleet, i, args.hours, args.rate)
+    beam_flags = (
+        ["--direct_running_mode", "multi_processing", "--direct_num_workers", str(args.workers)] if args.workers else []
     )
-    single_wall = sum(w for w, _ in singles)
-    single_rss = max(r for _, r in singles)
-    print(f"{n} assets (10 windows each, 10 Hz, 2 channels)")
+    singles = []
+    if not args.skip_singles:
+        for i in range(n):
+            config = os.path.join(fleet, f"asset-{i:02d}.toml")
+            output = os.path.join(WORK, "out_single")
+            singles.append(_peak_rss_of(["--config", config, "--output", output, "--run_id", "s", *beam_flags]))
+    fleet_wall, fleet_rss = _peak_rss_of(
+        ["--config", fleet, "--output", os.path.join(WORK, "out_fleet"), "--run_id", "f", *beam_flags]
+    )
+    runner = f"{args.workers} worker processes" if args.workers else "in-process runner"
+    print(f"{n} assets ({args.hours} h each, {args.rate:g} Hz, 4-8 channels, 600-s windows), {runner}")
     print(f"{'run':<28}{'wall s':>10}{'peak RSS MiB':>15}")
-    print(f"{'12 single runs in sequence':<28}{single_wall:>10.1f}{single_rss:>15.0f}")
+    if singles:
+        single_wall = sum(w for w, _ in singles)
+        single_rss = max(r for _, r in singles)
+        print(f"{f'{n} single runs in sequence':<28}{single_wall:>10.1f}{single_rss:>15.0f}")
     print(f"{'one fleet run':<28}{fleet_wall:>10.1f}{fleet_rss:>15.0f}")
-    print(f"{'ratio fleet / singles':<28}{fleet_wall / single_wall:>10.2f}{fleet_rss / single_rss:>15.2f}")
+    if singles:
+        print(f"{'ratio fleet / singles':<28}{fleet_wall / single_wall:>10.2f}{fleet_rss / single_rss:>15.2f}")
 
 
 if __name__ == "__main__":

@@ -12,8 +12,8 @@ The work is :func:`corrtransforms.stages.indicators.window_indicators_and_failur
 from __future__ import annotations
 
 import apache_beam as beam
-from apache_beam.metrics import Metrics
 
+from corrtransforms.beam.metrics import counter, distribution
 from corrtransforms.config import AssetConfig
 from corrtransforms.records import OK, WindowCorrelation
 from corrtransforms.rejects import WHOLE_WINDOW, Reject, iso_utc
@@ -44,12 +44,12 @@ class _IndicatorsFn(beam.DoFn):
         self._config = config
 
     def setup(self):
-        self._windows = Metrics.counter(NAMESPACE, "indicator_windows")
-        self._rows = Metrics.counter(NAMESPACE, "indicator_rows")
-        self._flagged = Metrics.counter(NAMESPACE, "indicator_rows_flagged")
-        self._nan = Metrics.counter(NAMESPACE, "indicator_rows_nan")
-        self._failed = Metrics.counter(NAMESPACE, "indicator_failures")
-        self._per_window = Metrics.distribution(NAMESPACE, "indicator_rows_per_window")
+        self._windows = counter("indicator_windows")
+        self._rows = counter("indicator_rows")
+        self._flagged = counter("indicator_rows_flagged")
+        self._nan = counter("indicator_rows_nan")
+        self._failed = counter("indicator_failures")
+        self._per_window = distribution("indicator_rows_per_window")
 
     def process(self, wc: WindowCorrelation):
         self._windows.inc()

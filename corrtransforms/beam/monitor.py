@@ -17,12 +17,14 @@ from typing import Any, Dict, NamedTuple, Optional, Sequence, Tuple
 
 import apache_beam as beam
 
-from corrtransforms.beam.correlate import CorrelateWindows
+from corrtransforms.beam.by_asset import ByAssetFn
+from corrtransforms.beam.correlate import CorrelateWindows, _CorrelateFn
 from corrtransforms.beam.covariate_sources import JoinCovariateSources
-from corrtransforms.beam.indicators import ComputeIndicators
-from corrtransforms.beam.plan import PlanReads
-from corrtransforms.beam.read import ReadWindows
-from corrtransforms.beam.shifts import DetectShifts
+from corrtransforms.beam.indicators import ComputeIndicators, _IndicatorsFn
+from corrtransforms.beam.metrics import counting_for
+from corrtransforms.beam.plan import PlanReads, _ChooseFilesFn, _PlanFn, _ReadFooterFn, _write_index
+from corrtransforms.beam.read import ReadWindows, _ReadWindowsFn
+from corrtransforms.beam.shifts import DetectFleetShifts, DetectShifts
 from corrtransforms.beam.stored_state import ReadModeReferences, StoredState
 from corrtransforms.beam.write import WriteTables, remove_run_temporary
 from corrtransforms.config import AssetConfig
@@ -187,16 +189,6 @@ class MonitorAsset(beam.PTransform):
             indicator_rows = (indicator_rows, joined["indicators"]) | "With source covariates" >> beam.Flatten()
             source_rejects = [joined["rejects"]]
         shifts = indicator_rows | "Detect shifts" >> DetectShifts(config, self._initial_states)
-        indicator_tables = (
-            indicator_rows
-            | "Batch indicator rows" >> beam.BatchElements(min_batch_size=1000, max_batch_size=INDICATOR_BATCH)
-            | "Indicator tables" >> beam.Map(_indicator_table)
-        )
-        mode_shapes = (
-            correlated["correlations"]
-            | "Windows with multi-channel modes" >> beam.Filter(lambda wc: bool(wc.multichannel_modes))
-            | "Mode shape tables" >> beam.Map(_mode_shape_table)
-        )
         rejects = (
             plan["rejects"],
             read["rejects"],
@@ -205,17 +197,16 @@ class MonitorAsset(beam.PTransform):
             shifts["rejects"],
             *source_rejects,
         ) | "All rejects" >> beam.Flatten()
-        tables: Dict[str, beam.PCollection] = {
-            "correlations": correlated["correlations"],
-            "indicators": indicator_tables,
-            "shifts": shifts["shifts"],
-            "state": shifts["state"],
-            "baseline_sample": shifts["baseline_sample"],
-            "mode_shapes": mode_shapes,
-            "rejects": rejects,
-        }
-        commits = tables | "Write tables" >> WriteTables(
-            self._output, config, self._run_id, days=plan["days"], remove_temporary=self._remove_temporary
+        commits, tables = _write_asset(
+            config,
+            self._output,
+            self._run_id,
+            self._remove_temporary,
+            correlations=correlated["correlations"],
+            indicator_rows=indicator_rows,
+            shifts=shifts,
+            rejects=rejects,
+            days=plan["days"],
         )
         return {
             "commits": commits,
@@ -225,9 +216,47 @@ class MonitorAsset(beam.PTransform):
             "indicators": indicator_rows,
             "shifts": shifts["shifts"],
             "state": shifts["state"],
-            "mode_shapes": mode_shapes,
+            "mode_shapes": tables["mode_shapes"],
             "rejects": rejects,
         }
+
+
+def _write_asset(
+    config: AssetConfig,
+    output_dir: str,
+    run_id: str,
+    remove_temporary: bool,
+    correlations,
+    indicator_rows,
+    shifts: Dict[str, beam.PCollection],
+    rejects,
+    days,
+) -> Tuple[beam.PCollection, Dict[str, beam.PCollection]]:
+    """One asset's table batches and writes (applied in the caller's scope: :class:`MonitorAsset`'s
+    own, or an asset's :class:`_WriteAsset` in a fleet); the commits and the tables."""
+    indicator_tables = (
+        indicator_rows
+        | "Batch indicator rows" >> beam.BatchElements(min_batch_size=1000, max_batch_size=INDICATOR_BATCH)
+        | "Indicator tables" >> beam.Map(_indicator_table)
+    )
+    mode_shapes = (
+        correlations
+        | "Windows with multi-channel modes" >> beam.Filter(lambda wc: bool(wc.multichannel_modes))
+        | "Mode shape tables" >> beam.Map(_mode_shape_table)
+    )
+    tables: Dict[str, beam.PCollection] = {
+        "correlations": correlations,
+        "indicators": indicator_tables,
+        "shifts": shifts["shifts"],
+        "state": shifts["state"],
+        "baseline_sample": shifts["baseline_sample"],
+        "mode_shapes": mode_shapes,
+        "rejects": rejects,
+    }
+    commits = tables | "Write tables" >> WriteTables(
+        output_dir, config, run_id, days=days, remove_temporary=remove_temporary
+    )
+    return commits, tables
 
 
 class FleetMember(NamedTuple):
@@ -245,11 +274,67 @@ def fleet_step(asset: str) -> str:
     return f"Asset {asset}"
 
 
+def _values(keyed: Tuple[str, Any]) -> Any:
+    return keyed[1]
+
+
+def _key_by(value: Any, asset: str) -> Tuple[str, Any]:
+    return asset, value
+
+
+class _WriteAsset(beam.PTransform):
+    """One asset's part of a fleet after the shared steps: its keyed elements -> :func:`_write_asset`."""
+
+    def __init__(self, config: AssetConfig, output_dir: str, run_id: str):
+        super().__init__()
+        self._config, self._output, self._run_id = config, output_dir, run_id
+
+    def expand(self, keyed: Dict[str, beam.PCollection]):
+        mine = {name: pc | f"{name.capitalize()} of the asset" >> beam.Map(_values) for name, pc in keyed.items()}
+        commits, _ = _write_asset(
+            self._config,
+            self._output,
+            self._run_id,
+            False,
+            correlations=mine["correlations"],
+            indicator_rows=mine["indicators"],
+            shifts={k: mine[k] for k in ("shifts", "state", "baseline_sample")},
+            rejects=mine["rejects"],
+            days=mine["days"],
+        )
+        return commits
+
+
+def _write_fleet_index(keyed, output_dir: str, configs: Dict[str, AssetConfig], run_id: str) -> bool:
+    asset, entries = keyed
+    with counting_for(asset):
+        return _write_index([e for e in entries if e is not None], output_dir, configs[asset], run_id)
+
+
+class _ByAssetIndex:
+    """Partition function: a keyed element -> its asset's position in the fleet."""
+
+    def __init__(self, names: Sequence[str]):
+        self._index = {name: i for i, name in enumerate(names)}
+
+    def __call__(self, keyed, n):
+        return self._index[keyed[0]]
+
+
 class MonitorFleet(beam.PTransform):
-    """Several assets in one pipeline: one :class:`MonitorAsset` branch per asset, labelled
-    ``Asset NAME`` (:func:`fleet_step`), so the job starts once and every row stays with its
-    asset (each branch writes its own ``asset=NAME/`` partitions exactly as a run of that asset
-    alone). The shared temporary folder of the run is removed once every asset is committed.
+    """Several assets in one pipeline, their windows in one shared chain.
+
+    One planning step lists and plans every asset's archive (elements keyed by asset, each
+    asset's files and footers done with its own configuration), the read tasks of every asset
+    go through one Reshuffle, and read, screening, correlation and indicators are one chain for
+    all assets whose per-element work uses that element's asset's configuration
+    (:class:`~corrtransforms.beam.by_asset.ByAssetFn`, configurations held by asset name).
+    The outputs, keyed by asset, are then split by asset: each asset's covariate sources, shift
+    detection (grouped by (asset, subject, indicator), resumed from that asset's state) and
+    writes run under ``Asset NAME`` (:func:`fleet_step`), into its own ``asset=NAME/``
+    partitions exactly as a run of that asset alone. Counters of the shared steps are kept per
+    asset (namespace :func:`~corrtransforms.beam.metrics.asset_namespace`). The shared temporary
+    folder of the run is removed once every asset is committed.
 
     Parameters
     ----------
@@ -274,20 +359,126 @@ class MonitorFleet(beam.PTransform):
         self._progress_interval_s = progress_interval_s
 
     def expand(self, pbegin):
-        branches: Dict[str, Any] = {}
-        for m in self._members:
-            outputs = pbegin | fleet_step(m.config.name) >> MonitorAsset(
-                m.config,
-                self._output,
-                self._run_id,
-                m.start,
-                m.end,
-                m.initial_states,
-                self._progress_interval_s,
-                report_edges=m.report_edges,
-                remove_temporary=False,
+        members = {m.config.name: m for m in self._members}
+        names = list(members)
+        configs = {name: m.config for name, m in members.items()}
+
+        def each(make) -> ByAssetFn:
+            return ByAssetFn({name: make(m) for name, m in members.items()})
+
+        every_asset = pbegin | "Every asset" >> beam.Create([(name, None) for name in names])
+        chosen = (
+            pbegin
+            | "Archive patterns" >> beam.Create([(name, m.config.archive.path) for name, m in members.items()])
+            | "List files and skip days outside the range"
+            >> beam.ParDo(each(lambda m: _ChooseFilesFn(m.config, m.start, m.end, self._output))).with_outputs(
+                "indexed", main="open"
             )
-            branches[m.config.name] = outputs["commits"]
+        )
+        footers = (
+            chosen.open
+            | "Spread files" >> beam.Reshuffle()
+            | "Read footers"
+            >> beam.ParDo(each(lambda m: _ReadFooterFn(m.config))).with_outputs("indexed", main="footers")
+        )
+        _ = (
+            (chosen.indexed, footers.indexed, every_asset)
+            | "Index entries" >> beam.Flatten()
+            | "Index entries by asset" >> beam.GroupByKey()
+            | "Write footer indexes" >> beam.Map(_write_fleet_index, self._output, configs, self._run_id)
+        )
+        planned = (
+            (footers.footers, every_asset)
+            | "Footers" >> beam.Flatten()
+            | "Footers by asset" >> beam.GroupByKey()
+            | "Plan windows and tasks"
+            >> beam.ParDo(each(lambda m: _PlanFn(m.config, m.start, m.end, m.report_edges))).with_outputs(
+                "rejects", "days", main="tasks"
+            )
+        )
+        windows_planned = (
+            planned.tasks
+            | "Windows per task" >> beam.Map(lambda keyed: (keyed[0], len(keyed[1].window_starts_us)))
+            | "Windows planned per asset" >> beam.CombinePerKey(sum)
+        )
+        tasks = (
+            planned.tasks
+            | "Spread tasks of every asset" >> beam.Reshuffle()
+            | "Log progress"
+            >> beam.ParDo(
+                ByAssetFn(
+                    {name: _ProgressFn(name, self._progress_interval_s) for name in names}, sides=[("planned", 0)]
+                ),
+                beam.pvalue.AsDict(windows_planned),
+            )
+        )
+        read = tasks | "Read windows" >> beam.ParDo(each(lambda m: _ReadWindowsFn(m.config))).with_outputs(
+            "rejects", main="blocks"
+        )
+        references = [
+            pbegin
+            | f"Read mode references of {name}" >> ReadModeReferences(m.initial_states, m.config)
+            | f"Key mode references of {name}" >> beam.Map(lambda refs, a=name: (a, refs))
+            for name, m in members.items()
+            if isinstance(m.initial_states, StoredState) and any(mode.is_multichannel for mode in m.config.modes)
+        ]
+        correlate = each(lambda m: _CorrelateFn(m.config))
+        side = []
+        if references:
+            correlate = ByAssetFn(correlate._dofns, sides=[("mode_references", None)])
+            side = [beam.pvalue.AsDict(references | "Mode references" >> beam.Flatten())]
+        correlated = read.blocks | "Screen and correlate windows" >> beam.ParDo(correlate, *side).with_outputs(
+            "rejects", main="correlations"
+        )
+        indicators = correlated.correlations | "Compute indicators" >> beam.ParDo(
+            each(lambda m: _IndicatorsFn(m.config))
+        ).with_outputs("rejects", main="indicators")
+        correlations = correlated.correlations | "Split correlations by asset" >> beam.Partition(
+            _ByAssetIndex(names), len(names)
+        )
+        source_rows, source_rejects = [], []
+        for i, (name, m) in enumerate(members.items()):
+            if not m.config.covariate_sources:
+                continue
+            joined = (
+                correlations[i]
+                | f"Correlations of {name}" >> beam.Map(_values)
+                | f"{fleet_step(name)}/Join covariate sources"
+                >> JoinCovariateSources(m.config, m.start, m.end, m.report_edges)
+            )
+            source_rows.append(joined["indicators"] | f"Key source covariates of {name}" >> beam.Map(_key_by, name))
+            source_rejects.append(joined["rejects"] | f"Key source rejects of {name}" >> beam.Map(_key_by, name))
+        indicator_rows = indicators.indicators
+        if source_rows:
+            indicator_rows = (indicator_rows, *source_rows) | "With source covariates" >> beam.Flatten()
+        shifts = indicator_rows | "Detect shifts" >> DetectFleetShifts(
+            {name: (m.config, m.initial_states) for name, m in members.items()}
+        )
+        keyed = {
+            "indicators": indicator_rows,
+            "shifts": shifts["shifts"],
+            "state": shifts["state"],
+            "baseline_sample": shifts["baseline_sample"],
+            "days": planned.days,
+            "rejects": (
+                planned.rejects,
+                read.rejects,
+                correlated.rejects,
+                indicators.rejects,
+                shifts["rejects"],
+                *source_rejects,
+            )
+            | "All rejects" >> beam.Flatten(),
+        }
+        by_asset = {
+            name: pc | f"Split {name} by asset" >> beam.Partition(_ByAssetIndex(names), len(names))
+            for name, pc in keyed.items()
+        }
+        branches: Dict[str, Any] = {}
+        for i, name in enumerate(names):
+            mine = {table: parts[i] for table, parts in by_asset.items()}
+            mine["correlations"] = correlations[i]
+            branches[name] = mine | fleet_step(name) >> _WriteAsset(members[name].config, self._output, self._run_id)
         commits = (
             list(branches.values())
             | "Commits of every asset" >> beam.Flatten()

@@ -14,7 +14,7 @@ ready for :class:`corrtransforms.beam.write.WriteTables` (tables ``shifts``, ``s
 
 from __future__ import annotations
 
-from typing import Any, Iterable, Optional, Union
+from typing import Any, Dict, Iterable, Optional, Tuple, Union
 
 import apache_beam as beam
 import pyarrow as pa
@@ -229,6 +229,134 @@ class DetectShifts(beam.PTransform):
             _DetectSeriesFn(config, self._order),
             covariates=beam.pvalue.AsDict(means),
             series=beam.pvalue.AsSingleton(series),
+        ).with_outputs("state", "baseline_sample", "rejects", main="shifts")
+        rejects = [covariates.rejects, detected.rejects] + [o.rejects for o in smoother_outputs]
+        state = [detected.state] + [o.state for o in smoother_outputs]
+        return {
+            "shifts": detected.shifts,
+            "state": tuple(state) | "Collect states" >> beam.Flatten(),
+            "baseline_sample": detected.baseline_sample,
+            "rejects": tuple(rejects) | "Collect shift rejects" >> beam.Flatten(),
+        }
+
+
+def _by_series(keyed):
+    asset, row = keyed
+    return (asset, row.subject, row.indicator), row
+
+
+def _keyed_rows(pipeline, asset: str, initial_states):
+    """One asset's resumed states and baseline sample as ``((asset, subject, indicator), row)``."""
+    if isinstance(initial_states, StoredState):
+        states = pipeline | f"Read resumed states of {asset}" >> ReadLatestStates(initial_states)
+        sample = pipeline | f"Read baseline sample of {asset}" >> ReadBaselineSample(initial_states, states)
+    else:
+        states = pipeline | f"Initial states of {asset}" >> beam.Create(_state_rows(initial_states))
+        sample = pipeline | f"Initial baseline sample of {asset}" >> beam.Create([])
+
+    def key(row):
+        return (asset, row["subject"], row["indicator"]), row
+
+    return (
+        states | f"Key states of {asset}" >> beam.Map(key),
+        sample | f"Key sample of {asset}" >> beam.Map(key),
+    )
+
+
+class DetectFleetShifts(beam.PTransform):
+    """:class:`DetectShifts` of several assets in one set of steps: ``(asset, IndicatorRow)``
+    elements -> ``(asset, table or Reject)`` elements, every step's work done with that asset's
+    configuration (:class:`~corrtransforms.beam.by_asset.ByAssetFn`).
+
+    Rows are grouped by (asset, subject, indicator) with each asset's resumed states and baseline
+    sample (read per asset: each from its own output partitions); covariate means are grouped
+    by (asset, window) and given to the detectors as one dict per asset; the false-alarm budget
+    is divided over each asset's own series. Per asset the outputs equal :class:`DetectShifts`'s.
+
+    Parameters
+    ----------
+    members : dict
+        Asset name -> (AssetConfig, initial_states as :class:`DetectShifts` takes them).
+    """
+
+    def __init__(self, members: Dict[str, Tuple[AssetConfig, Any]]):
+        super().__init__()
+        self._members = dict(members)
+
+    def expand(self, indicator_rows):
+        from corrtransforms.beam.by_asset import ByAssetFn
+
+        configs = {name: config for name, (config, _) in self._members.items()}
+        pipeline = indicator_rows.pipeline
+        split = indicator_rows | "Split monitored and covariate rows" >> beam.ParDo(
+            ByAssetFn({name: _SplitRowsFn(c) for name, c in configs.items()})
+        ).with_outputs("covariates", main="monitored")
+        covariates = (
+            split.covariates
+            | "Key covariates by window" >> beam.Map(lambda kv: ((kv[0], int(kv[1].window_start_us)), kv[1]))
+            | "Group covariates by window" >> beam.GroupByKey()
+            | "Key window groups by asset" >> beam.Map(lambda kv: (kv[0][0], (kv[0][1], kv[1])))
+            | "Covariate means per window"
+            >> beam.ParDo(ByAssetFn({name: _CovariateMeansFn(name) for name in configs})).with_outputs(
+                "rejects", main="means"
+            )
+        )
+        keyed_states, keyed_samples = [], []
+        for name, (_, initial) in self._members.items():
+            states, sample = _keyed_rows(pipeline, name, initial)
+            keyed_states.append(states)
+            keyed_samples.append(sample)
+        states = keyed_states | "States of every asset" >> beam.Flatten()
+        samples = keyed_samples | "Baseline samples of every asset" >> beam.Flatten()
+
+        means, smoother_outputs = covariates.means, []
+        smoothing = {name for name, c in configs.items() if c.covariate_smoothing_h()}
+        if smoothing:
+            resume_rows = (
+                states
+                | "States of smoothed assets" >> beam.Filter(lambda kv: kv[0][0] in smoothing)
+                | "Key states by asset" >> beam.Map(lambda kv: (kv[0][0], kv[1]))
+                | "States by asset" >> beam.GroupByKey()
+                | "State lists" >> beam.MapTuple(lambda asset, rows: (asset, list(rows)))
+            )
+            smoothed = (
+                covariates.means
+                | "Means of smoothed assets" >> beam.Filter(lambda kv: kv[0] in smoothing)
+                | "Covariate means by asset" >> beam.GroupByKey()
+                | "Smooth covariates in time order"
+                >> beam.ParDo(
+                    ByAssetFn(
+                        {name: _SmoothCovariatesFn(configs[name]) for name in smoothing}, sides=[("resume_rows", [])]
+                    ),
+                    beam.pvalue.AsDict(resume_rows),
+                ).with_outputs("state", "rejects", main="means")
+            )
+            unsmoothed = covariates.means | "Means of other assets" >> beam.Filter(lambda kv: kv[0] not in smoothing)
+            means = (smoothed.means, unsmoothed) | "Covariate means" >> beam.Flatten()
+            smoother_outputs = [smoothed]
+        means_by_asset = (
+            means
+            | "Covariate means of each asset" >> beam.GroupByKey()
+            | "Covariate dicts" >> beam.MapTuple(lambda asset, pairs: (asset, dict(pairs)))
+        )
+        grouped = {
+            "rows": split.monitored | "Key by series" >> beam.Map(_by_series),
+            "states": states,
+            "sample": samples,
+        } | "Group by series" >> beam.CoGroupByKey()
+        series = (
+            grouped
+            | "Asset of each series" >> beam.Map(lambda kv: kv[0][0])
+            | "Series of each asset" >> beam.combiners.Count.PerElement()
+        )
+        detected = grouped | "Detect shifts" >> beam.ParDo(
+            ByAssetFn(
+                {name: _DetectSeriesFn(c, None) for name, c in configs.items()},
+                sides=[("covariates", {}), ("series", 0)],
+                series_keyed=True,
+            ),
+            beam.pvalue.AsDict(means_by_asset),
+            beam.pvalue.AsDict(series),
         ).with_outputs("state", "baseline_sample", "rejects", main="shifts")
         rejects = [covariates.rejects, detected.rejects] + [o.rejects for o in smoother_outputs]
         state = [detected.state] + [o.state for o in smoother_outputs]

@@ -206,14 +206,16 @@ def load_fleet(specs: Sequence[str], start: Optional[_dt.date], end: Optional[_d
 
 
 def run_members(options, members: Sequence[FleetMember], output: str, run_id: str) -> Dict[str, Dict[str, int]]:
-    """One pipeline for ``members``; each asset's counters (read from its own steps)."""
+    """One pipeline for ``members``; each asset's counters (its own steps' and its share of the
+    shared steps')."""
     p = beam.Pipeline(options=options)
     _ = p | FLEET_STEP >> MonitorFleet(members, output, run_id)
     result = p.run()
     result.wait_until_finish()
     metrics = result.metrics()
     return {
-        m.config.name: window_accounting(metrics, step=f"{FLEET_STEP}/{fleet_step(m.config.name)}") for m in members
+        name: window_accounting(metrics, step=f"{FLEET_STEP}/{fleet_step(name)}", asset=name)
+        for name in (m.config.name for m in members)
     }
 
 

@@ -24,6 +24,7 @@ from corrtransforms.timeutil import local_to_utc_us
 from demo_data import generate
 from pipelines import backfill, nightly
 from tests.support.demo_fixtures import DEMO_CONFIG
+from tests.support.fleet_data import assert_same_asset
 from tests.support.output_tables import assert_same_tables, read_table
 
 DAYS = 4
@@ -177,3 +178,26 @@ def test_a_source_path_without_files_stops_before_the_pipeline(site, tmp_path):
         backfill.main(["--config", str(config), "--output", str(tmp_path / "out")])
     assert "[[covariate_sources]] #1 path" in str(stop.value) and "no files match" in str(stop.value)
     assert not (tmp_path / "out" / "indicators").exists()
+
+
+def test_a_fleet_with_a_source_and_smoothing_writes_what_the_single_run_writes(site):
+    """In a fleet the source is joined for its asset alone and the smoothing and shift detection
+    run in the shared steps (keyed by asset): its tables equal the single run's. The second asset
+    (the same archive under another name, its own temperature channel, no source) runs beside it."""
+    root, config, full, _ = site
+    other = root / "footbridge_b.toml"
+    text = _config_text().replace(SOURCE, "")
+    for old, new in [
+        ('name = "footbridge"', 'name = "footbridge_b"'),
+        ('compensate = ["air_temp"]', "compensate = []"),
+    ]:
+        assert old in text, old
+        text = text.replace(old, new)
+    other.write_text(text, encoding="utf-8")
+    fleet_output = str(root / "fleet")
+    found = backfill.main(["--config", config, "--config", str(other), "--output", fleet_output])
+    assert found["footbridge"]["windows_computed"] == found["footbridge_b"]["windows_computed"] > 0
+    assert_same_asset(fleet_output, full, "footbridge")
+    state = _rows(fleet_output, "state")
+    assert any(s["asset"] == "footbridge" and s["indicator"] == "covariate_smoother" for s in state)
+    assert not any(s["asset"] == "footbridge_b" and s["subject"] == "air_temp" for s in state)

@@ -140,6 +140,55 @@ def test_a_killed_fleet_backfill_run_again_continues_and_writes_the_same_files(s
     assert files_by_path(output) == files_by_path(full)
 
 
+def test_a_fleet_backfill_killed_between_two_assets_progress_records_continues_to_the_same_files(site):
+    """Killed after north's record of day two and before south's: each asset continues after its own day.
+
+    South's record is written as a temporary file then renamed (launch.backfill.write_progress);
+    once its record of day one is in place, that temporary name is made a named pipe, so the
+    run's next write of it blocks on opening it, after north's record of the same chunk is
+    renamed into place. The run is killed there (SIGKILL), the pipe removed (a kill just before
+    the write leaves no file) and the same command run again.
+    """
+    root, fleet, full = site
+    output = str(root / "killed_between")
+    command = [sys.executable, "-m", "pipelines.backfill", "--config", fleet, "--output", output]
+    south_temporary = os.path.join(output, "_summaries", "asset=south", "backfill.json.tmp")
+    process = subprocess.Popen(
+        command + ["--run_id", "full"], cwd=REPO, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL
+    )
+    try:
+        deadline = time.monotonic() + 300  # a guard against a hang only: the machine's CPUs are shared
+        while time.monotonic() < deadline and process.poll() is None:
+            south = _progress(output, "south")
+            if south and south["committed_through"] == DAYS[0]:
+                os.mkfifo(south_temporary)
+                break
+            time.sleep(0.02)
+        north = _progress(output, "north")
+        assert north and north["committed_through"] == DAYS[0], "the pipe came after north's next record"
+        while time.monotonic() < deadline and process.poll() is None:
+            north = _progress(output, "north")
+            if north and north["committed_through"] == DAYS[1]:
+                break
+            time.sleep(0.02)
+        time.sleep(0.5)  # the launcher is now blocked opening south's temporary record
+        assert process.poll() is None, "the backfill ended before it could be killed"
+    finally:
+        process.send_signal(signal.SIGKILL)
+        process.wait()
+    assert _progress(output, "north")["committed_through"] == DAYS[1]
+    assert _progress(output, "south")["committed_through"] == DAYS[0]
+    os.remove(south_temporary)
+    again = subprocess.run(command, cwd=REPO, capture_output=True, text=True, timeout=600)
+    assert again.returncode == 0, again.stdout[-3000:] + again.stderr[-3000:]
+    assert f"backfill north: continuing after {DAYS[1]} (run full)" in again.stdout
+    assert f"backfill south: continuing after {DAYS[0]} (run full)" in again.stdout
+    assert f"chunk 2/3: {DAYS[1]}, 1 assets" in again.stdout  # south's second day alone, then both
+    for asset in ASSETS:
+        assert _progress(output, asset) is None
+    assert files_by_path(output) == files_by_path(full)
+
+
 def test_the_budget_gives_the_limits_of_the_fitted_states(site):
     _, _, full = site
     states = _rows(full, "state", "south")
