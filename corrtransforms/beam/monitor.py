@@ -187,8 +187,11 @@ class MonitorAsset(beam.PTransform):
             indicator_rows = (indicator_rows, joined["indicators"]) | "With source covariates" >> beam.Flatten()
             source_rejects = [joined["rejects"]]
         shifts = indicator_rows | "Detect shifts" >> DetectShifts(config, self._initial_states)
+        table_rows = indicator_rows
+        if config.shifts.multivariate:  # the novelty rows join the indicators table
+            table_rows = (indicator_rows, shifts["indicators"]) | "With novelty rows" >> beam.Flatten()
         indicator_tables = (
-            indicator_rows
+            table_rows
             | "Batch indicator rows" >> beam.BatchElements(min_batch_size=1000, max_batch_size=INDICATOR_BATCH)
             | "Indicator tables" >> beam.Map(_indicator_table)
         )
