@@ -107,7 +107,7 @@ def residuals_of_shift_rows(rows: Iterable[Mapping[str, Any]]) -> List[SeriesRes
     out = []
     for r in rows:
         t = r["window_start"]
-        t = int(t) if isinstance(t, (int, np.integer)) else int(datetime_to_us(t))
+        t = int(t) if isinstance(t, (int, np.integer)) else int(datetime_to_us(t) or 0)
         z = r.get("z")
         out.append(
             SeriesResidual(
