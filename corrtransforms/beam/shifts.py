@@ -134,6 +134,40 @@ def _residuals(table: pa.Table) -> list:
     return novelty.residuals_of_shift_rows(columns.to_pylist())
 
 
+def _detect_novelty(config: AssetConfig, series_shifts, states, sample, series):
+    """The novelty rows of the asset from its series' SHIFTS tables, and their two charts
+    (:mod:`corrtransforms.stages.novelty`): ``(found, charted)`` tagged outputs."""
+    asset = config.name
+
+    def key(row):
+        return (asset, row["subject"], row["indicator"])
+
+    found = (
+        series_shifts
+        | "Residuals of the series" >> beam.FlatMap(_residuals)
+        | "All residuals of the run" >> beam.combiners.ToList()
+        | "Novelty of the asset"
+        >> beam.ParDo(_NoveltyFn(config), beam.pvalue.AsList(states)).with_outputs(
+            "indicators", "state", "rejects", main="charted"
+        )
+    )
+    charts = {
+        "rows": found.charted | "Key novelty rows" >> beam.Map(lambda r: ((asset, r.subject, r.indicator), r)),
+        "states": states
+        | "Novelty chart states" >> beam.Filter(lambda s: s["indicator"] in novelty.NOVELTY_INDICATORS)
+        | "Key novelty states" >> beam.Map(lambda s: (key(s), s)),
+        "sample": sample
+        | "Novelty chart sample" >> beam.Filter(lambda s: s["indicator"] in novelty.NOVELTY_INDICATORS)
+        | "Key novelty sample" >> beam.Map(lambda s: (key(s), s)),
+    } | "Group novelty charts" >> beam.CoGroupByKey()
+    charted = charts | "Detect novelty shifts" >> beam.ParDo(
+        _DetectSeriesFn(novelty.chart_config(config), None),
+        covariates={},
+        series=beam.pvalue.AsSingleton(series),
+    ).with_outputs("state", "baseline_sample", "rejects", main="shifts")
+    return found, charted
+
+
 def _state_rows(initial_states) -> list:
     if initial_states is None:
         return []
@@ -271,29 +305,7 @@ class DetectShifts(beam.PTransform):
         state = [detected.state] + [o.state for o in smoother_outputs]
         shifts, samples, indicators = [detected.shifts], [detected.baseline_sample], []
         if multivariate:
-            found = (
-                detected.shifts
-                | "Residuals of the series" >> beam.FlatMap(_residuals)
-                | "All residuals of the run" >> beam.combiners.ToList()
-                | "Novelty of the asset"
-                >> beam.ParDo(_NoveltyFn(config), beam.pvalue.AsList(states)).with_outputs(
-                    "indicators", "state", "rejects", main="charted"
-                )
-            )
-            charts = {
-                "rows": found.charted | "Key novelty rows" >> beam.Map(lambda r: ((asset, r.subject, r.indicator), r)),
-                "states": states
-                | "Novelty chart states" >> beam.Filter(lambda s: s["indicator"] in novelty.NOVELTY_INDICATORS)
-                | "Key novelty states" >> beam.Map(lambda s: (key(s), s)),
-                "sample": sample
-                | "Novelty chart sample" >> beam.Filter(lambda s: s["indicator"] in novelty.NOVELTY_INDICATORS)
-                | "Key novelty sample" >> beam.Map(lambda s: (key(s), s)),
-            } | "Group novelty charts" >> beam.CoGroupByKey()
-            charted = charts | "Detect novelty shifts" >> beam.ParDo(
-                _DetectSeriesFn(novelty.chart_config(config), None),
-                covariates={},
-                series=beam.pvalue.AsSingleton(series),
-            ).with_outputs("state", "baseline_sample", "rejects", main="shifts")
+            found, charted = _detect_novelty(config, detected.shifts, states, sample, series)
             shifts.append(charted.shifts)
             samples.append(charted.baseline_sample)
             state += [found.state, charted.state]
