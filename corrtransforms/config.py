@@ -188,6 +188,12 @@ class ShiftsConfig:
     explicit_limits: Tuple[str, ...] = ()
     #: covariate model: "linear", "quadratic" or "hinge" (a knee in the first compensated covariate)
     model: str = "linear"
+    #: a novelty model across the asset's monitored series (Hotelling T^2 and SPE of their
+    #: standardised residuals, corrtransforms.stages.novelty), charted as indicators of subject = the asset
+    multivariate: bool = False
+    #: windows with every series' residual usable that the novelty model is fitted on; the
+    #: charts of the two novelty indicators take as many windows as their own baseline
+    multivariate_windows: int = 100
 
 
 @dataclasses.dataclass(frozen=True)
@@ -324,6 +330,8 @@ _KNOWN = {
         "indicators",
         "false_alarms_per_year",
         "model",
+        "multivariate",
+        "multivariate_windows",
     },
     "reading": {"task_bytes", "grid_tolerance", "clip_fraction"},
     "covariate_sources": {
@@ -845,7 +853,17 @@ def _parse_shifts(
         ),
         explicit_limits=tuple(key for key in ("cusum_h", "ewma_L") if key in sh),
         model=_choice("[shifts] model", sh.get("model", "linear"), tuple(COVARIATE_MODELS)),
+        multivariate=_flag("[shifts] multivariate", sh.get("multivariate", False)),
+        multivariate_windows=_number(
+            "[shifts] multivariate_windows", sh.get("multivariate_windows", 100), low=30, high=100000, integer=True
+        ),
     )
+
+
+def _flag(key: str, value: Any) -> bool:
+    if not isinstance(value, bool):
+        raise ConfigError(key, value, "must be true or false")
+    return value
 
 
 def _parse_compensate(comp: Any, covariates: Tuple[str, ...]) -> Optional[Tuple[str, ...]]:

@@ -87,6 +87,10 @@ REASONS = {
         "windows (a lost partition); nightly --rebuild_state or a backfill restores it",
     ),
     "shift_detection_failed": ("rejected", "shift detection raised an error for the series; detail holds it"),
+    "novelty_fit_failed": (
+        "flagged",
+        "the multivariate novelty model could not be fitted on its sample (detail holds why); the sample restarts",
+    ),
 }
 
 

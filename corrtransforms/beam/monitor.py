@@ -189,6 +189,9 @@ class MonitorAsset(beam.PTransform):
             indicator_rows = (indicator_rows, joined["indicators"]) | "With source covariates" >> beam.Flatten()
             source_rejects = [joined["rejects"]]
         shifts = indicator_rows | "Detect shifts" >> DetectShifts(config, self._initial_states)
+        table_rows = indicator_rows
+        if config.shifts.multivariate:  # the novelty rows join the indicators table
+            table_rows = (indicator_rows, shifts["indicators"]) | "With novelty rows" >> beam.Flatten()
         rejects = (
             plan["rejects"],
             read["rejects"],
@@ -203,7 +206,7 @@ class MonitorAsset(beam.PTransform):
             self._run_id,
             self._remove_temporary,
             correlations=correlated["correlations"],
-            indicator_rows=indicator_rows,
+            indicator_rows=table_rows,
             shifts=shifts,
             rejects=rejects,
             days=plan["days"],

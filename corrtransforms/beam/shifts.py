@@ -23,6 +23,7 @@ from corrtransforms.beam.metrics import counter as _counter
 from corrtransforms.beam.stored_state import ReadBaselineSample, ReadLatestStates, StoredState
 from corrtransforms.config import AssetConfig
 from corrtransforms.records import IndicatorRow
+from corrtransforms.stages import novelty
 from corrtransforms.stages import shifts as shift_series
 from corrtransforms.stages.covariate_smoothing import SMOOTHER_INDICATOR, smooth_covariate_means
 from corrtransforms.stages.state import ShiftState, states_table
@@ -107,6 +108,64 @@ class _DetectSeriesFn(beam.DoFn):
             yield beam.pvalue.TaggedOutput("baseline_sample", outcome.baseline_sample)
         if outcome.shifts.num_rows:
             yield outcome.shifts
+
+
+class _NoveltyFn(beam.DoFn):
+    """All the run's residuals of the asset (one list) -> charted novelty rows (main), every
+    novelty indicator row ("indicators"), the model's day states ("state") and findings."""
+
+    def __init__(self, config: AssetConfig):
+        self._config = config
+
+    def process(self, residuals, resume_rows):
+        mine = [r for r in resume_rows if r["indicator"] == novelty.NOVELTY_MODEL]
+        outcome = novelty.novelty_for_run(residuals, self._config, mine)
+        for reject in outcome.rejects:
+            yield beam.pvalue.TaggedOutput("rejects", reject)
+        if outcome.states:
+            yield beam.pvalue.TaggedOutput("state", novelty.novelty_states_table(outcome.states))
+        for row in outcome.rows:
+            yield beam.pvalue.TaggedOutput("indicators", row)
+        yield from outcome.charted
+
+
+def _residuals(table: pa.Table) -> list:
+    columns = table.select(["window_start", "subject", "indicator", "z", "state", "quality"])
+    return novelty.residuals_of_shift_rows(columns.to_pylist())
+
+
+def _detect_novelty(config: AssetConfig, series_shifts, states, sample, series):
+    """The novelty rows of the asset from its series' SHIFTS tables, and their two charts
+    (:mod:`corrtransforms.stages.novelty`): ``(found, charted)`` tagged outputs."""
+    asset = config.name
+
+    def key(row):
+        return (asset, row["subject"], row["indicator"])
+
+    found = (
+        series_shifts
+        | "Residuals of the series" >> beam.FlatMap(_residuals)
+        | "All residuals of the run" >> beam.combiners.ToList()
+        | "Novelty of the asset"
+        >> beam.ParDo(_NoveltyFn(config), beam.pvalue.AsList(states)).with_outputs(
+            "indicators", "state", "rejects", main="charted"
+        )
+    )
+    charts = {
+        "rows": found.charted | "Key novelty rows" >> beam.Map(lambda r: ((asset, r.subject, r.indicator), r)),
+        "states": states
+        | "Novelty chart states" >> beam.Filter(lambda s: s["indicator"] in novelty.NOVELTY_INDICATORS)
+        | "Key novelty states" >> beam.Map(lambda s: (key(s), s)),
+        "sample": sample
+        | "Novelty chart sample" >> beam.Filter(lambda s: s["indicator"] in novelty.NOVELTY_INDICATORS)
+        | "Key novelty sample" >> beam.Map(lambda s: (key(s), s)),
+    } | "Group novelty charts" >> beam.CoGroupByKey()
+    charted = charts | "Detect novelty shifts" >> beam.ParDo(
+        _DetectSeriesFn(novelty.chart_config(config), None),
+        covariates={},
+        series=beam.pvalue.AsSingleton(series),
+    ).with_outputs("state", "baseline_sample", "rejects", main="shifts")
+    return found, charted
 
 
 def _state_rows(initial_states) -> list:
@@ -218,13 +277,25 @@ class DetectShifts(beam.PTransform):
         def key(row):
             return (asset, row["subject"], row["indicator"])
 
+        multivariate = config.shifts.multivariate
+        if multivariate:  # the novelty step's own states and sample rows do not enter the series' grouping
+            series_states = states | "States of the series" >> beam.Filter(
+                lambda s: not novelty.is_novelty_key(s["indicator"])
+            )
+            series_sample = sample | "Sample of the series" >> beam.Filter(
+                lambda s: not novelty.is_novelty_key(s["indicator"])
+            )
+        else:
+            series_states, series_sample = states, sample
         grouped = {
             "rows": split.monitored | "Key by series" >> beam.Map(lambda r: ((asset, r.subject, r.indicator), r)),
-            "states": states | "Key states by series" >> beam.Map(lambda s: (key(s), s)),
-            "sample": sample | "Key sample by series" >> beam.Map(lambda s: (key(s), s)),
+            "states": series_states | "Key states by series" >> beam.Map(lambda s: (key(s), s)),
+            "sample": series_sample | "Key sample by series" >> beam.Map(lambda s: (key(s), s)),
         } | "Group by series" >> beam.CoGroupByKey()
         # the asset's monitored series (with windows or a state): [shifts] false_alarms_per_year is divided over them
         series = grouped | "Series of the asset" >> beam.combiners.Count.Globally()
+        if multivariate:  # and the two novelty charts
+            series = series | "With the novelty charts" >> beam.Map(lambda n: n + len(novelty.NOVELTY_INDICATORS))
         detected = grouped | "Detect shifts" >> beam.ParDo(
             _DetectSeriesFn(config, self._order),
             covariates=beam.pvalue.AsDict(means),
@@ -232,11 +303,23 @@ class DetectShifts(beam.PTransform):
         ).with_outputs("state", "baseline_sample", "rejects", main="shifts")
         rejects = [covariates.rejects, detected.rejects] + [o.rejects for o in smoother_outputs]
         state = [detected.state] + [o.state for o in smoother_outputs]
+        shifts, samples, indicators = [detected.shifts], [detected.baseline_sample], []
+        if multivariate:
+            found, charted = _detect_novelty(config, detected.shifts, states, sample, series)
+            shifts.append(charted.shifts)
+            samples.append(charted.baseline_sample)
+            state += [found.state, charted.state]
+            rejects += [found.rejects, charted.rejects]
+            indicators.append(found.indicators)
         return {
-            "shifts": detected.shifts,
+            "shifts": tuple(shifts) | "Collect shifts" >> beam.Flatten(),
             "state": tuple(state) | "Collect states" >> beam.Flatten(),
-            "baseline_sample": detected.baseline_sample,
+            "baseline_sample": tuple(samples) | "Collect baseline samples" >> beam.Flatten(),
             "rejects": tuple(rejects) | "Collect shift rejects" >> beam.Flatten(),
+            # the novelty indicator rows (empty without [shifts] multivariate), for the indicators table
+            "indicators": tuple(indicators) | "Collect novelty rows" >> beam.Flatten()
+            if indicators
+            else pipeline | "No novelty rows" >> beam.Create([]),
         }
 
 
