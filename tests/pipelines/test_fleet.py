@@ -82,6 +82,8 @@ def test_broken_assets_are_reported_and_the_others_written(sites, fleet_run):
     (broken / "north.toml").write_text(asset_text("north", "../archives/north"))
     (broken / "badkey.toml").write_text(asset_text("badkey", "../archives/south", "[windows]\nmin_coverage = 1.5\n"))
     (broken / "nofiles.toml").write_text(asset_text("nofiles", "../archives/nowhere"))
+    # the fleet's shared shift detection has no novelty step: such an asset is refused, not run without it
+    (broken / "novel.toml").write_text(asset_text("novel", "../archives/south", "[shifts]\nmultivariate = true\n"))
     output = str(sites / "out_broken")
     with pytest.raises(SystemExit) as stop:
         backfill.main(["--config", str(broken), "--output", output, "--run_id", "broken"])
@@ -98,6 +100,8 @@ def test_broken_assets_are_reported_and_the_others_written(sites, fleet_run):
     assert outcomes["badkey"]["status"] == 1 and "[windows] min_coverage" in outcomes["badkey"]["reason"]
     assert outcomes["badkey"]["source"].endswith("badkey.toml")
     assert outcomes["nofiles"]["status"] == 1 and "no files match" in outcomes["nofiles"]["reason"]
+    assert outcomes["novel"]["status"] == 1 and "multivariate" in outcomes["novel"]["reason"]
+    assert not os.path.exists(os.path.join(output, "indicators", "asset=novel"))
 
 
 def test_defaults_merge_tables_recursively_and_replace_arrays():
