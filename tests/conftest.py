@@ -13,6 +13,11 @@ import shutil
 
 import pytest
 
+# the suite starts hundreds of small pipelines: one process each (the default local run's worker
+# processes cost a start-up per pipeline); tests of the multi-process run pass their flags, and
+# tests/pipelines/test_determinism.py checks the default itself with this variable removed
+os.environ.setdefault("CORRTRANSFORMS_LOCAL_WORKERS", "1")
+
 REPO = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 DEMO_DIR = os.path.join(REPO, "demo_data")
 

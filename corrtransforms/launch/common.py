@@ -450,12 +450,33 @@ def usable_cores() -> int:
         return os.cpu_count() or 1
 
 
+#: environment variable: the default local run's number of worker processes (1 = one process),
+#: for a machine or a test suite that starts many small runs; command-line flags still win
+LOCAL_WORKERS_ENV = "CORRTRANSFORMS_LOCAL_WORKERS"
+
+
+def default_local_workers() -> int:
+    """Worker processes of the default local run: ``CORRTRANSFORMS_LOCAL_WORKERS`` when set (a
+    positive integer, else SystemExit), otherwise :func:`usable_cores`."""
+    value = os.environ.get(LOCAL_WORKERS_ENV, "").strip()
+    if not value:
+        return usable_cores()
+    try:
+        workers = int(value)
+    except ValueError:
+        workers = 0
+    if workers < 1:
+        raise SystemExit(f"{LOCAL_WORKERS_ENV}={value!r}: must be a positive integer (1 = one process)")
+    return workers
+
+
 def use_every_core(options: PipelineOptions, argv: List[str]) -> None:
     """The default local run uses every core: Beam's multi-process local mode with one worker
     process per usable core, unless the command line names ``--direct_num_workers`` or
     ``--direct_running_mode`` or a runner other than the local one, or one core is all there is.
 
-    ``--direct_num_workers=1`` is the way back to one process. The worker processes are local
+    ``--direct_num_workers=1`` (or ``CORRTRANSFORMS_LOCAL_WORKERS=1`` in the environment) is the
+    way back to one process. The worker processes are local
     Python subprocesses of the same interpreter (no runner or container is downloaded); the
     files written do not depend on the number of workers (:mod:`corrtransforms.beam.write`), and
     the counters the launchers read are gathered from every worker by the runner.
@@ -464,7 +485,7 @@ def use_every_core(options: PipelineOptions, argv: List[str]) -> None:
         return
     if options.view_as(StandardOptions).runner not in LOCAL_RUNNERS:
         return
-    cores = usable_cores()
+    cores = default_local_workers()
     if cores < 2:
         return
     direct = options.view_as(DirectOptions)

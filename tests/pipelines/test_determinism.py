@@ -140,3 +140,29 @@ def test_multi_process_runner_gives_the_same_rows(runs):
         for n in _files(runs["first"])
         if n.startswith("episodes")
     )
+
+
+def test_the_default_local_run_uses_every_core_and_the_environment_can_pin_it(monkeypatch):
+    """The launchers' default (no worker flag): multi-process, one worker per usable core
+    (os.sched_getaffinity); CORRTRANSFORMS_LOCAL_WORKERS pins it; a flag on the command line wins."""
+    from apache_beam.options.pipeline_options import DirectOptions
+
+    from corrtransforms.launch import common
+
+    def chosen(argv):
+        options = common.pipeline_options(["--config", "a.toml", "--output", "out", *argv], "backfill")
+        direct = options.view_as(DirectOptions)
+        return direct.direct_running_mode, direct.direct_num_workers
+
+    monkeypatch.delenv(common.LOCAL_WORKERS_ENV, raising=False)
+    cores = len(os.sched_getaffinity(0))
+    if cores >= 2:
+        assert chosen([]) == ("multi_processing", cores)
+    monkeypatch.setenv(common.LOCAL_WORKERS_ENV, "3")
+    assert chosen([]) == ("multi_processing", 3)
+    monkeypatch.setenv(common.LOCAL_WORKERS_ENV, "1")
+    assert chosen([])[0] != "multi_processing"  # one process: Beam's own default mode
+    assert chosen(["--direct_num_workers=2", "--direct_running_mode=multi_threading"]) == ("multi_threading", 2)
+    monkeypatch.setenv(common.LOCAL_WORKERS_ENV, "zero")
+    with pytest.raises(SystemExit, match="positive integer"):
+        chosen([])
