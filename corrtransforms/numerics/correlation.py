@@ -671,7 +671,9 @@ def _normalised(sums, counts, counts_ch, R0, bounds, a_idx, b_idx, estimator: st
             divisor = counts.astype(float)
         with np.errstate(invalid="ignore", divide="ignore"):
             R = np.where(few, np.nan, sums / np.where(divisor > 0, divisor, 1.0))
-        scale = np.sqrt(R0[a_idx] * R0[b_idx])
+        # the product of the roots, not the root of the product: for tiny mean squares (below
+        # about 1e-154) R_aa(0) R_bb(0) is subnormal and loses digits (|rho(0)| of 1 + 1e-7)
+        scale = np.sqrt(R0[a_idx]) * np.sqrt(R0[b_idx])
     with np.errstate(invalid="ignore", divide="ignore"):
         coefficient = np.where(scale[:, None] > 0, R / np.where(scale > 0, scale, 1.0)[:, None], np.nan)
     if weighting != "none":

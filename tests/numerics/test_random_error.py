@@ -388,3 +388,14 @@ def test_effective_samples_stay_within_one_and_n(rho_tail, dt, n):
     assert T_I == pytest.approx(reference, rel=1e-9, abs=1e-12 * dt)
     value = err.effective_samples(n * dt, T_I, n)
     assert 1.0 <= value <= n
+
+
+@pytest.mark.parametrize("n", [40, 160])
+def test_coefficient_at_lag_zero_is_one_for_tiny_mean_squares(n):
+    """rho(0) = 1 exactly in theory (Cauchy-Schwarz bound attained); a record of values near
+    1e-79 has a mean square near 1e-159, whose square is subnormal: the normalisation must not
+    go through it (the property test above found rho(0) = 1 + 8e-8 there)."""
+    x = np.zeros((n, 1))
+    x[0, 0] = 3.3159812e-79
+    est = correlate_spectra(channel_spectra(x, 2.0, 0.0, detrend="mean"), "all", min_pairs=1)
+    assert est.coefficient[0][0] == pytest.approx(1.0, abs=1e-12)
