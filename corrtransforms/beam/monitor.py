@@ -324,6 +324,66 @@ class _ByAssetIndex:
         return self._index[keyed[0]]
 
 
+def _plan_fleet(pbegin, members, each, output_dir: str, run_id: str):
+    """Every asset's listing, footers, footer index and plan in one set of steps (elements keyed
+    by asset): ``(planned outputs, windows planned per asset)``."""
+    names = list(members)
+    configs = {name: m.config for name, m in members.items()}
+    every_asset = pbegin | "Every asset" >> beam.Create([(name, None) for name in names])
+    chosen = (
+        pbegin
+        | "Archive patterns" >> beam.Create([(name, m.config.archive.path) for name, m in members.items()])
+        | "List files and skip days outside the range"
+        >> beam.ParDo(each(lambda m: _ChooseFilesFn(m.config, m.start, m.end, output_dir))).with_outputs(
+            "indexed", main="open"
+        )
+    )
+    footers = (
+        chosen.open
+        | "Spread files" >> beam.Reshuffle()
+        | "Read footers" >> beam.ParDo(each(lambda m: _ReadFooterFn(m.config))).with_outputs("indexed", main="footers")
+    )
+    _ = (
+        (chosen.indexed, footers.indexed, every_asset)
+        | "Index entries" >> beam.Flatten()
+        | "Index entries by asset" >> beam.GroupByKey()
+        | "Write footer indexes" >> beam.Map(_write_fleet_index, output_dir, configs, run_id)
+    )
+    planned = (
+        (footers.footers, every_asset)
+        | "Footers" >> beam.Flatten()
+        | "Footers by asset" >> beam.GroupByKey()
+        | "Plan windows and tasks"
+        >> beam.ParDo(each(lambda m: _PlanFn(m.config, m.start, m.end, m.report_edges))).with_outputs(
+            "rejects", "days", main="tasks"
+        )
+    )
+    windows_planned = (
+        planned.tasks
+        | "Windows per task" >> beam.Map(lambda keyed: (keyed[0], len(keyed[1].window_starts_us)))
+        | "Windows planned per asset" >> beam.CombinePerKey(sum)
+    )
+    return planned, windows_planned
+
+
+def _fleet_source_rows(correlations, members):
+    """Each asset's ``[[covariate_sources]]`` joined under its own step (its own archive and time
+    zone), rows and findings keyed by asset: ``(rows, rejects)`` lists of PCollections."""
+    source_rows, source_rejects = [], []
+    for i, (name, m) in enumerate(members.items()):
+        if not m.config.covariate_sources:
+            continue
+        joined = (
+            correlations[i]
+            | f"Correlations of {name}" >> beam.Map(_values)
+            | f"{fleet_step(name)}/Join covariate sources"
+            >> JoinCovariateSources(m.config, m.start, m.end, m.report_edges)
+        )
+        source_rows.append(joined["indicators"] | f"Key source covariates of {name}" >> beam.Map(_key_by, name))
+        source_rejects.append(joined["rejects"] | f"Key source rejects of {name}" >> beam.Map(_key_by, name))
+    return source_rows, source_rejects
+
+
 class MonitorFleet(beam.PTransform):
     """Several assets in one pipeline, their windows in one shared chain.
 
@@ -364,46 +424,11 @@ class MonitorFleet(beam.PTransform):
     def expand(self, pbegin):
         members = {m.config.name: m for m in self._members}
         names = list(members)
-        configs = {name: m.config for name, m in members.items()}
 
         def each(make) -> ByAssetFn:
             return ByAssetFn({name: make(m) for name, m in members.items()})
 
-        every_asset = pbegin | "Every asset" >> beam.Create([(name, None) for name in names])
-        chosen = (
-            pbegin
-            | "Archive patterns" >> beam.Create([(name, m.config.archive.path) for name, m in members.items()])
-            | "List files and skip days outside the range"
-            >> beam.ParDo(each(lambda m: _ChooseFilesFn(m.config, m.start, m.end, self._output))).with_outputs(
-                "indexed", main="open"
-            )
-        )
-        footers = (
-            chosen.open
-            | "Spread files" >> beam.Reshuffle()
-            | "Read footers"
-            >> beam.ParDo(each(lambda m: _ReadFooterFn(m.config))).with_outputs("indexed", main="footers")
-        )
-        _ = (
-            (chosen.indexed, footers.indexed, every_asset)
-            | "Index entries" >> beam.Flatten()
-            | "Index entries by asset" >> beam.GroupByKey()
-            | "Write footer indexes" >> beam.Map(_write_fleet_index, self._output, configs, self._run_id)
-        )
-        planned = (
-            (footers.footers, every_asset)
-            | "Footers" >> beam.Flatten()
-            | "Footers by asset" >> beam.GroupByKey()
-            | "Plan windows and tasks"
-            >> beam.ParDo(each(lambda m: _PlanFn(m.config, m.start, m.end, m.report_edges))).with_outputs(
-                "rejects", "days", main="tasks"
-            )
-        )
-        windows_planned = (
-            planned.tasks
-            | "Windows per task" >> beam.Map(lambda keyed: (keyed[0], len(keyed[1].window_starts_us)))
-            | "Windows planned per asset" >> beam.CombinePerKey(sum)
-        )
+        planned, windows_planned = _plan_fleet(pbegin, members, each, self._output, self._run_id)
         tasks = (
             planned.tasks
             | "Spread tasks of every asset" >> beam.Reshuffle()
@@ -439,18 +464,7 @@ class MonitorFleet(beam.PTransform):
         correlations = correlated.correlations | "Split correlations by asset" >> beam.Partition(
             _ByAssetIndex(names), len(names)
         )
-        source_rows, source_rejects = [], []
-        for i, (name, m) in enumerate(members.items()):
-            if not m.config.covariate_sources:
-                continue
-            joined = (
-                correlations[i]
-                | f"Correlations of {name}" >> beam.Map(_values)
-                | f"{fleet_step(name)}/Join covariate sources"
-                >> JoinCovariateSources(m.config, m.start, m.end, m.report_edges)
-            )
-            source_rows.append(joined["indicators"] | f"Key source covariates of {name}" >> beam.Map(_key_by, name))
-            source_rejects.append(joined["rejects"] | f"Key source rejects of {name}" >> beam.Map(_key_by, name))
+        source_rows, source_rejects = _fleet_source_rows(correlations, members)
         indicator_rows = indicators.indicators
         if source_rows:
             indicator_rows = (indicator_rows, *source_rows) | "With source covariates" >> beam.Flatten()
@@ -477,6 +491,11 @@ class MonitorFleet(beam.PTransform):
             name: pc | f"Split {name} by asset" >> beam.Partition(_ByAssetIndex(names), len(names))
             for name, pc in keyed.items()
         }
+        return self._write_every_asset(by_asset, correlations, members, names)
+
+    def _write_every_asset(self, by_asset, correlations, members, names):
+        """Each asset's tables written under its own step; ``"*"``: every commit once the run's
+        temporary folder is gone."""
         branches: Dict[str, Any] = {}
         for i, name in enumerate(names):
             mine = {table: parts[i] for table, parts in by_asset.items()}

@@ -346,6 +346,39 @@ def _keyed_rows(pipeline, asset: str, initial_states):
     )
 
 
+def _fleet_smoothed_means(covariate_means, states, configs):
+    """The fleet's covariate means with each smoothed asset's means smoothed in time order from
+    its resumed states (:class:`_SmoothCovariatesFn`): ``(means, smoother outputs)``."""
+    from corrtransforms.beam.by_asset import ByAssetFn
+
+    means, smoother_outputs = covariate_means, []
+    smoothing = {name for name, c in configs.items() if c.covariate_smoothing_h()}
+    if smoothing:
+        resume_rows = (
+            states
+            | "States of smoothed assets" >> beam.Filter(lambda kv: kv[0][0] in smoothing)
+            | "Key states by asset" >> beam.Map(lambda kv: (kv[0][0], kv[1]))
+            | "States by asset" >> beam.GroupByKey()
+            | "State lists" >> beam.MapTuple(lambda asset, rows: (asset, list(rows)))
+        )
+        smoothed = (
+            covariate_means
+            | "Means of smoothed assets" >> beam.Filter(lambda kv: kv[0] in smoothing)
+            | "Covariate means by asset" >> beam.GroupByKey()
+            | "Smooth covariates in time order"
+            >> beam.ParDo(
+                ByAssetFn(
+                    {name: _SmoothCovariatesFn(configs[name]) for name in smoothing}, sides=[("resume_rows", [])]
+                ),
+                beam.pvalue.AsDict(resume_rows),
+            ).with_outputs("state", "rejects", main="means")
+        )
+        unsmoothed = covariate_means | "Means of other assets" >> beam.Filter(lambda kv: kv[0] not in smoothing)
+        means = (smoothed.means, unsmoothed) | "Covariate means" >> beam.Flatten()
+        smoother_outputs = [smoothed]
+    return means, smoother_outputs
+
+
 class DetectFleetShifts(beam.PTransform):
     """:class:`DetectShifts` of several assets in one set of steps: ``(asset, IndicatorRow)``
     elements -> ``(asset, table or Reject)`` elements, every step's work done with that asset's
@@ -392,31 +425,7 @@ class DetectFleetShifts(beam.PTransform):
         states = keyed_states | "States of every asset" >> beam.Flatten()
         samples = keyed_samples | "Baseline samples of every asset" >> beam.Flatten()
 
-        means, smoother_outputs = covariates.means, []
-        smoothing = {name for name, c in configs.items() if c.covariate_smoothing_h()}
-        if smoothing:
-            resume_rows = (
-                states
-                | "States of smoothed assets" >> beam.Filter(lambda kv: kv[0][0] in smoothing)
-                | "Key states by asset" >> beam.Map(lambda kv: (kv[0][0], kv[1]))
-                | "States by asset" >> beam.GroupByKey()
-                | "State lists" >> beam.MapTuple(lambda asset, rows: (asset, list(rows)))
-            )
-            smoothed = (
-                covariates.means
-                | "Means of smoothed assets" >> beam.Filter(lambda kv: kv[0] in smoothing)
-                | "Covariate means by asset" >> beam.GroupByKey()
-                | "Smooth covariates in time order"
-                >> beam.ParDo(
-                    ByAssetFn(
-                        {name: _SmoothCovariatesFn(configs[name]) for name in smoothing}, sides=[("resume_rows", [])]
-                    ),
-                    beam.pvalue.AsDict(resume_rows),
-                ).with_outputs("state", "rejects", main="means")
-            )
-            unsmoothed = covariates.means | "Means of other assets" >> beam.Filter(lambda kv: kv[0] not in smoothing)
-            means = (smoothed.means, unsmoothed) | "Covariate means" >> beam.Flatten()
-            smoother_outputs = [smoothed]
+        means, smoother_outputs = _fleet_smoothed_means(covariates.means, states, configs)
         means_by_asset = (
             means
             | "Covariate means of each asset" >> beam.GroupByKey()
