@@ -378,10 +378,10 @@ def load_job_config(path: str) -> AssetConfig:
         raw = config_module.tomllib.loads(text)
     except config_module.tomllib.TOMLDecodeError as err:
         raise ConfigError("--config", path, f"is not valid TOML ({err})") from None
-    return parse_config(with_url_archive_path(raw, path), base_dir="", source=path)
+    return parse_config(with_url_relative_paths(raw, path), base_dir="", source=path)
 
 
-def with_url_archive_path(raw: Dict[str, Any], path: str) -> Dict[str, Any]:
+def with_url_relative_paths(raw: Dict[str, Any], path: str) -> Dict[str, Any]:
     """``raw`` with a relative ``[archive] path`` and every relative ``[[covariate_sources]] path``
     resolved against the folder of the URL ``path`` (as a local file's folder resolves them)."""
     scheme, rest = path.split("://", 1)

@@ -154,7 +154,7 @@ def load_member(path: str, defaults: Optional[Dict[str, Any]]) -> AssetConfig:
     """One asset: its file over the defaults; relative paths against the asset file's folder."""
     raw = read_toml(path)
     if "://" in path:
-        merged = common.with_url_archive_path(config_module.merge_defaults(defaults or {}, raw), path)
+        merged = common.with_url_relative_paths(config_module.merge_defaults(defaults or {}, raw), path)
         return config_module.parse_config(merged, base_dir="", source=path)
     return config_module.parse_fleet_member(raw, defaults, os.path.dirname(os.path.abspath(path)), path)
 
