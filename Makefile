@@ -5,6 +5,8 @@ PYTHON ?= python3
 VENV   ?= .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
+# test files run side by side on this many pytest-xdist workers (auto: one per core); 0 = in one process
+TEST_WORKERS ?= auto
 
 .PHONY: test lint demo bench fuzz clean venv
 
@@ -23,7 +25,7 @@ lint: $(STAMP)
 	$(BIN)/mypy
 
 test: lint
-	$(BIN)/python -m pytest -q -p no:cacheprovider
+	$(BIN)/python -m pytest -q -p no:cacheprovider -n $(TEST_WORKERS) --dist loadgroup
 
 demo: $(STAMP)
 	$(BIN)/python -m demo_data.generate --out demo_data/archive

@@ -18,6 +18,18 @@ import pytest
 # tests/pipelines/test_determinism.py checks the default itself with this variable removed
 os.environ.setdefault("CORRTRANSFORMS_LOCAL_WORKERS", "1")
 
+
+@pytest.hookimpl(tryfirst=True)
+def pytest_collection_modifyitems(items):
+    """Groups for ``pytest -n N --dist loadgroup`` (make test): a file's tests stay on one worker,
+    so its module fixtures (an archive and its backfill) are built once, and every test that reads
+    the session's demo run is on the worker that builds it. Without xdist the marks do nothing."""
+    for item in items:
+        if item.get_closest_marker("xdist_group") is None:
+            group = "demo_run" if "demo_run" in getattr(item, "fixturenames", ()) else item.nodeid.split("::")[0]
+            item.add_marker(pytest.mark.xdist_group(group))
+
+
 REPO = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 DEMO_DIR = os.path.join(REPO, "demo_data")
 

@@ -11,10 +11,11 @@ records the days committed; when a backfill stops part way (a crash, a killed pr
 command again continues after the last committed chunk with the same run id, and the output is
 byte for byte what an uninterrupted run writes. The record is removed when the backfill ends.
 
-An asset with multi-channel modes runs one day per pipeline until every entry's baseline
-reference is complete (:mod:`corrtransforms.stages.mode_reference`): a day's windows use the
-reference of the days before it, as the nightly runs do, so a chunk must not hold both the day a
-baseline completes and the days after it.
+An asset with multi-channel modes never has the day a baseline reference completes and the days
+after it in one chunk (:mod:`corrtransforms.stages.mode_reference`): a day's windows use the
+reference of the days before it, as the nightly runs do. A dates baseline cuts the chunk after
+its end day; a count baseline (``[baseline] windows``) runs one day per pipeline until every
+entry's reference is complete.
 """
 
 from __future__ import annotations
@@ -77,11 +78,20 @@ def reference_pending(store, output: str, config: AssetConfig, day: _dt.date) ->
 
 
 def split_for_references(store, output: str, config: AssetConfig, chunk: List[_dt.date]) -> List[_dt.date]:
-    """The days of ``chunk`` to run now: all of them, or only the first while a multi-channel
-    entry's baseline reference is pending (the rest then follows as the next chunk)."""
-    if len(chunk) > 1 and reference_pending(store, output, config, chunk[0]):
-        return chunk[:1]
-    return chunk
+    """The days of ``chunk`` to run now; the rest follows as the next chunk.
+
+    While a multi-channel entry's baseline reference is pending, a chunk must not hold both the
+    day that completes it and the days after. With ``[baseline] start/end`` that day is known:
+    every day up to ``end`` has the pending reference whatever ran before it, and every day after
+    it has the reference of the baseline days' rows (all before the chunk when the chunk starts
+    after ``end``), so the chunk is cut only after ``end``. With ``[baseline] windows = N`` the day
+    depends on the data: one day at a time until the reference is complete."""
+    if len(chunk) <= 1 or not reference_pending(store, output, config, chunk[0]):
+        return chunk
+    base = config.baseline
+    if base.by_dates and base.end is not None:
+        return chunk if chunk[0] > base.end else [day for day in chunk if day <= base.end]
+    return chunk[:1]
 
 
 def _progress_path(store, output: str, config: AssetConfig) -> str:

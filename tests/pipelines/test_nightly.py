@@ -1,11 +1,14 @@
 """Nightly runs: a sequence of nights gives exactly the tables of one backfill over the same days.
 
 Uses a short, sparse version of the invented demo archive (14 days, a record every 6 hours; the
-baseline is the configured first ten days). Every comparison reads the tables back from Parquet
-with pyarrow.dataset, as a user would.
+baseline is the configured first ten days). The backfills run as few pipelines as the chunking
+allows (``--commit_days``; chunking does not change a table, and the nights are one-day chunks).
+Every comparison reads the tables back from Parquet with pyarrow.dataset, as a user would.
 """
 
+import contextlib
 import datetime as dt
+import io
 import os
 import shutil
 
@@ -26,19 +29,38 @@ def site(tmp_path_factory):
     shutil.copy(os.path.join(DEMO_DIR, "footbridge.toml"), root / "footbridge.toml")
     config = str(root / "footbridge.toml")
     full = str(root / "full")
-    backfill.main(["--config", config, "--output", full])
+    printed = io.StringIO()
+    with contextlib.redirect_stdout(printed):  # one request, cut only where the baseline ends
+        backfill.main(["--config", config, "--output", full, "--commit_days", "14"])
+    chunks = [line for line in printed.getvalue().splitlines() if line.startswith("backfill footbridge: chunk")]
+    assert [line.split(": ")[-1] for line in chunks] == ["2025-05-01 to 2025-05-10", "2025-05-11 to 2025-05-14"]
     return root, config, full
 
 
-def test_nights_after_a_partial_backfill_equal_one_backfill(site):
-    root, config, full = site
-    stepwise = str(root / "stepwise")
-    backfill.main(["--config", config, "--output", stepwise, "--start", "2025-05-01", "--end", "2025-05-12"])
-    for day in ("2025-05-13", "2025-05-14"):
-        nightly.main(["--config", config, "--output", stepwise, "--date", day])
-    assert_same_tables(full, stepwise)
+@pytest.fixture(scope="module")
+def stepwise(site):
+    """A backfill of 2025-05-01 to 05-11, then the nights of 05-12, 05-13 and 05-14; a copy of the
+    output as it stood after the night of 05-13 is kept beside it (for the rebuild test). Built
+    once: the backfills and nights are most of this file's time."""
+    root, config, _ = site
+    out = str(root / "stepwise")
+    backfill.main(
+        ["--config", config, "--output", out, "--start", "2025-05-01", "--end", "2025-05-11", "--commit_days", "11"]
+    )
+    for day in ("2025-05-12", "2025-05-13"):
+        nightly.main(["--config", config, "--output", out, "--date", day])
+    before_last = str(root / "stepwise-before-05-14")
+    shutil.copytree(out, before_last)
+    nightly.main(["--config", config, "--output", out, "--date", "2025-05-14"])
+    return out, before_last
+
+
+def test_nights_after_a_partial_backfill_equal_one_backfill(site, stepwise):
+    _, _, full = site
+    out, _ = stepwise
+    assert_same_tables(full, out)
     # the nights really did resume: the shifts of the last night are not in state baseline
-    shifts = read_table(stepwise, "shifts")
+    shifts = read_table(out, "shifts")
     assert set(shifts["state"]) >= {"baseline", "normal"}
 
 
@@ -53,10 +75,10 @@ def test_a_missing_previous_state_stops_the_night_with_status_2(site, capsys):
     assert not os.path.exists(os.path.join(empty, "shifts"))  # nothing was written
 
 
-def test_rebuild_state_from_the_indicators_gives_the_backfill_night(site):
+def test_rebuild_state_from_the_indicators_gives_the_backfill_night(site, stepwise):
     root, config, full = site
     rebuilt = str(root / "rebuilt")
-    backfill.main(["--config", config, "--output", rebuilt, "--start", "2025-05-01", "--end", "2025-05-13"])
+    shutil.copytree(stepwise[1], rebuilt)  # the tables of 2025-05-01 to 05-13
     shutil.rmtree(os.path.join(rebuilt, "state"))
     with pytest.raises(SystemExit):
         nightly.main(["--config", config, "--output", rebuilt, "--date", "2025-05-14"])
@@ -101,14 +123,11 @@ def test_episodes_from_the_reduced_shifts_equal_those_from_the_whole_table(site)
     )
 
 
-def test_nights_update_the_episodes_as_one_backfill_writes_them(site):
+def test_nights_update_the_episodes_as_one_backfill_writes_them(site, stepwise):
     # the nights fold only their own day's shifts into the read-back summary of the episode
     # evidence; the episodes file must equal the one a single backfill writes
-    root, config, full = site
-    stepwise = str(root / "stepwise-episodes")
-    backfill.main(["--config", config, "--output", stepwise, "--start", "2025-05-01", "--end", "2025-05-11"])
-    for day in ("2025-05-12", "2025-05-13", "2025-05-14"):
-        nightly.main(["--config", config, "--output", stepwise, "--date", day])
+    _, _, full = site
+    stepwise, _ = stepwise
     episodes = [
         ds.dataset(os.path.join(out, "episodes"), format="parquet").to_table().to_pylist() for out in (full, stepwise)
     ]
