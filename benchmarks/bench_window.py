@@ -12,17 +12,21 @@ It times, best of interleaved repeats:
 - ``correlate``: :func:`corrtransforms.stages.correlate.correlate_window` alone (all pairs with
   error metadata, modes);
 - ``analyse``: :func:`corrtransforms.stages.analyse.analyse_window` (what the correlate transform
-  runs: screening and correlation of one window, sharing the per-channel transforms);
+  runs: screening, then correlation of one window; each takes its own transforms, see
+  docs/performance.md);
 - ``indicators``: :func:`corrtransforms.stages.indicators.window_indicators` of its result;
 - ``floor``: one rFFT per channel at ``next_fast_len(n + L)`` and one inverse per pair.
 
-``--profile`` prints a pyinstrument profile of ``analyse`` + ``indicators`` on the 8-channel
-window. Prints timings and ratios; never asserts a time.
+``--precision float32 float64`` times each window with both ``[correlation] transform_precision``
+values side by side (default: float32 only, the configuration's default). ``--profile`` prints a
+pyinstrument profile of ``analyse`` + ``indicators`` on the last row's window. Prints timings and
+ratios; never asserts a time.
 """
 
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import os
 
 import numpy as np
@@ -92,6 +96,12 @@ def archive_blocks(config_path: str, count: int):
     return blocks[:count], config
 
 
+def _with_precision(config, precision: str):
+    """``config`` with ``[correlation] transform_precision = precision``."""
+    correlation = dataclasses.replace(config.correlation, transform_precision=precision)
+    return dataclasses.replace(config, correlation=correlation)
+
+
 def _floor(block):
     x = np.ascontiguousarray(block.values.T)
     L = int(MAX_LAG_S * FS)
@@ -137,33 +147,46 @@ def main(argv=None):
         "--archive", help="also time real windows of this scale-benchmark config (e.g. benchmarks/_work/1d/asset.toml)"
     )
     parser.add_argument("--windows", type=int, default=3, help="windows of --archive")
+    parser.add_argument(
+        "--precision",
+        nargs="+",
+        default=["float32"],
+        choices=["float32", "float64"],
+        help="[correlation] transform_precision of each row (both: side by side, float32 the default)",
+    )
     args = parser.parse_args(argv)
     print(
         f"{FS:g} Hz, {WINDOW_S / 60:g}-minute windows, max lag {MAX_LAG_S:g} s, all pairs, two modes, "
         f"screening on; best of {args.repeats} interleaved repeats; load average {os.getloadavg()[0]:.2f}"
     )
     print(
-        f"{'channels':>8} {'pairs':>5} | {'screen':>7} {'correlate':>9} {'analyse':>8} {'indicators':>10} "
+        f"{'channels':>8} {'pairs':>5} {'transforms':>10} | {'screen':>7} {'correlate':>9} {'analyse':>8} "
+        f"{'indicators':>10} "
         f"{'window':>7} {'floor':>6} | {'window/floor':>12}"
     )
-    print(f"{'':>8} {'':>5} | {'[ms]':>7} {'[ms]':>9} {'[ms]':>8} {'[ms]':>10} {'[ms]':>7} {'[ms]':>6} |")
+    print(f"{'':>8} {'':>5} {'':>10} | {'[ms]':>7} {'[ms]':>9} {'[ms]':>8} {'[ms]':>10} {'[ms]':>7} {'[ms]':>6} |")
     cases = [(f"{c}", *invented_block(c)) for c in args.channels]
     if args.archive:
         blocks, archive_config = archive_blocks(args.archive, args.windows)
         cases += [(f"8 arch{k}", b, archive_config) for k, b in enumerate(blocks)]
-    for label, block, config in cases:
+    cases = [
+        (label, block, _with_precision(config, precision), precision)
+        for label, block, config in cases
+        for precision in args.precision
+    ]
+    for label, block, config, precision in cases:
         count = len(block.channels)
         result, _ = analyse_window(block, config)
         assert result is not None
         screen, correlate, analyse, indicators, floor = _interleaved_best(_timed(block, config, result), args.repeats)
         window = analyse + indicators
         print(
-            f"{label:>8} {count * (count + 1) // 2:5d} | {1e3 * screen:7.1f} {1e3 * correlate:9.1f} "
+            f"{label:>8} {count * (count + 1) // 2:5d} {precision:>10} | {1e3 * screen:7.1f} {1e3 * correlate:9.1f} "
             f"{1e3 * analyse:8.1f} {1e3 * indicators:10.1f} {1e3 * window:7.1f} {1e3 * floor:6.1f} | "
             f"{window / floor:12.2f}"
         )
     if args.profile:
-        _profile(*cases[-1][1:])
+        _profile(*cases[-1][1:3])
 
 
 if __name__ == "__main__":

@@ -29,6 +29,7 @@ else:  # pragma: no cover
     import tomli as tomllib
 
 from corrtransforms.numerics.correlation import DETRENDS, ESTIMATORS, WEIGHTINGS
+from corrtransforms.numerics.correlation import PRECISIONS as TRANSFORM_PRECISIONS
 from corrtransforms.numerics.covariate_model import MODELS as COVARIATE_MODELS
 from corrtransforms.storage_precision import STORAGES
 from corrtransforms.timeutil import FILE_TIME_FIELDS, compile_file_time_pattern
@@ -125,6 +126,10 @@ class CorrelationConfig:
     #: how the correlations table stores its lag lists: "compact" (rounded, see
     #: corrtransforms.storage_precision) or "float32" (every bit)
     storage: str = "compact"
+    #: precision of the per-channel block transforms and the lag sums taken from them:
+    #: "float32" (the default: exact far below the standard errors and the stored precision)
+    #: or "float64"; error sums, spectra for lag errors and every other figure stay float64
+    transform_precision: str = "float32"
 
 
 @dataclasses.dataclass(frozen=True)
@@ -316,7 +321,16 @@ _KNOWN = {
     },
     "channels": {"names", "covariates", "units", "smoothing_h"},
     "windows": {"length_s", "hop_s", "min_coverage", "align", "offset_s", "record_gap_s"},
-    "correlation": {"max_lag_s", "pairs", "estimator", "detrend", "weighting", "target_rel_error", "storage"},
+    "correlation": {
+        "max_lag_s",
+        "pairs",
+        "estimator",
+        "detrend",
+        "weighting",
+        "target_rel_error",
+        "storage",
+        "transform_precision",
+    },
     "modes": {"name", "channel", "channels", "reference_channels", "reference_shape", "band_hz"},
     "baseline": {"start", "end", "windows", "min_windows"},
     "screening": {"enabled", "segments", "alpha", "action"},
@@ -663,6 +677,9 @@ def _parse_correlation(raw: Mapping[str, Any], windows: WindowsConfig, channels:
             high_open=True,
         ),
         storage=_choice("[correlation] storage", cor.get("storage", "compact"), STORAGES),
+        transform_precision=_choice(
+            "[correlation] transform_precision", cor.get("transform_precision", "float32"), TRANSFORM_PRECISIONS
+        ),
     )
 
 

@@ -109,7 +109,9 @@ def correlate_window(
     cc = config.correlation
     fs = float(block.sample_rate_hz)
     names = tuple(block.channels)
-    spectra = channel_spectra(block.values, fs, cc.max_lag_s, valid=block.valid, detrend=cc.detrend)
+    spectra = channel_spectra(
+        block.values, fs, cc.max_lag_s, valid=block.valid, detrend=cc.detrend, precision=cc.transform_precision
+    )
     usable = _usable_channels(spectra, min_pairs)
     requested = list(pairs_by_name(cc.pairs, names, usable))
     used = [i for i in range(len(names)) if usable[i]]
@@ -176,7 +178,9 @@ class _ChannelFigures:
         self.tone_record_s = 2.0 * err.tone_required_half_length(2 * np.pi * self.tone_freq_hz, cc.target_rel_error)
         self.checks, self.rms, self.rms_stderr = {}, {}, {}
         for k, i in enumerate(used):
-            codes = list(err.auto_correlation_checks(R_auto[k], spectra.mean_square[i], self.psd[k]))
+            codes = list(
+                err.auto_correlation_checks(R_auto[k], spectra.mean_square[i], self.psd[k], rtol=spectra.round_off_rtol)
+            )
             if _undecayed(self.rho[k, L + 1 :], L):
                 codes.append("max_lag_short")
             self.checks[i] = codes

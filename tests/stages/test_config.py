@@ -70,6 +70,7 @@ BAD_VALUES = [
     ("correlation", "estimator", "median", "[correlation] estimator"),
     ("correlation", "detrend", "quadratic", "[correlation] detrend"),
     ("correlation", "weighting", "roth", "[correlation] weighting"),
+    ("correlation", "transform_precision", "float16", "[correlation] transform_precision"),
     ("correlation", "target_rel_error", 0, "[correlation] target_rel_error"),
     ("correlation", "target_rel_error", 1.0, "[correlation] target_rel_error"),
     ("baseline", "start", "yesterday", "[baseline] start"),

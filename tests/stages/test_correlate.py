@@ -74,7 +74,8 @@ def test_all_pairs_layout_and_values_against_scipy():
         full = scipy.signal.correlate(ref[:, b], ref[:, a], method="direct") / n
         expected = full[(lags >= (0 if p.is_auto else -L)) & (lags <= L)]
         expected /= np.sqrt(np.mean(ref[:, a] ** 2) * np.mean(ref[:, b] ** 2))
-        np.testing.assert_allclose(p.coefficient, expected, rtol=1e-9, atol=1e-12)
+        # the default float32 lag sums: within 1e-6 (tests/numerics/test_transform_precision.py)
+        np.testing.assert_allclose(p.coefficient, expected, rtol=0, atol=1e-6)
         assert p.first_lag_s == (0.0 if p.is_auto else -L / fs)
         assert len(p.coefficient) == len(p.stderr) == len(p.pair_count) == (L + 1 if p.is_auto else 2 * L + 1)
         np.testing.assert_allclose(p.lags_s()[-1], L / fs)
@@ -92,7 +93,8 @@ def test_named_pairs_keep_their_order_and_reverse_the_lag_axis():
     ab, ba = wc.pairs
     assert (ab.channel_a, ab.channel_b, ba.channel_a, ba.channel_b) == ("early", "late", "late", "early")
     assert ab.lags_s()[np.argmax(ab.coefficient)] == pytest.approx(5 / fs)
-    np.testing.assert_allclose(ba.coefficient, ab.coefficient[::-1], rtol=1e-10)
+    # a reversed pair is the same sums from other float32 block products: equal within 1e-6
+    np.testing.assert_allclose(ba.coefficient, ab.coefficient[::-1], rtol=0, atol=1e-6)
     assert set(wc.rms) == {"early", "late"}  # rms for every usable channel, even without autos requested
 
 
