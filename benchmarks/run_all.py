@@ -24,7 +24,9 @@ It prints wall time, samples per second and peak resident memory of each (the pr
 summed RSS, sampled every 0.1 s, and the largest single process's ``ru_maxrss`` from
 ``wait4``), then the ratios pipeline/floor (1/4; its inverse is the efficiency), script/pipeline
 (3/1, speed-up), pipeline/workers2 (1/2, worker scaling), lean/floor and script/lean, the time per day relative to the
-shortest archive (linear growth) and the peak RSS relative to it (flat memory). It prints a
+shortest archive (linear growth) and the peak RSS relative to it (flat memory), and the marginal
+cost per window (longest archive's run minus the shortest's, per extra window: start-up not
+charged) of each variant next to the floor's. It prints a
 table, never a verdict; timings on a shared machine are noisy: ``--repeats`` reruns every
 variant (interleaved) and reports the median.
 
@@ -308,7 +310,42 @@ def report(results: Dict[int, Dict[str, dict]], args) -> str:
             rss = results[days][v]["tree_rss_mb"] / results[first][v]["tree_rss_mb"]
             cells.append(f"{per_day:15.2f} {rss:13.2f}")
         lines.append(f"{days:>4}  " + " ".join(cells))
+    lines += marginal_cost_lines(results)
     return "\n".join(lines)
+
+
+#: 10-minute windows of the scale archive per day
+WINDOWS_PER_DAY = 144
+
+
+def marginal_cost_lines(results: Dict[int, Dict[str, dict]]) -> List[str]:
+    """Marginal cost per window: (wall time of the longest archive - of the shortest) / (the
+    difference in windows), so that start-up and other fixed costs are not charged; per
+    variant in ms and as a ratio to the floor's marginal cost. Wall and CPU seconds both."""
+    first, last = min(results), max(results)
+    if first == last:
+        return []
+    extra = (last - first) * WINDOWS_PER_DAY
+    lines = [
+        "",
+        f"marginal cost per window ({last}-day run minus {first}-day run, {extra} windows): ms, and / floor's",
+        f"{'variant':32s} {'wall ms':>8} {'/ floor':>8} {'CPU ms':>8} {'/ floor':>8}",
+    ]
+
+    def marginal(variant, key):
+        if variant not in results[first] or variant not in results[last]:
+            return None
+        return 1e3 * (results[last][variant][key] - results[first][variant][key]) / extra
+
+    for variant in VARIANTS:
+        wall, cpu = marginal(variant, "seconds"), marginal(variant, "cpu_s")
+        if wall is None or cpu is None:
+            continue
+        floor_wall, floor_cpu = marginal("floor", "seconds"), marginal("floor", "cpu_s")
+        wall_ratio = f"{wall / floor_wall:8.2f}" if floor_wall else f"{'-':>8}"
+        cpu_ratio = f"{cpu / floor_cpu:8.2f}" if floor_cpu else f"{'-':>8}"
+        lines.append(f"{LABELS[variant]:32s} {wall:8.1f} {wall_ratio} {cpu:8.1f} {cpu_ratio}")
+    return lines
 
 
 if __name__ == "__main__":
